@@ -1,0 +1,1 @@
+"""Config, ingestion, run store, Prefect flow, CLI: the pipeline layer of quakefolio."""

@@ -1,0 +1,6 @@
+"""``python -m quakefolio.pipeline`` is the ``quakefolio`` command."""
+import sys
+
+from quakefolio.pipeline.cli import main
+
+sys.exit(main())

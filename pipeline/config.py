@@ -1,0 +1,244 @@
+"""Run configuration (``quakefolio.toml``): schema, defaults, validation.
+
+Every key is declared once in :data:`SCHEMA` with its type, default and constraint.
+Unknown sections and keys are errors that suggest the nearest valid name; every error
+names the file, the line and the key.  Paths are resolved relative to the config file.
+"""
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.ims import parse_im
+from quakefolio.fragility.library import read_toml
+
+__all__ = ["Config", "load_config", "SCHEMA", "IM_UNITS_TO_G"]
+
+#: Conversion factors from accepted IM-level units to g (standard gravity 9.80665 m/s2,
+#: CGPM 1901 / ISO 80000-3).
+IM_UNITS_TO_G = {"g": 1.0, "m/s2": 1.0 / 9.80665, "cm/s2": 1.0 / 980.665}
+
+
+def _req(v):
+    return v
+
+
+class _Key:
+    """One config key: expected kind, default (``REQUIRED`` if none) and a check."""
+
+    REQUIRED = object()
+
+    def __init__(self, kind, default=REQUIRED, check=None, choices=None, help=""):
+        self.kind, self.default, self.check, self.choices, self.help = kind, default, check, choices, help
+
+
+def _positive(v):
+    return None if v > 0 else "expected a positive number"
+
+
+def _positive_int(v):
+    return None if v >= 1 else "expected an integer >= 1"
+
+
+def _return_periods(v):
+    if not v:
+        return "expected at least one return period"
+    if any(x <= 1 for x in v):
+        return "return periods must be greater than 1 yr"
+    if sorted(set(v)) != list(v):
+        return "return periods must be strictly increasing"
+    return None
+
+
+def _ratios(v):
+    if len(v) < 2 or any(not 0 <= x <= 1 for x in v) or sorted(set(v)) != list(v):
+        return "expected at least 2 strictly increasing loss ratios in [0, 1]"
+    return None
+
+
+def _probability(v):
+    return None if 0 < v < 1 else "expected a probability in (0, 1)"
+
+
+SCHEMA = {
+    "scenario": {
+        "name": _Key(str),
+        "description": _Key(str, ""),
+        "currency": _Key(str, "USD"),
+        "horizon_yr": _Key(float, 50.0, _positive, help="exposure period for N-year probabilities [yr]"),
+    },
+    "hazard": {
+        "mode": _Key(str, choices=("ingest", "compute")),
+        "curves_file": _Key("path", None),
+        "im_unit": _Key(str, "g", choices=tuple(IM_UNITS_TO_G)),
+        "statistic": _Key(str, "mean"),
+        "return_periods_yr": _Key("floats", [100.0, 475.0, 2475.0], _return_periods),
+        "rate_floor": _Key(float, 1e-6, _positive, help="rates below are not reported as design values [1/yr]"),
+        "max_site_distance_km": _Key(float, 5.0, _positive),
+        "period_interpolation": _Key(bool, True),
+    },
+    "exposure": {
+        "file": _Key("path"),
+    },
+    "fragility": {
+        "library": _Key("path"),
+        "crossing": _Key(str, "reject", choices=("reject", "envelope")),
+        "tail": _Key(str, "extrapolate", choices=("extrapolate", "truncate")),
+        "tail_share_warning": _Key(float, 0.05, _probability),
+    },
+    "output": {
+        "folder": _Key("path", "output"),
+        "loss_curve_ratios": _Key("floats", [0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5,
+                                             0.6, 0.7, 0.8, 0.9, 0.95, 0.99], _ratios),
+        "top_assets": _Key(int, 10, _positive_int),
+    },
+    "execution": {
+        "backend": _Key(str, "local", choices=("local", "dask")),
+        "address": _Key(str, ""),
+        "max_workers": _Key(int, 2, _positive_int),
+        "block_size": _Key(int, 20000, _positive_int, help="(site, class) pairs per task"),
+    },
+}
+
+
+@dataclass
+class Config:
+    """Resolved run configuration: ``sections[section][key]`` plus provenance."""
+
+    path: Path
+    sections: dict
+    sha256: str
+    raw: dict = field(default_factory=dict)
+
+    def __getitem__(self, section):
+        return self.sections[section]
+
+    @property
+    def base(self):
+        return self.path.parent
+
+    def resolved(self):
+        """JSON-serialisable resolved config (paths as strings)."""
+        return json.loads(json.dumps(self.sections, default=str))
+
+
+def _suggest(name, valid):
+    close = difflib.get_close_matches(name, list(valid), n=1, cutoff=0.5)
+    if close:
+        return f"; did you mean '{close[0]}'?"
+    return f"; valid: {', '.join(valid)}"
+
+
+def _coerce(spec, value, path, row, column, base):
+    def fail(msg):
+        raise InputError(path, msg, row=row, column=column)
+
+    kind = spec.kind
+    if kind is str:
+        if not isinstance(value, str):
+            fail(f"expected a string, got {value!r}")
+        if spec.choices and value not in spec.choices:
+            fail(f"expected one of {', '.join(repr(c) for c in spec.choices)}, got {value!r}")
+        return value
+    if kind is bool:
+        if not isinstance(value, bool):
+            fail(f"expected true or false, got {value!r}")
+        return value
+    if kind is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            fail(f"expected an integer, got {value!r}")
+        return value
+    if kind is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            fail(f"expected a finite number, got {value!r}")
+        return float(value)
+    if kind == "floats":
+        if not isinstance(value, list) or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in value):
+            fail(f"expected a list of numbers, got {value!r}")
+        if any(not math.isfinite(v) for v in value):
+            fail("expected finite numbers")
+        return [float(v) for v in value]
+    if kind == "path":
+        if not isinstance(value, str) or not value.strip():
+            fail(f"expected a file path string, got {value!r}")
+        if "\x00" in value:
+            fail("path contains a NUL byte")
+        p = Path(value)
+        return (p if p.is_absolute() else base / p).resolve()
+    raise AssertionError(kind)
+
+
+def load_config(path):
+    """Read, validate and resolve a run config file.
+
+    Raises
+    ------
+    InputError
+        On any problem, naming file, line and key.
+    """
+    path = Path(path).resolve() if Path(path).exists() else Path(path)
+    text, data, digest = read_toml(path)
+    base = path.parent
+    sections = {}
+    for sec, body in data.items():
+        if sec not in SCHEMA:
+            raise InputError(path, f"unknown section [{sec}]{_suggest(sec, SCHEMA)}",
+                             row=locate_toml_line(text, (sec,)), column=sec)
+        if not isinstance(body, dict):
+            raise InputError(path, f"[{sec}] must be a table", row=locate_toml_line(text, (), sec), column=sec)
+        for key in body:
+            if key not in SCHEMA[sec]:
+                raise InputError(path, f"unknown key{_suggest(key, SCHEMA[sec])}",
+                                 row=locate_toml_line(text, (sec,), key), column=f"{sec}.{key}")
+    for sec, keys in SCHEMA.items():
+        body = data.get(sec, {})
+        out = {}
+        for key, spec in keys.items():
+            row = locate_toml_line(text, (sec,), key)
+            column = f"{sec}.{key}"
+            if key in body:
+                value = _coerce(spec, body[key], path, row, column, base)
+                if spec.check is not None:
+                    msg = spec.check(value)
+                    if msg:
+                        raise InputError(path, f"{msg}, got {body[key]!r}", row=row, column=column)
+            elif spec.default is _Key.REQUIRED:
+                raise InputError(path, f"missing required key '{key}' in [{sec}]",
+                                 row=locate_toml_line(text, (sec,)), column=column)
+            else:
+                value = spec.default
+                if spec.kind == "path" and value is not None:
+                    value = (base / value).resolve()
+            out[key] = value
+        sections[sec] = out
+    hz = sections["hazard"]
+    if hz["mode"] == "ingest" and hz["curves_file"] is None:
+        raise InputError(path, "mode = \"ingest\" needs curves_file", row=locate_toml_line(text, ("hazard",), "mode"),
+                         column="hazard.curves_file")
+    if hz["mode"] == "compute":
+        raise InputError(path, "mode = \"compute\" (hazard from a source model) is not available in this version; "
+                               "use mode = \"ingest\" with tabulated curves",
+                         row=locate_toml_line(text, ("hazard",), "mode"), column="hazard.mode")
+    return Config(path=path, sections=sections, sha256=digest, raw=data)
+
+
+def sha256_file(path, chunk=1 << 20):
+    """sha256 hex digest of a file's bytes."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while True:
+            b = fh.read(chunk)
+            if not b:
+                break
+            h.update(b)
+    return h.hexdigest()
+
+
+def check_im_name(name):
+    """Canonical IM name or ValueError (re-exported for readers)."""
+    return parse_im(name)

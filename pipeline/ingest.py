@@ -1,0 +1,335 @@
+"""Reading and validating user files: exposure, tabulated hazard curves.
+
+Every problem is an :class:`~quakefolio.core.errors.InputError` naming file, row and
+column.  CSV rows are file line numbers (the header is row 1, the first asset row 2);
+Parquet rows are 1-based record numbers.  Files are data only: CSV is parsed as text,
+Parquet with pyarrow; nothing is executed or unpickled.
+"""
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from quakefolio.core.curves import interpolate_period
+from quakefolio.core.errors import InputError
+from quakefolio.core.geo import nearest_site
+from quakefolio.core.ims import im_period, parse_im
+from quakefolio.pipeline.config import IM_UNITS_TO_G
+
+__all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves", "HazardCurves", "map_assets_to_sites",
+           "curves_for_im", "EXPOSURE_COLUMNS"]
+
+EXPOSURE_COLUMNS = {  # name: required
+    "asset_id": True, "lon": True, "lat": True, "building_class": True, "replacement_value": True,
+    "vs30_mps": False, "occupants": False, "deductible": False, "limit": False,
+}
+HAZARD_COLUMNS = {"site_id": True, "lon": True, "lat": True, "im": True, "im_level": True, "annual_rate": True,
+                  "statistic": False}
+_FORMULA_START = ("=", "+", "@", "\t", "\r")
+_MAX_ABS = 1e15
+
+
+def read_table(path, columns):
+    """Read a CSV or Parquet file as strings-or-values plus the row numbers of its records.
+
+    Returns ``(frame, rows)`` where ``rows[i]`` is the user-facing row of record ``i``.
+    Checks: file exists, not empty, UTF-8 (CSV), required columns present, unknown
+    columns that look like misspelt known ones.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError(path, "file not found")
+    if path.stat().st_size == 0:
+        raise InputError(path, "file is empty")
+    suffix = path.suffix.lower()
+    if suffix == ".parquet":
+        try:
+            frame = pq.read_table(path).to_pandas()
+        except (pa.ArrowException, OSError) as exc:
+            raise InputError(path, f"not a readable Parquet file ({type(exc).__name__})") from None
+        rows = np.arange(1, len(frame) + 1)
+        first_data_row = 1
+    elif suffix in (".csv", ".txt"):
+        raw = path.read_bytes()
+        try:
+            raw.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            line = raw[: exc.start].count(b"\n") + 1
+            raise InputError(path, f"not valid UTF-8 text (byte 0x{raw[exc.start]:02x})", row=line) from None
+        try:
+            frame = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=True,
+                                encoding="utf-8", comment=None)
+        except pd.errors.EmptyDataError:
+            raise InputError(path, "file is empty") from None
+        except pd.errors.ParserError as exc:
+            msg = str(exc)
+            import re
+
+            m = re.search(r"line (\d+)", msg)
+            raise InputError(path, f"malformed CSV: {msg.splitlines()[0]}", row=int(m.group(1)) if m else None) \
+                from None
+        # line numbers of records (blank lines skipped by the parser)
+        text_lines = raw.decode("utf-8").splitlines()
+        nonblank = [i + 1 for i, ln in enumerate(text_lines) if ln.strip()]
+        rows = np.array(nonblank[1:1 + len(frame)] + [0] * max(0, len(frame) - len(nonblank) + 1))[: len(frame)]
+        first_data_row = 2
+    else:
+        raise InputError(path, f"unsupported file type {suffix!r}: expected .csv or .parquet")
+    frame.columns = [str(c).strip() for c in frame.columns]
+    for col in frame.columns:
+        if col not in columns:
+            close = difflib.get_close_matches(col, list(columns), n=1, cutoff=0.8)
+            if close and close[0] not in frame.columns:
+                raise InputError(path, f"unknown column; did you mean '{close[0]}'?", row=1, column=col)
+    for col, required in columns.items():
+        if required and col not in frame.columns:
+            raise InputError(path, "missing required column", row=1, column=col)
+    if len(frame) == 0:
+        raise InputError(path, "no data rows", row=first_data_row)
+    return frame, rows
+
+
+def _numbers(frame, rows, path, column, *, required=True, positive=False, non_negative=False, lo=None, hi=None,
+             integer=False):
+    """Column as float64 with per-cell checks; errors name the row and cell text."""
+    raw = frame[column]
+    if raw.dtype == object or pd.api.types.is_string_dtype(raw):
+        text = raw.astype(str).str.strip()
+        empty = text.eq("") | text.str.lower().isin(["nan", "none", "null", "na", "n/a"])
+        values = pd.to_numeric(text.where(~empty, None), errors="coerce").to_numpy(dtype=float)
+    else:
+        text = raw.astype(str)
+        values = raw.to_numpy(dtype=float, na_value=np.nan)
+        empty = pd.Series(np.isnan(values), index=raw.index)
+    empty = empty.to_numpy()
+    bad_parse = np.isnan(values) & ~empty
+    if bad_parse.any():
+        i = int(np.argmax(bad_parse))
+        raise InputError(path, f"expected a number, got {text.iloc[i]!r}", row=int(rows[i]), column=column)
+    if required and empty.any():
+        i = int(np.argmax(empty))
+        raise InputError(path, "missing value (empty or NaN)", row=int(rows[i]), column=column)
+    checks = [
+        (~np.isfinite(values) & ~empty, "expected a finite number"),
+        (np.abs(np.nan_to_num(values)) > _MAX_ABS, f"value out of range (|x| > {_MAX_ABS:g})"),
+    ]
+    if positive:
+        checks.append((~empty & ~(values > 0), "expected a positive number"))
+    if non_negative:
+        checks.append((~empty & ~(values >= 0), "expected a non-negative number"))
+    if lo is not None:
+        checks.append((~empty & ~((values >= lo) & (values <= hi)), f"expected a number in [{lo:g}, {hi:g}]"))
+    if integer:
+        checks.append((~empty & (np.nan_to_num(values) != np.round(np.nan_to_num(values))), "expected an integer"))
+    for mask, msg in checks:
+        if mask.any():
+            i = int(np.argmax(mask))
+            raise InputError(path, f"{msg}, got {text.iloc[i]!r}", row=int(rows[i]), column=column)
+    return values
+
+
+def _identifiers(frame, rows, path, column, *, unique=False):
+    ids = frame[column].astype(str).str.strip().to_numpy(dtype=object)
+    for i, v in enumerate(ids):
+        if not v or v.lower() in ("nan", "none"):
+            raise InputError(path, "missing identifier", row=int(rows[i]), column=column)
+        if v.startswith(_FORMULA_START) or any(ord(ch) < 32 for ch in v):
+            raise InputError(path, f"identifier {v[:40]!r} starts with a formula character or holds control "
+                                   "characters", row=int(rows[i]), column=column)
+        if len(v) > 128:
+            raise InputError(path, "identifier longer than 128 characters", row=int(rows[i]), column=column)
+    if unique:
+        s = pd.Series(ids)
+        dup = s.duplicated().to_numpy()
+        if dup.any():
+            i = int(np.argmax(dup))
+            first = int(np.argmax((s == s.iloc[i]).to_numpy()))
+            raise InputError(path, f"duplicate id {ids[i]!r} (first seen at row {int(rows[first])})",
+                             row=int(rows[i]), column=column)
+    return ids.astype(str)
+
+
+def read_exposure(path, library):
+    """Validated exposure as a DataFrame with columns of :data:`EXPOSURE_COLUMNS` and ``row``.
+
+    Checks: unique ids, WGS84 ranges, known building classes (against ``library``),
+    positive replacement values, optional columns non-negative, deductible below limit.
+    """
+    frame, rows = read_table(path, EXPOSURE_COLUMNS)
+    out = pd.DataFrame({"asset_id": _identifiers(frame, rows, path, "asset_id", unique=True)})
+    out["lon"] = _numbers(frame, rows, path, "lon", lo=-180.0, hi=180.0)
+    out["lat"] = _numbers(frame, rows, path, "lat", lo=-90.0, hi=90.0)
+    classes = _identifiers(frame, rows, path, "building_class")
+    unknown = ~np.isin(classes, list(library.classes))
+    if unknown.any():
+        i = int(np.argmax(unknown))
+        close = difflib.get_close_matches(classes[i], list(library.classes), n=1, cutoff=0.6)
+        hint = f"; did you mean '{close[0]}'?" if close else f"; the library defines {sorted(library.classes)}"
+        raise InputError(path, f"unknown building class {classes[i]!r}{hint}", row=int(rows[i]),
+                         column="building_class")
+    out["building_class"] = classes
+    out["replacement_value"] = _numbers(frame, rows, path, "replacement_value", positive=True)
+    optional = {"vs30_mps": dict(positive=True), "occupants": dict(non_negative=True, integer=True),
+                "deductible": dict(non_negative=True), "limit": dict(positive=True)}
+    for col, kw in optional.items():
+        out[col] = _numbers(frame, rows, path, col, required=False, **kw) if col in frame.columns else np.nan
+    bad = (out["deductible"] >= out["limit"]).to_numpy()
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise InputError(path, f"deductible {out['deductible'].iloc[i]:g} is not below the limit "
+                               f"{out['limit'].iloc[i]:g}", row=int(rows[i]), column="deductible")
+    out["row"] = rows
+    return out
+
+
+class UnavailableIM(ValueError):
+    """The hazard file cannot provide curves for an IM a fragility class needs."""
+
+
+@dataclass
+class HazardCurves:
+    """Tabulated hazard curves per IM for a set of sites.
+
+    Attributes
+    ----------
+    site_id : ndarray of str (n_sites,)
+    lon, lat : ndarray (n_sites,) [deg]
+    curves : dict IM name -> (levels (n_sites, n_levels) [g], rates (n_sites, n_levels) [1/yr])
+    source : str
+        File the curves came from.
+    interpolated : set of IM names built by period interpolation
+    """
+
+    site_id: np.ndarray
+    lon: np.ndarray
+    lat: np.ndarray
+    curves: dict
+    source: str
+    interpolated: set
+
+
+def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
+    """Read a long-form hazard-curve table and validate every curve.
+
+    Checks: known IM names, positive levels, non-negative rates, one coordinate pair
+    per site, no duplicated level within a curve, rates non-increasing with level,
+    every site tabulated for every IM with the same number of levels per IM, at least
+    two levels.  Levels are converted from ``im_unit`` to g.
+    """
+    frame, rows = read_table(path, HAZARD_COLUMNS)
+    site = _identifiers(frame, rows, path, "site_id")
+    lon = _numbers(frame, rows, path, "lon", lo=-180.0, hi=180.0)
+    lat = _numbers(frame, rows, path, "lat", lo=-90.0, hi=90.0)
+    ims = frame["im"].astype(str).str.strip().to_numpy(dtype=object)
+    canon = {}
+    for i, name in enumerate(ims):
+        if name not in canon:
+            try:
+                canon[name] = parse_im(name)
+            except ValueError as exc:
+                raise InputError(path, str(exc), row=int(rows[i]), column="im") from None
+    ims = np.array([canon[v] for v in ims], dtype=object)
+    level = _numbers(frame, rows, path, "im_level", positive=True) * IM_UNITS_TO_G[im_unit]
+    rate = _numbers(frame, rows, path, "annual_rate", non_negative=True)
+    if "statistic" in frame.columns:
+        stat = frame["statistic"].astype(str).str.strip().to_numpy(dtype=object)
+        keep = stat == statistic
+        if not keep.any():
+            found = sorted(set(stat))
+            raise InputError(path, f"no curves with statistic {statistic!r}; the file has {found}", row=2,
+                             column="statistic")
+    else:
+        keep = np.ones(len(frame), dtype=bool)
+    df = pd.DataFrame({"site_id": site, "lon": lon, "lat": lat, "im": ims, "level": level, "rate": rate,
+                       "row": rows})[keep]
+    # one coordinate pair per site
+    coords = df.groupby("site_id", sort=False)[["lon", "lat"]].agg(["min", "max"])
+    spread = np.maximum(coords[("lon", "max")] - coords[("lon", "min")], coords[("lat", "max")] - coords[("lat", "min")])
+    if (spread > 1e-9).any():
+        sid = spread.index[np.argmax((spread > 1e-9).to_numpy())]
+        sub = df[df.site_id == sid]
+        r = sub[(sub.lon != sub.lon.iloc[0]) | (sub.lat != sub.lat.iloc[0])].row.iloc[0]
+        raise InputError(path, f"site {sid!r} has more than one lon/lat pair", row=int(r), column="lon")
+    df = df.sort_values(["im", "site_id", "level"], kind="stable")
+    dup = df.duplicated(["im", "site_id", "level"]).to_numpy()
+    if dup.any():
+        r = df.row.to_numpy()[np.argmax(dup)]
+        raise InputError(path, "duplicated im_level for this site and IM", row=int(r), column="im_level")
+    same_curve = (df.im.to_numpy()[1:] == df.im.to_numpy()[:-1]) & (df.site_id.to_numpy()[1:] == df.site_id.to_numpy()[:-1])
+    up = same_curve & (df.rate.to_numpy()[1:] > df.rate.to_numpy()[:-1])
+    if up.any():
+        i = int(np.argmax(up)) + 1
+        r = df.row.to_numpy()[i]
+        raise InputError(path, f"hazard curve of site {df.site_id.iloc[i]!r}, {df.im.iloc[i]} increases with "
+                               f"im_level (rate {df.rate.iloc[i - 1]:g} then {df.rate.iloc[i]:g}); rates must be "
+                               "non-increasing", row=int(r), column="annual_rate")
+    sites = df.drop_duplicates("site_id").sort_values("site_id", kind="stable")
+    site_ids = sites.site_id.to_numpy().astype(str)
+    curves = {}
+    for im, sub in df.groupby("im", sort=True):
+        counts = sub.groupby("site_id").size().reindex(site_ids)
+        if counts.isna().any():
+            missing = counts.index[counts.isna().to_numpy()][0]
+            raise InputError(path, f"site {missing!r} has no curve for {im} (every site needs every IM)",
+                             column="im")
+        n = int(counts.iloc[0])
+        if (counts != n).any():
+            sid = counts.index[(counts != n).to_numpy()][0]
+            r = sub[sub.site_id == sid].row.iloc[0]
+            raise InputError(path, f"site {sid!r} has {int(counts[sid])} levels for {im}, other sites have {n} "
+                                   "(use the same number of levels per IM)", row=int(r), column="im_level")
+        if n < 2:
+            raise InputError(path, f"{im} needs at least 2 levels per site", column="im_level")
+        sub = sub.set_index("site_id").loc[site_ids]
+        curves[im] = (sub.level.to_numpy().reshape(-1, n), sub.rate.to_numpy().reshape(-1, n))
+    return HazardCurves(site_id=site_ids, lon=sites.lon.to_numpy(), lat=sites.lat.to_numpy(), curves=curves,
+                        source=str(path), interpolated=set())
+
+
+def curves_for_im(hazard, im, *, allow_interpolation=True):
+    """Curves for ``im``; if not tabulated, interpolated across the neighbouring periods.
+
+    Raises UnavailableIM when the IM is not tabulated and cannot be interpolated (no
+    neighbour on one side, or interpolation disabled).  Interpolated curves are cached
+    on ``hazard`` and the IM is recorded in ``hazard.interpolated``.
+    """
+    if im in hazard.curves:
+        return hazard.curves[im]
+    available = sorted(hazard.curves, key=im_period)
+    if not allow_interpolation:
+        raise UnavailableIM(f"{im} is not tabulated in {hazard.source} (tabulated: {', '.join(available)}) and "
+                         "period interpolation is off")
+    t = im_period(im)
+    below = [n for n in available if im_period(n) < t]
+    above = [n for n in available if im_period(n) > t]
+    if not below or not above:
+        raise UnavailableIM(f"{im} is outside the tabulated periods of {hazard.source} ({', '.join(available)}); "
+                         "it can be interpolated between periods, not extrapolated")
+    lo, hi = below[-1], above[0]
+    (x1, l1), (x2, l2) = hazard.curves[lo], hazard.curves[hi]
+    levels, rates = interpolate_period(t, im_period(lo), x1, l1, im_period(hi), x2, l2)
+    hazard.curves[im] = (levels, rates)
+    hazard.interpolated.add(im)
+    return levels, rates
+
+
+def map_assets_to_sites(exposure, hazard, *, max_distance_km, exposure_path):
+    """Nearest hazard site of every asset (great circle); beyond the limit is an error.
+
+    Returns ``(site_index, distance_km)`` arrays aligned with ``exposure``.
+    """
+    idx, dist = nearest_site(exposure.lon.to_numpy(), exposure.lat.to_numpy(), hazard.lon, hazard.lat)
+    far = dist > max_distance_km
+    if far.any():
+        i = int(np.argmax(far))
+        raise InputError(exposure_path, f"asset {exposure.asset_id.iloc[i]!r} is {dist[i]:.2f} km from the nearest "
+                                        f"hazard site {hazard.site_id[idx[i]]!r} (limit {max_distance_km:g} km, "
+                                        "[hazard] max_site_distance_km)",
+                         row=int(exposure.row.iloc[i]), column="lon")
+    return idx, dist

@@ -1,0 +1,169 @@
+"""The run store: one folder per finished run, written atomically.
+
+Layout::
+
+    <output>/runs/<run_id>/          complete runs, never modified afterwards
+    <output>/runs/.partial-<run_id>/ a run being written (invisible to readers)
+    <output>/LATEST                  the id of the newest complete run
+
+A run is written under its ``.partial-`` name and renamed into place only when every
+table and the manifest are on disk (``os.replace`` of a folder within one file system
+is atomic); ``LATEST`` is then replaced atomically by writing a temporary file and
+renaming it.  A crash at any point leaves earlier runs and ``LATEST`` intact; a stale
+partial folder is removed by the next run.  Every Parquet file carries units and
+provenance in its schema metadata under the key ``quakefolio``.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+import shutil
+from pathlib import Path
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+__all__ = ["RunWriter", "latest_run", "read_table", "table_metadata", "PARTIAL_PREFIX"]
+
+PARTIAL_PREFIX = ".partial-"
+METADATA_KEY = b"quakefolio"
+
+
+def _fsync_dir(path):
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def _arrow_type(series):
+    if pd.api.types.is_bool_dtype(series):
+        return pa.bool_()
+    if pd.api.types.is_integer_dtype(series):
+        return pa.int64() if series.dtype.itemsize == 8 else pa.int32()
+    if pd.api.types.is_float_dtype(series):
+        return pa.float64()
+    return pa.string()
+
+
+def to_arrow(frame, *, name, units, description, provenance):
+    """DataFrame to an Arrow table with an explicit schema and quakefolio metadata.
+
+    Strings are written as ``string`` (not ``large_string``) so readers and later
+    concatenations agree whatever the pandas version.
+    """
+    fields = [pa.field(c, _arrow_type(frame[c])) for c in frame.columns]
+    meta = {"table": name, "description": description, "units": units, **provenance}
+    schema = pa.schema(fields, metadata={METADATA_KEY: json.dumps(meta, sort_keys=True).encode()})
+    arrays = []
+    for f in fields:
+        col = frame[f.name]
+        if f.type == pa.string():
+            arrays.append(pa.array(col.astype(object).to_numpy(), type=pa.string()))
+        else:
+            arrays.append(pa.array(col.to_numpy(), type=f.type))
+    return pa.Table.from_arrays(arrays, schema=schema)
+
+
+class RunWriter:
+    """Writes one run under a partial name, then commits it atomically."""
+
+    def __init__(self, output_folder, run_id):
+        self.output = Path(output_folder).resolve()
+        self.runs = self.output / "runs"
+        self.runs.mkdir(parents=True, exist_ok=True)
+        self._clean_stale_partials()
+        self.run_id = run_id
+        self.final = self.runs / run_id
+        if self.final.exists():
+            raise FileExistsError(f"run folder {self.final} already exists")
+        self.partial = self.runs / f"{PARTIAL_PREFIX}{run_id}"
+        self.partial.mkdir()
+        self.row_counts = {}
+
+    def _clean_stale_partials(self):
+        for p in self.runs.glob(f"{PARTIAL_PREFIX}*"):
+            shutil.rmtree(p, ignore_errors=True)
+
+    def _inside(self, name):
+        target = (self.partial / name).resolve()
+        if target.parent != self.partial.resolve():
+            raise ValueError(f"refusing to write outside the run folder: {name!r}")
+        return target
+
+    def write_table(self, name, frame, *, units, description, provenance):
+        """Write ``<name>.parquet`` with units and provenance in its schema metadata."""
+        table = to_arrow(frame, name=name, units=units, description=description, provenance=provenance)
+        path = self._inside(f"{name}.parquet")
+        pq.write_table(table, path, compression="zstd")
+        self.row_counts[name] = table.num_rows
+        return path
+
+    def write_text(self, name, text):
+        path = self._inside(name)
+        with open(path, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        return path
+
+    def commit(self):
+        """Rename the partial folder into place, then point ``LATEST`` at it."""
+        for f in self.partial.iterdir():
+            with open(f, "rb") as fh:
+                os.fsync(fh.fileno())
+        _fsync_dir(self.partial)
+        os.replace(self.partial, self.final)
+        _fsync_dir(self.runs)
+        tmp = self.output / f".LATEST.{os.getpid()}.tmp"
+        with open(tmp, "w", encoding="utf-8") as fh:
+            fh.write(self.run_id + "\n")
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, self.output / "LATEST")
+        _fsync_dir(self.output)
+        return self.final
+
+    def abort(self):
+        shutil.rmtree(self.partial, ignore_errors=True)
+
+
+def new_run_id(output_folder, digest):
+    """``YYYYmmddTHHMMSSZ-<8 hex of the inputs digest>``, suffixed if already taken."""
+    stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+    base = f"{stamp}-{digest[:8]}"
+    runs = Path(output_folder) / "runs"
+    run_id, n = base, 1
+    while (runs / run_id).exists() or (runs / f"{PARTIAL_PREFIX}{run_id}").exists():
+        n += 1
+        run_id = f"{base}-{n}"
+    return run_id
+
+
+def latest_run(output_folder):
+    """Path of the run ``LATEST`` points to, or None."""
+    pointer = Path(output_folder) / "LATEST"
+    if not pointer.exists():
+        return None
+    run_id = pointer.read_text(encoding="utf-8").strip()
+    path = Path(output_folder) / "runs" / run_id
+    return path if path.is_dir() else None
+
+
+def read_table(run_dir, name):
+    """A run table as a DataFrame."""
+    return pq.read_table(Path(run_dir) / f"{name}.parquet").to_pandas()
+
+
+def table_metadata(run_dir, name):
+    """The quakefolio schema metadata (units, provenance) of a run table."""
+    schema = pq.read_schema(Path(run_dir) / f"{name}.parquet")
+    return json.loads(schema.metadata[METADATA_KEY])

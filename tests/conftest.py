@@ -1,0 +1,27 @@
+"""Test configuration: Prefect state in a per-session folder, set before prefect is imported."""
+import os
+import tempfile
+from pathlib import Path
+
+import pytest
+
+_STATE = Path(tempfile.mkdtemp(prefix="quakefolio-test-state-"))
+os.environ.setdefault("QUAKEFOLIO_STATE", str(_STATE))
+
+from quakefolio.pipeline.env import configure_prefect  # noqa: E402
+
+configure_prefect()
+
+REPO = Path(__file__).resolve().parents[1]
+MINI = REPO / "tests" / "data" / "mini"
+DEMO = REPO / "demo_portfolio"
+
+
+@pytest.fixture
+def mini_config(tmp_path):
+    """The mini test inputs copied to a temporary folder (outputs land there too)."""
+    import shutil
+
+    dst = tmp_path / "mini"
+    shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
+    return dst / "quakefolio.toml"
