@@ -1,0 +1,44 @@
+"""The Prefect flow and the CLI end to end (embedded server; kept to a handful of tests)."""
+import os
+import shutil
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+from quakefolio.pipeline.runner import run_pure
+from quakefolio.pipeline.store import latest_run, read_table
+
+from conftest import DEMO
+
+TABLES = ["site_hazard", "hazard_at_return_periods", "asset_damage", "asset_loss", "asset_loss_curve"]
+
+
+@pytest.mark.flow
+def test_flow_equals_pure_library_path(mini_config):
+    from quakefolio.pipeline.flow import run_flow
+
+    flow_run = run_flow(mini_config, max_workers=2)
+    pure_run = run_pure(mini_config)
+    for name in TABLES:
+        pd.testing.assert_frame_equal(read_table(flow_run, name), read_table(pure_run, name), check_exact=True)
+
+
+@pytest.mark.flow
+def test_demo_end_to_end_cli(tmp_path):
+    demo = tmp_path / "demo"
+    shutil.copytree(DEMO, demo, ignore=shutil.ignore_patterns("output", "__pycache__"))
+    env = dict(os.environ, QUAKEFOLIO_STATE=str(tmp_path / "state"))
+    proc = subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "run", str(demo / "quakefolio.toml")],
+                          capture_output=True, text=True, env=env, timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    out = proc.stdout + proc.stderr
+    assert out.startswith("CAUTION: screening-level results")
+    assert "ERROR" not in out and "Traceback" not in out and "error" not in proc.stderr.lower()
+    assert "portfolio EAL" in out and "highest collapse probability" in out
+    run = latest_run(demo / "output")
+    assert run is not None
+    loss = read_table(run, "asset_loss")
+    assert len(loss) >= 400 and loss.building_class.nunique() >= 6
+    assert (loss.eal > 0).all()
