@@ -33,6 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.loss import check_damage_ratios
 from quakefolio.fragility.models import DamageStateSet, FragilityLibrary
 
 __all__ = ["load_library", "parse_library", "FORMAT_TAG"]
@@ -164,6 +165,11 @@ def parse_library(data, *, text="", path="<fragility library>"):
                     rows[key].append(v)
                 else:
                     rows[key].append(0.0 if key == "cov" else math.nan)
+            try:  # the loss-ratio distribution of this state must exist; locate the problem at its cov
+                check_damage_ratios(rows["mean_damage_ratio"][i:], rows["cov"][i:])
+            except ValueError as exc:
+                raise InputError(path, str(exc), row=line(stbl, "cov" if "cov" in st else None, i),
+                                 column=f"{col}.cov") from None
             if i > 0:
                 checks = (("median", "medians must increase with severity"),
                           ("mean_damage_ratio", "mean damage ratios must not decrease with severity"))

@@ -7,7 +7,10 @@ Parquet with pyarrow; nothing is executed or unpickled.
 """
 from __future__ import annotations
 
+import csv
 import difflib
+import io
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -45,6 +48,8 @@ def read_table(path, columns):
     path = Path(path)
     if not path.exists():
         raise InputError(path, "file not found")
+    if not path.is_file():
+        raise InputError(path, "not a regular file")
     if path.stat().st_size == 0:
         raise InputError(path, "file is empty")
     suffix = path.suffix.lower()
@@ -58,13 +63,19 @@ def read_table(path, columns):
     elif suffix in (".csv", ".txt"):
         raw = path.read_bytes()
         try:
-            raw.decode("utf-8")
+            text = raw.decode("utf-8")
         except UnicodeDecodeError as exc:
             line = raw[: exc.start].count(b"\n") + 1
-            raise InputError(path, f"not valid UTF-8 text (byte 0x{raw[exc.start]:02x})", row=line) from None
+            raise InputError(path, f"not valid UTF-8 text (byte 0x{raw[exc.start]:02x})", row=line,
+                             column=_column_at_byte(raw, exc.start)) from None
+        _, starts = _csv_records(path, text)
         try:
-            frame = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=True,
-                                encoding="utf-8", comment=None)
+            # index_col=False: a trailing delimiter on data rows must not turn the first column into an index;
+            # the fields it drops were checked empty above, so its warning is noise
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", pd.errors.ParserWarning)
+                frame = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=True,
+                                    encoding="utf-8", comment=None, index_col=False)
         except pd.errors.EmptyDataError:
             raise InputError(path, "file is empty") from None
         except pd.errors.ParserError as exc:
@@ -74,14 +85,17 @@ def read_table(path, columns):
             m = re.search(r"line (\d+)", msg)
             raise InputError(path, f"malformed CSV: {msg.splitlines()[0]}", row=int(m.group(1)) if m else None) \
                 from None
-        # line numbers of records (blank lines skipped by the parser)
-        text_lines = raw.decode("utf-8").splitlines()
-        nonblank = [i + 1 for i, ln in enumerate(text_lines) if ln.strip()]
-        rows = np.array(nonblank[1:1 + len(frame)] + [0] * max(0, len(frame) - len(nonblank) + 1))[: len(frame)]
+        # line numbers where records start (quoted fields may span lines; blank lines are skipped)
+        if starts is not None and len(starts) == len(frame):
+            rows = np.array(starts, dtype=np.int64)
+        else:  # the two parsers disagree: fall back to counting non-blank lines
+            nonblank = [i + 1 for i, ln in enumerate(text.splitlines()) if ln.strip()]
+            rows = np.array(nonblank[1:1 + len(frame)] + [0] * max(0, len(frame) - len(nonblank) + 1))[: len(frame)]
         first_data_row = 2
     else:
         raise InputError(path, f"unsupported file type {suffix!r}: expected .csv or .parquet")
     frame.columns = [str(c).strip() for c in frame.columns]
+    _check_unique_columns(path, list(frame.columns))
     for col in frame.columns:
         if col not in columns:
             close = difflib.get_close_matches(col, list(columns), n=1, cutoff=0.8)
@@ -95,12 +109,61 @@ def read_table(path, columns):
     return frame, rows
 
 
+def _csv_records(path, text):
+    """Header names and the start line (1-based) of every non-blank data record of CSV ``text``.
+
+    Quoted fields may span lines, so record ``i`` does not sit on line ``i + 2`` in general.
+    A record with more non-empty fields than the header is an error (a trailing empty
+    field, as some spreadsheets write, is tolerated).  Returns ``(None, None)`` when the
+    text is not well-formed CSV; the reader then reports it.
+    """
+    reader = csv.reader(io.StringIO(text, newline=""))
+    header, starts, end = None, [], 0
+    try:
+        for fields in reader:
+            start, end = end + 1, reader.line_num
+            if not (len(fields) > 1 or (fields and fields[0].strip())):
+                continue
+            if header is None:
+                header = [f.strip().lstrip("\ufeff") for f in fields]
+                _check_unique_columns(path, header)
+                continue
+            if len(fields) > len(header) and any(f.strip() for f in fields[len(header):]):
+                raise InputError(path, f"record has {len(fields)} fields but the header has {len(header)}",
+                                 row=start)
+            starts.append(start)
+    except csv.Error:
+        return None, None
+    return header, starts
+
+
+def _column_at_byte(raw, offset):
+    """Header name of the CSV field holding byte ``offset`` of ``raw`` (None on the header line)."""
+    line_start = raw.rfind(b"\n", 0, offset) + 1
+    if line_start == 0:
+        return None
+    try:
+        header = next(csv.reader([raw.split(b"\n", 1)[0].decode("utf-8", "replace")]), [])
+        index = len(next(csv.reader([raw[line_start:offset].decode("utf-8", "replace") + "x"]))) - 1
+    except csv.Error:
+        return None
+    return header[index].strip().lstrip("\ufeff") if index < len(header) else None
+
+
+def _check_unique_columns(path, names):
+    seen = set()
+    for name in names:
+        if name in seen:
+            raise InputError(path, "column name appears more than once in the header", row=1, column=name)
+        seen.add(name)
+
+
 def _numbers(frame, rows, path, column, *, required=True, positive=False, non_negative=False, lo=None, hi=None,
              integer=False):
     """Column as float64 with per-cell checks; errors name the row and cell text."""
     raw = frame[column]
     if raw.dtype == object or pd.api.types.is_string_dtype(raw):
-        text = raw.astype(str).str.strip()
+        text = raw.astype(str).str.strip().fillna("")
         empty = text.eq("") | text.str.lower().isin(["nan", "none", "null", "na", "n/a"])
         values = pd.to_numeric(text.where(~empty, None), errors="coerce").to_numpy(dtype=float)
     else:
@@ -135,7 +198,7 @@ def _numbers(frame, rows, path, column, *, required=True, positive=False, non_ne
 
 
 def _identifiers(frame, rows, path, column, *, unique=False):
-    ids = frame[column].astype(str).str.strip().to_numpy(dtype=object)
+    ids = frame[column].astype(str).str.strip().fillna("").to_numpy(dtype=object)
     for i, v in enumerate(ids):
         if not v or v.lower() in ("nan", "none"):
             raise InputError(path, "missing identifier", row=int(rows[i]), column=column)
@@ -171,7 +234,7 @@ def read_exposure(path, library):
         i = int(np.argmax(unknown))
         close = difflib.get_close_matches(classes[i], list(library.classes), n=1, cutoff=0.6)
         hint = f"; did you mean '{close[0]}'?" if close else f"; the library defines {sorted(library.classes)}"
-        raise InputError(path, f"unknown building class {classes[i]!r}{hint}", row=int(rows[i]),
+        raise InputError(path, f"unknown building class {str(classes[i])!r}{hint}", row=int(rows[i]),
                          column="building_class")
     out["building_class"] = classes
     out["replacement_value"] = _numbers(frame, rows, path, "replacement_value", positive=True)
@@ -276,8 +339,9 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
         counts = sub.groupby("site_id").size().reindex(site_ids)
         if counts.isna().any():
             missing = counts.index[counts.isna().to_numpy()][0]
+            r = df[df.site_id == missing].row.iloc[0]
             raise InputError(path, f"site {missing!r} has no curve for {im} (every site needs every IM)",
-                             column="im")
+                             row=int(r), column="im")
         n = int(counts.iloc[0])
         if (counts != n).any():
             sid = counts.index[(counts != n).to_numpy()][0]
@@ -285,7 +349,8 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
             raise InputError(path, f"site {sid!r} has {int(counts[sid])} levels for {im}, other sites have {n} "
                                    "(use the same number of levels per IM)", row=int(r), column="im_level")
         if n < 2:
-            raise InputError(path, f"{im} needs at least 2 levels per site", column="im_level")
+            raise InputError(path, f"{im} needs at least 2 levels per site", row=int(sub.row.iloc[0]),
+                             column="im_level")
         sub = sub.set_index("site_id").loc[site_ids]
         curves[im] = (sub.level.to_numpy().reshape(-1, n), sub.rate.to_numpy().reshape(-1, n))
     return HazardCurves(site_id=site_ids, lon=sites.lon.to_numpy(), lat=sites.lat.to_numpy(), curves=curves,
@@ -329,7 +394,7 @@ def map_assets_to_sites(exposure, hazard, *, max_distance_km, exposure_path):
     if far.any():
         i = int(np.argmax(far))
         raise InputError(exposure_path, f"asset {exposure.asset_id.iloc[i]!r} is {dist[i]:.2f} km from the nearest "
-                                        f"hazard site {hazard.site_id[idx[i]]!r} (limit {max_distance_km:g} km, "
+                                        f"hazard site {str(hazard.site_id[idx[i]])!r} (limit {max_distance_km:g} km, "
                                         "[hazard] max_site_distance_km)",
                          row=int(exposure.row.iloc[i]), column="lon")
     return idx, dist

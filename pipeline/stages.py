@@ -17,7 +17,9 @@ from quakefolio.core.errors import InputError, locate_toml_line
 from quakefolio.core.loss import expected_annual_loss, loss_exceedance_rates
 from quakefolio.fragility import CrossingError, load_library
 from quakefolio.pipeline.config import load_config, sha256_file
-from quakefolio.pipeline.ingest import UnavailableIM, curves_for_im, map_assets_to_sites, read_exposure, read_hazard_curves
+from quakefolio.pipeline.ingest import (
+    UnavailableIM, curves_for_im, map_assets_to_sites, read_exposure, read_hazard_curves,
+)
 
 __all__ = ["Inputs", "WorkBlock", "load_inputs", "plan_blocks", "compute_block", "build_tables"]
 

@@ -115,3 +115,28 @@ def test_stale_partial_is_removed_and_never_visible(tmp_path):
     w.commit()
     assert (tmp_path / "LATEST").read_text().strip() == "r2"
     assert os.listdir(tmp_path / "runs") == ["r2"]
+
+
+def test_parquet_and_csv_hazard_curves_agree():
+    from conftest import DEMO
+    from quakefolio.pipeline.ingest import read_hazard_curves
+
+    a = read_hazard_curves(DEMO / "hazard_curves.csv")
+    b = read_hazard_curves(DEMO / "hazard_curves.parquet")
+    assert list(a.site_id) == list(b.site_id) and set(a.curves) == set(b.curves) == {"PGA", "SA_0.3", "SA_1.0"}
+    for im in a.curves:
+        np.testing.assert_array_equal(a.curves[im][0], b.curves[im][0])
+        np.testing.assert_array_equal(a.curves[im][1], b.curves[im][1])
+
+
+def test_hazard_unit_conversion(tmp_path):
+    # 1 g = 9.80665 m/s2 (standard gravity, CGPM 1901)
+    from conftest import MINI
+    from quakefolio.pipeline.ingest import read_hazard_curves
+
+    df = pd.read_csv(MINI / "hazard_curves.csv")
+    df["im_level"] = df["im_level"] * 9.80665
+    df.to_csv(tmp_path / "h.csv", index=False)
+    g = read_hazard_curves(MINI / "hazard_curves.csv")
+    ms2 = read_hazard_curves(tmp_path / "h.csv", im_unit="m/s2")
+    assert_allclose(ms2.curves["PGA"][0], g.curves["PGA"][0], rtol=1e-12)
