@@ -1,0 +1,556 @@
+r"""Site-to-rupture distances for rectangular ruptures, vectorised over sites x ruptures.
+
+Local projection
+----------------
+Longitudes and latitudes are mapped to a plane with the spherical azimuthal
+equidistant projection (Snyder 1987, ch. 25) about one reference point (by default
+the mean position of the sites), with ``x`` east and ``y`` north in km on a sphere of
+radius :data:`EARTH_RADIUS_KM`; depth is measured vertically down in km. Distances
+and azimuths from the reference point are exact. Between two other points the scale
+error across the radial direction is :math:`(\rho/R)/\sin(\rho/R) - 1 \approx
+\rho^2/(6R^2)` at a distance :math:`\rho` from the reference (0.01 % at 150 km,
+0.04 % at 300 km, 0.1 % at 500 km), so a computed distance :math:`d` between points
+within :math:`\rho` of the reference is off by at most about :math:`d\rho^2/(6R^2)`
+(0.07 km for a 200 km distance 300 km from the reference). For continental extents,
+call per region of sites (the hazard engine works in site blocks anyway).
+
+Rectangles
+----------
+A rupture is the plane rectangle whose top edge joins the projected top-start and
+top-end corners at depth ``ztor_km`` and which extends ``width_km`` down dip at
+``dip_deg`` to the right of the strike direction (Aki & Richards convention). All
+distances are then exact for that rectangle (no meshing): the site is expressed in the
+rectangle's own frame (along strike, down dip, normal) and clamped to it.
+
+Distance definitions
+--------------------
+As in the NGA-West2 flatfile (Ancheta et al. 2014) and Kaklamanos, Baise & Boore
+(2011): ``rrup_km`` the closest distance to the rupture plane; ``rjb_km`` the closest
+horizontal distance to the surface projection of the rupture (0 above it); ``rx_km``
+the horizontal distance from the top edge of the rupture (extended to infinity along
+strike) measured perpendicular to strike, positive on the hanging-wall side (for a
+vertical rupture: positive to the right of the strike direction); ``ry0_km`` the
+horizontal distance off either end of the rupture measured parallel to strike (0
+between the ends).
+"""
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, NamedTuple
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from quakefolio.core.geo import EARTH_RADIUS_KM
+
+if TYPE_CHECKING:  # pragma: no cover
+    from quakefolio.core.ruptures import RuptureSet
+
+__all__ = [
+    "EARTH_RADIUS_KM",
+    "DISTANCE_KEYS",
+    "mean_position",
+    "aeqd_forward",
+    "aeqd_inverse",
+    "points_in_polygon",
+    "rupture_distances",
+    "pair_distances",
+    "site_rupture_mask",
+]
+
+FloatArray = NDArray[np.float64]
+
+#: Keys of the dictionaries returned by :func:`rupture_distances` and :func:`pair_distances`.
+DISTANCE_KEYS = ("rrup_km", "rjb_km", "rx_km", "ry0_km")
+
+#: Sites x ruptures evaluated per block: three work arrays of this size (0.5 MB each)
+#: stay in cache, which is faster than whole-array passes (measured here).
+_BLOCK_PAIRS = 1 << 16
+
+
+# --------------------------------------------------------------------------- #
+# projection
+# --------------------------------------------------------------------------- #
+def _unit(lon_deg, lat_deg):
+    lon = np.radians(np.asarray(lon_deg, dtype=np.float64))
+    lat = np.radians(np.asarray(lat_deg, dtype=np.float64))
+    cl = np.cos(lat)
+    return cl * np.cos(lon), cl * np.sin(lon), np.sin(lat)
+
+
+def _check_lonlat(name: str, lon, lat) -> tuple[FloatArray, FloatArray]:
+    lon = np.asarray(lon, dtype=np.float64)
+    lat = np.asarray(lat, dtype=np.float64)
+    if not (np.all(np.isfinite(lon)) and np.all(np.isfinite(lat))):
+        raise ValueError(f"{name}: longitudes and latitudes must be finite")
+    if np.any(np.abs(lat) > 90.0):
+        raise ValueError(f"{name}: latitudes must be in [-90, 90]; got {lat[np.abs(lat) > 90.0].ravel()[0]!r}")
+    return lon, lat
+
+
+def mean_position(lon_deg: ArrayLike, lat_deg: ArrayLike) -> tuple[float, float]:
+    """Normalised mean of the unit vectors of points [deg]: a centre that handles the antimeridian.
+
+    Returns
+    -------
+    lon, lat : float [deg]
+
+    Raises
+    ------
+    ValueError
+        If no point is given or the points are spread so evenly that the mean vanishes.
+    """
+    lon, lat = _check_lonlat("mean_position", lon_deg, lat_deg)
+    if lon.size == 0:
+        raise ValueError("mean_position: no points given")
+    x, y, z = (float(np.mean(c)) for c in _unit(lon, lat))
+    norm = np.sqrt(x * x + y * y + z * z)
+    if norm < 1e-9:
+        raise ValueError("mean_position: the points have no meaningful centre (mean vector ~ 0)")
+    return float(np.degrees(np.arctan2(y, x))), float(np.degrees(np.arcsin(np.clip(z / norm, -1, 1))))
+
+
+def _tangent_basis(ref_lon, ref_lat):
+    lam0 = np.radians(np.asarray(ref_lon, dtype=np.float64))
+    phi0 = np.radians(np.asarray(ref_lat, dtype=np.float64))
+    sl, cl = np.sin(lam0), np.cos(lam0)
+    sp, cp = np.sin(phi0), np.cos(phi0)
+    centre = (cp * cl, cp * sl, sp)
+    east = (-sl, cl, np.zeros_like(sl))
+    north = (-sp * cl, -sp * sl, cp)
+    return centre, east, north
+
+
+def aeqd_forward(lon_deg: ArrayLike, lat_deg: ArrayLike, ref_lon: ArrayLike, ref_lat: ArrayLike):
+    r"""Azimuthal equidistant projection about ``(ref_lon, ref_lat)``: east/north [km].
+
+    Parameters
+    ----------
+    lon_deg, lat_deg : array_like [deg]
+        Points to project.
+    ref_lon, ref_lat : array_like [deg]
+        Projection centre(s); all four arguments broadcast together.
+
+    Returns
+    -------
+    x_km, y_km : ndarray [km]
+        East and north coordinates.
+
+    Notes
+    -----
+    Spherical form (Snyder 1987, ch. 25): a point at angular distance :math:`c` and
+    azimuth :math:`\alpha` from the centre maps to :math:`R c (\sin\alpha, \cos\alpha)`.
+    Computed with vectors: with :math:`\hat e, \hat n` the east and north unit vectors at
+    the centre and :math:`\hat v` the point, :math:`x = R\,(\hat v\cdot\hat e)\,c/\sin c`,
+    :math:`y = R\,(\hat v\cdot\hat n)\,c/\sin c`, and
+    :math:`c = \operatorname{atan2}(\sin c, \hat v\cdot\hat c)`; accurate to round-off at
+    all distances below the antipode.
+
+    References
+    ----------
+    Snyder, J. P. (1987). Map Projections: A Working Manual. U.S. Geological Survey
+    Professional Paper 1395, pp. 191-202.
+    """
+    vx, vy, vz = _unit(lon_deg, lat_deg)
+    (cx, cy, cz), (ex, ey, ez), (nx, ny, nz) = _tangent_basis(ref_lon, ref_lat)
+    ve = vx * ex + vy * ey + vz * ez
+    vn = vx * nx + vy * ny + vz * nz
+    vc = vx * cx + vy * cy + vz * cz
+    sin_c = np.hypot(ve, vn)
+    c = np.arctan2(sin_c, vc)
+    k = EARTH_RADIUS_KM / np.sinc(c / np.pi)  # R c / sin c, R at c = 0
+    return k * ve, k * vn
+
+
+def aeqd_inverse(x_km: ArrayLike, y_km: ArrayLike, ref_lon: ArrayLike, ref_lat: ArrayLike):
+    """Inverse of :func:`aeqd_forward`: east/north [km] about the reference to lon/lat [deg].
+
+    Returns
+    -------
+    lon_deg, lat_deg : ndarray [deg]
+        Longitudes in [-180, 180].
+    """
+    x = np.asarray(x_km, dtype=np.float64)
+    y = np.asarray(y_km, dtype=np.float64)
+    (cx, cy, cz), (ex, ey, ez), (nx, ny, nz) = _tangent_basis(ref_lon, ref_lat)
+    c = np.hypot(x, y) / EARTH_RADIUS_KM
+    s = np.sinc(c / np.pi) / EARTH_RADIUS_KM  # sin(c) / rho
+    cos_c = np.cos(c)
+    px = cos_c * cx + s * (x * ex + y * nx)
+    py = cos_c * cy + s * (x * ey + y * ny)
+    pz = cos_c * cz + s * (x * ez + y * nz)
+    lon = np.degrees(np.arctan2(py, px))
+    lat = np.degrees(np.arctan2(pz, np.hypot(px, py)))
+    return lon, lat
+
+
+# --------------------------------------------------------------------------- #
+# polygons
+# --------------------------------------------------------------------------- #
+def points_in_polygon(x: ArrayLike, y: ArrayLike, poly_x: ArrayLike, poly_y: ArrayLike) -> NDArray[np.bool_]:
+    """Which points lie inside a simple polygon (even-odd ray casting), vectorised.
+
+    Parameters
+    ----------
+    x, y : array_like, shape (n,)
+        Points (any planar units).
+    poly_x, poly_y : array_like, shape (m,)
+        Polygon vertices in order, closed implicitly (the last vertex joins the first).
+
+    Returns
+    -------
+    ndarray of bool, shape (n,)
+        True inside. Points exactly on an edge may fall either way.
+
+    Notes
+    -----
+    A horizontal ray from each point crosses the boundary an odd number of times iff the
+    point is inside (Jordan curve theorem); edges are tested half-open in ``y`` so that a
+    ray through a vertex counts once (common practice).
+    """
+    px = np.asarray(x, dtype=np.float64).ravel()
+    py = np.asarray(y, dtype=np.float64).ravel()
+    vx = np.asarray(poly_x, dtype=np.float64).ravel()
+    vy = np.asarray(poly_y, dtype=np.float64).ravel()
+    if vx.size < 3 or vx.shape != vy.shape:
+        raise ValueError("points_in_polygon: need at least 3 vertices with matching x and y")
+    x1, y1 = vx, vy
+    x2, y2 = np.roll(vx, -1), np.roll(vy, -1)
+    inside = np.zeros(px.size, dtype=bool)
+    block = max(1, _BLOCK_PAIRS // vx.size)
+    for start in range(0, px.size, block):
+        qx = px[start:start + block, None]
+        qy = py[start:start + block, None]
+        straddles = (y1 > qy) != (y2 > qy)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            x_cross = x1 + (qy - y1) * (x2 - x1) / (y2 - y1)
+        crossings = straddles & (qx < x_cross)
+        inside[start:start + block] = (np.count_nonzero(crossings, axis=1) % 2) == 1
+    return inside
+
+
+# --------------------------------------------------------------------------- #
+# rupture frames
+# --------------------------------------------------------------------------- #
+class _Frames(NamedTuple):
+    """Per-rupture rectangle in the local projection (all shape (n_ruptures,))."""
+
+    x0: FloatArray  # top-start corner, east [km]
+    y0: FloatArray  # top-start corner, north [km]
+    ux: FloatArray  # unit strike vector, east component
+    uy: FloatArray  # unit strike vector, north component
+    length: FloatArray  # along-strike length of the projected top edge [km]
+    width: FloatArray  # down-dip width [km]
+    width_h: FloatArray  # horizontal width of the surface projection, W cos(dip) [km]
+    cosd: FloatArray
+    sind: FloatArray
+    ztor_sind: FloatArray  # ztor sin(dip) [km]
+    ztor_cosd: FloatArray  # ztor cos(dip) [km]
+    ztor: FloatArray
+
+
+def _frames(ruptures: "RuptureSet", ref_lon: float, ref_lat: float) -> _Frames:
+    corners = np.asarray(ruptures.corners, dtype=np.float64)
+    x0, y0 = aeqd_forward(corners[:, 0, 0], corners[:, 0, 1], ref_lon, ref_lat)
+    x1, y1 = aeqd_forward(corners[:, 1, 0], corners[:, 1, 1], ref_lon, ref_lat)
+    length = np.hypot(x1 - x0, y1 - y0)
+    if np.any(length <= 0.0):
+        raise ValueError("ruptures: a rupture has a top edge of zero length")
+    ux = (x1 - x0) / length
+    uy = (y1 - y0) / length
+    dip = np.radians(np.asarray(ruptures.dip_deg, dtype=np.float64))
+    cosd = np.cos(dip)
+    cosd[np.asarray(ruptures.dip_deg) == 90.0] = 0.0  # exact zero for vertical planes
+    sind = np.sin(dip)
+    width = np.asarray(ruptures.width_km, dtype=np.float64)
+    ztor = np.asarray(ruptures.ztor_km, dtype=np.float64)
+    return _Frames(x0, y0, ux, uy, length, width, width * cosd, cosd, sind, ztor * sind, ztor * cosd, ztor)
+
+
+def _take(frames: _Frames, index) -> _Frames:
+    return _Frames(*(f[index] for f in frames))
+
+
+def _kernel(sx, sy, f: _Frames, out, scratch) -> None:
+    """Exact distances for broadcastable site coordinates and rupture frames.
+
+    Writes Rrup, Rjb, Rx, Ry0 into the four arrays of ``out`` (the broadcast shape);
+    ``scratch`` holds three work arrays of that shape. Every step is an in-place ufunc, so
+    a block costs no allocation.
+    """
+    rrup, rjb, rx, ry0 = out
+    s1, s2, s3 = scratch
+    np.subtract(sx, f.x0, out=s1)  # east offset from the top-start corner
+    np.subtract(sy, f.y0, out=s2)  # north offset
+    # Rx: perpendicular to strike, positive toward the dip direction (right of strike)
+    np.multiply(s1, f.uy, out=rx)
+    np.multiply(s2, f.ux, out=s3)
+    rx -= s3
+    # along strike from the top-start corner
+    np.multiply(s1, f.ux, out=s3)
+    np.multiply(s2, f.uy, out=s1)
+    s3 += s1
+    # Ry0 = distance of `along` outside [0, L]
+    np.subtract(s3, f.length, out=ry0)
+    np.negative(s3, out=s1)
+    np.maximum(ry0, s1, out=ry0)
+    np.maximum(ry0, 0.0, out=ry0)
+    # Rjb: also the distance of Rx outside [0, W cos(dip)]; sqrt(x*x + y*y), not np.hypot
+    # (~20x faster here, no overflow risk at km scale)
+    np.subtract(rx, f.width_h, out=s1)
+    np.negative(rx, out=s2)
+    np.maximum(s1, s2, out=s1)
+    np.maximum(s1, 0.0, out=s1)
+    np.multiply(ry0, ry0, out=rjb)
+    s1 *= s1
+    rjb += s1
+    np.sqrt(rjb, out=rjb)
+    # Rrup: site at (along, Rx, -ztor) in (strike, dip direction, down) from the corner;
+    # down-dip coordinate clamped to [0, W], normal coordinate as is
+    np.multiply(rx, f.cosd, out=s1)
+    s1 -= f.ztor_sind
+    np.subtract(s1, f.width, out=s2)
+    np.negative(s1, out=s3)
+    np.maximum(s2, s3, out=s2)
+    np.maximum(s2, 0.0, out=s2)
+    np.multiply(rx, f.sind, out=s1)
+    s1 += f.ztor_cosd
+    np.multiply(ry0, ry0, out=rrup)
+    s2 *= s2
+    rrup += s2
+    s1 *= s1
+    rrup += s1
+    np.sqrt(rrup, out=rrup)
+
+
+def _reference(site_lon, site_lat, ref_lon, ref_lat) -> tuple[float, float]:
+    if (ref_lon is None) != (ref_lat is None):
+        raise ValueError("give both ref_lon and ref_lat, or neither")
+    if ref_lon is None:
+        return mean_position(site_lon, site_lat)
+    lon, lat = _check_lonlat("reference point", ref_lon, ref_lat)
+    if lon.ndim or lat.ndim:
+        raise ValueError("ref_lon and ref_lat must be scalars")
+    return float(lon), float(lat)
+
+
+def _sites(site_lon, site_lat):
+    lon, lat = _check_lonlat("sites", site_lon, site_lat)
+    if lon.ndim != 1 or lon.shape != lat.shape:
+        raise ValueError(
+            f"site_lon and site_lat must be 1-D of equal length; got shapes {lon.shape} and {lat.shape}"
+        )
+    return lon, lat
+
+
+# --------------------------------------------------------------------------- #
+# public distance functions
+# --------------------------------------------------------------------------- #
+def rupture_distances(
+    site_lon: ArrayLike,
+    site_lat: ArrayLike,
+    ruptures: "RuptureSet",
+    *,
+    ref_lon: float | None = None,
+    ref_lat: float | None = None,
+) -> dict[str, FloatArray]:
+    r"""Rrup, Rjb, Rx and Ry0 [km] for every site and rupture.
+
+    Parameters
+    ----------
+    site_lon, site_lat : array_like, shape (n_sites,) [deg]
+        Sites at the ground surface (depth 0).
+    ruptures : RuptureSet
+        Uses ``corners`` (top-start and top-end), ``ztor_km``, ``dip_deg``, ``width_km``.
+    ref_lon, ref_lat : float [deg], optional
+        Centre of the local projection; default the mean position of the sites (see the
+        module notes for the resulting error).
+
+    Returns
+    -------
+    dict of str to ndarray, each of shape (n_sites, n_ruptures) [km]
+        ``rrup_km`` (>= 0), ``rjb_km`` (>= 0), ``rx_km`` (signed, hanging wall positive),
+        ``ry0_km`` (>= 0).
+
+    Notes
+    -----
+    In the rupture's frame, with :math:`a` the site's coordinate along strike from the
+    top-start corner, :math:`p` its horizontal coordinate perpendicular to strike
+    (positive toward the dip direction), :math:`L, W, \delta, z_{tor}` the length, width,
+    dip and depth to top, and :math:`\langle u\rangle_{[0,l]} = \max(u - l, -u, 0)` the
+    distance of :math:`u` outside :math:`[0, l]`:
+
+    .. math::
+
+        R_{y0} = \langle a\rangle_{[0,L]}, \qquad R_x = p, \qquad
+        R_{JB} = \sqrt{R_{y0}^2 + \langle p\rangle_{[0, W\cos\delta]}^2},
+
+        R_{rup} = \sqrt{R_{y0}^2 + \langle p\cos\delta - z_{tor}\sin\delta\rangle_{[0,W]}^2
+                  + (p\sin\delta + z_{tor}\cos\delta)^2},
+
+    the last being the exact distance from a point to a rectangle: the point's
+    coordinates down dip and normal to the plane, the in-plane part clamped to the
+    rectangle. Definitions after Ancheta et al. (2014) and Kaklamanos et al. (2011).
+    Work is done in blocks of whole site rows (about 65 000 pairs each) with three
+    reused work arrays and in-place arithmetic; memory is the four output arrays
+    (4 x 8 bytes per pair: 160 MB for 500 sites x 1e4 ruptures) plus 1.5 MB.
+
+    References
+    ----------
+    Ancheta, T. D. et al. (2014). NGA-West2 database. Earthquake Spectra 30(3),
+    989-1005.
+    Kaklamanos, J., Baise, L. G. & Boore, D. M. (2011). Estimating unknown input
+    parameters when implementing the NGA ground-motion prediction equations in
+    engineering practice. Earthquake Spectra 27(4), 1219-1235.
+    """
+    lon, lat = _sites(site_lon, site_lat)
+    n_sites, n_rup = lon.size, len(ruptures)
+    out = {key: np.empty((n_sites, n_rup), dtype=np.float64) for key in DISTANCE_KEYS}
+    if n_sites == 0 or n_rup == 0:
+        return out
+    rlon, rlat = _reference(lon, lat, ref_lon, ref_lat)
+    sx, sy = aeqd_forward(lon, lat, rlon, rlat)
+    frames = _frames(ruptures, rlon, rlat)
+    block = max(1, _BLOCK_PAIRS // n_rup)
+    work = np.empty((3, min(block, n_sites), n_rup))
+    results = [out[key] for key in DISTANCE_KEYS]
+    for start in range(0, n_sites, block):
+        stop = min(start + block, n_sites)
+        k = stop - start
+        _kernel(sx[start:stop, None], sy[start:stop, None], frames,
+                [r[start:stop] for r in results], work[:, :k])
+    return out
+
+
+def pair_distances(
+    site_lon: ArrayLike,
+    site_lat: ArrayLike,
+    ruptures: "RuptureSet",
+    site_index: ArrayLike,
+    rupture_index: ArrayLike,
+    *,
+    ref_lon: float | None = None,
+    ref_lat: float | None = None,
+) -> dict[str, FloatArray]:
+    """The distances of :func:`rupture_distances` for listed (site, rupture) pairs only.
+
+    Parameters
+    ----------
+    site_lon, site_lat : array_like, shape (n_sites,) [deg]
+    ruptures : RuptureSet
+    site_index, rupture_index : array_like of int, shape (n_pairs,)
+        The pairs, e.g. ``np.nonzero(site_rupture_mask(...))``.
+    ref_lon, ref_lat : float [deg], optional
+        As in :func:`rupture_distances` (default: mean position of all the sites, so that
+        the values equal the dense ones).
+
+    Returns
+    -------
+    dict of str to ndarray, each of shape (n_pairs,) [km]
+    """
+    lon, lat = _sites(site_lon, site_lat)
+    si = np.asarray(site_index, dtype=np.intp).ravel()
+    ri = np.asarray(rupture_index, dtype=np.intp).ravel()
+    if si.shape != ri.shape:
+        raise ValueError(f"site_index and rupture_index must have equal length; got {si.size} and {ri.size}")
+    if si.size and (si.min() < 0 or si.max() >= lon.size or ri.min() < 0 or ri.max() >= len(ruptures)):
+        raise ValueError("site_index or rupture_index out of range")
+    out = {key: np.empty(si.size, dtype=np.float64) for key in DISTANCE_KEYS}
+    if si.size == 0:
+        return out
+    rlon, rlat = _reference(lon, lat, ref_lon, ref_lat)
+    sx, sy = aeqd_forward(lon, lat, rlon, rlat)
+    frames = _frames(ruptures, rlon, rlat)
+    work = np.empty((3, min(_BLOCK_PAIRS, si.size)))
+    results = [out[key] for key in DISTANCE_KEYS]
+    for start in range(0, si.size, _BLOCK_PAIRS):
+        sl = slice(start, start + _BLOCK_PAIRS)
+        k = si[sl].size
+        _kernel(sx[si[sl]], sy[si[sl]], _take(frames, ri[sl]), [r[sl] for r in results], work[:, :k])
+    return out
+
+
+def site_rupture_mask(
+    site_lon: ArrayLike,
+    site_lat: ArrayLike,
+    ruptures: "RuptureSet",
+    max_distance_km: float,
+    *,
+    metric: str = "rjb",
+    exact: bool = False,
+    ref_lon: float | None = None,
+    ref_lat: float | None = None,
+) -> NDArray[np.bool_]:
+    r"""Which (site, rupture) pairs lie within the integration distance.
+
+    Parameters
+    ----------
+    site_lon, site_lat : array_like, shape (n_sites,) [deg]
+    ruptures : RuptureSet
+    max_distance_km : float [km], > 0
+        Integration distance.
+    metric : {"rjb", "rrup"}, optional
+        Distance the cut-off applies to. Default ``"rjb"`` (common practice).
+    exact : bool, optional
+        False (default): the cheap bounding-circle test only, a superset of the pairs
+        within the distance. True: the candidates are then checked with the exact
+        distance (:func:`pair_distances`), giving exactly the pairs with
+        ``metric <= max_distance_km``.
+    ref_lon, ref_lat : float [deg], optional
+        As in :func:`rupture_distances`.
+
+    Returns
+    -------
+    ndarray of bool, shape (n_sites, n_ruptures)
+
+    Notes
+    -----
+    The surface projection of a rupture lies within a circle of radius
+    :math:`r = \tfrac12\sqrt{L^2 + (W\cos\delta)^2}` about its centre, so for a site at
+    horizontal distance :math:`d` from that centre :math:`R_{JB} \ge \max(d - r, 0)`
+    (triangle inequality) and :math:`R_{rup} \ge \sqrt{\max(d-r,0)^2 + z_{tor}^2}`.
+    A pair is dropped only when this lower bound exceeds the cut-off, so no pair within
+    the distance is ever lost. Cost: one subtraction and ``hypot`` per pair.
+    """
+    if metric not in ("rjb", "rrup"):
+        raise ValueError(f"metric must be 'rjb' or 'rrup'; got {metric!r}")
+    try:
+        dmax = float(max_distance_km)
+    except (TypeError, ValueError) as exc:
+        raise ValueError(f"max_distance_km must be a positive number; got {max_distance_km!r}") from exc
+    if not dmax > 0.0:
+        raise ValueError(f"max_distance_km must be > 0; got {max_distance_km!r}")
+    lon, lat = _sites(site_lon, site_lat)
+    n_sites, n_rup = lon.size, len(ruptures)
+    mask = np.zeros((n_sites, n_rup), dtype=bool)
+    if n_sites == 0 or n_rup == 0:
+        return mask
+    rlon, rlat = _reference(lon, lat, ref_lon, ref_lat)
+    sx, sy = aeqd_forward(lon, lat, rlon, rlat)
+    f = _frames(ruptures, rlon, rlat)
+    # centre of the surface projection: mid top edge moved half the horizontal width down dip
+    cx = f.x0 + 0.5 * f.length * f.ux + 0.5 * f.width_h * f.uy
+    cy = f.y0 + 0.5 * f.length * f.uy - 0.5 * f.width_h * f.ux
+    radius = 0.5 * np.hypot(f.length, f.width_h) + 1e-9  # slack for round-off
+    block = max(1, _BLOCK_PAIRS // n_rup)
+    for start in range(0, n_sites, block):
+        stop = min(start + block, n_sites)
+        ex = sx[start:stop, None] - cx
+        ey = sy[start:stop, None] - cy
+        ex *= ex
+        ey *= ey
+        ex += ey
+        bound = np.sqrt(ex, out=ex)
+        bound -= radius
+        np.maximum(bound, 0.0, out=bound)
+        if metric == "rrup":
+            bound *= bound
+            bound += f.ztor * f.ztor
+            np.sqrt(bound, out=bound)
+        mask[start:stop] = bound <= dmax
+    if exact:
+        si, ri = np.nonzero(mask)
+        key = "rjb_km" if metric == "rjb" else "rrup_km"
+        dist = pair_distances(lon, lat, ruptures, si, ri, ref_lon=rlon, ref_lat=rlat)[key]
+        far = dist > dmax
+        mask[si[far], ri[far]] = False
+    return mask
