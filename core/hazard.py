@@ -31,6 +31,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.sparse as sp
 from scipy.special import ndtr
 
 from quakefolio.core.curves import im_at_rate
@@ -45,6 +46,8 @@ __all__ = [
     "disaggregation_from_pairs",
     "disaggregation_summary",
     "uniform_hazard_targets",
+    "compute_site_hazard",
+    "compute_disaggregation",
 ]
 
 
@@ -67,7 +70,8 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     Notes
     -----
     Module notes: :math:`[\Phi(-\varepsilon) - \Phi(-n)]/[1 - 2\Phi(-n)]`, clipped to
-    [0, 1]; a zero sigma gives the step :math:`\mathbf{1}[\ln x < \mu]`.
+    [0, 1]; a zero sigma gives the step :math:`\mathbf{1}[\ln x < \mu]`.  Computed in
+    place on one array of the output's size (this is the hot loop of the engine).
     """
     mu = np.asarray(ln_median, dtype=float)[..., None]
     sd = np.asarray(sigma, dtype=float)[..., None]
@@ -76,16 +80,19 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
         raise ValueError(f"truncation_sigma must be positive or None, got {truncation_sigma!r}")
     if np.any(sd < 0) or np.any(~np.isfinite(sd)):
         raise ValueError("sigma must be finite and non-negative")
+    zero = sd == 0
+    any_zero = bool(zero.any())
     with np.errstate(divide="ignore", invalid="ignore"):
-        eps = (mu - lnx) / sd  # = -epsilon_x
-    p = ndtr(eps)
+        p = np.subtract(mu, lnx)  # -epsilon_x * sigma
+        p *= 1.0 / sd
+    if any_zero:
+        p = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
+    ndtr(p, out=p)
     if truncation_sigma is not None:
         pn = ndtr(-truncation_sigma)
         p -= pn
         p *= 1.0 / (1.0 - 2.0 * pn)
         np.clip(p, 0.0, 1.0, out=p)
-    if np.any(sd == 0):
-        p = np.where(sd == 0, (lnx < mu).astype(float), p)
     return p
 
 
@@ -144,7 +151,8 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
     if n_pairs == 0:
         return out
     seg_end = np.append(starts[1:], n_pairs)
-    # process whole sites per chunk so each segment sum is complete
+    # process whole sites per chunk so each site's sum is complete; the rate-weighted sum
+    # over each site's pairs is one sparse (sites x pairs) product, a single pass in C
     lo = 0
     while lo < len(starts):
         first = starts[lo]
@@ -152,8 +160,11 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
         hi = max(hi, lo + 1)
         last = seg_end[hi - 1]
         p = exceedance_probability(ln_levels, ln_median[first:last], sigma[first:last], truncation_sigma)
-        p *= pair_rate[first:last, None]
-        out[sites_with_pairs[lo:hi]] = np.add.reduceat(p, starts[lo:hi] - first, axis=0)
+        lengths = seg_end[lo:hi] - starts[lo:hi]
+        rows = np.repeat(np.arange(hi - lo), lengths)
+        weights = sp.csr_matrix((pair_rate[first:last], (rows, np.arange(last - first))),
+                                shape=(hi - lo, last - first))
+        out[sites_with_pairs[lo:hi]] = weights @ p
         lo = hi
     return out
 
@@ -302,3 +313,131 @@ def uniform_hazard_targets(levels, curves, return_periods_yr):
     x = im_at_rate(1.0 / np.asarray(return_periods_yr, dtype=float), levels, curves)
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.log(x)
+
+
+# --- engine driver: sources + ground-motion models -> curves --------------------------------
+
+def _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region, z1p0_km=None,
+                 z2p5_km=None):
+    """Surviving (site, rupture) pairs of a block of sites and their GMM input."""
+    from quakefolio.core.geometry import pair_distances, site_rupture_mask
+    from quakefolio.core.gmm import GmmInput
+
+    mask = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb", exact=True,
+                             ref_lon=ref[0], ref_lat=ref[1])
+    site, rup, starts, owners = pair_index(mask)
+    if site.size == 0:
+        return site, rup, starts, owners, None, None
+    d = pair_distances(site_lon, site_lat, ruptures, site, rup, ref_lon=ref[0], ref_lat=ref[1])
+    inp = GmmInput(
+        mag=ruptures.mag[rup], vs30_mps=site_vs30[site], rrup_km=d["rrup_km"], rjb_km=d["rjb_km"],
+        rx_km=d["rx_km"], ry0_km=d["ry0_km"], ztor_km=ruptures.ztor_km[rup], zhyp_km=ruptures.zhyp_km[rup],
+        dip_deg=ruptures.dip_deg[rup], rake_deg=ruptures.rake_deg[rup], width_km=ruptures.width_km[rup],
+        z1p0_km=None if z1p0_km is None else z1p0_km[site], z2p5_km=None if z2p5_km is None else z2p5_km[site],
+        region=region,
+    )
+    return site, rup, starts, owners, inp, d
+
+
+def _site_blocks(n_sites, site_block):
+    for lo in range(0, n_sites, site_block):
+        yield slice(lo, min(n_sites, lo + site_block))
+
+
+def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, levels_g, *, truncation_sigma=None,
+                        max_distance_km=200.0, region="global", site_block=64, ref=None):
+    r"""Hazard curves [1/yr] from a rupture set and ground-motion models.
+
+    Parameters
+    ----------
+    site_lon, site_lat : array_like, shape (n_sites,) [deg]
+    site_vs30 : array_like, shape (n_sites,) [m/s]
+    ruptures : quakefolio.core.ruptures.RuptureSet
+    gmms : sequence of ground-motion models (``quakefolio.core.gmm``)
+        Evaluated on the same pairs (distances are computed once per block).
+    ims : sequence of str
+    levels_g : array_like, shape (n_levels,) [g], strictly increasing
+    truncation_sigma : float or None
+    max_distance_km : float
+        Integration distance on Rjb [km]: pairs beyond it contribute nothing.
+    region : str
+        Region passed to the models.
+    site_block : int
+        Sites per vectorised block (bounds memory to block x ruptures x levels).
+    ref : (lon, lat) or None
+        Reference point of the local projection (default: mean site position), fixed
+        for all blocks so results do not depend on the blocking.
+
+    Returns
+    -------
+    ndarray, shape (n_gmms, n_ims, n_sites, n_levels) [1/yr]
+
+    Notes
+    -----
+    :math:`\lambda(IM > x) = \sum_r \nu_r P(IM > x \mid r)` over ruptures within the
+    integration distance (Cornell 1968, discretised); see :func:`hazard_from_pairs`.
+    """
+    from quakefolio.core.geometry import mean_position
+
+    lon = np.asarray(site_lon, dtype=float)
+    lat = np.asarray(site_lat, dtype=float)
+    vs30 = np.asarray(site_vs30, dtype=float)
+    lnx = np.log(np.asarray(levels_g, dtype=float))
+    if np.any(np.diff(lnx) <= 0):
+        raise ValueError("levels_g must be strictly increasing")
+    ref = ref if ref is not None else mean_position(lon, lat)
+    out = np.zeros((len(gmms), len(ims), len(lon), len(lnx)))
+    for blk in _site_blocks(len(lon), site_block):
+        site, rup, starts, owners, inp, _ = _block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km,
+                                                         ref, region)
+        if inp is None:
+            continue
+        rate = ruptures.rate[rup]
+        n_blk = blk.stop - blk.start
+        for g, gmm in enumerate(gmms):
+            res = gmm.evaluate(inp, list(ims))
+            for i in range(len(ims)):
+                out[g, i, blk] = hazard_from_pairs(lnx, res.ln_median[i], res.sigma[i], rate, starts, owners, n_blk,
+                                                   truncation_sigma)
+    return out
+
+
+def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_weights, ims, ln_targets, bins, *,
+                           truncation_sigma=None, max_distance_km=200.0, region="global", site_block=64, ref=None):
+    r"""Weighted (M, R, epsilon) contributions [1/yr] at target levels per site and IM.
+
+    Parameters
+    ----------
+    ln_targets : ndarray, shape (n_ims, n_sites, n_targets) [ln g]
+        E.g. the uniform-hazard values of the mean curve (NaN skips a target).
+    gmm_weights : sequence of float
+        Weights of ``gmms`` (contributions are summed with these weights).
+    Others as :func:`compute_site_hazard`.
+
+    Returns
+    -------
+    ndarray, shape (n_ims, n_sites, n_targets, n_mag, n_dist, n_eps) [1/yr]
+        Distance is Rrup. See :func:`disaggregation_from_pairs` (Bazzurro & Cornell 1999).
+    """
+    from quakefolio.core.geometry import mean_position
+
+    lon = np.asarray(site_lon, dtype=float)
+    lat = np.asarray(site_lat, dtype=float)
+    vs30 = np.asarray(site_vs30, dtype=float)
+    ref = ref if ref is not None else mean_position(lon, lat)
+    n_t = ln_targets.shape[-1]
+    out = np.zeros((len(ims), len(lon), n_t) + bins.shape)
+    for blk in _site_blocks(len(lon), site_block):
+        site, rup, starts, owners, inp, d = _block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km,
+                                                         ref, region)
+        if inp is None:
+            continue
+        rate = ruptures.rate[rup]
+        n_blk = blk.stop - blk.start
+        for gmm, w in zip(gmms, gmm_weights):
+            res = gmm.evaluate(inp, list(ims))
+            for i in range(len(ims)):
+                out[i, blk] += w * disaggregation_from_pairs(
+                    ln_targets[i, blk], res.ln_median[i], res.sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
+                    bins, n_blk, truncation_sigma)
+    return out

@@ -916,3 +916,20 @@ def area_source_ruptures(
         upper_depth_km=upper_depth_km, lower_depth_km=lower_depth_km,
         min_aspect_ratio=min_aspect_ratio, relation=relation, slip_type=slip_type,
     )
+
+
+def fault_plane_area_km2(trace, dip_deg, upper_depth_km, lower_depth_km):
+    r"""Area [km^2] of the planar fault used by :func:`planar_fault_ruptures`.
+
+    :math:`A = L\,(z_{low} - z_{up})/\sin\delta` with :math:`L` the great-circle length
+    [km] between the first and last trace points (the planar-trace convention of this
+    module) and :math:`\delta` the dip.
+    """
+    from quakefolio.core.geo import great_circle_km
+
+    pts = np.asarray(trace, dtype=float)
+    if pts.ndim != 2 or pts.shape[0] < 2 or pts.shape[1] != 2:
+        raise ValueError(f"trace must be at least two (lon, lat) points, got shape {pts.shape}")
+    length = float(great_circle_km(pts[0, 0], pts[0, 1], pts[-1, 0], pts[-1, 1]))
+    top, bottom = _layer(upper_depth_km, lower_depth_km)
+    return length * (bottom - top) / math.sin(math.radians(_dip("dip_deg", dip_deg)))

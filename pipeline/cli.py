@@ -1,4 +1,4 @@
-"""Command line: ``quakefolio run|check CONFIG``.
+"""Command line: ``quakefolio run|hazard|check CONFIG``.
 
 User errors (bad input files or config) exit with status 2 and one line naming file,
 row and column; no traceback unless ``--debug``.  ``check`` and ``--help`` never start
@@ -31,9 +31,13 @@ def _parser():
     run.add_argument("--quiet", action="store_true", help="print only the run folder")
     run.add_argument("--no-flow", action="store_true",
                      help="run the same stages without Prefect orchestration (no embedded server)")
+    hzd = sub.add_parser("hazard", help="run the hazard stage only (curves, return-period values, disaggregation)")
+    hzd.add_argument("config", help="run config file (quakefolio.toml)")
+    hzd.add_argument("--quiet", action="store_true", help="print only the run folder")
+    hzd.add_argument("--no-flow", action="store_true", help="run without Prefect orchestration")
     chk = sub.add_parser("check", help="validate CONFIG and every input file it names; write nothing")
     chk.add_argument("config", help="run config file (quakefolio.toml)")
-    for sp in (run, chk):
+    for sp in (run, hzd, chk):
         sp.add_argument("--debug", action="store_true", help="show tracebacks on errors")
     return p
 
@@ -53,7 +57,7 @@ def _check(args):
     return 0
 
 
-def _run(args):
+def _run(args, stages_to_run="all"):
     from quakefolio.pipeline.stages import load_inputs
     from quakefolio.pipeline.summary import summary_text
 
@@ -62,12 +66,13 @@ def _run(args):
     if args.no_flow:
         from quakefolio.pipeline.runner import run_pure
 
-        run_dir = run_pure(inputs.config)
+        run_dir = run_pure(inputs, stages_to_run=stages_to_run)
     else:
         configure_prefect()
         from quakefolio.pipeline.flow import run_flow
 
-        run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config["execution"]["max_workers"])
+        run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config["execution"]["max_workers"],
+                           stages_to_run=stages_to_run)
     elapsed = time.perf_counter() - t0
     if args.quiet:
         print(run_dir)
@@ -76,12 +81,16 @@ def _run(args):
     return 0
 
 
+def _hazard(args):
+    return _run(args, stages_to_run="hazard")
+
+
 def main(argv=None):
     args = _parser().parse_args(argv)
     from quakefolio.core.errors import InputError
 
     try:
-        return {"run": _run, "check": _check}[args.command](args)
+        return {"run": _run, "hazard": _hazard, "check": _check}[args.command](args)
     except InputError as exc:
         if args.debug:
             raise

@@ -24,10 +24,6 @@ __all__ = ["Config", "load_config", "SCHEMA", "IM_UNITS_TO_G"]
 IM_UNITS_TO_G = {"g": 1.0, "m/s2": 1.0 / 9.80665, "cm/s2": 1.0 / 980.665}
 
 
-def _req(v):
-    return v
-
-
 class _Key:
     """One config key: expected kind, default (``REQUIRED`` if none) and a check."""
 
@@ -65,6 +61,26 @@ def _probability(v):
     return None if 0 < v < 1 else "expected a probability in (0, 1)"
 
 
+def _non_negative(v):
+    return None if v >= 0 else "expected a non-negative number"
+
+
+def _quantiles(v):
+    if any(not 0 < q < 1 for q in v) or sorted(set(v)) != list(v):
+        return "expected strictly increasing probabilities in (0, 1)"
+    return None
+
+
+def _levels(v):
+    if len(v) < 2 or any(x <= 0 for x in v) or sorted(set(v)) != list(v):
+        return "expected at least 2 strictly increasing positive levels"
+    return None
+
+
+#: Default IM level grid for computed hazard [g]: 40 levels log-spaced from 5e-4 to 4 g.
+DEFAULT_LEVELS_G = [float(f"{5e-4 * (4.0 / 5e-4) ** (i / 39):.6g}") for i in range(40)]
+
+
 SCHEMA = {
     "scenario": {
         "name": _Key(str),
@@ -81,6 +97,17 @@ SCHEMA = {
         "rate_floor": _Key(float, 1e-6, _positive, help="rates below are not reported as design values [1/yr]"),
         "max_site_distance_km": _Key(float, 5.0, _positive),
         "period_interpolation": _Key(bool, True),
+        "source_models": _Key("source_branches", None, help="compute mode: [{file, weight, id}]"),
+        "gmm_branches": _Key("gmm_branches", None, help="compute mode: [{model, weight}]"),
+        "truncation_sigma": _Key("float_or_none", 3.0, help="residual truncation [sigma] or \"none\""),
+        "integration_distance_km": _Key(float, 200.0, _positive),
+        "ims": _Key("ims", [], help="IMs to compute besides those the fragility library needs"),
+        "im_levels_g": _Key("floats", DEFAULT_LEVELS_G, _levels),
+        "fractiles": _Key("floats", [0.16, 0.5, 0.84], _quantiles),
+        "site_spacing_km": _Key(float, 0.0, _non_negative, help="0: a site per unique asset location"),
+        "default_vs30_mps": _Key(float, 760.0, _positive),
+        "region": _Key(str, "global"),
+        "disaggregation": _Key(bool, True),
     },
     "exposure": {
         "file": _Key("path"),
@@ -102,6 +129,7 @@ SCHEMA = {
         "address": _Key(str, ""),
         "max_workers": _Key(int, 2, _positive_int),
         "block_size": _Key(int, 20000, _positive_int, help="(site, class) pairs per task"),
+        "site_block_size": _Key(int, 64, _positive_int, help="hazard sites per task"),
     },
 }
 
@@ -163,6 +191,24 @@ def _coerce(spec, value, path, row, column, base):
         if any(not math.isfinite(v) for v in value):
             fail("expected finite numbers")
         return [float(v) for v in value]
+    if kind == "float_or_none":
+        if value == "none":
+            return None
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0 or not math.isfinite(value):
+            fail(f"expected a positive number or \"none\", got {value!r}")
+        return float(value)
+    if kind == "ims":
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            fail(f"expected a list of IM names, got {value!r}")
+        out = []
+        for v in value:
+            try:
+                out.append(parse_im(v))
+            except ValueError as exc:
+                fail(str(exc))
+        return out
+    if kind in ("source_branches", "gmm_branches"):
+        return _branches(kind, value, fail, base)
     if kind == "path":
         if not isinstance(value, str) or not value.strip():
             fail(f"expected a file path string, got {value!r}")
@@ -171,6 +217,45 @@ def _coerce(spec, value, path, row, column, base):
         p = Path(value)
         return (p if p.is_absolute() else base / p).resolve()
     raise AssertionError(kind)
+
+
+def _branches(kind, value, fail, base):
+    """Logic-tree branches: a list of tables with a weight each; weights sum to 1."""
+    fields = ("file", "weight", "id") if kind == "source_branches" else ("model", "weight")
+    if not isinstance(value, list) or not value or not all(isinstance(v, dict) for v in value):
+        fail(f"expected a list of tables like {{ {fields[0]} = ..., weight = ... }}")
+    out = []
+    for i, entry in enumerate(value):
+        for key in entry:
+            if key not in fields:
+                fail(f"branch {i + 1}: unknown key '{key}'{_suggest(key, fields)}")
+        weight = entry.get("weight")
+        if isinstance(weight, bool) or not isinstance(weight, (int, float)) or not 0 < weight <= 1:
+            fail(f"branch {i + 1}: weight must be a number in (0, 1], got {weight!r}")
+        if kind == "source_branches":
+            file = entry.get("file")
+            if not isinstance(file, str) or not file.strip():
+                fail(f"branch {i + 1}: 'file' must be a path string")
+            p = Path(file)
+            p = (p if p.is_absolute() else base / p).resolve()
+            bid = entry.get("id", p.stem)
+            if not isinstance(bid, str) or not bid:
+                fail(f"branch {i + 1}: 'id' must be a non-empty string")
+            out.append({"file": p, "weight": float(weight), "id": bid})
+        else:
+            from quakefolio.core.gmm import GMM_REGISTRY
+
+            model = entry.get("model")
+            if model not in GMM_REGISTRY:
+                fail(f"branch {i + 1}: unknown ground-motion model {model!r}; valid: {', '.join(GMM_REGISTRY)}")
+            out.append({"model": model, "weight": float(weight), "id": model})
+    total = sum(b["weight"] for b in out)
+    if abs(total - 1.0) > 1e-6:
+        fail(f"branch weights must sum to 1, got {total:.6g}")
+    ids = [b["id"] for b in out]
+    if len(set(ids)) != len(ids):
+        fail(f"branch ids must be unique, got {ids}")
+    return out
 
 
 def load_config(path):
@@ -221,9 +306,10 @@ def load_config(path):
         raise InputError(path, "mode = \"ingest\" needs curves_file", row=locate_toml_line(text, ("hazard",), "mode"),
                          column="hazard.curves_file")
     if hz["mode"] == "compute":
-        raise InputError(path, "mode = \"compute\" (hazard from a source model) is not available in this version; "
-                               "use mode = \"ingest\" with tabulated curves",
-                         row=locate_toml_line(text, ("hazard",), "mode"), column="hazard.mode")
+        for key in ("source_models", "gmm_branches"):
+            if hz[key] is None:
+                raise InputError(path, f"mode = \"compute\" needs {key}", row=locate_toml_line(text, ("hazard",), "mode"),
+                                 column=f"hazard.{key}")
     return Config(path=path, sections=sections, sha256=digest, raw=data)
 
 
@@ -237,8 +323,3 @@ def sha256_file(path, chunk=1 << 20):
                 break
             h.update(b)
     return h.hexdigest()
-
-
-def check_im_name(name):
-    """Canonical IM name or ValueError (re-exported for readers)."""
-    return parse_im(name)

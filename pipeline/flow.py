@@ -1,55 +1,56 @@
-"""The Prefect flow ``portfolio-risk``: thin tasks around the stage functions.
+"""The Prefect flow ``portfolio-risk``: the stages of :func:`quakefolio.pipeline.runner.execute`
+as Prefect tasks.
 
 Import this module only after :func:`quakefolio.pipeline.env.configure_prefect` has
 set Prefect's environment (the CLI does it first thing).  Tasks pass in-memory
 objects between threads of one process and therefore use no cache policy and do not
-persist results (Prefect would pickle large arrays); parameters stay small JSON.
+persist results (Prefect would pickle large arrays); flow parameters stay small JSON.
+The stage sequence is shared with the pure-library path, so both give identical tables.
 """
 from __future__ import annotations
-
-import time
 
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 
 from quakefolio.pipeline import stages
-from quakefolio.pipeline.runner import write_run
+from quakefolio.pipeline.runner import execute
 
-__all__ = ["portfolio_risk", "run_flow"]
+__all__ = ["portfolio_risk", "run_flow", "PrefectExecutor"]
 
 _TASK = dict(cache_policy=NO_CACHE, persist_result=False)
 
 
-@task(name="ingest", **_TASK)
-def ingest_task(config_path: str):
-    return stages.load_inputs(config_path)
+class PrefectExecutor:
+    """Runs each stage function as a Prefect task; ``many`` maps over blocks."""
 
+    def __init__(self):
+        self._tasks = {}
 
-@task(name="damage-and-loss-block", **_TASK)
-def block_task(inputs, block):
-    return stages.compute_block(inputs, block)
+    def _task(self, name, fn):
+        key = (name, fn)
+        if key not in self._tasks:
+            self._tasks[key] = task(fn, name=name, **_TASK)
+        return self._tasks[key]
 
+    def one(self, name, fn, *args):
+        return self._task(name, fn)(*args)
 
-@task(name="store-run", **_TASK)
-def store_task(inputs, results, timings):
-    return str(write_run(inputs, results, timings))
+    def many(self, name, fn, arglist):
+        t = self._task(name, fn)
+        futures = [t.submit(*args) for args in arglist]
+        return [f.result() for f in futures]  # resolve every future: a failure fails the flow
 
 
 @flow(name="portfolio-risk", persist_result=False, log_prints=False)
-def portfolio_risk(config_path: str) -> str:
-    """Ingest -> damage and loss per block of (site, class) pairs -> store."""
-    t0 = time.perf_counter()
-    inputs = ingest_task(config_path)
-    t1 = time.perf_counter()
-    blocks = stages.plan_blocks(inputs)
-    futures = [block_task.submit(inputs, b) for b in blocks]
-    results = [f.result() for f in futures]  # resolve every future: a failure fails the flow
-    t2 = time.perf_counter()
-    return store_task(inputs, results, {"ingest_s": t1 - t0, "damage_loss_s": t2 - t1})
+def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
+    """Ingest -> hazard (compute mode) -> damage and loss per block -> store."""
+    executor = PrefectExecutor()
+    inputs = executor.one("ingest", stages.load_inputs, config_path)
+    return str(execute(inputs, executor, stages_to_run=stages_to_run))
 
 
-def run_flow(config_path, max_workers=2):
+def run_flow(config_path, max_workers=2, stages_to_run="all"):
     """Run the flow embedded with a capped thread pool; returns the run folder."""
     runner = ThreadPoolTaskRunner(max_workers=max_workers)
-    return portfolio_risk.with_options(task_runner=runner)(str(config_path))
+    return portfolio_risk.with_options(task_runner=runner)(str(config_path), stages_to_run)

@@ -12,7 +12,7 @@ from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.store import RunWriter, new_run_id
 from quakefolio.pipeline.tables import TABLES, units_for
 
-__all__ = ["write_run", "run_pure", "inputs_digest", "package_versions"]
+__all__ = ["execute", "SequentialExecutor", "write_run", "run_pure", "inputs_digest", "package_versions"]
 
 _PACKAGES = ("quakefolio", "numpy", "scipy", "pandas", "pyarrow", "prefect")
 
@@ -34,16 +34,71 @@ def inputs_digest(inputs):
     return hashlib.sha256(blob.encode()).hexdigest()
 
 
+class SequentialExecutor:
+    """Runs stage functions in this thread (the pure-library path)."""
+
+    def one(self, name, fn, *args):
+        return fn(*args)
+
+    def many(self, name, fn, arglist):
+        return [fn(*args) for args in arglist]
+
+
+def execute(inputs, executor, *, stages_to_run="all"):
+    """The run, stage by stage; ``executor`` decides how (in this thread or as Prefect tasks).
+
+    Stages: hazard (compute mode: curves per site block, logic-tree statistics,
+    disaggregation per site block) -> damage and loss per block of (site, class) pairs
+    -> store.  With ``stages_to_run="hazard"`` only the hazard tables are written.
+    Returns the run folder.
+    """
+    from quakefolio.pipeline import hazard_stage as hs
+
+    timings = {}
+    cfg = inputs.config
+    model = inputs.hazard_model
+    t = time.perf_counter()
+    if model is not None:
+        blocks = hs.site_blocks(len(inputs.hazard.site_id), cfg["execution"]["site_block_size"])
+        parts = executor.many("hazard-block", hs.hazard_block, [(model, inputs.hazard, b) for b in blocks])
+        executor.one("hazard-statistics", hs.combine_hazard, model, inputs.hazard, blocks, parts)
+        timings["hazard_s"] = time.perf_counter() - t
+        if model.disaggregation:
+            t = time.perf_counter()
+            rps = cfg["hazard"]["return_periods_yr"]
+            parts = executor.many("disaggregation-block", hs.disagg_block,
+                                  [(model, inputs.hazard, rps, b) for b in blocks])
+            executor.one("disaggregation-combine", hs.combine_disaggregation, model, inputs.hazard, blocks, parts)
+            timings["disaggregation_s"] = time.perf_counter() - t
+    results = None
+    if stages_to_run == "all":
+        t = time.perf_counter()
+        results = executor.many("damage-and-loss-block", stages.compute_block,
+                                [(inputs, b) for b in stages.plan_blocks(inputs)])
+        timings["damage_loss_s"] = time.perf_counter() - t
+    return executor.one("store-run", write_run, inputs, results, timings)
+
+
 def write_run(inputs, results, timings):
-    """Assemble every table, write the run folder atomically, return its path."""
+    """Assemble every table, write the run folder atomically, return its path.
+
+    ``results`` None writes the hazard tables only (``quakefolio hazard``).
+    """
     t0 = time.perf_counter()
     cfg = inputs.config
     currency = cfg["scenario"]["currency"]
     frames = {
         "site_hazard": stages.site_hazard_table(inputs),
         "hazard_at_return_periods": stages.hazard_at_return_periods_table(inputs),
-        **stages.build_tables(inputs, results),
     }
+    model = inputs.hazard_model
+    if model is not None and model.disagg is not None:
+        from quakefolio.pipeline.hazard_stage import disaggregation_frames
+
+        frames["disaggregation"], frames["disaggregation_summary"] = disaggregation_frames(
+            model, inputs.hazard, cfg["hazard"]["return_periods_yr"])
+    if results is not None:
+        frames.update(stages.build_tables(inputs, results))
     digest = inputs_digest(inputs)
     output = cfg["output"]["folder"]
     run_id = new_run_id(output, digest)
@@ -61,6 +116,7 @@ def write_run(inputs, results, timings):
             "created_utc": run_id[:16],
             "caution": CAUTION,
             "scenario": cfg["scenario"]["name"],
+            "stages": "hazard" if results is None else "all",
             "inputs": inputs.input_hashes,
             "inputs_sha256": digest,
             "config": cfg.resolved(),
@@ -70,20 +126,24 @@ def write_run(inputs, results, timings):
             "row_counts": dict(writer.row_counts),
             "units": {name: units_for(name, currency) for name in frames},
             "hazard_ims_interpolated": sorted(inputs.hazard.interpolated),
+            "hazard_sites": len(inputs.hazard.site_id),
             "warnings": list(inputs.warnings),
         }
-        writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True) + "\n")
+        if model is not None:
+            manifest["hazard_logic_tree"] = {
+                "source_branches": [{"id": i, "weight": w, "ruptures": len(s.ruptures), "sources": s.sources}
+                                    for i, w, s in model.source_branches],
+                "gmm_branches": [{"id": i, "weight": w} for i, w, _ in model.gmm_branches],
+                "ims": model.ims,
+            }
+        writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
         return writer.commit()
     except BaseException:
         writer.abort()
         raise
 
 
-def run_pure(config_path):
-    """The whole classical path without Prefect (same stage functions, sequential)."""
-    t0 = time.perf_counter()
-    inputs = stages.load_inputs(config_path)
-    t1 = time.perf_counter()
-    results = [stages.compute_block(inputs, b) for b in stages.plan_blocks(inputs)]
-    t2 = time.perf_counter()
-    return write_run(inputs, results, {"ingest_s": t1 - t0, "damage_loss_s": t2 - t1})
+def run_pure(config_path, stages_to_run="all"):
+    """The whole run without Prefect (same stage functions, sequential)."""
+    inputs = config_path if isinstance(config_path, stages.Inputs) else stages.load_inputs(config_path)
+    return execute(inputs, SequentialExecutor(), stages_to_run=stages_to_run)

@@ -36,6 +36,7 @@ class Inputs:
     site_distance_km: np.ndarray
     input_hashes: dict
     warnings: list = field(default_factory=list)
+    hazard_model: object = None  # compute mode: quakefolio.pipeline.hazard_stage.HazardModel
 
 
 @dataclass(frozen=True)
@@ -58,24 +59,46 @@ class BlockResult:
 
 
 def load_inputs(config_or_path):
-    """Read and validate every input of a run; raise InputError at the first problem."""
+    """Read and validate every input of a run; raise InputError at the first problem.
+
+    Ingest mode reads the tabulated curves and maps assets to the nearest site; compute
+    mode reads the source models and builds hazard sites from the exposure (the curves
+    are computed later by :mod:`quakefolio.pipeline.hazard_stage`).
+    """
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
     hz, ex, fr = config["hazard"], config["exposure"], config["fragility"]
     library = load_library(fr["library"])
-    hazard = read_hazard_curves(hz["curves_file"], im_unit=hz["im_unit"], statistic=hz["statistic"])
     exposure = read_exposure(ex["file"], library)
-    site_index, dist = map_assets_to_sites(exposure, hazard, max_distance_km=hz["max_site_distance_km"],
-                                           exposure_path=ex["file"])
+    hashes = {
+        "config": {"path": str(config.path), "sha256": config.sha256},
+        "fragility_library": {"path": str(fr["library"]), "sha256": library.sha256},
+        "exposure": {"path": str(ex["file"]), "sha256": sha256_file(ex["file"])},
+    }
+    model = None
+    if hz["mode"] == "ingest":
+        hazard = read_hazard_curves(hz["curves_file"], im_unit=hz["im_unit"], statistic=hz["statistic"])
+        hashes["hazard_curves"] = {"path": str(hz["curves_file"]), "sha256": sha256_file(hz["curves_file"])}
+        site_index, dist = map_assets_to_sites(exposure, hazard, max_distance_km=hz["max_site_distance_km"],
+                                               exposure_path=ex["file"])
+    else:
+        from quakefolio.pipeline.hazard_stage import prepare_compute
+
+        model, hazard, site_index, dist = prepare_compute(config, exposure, library)
+        for bid, _, src in model.source_branches:
+            hashes[f"source_model:{bid}"] = {"path": src.path, "sha256": src.sha256}
     text = None
     for code in sorted(set(exposure.building_class)):
         dss = library[code]
-        try:
-            levels, _ = curves_for_im(hazard, dss.im, allow_interpolation=hz["period_interpolation"])
-        except UnavailableIM as exc:
-            text = text or open(fr["library"], encoding="utf-8").read()
-            raise InputError(fr["library"], f"class {code!r}: {exc}",
-                             row=locate_toml_line(text, ("classes", code), "im"), column=f"classes.{code}.im") \
-                from None
+        if model is None:
+            try:
+                levels, _ = curves_for_im(hazard, dss.im, allow_interpolation=hz["period_interpolation"])
+            except UnavailableIM as exc:
+                text = text or open(fr["library"], encoding="utf-8").read()
+                raise InputError(fr["library"], f"class {code!r}: {exc}",
+                                 row=locate_toml_line(text, ("classes", code), "im"), column=f"classes.{code}.im") \
+                    from None
+        else:
+            levels = model.levels_g
         if fr["crossing"] == "reject":
             try:
                 dss.check_crossing(float(levels.min()), float(levels.max()))
@@ -85,17 +108,13 @@ def load_inputs(config_or_path):
                 raise InputError(fr["library"], str(exc),
                                  row=locate_toml_line(text, ("classes", code, "states"), "beta", j),
                                  column=f"classes.{code}.states[{j}].beta") from None
-    hashes = {
-        "config": {"path": str(config.path), "sha256": config.sha256},
-        "fragility_library": {"path": str(fr["library"]), "sha256": library.sha256},
-        "hazard_curves": {"path": str(hz["curves_file"]), "sha256": sha256_file(hz["curves_file"])},
-        "exposure": {"path": str(ex["file"]), "sha256": sha256_file(ex["file"])},
-    }
     warnings = []
     if hazard.interpolated:
         warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
                         "(log-log between neighbouring tabulated periods)")
-    return Inputs(config, library, hazard, exposure, site_index, dist, hashes, warnings)
+    inputs = Inputs(config, library, hazard, exposure, site_index, dist, hashes, warnings)
+    inputs.hazard_model = model
+    return inputs
 
 
 def plan_blocks(inputs):
@@ -127,7 +146,11 @@ def compute_block(inputs, block):
 # --- tables -----------------------------------------------------------------------------------
 
 def site_hazard_table(inputs):
-    """Long-form tabulated curves (site_id, im, im_level [g], annual_rate [1/yr], statistic)."""
+    """Long-form curves (site_id, im, im_level [g], annual_rate [1/yr], statistic)."""
+    if inputs.hazard_model is not None:
+        from quakefolio.pipeline.hazard_stage import site_hazard_frame
+
+        return site_hazard_frame(inputs.hazard_model, inputs.hazard)
     frames = []
     hz = inputs.hazard
     stat = inputs.config["hazard"]["statistic"]
@@ -140,27 +163,41 @@ def site_hazard_table(inputs):
 
 
 def hazard_at_return_periods_table(inputs):
-    """Uniform-hazard values per site, IM and return period, with a flag column.
+    """Uniform-hazard values per site, IM, statistic and return period, with a flag column.
 
     ``flag`` is ``ok``, ``below_rate_floor`` (the rate 1/T is below the configured floor:
     not reported as a design value) or ``outside_range`` (not within the tabulated rates).
     """
-    hz = inputs.hazard
     cfg = inputs.config["hazard"]
     rps = np.asarray(cfg["return_periods_yr"])
     target = 1.0 / rps
     frames = []
-    for im in sorted(set(hz.curves) - hz.interpolated):
-        x, lam = hz.curves[im]
+    for stat, im, x, lam in _curve_sets(inputs):
         vals = im_at_rate(target, x, lam)  # (m, n_rp)
         flag = np.where(np.isnan(vals), "outside_range", "ok")
         floor = np.broadcast_to(target < cfg["rate_floor"], vals.shape)
         flag = np.where(floor, "below_rate_floor", flag)
         vals = np.where(floor, np.nan, vals)
-        frames.append(pd.DataFrame({"site_id": np.repeat(hz.site_id, len(rps)), "im": im,
-                                    "return_period_yr": np.tile(rps, len(hz.site_id)), "im_level": vals.ravel(),
-                                    "flag": flag.ravel()}))
+        frames.append(pd.DataFrame({"site_id": np.repeat(inputs.hazard.site_id, len(rps)), "im": im,
+                                    "statistic": stat, "return_period_yr": np.tile(rps, len(inputs.hazard.site_id)),
+                                    "im_level": vals.ravel(), "flag": flag.ravel()}))
     return pd.concat(frames, ignore_index=True)
+
+
+def _curve_sets(inputs):
+    """(statistic, im, levels, rates) for every stored curve set."""
+    model = inputs.hazard_model
+    if model is None:
+        hz = inputs.hazard
+        stat = inputs.config["hazard"]["statistic"]
+        for im in sorted(set(hz.curves) - hz.interpolated):
+            yield (stat, im) + tuple(hz.curves[im])
+        return
+    n_sites = len(inputs.hazard.site_id)
+    levels = np.broadcast_to(model.levels_g, (n_sites, len(model.levels_g)))
+    for stat, arr in model.statistics.items():
+        for i, im in enumerate(model.ims):
+            yield stat, im, levels, arr[i]
 
 
 def build_tables(inputs, results):
@@ -181,7 +218,6 @@ def build_tables(inputs, results):
     eal_ratio = np.empty(n_assets)
     collapse_rate = np.empty(n_assets)
     max_tail = np.empty(n_assets)
-    order = []
     for code in sorted(by_class):
         parts = sorted(by_class[code], key=lambda r: r.block.block_id)
         sites = np.concatenate([p.block.sites for p in parts])
@@ -213,9 +249,7 @@ def build_tables(inputs, results):
         eal_ratio[assets] = eal_r[pair]
         collapse_rate[assets] = rate[:, dss.collapse_index]
         max_tail[assets] = np.maximum(below[pair], above[pair]).max(axis=-1)
-        value = ex.replacement_value.to_numpy()[assets]
-        curve_parts.append((assets, curve[pair] ))
-        order.append(assets)
+        curve_parts.append((assets, curve[pair]))
     asset_damage = pd.concat(damage_frames, ignore_index=True)
     # stable, user-facing order: exposure order
     pos = pd.Series(np.arange(n_assets), index=ex.asset_id.to_numpy())

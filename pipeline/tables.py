@@ -10,6 +10,18 @@ TABLES = {
                     "rate lies outside the tabulated curve or below the rate floor.",
         units={"return_period_yr": "yr", "im_level": "g"},
     ),
+    "disaggregation": dict(
+        description="Share of the mean-hazard exceedance rate at each return-period level by magnitude, "
+                    "distance (Rrup) and epsilon bin (shares above 1e-6 listed; all shares sum to 1 per site, "
+                    "IM and return period).",
+        units={"return_period_yr": "yr", "im_level": "g", "mag_lo": "Mw", "mag_hi": "Mw", "dist_lo_km": "km",
+               "dist_hi_km": "km", "eps_lo": "-", "eps_hi": "-", "share": "-"},
+    ),
+    "disaggregation_summary": dict(
+        description="Mean and modal magnitude, distance (Rrup) and epsilon of the disaggregation.",
+        units={"return_period_yr": "yr", "im_level": "g", "mean_mag": "Mw", "mean_dist_km": "km", "mean_eps": "-",
+               "mode_mag": "Mw", "mode_dist_km": "km", "mode_eps": "-"},
+    ),
     "asset_damage": dict(
         description="Per asset and damage state: annual rate of reaching or exceeding the state and its "
                     "probability in the horizon (Poisson); extrapolated tail shares as diagnostics.",

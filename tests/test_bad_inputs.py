@@ -88,7 +88,7 @@ EXPECTED = {
     "config_unknown_key": ("quakefolio.toml", 5, "scenario.horizon_yrs", r"unknown key; did you mean 'horizon_yr'"),
     "config_wrong_type": ("quakefolio.toml", 5, "scenario.horizon_yr", r"expected a finite number, got 'fifty'"),
     "config_missing_required": ("quakefolio.toml", 2, "scenario.name", r"missing required key 'name'"),
-    "config_mode_compute": ("quakefolio.toml", 8, "hazard.mode", r'mode = "compute" .*not available'),
+    "config_mode_compute": ("quakefolio.toml", 8, "hazard.source_models", r'mode = "compute" needs source_models'),
     "config_bad_choice": ("quakefolio.toml", 21, "execution.backend", r"got 'spark'"),
     "config_toml_syntax": ("quakefolio.toml", 11, None, r"TOML syntax error: Expected '\]'"),
 }

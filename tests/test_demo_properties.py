@@ -11,7 +11,7 @@ from quakefolio.pipeline.ingest import curves_for_im
 
 from conftest import DEMO
 
-INPUTS = stages.load_inputs(DEMO / "quakefolio.toml")
+INPUTS = stages.load_inputs(DEMO / "quakefolio_tabulated.toml")
 CLASSES = sorted(INPUTS.library.classes)
 
 

@@ -1,0 +1,244 @@
+"""Hazard stage in compute mode: sites from the exposure, source-model and ground-motion
+logic tree, curves per block of sites, weighted mean and fractiles, disaggregation.
+
+Numerics live in :mod:`quakefolio.core.hazard`; this module prepares inputs, cuts work
+into site blocks (the unit of a flow task) and lays results out as tables.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from quakefolio.core.curves import im_at_rate
+from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.geometry import aeqd_forward, aeqd_inverse, mean_position
+from quakefolio.core.gmm import get_gmm
+from quakefolio.core.hazard import (
+    DisaggBins, compute_disaggregation, compute_site_hazard, disaggregation_summary, weighted_fractiles,
+    weighted_mean,
+)
+from quakefolio.core.ims import im_period
+from quakefolio.pipeline.ingest import HazardCurves
+from quakefolio.pipeline.sources_io import load_source_model
+
+__all__ = ["HazardModel", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "disagg_block",
+           "combine_disaggregation", "statistic_name"]
+
+
+def statistic_name(q):
+    """Column label of a fractile: 0.16 -> 'p16', 0.025 -> 'p2.5'."""
+    return f"p{100 * q:g}"
+
+
+@dataclass
+class HazardModel:
+    """Everything the compute-mode hazard stage needs, validated."""
+
+    source_branches: list  # [(id, weight, SourceModel)]
+    gmm_branches: list  # [(id, weight, model)]
+    ims: list
+    levels_g: np.ndarray
+    truncation_sigma: float | None
+    max_distance_km: float
+    region: str
+    fractiles: list
+    disaggregation: bool
+    site_vs30: np.ndarray
+    ref: tuple
+    branch_curves: np.ndarray | None = None  # (n_src, n_gmm, n_im, n_sites, n_lev)
+    statistics: dict = field(default_factory=dict)  # name -> (n_im, n_sites, n_lev)
+    disagg: np.ndarray | None = None
+    bins: DisaggBins = field(default_factory=DisaggBins.default)
+
+
+def build_sites(exposure, spacing_km, default_vs30):
+    """Hazard sites from asset locations.
+
+    With ``spacing_km = 0`` every unique (location, Vs30) of the exposure is a site.
+    With ``spacing_km > 0`` asset positions are snapped to the nodes of a square grid of
+    that spacing in a local azimuthal-equidistant projection about the portfolio's mean
+    position; the assets of one node share a site whose Vs30 is the geometric mean of
+    theirs (common practice for gridded portfolio hazard: one site condition per cell).
+    Assets without ``vs30_mps`` use ``default_vs30``.
+
+    Returns site ids, lon, lat, vs30 [m/s], each asset's site index and its distance to
+    the site [km], and the projection reference point.
+    """
+    lon = exposure.lon.to_numpy()
+    lat = exposure.lat.to_numpy()
+    vs30 = exposure.vs30_mps.to_numpy(dtype=float)
+    vs30 = np.where(np.isnan(vs30), default_vs30, vs30)
+    ref = mean_position(lon, lat)
+    if spacing_km > 0:
+        x, y = aeqd_forward(lon, lat, *ref)
+        gx, gy = np.round(x / spacing_km) * spacing_km, np.round(y / spacing_km) * spacing_km
+        slon, slat = aeqd_inverse(gx, gy, *ref)
+        dist = np.sqrt((x - gx) ** 2 + (y - gy) ** 2)
+        key = pd.DataFrame({"lat": np.round(slat, 7), "lon": np.round(slon, 7), "ln_vs30": np.log(vs30)})
+        uniq = key.groupby(["lat", "lon"], sort=True, as_index=False)["ln_vs30"].mean()
+        uniq["vs30"] = np.exp(uniq.pop("ln_vs30"))
+        cols = ["lat", "lon"]
+    else:
+        dist = np.zeros(len(lon))
+        key = pd.DataFrame({"lat": np.round(lat, 7), "lon": np.round(lon, 7), "vs30": vs30})
+        uniq = key.drop_duplicates().sort_values(["lat", "lon", "vs30"], kind="stable").reset_index(drop=True)
+        cols = ["lat", "lon", "vs30"]
+    uniq["site"] = np.arange(len(uniq))
+    site_index = key[cols].merge(uniq[cols + ["site"]], on=cols, how="left")["site"].to_numpy()
+    width = max(4, len(str(len(uniq))))
+    ids = np.array([f"H{i + 1:0{width}d}" for i in range(len(uniq))])
+    return ids, uniq.lon.to_numpy(), uniq.lat.to_numpy(), uniq.vs30.to_numpy(), site_index, dist, ref
+
+
+def prepare_compute(config, exposure, library):
+    """Validate the compute-mode inputs and build the sites (no hazard computed yet).
+
+    Returns ``(HazardModel, HazardCurves with empty curves, site_index, site_distance_km)``.
+    """
+    hz = config["hazard"]
+    sources = []
+    for branch in hz["source_models"]:
+        sources.append((branch["id"], branch["weight"], load_source_model(branch["file"])))
+    gmms = [(b["id"], b["weight"], get_gmm(b["model"])) for b in hz["gmm_branches"]]
+    used = sorted(set(exposure.building_class))
+    needed = {library[c].im for c in used}
+    ims = sorted(set(hz["ims"]) | needed, key=im_period)
+    text = None
+    for code in used:
+        im = library[code].im
+        for gid, _, gmm in gmms:
+            if im not in gmm.supported_ims and not _period_ok(gmm, im):
+                text = text or open(config["fragility"]["library"], encoding="utf-8").read()
+                lo, hi = gmm.period_range_s
+                raise InputError(config["fragility"]["library"],
+                                 f"class {code!r}: {im} is outside the periods of ground-motion model {gid} "
+                                 f"({lo:g}-{hi:g} s)", row=locate_toml_line(text, ("classes", code), "im"),
+                                 column=f"classes.{code}.im")
+    ids, lon, lat, vs30, site_index, dist, ref = build_sites(exposure, hz["site_spacing_km"], hz["default_vs30_mps"])
+    model = HazardModel(sources, gmms, ims, np.asarray(hz["im_levels_g"], dtype=float), hz["truncation_sigma"],
+                        hz["integration_distance_km"], hz["region"], list(hz["fractiles"]), hz["disaggregation"],
+                        vs30, ref)
+    hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=set())
+    return model, hazard, site_index, dist
+
+
+def _period_ok(gmm, im):
+    if im == "PGA":
+        return "PGA" in gmm.supported_ims
+    lo, hi = gmm.period_range_s
+    return lo <= im_period(im) <= hi
+
+
+def site_blocks(n_sites, size):
+    """Site slices of at most ``size`` sites (the unit of a hazard task)."""
+    return [(lo, min(n_sites, lo + size)) for lo in range(0, n_sites, size)]
+
+
+def hazard_block(model, hazard, block):
+    """Curves of every (source branch, GMM branch) for one block of sites.
+
+    Returns ndarray (n_src, n_gmm, n_im, n_block_sites, n_levels) [1/yr].
+    """
+    lo, hi = block
+    out = []
+    for _, _, src in model.source_branches:
+        out.append(compute_site_hazard(hazard.lon[lo:hi], hazard.lat[lo:hi], model.site_vs30[lo:hi], src.ruptures,
+                                       [g for _, _, g in model.gmm_branches], model.ims, model.levels_g,
+                                       truncation_sigma=model.truncation_sigma,
+                                       max_distance_km=model.max_distance_km, region=model.region,
+                                       site_block=hi - lo, ref=model.ref))
+    return np.stack(out)
+
+
+def _branch_weights(model):
+    ws = np.array([w for _, w, _ in model.source_branches])
+    wg = np.array([w for _, w, _ in model.gmm_branches])
+    return (ws[:, None] * wg[None, :]).ravel()
+
+
+def combine_hazard(model, hazard, blocks, parts):
+    """Assemble block results, compute the weighted mean and fractiles; the mean feeds risk."""
+    n_sites = len(hazard.site_id)
+    first = parts[0]
+    curves = np.zeros(first.shape[:3] + (n_sites, first.shape[-1]))
+    for (lo, hi), part in zip(blocks, parts):
+        curves[:, :, :, lo:hi] = part
+    model.branch_curves = curves
+    flat = curves.reshape((-1,) + curves.shape[2:])
+    w = _branch_weights(model)
+    model.statistics = {"mean": weighted_mean(flat, w)}
+    if len(w) > 1:
+        for q, arr in zip(model.fractiles, weighted_fractiles(flat, w, model.fractiles)):
+            model.statistics[statistic_name(q)] = arr
+    levels = np.broadcast_to(model.levels_g, (n_sites, len(model.levels_g)))
+    for i, im in enumerate(model.ims):
+        hazard.curves[im] = (np.array(levels), model.statistics["mean"][i])
+
+
+def disagg_block(model, hazard, return_periods, block):
+    """Weighted (M, R, epsilon) contributions at the mean curve's return-period levels."""
+    lo, hi = block
+    mean = model.statistics["mean"][:, lo:hi]  # (n_im, n_blk, n_lev)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        targets = np.log(im_at_rate(1.0 / np.asarray(return_periods), model.levels_g, mean))
+    total = None
+    for _, ws, src in model.source_branches:
+        contrib = compute_disaggregation(
+            hazard.lon[lo:hi], hazard.lat[lo:hi], model.site_vs30[lo:hi], src.ruptures,
+            [g for _, _, g in model.gmm_branches], [ws * wg for _, wg, _ in model.gmm_branches], model.ims, targets,
+            model.bins, truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km,
+            region=model.region, site_block=hi - lo, ref=model.ref)
+        total = contrib if total is None else total + contrib
+    return total
+
+
+def combine_disaggregation(model, hazard, blocks, parts):
+    n_sites = len(hazard.site_id)
+    out = np.zeros((parts[0].shape[0], n_sites) + parts[0].shape[2:])
+    for (lo, hi), part in zip(blocks, parts):
+        out[:, lo:hi] = part
+    model.disagg = out
+
+
+# --- tables -----------------------------------------------------------------------------------
+
+def site_hazard_frame(model, hazard):
+    """Long-form curves for every statistic (mean and fractiles)."""
+    frames = []
+    n_sites, n_lev = len(hazard.site_id), len(model.levels_g)
+    for stat, arr in model.statistics.items():
+        for i, im in enumerate(model.ims):
+            frames.append(pd.DataFrame({"site_id": np.repeat(hazard.site_id, n_lev), "im": im,
+                                        "im_level": np.tile(model.levels_g, n_sites), "annual_rate": arr[i].ravel(),
+                                        "statistic": stat}))
+    return pd.concat(frames, ignore_index=True)
+
+
+def disaggregation_frames(model, hazard, return_periods, min_share=1e-6):
+    """``disaggregation`` (non-negligible bin shares) and ``disaggregation_summary`` tables."""
+    rps = np.asarray(return_periods, dtype=float)
+    shares, mm, mr, me, om, orr, oe = disaggregation_summary(model.disagg, model.bins)
+    n_im, n_sites, n_t = shares.shape[:3]
+    targets = im_at_rate(1.0 / rps, model.levels_g, model.statistics["mean"])  # (n_im, n_sites, n_t)
+    idx = np.nonzero(shares > min_share)
+    b = model.bins
+    detail = pd.DataFrame({
+        "site_id": hazard.site_id[idx[1]],
+        "im": np.array(model.ims, dtype=object)[idx[0]],
+        "return_period_yr": rps[idx[2]],
+        "im_level": targets[idx[0], idx[1], idx[2]],
+        "mag_lo": b.mag_edges[idx[3]], "mag_hi": b.mag_edges[idx[3] + 1],
+        "dist_lo_km": b.dist_edges[idx[4]], "dist_hi_km": b.dist_edges[idx[4] + 1],
+        "eps_lo": b.eps_edges[idx[5]], "eps_hi": b.eps_edges[idx[5] + 1],
+        "share": shares[idx],
+    })
+    grid = np.meshgrid(np.arange(n_im), np.arange(n_sites), np.arange(n_t), indexing="ij")
+    gi, gs, gt = (g.ravel() for g in grid)
+    summary = pd.DataFrame({
+        "site_id": hazard.site_id[gs], "im": np.array(model.ims, dtype=object)[gi], "return_period_yr": rps[gt],
+        "im_level": targets.ravel(), "mean_mag": mm.ravel(), "mean_dist_km": mr.ravel(), "mean_eps": me.ravel(),
+        "mode_mag": om.ravel(), "mode_dist_km": orr.ravel(), "mode_eps": oe.ravel(),
+    })
+    return detail, summary

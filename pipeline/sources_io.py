@@ -1,0 +1,261 @@
+"""Source-model files (TOML, our own layout) to a :class:`~quakefolio.core.ruptures.RuptureSet`.
+
+Layout::
+
+    format = "quakefolio-sources-1"
+    name = "..."                         # optional
+
+    [settings]                           # optional, defaults shown
+    shear_modulus_pa = 3.0e10            # for slip-rate moment balance
+    moment_constant = 9.05               # log10 M0 [N m] = 1.5 Mw + c (Hanks & Kanamori 1979)
+    rupture_step_km = 2.0                # floating step of fault ruptures
+    min_aspect_ratio = 1.0               # rupture length / width lower bound
+
+    [[faults]]
+    id = "north_fault"
+    trace = [[lon, lat], [lon, lat]]     # planar: first to last point, dipping to the right
+    dip_deg = 60.0
+    rake_deg = 90.0
+    upper_depth_km = 0.0
+    lower_depth_km = 15.0
+    mfd = { kind = "truncated_gr", b_value = 1.0, min_mag = 5.0, max_mag = 7.0, bin_width = 0.1,
+            rate_above_min = 0.02 }      # or a_value = ..., or slip_rate_mm_per_yr = ...
+
+    [[areas]]
+    id = "zone_a"
+    polygon = [[lon, lat], ...]
+    spacing_km = 10.0
+    upper_depth_km = 0.0
+    lower_depth_km = 20.0
+    hypo_depths = [[8.0, 0.5], [12.0, 0.5]]              # (depth km, weight)
+    mechanisms = [[0.0, 90.0, 0.0, 1.0]]                 # (strike, dip, rake deg, weight)
+    mfd = { kind = "truncated_gr", ... }
+
+    [[points]]                           # as areas, with lon and lat instead of polygon
+
+MFD kinds: ``truncated_gr`` (b_value, min_mag, max_mag, bin_width, one of
+rate_above_min / a_value / slip_rate_mm_per_yr), ``characteristic`` (b_value, min_mag,
+char_mag, bin_width, one of total_rate / slip_rate_mm_per_yr), ``single`` (mag, one of
+rate / slip_rate_mm_per_yr).  Slip rates are moment-balanced on faults only.
+"""
+from __future__ import annotations
+
+import difflib
+import math
+
+from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.mfd import (
+    characteristic_yc85, moment_balanced, moment_rate_from_slip, single_magnitude, truncated_gr,
+)
+from quakefolio.core.ruptures import (
+    RuptureSet, area_source_ruptures, fault_plane_area_km2, planar_fault_ruptures, point_source_ruptures,
+)
+from quakefolio.fragility.library import read_toml
+
+__all__ = ["SourceModel", "load_source_model", "FORMAT_TAG"]
+
+FORMAT_TAG = "quakefolio-sources-1"
+_TOP = ("format", "name", "settings", "faults", "areas", "points")
+_SETTINGS = {"shear_modulus_pa": 3.0e10, "moment_constant": 9.05, "rupture_step_km": 2.0, "min_aspect_ratio": 1.0}
+_COMMON = ("id", "upper_depth_km", "lower_depth_km", "mfd")
+_KEYS = {
+    "faults": _COMMON + ("trace", "dip_deg", "rake_deg"),
+    "areas": _COMMON + ("polygon", "spacing_km", "hypo_depths", "mechanisms"),
+    "points": _COMMON + ("lon", "lat", "hypo_depths", "mechanisms"),
+}
+_MFD_KEYS = {
+    "truncated_gr": ("kind", "b_value", "min_mag", "max_mag", "bin_width", "rate_above_min", "a_value",
+                     "slip_rate_mm_per_yr"),
+    "characteristic": ("kind", "b_value", "min_mag", "char_mag", "bin_width", "total_rate", "slip_rate_mm_per_yr"),
+    "single": ("kind", "mag", "rate", "slip_rate_mm_per_yr"),
+}
+
+
+class SourceModel:
+    """A parsed source model: its ruptures, per-source summary and provenance."""
+
+    def __init__(self, path, name, ruptures, sources, sha256):
+        self.path, self.name, self.ruptures, self.sources, self.sha256 = path, name, ruptures, sources, sha256
+
+
+def _suggest(key, valid):
+    close = difflib.get_close_matches(key, list(valid), n=1, cutoff=0.6)
+    return f"; did you mean '{close[0]}'?" if close else f"; valid keys: {', '.join(valid)}"
+
+
+def load_source_model(path):
+    """Read and validate a source-model file; every problem is an InputError with its line."""
+    text, data, digest = read_toml(path)
+    path = str(path)
+
+    def fail(msg, table=(), key=None, occurrence=0, column=None):
+        raise InputError(path, msg, row=locate_toml_line(text, table, key, occurrence), column=column)
+
+    for key in data:
+        if key not in _TOP:
+            fail(f"unknown key{_suggest(key, _TOP)}", (), key, column=key)
+    if data.get("format") != FORMAT_TAG:
+        fail(f"expected format = \"{FORMAT_TAG}\", got {data.get('format')!r}", (), "format", column="format")
+    settings = dict(_SETTINGS)
+    for key, value in data.get("settings", {}).items():
+        if key not in _SETTINGS:
+            fail(f"unknown key{_suggest(key, _SETTINGS)}", ("settings",), key, column=f"settings.{key}")
+        settings[key] = _num(value, lambda m: fail(m, ("settings",), key, column=f"settings.{key}"), positive=True)
+    if not 9.0 <= settings["moment_constant"] <= 9.2:
+        fail("moment_constant must be 9.05 (Hanks & Kanamori 1979) or 9.1", ("settings",), "moment_constant",
+             column="settings.moment_constant")
+    sets, summary, seen = [], [], set()
+    for kind in ("faults", "areas", "points"):
+        entries = data.get(kind, [])
+        if not isinstance(entries, list):
+            fail(f"'{kind}' must be an array of tables ([[{kind}]])", (), kind, column=kind)
+        for i, src in enumerate(entries):
+            col = f"{kind}[{i}]"
+
+            def where(key=None, msg="", _i=i, _kind=kind, _col=col):
+                fail(msg, (_kind,), key, _i, column=f"{_col}.{key}" if key else _col)
+
+            if not isinstance(src, dict):
+                where(None, "expected a table")
+            for key in src:
+                if key not in _KEYS[kind]:
+                    where(key, f"unknown key{_suggest(key, _KEYS[kind])}")
+            for key in _KEYS[kind]:
+                if key not in src:
+                    where(None, f"missing required key '{key}'")
+            sid = src["id"]
+            if not isinstance(sid, str) or not sid.strip() or sid in seen:
+                where("id", f"source id must be a unique non-empty string, got {sid!r}")
+            seen.add(sid)
+            try:
+                rs, info = _build(kind, src, settings)
+            except _FieldError as exc:
+                where(exc.key, exc.msg)
+            except ValueError as exc:
+                where(None, f"source {sid!r}: {exc}")
+            sets.append(rs)
+            summary.append({"source_id": sid, "kind": kind[:-1], **info, "n_ruptures": len(rs),
+                            "total_rate": float(rs.rate.sum())})
+    if not sets:
+        fail("the source model defines no source ([[faults]], [[areas]] or [[points]])")
+    return SourceModel(path, str(data.get("name", "")), RuptureSet.concat(sets), summary, digest)
+
+
+class _FieldError(Exception):
+    def __init__(self, key, msg):
+        self.key, self.msg = key, msg
+
+
+def _num(value, fail, *, positive=False, non_negative=False):
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        fail(f"expected a finite number, got {value!r}")
+    if positive and value <= 0:
+        fail(f"expected a positive number, got {value!r}")
+    if non_negative and value < 0:
+        fail(f"expected a non-negative number, got {value!r}")
+    return float(value)
+
+
+def _field(src, key, **kw):
+    def fail(msg):
+        raise _FieldError(key, msg)
+
+    return _num(src[key], fail, **kw)
+
+
+def _pairs(src, key, width):
+    value = src[key]
+    ok = isinstance(value, list) and value and all(
+        isinstance(row, list) and len(row) == width and all(
+            not isinstance(v, bool) and isinstance(v, (int, float)) and math.isfinite(v) for v in row)
+        for row in value)
+    if not ok:
+        raise _FieldError(key, f"expected a list of [{', '.join(['number'] * width)}] entries")
+    return [tuple(float(v) for v in row) for row in value]
+
+
+def _mfd(src, settings, area_km2):
+    spec = src["mfd"]
+    if not isinstance(spec, dict):
+        raise _FieldError("mfd", "expected an inline table, e.g. { kind = \"truncated_gr\", ... }")
+    kind = spec.get("kind")
+    if kind not in _MFD_KEYS:
+        raise _FieldError("mfd", f"mfd kind must be one of {', '.join(_MFD_KEYS)}, got {kind!r}")
+    for key in spec:
+        if key not in _MFD_KEYS[kind]:
+            raise _FieldError("mfd", f"unknown mfd key '{key}' for kind '{kind}'{_suggest(key, _MFD_KEYS[kind])}")
+
+    def num(key, **kw):
+        if key not in spec:
+            raise _FieldError("mfd", f"mfd of kind '{kind}' needs '{key}'")
+
+        def fail(msg):
+            raise _FieldError("mfd", f"{key}: {msg}")
+
+        return _num(spec[key], fail, **kw)
+
+    rate_keys = {"truncated_gr": ("rate_above_min", "a_value", "slip_rate_mm_per_yr"),
+                 "characteristic": ("total_rate", "slip_rate_mm_per_yr"),
+                 "single": ("rate", "slip_rate_mm_per_yr")}[kind]
+    given = [k for k in rate_keys if k in spec]
+    if len(given) != 1:
+        raise _FieldError("mfd", f"mfd of kind '{kind}' needs exactly one of {', '.join(rate_keys)}")
+    slip = "slip_rate_mm_per_yr" in spec
+    if slip and area_km2 is None:
+        raise _FieldError("mfd", "slip_rate_mm_per_yr (moment balance) is only available for faults")
+    mc = settings["moment_constant"]
+    if kind == "truncated_gr":
+        kw = dict(b_value=num("b_value", positive=True), mmin=num("min_mag"), mmax=num("max_mag"),
+                  bin_width=num("bin_width", positive=True) if "bin_width" in spec else 0.1)
+        if slip:
+            bins = truncated_gr(rate_above_mmin=1.0, **kw)
+        elif "a_value" in spec:
+            bins = truncated_gr(a_value=num("a_value"), **kw)
+        else:
+            bins = truncated_gr(rate_above_mmin=num("rate_above_min", non_negative=True), **kw)
+    elif kind == "characteristic":
+        kw = dict(b_value=num("b_value", positive=True), mmin=num("min_mag"), mchar=num("char_mag"),
+                  bin_width=num("bin_width", positive=True) if "bin_width" in spec else 0.05, moment_constant=mc)
+        bins = characteristic_yc85(total_rate=1.0 if slip else num("total_rate", non_negative=True), **kw)
+    else:
+        bins = single_magnitude(num("mag"), 1.0 if slip else num("rate", non_negative=True))
+    info = {}
+    if slip:
+        moment_rate = moment_rate_from_slip(num("slip_rate_mm_per_yr", non_negative=True), area_km2,
+                                            settings["shear_modulus_pa"])
+        bins = moment_balanced(bins, moment_rate, moment_constant=mc)
+        info = {"moment_rate_nm_per_yr": moment_rate, "fault_area_km2": area_km2}
+    return bins, info
+
+
+def _build(kind, src, settings):
+    upper = _field(src, "upper_depth_km", non_negative=True)
+    lower = _field(src, "lower_depth_km", positive=True)
+    if not lower > upper:
+        raise _FieldError("lower_depth_km", f"lower_depth_km ({lower:g}) must exceed upper_depth_km ({upper:g})")
+    common = dict(upper_depth_km=upper, lower_depth_km=lower, min_aspect_ratio=settings["min_aspect_ratio"])
+    if kind == "faults":
+        trace = _pairs(src, "trace", 2)
+        if len(trace) < 2:
+            raise _FieldError("trace", "a fault trace needs at least two [lon, lat] points")
+        dip = _field(src, "dip_deg", positive=True)
+        if dip > 90:
+            raise _FieldError("dip_deg", f"dip must lie in (0, 90], got {dip:g}")
+        area = fault_plane_area_km2(trace, dip, upper, lower)
+        bins, info = _mfd(src, settings, area)
+        rs = planar_fault_ruptures(src["id"], trace, dip_deg=dip, rake_deg=_field(src, "rake_deg"), mfd=bins,
+                                   rupture_step_km=settings["rupture_step_km"], **common)
+        return rs, info
+    bins, info = _mfd(src, settings, None)
+    depths = _pairs(src, "hypo_depths", 2)
+    mechs = _pairs(src, "mechanisms", 4)
+    if kind == "areas":
+        polygon = _pairs(src, "polygon", 2)
+        if len(polygon) < 3:
+            raise _FieldError("polygon", "an area polygon needs at least three [lon, lat] vertices")
+        rs = area_source_ruptures(src["id"], polygon, spacing_km=_field(src, "spacing_km", positive=True), mfd=bins,
+                                  hypo_depths=depths, mechanisms=mechs, **common)
+    else:
+        rs = point_source_ruptures(src["id"], _field(src, "lon"), _field(src, "lat"), mfd=bins, hypo_depths=depths,
+                                   mechanisms=mechs, **common)
+    return rs, info
