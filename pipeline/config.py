@@ -108,6 +108,7 @@ SCHEMA = {
         "default_vs30_mps": _Key(float, 760.0, _positive),
         "region": _Key(str, "global"),
         "disaggregation": _Key(bool, True),
+        "propagate_branches": _Key(bool, False, help="also give damage and EAL fractiles over branches"),
     },
     "exposure": {
         "file": _Key("path"),

@@ -152,7 +152,8 @@ def hazard_block(model, hazard, block):
     return np.stack(out)
 
 
-def _branch_weights(model):
+def branch_weights(model):
+    """Weight of each (source branch, GMM branch) pair, source-major [-]."""
     ws = np.array([w for _, w, _ in model.source_branches])
     wg = np.array([w for _, w, _ in model.gmm_branches])
     return (ws[:, None] * wg[None, :]).ravel()
@@ -167,7 +168,7 @@ def combine_hazard(model, hazard, blocks, parts):
         curves[:, :, :, lo:hi] = part
     model.branch_curves = curves
     flat = curves.reshape((-1,) + curves.shape[2:])
-    w = _branch_weights(model)
+    w = branch_weights(model)
     model.statistics = {"mean": weighted_mean(flat, w)}
     if len(w) > 1:
         for q, arr in zip(model.fractiles, weighted_fractiles(flat, w, model.fractiles)):

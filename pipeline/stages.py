@@ -56,6 +56,8 @@ class BlockResult:
     share_above: np.ndarray
     eal_ratio: np.ndarray  # (m,) [1/yr]
     loss_curve: np.ndarray  # (m, n_l) [1/yr]
+    ds_fractiles: np.ndarray | None = None  # (n_q, m, n_ds) [1/yr], propagated logic-tree branches
+    eal_fractiles: np.ndarray | None = None  # (n_q, m) [1/yr]
 
 
 def load_inputs(config_or_path):
@@ -140,7 +142,22 @@ def compute_block(inputs, block):
     eal_ratio = expected_annual_loss(ds, dss.mean_damage_ratio)
     curve = loss_exceedance_rates(ds, dss.mean_damage_ratio, np.asarray(cfg["output"]["loss_curve_ratios"]),
                                   dss.cov)
-    return BlockResult(block, ds, below, above, eal_ratio, curve)
+    result = BlockResult(block, ds, below, above, eal_ratio, curve)
+    model = inputs.hazard_model
+    if model is not None and cfg["hazard"]["propagate_branches"]:
+        # every logic-tree branch through the same kernels, then weighted fractiles over branches
+        from quakefolio.core.hazard import weighted_fractiles
+        from quakefolio.pipeline.hazard_stage import branch_weights
+
+        i = model.ims.index(dss.im)
+        branch = model.branch_curves[:, :, i][:, :, block.sites].reshape((-1, len(block.sites), x.shape[-1]))
+        ds_b = dss.annual_rates(x, branch, tail=cfg["fragility"]["tail"],
+                                envelope=cfg["fragility"]["crossing"] == "envelope")
+        w = branch_weights(model)
+        result.ds_fractiles = weighted_fractiles(ds_b, w, model.fractiles)
+        result.eal_fractiles = weighted_fractiles(expected_annual_loss(ds_b, dss.mean_damage_ratio), w,
+                                                  model.fractiles)
+    return result
 
 
 # --- tables -----------------------------------------------------------------------------------
@@ -284,4 +301,44 @@ def build_tables(inputs, results):
         inputs.warnings.append(
             f"{n_tail} assets draw more than {threshold:.0%} of a damage-state rate from beyond the tabulated "
             f"hazard range (tail policy '{cfg['fragility']['tail']}'; see tail_share_* in asset_damage)")
-    return {"asset_damage": asset_damage, "asset_loss": asset_loss, "asset_loss_curve": asset_loss_curve}
+    tables = {"asset_damage": asset_damage, "asset_loss": asset_loss, "asset_loss_curve": asset_loss_curve}
+    if any(r.ds_fractiles is not None for r in results):
+        tables.update(_fractile_tables(inputs, results))
+    return tables
+
+
+def _fractile_tables(inputs, results):
+    """Logic-tree fractiles of per-asset damage-state rates and EAL (propagated branches)."""
+    from quakefolio.pipeline.hazard_stage import statistic_name
+
+    ex = inputs.exposure
+    model = inputs.hazard_model
+    horizon = inputs.config["scenario"]["horizon_yr"]
+    names = [statistic_name(q) for q in model.fractiles]
+    classes = ex.building_class.to_numpy()
+    dmg, loss = [], []
+    for res in sorted(results, key=lambda r: r.block.block_id):
+        code = res.block.class_code
+        dss = inputs.library[code]
+        assets = np.flatnonzero((classes == code) & np.isin(inputs.site_index, res.block.sites))
+        pair = np.searchsorted(res.block.sites, inputs.site_index[assets])
+        for q, name in enumerate(names):
+            rate = res.ds_fractiles[q][pair]
+            dmg.append(pd.DataFrame({
+                "asset_id": np.repeat(ex.asset_id.to_numpy()[assets], dss.n_states), "statistic": name,
+                "damage_state": np.tile(np.array(dss.names, dtype=object), len(assets)),
+                "damage_state_index": np.tile(np.arange(1, dss.n_states + 1, dtype=np.int32), len(assets)),
+                "annual_rate_exceed": rate.ravel(), "prob_exceed_in_horizon": prob_in_years(rate, horizon).ravel(),
+            }))
+            value = ex.replacement_value.to_numpy()[assets]
+            loss.append(pd.DataFrame({"asset_id": ex.asset_id.to_numpy()[assets], "statistic": name,
+                                      "eal": res.eal_fractiles[q][pair] * value,
+                                      "eal_ratio": res.eal_fractiles[q][pair]}))
+    pos = pd.Series(np.arange(len(ex)), index=ex.asset_id.to_numpy())
+    dmg = pd.concat(dmg, ignore_index=True)
+    dmg = dmg.iloc[np.lexsort((dmg.damage_state_index.to_numpy(), dmg.statistic.map(names.index).to_numpy(),
+                               pos.loc[dmg.asset_id].to_numpy()))].reset_index(drop=True)
+    loss = pd.concat(loss, ignore_index=True)
+    loss = loss.iloc[np.lexsort((loss.statistic.map(names.index).to_numpy(),
+                                 pos.loc[loss.asset_id].to_numpy()))].reset_index(drop=True)
+    return {"asset_damage_fractiles": dmg, "asset_loss_fractiles": loss}

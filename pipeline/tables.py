@@ -35,6 +35,15 @@ TABLES = {
                "eal_ratio": "1/yr", "annual_collapse_rate": "1/yr", "collapse_prob_in_horizon": "-",
                "horizon_yr": "yr", "max_tail_share": "-"},
     ),
+    "asset_damage_fractiles": dict(
+        description="Logic-tree fractiles of per-asset damage-state rates (every hazard branch propagated "
+                    "through the fragility integral; weighted inverse-CDF fractiles).",
+        units={"annual_rate_exceed": "1/yr", "prob_exceed_in_horizon": "-"},
+    ),
+    "asset_loss_fractiles": dict(
+        description="Logic-tree fractiles of per-asset expected annual loss.",
+        units={"eal": "{currency}/yr", "eal_ratio": "1/yr"},
+    ),
     "asset_loss_curve": dict(
         description="Per asset: annual rate at which the loss exceeds each loss ratio (beta-distributed "
                     "loss ratio per damage state).",
