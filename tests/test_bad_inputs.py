@@ -53,6 +53,12 @@ EXPECTED = {
     "exposure_parquet_negative": ("exposure.parquet", 3, "replacement_value", r"expected a positive number"),
     "exposure_parquet_null_id": ("exposure.parquet", 4, "asset_id", r"missing identifier"),
     "exposure_parquet_corrupt": ("exposure.parquet", None, None, r"not a readable Parquet file"),
+    # source models (compute mode)
+    "sources_unknown_key": ("sources.toml", 8, "faults[0].dip_degree", r"unknown key; did you mean 'dip_deg'"),
+    "sources_depths_inverted": ("sources.toml", 11, "faults[0].lower_depth_km", r"expected a positive number"),
+    "sources_mfd_missing_rate": ("sources.toml", 12, "faults[0].mfd", r"needs exactly one of rate_above_min"),
+    "config_branch_weights": ("quakefolio.toml", 7, "hazard.source_models", r"branch weights must sum to 1"),
+    "config_unknown_gmm": ("quakefolio.toml", 8, "hazard.gmm_branches", r"unknown ground-motion model 'BSSA2014'"),
     # hazard curves
     "hazard_rate_increasing": ("hazard_curves.csv", 20, "annual_rate",
                                r"site 'T02', SA_0\.3 increases with im_level \(rate 0\.02 then 0\.05\)"),
