@@ -28,6 +28,17 @@ def package_versions():
     return out
 
 
+def fragility_class_digests(library):
+    """sha256 per building class of its resolved parameters (to attribute changes between runs)."""
+    out = {}
+    for code, dss in sorted(library.classes.items()):
+        blob = json.dumps({"im": dss.im, "names": list(dss.names), "medians": dss.medians.tolist(),
+                           "betas": dss.betas.tolist(), "mdr": dss.mean_damage_ratio.tolist(),
+                           "cov": dss.cov.tolist(), "collapse_index": dss.collapse_index}, sort_keys=True)
+        out[code] = hashlib.sha256(blob.encode()).hexdigest()
+    return out
+
+
 def inputs_digest(inputs):
     """sha256 over the input files' digests and the resolved config."""
     blob = json.dumps({"inputs": inputs.input_hashes, "config": inputs.config.resolved()}, sort_keys=True)
@@ -126,6 +137,7 @@ def write_run(inputs, results, timings):
             "row_counts": dict(writer.row_counts),
             "units": {name: units_for(name, currency) for name in frames},
             "hazard_ims_interpolated": sorted(inputs.hazard.interpolated),
+            "fragility_classes": fragility_class_digests(inputs.library),
             "hazard_sites": len(inputs.hazard.site_id),
             "warnings": list(inputs.warnings),
         }
