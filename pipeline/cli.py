@@ -1,4 +1,4 @@
-"""Command line: ``quakefolio run|hazard|check CONFIG``.
+"""Command line: ``quakefolio run|hazard|check CONFIG`` and ``quakefolio compare RUN_A RUN_B``.
 
 User errors (bad input files or config) exit with status 2 and one line naming file,
 row and column; no traceback unless ``--debug``.  ``check`` and ``--help`` never start
@@ -19,6 +19,16 @@ EXIT_USER_ERROR = 2
 EXIT_INTERNAL = 1
 
 
+def _count(text):
+    try:
+        n = int(text)
+    except ValueError:
+        n = -1
+    if n < 0:
+        raise argparse.ArgumentTypeError(f"expected a non-negative integer, got {text!r}")
+    return n
+
+
 def _parser():
     p = argparse.ArgumentParser(
         prog="quakefolio",
@@ -37,9 +47,61 @@ def _parser():
     hzd.add_argument("--no-flow", action="store_true", help="run without Prefect orchestration")
     chk = sub.add_parser("check", help="validate CONFIG and every input file it names; write nothing")
     chk.add_argument("config", help="run config file (quakefolio.toml)")
-    for sp in (run, hzd, chk):
+    cmp = sub.add_parser("compare", help="change report between two runs: what moved per asset and portfolio, and why",
+                         description="Compare two finished runs. RUN_A and RUN_B are run folders "
+                                     "(<output>/runs/<run_id>) or output folders, which stand for their LATEST run. "
+                                     "The report goes to <output folder of RUN_B>/comparisons/<run_a_id>__<run_b_id>/; "
+                                     "neither run is modified.")
+    cmp.add_argument("run_a", metavar="RUN_A", help="the earlier run (run folder or output folder)")
+    cmp.add_argument("run_b", metavar="RUN_B", help="the later run (run folder or output folder)")
+    cmp.add_argument("--out", metavar="DIR", help="write the report folder <run_a_id>__<run_b_id>/ under DIR instead")
+    cmp.add_argument("--top", metavar="N", type=_count, default=10,
+                     help="list the N assets with the largest absolute EAL change (default 10)")
+    fit = sub.add_parser(
+        "fit-fragility", help="fit a lognormal fragility function to structural-analysis results",
+        description="Fit median and beta of a lognormal fragility function to multiple-stripe analysis results "
+                    "(columns im, n_records, n_exceed) or incremental dynamic analysis results (column "
+                    "im_at_failure; leave it empty for records that did not fail up to the largest IM run and "
+                    "give --im-max or a column im_max). IM values in g.")
+    fit.add_argument("data", metavar="DATA", help="CSV or Parquet file of analysis results")
+    fit.add_argument("--method", choices=("msa", "ida", "ida-truncated"),
+                     help="kind of results (default: told by the columns and by empty im_at_failure cells)")
+    fit.add_argument("--im-max", type=_positive_number, metavar="X",
+                     help="largest IM [g] run for records that did not fail (truncated IDA)")
+    fit.add_argument("--extra-beta", type=_non_negative_number, default=0.0, metavar="B",
+                     help="extra dispersion combined by square root of sum of squares into beta_total")
+    fit.add_argument("--json", action="store_true", help="print one JSON object (the caution goes to stderr)")
+    lib = fit.add_argument_group("write the fit (median, beta_total) into a fragility library")
+    lib.add_argument("--write-library", metavar="FILE", help="fragility library TOML file to update or create")
+    lib.add_argument("--class", dest="class_code", metavar="CODE", help="building class to update or create")
+    lib.add_argument("--state", metavar="NAME", help="damage state to add or replace")
+    lib.add_argument("--mean-damage-ratio", type=_non_negative_number, metavar="R",
+                     help="mean damage ratio of the state (required for a new state)")
+    lib.add_argument("--cov", type=_non_negative_number, metavar="C", help="CoV of the state's loss ratio")
+    lib.add_argument("--im", metavar="IM", help="IM of the fit, e.g. SA_1.0 (required for a new class)")
+    for sp in (run, hzd, chk, cmp, fit):
         sp.add_argument("--debug", action="store_true", help="show tracebacks on errors")
     return p
+
+
+def _positive_number(text):
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not 0 < v < float("inf"):
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
+    return v
+
+
+def _non_negative_number(text):
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not 0 <= v < float("inf"):
+        raise argparse.ArgumentTypeError(f"expected a non-negative number, got {text!r}")
+    return v
 
 
 def _check(args):
@@ -85,12 +147,189 @@ def _hazard(args):
     return _run(args, stages_to_run="hazard")
 
 
+def _compare(args):
+    from quakefolio.pipeline.compare import change_summary_text, compare_runs, write_change_report
+
+    result = compare_runs(args.run_a, args.run_b)
+    folder = write_change_report(args.run_a, args.run_b, out_dir=args.out, result=result)
+    print(change_summary_text(result, folder, top_n=args.top))
+    return 0
+
+
+_FIT_COLUMNS = {"im": False, "n_records": False, "n_exceed": False, "im_at_failure": False, "im_max": False}
+_MSA_COLUMNS = ("im", "n_records", "n_exceed")
+
+
+def _read_fit_data(path, method, im_max):
+    """Validated arrays of a fit-fragility DATA file as ``(method, keyword arguments of the fitting function)``."""
+    import numpy as np
+
+    from quakefolio.core.errors import InputError
+    from quakefolio.pipeline.ingest import _numbers, read_table
+
+    frame, rows = read_table(path, _FIT_COLUMNS)
+    cols = set(frame.columns)
+    has_msa = [c for c in _MSA_COLUMNS if c in cols]
+    if method is None:
+        if has_msa and "im_at_failure" in cols:
+            raise InputError(path, f"holds both multiple-stripe columns ({', '.join(has_msa)}) and im_at_failure; "
+                                   "choose with --method", row=1, column="im_at_failure")
+        if not has_msa and "im_at_failure" not in cols:
+            raise InputError(path, "cannot tell the kind of results: expected columns im, n_records, n_exceed "
+                                   "(multiple-stripe analysis) or im_at_failure (IDA)", row=1)
+        method = "msa" if has_msa else None
+    if method == "msa":
+        for col in _MSA_COLUMNS:
+            if col not in cols:
+                raise InputError(path, "missing required column", row=1, column=col)
+        if im_max is not None:
+            raise InputError(path, "--im-max applies to truncated IDA results, not to multiple-stripe results")
+        im = _numbers(frame, rows, path, "im", positive=True)
+        n_records = _numbers(frame, rows, path, "n_records", positive=True, integer=True)
+        n_exceed = _numbers(frame, rows, path, "n_exceed", non_negative=True, integer=True)
+        over = n_exceed > n_records
+        if over.any():
+            i = int(np.argmax(over))
+            raise InputError(path, f"n_exceed ({n_exceed[i]:g}) is larger than n_records ({n_records[i]:g})",
+                             row=int(rows[i]), column="n_exceed")
+        return "msa", {"im": im, "n_records": n_records, "n_exceed": n_exceed}
+    if "im_at_failure" not in cols:
+        raise InputError(path, "missing required column", row=1, column="im_at_failure")
+    failure = _numbers(frame, rows, path, "im_at_failure", required=False, positive=True)
+    standing = np.isnan(failure)
+    if method is None:
+        method = "ida-truncated" if standing.any() or im_max is not None or "im_max" in cols else "ida"
+    if method == "ida":
+        if im_max is not None:
+            raise InputError(path, "--im-max applies to truncated IDA results; use --method ida-truncated")
+        if standing.any():
+            raise InputError(path, "missing value: a record that did not fail needs --method ida-truncated with "
+                                   "--im-max X or a column im_max", row=int(rows[np.argmax(standing)]),
+                             column="im_at_failure")
+        return "ida", {"im_at_failure": failure}
+    if im_max is not None and "im_max" in cols:
+        raise InputError(path, "give the largest IM run either as --im-max or as this column, not both", row=1,
+                         column="im_max")
+    if im_max is None and "im_max" not in cols:
+        raise InputError(path, "truncated IDA needs the largest IM run of the records that did not fail: give "
+                               "--im-max X or a column im_max", row=1, column="im_at_failure")
+    if im_max is not None:
+        cap = np.full(failure.shape, float(im_max))
+    else:
+        cap = _numbers(frame, rows, path, "im_max", required=False, positive=True)
+        missing = standing & np.isnan(cap)
+        if missing.any():
+            raise InputError(path, "missing value: this record did not fail, so it needs its largest IM run",
+                             row=int(rows[np.argmax(missing)]), column="im_max")
+        cap = np.where(np.isnan(cap), failure, cap)
+    above = ~standing & (failure > cap)
+    if above.any():
+        i = int(np.argmax(above))
+        raise InputError(path, f"failure at {failure[i]:g} g lies above the largest IM run {cap[i]:g} g",
+                         row=int(rows[i]), column="im_at_failure")
+    return "ida-truncated", {"im_at_failure": failure, "im_max": cap}
+
+
+def _write_fitted_state(args, fit):
+    """Add or replace ``--state`` of ``--class`` in the ``--write-library`` file; returns lines to print."""
+    import os
+    import stat
+    import tempfile
+    import tomllib
+
+    from quakefolio.core.errors import InputError
+    from quakefolio.fragility.fitting import library_to_toml, set_damage_state
+    from quakefolio.fragility.library import FORMAT_TAG, load_library, parse_library, read_toml
+
+    path = Path(args.write_library)
+    if path.exists():
+        text, data, _ = read_toml(path)
+        parse_library(data, text=text, path=str(path))  # never rewrite a library that is already invalid
+    elif not path.parent.is_dir():
+        raise InputError(path, f"folder {str(path.parent)!r} does not exist")
+    else:
+        text, data = "# quakefolio fragility library\n", {"format": FORMAT_TAG, "classes": {}}
+    try:
+        new, notes = set_damage_state(data, args.class_code, args.state, fit.median, fit.beta_total,
+                                      mean_damage_ratio=args.mean_damage_ratio, cov=args.cov, im=args.im)
+    except ValueError as exc:
+        raise InputError(path, str(exc), column=f"classes.{args.class_code}") from None
+    tag = f"# fit-fragility: classes.{args.class_code} state {args.state!r}"
+    header = []
+    for line in text.splitlines():
+        if line.strip() and not line.startswith("#"):
+            break
+        if not line.startswith(tag):
+            header.append(line)
+    while header and not header[-1].strip():
+        header.pop()
+    header.append(f"{tag} fitted to {Path(args.data).name!r} ({fit.method}, n = {fit.n}; beta is beta_total)")
+    new_text = library_to_toml(new, header="\n".join(header))
+    parse_library(tomllib.loads(new_text), text=new_text, path=str(path))  # validate before replacing anything
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
+            fh.write(new_text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        if path.exists():
+            os.chmod(tmp, stat.S_IMODE(path.stat().st_mode))
+        else:
+            mask = os.umask(0)
+            os.umask(mask)
+            os.chmod(tmp, 0o666 & ~mask)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    load_library(path)  # the file as written loads in our format
+    state = next(s for s in new["classes"][args.class_code]["states"] if s["name"] == args.state)
+    return [f"wrote {path}: class {args.class_code!r}, state {args.state!r}: median {state['median']:g} g, "
+            f"beta {state['beta']:g} (beta_total)"] + [f"note: {n}" for n in notes]
+
+
+def _fit_fragility(args):
+    import json
+
+    from quakefolio.core.errors import InputError
+    from quakefolio.fragility import fitting
+    from quakefolio.pipeline.caution import CAUTION
+
+    if args.write_library:
+        missing = [opt for opt, v in (("--class", args.class_code), ("--state", args.state)) if not v]
+        if missing:
+            print(f"error: fit-fragility: --write-library needs {' and '.join(missing)}", file=sys.stderr)
+            return EXIT_USER_ERROR
+    else:
+        given = [opt for opt, v in (("--class", args.class_code), ("--state", args.state), ("--im", args.im),
+                                    ("--mean-damage-ratio", args.mean_damage_ratio), ("--cov", args.cov))
+                 if v is not None]
+        if given:
+            print(f"error: fit-fragility: {', '.join(given)} only apply with --write-library FILE", file=sys.stderr)
+            return EXIT_USER_ERROR
+    method, data = _read_fit_data(args.data, args.method, args.im_max)
+    fitter = {"msa": fitting.fit_msa, "ida": fitting.fit_ida, "ida-truncated": fitting.fit_ida_truncated}[method]
+    try:
+        fit = fitter(**data, beta_extra=args.extra_beta)
+    except ValueError as exc:
+        raise InputError(args.data, str(exc), column="n_exceed" if method == "msa" else "im_at_failure") from None
+    if args.json:
+        print(CAUTION, file=sys.stderr)
+        print(json.dumps(fit.to_dict(), allow_nan=False))
+    else:
+        print(CAUTION)
+        print("\n".join(fit.summary_lines(source=args.data)))
+    if args.write_library:
+        print("\n".join(_write_fitted_state(args, fit)), file=sys.stderr if args.json else sys.stdout)
+    return 0
+
+
 def main(argv=None):
     args = _parser().parse_args(argv)
     from quakefolio.core.errors import InputError
 
     try:
-        return {"run": _run, "hazard": _hazard, "check": _check}[args.command](args)
+        return {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "fit-fragility": _fit_fragility}[args.command](args)
     except InputError as exc:
         if args.debug:
             raise

@@ -110,6 +110,17 @@ SCHEMA = {
         "disaggregation": _Key(bool, True),
         "propagate_branches": _Key(bool, False, help="also give damage and EAL fractiles over branches"),
     },
+    "portfolio": {
+        "event_based": _Key(bool, None, help="event-based portfolio loss (default: on in compute mode)"),
+        "years": _Key(int, 10000, _positive_int, help="simulated years"),
+        "seed": _Key(int, 20261201, _non_negative, help="seed of every random draw"),
+        "source_branch": _Key(str, "", help="source-model branch of the event set (default: highest weight)"),
+        "spatial_correlation": _Key(bool, True),
+        "cross_im_correlation": _Key(bool, True),
+        "vs30_clustering": _Key(bool, False, help="Jayaram & Baker (2009) case with Vs30 clustering"),
+        "loss_model": _Key(str, "mean_damage_ratio", choices=("mean_damage_ratio", "sampled_damage")),
+        "return_periods_yr": _Key("floats", [100.0, 250.0, 475.0, 2475.0], _return_periods),
+    },
     "exposure": {
         "file": _Key("path"),
     },
@@ -131,6 +142,7 @@ SCHEMA = {
         "max_workers": _Key(int, 2, _positive_int),
         "block_size": _Key(int, 20000, _positive_int, help="(site, class) pairs per task"),
         "site_block_size": _Key(int, 64, _positive_int, help="hazard sites per task"),
+        "event_block_size": _Key(int, 1024, _positive_int, help="events per task (whole blocks of 256)"),
     },
 }
 
@@ -306,6 +318,13 @@ def load_config(path):
     if hz["mode"] == "ingest" and hz["curves_file"] is None:
         raise InputError(path, "mode = \"ingest\" needs curves_file", row=locate_toml_line(text, ("hazard",), "mode"),
                          column="hazard.curves_file")
+    pf = sections["portfolio"]
+    if pf["event_based"] is None:
+        pf["event_based"] = hz["mode"] == "compute"
+    elif pf["event_based"] and hz["mode"] != "compute":
+        raise InputError(path, "event_based = true needs [hazard] mode = \"compute\" (events come from the "
+                               "source model)", row=locate_toml_line(text, ("portfolio",), "event_based"),
+                         column="portfolio.event_based")
     if hz["mode"] == "compute":
         for key in ("source_models", "gmm_branches"):
             if hz[key] is None:

@@ -81,19 +81,28 @@ def execute(inputs, executor, *, stages_to_run="all"):
                                   [(model, inputs.hazard, rps, b) for b in blocks])
             executor.one("disaggregation-combine", hs.combine_disaggregation, model, inputs.hazard, blocks, parts)
             timings["disaggregation_s"] = time.perf_counter() - t
-    results = None
+    results = portfolio = None
     if stages_to_run == "all":
         t = time.perf_counter()
         results = executor.many("damage-and-loss-block", stages.compute_block,
                                 [(inputs, b) for b in stages.plan_blocks(inputs)])
         timings["damage_loss_s"] = time.perf_counter() - t
-    return executor.one("store-run", write_run, inputs, results, timings)
+        if cfg["portfolio"]["event_based"]:
+            from quakefolio.pipeline import portfolio_stage as ps
+
+            t = time.perf_counter()
+            em = executor.one("event-set", ps.prepare_events, inputs)
+            chunks = executor.many("event-loss-block", ps.event_chunk, [(em, c) for c in ps.event_chunks(em)])
+            portfolio = executor.one("portfolio-aggregate", ps.combine_events, em, inputs, chunks)
+            timings["event_based_s"] = time.perf_counter() - t
+    return executor.one("store-run", write_run, inputs, results, timings, portfolio)
 
 
-def write_run(inputs, results, timings):
+def write_run(inputs, results, timings, portfolio=None):
     """Assemble every table, write the run folder atomically, return its path.
 
-    ``results`` None writes the hazard tables only (``quakefolio hazard``).
+    ``results`` None writes the hazard tables only (``quakefolio hazard``); ``portfolio``
+    is the (tables, cross-checks) pair of the event-based stage, if it ran.
     """
     t0 = time.perf_counter()
     cfg = inputs.config
@@ -110,6 +119,10 @@ def write_run(inputs, results, timings):
             model, inputs.hazard, cfg["hazard"]["return_periods_yr"])
     if results is not None:
         frames.update(stages.build_tables(inputs, results))
+    checks = None
+    if portfolio is not None:
+        frames.update(portfolio[0])
+        checks = portfolio[1]
     digest = inputs_digest(inputs)
     output = cfg["output"]["folder"]
     run_id = new_run_id(output, digest)
@@ -132,7 +145,8 @@ def write_run(inputs, results, timings):
             "inputs_sha256": digest,
             "config": cfg.resolved(),
             "packages": versions,
-            "seed": None,
+            "seed": cfg["portfolio"]["seed"] if portfolio is not None else None,
+            "cross_checks": checks,
             "timings_s": {k: round(v, 4) for k, v in timings.items()},
             "row_counts": dict(writer.row_counts),
             "units": {name: units_for(name, currency) for name in frames},

@@ -45,6 +45,40 @@ def _hazard_lines(run_dir, manifest):
     return lines
 
 
+def _portfolio_lines(run_dir, manifest, cur):
+    """AAL with its standard error, PML (AEP and OEP) and TVaR, and the built-in cross-checks."""
+    summ = read_table(run_dir, "portfolio_summary").set_index("basis")
+    ep = read_table(run_dir, "portfolio_ep")
+    gu = summ.loc["ground_up"]
+    lines = ["", f"  event-based portfolio: {int(gu.n_years)} simulated years, {int(gu.n_events)} events "
+                 f"(source branch '{gu.source_branch}', seed {int(gu.seed)}, {gu.loss_model.replace('_', ' ')})"]
+    for basis in ("ground_up", "net"):
+        row = summ.loc[basis]
+        lines.append(f"  AAL {basis.replace('_', '-'):<10} {_money(row.aal):>14} {cur}/yr  +- {_money(row.aal_standard_error)}"
+                     " (1 standard error)")
+    lines.append(f"  {'return period':>15} {'PML AEP':>16} {'PML OEP':>16} {'TVaR (AEP)':>16}   basis")
+    for r in ep.itertuples():
+        fmt = lambda v: "n/a" if v != v else _money(v)
+        lines.append(f"  {r.return_period_yr:>12g} yr {fmt(r.aep_loss):>16} {fmt(r.oep_loss):>16} "
+                     f"{fmt(r.tvar_loss):>16}   {r.basis.replace('_', '-')}")
+    checks = manifest.get("cross_checks") or {}
+    a = checks.get("asset_aal_vs_classical_eal")
+    p = checks.get("portfolio_aal_vs_classical_eal")
+    h = checks.get("event_hazard_vs_classical")
+    if p:
+        lines.append(f"  cross-check, portfolio: event-based AAL {_money(p['event_based_aal'])} vs classical EAL of the "
+                     f"same branch {_money(p['classical_eal'])} {cur}/yr, z = {p['z']:+.2f} "
+                     f"({'within' if p['passed'] else 'OUTSIDE'} 3 standard errors)")
+    if a:
+        lines.append(f"  cross-check, assets: {a['within_3_standard_errors']} of {a['assets']} within 3 standard "
+                     f"errors of their classical EAL (max |z| {a['max_abs_z']:.2f})")
+    if h:
+        lines.append(f"  cross-check, hazard: {h['within_3_standard_errors']} of {h['compared_points']} event-based "
+                     f"exceedance rates above {h['rate_threshold_per_yr']:.1e}/yr within 3 standard errors of the "
+                     f"classical curves (max |z| {h['max_abs_z']:.2f})")
+    return lines
+
+
 def summary_text(run_dir, *, elapsed_s=None):
     run_dir = Path(run_dir)
     manifest = json.loads((run_dir / "manifest.json").read_text(encoding="utf-8"))
@@ -77,6 +111,8 @@ def summary_text(run_dir, *, elapsed_s=None):
     for w in manifest.get("warnings", []):
         lines.append(f"  note: {w}")
     lines += hazard
+    if (run_dir / "portfolio_summary.parquet").exists():
+        lines += _portfolio_lines(run_dir, manifest, cur)
     lines.append("")
     lines.append(f"  run folder{timing}: {run_dir}")
     return "\n".join(lines)

@@ -49,7 +49,85 @@ TABLES = {
                     "loss ratio per damage state).",
         units={"loss_ratio": "-", "loss": "{currency}", "annual_rate_exceed": "1/yr"},
     ),
+    "change_assets": dict(
+        description="Change report, per asset of the union of two runs (A, B): status (added, removed, kept), "
+                    "class, site and value in each run; EAL, annual collapse rate and collapse probability in the "
+                    "horizon in A and B with changes (relative change NaN where A is zero or absent; an added or "
+                    "removed asset counts as zero EAL in the run without it); the exact split "
+                    "eal_change = eal_change_from_value + eal_change_from_ratio for kept assets; cause flags "
+                    "(hazard, fragility, exposure, settings), the ordered causes and the primary cause "
+                    "(unchanged when neither results nor causes changed, unexplained when results changed "
+                    "without a cause). Class and site are null in the run without the asset.",
+        units={"site_distance_km_a": "km", "site_distance_km_b": "km", "replacement_value_a": "{currency}",
+               "replacement_value_b": "{currency}", "eal_a": "{currency}/yr", "eal_b": "{currency}/yr",
+               "eal_change": "{currency}/yr", "eal_relative_change": "-", "eal_change_from_value": "{currency}/yr",
+               "eal_change_from_ratio": "{currency}/yr", "annual_collapse_rate_a": "1/yr",
+               "annual_collapse_rate_b": "1/yr", "annual_collapse_rate_change": "1/yr",
+               "collapse_prob_in_horizon_a": "-", "collapse_prob_in_horizon_b": "-",
+               "collapse_prob_in_horizon_change": "-", "horizon_yr_a": "yr", "horizon_yr_b": "yr"},
+    ),
+    "change_asset_damage": dict(
+        description="Change report, per asset and damage state (matched by name) of two runs (A, B): annual rate "
+                    "of reaching or exceeding the state and its probability in each run's horizon, with absolute "
+                    "and relative changes (NaN where the state is absent from a run; relative change NaN where "
+                    "A is zero).",
+        units={"annual_rate_exceed_a": "1/yr", "annual_rate_exceed_b": "1/yr", "annual_rate_exceed_change": "1/yr",
+               "annual_rate_exceed_relative_change": "-", "prob_exceed_in_horizon_a": "-",
+               "prob_exceed_in_horizon_b": "-", "prob_exceed_in_horizon_change": "-",
+               "prob_exceed_in_horizon_relative_change": "-"},
+    ),
+    "change_portfolio": dict(
+        description="Change report, portfolio metrics of two runs (A, B), long form: asset count, total "
+                    "replacement value, classical EAL; when both runs hold event-based tables, AAL per basis with "
+                    "standard errors (combined = root sum of squares, as for independent simulations; "
+                    "versus_standard_error says whether the change exceeds it) and PML on the AEP and OEP curves "
+                    "and TVaR per return period and basis. Each row's unit is in its unit column.",
+        units={"return_period_yr": "yr", "value_a": "see column unit", "value_b": "see column unit",
+               "change": "see column unit", "relative_change": "-", "standard_error_a": "see column unit",
+               "standard_error_b": "see column unit", "combined_standard_error": "see column unit"},
+    ),
 }
+
+TABLES.update({
+    "event_loss": dict(
+        description="Event loss table: one row per simulated event (Poisson occurrences of every rupture of the "
+                    "event-set source branch over the simulated years), with the ground-motion model drawn for it.",
+        units={"magnitude": "Mw", "ground_up_loss": "{currency}", "net_loss": "{currency}"},
+    ),
+    "year_loss": dict(
+        description="Year loss table: aggregate and largest event loss of every simulated year.",
+        units={"ground_up_loss": "{currency}", "net_loss": "{currency}", "max_event_ground_up_loss": "{currency}",
+               "max_event_net_loss": "{currency}"},
+    ),
+    "portfolio_ep": dict(
+        description="Portfolio PML at the configured return periods: aggregate (AEP) and occurrence (OEP) "
+                    "exceedance losses, the order statistic of rank ceil(N/T); TVaR (expected shortfall of "
+                    "annual aggregate loss, Acerbi & Tasche 2002).",
+        units={"return_period_yr": "yr", "aep_loss": "{currency}", "oep_loss": "{currency}",
+               "tvar_loss": "{currency}"},
+    ),
+    "portfolio_ep_curve": dict(
+        description="Full empirical exceedance-probability curves (AEP and OEP) of the simulated years.",
+        units={"loss": "{currency}", "annual_exceedance_prob": "1/yr", "return_period_yr": "yr"},
+    ),
+    "portfolio_summary": dict(
+        description="Average annual loss with its standard error (sample standard deviation of year losses / "
+                    "sqrt(N)), event and year counts, seed, and the classical EAL of the same model.",
+        units={"aal": "{currency}/yr", "aal_standard_error": "{currency}/yr",
+               "classical_eal_same_branch": "{currency}/yr"},
+    ),
+    "asset_event_loss": dict(
+        description="Per asset: event-based AAL (ground-up, net) with its standard error (compound Poisson), the "
+                    "classical EAL of the same source branch and GMM weights, and their z-score.",
+        units={"aal_ground_up": "{currency}/yr", "aal_net": "{currency}/yr",
+               "aal_ground_up_standard_error": "{currency}/yr", "classical_eal_same_branch": "{currency}/yr",
+               "z_score": "-"},
+    ),
+    "portfolio_breakdown": dict(
+        description="Event-based AAL by building class and by seismic source.",
+        units={"aal_ground_up": "{currency}/yr", "aal_net": "{currency}/yr"},
+    ),
+})
 
 
 def units_for(name, currency):
