@@ -132,9 +132,9 @@ class ChunkResult:
     stop: int
     ground_up: np.ndarray  # (n_ev,) [currency]
     net: np.ndarray
-    asset_sum: np.ndarray  # (2, n_assets): ground-up, net sums over events [currency]
-    asset_sumsq: np.ndarray  # (2, n_assets) [currency^2]
-    class_sum: np.ndarray  # (n_classes, 2)
+    asset_sum: np.ndarray  # (n_blocks, 2, n_assets): ground-up, net sums over each block's events [currency]
+    asset_sumsq: np.ndarray  # (n_blocks, 2, n_assets) [currency^2]
+    class_sum: np.ndarray  # (n_blocks, n_classes, 2)
     exceed_counts: np.ndarray  # (n_im, n_sites, n_levels)
 
 
@@ -184,9 +184,11 @@ def event_chunk(em, chunk):
     n_assets = len(em.value)
     gu_ev = np.zeros(n_ev)
     net_ev = np.zeros(n_ev)
-    asset_sum = np.zeros((2, n_assets))
-    asset_sumsq = np.zeros((2, n_assets))
-    class_sum = np.zeros((len(em.classes), 2))
+    # partial sums per random-number block, so totals do not depend on the chunking
+    bounds = [(int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
+    asset_sum = np.zeros((len(bounds), 2, n_assets))
+    asset_sumsq = np.zeros((len(bounds), 2, n_assets))
+    class_sum = np.zeros((len(bounds), len(em.classes), 2))
     for k, (code, assets, i_im, dss, usites, pair) in enumerate(em.classes):
         x = im[:, i_im, usites]  # per unique (site, class) pair
         if em.loss_model == "mean_damage_ratio":
@@ -204,9 +206,11 @@ def event_chunk(em, chunk):
         net = apply_policy(gu, em.deductible[assets], em.limit[assets])
         gu_ev += gu.sum(axis=1)
         net_ev += net.sum(axis=1)
-        asset_sum[0, assets], asset_sum[1, assets] = gu.sum(axis=0), net.sum(axis=0)
-        asset_sumsq[0, assets], asset_sumsq[1, assets] = (gu * gu).sum(axis=0), (net * net).sum(axis=0)
-        class_sum[k] = gu.sum(), net.sum()
+        for j, (lo, hi) in enumerate(bounds):
+            g, n = gu[lo:hi], net[lo:hi]
+            asset_sum[j, 0, assets], asset_sum[j, 1, assets] = g.sum(axis=0), n.sum(axis=0)
+            asset_sumsq[j, 0, assets], asset_sumsq[j, 1, assets] = (g * g).sum(axis=0), (n * n).sum(axis=0)
+            class_sum[j, k] = g.sum(), n.sum()
     return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts)
 
 
@@ -248,9 +252,9 @@ def combine_events(em, inputs, results):
         summary_rows.append({"basis": basis, "aal": aal, "aal_standard_error": se, "n_events": ev.n_events,
                              "n_years": n_years, "seed": em.seed, "source_branch": em.branch_id,
                              "loss_model": em.loss_model})
-    asset_sum = sum(r.asset_sum for r in results)
-    asset_sumsq = sum(r.asset_sumsq for r in results)
-    class_sum = sum(r.class_sum for r in results)
+    asset_sum = np.concatenate([r.asset_sum for r in results]).sum(axis=0)
+    asset_sumsq = np.concatenate([r.asset_sumsq for r in results]).sum(axis=0)
+    class_sum = np.concatenate([r.class_sum for r in results]).sum(axis=0)
     checks, classical = _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results)
     ex = inputs.exposure
     asset_aal = pd.DataFrame({
