@@ -265,7 +265,11 @@ def _write_fitted_state(args, fit):
         header.pop()
     header.append(f"{tag} fitted to {Path(args.data).name!r} ({fit.method}, n = {fit.n}; beta is beta_total)")
     new_text = library_to_toml(new, header="\n".join(header))
-    parse_library(tomllib.loads(new_text), text=new_text, path=str(path))  # validate before replacing anything
+    try:  # validate before replacing anything; line numbers of the unwritten text would mislead, so none are given
+        parse_library(tomllib.loads(new_text), text=new_text, path=str(path))
+    except InputError as exc:
+        raise InputError(path, f"refused, the updated library would be invalid: {exc.message}",
+                         column=exc.column) from None
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
@@ -329,7 +333,9 @@ def main(argv=None):
     from quakefolio.core.errors import InputError
 
     try:
-        return {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "fit-fragility": _fit_fragility}[args.command](args)
+        handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare,
+                    "fit-fragility": _fit_fragility}
+        return handlers[args.command](args)
     except InputError as exc:
         if args.debug:
             raise

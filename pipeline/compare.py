@@ -57,7 +57,8 @@ part of the EAL change is at least as large as the loss-ratio part (the split is
 rest follow the fixed order hazard, fragility, exposure, settings.  An asset whose
 results did not change (relative :data:`RESULT_RTOL`) and that has no cause is
 ``unchanged``; one whose results changed with no cause found is ``unexplained`` (for
-example a different code version; the report lists package versions that differ).
+example a different code version; the report lists package versions that differ).  A
+flagged cause is named even where the results did not move (``results_changed`` tells).
 """
 from __future__ import annotations
 
@@ -143,7 +144,10 @@ class _Run:
         file = self.path / f"{name}.parquet"
         if not file.exists():
             raise InputError(file, f"missing table: run {self.run_id} has no {name}.parquet")
-        return read_table(self.path, name)
+        try:
+            return read_table(self.path, name)
+        except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
+            raise InputError(file, f"unreadable table ({exc})") from None
 
     def has(self, name):
         return (self.path / f"{name}.parquet").exists()
@@ -224,7 +228,7 @@ def _strings(series):
     return out.where(series.notna(), None)
 
 
-def _flatten(cfg, prefix=()):
+def _flatten(cfg):
     """Resolved config as {(section, key): value}."""
     out = {}
     for sec, body in (cfg or {}).items():
@@ -248,9 +252,17 @@ def _without_paths(section, key, value):
 
 
 def _settings_changes(run_a, run_b):
+    """Settings that differ, with their scope; a section only one run has is one entry."""
     fa, fb = _flatten(run_a.config), _flatten(run_b.config)
+    sections_a, sections_b = set(run_a.config), set(run_b.config)
     rows = []
+    for sec in sorted(sections_a ^ sections_b):
+        scope = _setting_scope(sec, "*")
+        if scope != "none":
+            rows.append({"setting": sec, "a": run_a.config.get(sec), "b": run_b.config.get(sec), "scope": scope})
     for sec, key in sorted(set(fa) | set(fb)):
+        if sec not in sections_a or sec not in sections_b:
+            continue
         scope = _setting_scope(sec, key)
         va = _without_paths(sec, key, fa.get((sec, key)))
         vb = _without_paths(sec, key, fb.get((sec, key)))
@@ -289,8 +301,7 @@ def _hazard_changes(run_a, run_b):
         "sites_added": sorted(sites_b - sites_a), "sites_removed": sorted(sites_a - sites_b),
         "sites_changed": sorted(changed_sites & sites_a & sites_b),
         "curves_changed": len(changed),
-        "curves_changed_by_im": {im: int(n) for im, n in
-                                 pd.Series([im for _, im in changed], dtype=object).value_counts().sort_index().items()},
+        "curves_changed_by_im": {im: sum(1 for _, i in changed if i == im) for im in sorted({i for _, i in changed})},
     }
     return changed, set(ca.im), set(cb.im), summary
 
@@ -397,7 +408,7 @@ def _attribute(m, dmg_changed, ims, hazard_changed, tab_a, tab_b, frag_changed, 
             ia != ib and curve_changed(site_a, ia, tab_a))
     cause_hazard = curves | site_moved | (dist_moved & ~exposure_file_changed)
 
-    cause_fragility = kept & np.isin(m.building_class_b.to_numpy(object), sorted(frag_changed & frag_known))
+    cause_fragility = kept & m.building_class_b.isin(frag_changed & frag_known).to_numpy()
 
     cause_exposure = ~kept | value_changed | class_changed | (exposure_file_changed & (site_moved | dist_moved))
     cause_settings = kept & bool(asset_settings)
@@ -409,7 +420,7 @@ def _attribute(m, dmg_changed, ims, hazard_changed, tab_a, tab_b, frag_changed, 
     from_value = np.where(kept, (vb - va) * ra, np.nan)
     from_ratio = np.where(kept, vb * (rb - ra), np.nan)
 
-    results_changed = (~kept | np.isin(m.asset_id.to_numpy(object), list(dmg_changed))
+    results_changed = (~kept | m.asset_id.isin(dmg_changed).to_numpy()
                        | _differs(m.eal_a, m.eal_b, RESULT_RTOL)
                        | _differs(m.collapse_prob_in_horizon_a, m.collapse_prob_in_horizon_b, RESULT_RTOL)
                        | _differs(m.annual_collapse_rate_a, m.annual_collapse_rate_b, RESULT_RTOL))
@@ -522,8 +533,16 @@ def _portfolio_rows(run_a, run_b, assets, notes):
 # --- the comparison --------------------------------------------------------------------------------
 
 def _event_settings(run):
-    port = run.config.get("portfolio") or {}
-    return {"seed": run.manifest.get("seed", port.get("seed")), "years": port.get("years", run.manifest.get("years"))}
+    """Whether the run holds event-based results, and their seed and number of simulated years."""
+    if not run.has("portfolio_summary"):
+        return {"present": False, "seed": None, "years": None}
+    summary = run.table("portfolio_summary")
+    seed = run.manifest.get("seed")
+    if seed is None and "seed" in summary.columns and len(summary):
+        seed = int(summary.seed.iloc[0])
+    years = int(summary.n_years.iloc[0]) if "n_years" in summary.columns and len(summary) else \
+        (run.config.get("portfolio") or {}).get("years")
+    return {"present": True, "seed": seed, "years": years}
 
 
 def compare_runs(run_a, run_b):
@@ -585,6 +604,10 @@ def compare_runs(run_a, run_b):
         notes.append(f"quakefolio version differs ({packages['quakefolio']['a']} -> {packages['quakefolio']['b']}): "
                      "changes without an input cause may come from the code")
     ev_a, ev_b = _event_settings(a), _event_settings(b)
+    if ev_a["present"] and ev_b["present"] and ev_a["seed"] is not None and ev_a["seed"] == ev_b["seed"]:
+        notes.append("both simulations use seed "
+                     f"{ev_a['seed']}: they share random draws, so the combined standard error overstates the "
+                     "sampling noise of the AAL change")
     used_sites = set(assets.site_id_b.dropna()) | set(assets.site_id_a.dropna())
     da, dbg = a.manifest.get("fragility_classes") or {}, b.manifest.get("fragility_classes") or {}
     by_cause = assets.groupby("primary_cause", sort=True)
@@ -601,7 +624,8 @@ def compare_runs(run_a, run_b):
         "hazard": dict(hazard_summary, sites_changed_used_by_assets=len(set(hazard_summary["sites_changed"])
                                                                           & used_sites)),
         "settings_changed": settings,
-        "event_based": {"seed_a": ev_a["seed"], "seed_b": ev_b["seed"], "seed_changed": ev_a["seed"] != ev_b["seed"],
+        "event_based": {"in_a": ev_a["present"], "in_b": ev_b["present"],
+                        "seed_a": ev_a["seed"], "seed_b": ev_b["seed"], "seed_changed": ev_a["seed"] != ev_b["seed"],
                         "years_a": ev_a["years"], "years_b": ev_b["years"],
                         "years_changed": ev_a["years"] != ev_b["years"]},
         "packages_changed": packages,
@@ -775,7 +799,7 @@ def change_summary_text(result, report_folder=None, *, top_n=10):
     for s in causes["settings_changed"]:
         lines.append(f"  setting {s['setting']}: {s['a']} -> {s['b']}  ({s['scope']})")
     ev = causes["event_based"]
-    if ev["seed_changed"] or ev["years_changed"]:
+    if ev["in_a"] or ev["in_b"]:
         lines.append(f"  event-based: seed {ev['seed_a']} -> {ev['seed_b']}, years {ev['years_a']} -> {ev['years_b']}")
     lines.append("")
     eal = port[port.metric == "eal"].iloc[0]
@@ -794,6 +818,7 @@ def change_summary_text(result, report_folder=None, *, top_n=10):
             cells = [f"{_money(r[('value_a', k)])} -> {_money(r[('value_b', k)])}" if ("value_a", k) in r.index
                      else "n/a" for k in ("pml_aep", "pml_oep", "tvar")]
             lines.append(f"  {basis:<12}{rp:>8g}" + "".join(f"{c:>28}" for c in cells))
+        lines.append("")
     a = causes["assets"]
     lines.append(f"  assets: {a['in_a']} in A, {a['in_b']} in B ({a['added']} added, {a['removed']} removed); "
                  f"results changed for {a['results_changed']}")
@@ -806,7 +831,7 @@ def change_summary_text(result, report_folder=None, *, top_n=10):
         top = moved.assign(_abs=moved.eal_change.abs()).sort_values(["_abs", "asset_id"], ascending=[False, True])
         top = top.head(top_n)
         lines.append("")
-        lines.append(f"  {len(top)} assets with the largest absolute EAL change:")
+        lines.append(f"  {len(top)} asset{'s' if len(top) != 1 else ''} with the largest absolute EAL change:")
         lines.append(f"  {'asset_id':<12}{'status':<9}{'class':<10}{'site':<8}{'EAL A':>12}{'EAL B':>12}"
                      f"{'change':>12}{'':>3}causes")
         for r in top.itertuples():
