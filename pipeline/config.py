@@ -10,6 +10,7 @@ import difflib
 import hashlib
 import json
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -65,6 +66,10 @@ def _non_negative(v):
     return None if v >= 0 else "expected a non-negative number"
 
 
+def _discount_rate(v):
+    return None if 0 <= v < 1 else "expected a discount rate in [0, 1)"
+
+
 def _quantiles(v):
     if any(not 0 < q < 1 for q in v) or sorted(set(v)) != list(v):
         return "expected strictly increasing probabilities in (0, 1)"
@@ -87,6 +92,16 @@ SCHEMA = {
         "description": _Key(str, ""),
         "currency": _Key(str, "USD"),
         "horizon_yr": _Key(float, 50.0, _positive, help="exposure period for N-year probabilities [yr]"),
+        "alternatives": _Key("alternatives", [], help="retrofit what-if: [[scenario.alternatives]] tables"),
+        "discount_rate": _Key(float, 0.03, _discount_rate, help="annual discount rate of avoided losses [-]"),
+        "benefit_horizon_yr": _Key(float, 50.0, _positive, help="years over which avoided losses count [yr]"),
+    },
+    "screening": {
+        "collapse_target_prob": _Key(float, 0.01, _probability, help="target collapse probability [-]"),
+        "collapse_target_years": _Key(float, 50.0, _positive, help="period of the target probability [yr]"),
+        "rt_beta": _Key(float, 0.6, _positive, help="dispersion of the generic collapse fragility [-]"),
+        "rt_prob_at_im": _Key(float, 0.10, _probability,
+                              help="collapse probability of the generic fragility at the risk-targeted IM [-]"),
     },
     "hazard": {
         "mode": _Key(str, choices=("ingest", "compute")),
@@ -143,6 +158,7 @@ SCHEMA = {
         "block_size": _Key(int, 20000, _positive_int, help="(site, class) pairs per task"),
         "site_block_size": _Key(int, 64, _positive_int, help="hazard sites per task"),
         "event_block_size": _Key(int, 1024, _positive_int, help="events per task (whole blocks of 256)"),
+        "cache": _Key(bool, True, help="reuse stage results whose inputs did not change"),
     },
 }
 
@@ -222,6 +238,10 @@ def _coerce(spec, value, path, row, column, base):
         return out
     if kind in ("source_branches", "gmm_branches"):
         return _branches(kind, value, fail, base)
+    if kind == "alternatives":  # entries are checked with their lines by _alternatives
+        if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
+            fail("expected [[scenario.alternatives]] tables")
+        return value
     if kind == "path":
         if not isinstance(value, str) or not value.strip():
             fail(f"expected a file path string, got {value!r}")
@@ -271,6 +291,78 @@ def _branches(kind, value, fail, base):
     return out
 
 
+#: Keys of one ``[[scenario.alternatives]]`` table (retrofit what-if).
+ALTERNATIVE_KEYS = ("id", "description", "assets", "building_class", "new_class", "fragility_library",
+                    "retrofit_cost", "retrofit_cost_ratio")
+_ALTERNATIVE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$")
+
+
+def _alternatives(entries, path, text, base):
+    """Validate the ``[[scenario.alternatives]]`` tables; every error names its line and key.
+
+    Only the file-local checks live here (types, required keys, one cost form); asset
+    ids and class codes are checked against the exposure and the fragility libraries by
+    :func:`quakefolio.pipeline.whatif.validate`.
+    """
+    table = ("scenario", "alternatives")
+    out, ids = [], set()
+    for i, entry in enumerate(entries):
+        col = f"scenario.alternatives[{i}]"
+
+        def fail(msg, key=None):
+            raise InputError(path, msg, row=locate_toml_line(text, table, key, i),
+                             column=f"{col}.{key}" if key else col)
+
+        for key in entry:
+            if key not in ALTERNATIVE_KEYS:
+                fail(f"unknown key{_suggest(key, ALTERNATIVE_KEYS)}", key)
+        for key in ("id", "new_class"):
+            if key not in entry:
+                fail(f"missing required key '{key}'", key)
+            if not isinstance(entry[key], str) or not entry[key].strip():
+                fail(f"expected a non-empty string, got {entry[key]!r}", key)
+        aid = entry["id"]
+        if not _ALTERNATIVE_ID.match(aid):
+            fail(f"id {aid!r} must be 1-64 letters, digits, '-', '_' or '.'", "id")
+        if aid in ids:
+            fail(f"duplicate alternative id {aid!r}", "id")
+        ids.add(aid)
+        description = entry.get("description", "")
+        if not isinstance(description, str):
+            fail(f"expected a string, got {description!r}", "description")
+        assets = entry.get("assets", [])
+        if not isinstance(assets, list) or not all(isinstance(a, str) and a.strip() for a in assets):
+            fail(f"expected a list of asset ids (strings), got {assets!r}", "assets")
+        if "assets" in entry and not assets:
+            fail("expected at least one asset id", "assets")
+        twice = sorted({a for a in assets if assets.count(a) > 1})
+        if twice:
+            fail(f"asset id {twice[0]!r} listed more than once", "assets")
+        selected_class = entry.get("building_class")
+        if selected_class is not None and (not isinstance(selected_class, str) or not selected_class.strip()):
+            fail(f"expected a building class code, got {selected_class!r}", "building_class")
+        if not assets and selected_class is None:
+            fail("select assets with 'assets' (a list of asset ids) and/or 'building_class'")
+        library = entry.get("fragility_library")
+        if library is not None:
+            if not isinstance(library, str) or not library.strip() or "\x00" in library:
+                fail(f"expected a file path string, got {library!r}", "fragility_library")
+            p = Path(library)
+            library = (p if p.is_absolute() else base / p).resolve()
+        costs = [k for k in ("retrofit_cost", "retrofit_cost_ratio") if k in entry]
+        if len(costs) != 1:
+            fail("give exactly one of 'retrofit_cost' (per asset) and 'retrofit_cost_ratio' (of replacement "
+                 f"value), got {len(costs)}", costs[1] if len(costs) == 2 else None)
+        cost = entry[costs[0]]
+        if isinstance(cost, bool) or not isinstance(cost, (int, float)) or not math.isfinite(cost) or cost <= 0:
+            fail(f"expected a positive number, got {cost!r}", costs[0])
+        out.append({"id": aid, "description": description, "assets": list(assets), "building_class": selected_class,
+                    "new_class": entry["new_class"], "fragility_library": library,
+                    "retrofit_cost": float(cost) if costs[0] == "retrofit_cost" else None,
+                    "retrofit_cost_ratio": float(cost) if costs[0] == "retrofit_cost_ratio" else None})
+    return out
+
+
 def load_config(path):
     """Read, validate and resolve a run config file.
 
@@ -314,6 +406,7 @@ def load_config(path):
                     value = (base / value).resolve()
             out[key] = value
         sections[sec] = out
+    sections["scenario"]["alternatives"] = _alternatives(sections["scenario"]["alternatives"], path, text, base)
     hz = sections["hazard"]
     if hz["mode"] == "ingest" and hz["curves_file"] is None:
         raise InputError(path, "mode = \"ingest\" needs curves_file", row=locate_toml_line(text, ("hazard",), "mode"),

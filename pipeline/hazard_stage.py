@@ -20,6 +20,7 @@ from quakefolio.core.hazard import (
     weighted_mean,
 )
 from quakefolio.core.ims import im_period
+from quakefolio.pipeline.cache import digest
 from quakefolio.pipeline.ingest import HazardCurves
 from quakefolio.pipeline.sources_io import load_source_model
 
@@ -51,6 +52,8 @@ class HazardModel:
     statistics: dict = field(default_factory=dict)  # name -> (n_im, n_sites, n_lev)
     disagg: np.ndarray | None = None
     bins: DisaggBins = field(default_factory=DisaggBins.default)
+    digest: str = ""  # content digest of everything a site's hazard depends on except the site
+    cache: object = None  # quakefolio.pipeline.cache.StageCache
 
 
 def build_sites(exposure, spacing_km, default_vs30):
@@ -70,7 +73,9 @@ def build_sites(exposure, spacing_km, default_vs30):
     lat = exposure.lat.to_numpy()
     vs30 = exposure.vs30_mps.to_numpy(dtype=float)
     vs30 = np.where(np.isnan(vs30), default_vs30, vs30)
-    ref = mean_position(lon, lat)
+    # projection reference rounded to 0.01 deg, so that small exposure edits keep it (and the
+    # cached hazard of unchanged sites stays valid); the projection error stays negligible
+    ref = tuple(round(v, 2) for v in mean_position(lon, lat))
     if spacing_km > 0:
         x, y = aeqd_forward(lon, lat, *ref)
         gx, gy = np.round(x / spacing_km) * spacing_km, np.round(y / spacing_km) * spacing_km
@@ -120,6 +125,9 @@ def prepare_compute(config, exposure, library):
     model = HazardModel(sources, gmms, ims, np.asarray(hz["im_levels_g"], dtype=float), hz["truncation_sigma"],
                         hz["integration_distance_km"], hz["region"], list(hz["fractiles"]), hz["disaggregation"],
                         vs30, ref)
+    model.digest = digest(
+        "hazard-model", [(bid, w, src.sha256) for bid, w, src in sources], [(g, w) for g, w, _ in gmms], ims,
+        model.levels_g, model.truncation_sigma, model.max_distance_km, model.region, list(ref))
     hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=set())
     return model, hazard, site_index, dist
 
@@ -136,20 +144,44 @@ def site_blocks(n_sites, size):
     return [(lo, min(n_sites, lo + size)) for lo in range(0, n_sites, size)]
 
 
+def _site_keys(model, hazard, lo, hi, *extra):
+    return [digest("hazard-site", model.digest, float(hazard.lon[i]), float(hazard.lat[i]),
+                   float(model.site_vs30[i]), *extra) for i in range(lo, hi)]
+
+
 def hazard_block(model, hazard, block):
     """Curves of every (source branch, GMM branch) for one block of sites.
+
+    Sites whose content key is in the cache are read from it; the others are computed
+    (per-site results do not depend on the other sites of the block).
 
     Returns ndarray (n_src, n_gmm, n_im, n_block_sites, n_levels) [1/yr].
     """
     lo, hi = block
-    out = []
-    for _, _, src in model.source_branches:
-        out.append(compute_site_hazard(hazard.lon[lo:hi], hazard.lat[lo:hi], model.site_vs30[lo:hi], src.ruptures,
-                                       [g for _, _, g in model.gmm_branches], model.ims, model.levels_g,
-                                       truncation_sigma=model.truncation_sigma,
-                                       max_distance_km=model.max_distance_km, region=model.region,
-                                       site_block=hi - lo, ref=model.ref))
-    return np.stack(out)
+    keys = _site_keys(model, hazard, lo, hi)
+    shape = (len(model.source_branches), len(model.gmm_branches), len(model.ims), hi - lo, len(model.levels_g))
+    out = np.zeros(shape)
+    missing = []
+    for j, key in enumerate(keys):
+        hit = model.cache.get("hazard", key) if model.cache is not None else None
+        if hit is not None and hit["curves"].shape == shape[:3] + shape[4:]:
+            out[:, :, :, j] = hit["curves"]
+        else:
+            missing.append(j)
+    if missing:
+        idx = lo + np.array(missing)
+        for s_i, (_, _, src) in enumerate(model.source_branches):
+            out[s_i][:, :, missing] = compute_site_hazard(
+                hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures,
+                [g for _, _, g in model.gmm_branches], model.ims, model.levels_g,
+                truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km,
+                region=model.region, site_block=len(idx), ref=model.ref)
+        if model.cache is not None:
+            for j in missing:
+                model.cache.put("hazard", keys[j], {"curves": out[:, :, :, j]})
+    if model.cache is not None:
+        model.cache.count("hazard_sites", hits=len(keys) - len(missing), misses=len(missing))
+    return out
 
 
 def branch_weights(model):
@@ -179,19 +211,38 @@ def combine_hazard(model, hazard, blocks, parts):
 
 
 def disagg_block(model, hazard, return_periods, block):
-    """Weighted (M, R, epsilon) contributions at the mean curve's return-period levels."""
+    """Weighted (M, R, epsilon) contributions at the mean curve's return-period levels.
+
+    Cached per site (the key adds the return periods, the bins and the site's mean curve).
+    """
     lo, hi = block
     mean = model.statistics["mean"][:, lo:hi]  # (n_im, n_blk, n_lev)
     with np.errstate(divide="ignore", invalid="ignore"):
         targets = np.log(im_at_rate(1.0 / np.asarray(return_periods), model.levels_g, mean))
-    total = None
-    for _, ws, src in model.source_branches:
-        contrib = compute_disaggregation(
-            hazard.lon[lo:hi], hazard.lat[lo:hi], model.site_vs30[lo:hi], src.ruptures,
-            [g for _, _, g in model.gmm_branches], [ws * wg for _, wg, _ in model.gmm_branches], model.ims, targets,
-            model.bins, truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km,
-            region=model.region, site_block=hi - lo, ref=model.ref)
-        total = contrib if total is None else total + contrib
+    bins = model.bins
+    keys = [digest("disagg-site", k, list(map(float, return_periods)), bins.mag_edges, bins.dist_edges,
+                   bins.eps_edges, mean[:, j]) for j, k in enumerate(_site_keys(model, hazard, lo, hi))]
+    total = np.zeros((len(model.ims), hi - lo, len(return_periods)) + bins.shape)
+    missing = []
+    for j, key in enumerate(keys):
+        hit = model.cache.get("disaggregation", key) if model.cache is not None else None
+        if hit is not None and hit["contrib"].shape == total[:, j].shape:
+            total[:, j] = hit["contrib"]
+        else:
+            missing.append(j)
+    if missing:
+        idx = lo + np.array(missing)
+        for _, ws, src in model.source_branches:
+            total[:, missing] += compute_disaggregation(
+                hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures,
+                [g for _, _, g in model.gmm_branches], [ws * wg for _, wg, _ in model.gmm_branches], model.ims,
+                targets[:, missing], bins, truncation_sigma=model.truncation_sigma,
+                max_distance_km=model.max_distance_km, region=model.region, site_block=len(idx), ref=model.ref)
+        if model.cache is not None:
+            for j in missing:
+                model.cache.put("disaggregation", keys[j], {"contrib": total[:, j]})
+    if model.cache is not None:
+        model.cache.count("disaggregation_sites", hits=len(keys) - len(missing), misses=len(missing))
     return total
 
 

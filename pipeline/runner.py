@@ -91,9 +91,15 @@ def execute(inputs, executor, *, stages_to_run="all"):
             from quakefolio.pipeline import portfolio_stage as ps
 
             t = time.perf_counter()
-            em = executor.one("event-set", ps.prepare_events, inputs)
-            chunks = executor.many("event-loss-block", ps.event_chunk, [(em, c) for c in ps.event_chunks(em)])
-            portfolio = executor.one("portfolio-aggregate", ps.combine_events, em, inputs, chunks)
+            key = ps.event_cache_key(inputs)
+            portfolio = ps.load_cached(inputs.cache, key)
+            from_cache = portfolio is not None
+            if not from_cache:
+                em = executor.one("event-set", ps.prepare_events, inputs)
+                chunks = executor.many("event-loss-block", ps.event_chunk, [(em, c) for c in ps.event_chunks(em)])
+                portfolio = executor.one("portfolio-aggregate", ps.combine_events, em, inputs, chunks)
+                ps.save_cached(inputs.cache, key, portfolio)
+            inputs.cache.count("event_stage", hits=int(from_cache), misses=int(not from_cache))
             timings["event_based_s"] = time.perf_counter() - t
     return executor.one("store-run", write_run, inputs, results, timings, portfolio)
 
@@ -147,6 +153,7 @@ def write_run(inputs, results, timings, portfolio=None):
             "packages": versions,
             "seed": cfg["portfolio"]["seed"] if portfolio is not None else None,
             "cross_checks": checks,
+            "cache": inputs.cache.stats() if inputs.cache is not None else {},
             "timings_s": {k: round(v, 4) for k, v in timings.items()},
             "row_counts": dict(writer.row_counts),
             "units": {name: units_for(name, currency) for name in frames},

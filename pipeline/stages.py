@@ -16,6 +16,7 @@ from quakefolio.core.curves import im_at_rate, prob_in_years, return_period
 from quakefolio.core.errors import InputError, locate_toml_line
 from quakefolio.core.loss import expected_annual_loss, loss_exceedance_rates
 from quakefolio.fragility import CrossingError, load_library
+from quakefolio.pipeline.cache import PairStore, StageCache, digest, row_digests
 from quakefolio.pipeline.config import load_config, sha256_file
 from quakefolio.pipeline.ingest import (
     UnavailableIM, curves_for_im, map_assets_to_sites, read_exposure, read_hazard_curves,
@@ -37,6 +38,9 @@ class Inputs:
     input_hashes: dict
     warnings: list = field(default_factory=list)
     hazard_model: object = None  # compute mode: quakefolio.pipeline.hazard_stage.HazardModel
+    cache: object = None  # quakefolio.pipeline.cache.StageCache
+    cached_pairs: dict = field(default_factory=dict)  # class -> (sites, rows) read from the cache
+    pair_keys: dict = field(default_factory=dict)  # class -> (sites, (n, 32) digests)
 
 
 @dataclass(frozen=True)
@@ -116,16 +120,43 @@ def load_inputs(config_or_path):
                         "(log-log between neighbouring tabulated periods)")
     inputs = Inputs(config, library, hazard, exposure, site_index, dist, hashes, warnings)
     inputs.hazard_model = model
+    inputs.cache = StageCache(config["output"]["folder"], enabled=config["execution"]["cache"])
+    if model is not None:
+        model.cache = inputs.cache
     return inputs
 
 
+def _damage_group_key(inputs, code):
+    """Everything a class's per-pair results depend on besides the pair's hazard curve."""
+    cfg = inputs.config
+    dss = inputs.library[code]
+    return digest("damage", code, dss.im, list(dss.names), dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov,
+                  dss.collapse_index, cfg["fragility"]["tail"], cfg["fragility"]["crossing"],
+                  list(cfg["output"]["loss_curve_ratios"]))
+
+
 def plan_blocks(inputs):
-    """Unique (site, class) pairs grouped per class and cut into blocks of ``block_size``."""
+    """Unique (site, class) pairs grouped per class and cut into blocks of ``block_size``.
+
+    Pairs whose results are in the cache (same curve values, same class parameters and
+    settings, same code) are read from it and left out of the blocks.
+    """
     size = inputs.config["execution"]["block_size"]
+    use_cache = inputs.cache is not None and inputs.cache.enabled and not (
+        inputs.hazard_model is not None and inputs.config["hazard"]["propagate_branches"])
     blocks = []
     classes = inputs.exposure.building_class.to_numpy()
+    inputs.cached_pairs, inputs.pair_keys = {}, {}
     for code in sorted(set(classes)):
         sites = np.unique(inputs.site_index[classes == code])
+        if use_cache:
+            levels, rates = curves_for_im(inputs.hazard, inputs.library[code].im)
+            keys = row_digests(levels[sites], rates[sites])
+            found, rows = PairStore(inputs.cache, "damage", _damage_group_key(inputs, code)).lookup(keys)
+            inputs.pair_keys[code] = (sites, keys)
+            inputs.cached_pairs[code] = (sites[found], rows)
+            inputs.cache.count("damage_pairs", hits=int(found.sum()), misses=int((~found).sum()))
+            sites = sites[~found]
         for start in range(0, len(sites), size):
             blocks.append(WorkBlock(len(blocks), code, sites[start:start + size]))
     return blocks
@@ -231,6 +262,10 @@ def build_tables(inputs, results):
     by_class = {}
     for res in results:
         by_class.setdefault(res.block.class_code, []).append(res)
+    for code, (sites, rows) in inputs.cached_pairs.items():
+        if len(sites):
+            by_class.setdefault(code, []).append(BlockResult(
+                WorkBlock(-1, code, sites), rows["ds"], rows["below"], rows["above"], rows["eal"], rows["curve"]))
     damage_frames, curve_parts = [], []
     eal_ratio = np.empty(n_assets)
     collapse_rate = np.empty(n_assets)
@@ -243,6 +278,13 @@ def build_tables(inputs, results):
         above = np.concatenate([p.share_above for p in parts])
         eal_r = np.concatenate([p.eal_ratio for p in parts])
         curve = np.concatenate([p.loss_curve for p in parts])
+        order = np.argsort(sites, kind="stable")  # cached and computed pairs, by site
+        sites, ds, below, above, eal_r, curve = (a[order] for a in (sites, ds, below, above, eal_r, curve))
+        if code in inputs.pair_keys:
+            all_sites, keys = inputs.pair_keys[code]
+            assert np.array_equal(all_sites, sites)
+            PairStore.save_group(inputs.cache, "damage", _damage_group_key(inputs, code), keys,
+                                 {"ds": ds, "below": below, "above": above, "eal": eal_r, "curve": curve})
         dss = inputs.library[code]
         assets = np.flatnonzero(classes == code)
         pair = np.searchsorted(sites, inputs.site_index[assets])

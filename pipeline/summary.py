@@ -79,6 +79,18 @@ def _portfolio_lines(run_dir, manifest, cur):
     return lines
 
 
+def _cache_lines(manifest):
+    """One line saying what was recomputed and what came from the content cache."""
+    stats = manifest.get("cache") or {}
+    if not stats:
+        return []
+    parts = [f"{name.replace('_', ' ')} {v['computed']} computed / {v['from_cache']} from cache"
+             for name, v in stats.items()]
+    if all(v["computed"] == 0 for v in stats.values()):
+        return ["", "  inputs unchanged for every stage: nothing recomputed (" + "; ".join(parts) + ")"]
+    return ["", "  cache: " + "; ".join(parts)]
+
+
 def summary_text(run_dir, *, elapsed_s=None):
     run_dir = Path(run_dir)
     manifest = json.loads((run_dir / "manifest.json").read_text(encoding="utf-8"))
@@ -113,6 +125,7 @@ def summary_text(run_dir, *, elapsed_s=None):
     lines += hazard
     if (run_dir / "portfolio_summary.parquet").exists():
         lines += _portfolio_lines(run_dir, manifest, cur)
+    lines += _cache_lines(manifest)
     lines.append("")
     lines.append(f"  run folder{timing}: {run_dir}")
     return "\n".join(lines)

@@ -1,0 +1,149 @@
+"""Stage results cached by content, so a rerun recomputes only what its inputs changed.
+
+Every cached item is keyed by the sha256 of everything it depends on: the content of the
+inputs it reads (file bytes, the site's coordinates and Vs30, the curve values, the class
+parameters), the configuration it uses and the code version (a digest of quakefolio's own
+source files).  The cache lives in ``<output>/cache/``; it is safe to delete, files are
+written atomically, and an entry is used only when the key stored inside it matches the
+key asked for (a corrupt or mismatched file is a miss and is removed).  Entries are numpy
+``.npz`` archives read with ``allow_pickle=False``: nothing in the cache is ever unpickled.
+
+Granularity: hazard per site (all logic-tree branches of one site), damage and loss per
+unique (site, class) pair, and the event-based stage as a whole (its events share every
+site and asset).
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import threading
+from functools import lru_cache
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["code_version", "digest", "StageCache", "PairStore", "row_digests"]
+
+
+@lru_cache(maxsize=1)
+def code_version():
+    """sha256 of quakefolio's source files (any code change invalidates every cache entry)."""
+    import quakefolio.core
+    import quakefolio.fragility
+    import quakefolio.pipeline
+
+    h = hashlib.sha256()
+    for mod in (quakefolio.core, quakefolio.fragility, quakefolio.pipeline):
+        folder = Path(mod.__file__).parent
+        for f in sorted(folder.glob("*.py")):
+            h.update(f.name.encode())
+            h.update(f.read_bytes())
+    return h.hexdigest()
+
+
+def digest(*parts):
+    """sha256 hex of a sequence of JSON-able values and numpy arrays (with dtype and shape)."""
+    h = hashlib.sha256(code_version().encode())
+    for p in parts:
+        if isinstance(p, np.ndarray):
+            a = np.ascontiguousarray(p)
+            h.update(f"{a.dtype.str}{a.shape}".encode())
+            h.update(a.tobytes())
+        else:
+            h.update(json.dumps(p, sort_keys=True, default=str).encode())
+        h.update(b"|")
+    return h.hexdigest()
+
+
+class StageCache:
+    """Key -> dict of arrays, one ``.npz`` per key under ``<output>/cache/<stage>/``."""
+
+    def __init__(self, output_folder, enabled=True):
+        self.root = Path(output_folder) / "cache"
+        self.enabled = enabled
+        self.hits = {}
+        self.misses = {}
+        self._lock = threading.Lock()
+
+    def _path(self, stage, key):
+        return self.root / stage / key[:2] / f"{key}.npz"
+
+    def get(self, stage, key):
+        if not self.enabled:
+            return None
+        path = self._path(stage, key)
+        try:
+            with np.load(path, allow_pickle=False) as data:
+                if str(data["__key__"]) != key:
+                    raise ValueError("key mismatch")
+                out = {k: data[k] for k in data.files if k != "__key__"}
+        except FileNotFoundError:
+            return None
+        except Exception:  # corrupt or foreign file: never trusted, removed
+            path.unlink(missing_ok=True)
+            return None
+        return out
+
+    def put(self, stage, key, arrays):
+        if not self.enabled:
+            return
+        path = self._path(stage, key)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(f".{path.name}.{os.getpid()}.{threading.get_ident()}.tmp")
+        with open(tmp, "wb") as fh:
+            np.savez(fh, __key__=np.array(key), **arrays)
+        os.replace(tmp, path)
+
+    def count(self, stage, hits=0, misses=0):
+        with self._lock:
+            self.hits[stage] = self.hits.get(stage, 0) + hits
+            self.misses[stage] = self.misses.get(stage, 0) + misses
+
+    def stats(self):
+        stages = sorted(set(self.hits) | set(self.misses))
+        return {s: {"from_cache": self.hits.get(s, 0), "computed": self.misses.get(s, 0)} for s in stages}
+
+
+class PairStore:
+    """Per-item results keyed by a 32-byte digest each, stored as one archive per group.
+
+    Used for (site, class) pairs: one archive per class and settings, holding the digests
+    of its pairs and their result rows; a lookup returns the rows found and the indices
+    missing.
+    """
+
+    def __init__(self, cache, stage, group_key):
+        self.cache, self.stage, self.group_key = cache, stage, group_key
+        self._data = cache.get(stage, group_key) or {}
+
+    @staticmethod
+    def save_group(cache, stage, group_key, keys, arrays):
+        """Store a group's rows (replacing what was stored), without reading it first."""
+        cache.put(stage, group_key, {"keys": keys, **arrays})
+
+    def lookup(self, keys):
+        """Rows for ``keys`` (n, 32) uint8: (found mask, dict of arrays for found rows)."""
+        stored = self._data.get("keys")
+        if stored is None or len(stored) == 0 or len(keys) == 0:
+            return np.zeros(len(keys), dtype=bool), {}
+        index = {bytes(k): i for i, k in enumerate(stored)}
+        pos = np.array([index.get(bytes(k), -1) for k in keys], dtype=np.int64)
+        found = pos >= 0
+        rows = {name: arr[pos[found]] for name, arr in self._data.items() if name != "keys"}
+        return found, rows
+
+
+
+def row_digests(*arrays):
+    """One 32-byte sha256 per row of equally long arrays (rows flattened), as (n, 32) uint8."""
+    n = len(arrays[0])
+    flat = [np.ascontiguousarray(a).reshape(n, -1) for a in arrays]
+    out = np.empty((n, 32), dtype=np.uint8)
+    salt = code_version().encode()
+    for i in range(n):
+        h = hashlib.sha256(salt)
+        for a in flat:
+            h.update(a[i].tobytes())
+        out[i] = np.frombuffer(h.digest(), dtype=np.uint8)
+    return out
