@@ -123,18 +123,21 @@ def _run(args, stages_to_run="all"):
     from quakefolio.pipeline.stages import load_inputs
     from quakefolio.pipeline.summary import summary_text
 
+    from quakefolio.pipeline.progress import StageProgress
+
     t0 = time.perf_counter()
     inputs = load_inputs(args.config)  # validate before starting any orchestration: bad input writes nothing
-    if args.no_flow:
-        from quakefolio.pipeline.runner import run_pure
+    with StageProgress(enabled=sys.stderr.isatty() and not args.quiet):
+        if args.no_flow:
+            from quakefolio.pipeline.runner import run_pure
 
-        run_dir = run_pure(inputs, stages_to_run=stages_to_run)
-    else:
-        configure_prefect()
-        from quakefolio.pipeline.flow import run_flow
+            run_dir = run_pure(inputs, stages_to_run=stages_to_run)
+        else:
+            configure_prefect()
+            from quakefolio.pipeline.flow import run_flow
 
-        run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config["execution"]["max_workers"],
-                           stages_to_run=stages_to_run)
+            run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config["execution"]["max_workers"],
+                               stages_to_run=stages_to_run)
     elapsed = time.perf_counter() - t0
     if args.quiet:
         print(run_dir)
@@ -331,6 +334,7 @@ def _fit_fragility(args):
 def main(argv=None):
     args = _parser().parse_args(argv)
     from quakefolio.core.errors import InputError
+    from quakefolio.pipeline.runner import StageError
 
     try:
         handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare,
@@ -344,6 +348,11 @@ def main(argv=None):
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
+    except StageError as exc:
+        if args.debug:
+            raise
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_INTERNAL
     except Exception as exc:  # noqa: BLE001 - last line of defence for the CLI
         if args.debug:
             raise

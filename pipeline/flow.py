@@ -13,16 +13,37 @@ from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 
-from quakefolio.pipeline import stages
-from quakefolio.pipeline.runner import execute
+from quakefolio.pipeline import progress, stages
+from quakefolio.pipeline.runner import execute, stage_guard
 
 __all__ = ["portfolio_risk", "run_flow", "PrefectExecutor"]
 
 _TASK = dict(cache_policy=NO_CACHE, persist_result=False)
 
 
+#: stages that read or write files and may meet a transient I/O error: retried on OSError only
+_IO_STAGES = {"ingest": 2, "store-run": 2}
+
+
+def _retry_on_os_error(task, task_run, state):
+    """Retry condition: only transient I/O errors (never a user-input error)."""
+    from quakefolio.core.errors import InputError
+
+    try:
+        state.result()
+    except InputError:
+        return False
+    except OSError:
+        return True
+    except Exception:  # noqa: BLE001 - anything else is not transient
+        return False
+    return False
+
+
 class PrefectExecutor:
     """Runs each stage function as a Prefect task; ``many`` maps over blocks."""
+
+    config_path = None
 
     def __init__(self):
         self._tasks = {}
@@ -30,22 +51,32 @@ class PrefectExecutor:
     def _task(self, name, fn):
         key = (name, fn)
         if key not in self._tasks:
-            self._tasks[key] = task(fn, name=name, **_TASK)
+            extra = {}
+            if name in _IO_STAGES:
+                extra = dict(retries=_IO_STAGES[name], retry_delay_seconds=1,
+                             retry_condition_fn=_retry_on_os_error)
+            self._tasks[key] = task(fn, name=name, **_TASK, **extra)
         return self._tasks[key]
 
     def one(self, name, fn, *args):
-        return self._task(name, fn)(*args)
+        return stage_guard(name, self.config_path, lambda: self._task(name, fn)(*args))
 
     def many(self, name, fn, arglist):
         t = self._task(name, fn)
+        progress.stage(name, len(arglist))
         futures = [t.submit(*args) for args in arglist]
-        return [f.result() for f in futures]  # resolve every future: a failure fails the flow
+        out = []
+        for f in futures:  # resolve every future: a failure fails the flow
+            out.append(stage_guard(name, self.config_path, f.result))
+            progress.advance(name)
+        return out
 
 
 @flow(name="portfolio-risk", persist_result=False, log_prints=False)
 def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
     """Ingest -> hazard (compute mode) -> damage and loss per block -> store."""
     executor = PrefectExecutor()
+    executor.config_path = config_path
     inputs = executor.one("ingest", stages.load_inputs, config_path)
     return str(execute(inputs, executor, stages_to_run=stages_to_run))
 

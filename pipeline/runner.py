@@ -7,7 +7,7 @@ import platform
 import time
 from importlib import metadata
 
-from quakefolio.pipeline import stages
+from quakefolio.pipeline import progress, stages
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.store import RunWriter, new_run_id
 from quakefolio.pipeline.tables import TABLES, units_for
@@ -45,14 +45,41 @@ def inputs_digest(inputs):
     return hashlib.sha256(blob.encode()).hexdigest()
 
 
+class StageError(RuntimeError):
+    """A stage failed for a reason other than a user-input error; names the stage and cause."""
+
+    def __init__(self, stage, cause, config_path):
+        self.stage, self.cause = stage, cause
+        super().__init__(f"stage '{stage}' failed: {type(cause).__name__}: {cause} (run config: {config_path})")
+
+
+def stage_guard(name, config_path, call):
+    """Run ``call()``; wrap unexpected exceptions in :class:`StageError` (user-input errors pass)."""
+    from quakefolio.core.errors import InputError
+
+    try:
+        return call()
+    except (InputError, StageError, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # noqa: BLE001 - re-raised with the stage named
+        raise StageError(name, exc, config_path) from exc
+
+
 class SequentialExecutor:
     """Runs stage functions in this thread (the pure-library path)."""
 
+    config_path = None
+
     def one(self, name, fn, *args):
-        return fn(*args)
+        return stage_guard(name, self.config_path, lambda: fn(*args))
 
     def many(self, name, fn, arglist):
-        return [fn(*args) for args in arglist]
+        progress.stage(name, len(arglist))
+        out = []
+        for args in arglist:
+            out.append(stage_guard(name, self.config_path, lambda a=args: fn(*a)))
+            progress.advance(name)
+        return out
 
 
 def execute(inputs, executor, *, stages_to_run="all"):
@@ -67,6 +94,7 @@ def execute(inputs, executor, *, stages_to_run="all"):
 
     timings = {}
     cfg = inputs.config
+    executor.config_path = str(cfg.path)
     model = inputs.hazard_model
     t = time.perf_counter()
     if model is not None:

@@ -3,14 +3,14 @@
 Layout::
 
     <output>/runs/<run_id>/          complete runs, never modified afterwards
-    <output>/runs/.partial-<run_id>/ a run being written (invisible to readers)
+    <output>/runs/.partial-<run_id>.<pid>/ a run being written (invisible to readers)
     <output>/LATEST                  the id of the newest complete run
 
 A run is written under its ``.partial-`` name and renamed into place only when every
 table and the manifest are on disk (``os.replace`` of a folder within one file system
 is atomic); ``LATEST`` is then replaced atomically by writing a temporary file and
 renaming it.  A crash at any point leaves earlier runs and ``LATEST`` intact; a stale
-partial folder is removed by the next run.  Every Parquet file carries units and
+partial folder (its process gone) is removed by the next run.  Every Parquet file carries units and
 provenance in its schema metadata under the key ``quakefolio``.
 """
 from __future__ import annotations
@@ -29,6 +29,19 @@ __all__ = ["RunWriter", "latest_run", "read_table", "table_metadata", "PARTIAL_P
 
 PARTIAL_PREFIX = ".partial-"
 METADATA_KEY = b"quakefolio"
+
+
+def _alive(pid):
+    """Whether a process with this id exists (POSIX signal 0 probe)."""
+    if pid == os.getpid():
+        return False  # a leftover of an earlier run of this very process id: not alive
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
 
 
 def _fsync_dir(path):
@@ -85,12 +98,16 @@ class RunWriter:
         self.final = self.runs / run_id
         if self.final.exists():
             raise FileExistsError(f"run folder {self.final} already exists")
-        self.partial = self.runs / f"{PARTIAL_PREFIX}{run_id}"
+        self.partial = self.runs / f"{PARTIAL_PREFIX}{run_id}.{os.getpid()}"
         self.partial.mkdir()
         self.row_counts = {}
 
     def _clean_stale_partials(self):
+        """Remove partial folders left by runs that died (their process no longer exists)."""
         for p in self.runs.glob(f"{PARTIAL_PREFIX}*"):
+            pid = p.name.rsplit(".", 1)[-1]
+            if pid.isdigit() and _alive(int(pid)):
+                continue  # another run writing into the same output folder right now
             shutil.rmtree(p, ignore_errors=True)
 
     def _inside(self, name):
@@ -142,7 +159,7 @@ def new_run_id(output_folder, digest):
     base = f"{stamp}-{digest[:8]}"
     runs = Path(output_folder) / "runs"
     run_id, n = base, 1
-    while (runs / run_id).exists() or (runs / f"{PARTIAL_PREFIX}{run_id}").exists():
+    while (runs / run_id).exists() or any(runs.glob(f"{PARTIAL_PREFIX}{run_id}.*")):
         n += 1
         run_id = f"{base}-{n}"
     return run_id
