@@ -93,8 +93,11 @@ def test_failed_write_leaves_earlier_runs_and_latest_intact(mini_config, monkeyp
         raise OSError("disk full (simulated)")
 
     monkeypatch.setattr(store.pq, "write_table", boom)
-    with pytest.raises(OSError, match="simulated"):
+    from quakefolio.pipeline.runner import StageError
+
+    with pytest.raises(StageError, match="stage 'store-run' failed: OSError: disk full") as info:
         run_pure(mini_config)
+    assert isinstance(info.value.__cause__, OSError)
     assert latest_run(out) == first
     assert sorted(p.name for p in (out / "runs").iterdir()) == [first.name]
 
