@@ -75,7 +75,7 @@ import pyarrow.parquet as pq
 from quakefolio.core.errors import InputError
 from quakefolio.core.ims import im_period
 from quakefolio.pipeline.caution import CAUTION
-from quakefolio.pipeline.store import PARTIAL_PREFIX, latest_run, read_table, to_arrow
+from quakefolio.pipeline.store import PARTIAL_PREFIX, fsync_path, latest_run, read_table, to_arrow
 from quakefolio.pipeline.tables import TABLES, units_for
 
 __all__ = ["compare_runs", "write_change_report", "resolve_run", "change_summary_text", "CAUSES",
@@ -676,19 +676,6 @@ def _inside(path, folder):
         return False
 
 
-def _fsync(path):
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
 def write_change_report(run_a, run_b, out_dir=None, *, result=None):
     """Compare two runs and write the report; return the report folder.
 
@@ -734,8 +721,8 @@ def write_change_report(run_a, run_b, out_dir=None, *, result=None):
         with open(partial / "change_causes.json", "w", encoding="utf-8") as fh:
             fh.write(text)
         for f in partial.iterdir():
-            _fsync(f)
-        _fsync(partial)
+            fsync_path(f)
+        fsync_path(partial)
         old = None
         if final.exists():
             old = parent / f".replaced-{name}-{os.getpid()}"
@@ -748,7 +735,7 @@ def write_change_report(run_a, run_b, out_dir=None, *, result=None):
             raise
         if old is not None:
             shutil.rmtree(old, ignore_errors=True)
-        _fsync(parent)
+        fsync_path(parent)
     except BaseException:
         shutil.rmtree(partial, ignore_errors=True)
         raise

@@ -44,7 +44,8 @@ def _alive(pid):
     return True
 
 
-def _fsync_dir(path):
+def fsync_path(path):
+    """fsync a file or folder by path (best effort: ignored where the OS refuses)."""
     try:
         fd = os.open(path, os.O_RDONLY)
     except OSError:
@@ -137,16 +138,16 @@ class RunWriter:
         for f in self.partial.iterdir():
             with open(f, "rb") as fh:
                 os.fsync(fh.fileno())
-        _fsync_dir(self.partial)
+        fsync_path(self.partial)
         os.replace(self.partial, self.final)
-        _fsync_dir(self.runs)
+        fsync_path(self.runs)
         tmp = self.output / f".LATEST.{os.getpid()}.tmp"
         with open(tmp, "w", encoding="utf-8") as fh:
             fh.write(self.run_id + "\n")
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, self.output / "LATEST")
-        _fsync_dir(self.output)
+        fsync_path(self.output)
         return self.final
 
     def abort(self):
