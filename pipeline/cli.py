@@ -1,4 +1,5 @@
-"""Command line: ``quakefolio run|hazard|check CONFIG`` and ``quakefolio compare RUN_A RUN_B``.
+"""Command line: ``quakefolio run|hazard|check CONFIG``, ``quakefolio compare RUN_A RUN_B`` and
+``quakefolio report RUN``.
 
 User errors (bad input files or config) exit with status 2 and one line naming file,
 row and column; no traceback unless ``--debug``.  ``check`` and ``--help`` never start
@@ -45,6 +46,28 @@ def _parser():
     hzd.add_argument("config", help="run config file (quakefolio.toml)")
     hzd.add_argument("--quiet", action="store_true", help="print only the run folder")
     hzd.add_argument("--no-flow", action="store_true", help="run without Prefect orchestration")
+    for sp in (run, hzd):
+        scale = sp.add_argument_group("scale-out (overrides [execution] backend and address)")
+        scale.add_argument("--executor", choices=("local", "dask"),
+                           help="local: threads of this process; dask: block tasks on a Dask cluster")
+        scale.add_argument("--address", type=_dask_address, metavar="tcp://HOST:PORT",
+                           help="scheduler of an existing Dask cluster (implies --executor dask); without it "
+                                "--executor dask starts a local cluster of 2 worker processes on 127.0.0.1")
+    sch = sub.add_parser(
+        "schedule", help="rerun CONFIG on a cron schedule (a deployment served on a local Prefect server)",
+        description="Create or update a deployment of the flow for CONFIG with a cron schedule on a local Prefect "
+                    "server (started on 127.0.0.1 with its database in the state folder, or the one already "
+                    "running there, or PREFECT_API_URL), then serve it until interrupted. Each scheduled run first "
+                    "compares a digest of every input file and the resolved config with the LATEST run: if nothing "
+                    "changed it writes nothing; otherwise it stores a new run and the change report against the "
+                    "previous one. For a plain alternative, let the system's cron call 'quakefolio run CONFIG'.")
+    sch.add_argument("config", help="run config file (quakefolio.toml)")
+    sch.add_argument("--cron", required=True, metavar="EXPR",
+                     help="five-field cron expression, e.g. \"0 3 * * 1\" (Mondays 03:00)")
+    sch.add_argument("--timezone", default="UTC", metavar="TZ",
+                     help="IANA time zone of the cron fields (default UTC)")
+    sch.add_argument("--run-once", action="store_true",
+                     help="create or update the deployment, run it once now, and exit (no waiting for the clock)")
     chk = sub.add_parser("check", help="validate CONFIG and every input file it names; write nothing")
     chk.add_argument("config", help="run config file (quakefolio.toml)")
     cmp = sub.add_parser("compare", help="change report between two runs: what moved per asset and portfolio, and why",
@@ -57,6 +80,14 @@ def _parser():
     cmp.add_argument("--out", metavar="DIR", help="write the report folder <run_a_id>__<run_b_id>/ under DIR instead")
     cmp.add_argument("--top", metavar="N", type=_count, default=10,
                      help="list the N assets with the largest absolute EAL change (default 10)")
+    rep = sub.add_parser("report", help="write the HTML report of a finished run (the run itself is not modified)",
+                         description="Write the self-contained HTML report of RUN, a run folder (<output>/runs/<run_id>) "
+                                     "or an output folder, which stands for its LATEST run. Finished runs are never "
+                                     "modified: the report goes to <output folder>/reports/<run_id>.html unless --out "
+                                     "names another file. Prints the path written.")
+    rep.add_argument("run", metavar="RUN", help="the run to report (run folder or output folder)")
+    rep.add_argument("--previous", metavar="RUN", help="an earlier run to compare with (adds the change report)")
+    rep.add_argument("--out", metavar="FILE", help="write the report to FILE instead")
     fit = sub.add_parser(
         "fit-fragility", help="fit a lognormal fragility function to structural-analysis results",
         description="Fit median and beta of a lognormal fragility function to multiple-stripe analysis results "
@@ -79,9 +110,18 @@ def _parser():
                      help="mean damage ratio of the state (required for a new state)")
     lib.add_argument("--cov", type=_non_negative_number, metavar="C", help="CoV of the state's loss ratio")
     lib.add_argument("--im", metavar="IM", help="IM of the fit, e.g. SA_1.0 (required for a new class)")
-    for sp in (run, hzd, chk, cmp, fit):
+    for sp in (sch, run, hzd, chk, cmp, rep, fit):
         sp.add_argument("--debug", action="store_true", help="show tracebacks on errors")
     return p
+
+
+def _dask_address(text):
+    from quakefolio.pipeline.config import _dask_address as problem_with
+
+    if not text or problem_with(text):
+        raise argparse.ArgumentTypeError(f"expected a Dask scheduler address such as 'tcp://10.0.0.5:8786', "
+                                         f"got {text!r}")
+    return text
 
 
 def _positive_number(text):
@@ -127,8 +167,14 @@ def _run(args, stages_to_run="all"):
 
     t0 = time.perf_counter()
     inputs = load_inputs(args.config)  # validate before starting any orchestration: bad input writes nothing
+    backend, address = _backend(args, inputs.config)
     with StageProgress(enabled=sys.stderr.isatty() and not args.quiet):
-        if args.no_flow:
+        if backend == "dask":
+            configure_prefect()
+            from quakefolio.pipeline.orchestration import run_on_dask
+
+            run_dir = run_on_dask(Path(args.config).resolve(), address, stages_to_run=stages_to_run)
+        elif args.no_flow:
             from quakefolio.pipeline.runner import run_pure
 
             run_dir = run_pure(inputs, stages_to_run=stages_to_run)
@@ -146,6 +192,50 @@ def _run(args, stages_to_run="all"):
     return 0
 
 
+def _backend(args, config):
+    """(backend, address): the config's [execution], overridden by --executor / --address."""
+    from quakefolio.core.errors import InputError
+    from quakefolio.pipeline.config import resolve_execution
+
+    if args.executor == "local" and args.address:
+        raise InputError("--address", "applies to --executor dask, not --executor local")
+    if args.no_flow and (args.executor == "dask" or args.address):
+        raise InputError("--no-flow", "runs without Prefect in this process; it cannot be combined with "
+                                      "--executor dask or --address")
+    if args.no_flow:
+        return "local", ""
+    return resolve_execution(config, args.executor, args.address)
+
+
+def _schedule(args):
+    from quakefolio.pipeline.caution import CAUTION
+    from quakefolio.pipeline.stages import load_inputs
+
+    load_inputs(args.config)  # validate before starting a server: a bad input starts nothing
+    configure_prefect()
+    from quakefolio.pipeline.scheduling import check_cron, serve_schedule
+    from quakefolio.pipeline.server import connect_or_start
+
+    problem = check_cron(args.cron, args.timezone)
+    if problem:
+        print(f"error: schedule: --cron {args.cron!r} --timezone {args.timezone!r}: {problem}", file=sys.stderr)
+        return EXIT_USER_ERROR
+    print(CAUTION)
+    server = connect_or_start()
+    try:
+        where = f"{server.url}" + (f" (database {server.database})" if server.database else "")
+        print(f"started a Prefect server at {where}" if server.owned else f"using the Prefect server at {where}",
+              flush=True)
+        out = serve_schedule(Path(args.config).resolve(), args.cron, api_url=server.url, timezone=args.timezone,
+                             run_once=args.run_once)
+    finally:
+        server.stop()  # only if this command started it
+    if not args.run_once:
+        return 0
+    print(f"deployment {out['deployment']}: run {out['flow_run_id']} finished {out['state']}")
+    return 0 if out["state"] == "Completed" else EXIT_INTERNAL
+
+
 def _hazard(args):
     return _run(args, stages_to_run="hazard")
 
@@ -156,6 +246,29 @@ def _compare(args):
     result = compare_runs(args.run_a, args.run_b)
     folder = write_change_report(args.run_a, args.run_b, out_dir=args.out, result=result)
     print(change_summary_text(result, folder, top_n=args.top))
+    return 0
+
+
+def _report(args):
+    from quakefolio.core.errors import InputError
+    from quakefolio.pipeline.compare import resolve_run
+    from quakefolio.pipeline.report import write_report
+
+    run = resolve_run(args.run)
+    previous = resolve_run(args.previous) if args.previous else None
+    if args.out:
+        out = Path(args.out).resolve()
+        if not out.parent.is_dir():
+            raise InputError(out.parent, "folder does not exist")
+    else:
+        out = run.parent.parent / "reports" / f"{run.name}.html"
+    for folder in (run, previous):
+        if folder is not None and out.is_relative_to(folder):
+            raise InputError(out, f"inside run folder {folder}: finished runs are never modified")
+    if out.is_dir():
+        raise InputError(out, "is a folder; give a file name")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    print(write_report(run, out, previous_run=previous))
     return 0
 
 
@@ -337,8 +450,8 @@ def main(argv=None):
     from quakefolio.pipeline.runner import StageError
 
     try:
-        handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare,
-                    "fit-fragility": _fit_fragility}
+        handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "report": _report,
+                    "fit-fragility": _fit_fragility, "schedule": _schedule}
         return handlers[args.command](args)
     except InputError as exc:
         if args.debug:

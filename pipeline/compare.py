@@ -116,6 +116,10 @@ SETTING_SCOPES = {
     ("output", "loss_curve_ratios"): "other_tables",
     ("execution", "*"): "none",
     ("portfolio", "*"): "event_based",
+    ("screening", "*"): "other_tables",
+    ("scenario", "alternatives"): "other_tables",
+    ("scenario", "discount_rate"): "other_tables",
+    ("scenario", "benefit_horizon_yr"): "other_tables",
 }
 
 _EP_METRICS = (("aep_loss", "pml_aep"), ("oep_loss", "pml_oep"), ("tvar_loss", "tvar"))

@@ -18,7 +18,7 @@ from quakefolio.core.errors import InputError, locate_toml_line
 from quakefolio.core.ims import parse_im
 from quakefolio.fragility.library import read_toml
 
-__all__ = ["Config", "load_config", "SCHEMA", "IM_UNITS_TO_G"]
+__all__ = ["Config", "load_config", "SCHEMA", "IM_UNITS_TO_G", "resolve_execution"]
 
 #: Conversion factors from accepted IM-level units to g (standard gravity 9.80665 m/s2,
 #: CGPM 1901 / ISO 80000-3).
@@ -74,6 +74,13 @@ def _quantiles(v):
     if any(not 0 < q < 1 for q in v) or sorted(set(v)) != list(v):
         return "expected strictly increasing probabilities in (0, 1)"
     return None
+
+
+def _dask_address(v):
+    """An empty string (start a local cluster) or a Dask scheduler address such as ``tcp://10.0.0.5:8786``."""
+    if not v or re.match(r"^(tcp|tls|ucx|inproc)://\S+$", v):
+        return None
+    return "expected a Dask scheduler address such as 'tcp://10.0.0.5:8786' (or \"\" for a local cluster)"
 
 
 def _levels(v):
@@ -150,10 +157,11 @@ SCHEMA = {
         "loss_curve_ratios": _Key("floats", [0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5,
                                              0.6, 0.7, 0.8, 0.9, 0.95, 0.99], _ratios),
         "top_assets": _Key(int, 10, _positive_int),
+        "report": _Key(bool, True, help="write report.html into the run folder"),
     },
     "execution": {
         "backend": _Key(str, "local", choices=("local", "dask")),
-        "address": _Key(str, ""),
+        "address": _Key(str, "", _dask_address, help="Dask scheduler, e.g. tcp://10.0.0.5:8786"),
         "max_workers": _Key(int, 2, _positive_int),
         "block_size": _Key(int, 20000, _positive_int, help="(site, class) pairs per task"),
         "site_block_size": _Key(int, 64, _positive_int, help="hazard sites per task"),
@@ -436,3 +444,17 @@ def sha256_file(path, chunk=1 << 20):
                 break
             h.update(b)
     return h.hexdigest()
+
+
+def resolve_execution(config, executor=None, address=None):
+    """``(backend, address)`` from the config's ``[execution]``, overridden by the command line.
+
+    ``executor`` (``"local"`` or ``"dask"``) replaces ``backend``; ``address`` replaces
+    ``address`` and alone implies the Dask backend.  An empty address with the Dask
+    backend means a local cluster (``quakefolio.pipeline.orchestration.LOCAL_CLUSTER``).
+    """
+    ex = config["execution"]
+    backend = executor or ("dask" if address else ex["backend"])
+    if backend != "dask":
+        return "local", ""
+    return "dask", address if address is not None else ex["address"]

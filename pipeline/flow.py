@@ -9,8 +9,11 @@ The stage sequence is shared with the pure-library path, so both give identical 
 """
 from __future__ import annotations
 
+from contextlib import contextmanager
+
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
+from prefect.context import FlowRunContext
 from prefect.task_runners import ThreadPoolTaskRunner
 
 from quakefolio.pipeline import progress, stages
@@ -78,7 +81,26 @@ def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
     executor = PrefectExecutor()
     executor.config_path = config_path
     inputs = executor.one("ingest", stages.load_inputs, config_path)
-    return str(execute(inputs, executor, stages_to_run=stages_to_run))
+    with _for_task_runner(executor, inputs, config_path) as executor:
+        return str(execute(inputs, executor, stages_to_run=stages_to_run))
+
+
+@contextmanager
+def _for_task_runner(executor, inputs, config_path):
+    """The executor for this flow run's task runner.
+
+    On a Dask task runner, block stages go to the workers with small arguments
+    (:class:`quakefolio.pipeline.orchestration.DaskExecutor`); otherwise ``executor``.
+    """
+    runner = FlowRunContext.get().task_runner
+    if not type(runner).__module__.startswith("prefect_dask"):
+        yield executor
+        return
+    from quakefolio.pipeline.orchestration import DaskExecutor
+
+    with DaskExecutor(inputs, config_path) as dask_executor:
+        dask_executor.config_path = executor.config_path
+        yield dask_executor
 
 
 def run_flow(config_path, max_workers=2, stages_to_run="all"):

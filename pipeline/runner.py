@@ -109,7 +109,7 @@ def execute(inputs, executor, *, stages_to_run="all"):
                                   [(model, inputs.hazard, rps, b) for b in blocks])
             executor.one("disaggregation-combine", hs.combine_disaggregation, model, inputs.hazard, blocks, parts)
             timings["disaggregation_s"] = time.perf_counter() - t
-    results = portfolio = None
+    results = portfolio = extra = None
     if stages_to_run == "all":
         t = time.perf_counter()
         results = executor.many("damage-and-loss-block", stages.compute_block,
@@ -129,14 +129,20 @@ def execute(inputs, executor, *, stages_to_run="all"):
                 ps.save_cached(inputs.cache, key, portfolio)
             inputs.cache.count("event_stage", hits=int(from_cache), misses=int(not from_cache))
             timings["event_based_s"] = time.perf_counter() - t
-    return executor.one("store-run", write_run, inputs, results, timings, portfolio)
+        from quakefolio.pipeline import whatif
+
+        t = time.perf_counter()
+        extra = executor.one("screening-and-what-if", whatif.evaluate, inputs, results, portfolio)
+        timings["screening_whatif_s"] = time.perf_counter() - t
+    return executor.one("store-run", write_run, inputs, results, timings, portfolio, extra)
 
 
-def write_run(inputs, results, timings, portfolio=None):
+def write_run(inputs, results, timings, portfolio=None, extra=None):
     """Assemble every table, write the run folder atomically, return its path.
 
     ``results`` None writes the hazard tables only (``quakefolio hazard``); ``portfolio``
-    is the (tables, cross-checks) pair of the event-based stage, if it ran.
+    is the (tables, cross-checks) pair of the event-based stage, if it ran; ``extra`` a
+    dict of further tables (screening and what-if), if any.
     """
     t0 = time.perf_counter()
     cfg = inputs.config
@@ -157,6 +163,8 @@ def write_run(inputs, results, timings, portfolio=None):
     if portfolio is not None:
         frames.update(portfolio[0])
         checks = portfolio[1]
+    if extra:
+        frames.update(extra)
     digest = inputs_digest(inputs)
     output = cfg["output"]["folder"]
     run_id = new_run_id(output, digest)
@@ -198,6 +206,10 @@ def write_run(inputs, results, timings, portfolio=None):
                 "ims": model.ims,
             }
         writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
+        if cfg["output"]["report"]:
+            from quakefolio.pipeline.report import write_report  # lazy: the report module imports this one
+
+            write_report(writer.partial, writer.partial / "report.html")
         return writer.commit()
     except BaseException:
         writer.abort()

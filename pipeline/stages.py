@@ -123,6 +123,9 @@ def load_inputs(config_or_path):
     inputs.cache = StageCache(config["output"]["folder"], enabled=config["execution"]["cache"])
     if model is not None:
         model.cache = inputs.cache
+    from quakefolio.pipeline.whatif import validate as validate_alternatives
+
+    validate_alternatives(inputs)  # retrofit alternatives: asset ids, classes, IMs
     return inputs
 
 
@@ -142,8 +145,9 @@ def plan_blocks(inputs):
     settings, same code) are read from it and left out of the blocks.
     """
     size = inputs.config["execution"]["block_size"]
+    model = inputs.hazard_model
     use_cache = inputs.cache is not None and inputs.cache.enabled and not (
-        inputs.hazard_model is not None and inputs.config["hazard"]["propagate_branches"])
+        model is not None and (inputs.config["hazard"]["propagate_branches"] or not model.statistics))
     blocks = []
     classes = inputs.exposure.building_class.to_numpy()
     inputs.cached_pairs, inputs.pair_keys = {}, {}

@@ -91,6 +91,67 @@ def _cache_lines(manifest):
     return ["", "  cache: " + "; ".join(parts)]
 
 
+def _screening_lines(run_dir, cfg, top_n):
+    """Assets above the collapse target (count and the worst few) and the risk-targeted IM range."""
+    if not (run_dir / "collapse_screening.parquet").exists():
+        return []
+    scr = read_table(run_dir, "collapse_screening")
+    sc = cfg.get("screening") or {}
+    target_p = scr.target_prob.iloc[0] if len(scr) else sc.get("collapse_target_prob", float("nan"))
+    target_t = scr.target_years.iloc[0] if len(scr) else sc.get("collapse_target_years", float("nan"))
+    flagged = scr[scr.exceeds_target].sort_values(["ratio_to_target", "asset_id"], ascending=[False, True])
+    lines = ["", f"  collapse-risk screening: {len(flagged)} of {len(scr)} assets exceed the target of "
+                 f"{target_p:.2%} collapse probability in {target_t:g} years"]
+    for r in flagged.head(min(3, top_n)).itertuples():
+        lines.append(f"    {r.asset_id:<12}{r.building_class:<10}{r.site_id:<8}P({target_t:g} yr) "
+                     f"{r.collapse_prob_in_target_years:.4f}  {r.ratio_to_target:.1f} x target")
+    if (run_dir / "site_risk_targeted_im.parquet").exists():
+        rt = read_table(run_dir, "site_risk_targeted_im")
+        lines.append(f"  risk-targeted IM [g] across sites (min / median / max; generic collapse fragility beta "
+                     f"{sc.get('rt_beta', float('nan')):g}, {sc.get('rt_prob_at_im', float('nan')):.0%} at the IM), "
+                     "risk coefficient vs 2% in 50 yr:")
+        for im, grp in rt.groupby("im", sort=True):
+            v, c = grp.risk_targeted_im_g.dropna(), grp.risk_coefficient.dropna()
+            text = f"{v.min():.3f} / {v.median():.3f} / {v.max():.3f}" if len(v) else "not bracketed"
+            coef = f"   coefficient {c.min():.2f} - {c.max():.2f}" if len(c) else ""
+            flagged_sites = int((grp.flag != "ok").sum())
+            lines.append(f"    {im:<8} {text}{coef}" + (f"   ({flagged_sites} sites flagged)" if flagged_sites else ""))
+    return lines
+
+
+def _whatif_lines(run_dir, cur):
+    """One short block per retrofit alternative: EAL, collapses, event-based change, benefit-cost."""
+    if not (run_dir / "whatif_benefit_cost.parquet").exists():
+        return []
+    bc = read_table(run_dir, "whatif_benefit_cost")
+    port = read_table(run_dir, "whatif_portfolio")
+    assets = read_table(run_dir, "whatif_assets")
+    lines = ["", "  retrofit what-if (each alternative against this run):"]
+    for r in bc[bc.scope == "alternative"].itertuples():
+        sel = assets[assets.alternative_id == r.alternative_id]
+        p = port[port.alternative_id == r.alternative_id].set_index(["metric", "basis"], drop=False)
+        eal = p.loc[("eal", "classical")]
+        col = p.loc[("expected_collapses_in_horizon", "classical")]
+        flag = p.loc[("assets_exceeding_collapse_target", "classical")]
+        moves = ", ".join(f"{a} -> {b}" for a, b in sorted(set(zip(sel.building_class, sel.new_class))))
+        lines.append(f"  '{r.alternative_id}': {int(r.n_assets)} assets ({moves}); "
+                     f"{int((~sel.fragility_changed).sum())} unchanged")
+        lines.append(f"    classical EAL {_money(eal.value_before)} -> {_money(eal.value_after)} {cur}/yr "
+                     f"({eal.relative_change:+.1%}); expected collapses in the horizon {col.value_before:.2f} -> "
+                     f"{col.value_after:.2f}; assets above the collapse target {int(flag.value_before)} -> "
+                     f"{int(flag.value_after)}")
+        if ("aal", "ground_up") in p.index:
+            aal = p.loc[("aal", "ground_up")]
+            ep = p[(p.metric == "aep_loss") & (p.basis == "ground_up")].sort_values("return_period_yr")
+            pml = "; ".join(f"{row.return_period_yr:g} yr {row.relative_change:+.1%}" for row in ep.itertuples())
+            lines.append(f"    event-based AAL ground-up {_money(aal.change)} {cur}/yr +- "
+                         f"{_money(aal.standard_error_of_change)} (same events); PML AEP change: {pml}")
+        bcr = "n/a" if r.benefit_cost_ratio != r.benefit_cost_ratio else f"{r.benefit_cost_ratio:.2f}"
+        lines.append(f"    benefit-cost over {r.benefit_horizon_yr:g} yr at {r.discount_rate:.1%}: PV of avoided loss "
+                     f"{_money(r.pv_avoided_loss)} vs retrofit cost {_money(r.retrofit_cost)} {cur}: BCR {bcr}")
+    return lines
+
+
 def summary_text(run_dir, *, elapsed_s=None):
     run_dir = Path(run_dir)
     manifest = json.loads((run_dir / "manifest.json").read_text(encoding="utf-8"))
@@ -122,9 +183,11 @@ def summary_text(run_dir, *, elapsed_s=None):
                      f"{r.collapse_prob_in_horizon:>12.4f}{_money(r.eal):>14}")
     for w in manifest.get("warnings", []):
         lines.append(f"  note: {w}")
+    lines += _screening_lines(run_dir, cfg, top_n)
     lines += hazard
     if (run_dir / "portfolio_summary.parquet").exists():
         lines += _portfolio_lines(run_dir, manifest, cur)
+    lines += _whatif_lines(run_dir, cur)
     lines += _cache_lines(manifest)
     lines.append("")
     lines.append(f"  run folder{timing}: {run_dir}")

@@ -129,6 +129,63 @@ TABLES.update({
     ),
 })
 
+TABLES.update({
+    "collapse_screening": dict(
+        description="Collapse-risk screening per asset: the run's annual collapse rate and its Poisson probability "
+                    "in the target period against the target probability ([screening]; default 1% in 50 years, "
+                    "the collapse target of ASCE/SEI 7-16 Chapter 21); exceeds_target and ratio_to_target "
+                    "(probability / target).",
+        units={"annual_collapse_rate": "1/yr", "collapse_prob_in_target_years": "-", "target_prob": "-",
+               "target_years": "yr", "ratio_to_target": "-"},
+    ),
+    "site_risk_targeted_im": dict(
+        description="Per hazard site and IM: the risk-targeted IM of the curve that drives the damage results "
+                    "(generic lognormal collapse fragility with dispersion rt_beta and probability rt_prob_at_im "
+                    "at that IM giving the target collapse probability; ASCE/SEI 7-16 Section 21.2.1.2 after "
+                    "Luco et al. 2007), the uniform-hazard IM of 2% in 50 years and their ratio (risk "
+                    "coefficient). NaN with a flag where the target cannot be bracketed or the 2%-in-50-years rate "
+                    "lies outside the curve.",
+        units={"risk_targeted_im_g": "g", "im_at_2pct_50yr_g": "g", "risk_coefficient": "-"},
+    ),
+    "whatif_assets": dict(
+        description="Retrofit what-if, per alternative and selected asset: class before and after, EAL, annual "
+                    "collapse rate, collapse probability in the horizon and the collapse-target flag, before (the "
+                    "run) and after (the new class; recomputed per unique site and class pair). "
+                    "fragility_changed is false where the new class has the same parameters (nothing recomputed).",
+        units={"replacement_value": "{currency}", "eal_before": "{currency}/yr", "eal_after": "{currency}/yr",
+               "eal_reduction": "{currency}/yr", "annual_collapse_rate_before": "1/yr",
+               "annual_collapse_rate_after": "1/yr", "collapse_prob_in_horizon_before": "-",
+               "collapse_prob_in_horizon_after": "-", "collapse_prob_reduction": "-", "horizon_yr": "yr"},
+    ),
+    "whatif_asset_damage": dict(
+        description="Retrofit what-if, per alternative, selected asset and damage state of its class before and "
+                    "after: annual rate of reaching or exceeding the state and its probability in the horizon.",
+        units={"annual_rate_exceed": "1/yr", "prob_exceed_in_horizon": "-", "horizon_yr": "yr"},
+    ),
+    "whatif_portfolio": dict(
+        description="Retrofit what-if, portfolio metrics before (the run) and after each alternative, long form: "
+                    "classical EAL, expected number of collapses in the horizon (sum of probabilities), assets "
+                    "above the collapse target; in event-based runs AAL per basis (standard error of the change "
+                    "from the paired year losses: same events and ground-motion fields) and PML on the AEP and "
+                    "OEP curves and TVaR per return period and basis. Each row's unit is in its unit column.",
+        units={"return_period_yr": "yr", "value_before": "see column unit", "value_after": "see column unit",
+               "change": "see column unit", "relative_change": "-", "standard_error_of_change": "see column unit"},
+    ),
+    "whatif_benefit_cost": dict(
+        description="Retrofit what-if benefit-cost, per alternative (scope 'alternative', sums over its assets) "
+                    "and per asset (scope 'asset'): retrofit cost, avoided EAL, present value of the avoided EAL "
+                    "over the benefit horizon at the discount rate (ordinary annuity, PV = avoided EAL x "
+                    "(1 - (1 + r)^-T) / r, or x T at r = 0), net present value, benefit-cost ratio (PV / cost) and "
+                    "the annual collapse probability before and after (for scope 'alternative' the sums: expected "
+                    "collapses per year).",
+        units={"retrofit_cost": "{currency}", "eal_before": "{currency}/yr", "eal_after": "{currency}/yr",
+               "avoided_eal": "{currency}/yr", "discount_rate": "1/yr", "benefit_horizon_yr": "yr",
+               "annuity_factor_yr": "yr", "pv_avoided_loss": "{currency}", "net_present_value": "{currency}",
+               "benefit_cost_ratio": "-", "annual_collapse_prob_before": "-", "annual_collapse_prob_after": "-",
+               "avoided_annual_collapse_prob": "-"},
+    ),
+})
+
 
 def units_for(name, currency):
     return {k: v.replace("{currency}", currency) for k, v in TABLES[name]["units"].items()}

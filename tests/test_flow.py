@@ -42,3 +42,4 @@ def test_demo_end_to_end_cli(tmp_path):
     loss = read_table(run, "asset_loss")
     assert len(loss) >= 400 and loss.building_class.nunique() >= 6
     assert (loss.eal > 0).all()
+    assert (run / "report.html").read_text(encoding="utf-8").startswith("<!DOCTYPE html>")

@@ -1,0 +1,608 @@
+r"""Decision support: collapse-risk screening and retrofit what-if alternatives (stage functions).
+
+Collapse-risk screening (always on, ``[screening]``)
+    Per asset, the annual collapse rate of the run and its Poisson probability in
+    ``collapse_target_years``, :math:`P = 1 - e^{-\lambda_c t}`, against
+    ``collapse_target_prob`` (default 1% in 50 years, the collapse target of ASCE/SEI 7-16
+    Chapter 21).  Per hazard site and IM, the risk-targeted IM of the mean curve: the IM at
+    which a generic lognormal collapse fragility (dispersion ``rt_beta``, probability
+    ``rt_prob_at_im`` of collapse at that IM) reaches the target (ASCE/SEI 7-16 Section
+    21.2.1.2, after Luco et al. 2007; :func:`quakefolio.core.risk.risk_targeted_im`),
+    beside the uniform-hazard IM of 2% in 50 years and their ratio, the risk coefficient.
+
+Retrofit what-if (``[[scenario.alternatives]]``)
+    Each alternative moves a set of assets to another building class (optionally from
+    another fragility library) and is evaluated against the run on its own (alternatives
+    are not combined).  Per affected asset the damage-state rates, the annual collapse
+    rate and its probability in the horizon and the EAL are recomputed per unique
+    (site, class) pair with the kernels of :func:`quakefolio.pipeline.stages.compute_block`.
+    Assets whose new class has the same fragility and consequence parameters as their
+    current one are not recomputed (their results are unchanged by definition).  In an
+    event-based run the event losses are recomputed with the same events and ground-motion
+    fields (same seed and random streams) with the changed class assignment, giving the
+    change in AAL (with the standard error of the paired difference of year losses), PML
+    on the AEP and OEP curves and TVaR.  Benefit-cost: the present value of the avoided EAL
+    over ``benefit_horizon_yr`` at ``discount_rate`` (an ordinary annuity, common
+    practice) against the retrofit cost.
+
+No Prefect here: :func:`evaluate` is one stage called by
+:func:`quakefolio.pipeline.runner.execute`; numerics go through :mod:`quakefolio.core`
+and :mod:`quakefolio.fragility`.
+
+References
+----------
+ASCE (2017). Minimum Design Loads and Associated Criteria for Buildings and Other
+Structures, ASCE/SEI 7-16, Section 21.2.1.2 (risk-targeted ground motion, method 2).
+
+Luco, N., Ellingwood, B.R., Hamburger, R.O., Hooper, J.D., Kimball, J.K., Kircher, C.A.
+(2007). Risk-targeted versus current seismic design maps for the conterminous United
+States. SEAOC 2007 Convention Proceedings.
+"""
+from __future__ import annotations
+
+import dataclasses
+import difflib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from quakefolio.core.curves import im_at_rate, prob_in_years, rate_from_prob
+from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.loss import expected_annual_loss
+from quakefolio.core.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
+from quakefolio.core.risk import risk_targeted_im
+from quakefolio.fragility import CrossingError, load_library
+from quakefolio.pipeline.ingest import UnavailableIM, curves_for_im
+
+__all__ = ["Alternative", "EventRerun", "validate", "evaluate", "screening_tables", "alternative_tables",
+           "rerun_events", "annuity_factor", "present_value", "UHS_PROB", "UHS_YEARS"]
+
+#: Uniform-hazard reference of the risk coefficient: 2% probability of exceedance in 50 years
+#: (the MCE ground motion that ASCE/SEI 7-16 Section 21.2.1.2 scales by the risk coefficient).
+UHS_PROB, UHS_YEARS = 0.02, 50.0
+
+_TABLE = ("scenario", "alternatives")
+
+
+@dataclass(frozen=True)
+class Alternative:
+    """One validated retrofit alternative."""
+
+    alt_id: str
+    description: str
+    assets: np.ndarray  # exposure row indices of the selected assets, ascending
+    new_class: str
+    dss: object  # DamageStateSet of new_class
+    library: str  # file new_class comes from
+    retrofit_cost: np.ndarray  # (n_selected,) [currency], per asset
+    changed: np.ndarray  # (n_selected,) bool: the new class's parameters differ from the current ones
+
+
+def _suggestion(name, valid, what):
+    close = difflib.get_close_matches(name, list(valid), n=1, cutoff=0.6)
+    if close:
+        return f"; did you mean {close[0]!r}?"
+    valid = sorted(valid)
+    shown = ", ".join(valid[:12]) + (", ..." if len(valid) > 12 else "")
+    return f"; {what}: {shown}"
+
+
+def _same_fragility(a, b):
+    """True when two damage-state sets give identical damage and loss (same IM and parameters)."""
+    return (a.im == b.im and a.collapse_index == b.collapse_index and a.n_states == b.n_states
+            and all(np.array_equal(getattr(a, k), getattr(b, k))
+                    for k in ("medians", "betas", "mean_damage_ratio", "cov")))
+
+
+def _check_new_class_hazard(inputs, dss, library_path, alt_id):
+    """The hazard must provide the new class's IM, and its curves must not cross (as for the run's classes)."""
+    cfg = inputs.config
+    code = dss.class_code
+    model = inputs.hazard_model
+
+    def text():
+        return Path(library_path).read_text(encoding="utf-8")
+
+    if model is None:
+        try:
+            levels, _ = curves_for_im(inputs.hazard, dss.im, allow_interpolation=cfg["hazard"]["period_interpolation"])
+        except UnavailableIM as exc:
+            raise InputError(library_path, f"class {code!r} (new_class of alternative {alt_id!r}): {exc}",
+                             row=locate_toml_line(text(), ("classes", code), "im"), column=f"classes.{code}.im") \
+                from None
+    else:
+        if dss.im not in model.ims:
+            raise InputError(library_path, f"class {code!r} (new_class of alternative {alt_id!r}): {dss.im} is not "
+                                           f"among the computed IMs ({', '.join(model.ims)}); add it to [hazard] ims "
+                                           f"in {cfg.path}",
+                             row=locate_toml_line(text(), ("classes", code), "im"), column=f"classes.{code}.im")
+        levels = model.levels_g
+    if cfg["fragility"]["crossing"] == "reject":
+        try:
+            dss.check_crossing(float(np.min(levels)), float(np.max(levels)))
+        except CrossingError as exc:
+            j = dss.names.index(exc.upper)
+            raise InputError(library_path, f"{exc} (new_class of alternative {alt_id!r})",
+                             row=locate_toml_line(text(), ("classes", code, "states"), "beta", j),
+                             column=f"classes.{code}.states[{j}].beta") from None
+
+
+def validate(inputs):
+    """Check every ``[[scenario.alternatives]]`` table against the exposure, libraries and hazard.
+
+    Raises InputError naming the config file, the line and the key
+    (``scenario.alternatives[i].<key>``) for unknown asset ids and classes, and naming the
+    library file for a new class whose IM the hazard cannot provide or whose curves
+    cross.  Records the sha256 of every extra library in ``inputs.input_hashes``.
+
+    Returns
+    -------
+    list of :class:`Alternative`, in config order.
+    """
+    cfg = inputs.config
+    entries = cfg["scenario"]["alternatives"]
+    if not entries:
+        return []
+    config_text = Path(cfg.path).read_text(encoding="utf-8")
+    ex = inputs.exposure
+    ids = ex.asset_id.to_numpy().astype(str)
+    position = pd.Series(np.arange(len(ids)), index=ids)
+    classes = ex.building_class.to_numpy()
+    out = []
+    for i, entry in enumerate(entries):
+        aid = entry["id"]
+
+        def fail(msg, key):
+            raise InputError(cfg.path, f"alternative {aid!r}: {msg}", row=locate_toml_line(config_text, _TABLE, key, i),
+                             column=f"scenario.alternatives[{i}].{key}")
+
+        selected = np.zeros(len(ex), dtype=bool)
+        if entry["assets"]:
+            wanted = np.asarray(entry["assets"], dtype=str)
+            known = np.isin(wanted, ids)
+            if not known.all():
+                bad = str(wanted[np.argmin(known)])
+                fail(f"unknown asset id {bad!r}" + _suggestion(bad, ids, f"the exposure {cfg['exposure']['file']} "
+                                                                         "has ids"), "assets")
+            selected[position.loc[wanted].to_numpy()] = True
+        code = entry["building_class"]
+        if code is not None:
+            if code not in inputs.library:
+                fail(f"unknown building class {code!r}" + _suggestion(code, inputs.library.classes,
+                                                                      "the library defines"), "building_class")
+            of_class = classes == code
+            if not of_class.any():
+                fail(f"no asset of class {code!r} in the exposure {cfg['exposure']['file']}", "building_class")
+            selected |= of_class
+        if entry["fragility_library"] is None:
+            library, library_path = inputs.library, str(cfg["fragility"]["library"])
+        else:
+            library_path = str(entry["fragility_library"])
+            library = load_library(library_path)
+            inputs.input_hashes[f"fragility_library:{aid}"] = {"path": library_path, "sha256": library.sha256}
+        new_class = entry["new_class"]
+        if new_class not in library:
+            fail(f"unknown building class {new_class!r}" + _suggestion(new_class, library.classes,
+                                                                       f"{library_path} defines"), "new_class")
+        dss = library[new_class]
+        _check_new_class_hazard(inputs, dss, library_path, aid)
+        assets = np.flatnonzero(selected)
+        value = ex.replacement_value.to_numpy()[assets]
+        if entry["retrofit_cost"] is not None:
+            cost = np.full(len(assets), entry["retrofit_cost"])
+        else:
+            cost = entry["retrofit_cost_ratio"] * value
+        changed = np.array([not _same_fragility(inputs.library[c], dss) for c in classes[assets]], dtype=bool)
+        out.append(Alternative(aid, entry["description"], assets, new_class, dss, library_path, cost, changed))
+    return out
+
+
+# --- per-pair kernels -------------------------------------------------------------------------
+
+def _pair_kernel(inputs, dss, sites):
+    """Damage-state rates (m, n_ds) [1/yr] and EAL ratio (m,) [1/yr] at unique hazard sites.
+
+    The calls of :func:`quakefolio.pipeline.stages.compute_block` (same curves, tail
+    policy and crossing option).
+    """
+    fr = inputs.config["fragility"]
+    levels, rates = curves_for_im(inputs.hazard, dss.im)
+    ds = dss.annual_rates(levels[sites], rates[sites], tail=fr["tail"], envelope=fr["crossing"] == "envelope")
+    return ds, expected_annual_loss(ds, dss.mean_damage_ratio)
+
+
+def _run_asset_rates(inputs, results):
+    """Per class: the run's damage-state rates and EAL ratio of each of its assets.
+
+    Taken from the damage stage's block results (and pairs it read from the content
+    cache); a pair found in neither is computed with the same kernels.
+
+    Returns dict class -> (asset indices, ds rates (a, n_ds), eal ratio (a,)).
+    """
+    parts = {}
+    for res in results or ():
+        parts.setdefault(res.block.class_code, []).append((res.block.sites, res.ds_rates, res.eal_ratio))
+    for code, (sites, rows) in (getattr(inputs, "cached_pairs", None) or {}).items():
+        if len(sites):
+            parts.setdefault(code, []).append((sites, rows["ds"], rows["eal"]))
+    classes = inputs.exposure.building_class.to_numpy()
+    out = {}
+    for code in sorted(set(classes)):
+        dss = inputs.library[code]
+        assets = np.flatnonzero(classes == code)
+        need = np.unique(inputs.site_index[assets])
+        got = parts.get(code, [])
+        sites = np.concatenate([np.asarray(s) for s, _, _ in got] + [np.zeros(0, dtype=need.dtype)])
+        ds = np.concatenate([np.asarray(d) for _, d, _ in got] + [np.zeros((0, dss.n_states))])
+        eal = np.concatenate([np.asarray(e) for _, _, e in got] + [np.zeros(0)])
+        missing = np.setdiff1d(need, sites)
+        if missing.size:
+            ds_m, eal_m = _pair_kernel(inputs, dss, missing)
+            sites, ds, eal = np.concatenate([sites, missing]), np.concatenate([ds, ds_m]), np.concatenate([eal, eal_m])
+        sites, first = np.unique(sites, return_index=True)
+        pair = np.searchsorted(sites, inputs.site_index[assets])
+        out[code] = (assets, ds[first][pair], eal[first][pair])
+    return out
+
+
+def _per_asset(inputs, by_class):
+    """Annual collapse rate and EAL ratio of every asset, in exposure order."""
+    n = len(inputs.exposure)
+    collapse, eal_ratio = np.empty(n), np.empty(n)
+    for code, (assets, ds, eal) in by_class.items():
+        collapse[assets] = ds[:, inputs.library[code].collapse_index]
+        eal_ratio[assets] = eal
+    return collapse, eal_ratio
+
+
+# --- screening --------------------------------------------------------------------------------
+
+def _mean_curve_sets(inputs):
+    """(statistic, im, levels (m, n), rates (m, n)) of the curves that drive the damage results."""
+    model = inputs.hazard_model
+    hz = inputs.hazard
+    if model is None:
+        stat = inputs.config["hazard"]["statistic"]
+        for im in sorted(set(hz.curves) - hz.interpolated):
+            yield (stat, im) + tuple(hz.curves[im])
+        return
+    levels = np.broadcast_to(model.levels_g, (len(hz.site_id), len(model.levels_g)))
+    for i, im in enumerate(model.ims):
+        yield "mean", im, levels, model.statistics["mean"][i]
+
+
+def screening_tables(inputs, collapse_rate):
+    """``collapse_screening`` (per asset) and ``site_risk_targeted_im`` (per site and IM).
+
+    Parameters
+    ----------
+    collapse_rate : ndarray (n_assets,) [1/yr]
+        The run's annual collapse rate of every asset (exposure order).
+    """
+    cfg = inputs.config
+    sc = cfg["screening"]
+    target_p, target_t = sc["collapse_target_prob"], sc["collapse_target_years"]
+    ex = inputs.exposure
+    prob = prob_in_years(collapse_rate, target_t)
+    assets = pd.DataFrame({
+        "asset_id": ex.asset_id.to_numpy(), "building_class": ex.building_class.to_numpy(),
+        "site_id": inputs.hazard.site_id[inputs.site_index], "annual_collapse_rate": collapse_rate,
+        "collapse_prob_in_target_years": prob, "target_prob": target_p, "target_years": target_t,
+        "exceeds_target": prob > target_p, "ratio_to_target": prob / target_p,
+    })
+    uhs_rate = float(rate_from_prob(UHS_PROB, UHS_YEARS))
+    below_floor = uhs_rate < cfg["hazard"]["rate_floor"]
+    frames = []
+    for stat, im, x, lam in _mean_curve_sets(inputs):
+        rt = risk_targeted_im(x, lam, beta=sc["rt_beta"], prob_at_im=sc["rt_prob_at_im"], target_prob=target_p,
+                              years=target_t, tail=cfg["fragility"]["tail"])
+        uhs = np.full(len(rt), np.nan) if below_floor else im_at_rate(uhs_rate, x, lam)
+        flag = np.where(np.isnan(rt), "risk_targeted_not_bracketed",
+                        np.where(np.isnan(uhs), "below_rate_floor" if below_floor else "uhs_outside_range", "ok"))
+        with np.errstate(invalid="ignore"):
+            coefficient = rt / uhs
+        frames.append(pd.DataFrame({"site_id": inputs.hazard.site_id, "im": im, "statistic": stat,
+                                    "risk_targeted_im_g": rt, "im_at_2pct_50yr_g": uhs,
+                                    "risk_coefficient": coefficient, "flag": flag}))
+    sites = pd.concat(frames, ignore_index=True)
+    return {"collapse_screening": assets, "site_risk_targeted_im": sites}
+
+
+# --- benefit-cost -----------------------------------------------------------------------------
+
+def annuity_factor(discount_rate, years):
+    r"""Present value [yr] of a unit amount received at the end of every year for ``years`` years.
+
+    Parameters
+    ----------
+    discount_rate : array_like [-], >= 0
+    years : array_like [yr], > 0
+
+    Notes
+    -----
+    Ordinary annuity (common practice):
+    :math:`a = \sum_{t=1}^{T}(1+r)^{-t} = (1 - (1+r)^{-T})/r`, and :math:`a = T` at
+    :math:`r = 0`; computed as ``-expm1(-T log1p(r)) / r`` for accuracy at small rates.
+    """
+    r = np.asarray(discount_rate, dtype=float)
+    t = np.asarray(years, dtype=float)
+    if np.any(~(r >= 0)):
+        raise ValueError(f"discount_rate must be non-negative, got {r!r}")
+    if np.any(~(t > 0)):
+        raise ValueError(f"years must be positive, got {t!r}")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(r > 0, -np.expm1(-t * np.log1p(r)) / np.where(r > 0, r, 1.0), t)
+
+
+def present_value(annual_amount, discount_rate, years):
+    """Present value [currency] of a constant annual amount [currency/yr] (:func:`annuity_factor`)."""
+    return np.asarray(annual_amount, dtype=float) * annuity_factor(discount_rate, years)
+
+
+# --- event-based rerun ------------------------------------------------------------------------
+
+@dataclass
+class EventRerun:
+    """Event and year losses of the event set under an alternative class assignment."""
+
+    event_id: np.ndarray
+    ground_up: np.ndarray  # (n_events,) [currency]
+    net: np.ndarray
+    year_ground_up: np.ndarray  # (n_years,) aggregate [currency]
+    year_net: np.ndarray
+    max_event_ground_up: np.ndarray  # (n_years,) largest event [currency]
+    max_event_net: np.ndarray
+    asset_aal_ground_up: np.ndarray  # (n_assets,) [currency/yr], exposure order
+
+
+def rerun_events(em, alternative):
+    """Event losses with the alternative's changed assets moved to its new class.
+
+    Same events, same per-event ground-motion models and the same ground-motion fields
+    (the event model ``em`` of the run, whose random streams depend only on the seed and
+    the event blocks).  The run's class entries are kept as they are, with the changed
+    assets' values set to zero there, and the changed assets are appended as extra
+    entries of the new class: every other asset sees exactly the same losses, also with
+    sampled damage states (whose random streams are per class entry).
+    """
+    from quakefolio.pipeline import portfolio_stage as ps
+
+    changed = alternative.assets[alternative.changed]
+    n = len(em.value)
+    extra = n + np.arange(len(changed))
+    value = np.concatenate([em.value, em.value[changed]])
+    value[changed] = 0.0
+    usites, pair = np.unique(em.asset_site[changed], return_inverse=True)
+    entry = (alternative.new_class, extra, em.ims.index(alternative.dss.im), alternative.dss, usites, pair.ravel())
+    alt = dataclasses.replace(em, value=value, deductible=np.concatenate([em.deductible, em.deductible[changed]]),
+                              limit=np.concatenate([em.limit, em.limit[changed]]), classes=list(em.classes) + [entry])
+    chunks = sorted((ps.event_chunk(alt, c) for c in ps.event_chunks(alt)), key=lambda r: r.start)
+    gu = np.concatenate([c.ground_up for c in chunks]) if chunks else np.zeros(0)
+    net = np.concatenate([c.net for c in chunks]) if chunks else np.zeros(0)
+    asset_sum = (np.concatenate([c.asset_sum for c in chunks]).sum(axis=0) if chunks
+                 else np.zeros((2, n + len(changed))))
+    per_asset = asset_sum[0, :n].copy()
+    per_asset[changed] = asset_sum[0, extra]
+    agg_gu, occ_gu = year_loss(em.events.year, gu, em.n_years)
+    agg_net, occ_net = year_loss(em.events.year, net, em.n_years)
+    return EventRerun(em.events.event_id, gu, net, agg_gu, agg_net, occ_gu, occ_net, per_asset / em.n_years)
+
+
+def _event_rows(alt_id, portfolio, rerun, return_periods, cur):
+    """whatif_portfolio rows of the event-based metrics: before (the run), after (the rerun)."""
+    tables = portfolio[0]
+    years = tables["year_loss"].sort_values("year")
+    summary = tables["portfolio_summary"].set_index("basis")
+    ep = tables["portfolio_ep"]
+    rows = []
+    for basis, agg, occ in (("ground_up", rerun.year_ground_up, rerun.max_event_ground_up),
+                            ("net", rerun.year_net, rerun.max_event_net)):
+        before_years = years[f"{basis}_loss"].to_numpy()
+        aal, _ = aal_with_standard_error(agg)
+        _, se_change = aal_with_standard_error(agg - before_years)  # paired: same simulated years
+        rows.append(_row(alt_id, "aal", basis, np.nan, f"{cur}/yr", float(summary.loc[basis, "aal"]), float(aal),
+                         float(se_change)))
+        b = ep[ep.basis == basis].set_index("return_period_yr")
+        after = {"aep_loss": ep_from_years(agg, return_periods), "oep_loss": ep_from_years(occ, return_periods),
+                 "tvar_loss": tvar(agg, return_periods)}
+        for metric, values in after.items():
+            for rp, v in zip(return_periods, values):
+                rows.append(_row(alt_id, metric, basis, float(rp), cur, float(b.loc[rp, metric]), float(v)))
+    return rows
+
+
+def _row(alt_id, metric, basis, rp, unit, before, after, se=np.nan):
+    change = after - before
+    with np.errstate(divide="ignore", invalid="ignore"):
+        relative = change / before if before != 0 else (0.0 if change == 0 else np.nan)
+    return {"alternative_id": alt_id, "metric": metric, "basis": basis, "return_period_yr": rp, "unit": unit,
+            "value_before": before, "value_after": after, "change": change, "relative_change": relative,
+            "standard_error_of_change": se}
+
+
+# --- what-if tables ---------------------------------------------------------------------------
+
+def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
+    """``whatif_assets``, ``whatif_asset_damage``, ``whatif_portfolio``, ``whatif_benefit_cost``.
+
+    Parameters
+    ----------
+    alternatives : list of :class:`Alternative` (from :func:`validate`)
+    by_class : the run's per-asset rates (:func:`_run_asset_rates`)
+    portfolio : (tables, checks) of the event-based stage, or None
+    em : EventModel of the run (prepared here when needed and not given)
+    """
+    cfg = inputs.config
+    sc, scen = cfg["screening"], cfg["scenario"]
+    cur, horizon = scen["currency"], scen["horizon_yr"]
+    rate, years = scen["discount_rate"], scen["benefit_horizon_yr"]
+    factor = float(annuity_factor(rate, years))
+    ex = inputs.exposure
+    ids = ex.asset_id.to_numpy()
+    position = pd.Series(np.arange(len(ids)), index=ids)
+    classes = ex.building_class.to_numpy()
+    value_all = ex.replacement_value.to_numpy()
+    site_all = inputs.hazard.site_id[inputs.site_index]
+    collapse_all, eal_ratio_all = _per_asset(inputs, by_class)
+    eal_all = eal_ratio_all * value_all
+    target_p, target_t = sc["collapse_target_prob"], sc["collapse_target_years"]
+    exceed_all = prob_in_years(collapse_all, target_t) > target_p
+    rps = np.asarray(cfg["portfolio"]["return_periods_yr"], dtype=float)
+    asset_frames, damage_frames, portfolio_rows, bc_frames = [], [], [], []
+    for alt in alternatives:
+        a = alt.assets
+        new = alt.dss
+        collapse_after = collapse_all[a].copy()
+        eal_ratio_after = eal_ratio_all[a].copy()
+        ds_before = _rates_of(by_class, classes, a)  # class -> (positions in a, rates)
+        ds_after = np.empty((len(a), new.n_states))
+        changed = np.flatnonzero(alt.changed)
+        if changed.size:
+            usites, pair = np.unique(inputs.site_index[a[changed]], return_inverse=True)
+            ds_new, eal_new = _pair_kernel(inputs, new, usites)
+            pair = pair.ravel()
+            ds_after[changed] = ds_new[pair]
+            collapse_after[changed] = ds_new[pair, new.collapse_index]
+            eal_ratio_after[changed] = eal_new[pair]
+        for code, (pos, r) in ds_before.items():
+            keep = ~alt.changed[pos]  # same parameters as the new class, so the same number of states
+            ds_after[pos[keep]] = r[keep]
+        frames = [_damage_frame(alt.alt_id, ids[a[pos]], "before", code, inputs.library[code].names, r, horizon)
+                  for code, (pos, r) in ds_before.items()]
+        frames.append(_damage_frame(alt.alt_id, ids[a], "after", alt.new_class, new.names, ds_after, horizon))
+        dmg = pd.concat(frames, ignore_index=True)
+        order = np.lexsort((dmg.damage_state_index.to_numpy(), (dmg.case == "after").to_numpy(),
+                            position.loc[dmg.asset_id].to_numpy()))
+        damage_frames.append(dmg.iloc[order])
+        value = value_all[a]
+        eal_before, eal_after = eal_all[a], eal_ratio_after * value
+        p_before = prob_in_years(collapse_all[a], horizon)
+        p_after = prob_in_years(collapse_after, horizon)
+        exceed_after = prob_in_years(collapse_after, target_t) > target_p
+        asset_frames.append(pd.DataFrame({
+            "alternative_id": alt.alt_id, "asset_id": ids[a], "building_class": classes[a],
+            "new_class": alt.new_class, "site_id": site_all[a], "replacement_value": value,
+            "fragility_changed": alt.changed, "eal_before": eal_before, "eal_after": eal_after,
+            "eal_reduction": eal_before - eal_after, "annual_collapse_rate_before": collapse_all[a],
+            "annual_collapse_rate_after": collapse_after, "collapse_prob_in_horizon_before": p_before,
+            "collapse_prob_in_horizon_after": p_after, "collapse_prob_reduction": p_before - p_after,
+            "horizon_yr": horizon, "exceeds_collapse_target_before": exceed_all[a],
+            "exceeds_collapse_target_after": exceed_after,
+        }))
+        # portfolio metrics (classical: every asset of the exposure, only the selected ones change)
+        eal_total_after = eal_all.sum() - (eal_before - eal_after).sum()
+        collapses = prob_in_years(collapse_all, horizon)
+        exceed_count_after = exceed_all.sum() - exceed_all[a].sum() + exceed_after.sum()
+        portfolio_rows += [
+            _row(alt.alt_id, "eal", "classical", np.nan, f"{cur}/yr", float(eal_all.sum()), float(eal_total_after)),
+            _row(alt.alt_id, "expected_collapses_in_horizon", "classical", np.nan, "-", float(collapses.sum()),
+                 float(collapses.sum() - (p_before - p_after).sum())),
+            _row(alt.alt_id, "assets_exceeding_collapse_target", "classical", np.nan, "-", float(exceed_all.sum()),
+                 float(exceed_count_after)),
+        ]
+        if portfolio is not None:
+            if changed.size:
+                if em is None:
+                    from quakefolio.pipeline.portfolio_stage import prepare_events
+
+                    em = prepare_events(inputs)
+                rerun = rerun_events(em, alt)
+                portfolio_rows += _event_rows(alt.alt_id, portfolio, rerun, rps, cur)
+            else:  # nothing changes: the run's own numbers
+                portfolio_rows += _unchanged_event_rows(alt.alt_id, portfolio, rps, cur)
+        # benefit-cost per asset and in total
+        avoided = eal_before - eal_after
+        pv = avoided * factor
+        cost = alt.retrofit_cost
+        annual_before, annual_after = prob_in_years(collapse_all[a], 1.0), prob_in_years(collapse_after, 1.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            bcr = pv / cost
+        per_asset = pd.DataFrame({
+            "alternative_id": alt.alt_id, "scope": "asset", "asset_id": ids[a].astype(object), "n_assets": 1,
+            "retrofit_cost": cost, "eal_before": eal_before, "eal_after": eal_after, "avoided_eal": avoided,
+            "discount_rate": rate, "benefit_horizon_yr": years, "annuity_factor_yr": factor,
+            "pv_avoided_loss": pv, "net_present_value": pv - cost, "benefit_cost_ratio": bcr,
+            "annual_collapse_prob_before": annual_before, "annual_collapse_prob_after": annual_after,
+            "avoided_annual_collapse_prob": annual_before - annual_after,
+        })
+        total = {c: [per_asset[c].sum()] for c in ("n_assets", "retrofit_cost", "eal_before", "eal_after",
+                                                   "avoided_eal", "pv_avoided_loss", "net_present_value",
+                                                   "annual_collapse_prob_before", "annual_collapse_prob_after",
+                                                   "avoided_annual_collapse_prob")}
+        total_row = pd.DataFrame({"alternative_id": [alt.alt_id], "scope": ["alternative"], "asset_id": [None],
+                                  **total, "discount_rate": [rate], "benefit_horizon_yr": [years],
+                                  "annuity_factor_yr": [factor],
+                                  "benefit_cost_ratio": [total["pv_avoided_loss"][0] / total["retrofit_cost"][0]]})
+        bc_frames += [total_row[per_asset.columns], per_asset]
+    bc = pd.concat(bc_frames, ignore_index=True)
+    bc["n_assets"] = bc["n_assets"].astype(np.int64)
+    return {
+        "whatif_assets": pd.concat(asset_frames, ignore_index=True),
+        "whatif_asset_damage": pd.concat(damage_frames, ignore_index=True),
+        "whatif_portfolio": pd.DataFrame(portfolio_rows),
+        "whatif_benefit_cost": bc,
+    }
+
+
+def _rates_of(by_class, classes, a):
+    """The run's damage-state rates of assets ``a``, per current class: class -> (positions in a, rates)."""
+    out = {}
+    for code in sorted(set(classes[a])):
+        pos = np.flatnonzero(classes[a] == code)
+        assets, ds, _ = by_class[code]
+        out[code] = (pos, ds[np.searchsorted(assets, a[pos])])
+    return out
+
+
+def _damage_frame(alt_id, asset_ids, case, code, names, rates, horizon):
+    n, n_ds = rates.shape
+    return pd.DataFrame({
+        "alternative_id": alt_id, "asset_id": np.repeat(asset_ids, n_ds), "case": case, "building_class": code,
+        "damage_state": np.tile(np.array(names, dtype=object), n),
+        "damage_state_index": np.tile(np.arange(1, n_ds + 1, dtype=np.int32), n),
+        "annual_rate_exceed": rates.ravel(), "prob_exceed_in_horizon": prob_in_years(rates, horizon).ravel(),
+        "horizon_yr": horizon})
+
+
+def _unchanged_event_rows(alt_id, portfolio, return_periods, cur):
+    tables = portfolio[0]
+    summary = tables["portfolio_summary"].set_index("basis")
+    ep = tables["portfolio_ep"]
+    rows = []
+    for basis in ("ground_up", "net"):
+        aal = float(summary.loc[basis, "aal"])
+        rows.append(_row(alt_id, "aal", basis, np.nan, f"{cur}/yr", aal, aal, 0.0))
+        b = ep[ep.basis == basis].set_index("return_period_yr")
+        for metric in ("aep_loss", "oep_loss", "tvar_loss"):
+            for rp in return_periods:
+                v = float(b.loc[rp, metric])
+                rows.append(_row(alt_id, metric, basis, float(rp), cur, v, v))
+    return rows
+
+
+def evaluate(inputs, results, portfolio=None, em=None):
+    """The screening-and-what-if stage: a dict of tables for the run store.
+
+    Parameters
+    ----------
+    inputs : :class:`quakefolio.pipeline.stages.Inputs`
+    results : list of the damage stage's block results
+    portfolio : (tables, checks) of the event-based stage, or None
+    em : the event stage's EventModel, if at hand (otherwise prepared again when an
+        alternative needs the events: same seed, same events)
+
+    Returns
+    -------
+    dict name -> DataFrame: ``collapse_screening``, ``site_risk_targeted_im`` always;
+    ``whatif_assets``, ``whatif_asset_damage``, ``whatif_portfolio`` and
+    ``whatif_benefit_cost`` when the config has alternatives.
+    """
+    alternatives = validate(inputs)
+    by_class = _run_asset_rates(inputs, results)
+    collapse, _ = _per_asset(inputs, by_class)
+    tables = screening_tables(inputs, collapse)
+    if alternatives:
+        tables.update(alternative_tables(inputs, alternatives, by_class, portfolio, em))
+    return tables
