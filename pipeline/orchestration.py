@@ -1,0 +1,112 @@
+"""Scale-out: the ``portfolio-risk`` flow with its block tasks on a Dask cluster.
+
+The flow is the same as for a local run; only its task runner differs
+(``prefect_dask.DaskTaskRunner``).  Stages that run once (ingest, combining blocks,
+writing the run) stay in the driver process; stages mapped over blocks (hazard site
+blocks, disaggregation site blocks, (site, class) blocks, event chunks) run on the
+workers through :class:`DaskExecutor`, which sends each task a small run reference and
+its block instead of the in-memory inputs (see :mod:`quakefolio.pipeline.worker`).
+
+Every task reports to one Prefect API: :func:`run_on_dask` connects to (or starts) a
+local server on 127.0.0.1 (:mod:`quakefolio.pipeline.server`) and runs the flow with
+Prefect's settings pointing at it.  The settings travel with each submitted task, so the
+workers use that server instead of starting an embedded one each.
+
+Import this module only after :func:`quakefolio.pipeline.env.configure_prefect`.
+"""
+from __future__ import annotations
+
+import os
+from contextlib import contextmanager
+from pathlib import Path
+
+from quakefolio.pipeline.config import resolve_execution  # noqa: F401 - part of this module's API
+from quakefolio.pipeline.flow import PrefectExecutor
+from quakefolio.pipeline.worker import RemoteBlocks
+
+__all__ = ["DaskExecutor", "LOCAL_CLUSTER", "resolve_execution", "dask_task_runner", "run_on_dask", "using_api",
+           "flush_to_api"]
+
+#: The cluster started when no address is given: ``distributed.LocalCluster`` on loopback,
+#: 2 worker processes with one thread each, dashboard on a free loopback port.
+LOCAL_CLUSTER = {"n_workers": 2, "threads_per_worker": 1, "processes": True, "host": "127.0.0.1",
+                 "dashboard_address": "127.0.0.1:0"}
+
+
+def dask_task_runner(address=""):
+    """A ``DaskTaskRunner`` on the cluster at ``address``, or on a new :data:`LOCAL_CLUSTER`."""
+    from prefect_dask import DaskTaskRunner
+
+    if address:
+        return DaskTaskRunner(address=address)
+    return DaskTaskRunner(cluster_class="distributed.LocalCluster", cluster_kwargs=dict(LOCAL_CLUSTER))
+
+
+@contextmanager
+def using_api(url):
+    """Point Prefect at the API ``url`` within the block.
+
+    Prefect's settings of this process (they travel with every task submitted to Dask)
+    and ``PREFECT_API_URL`` in the environment (inherited by flow-run subprocesses) are
+    both set, and restored afterwards.
+    """
+    from prefect.settings import PREFECT_API_URL, temporary_settings
+
+    before = os.environ.get("PREFECT_API_URL")
+    os.environ["PREFECT_API_URL"] = url
+    try:
+        with temporary_settings(updates={PREFECT_API_URL: url}):
+            try:
+                yield
+            finally:
+                flush_to_api()
+    finally:
+        if before is None:
+            os.environ.pop("PREFECT_API_URL", None)
+        else:
+            os.environ["PREFECT_API_URL"] = before
+
+
+def flush_to_api(timeout_s=10.0):
+    """Send the logs and events still queued in this process to the API, waiting at most ``timeout_s`` each.
+
+    Call it before the server goes away; otherwise the background senders keep retrying
+    a closed port when the process exits.
+    """
+    from prefect.events.worker import EventsWorker
+    from prefect.logging.handlers import APILogWorker
+
+    for worker in (APILogWorker, EventsWorker):
+        try:
+            worker.drain_all(timeout=timeout_s)
+        except Exception:  # noqa: BLE001 - best effort: nothing queued, or the sender already stopped
+            pass
+
+
+def run_on_dask(config_path, address="", *, stages_to_run="all", api_url=None):
+    """Run ``portfolio-risk`` with its block tasks on Dask; returns the run folder.
+
+    ``address`` is the scheduler of an existing cluster (``tcp://host:port``); empty
+    starts :data:`LOCAL_CLUSTER` for this run.  ``api_url`` is the Prefect API every
+    task reports to; None connects to (or starts, and afterwards stops) the local
+    server of the state folder, or uses ``PREFECT_API_URL`` if set.
+    """
+    from quakefolio.pipeline.flow import portfolio_risk
+    from quakefolio.pipeline.server import connect_or_start
+
+    server = None
+    if api_url is None:
+        server = connect_or_start()
+        api_url = server.url
+    try:
+        with using_api(api_url):
+            flow = portfolio_risk.with_options(task_runner=dask_task_runner(address))
+            return Path(flow(str(Path(config_path).resolve()), stages_to_run))
+    finally:
+        if server is not None:
+            server.stop()  # only if this call started it
+
+
+class DaskExecutor(RemoteBlocks, PrefectExecutor):
+    """Single stages as Prefect tasks in the driver; block stages as Prefect tasks on the
+    Dask workers, with small arguments (:class:`quakefolio.pipeline.worker.RemoteBlocks`)."""
