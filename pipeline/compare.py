@@ -75,7 +75,7 @@ import pyarrow.parquet as pq
 from quakefolio.core.errors import InputError
 from quakefolio.core.ims import im_period
 from quakefolio.pipeline.caution import CAUTION
-from quakefolio.pipeline.store import PARTIAL_PREFIX, fsync_path, latest_run, read_table, to_arrow
+from quakefolio.pipeline.store import PARTIAL_PREFIX, fsync_path, latest_run, read_manifest, read_table, to_arrow
 from quakefolio.pipeline.tables import TABLES, units_for
 
 __all__ = ["compare_runs", "write_change_report", "resolve_run", "change_summary_text", "CAUSES",
@@ -133,13 +133,7 @@ class _Run:
     def __init__(self, path, given):
         self.path = path
         self.given = given
-        manifest_path = path / "manifest.json"
-        try:
-            self.manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
-        except json.JSONDecodeError as exc:
-            raise InputError(manifest_path, f"not a readable run manifest ({exc.msg})", row=exc.lineno) from None
-        if not isinstance(self.manifest, dict):
-            raise InputError(manifest_path, "not a readable run manifest (expected a JSON object)")
+        self.manifest = read_manifest(path)
         self.run_id = self.manifest.get("run_id", path.name)
         self.config = self.manifest.get("config") or {}
         self.output_folder = path.parent.parent

@@ -37,7 +37,7 @@ import pandas as pd
 from quakefolio.core.errors import InputError
 from quakefolio.core.ims import im_period
 from quakefolio.pipeline.caution import CAUTION
-from quakefolio.pipeline.store import PARTIAL_PREFIX, read_table
+from quakefolio.pipeline.store import PARTIAL_PREFIX, read_manifest, read_table
 
 __all__ = ["build_report", "write_report", "SECTIONS", "MAX_TABLE_ROWS", "TOP_ASSETS"]
 
@@ -326,12 +326,7 @@ class _Run:
             raise InputError(self.path, "no such run folder")
         if not manifest_path.is_file():
             raise InputError(manifest_path, "missing manifest.json: the report needs the run manifest")
-        try:
-            self.manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
-        except json.JSONDecodeError as exc:
-            raise InputError(manifest_path, f"not a readable run manifest ({exc.msg})", row=exc.lineno) from None
-        if not isinstance(self.manifest, dict):
-            raise InputError(manifest_path, "not a readable run manifest (expected a JSON object)")
+        self.manifest = read_manifest(self.path)
         self.config = self.manifest.get("config") or {}
         self.run_id = self.manifest.get("run_id") or self.path.name
         self._tables = {}

@@ -33,6 +33,7 @@ from pathlib import Path
 from urllib.parse import urlsplit
 
 from quakefolio.pipeline.env import state_folder
+from quakefolio.pipeline.store import process_alive
 
 __all__ = ["LOOPBACK", "LocalServer", "ServerError", "server_folder", "find_server", "start_server",
            "ensure_server", "connect_or_start", "is_healthy"]
@@ -105,20 +106,10 @@ def _wait_exit(server, timeout_s):
         if server._process is not None:
             if server._process.poll() is not None:
                 return True
-        elif not _alive(server.pid):
+        elif not process_alive(server.pid):
             return True
         time.sleep(0.1)
     return False
-
-
-def _alive(pid):
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 def is_healthy(url, timeout_s=2.0):
@@ -139,7 +130,7 @@ def find_server():
     except (OSError, ValueError):
         return None
     pid = info.get("pid")
-    if not isinstance(pid, int) or not _alive(pid) or not is_healthy(info.get("url", "")):
+    if not isinstance(pid, int) or not process_alive(pid) or not is_healthy(info.get("url", "")):
         return None
     return LocalServer(url=info["url"], host=info["host"], port=info["port"], pid=pid, owned=False,
                        database=Path(info["database"]), log=Path(info["log"]))

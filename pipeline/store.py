@@ -31,10 +31,10 @@ PARTIAL_PREFIX = ".partial-"
 METADATA_KEY = b"quakefolio"
 
 
-def _alive(pid):
-    """Whether a process with this id exists (POSIX signal 0 probe)."""
+def process_alive(pid):
+    """Whether another process with this id exists (POSIX signal 0 probe; this process: False)."""
     if pid == os.getpid():
-        return False  # a leftover of an earlier run of this very process id: not alive
+        return False  # e.g. a leftover of an earlier run that had this very process id
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
@@ -107,7 +107,7 @@ class RunWriter:
         """Remove partial folders left by runs that died (their process no longer exists)."""
         for p in self.runs.glob(f"{PARTIAL_PREFIX}*"):
             pid = p.name.rsplit(".", 1)[-1]
-            if pid.isdigit() and _alive(int(pid)):
+            if pid.isdigit() and process_alive(int(pid)):
                 continue  # another run writing into the same output folder right now
             shutil.rmtree(p, ignore_errors=True)
 
@@ -174,6 +174,22 @@ def latest_run(output_folder):
     run_id = pointer.read_text(encoding="utf-8").strip()
     path = Path(output_folder) / "runs" / run_id
     return path if path.is_dir() else None
+
+
+def read_manifest(run_dir):
+    """The run's manifest as a dict; InputError naming the file if it is not a readable JSON object."""
+    import json as _json
+
+    from quakefolio.core.errors import InputError
+
+    manifest_path = Path(run_dir) / "manifest.json"
+    try:
+        manifest = _json.loads(manifest_path.read_text(encoding="utf-8"))
+    except _json.JSONDecodeError as exc:
+        raise InputError(manifest_path, f"not a readable run manifest ({exc.msg})", row=exc.lineno) from None
+    if not isinstance(manifest, dict):
+        raise InputError(manifest_path, "not a readable run manifest (expected a JSON object)")
+    return manifest
 
 
 def read_table(run_dir, name):
