@@ -83,8 +83,23 @@ def _branch(config, model):
     return int(np.argmax(weights))
 
 
+def single_blas_thread():
+    """Run BLAS on one thread in this process from now on.
+
+    The correlated fields are matrix products and factorisations whose last bits depend
+    on how many threads BLAS splits them over; Dask workers run BLAS single-threaded, so
+    the event stage does too everywhere, and a block gives bitwise the same losses in a
+    thread pool, a single process or on a cluster.  (Process-wide and never undone, so
+    concurrent tasks cannot race on it.)
+    """
+    from threadpoolctl import threadpool_limits
+
+    threadpool_limits(limits=1, user_api="blas")
+
+
 def prepare_events(inputs):
     """Event set, per-event ground-motion model, sites, classes and the field sampler."""
+    single_blas_thread()
     cfg = inputs.config
     pf = cfg["portfolio"]
     model = inputs.hazard_model
@@ -174,6 +189,7 @@ def _ground_motion(em, start, stop, b0, b1):
 
 def event_chunk(em, chunk):
     """Losses of one chunk of events (whole random-number blocks)."""
+    single_blas_thread()
     b0, b1 = chunk
     blocks = event_blocks(em.events.n_events, EVENT_BLOCK_SIZE)
     start, stop = int(blocks[b0, 0]), int(blocks[b1 - 1, 1])
