@@ -177,7 +177,7 @@ def jb09_range_km(period_s: ArrayLike, vs30_clustering: bool = False) -> FloatAr
     :math:`\rho(h) = \exp(-3h/b)` (:func:`jb09_correlation`), so b is the separation at
     which :math:`\rho = e^{-3} \approx 0.05`. Coefficients of the range model of
     Jayaram & Baker (2009) (their Eq. 17; equation number from memory); the T < 1 s
-    branches were checked against a published transcription, the T >= 1 s branch is
+    branches were checked against a published reproduction of the formula, the T >= 1 s branch is
     from memory. The model was fitted for periods up to 10 s (from memory); longer
     periods are extrapolated linearly.
 
@@ -233,7 +233,7 @@ def bj08_correlation(period1_s: ArrayLike, period2_s: ArrayLike) -> FloatArray:
     Notes
     -----
     Baker & Jayaram (2008), predictive equation (their Eqs. 5-6 as commonly cited;
-    checked against a published transcription), with
+    checked against a published reproduction of the formula), with
     :math:`T_{min} = \min(T_1, T_2)`, :math:`T_{max} = \max(T_1, T_2)`:
 
     .. math::

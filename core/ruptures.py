@@ -233,7 +233,7 @@ SLIP_TYPES = ("strike_slip", "reverse", "normal", "all")
 #: Wells & Coppersmith (1994), Table 2A: ``log10(y) = a + b * M`` for subsurface rupture
 #: length ``y`` = RLD [km], down-dip rupture width RW [km] and rupture area RA [km^2],
 #: as (a, b) per slip type. RLD strike-slip and reverse and RW strike-slip were checked
-#: against a transcription of the table; the other entries are from memory.
+#: against a published reproduction of the table; the other entries are from memory.
 WC94_TABLE_2A = {
     "length": {"strike_slip": (-2.57, 0.62), "reverse": (-2.42, 0.58), "normal": (-1.88, 0.50), "all": (-2.44, 0.59)},
     "width": {"strike_slip": (-0.76, 0.27), "reverse": (-1.61, 0.41), "normal": (-1.14, 0.35), "all": (-1.01, 0.32)},
