@@ -448,7 +448,7 @@ def _section_inputs(run):
         ("currency", run.currency),
         ("seed", m.get("seed") if m.get("seed") is not None else "none (no simulation)"),
         ("inputs digest (sha256)", m.get("inputs_sha256", "n/a")),
-        ("run folder", str(run.path)),
+        ("run folder", str(run.path.parent / run.run_id)),  # the final name, also while being written
     ]
     interp = m.get("hazard_ims_interpolated") or []
     if interp:
