@@ -56,6 +56,9 @@ SECTIONS = (
     ("checks", "Built-in cross-checks and hazard logic tree"),
 )
 
+#: The screening section lists at most this many flagged assets (the table holds them all).
+SCREENING_ROWS = 50
+
 #: The per-asset table lists at most this many assets (highest collapse probability first).
 MAX_TABLE_ROWS = 500
 
@@ -931,15 +934,21 @@ def _section_screening(run):
     out = [_p(f"Each asset's annual collapse rate from this run, as a probability of collapse in {target_t:g} years "
               f"(Poisson), against the target of {_pct(target_p)} in {target_t:g} years (the risk target of "
               f"ASCE/SEI 7-16 Chapter 21). {len(flagged)} of {len(scr)} assets exceed it.")]
+    by_class = scr.groupby("building_class").agg(n=("asset_id", "size"), over=("exceeds_target", "sum"),
+                                                 worst=("ratio_to_target", "max")).sort_values("worst", ascending=False)
+    out.append(_table(["class", "assets", "above the target", "largest ratio to target"],
+                      [[c, int(r.n), int(r.over), f"{r.worst:.2f}"] for c, r in by_class.iterrows()],
+                      caption="Buildings above the collapse-risk target, by class"))
+    shown = flagged.head(SCREENING_ROWS)
     rows = [[r.asset_id, r.building_class, r.site_id, _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
              _cell(_prob(r.collapse_prob_in_target_years), r.collapse_prob_in_target_years),
-             _cell(f"{r.ratio_to_target:.2f}", r.ratio_to_target)] for r in flagged.head(MAX_TABLE_ROWS).itertuples()]
+             _cell(f"{r.ratio_to_target:.2f}", r.ratio_to_target)] for r in shown.itertuples()]
     if rows:
         out.append(_table(["asset", "class", "site", "collapse rate [1/yr]#",
                            f"P(collapse in {target_t:g} yr)#", "ratio to target#"], rows, sortable=True,
-                          caption="Assets above the collapse-risk target" +
-                                  (f" (first {MAX_TABLE_ROWS} of {len(flagged)})" if len(flagged) > MAX_TABLE_ROWS
-                                   else "")))
+                          caption="Assets above the collapse-risk target, highest first" +
+                                  (f" (first {len(shown)} of {len(flagged)}; all are in collapse_screening.parquet)"
+                                   if len(flagged) > len(shown) else "")))
     rt = run.table("site_risk_targeted_im")
     if rt is not None and len(rt):
         rt = rt[rt.statistic == ("mean" if "mean" in set(rt.statistic) else rt.statistic.iloc[0])]
