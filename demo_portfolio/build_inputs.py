@@ -55,6 +55,52 @@ import pyarrow.parquet as pq
 OUT_DIR = pathlib.Path(__file__).resolve().parent
 SEED = 41_703  # invented; any fixed value gives a reproducible portfolio
 
+# The retrofit option of the what-if demo, appended to the generated library unchanged
+# (invented numbers: a strengthened MAS-UR, higher medians, same consequences).
+RETROFIT_CLASS_TOML = """# Retrofit option for the what-if demo ([[scenario.alternatives]] in quakefolio.toml), added by
+# hand after the generated classes. Every number is invented to illustrate a strengthened
+# MAS-UR building (higher medians, same consequences); not taken from any study.
+[classes.MAS-UR-RF]
+description = "Unreinforced masonry after an invented seismic retrofit, 1-3 storeys (invented parameters)"
+im = "PGA"
+collapse_state = "collapse"
+
+[[classes.MAS-UR-RF.states]]
+name = "cosmetic"
+median = 0.12  # g (PGA)
+beta = 0.68
+mean_damage_ratio = 0.03
+cov = 0.8
+downtime_days = 5
+casualty_rate = 0.0
+
+[[classes.MAS-UR-RF.states]]
+name = "repairable"
+median = 0.27  # g (PGA)
+beta = 0.7
+mean_damage_ratio = 0.18
+cov = 0.55
+downtime_days = 60
+casualty_rate = 0.0005
+
+[[classes.MAS-UR-RF.states]]
+name = "irreparable"
+median = 0.56  # g (PGA)
+beta = 0.72
+mean_damage_ratio = 0.65
+cov = 0.3
+downtime_days = 300
+casualty_rate = 0.012
+
+[[classes.MAS-UR-RF.states]]
+name = "collapse"
+median = 1.05  # g (PGA)
+beta = 0.74
+mean_damage_ratio = 1.0
+downtime_days = 540
+casualty_rate = 0.15
+"""
+
 # --------------------------------------------------------------------------------------
 # Geography (invented). Local planar coordinates x (east) and y (north) in km around the
 # city centre; adequate over the ~100 km extent used here.
@@ -544,7 +590,7 @@ def main():
         assert [s["name"] for s in states] == list(STATE_NAMES)
         assert tuple(s["median"] for s in states) == c["median"]
         assert tuple(s["mean_damage_ratio"] for s in states) == c["mdr"]
-    (OUT_DIR / "fragility_library.toml").write_text(text, encoding="utf-8")
+    (OUT_DIR / "fragility_library.toml").write_text(text + "\n" + RETROFIT_CLASS_TOML, encoding="utf-8")
 
     # ---- exposure --------------------------------------------------------------------
     rows = build_exposure(rng)
