@@ -371,15 +371,15 @@ def event_cache_key(inputs):
                   cfg["fragility"]["tail"], {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"])
 
 
-def load_cached(cache, key):
-    """(tables, checks) of a cached event stage, or None."""
+def load_cached(cache, key, kind="events"):
+    """(tables, checks) of a cached stage result (``kind``: its cache folder), or None."""
     import json
 
     import pyarrow.parquet as pq
 
     if cache is None or not cache.enabled:
         return None
-    folder = cache.root / "events" / key
+    folder = cache.root / kind / key
     try:
         meta = json.loads((folder / "checks.json").read_text(encoding="utf-8"))
         if meta.get("key") != key:
@@ -390,8 +390,8 @@ def load_cached(cache, key):
     return tables, meta["checks"]
 
 
-def save_cached(cache, key, portfolio):
-    """Store the stage's tables and checks under the key (atomic folder rename)."""
+def save_cached(cache, key, portfolio, kind="events"):
+    """Store a stage's (tables, checks) under the key (atomic folder rename)."""
     import json
     import os
     import shutil
@@ -402,10 +402,10 @@ def save_cached(cache, key, portfolio):
     if cache is None or not cache.enabled:
         return
     tables, checks = portfolio
-    final = cache.root / "events" / key
+    final = cache.root / kind / key
     if final.exists():
         return
-    tmp = cache.root / "events" / f".{key}.{os.getpid()}.tmp"
+    tmp = cache.root / kind / f".{key}.{os.getpid()}.tmp"
     shutil.rmtree(tmp, ignore_errors=True)
     tmp.mkdir(parents=True)
     for name, frame in tables.items():

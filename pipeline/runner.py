@@ -132,7 +132,17 @@ def execute(inputs, executor, *, stages_to_run="all"):
         from quakefolio.pipeline import whatif
 
         t = time.perf_counter()
-        extra = executor.one("screening-and-what-if", whatif.evaluate, inputs, results, portfolio)
+        from quakefolio.pipeline import portfolio_stage as ps
+        from quakefolio.pipeline.cache import digest
+
+        key = digest("screening-and-what-if", inputs_digest(inputs))  # every input file and setting
+        cached = ps.load_cached(inputs.cache, key, kind="whatif")
+        if cached is None:
+            extra = executor.one("screening-and-what-if", whatif.evaluate, inputs, results, portfolio)
+            ps.save_cached(inputs.cache, key, (extra, {}), kind="whatif")
+        else:
+            extra = cached[0]
+        inputs.cache.count("screening_and_what_if", hits=int(cached is not None), misses=int(cached is None))
         timings["screening_whatif_s"] = time.perf_counter() - t
     return executor.one("store-run", write_run, inputs, results, timings, portfolio, extra)
 
