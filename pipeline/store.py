@@ -81,7 +81,9 @@ def to_arrow(frame, *, name, units, description, provenance):
     for f in fields:
         col = frame[f.name]
         if f.type == pa.string():
-            arrays.append(pa.array(col.astype(object).to_numpy(), type=pa.string()))
+            values = col.astype(object)
+            values = values.where(col.notna(), None)  # missing strings (None or NaN) are nulls
+            arrays.append(pa.array(values.to_numpy(), type=pa.string()))
         else:
             arrays.append(pa.array(col.to_numpy(), type=f.type))
     return pa.Table.from_arrays(arrays, schema=schema)
