@@ -468,7 +468,8 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
             eal_ratio_after[changed] = eal_new[pair]
         for code, (pos, r) in ds_before.items():
             keep = ~alt.changed[pos]  # same parameters as the new class, so the same number of states
-            ds_after[pos[keep]] = r[keep]
+            if keep.any():
+                ds_after[pos[keep]] = r[keep]
         frames = [_damage_frame(alt.alt_id, ids[a[pos]], "before", code, inputs.library[code].names, r, horizon)
                   for code, (pos, r) in ds_before.items()]
         frames.append(_damage_frame(alt.alt_id, ids[a], "after", alt.new_class, new.names, ds_after, horizon))

@@ -75,3 +75,19 @@ def test_cache_can_be_switched_off(folder):
     cfg.write_text(cfg.read_text() + "\n[execution]\ncache = false\n")
     run_pure(cfg)
     assert not (folder / "output" / "cache").exists()
+
+
+def test_unchanged_rerun_with_events_and_what_if_is_all_cached_and_identical(folder):
+    cfg = folder / "quakefolio_compute.toml"
+    text = cfg.read_text().replace(
+        "[exposure]",
+        '[[scenario.alternatives]]\nid = "stronger"\nassets = ["B1"]\nnew_class = "TST-B"\nretrofit_cost = 1000.0\n\n'
+        "[portfolio]\nyears = 2000\nseed = 5\n\n[exposure]")
+    cfg.write_text(text)
+    a = run_pure(cfg)
+    b = run_pure(cfg)
+    assert all(v["computed"] == 0 for v in stats(b).values()), stats(b)
+    names = sorted(p.stem for p in a.glob("*.parquet"))
+    assert "whatif_portfolio" in names and "event_loss" in names
+    for name in names:
+        pd.testing.assert_frame_equal(read_table(a, name), read_table(b, name), check_exact=True)
