@@ -419,6 +419,10 @@ def load_config(path):
     if hz["mode"] == "ingest" and hz["curves_file"] is None:
         raise InputError(path, "mode = \"ingest\" needs curves_file", row=locate_toml_line(text, ("hazard",), "mode"),
                          column="hazard.curves_file")
+    out = sections["output"]["folder"]
+    if out.exists() and not out.is_dir():
+        raise InputError(path, f"output folder {str(out)!r} is an existing file; name a folder",
+                         row=locate_toml_line(text, ("output",), "folder"), column="output.folder")
     pf = sections["portfolio"]
     if pf["event_based"] is None:
         pf["event_based"] = hz["mode"] == "compute"

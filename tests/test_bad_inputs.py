@@ -59,6 +59,8 @@ EXPECTED = {
     "sources_mfd_missing_rate": ("sources.toml", 12, "faults[0].mfd", r"needs exactly one of rate_above_min"),
     "config_branch_weights": ("quakefolio.toml", 7, "hazard.source_models", r"branch weights must sum to 1"),
     "config_unknown_gmm": ("quakefolio.toml", 8, "hazard.gmm_branches", r"unknown ground-motion model 'BSSA2014'"),
+    "exposure_huge_value": ("exposure.csv", 3, "replacement_value", r"value out of range \(\|x\| > 1e\+15\), got '1e300'"),
+    "config_output_not_a_folder": ("quakefolio.toml", 18, "output.folder", r"is an existing file; name a folder"),
     # hazard curves
     "hazard_rate_increasing": ("hazard_curves.csv", 20, "annual_rate",
                                r"site 'T02', SA_0\.3 increases with im_level \(rate 0\.02 then 0\.05\)"),
