@@ -339,9 +339,22 @@ def _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, 
     return site, rup, starts, owners, inp, d
 
 
-def _site_blocks(n_sites, site_block):
-    for lo in range(0, n_sites, site_block):
-        yield slice(lo, min(n_sites, lo + site_block))
+def _pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
+    """Blocks of sites with their surviving pairs: (slice, site, rupture, starts, owners, GMM input,
+    distances, pair rate); blocks without any pair are skipped.  ``ref`` defaults to the mean site
+    position, fixed for all blocks so results do not depend on the blocking."""
+    from quakefolio.core.geometry import mean_position
+
+    lon = np.asarray(site_lon, dtype=float)
+    lat = np.asarray(site_lat, dtype=float)
+    vs30 = np.asarray(site_vs30, dtype=float)
+    ref = ref if ref is not None else mean_position(lon, lat)
+    for lo in range(0, len(lon), site_block):
+        blk = slice(lo, min(len(lon), lo + site_block))
+        site, rup, starts, owners, inp, d = _block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km,
+                                                         ref, region)
+        if inp is not None:
+            yield blk, site, rup, starts, owners, inp, d, ruptures.rate[rup]
 
 
 def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, levels_g, *, truncation_sigma=None,
@@ -377,22 +390,12 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     :math:`\lambda(IM > x) = \sum_r \nu_r P(IM > x \mid r)` over ruptures within the
     integration distance (Cornell 1968, discretised); see :func:`hazard_from_pairs`.
     """
-    from quakefolio.core.geometry import mean_position
-
-    lon = np.asarray(site_lon, dtype=float)
-    lat = np.asarray(site_lat, dtype=float)
-    vs30 = np.asarray(site_vs30, dtype=float)
     lnx = np.log(np.asarray(levels_g, dtype=float))
     if np.any(np.diff(lnx) <= 0):
         raise ValueError("levels_g must be strictly increasing")
-    ref = ref if ref is not None else mean_position(lon, lat)
-    out = np.zeros((len(gmms), len(ims), len(lon), len(lnx)))
-    for blk in _site_blocks(len(lon), site_block):
-        site, rup, starts, owners, inp, _ = _block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km,
-                                                         ref, region)
-        if inp is None:
-            continue
-        rate = ruptures.rate[rup]
+    out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
+    for blk, site, rup, starts, owners, inp, _, rate in _pair_blocks(
+            site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for g, gmm in enumerate(gmms):
             res = gmm.evaluate(inp, list(ims))
@@ -419,20 +422,10 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
     ndarray, shape (n_ims, n_sites, n_targets, n_mag, n_dist, n_eps) [1/yr]
         Distance is Rrup. See :func:`disaggregation_from_pairs` (Bazzurro & Cornell 1999).
     """
-    from quakefolio.core.geometry import mean_position
-
-    lon = np.asarray(site_lon, dtype=float)
-    lat = np.asarray(site_lat, dtype=float)
-    vs30 = np.asarray(site_vs30, dtype=float)
-    ref = ref if ref is not None else mean_position(lon, lat)
     n_t = ln_targets.shape[-1]
-    out = np.zeros((len(ims), len(lon), n_t) + bins.shape)
-    for blk in _site_blocks(len(lon), site_block):
-        site, rup, starts, owners, inp, d = _block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km,
-                                                         ref, region)
-        if inp is None:
-            continue
-        rate = ruptures.rate[rup]
+    out = np.zeros((len(ims), len(site_lon), n_t) + bins.shape)
+    for blk, site, rup, starts, owners, inp, d, rate in _pair_blocks(
+            site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for gmm, w in zip(gmms, gmm_weights):
             res = gmm.evaluate(inp, list(ims))
