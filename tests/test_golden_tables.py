@@ -1,0 +1,138 @@
+"""Every table of the demo is byte-identical to the one written by the code before the
+pipeline redesign.
+
+The reference tables are regenerated on this machine: the test extracts the packages of
+:data:`BASE_COMMIT` from the repository's history into a temporary folder, puts them first
+on ``PYTHONPATH`` (so ``quakefolio.*`` resolves to the old code) and runs the same CLI
+command on the same inputs.  Comparing with tables computed here, rather than with
+committed files, keeps the check exact across machines whose numpy kernels differ in the
+last bit.  Table content is compared as Arrow IPC bytes without schema metadata (the
+metadata holds the run id); column names, types, order and every value must match bit
+for bit, NaNs included.
+
+Both hazard modes of the demo run here on the plain library path (``--no-flow``).  The
+flow and Dask paths are held to the plain path by ``test_flow.py`` and
+``test_operations.py`` (every table, ``check_exact``), so they match the old tables too.
+The demo's event set is shortened to 5,000 years to keep the suite fast; the event stage
+runs exactly the same code for any length.
+"""
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from conftest import DEMO, REPO
+
+#: the last commit before the pipeline redesign (its tables are the reference)
+BASE_COMMIT = "caeef34757ce09d4764096944640be104ad2b6dc"
+BASE_SHORT = BASE_COMMIT[:7]
+YEARS = 5000
+CONFIGS = {"compute": "quakefolio.toml", "tabulated": "quakefolio_tabulated.toml"}
+PACKAGES = ("core", "fragility", "pipeline")
+
+
+def _git(*args):
+    return subprocess.run(["git", "-C", str(REPO), *args], capture_output=True, text=True, timeout=60)
+
+
+def _base_commit():
+    """The full hash of the base commit, or None where the history is not available."""
+    if shutil.which("git") is None:
+        return None
+    proc = _git("rev-parse", "--verify", "--quiet", f"{BASE_COMMIT}^{{commit}}")
+    return proc.stdout.strip() if proc.returncode == 0 else None
+
+
+def _old_code(root):
+    """Extract the base commit's packages under ``root``; return the folder to put on PYTHONPATH."""
+    commit = _base_commit()
+    if commit is None:
+        pytest.skip(f"base commit {BASE_SHORT} not in this checkout's history (shallow clone?)")
+    src, shim = root / "src", root / "shim" / "quakefolio"
+    src.mkdir(parents=True)
+    shim.mkdir(parents=True)
+    archive = subprocess.run(["git", "-C", str(REPO), "archive", commit, *PACKAGES], capture_output=True,
+                             timeout=60, check=True).stdout
+    subprocess.run(["tar", "-x", "-C", str(src)], input=archive, check=True, timeout=60)
+    for name in PACKAGES:
+        (shim / name).symlink_to(src / name, target_is_directory=True)
+    return root / "shim"
+
+
+def _demo_copy(dst, config_name):
+    """The demo inputs under ``dst`` with a shorter event set, no report and no cache."""
+    shutil.copytree(DEMO, dst, ignore=shutil.ignore_patterns("output", "__pycache__"))
+    cfg = dst / config_name
+    text = cfg.read_text(encoding="utf-8")
+    if "years = 50000" in text:
+        text = text.replace("years = 50000", f"years = {YEARS}")
+    text = text.replace("[output]\n", "[output]\nreport = false\n", 1)
+    text = text.replace("[execution]\n", "[execution]\ncache = false\n", 1)
+    cfg.write_text(text, encoding="utf-8")
+    return cfg
+
+
+def _run(cfg, pythonpath=None):
+    env = dict(os.environ)
+    if pythonpath is not None:
+        env["PYTHONPATH"] = str(pythonpath)
+    proc = subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "run", str(cfg), "--no-flow", "--quiet"],
+                          capture_output=True, text=True, env=env, timeout=900, cwd=str(cfg.parent))
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    return Path(proc.stdout.strip().splitlines()[-1])
+
+
+@pytest.fixture(scope="module")
+def old_code(tmp_path_factory):
+    return _old_code(tmp_path_factory.mktemp("base-code"))
+
+
+def _ipc_bytes(table):
+    table = table.replace_schema_metadata(None).combine_chunks()
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    return sink.getvalue().to_pybytes()
+
+
+def _difference(old, new):
+    """A short description of how two tables differ (for the failure message)."""
+    if old.schema.remove_metadata() != new.schema.remove_metadata():
+        return f"schema {old.schema.remove_metadata()} != {new.schema.remove_metadata()}"
+    if old.num_rows != new.num_rows:
+        return f"{old.num_rows} rows != {new.num_rows}"
+    parts = []
+    for name in old.column_names:
+        a, b = old[name].to_numpy(zero_copy_only=False), new[name].to_numpy(zero_copy_only=False)
+        if a.dtype.kind == "f":
+            diff = ~((a == b) | (np.isnan(a) & np.isnan(b)))
+            if diff.any():
+                parts.append(f"{name}: {int(diff.sum())} values, max |d| {np.nanmax(np.abs(a - b)):.3g}")
+        elif not np.array_equal(a, b):
+            parts.append(f"{name}: values differ")
+    return "; ".join(parts) or "identical values, different encoding"
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("mode", sorted(CONFIGS))
+def test_demo_tables_identical_to_base_commit(mode, old_code, tmp_path):
+    old_run = _run(_demo_copy(tmp_path / "old", CONFIGS[mode]), pythonpath=old_code)
+    new_run = _run(_demo_copy(tmp_path / "new", CONFIGS[mode]))
+    old_tables = sorted(p.name for p in old_run.glob("*.parquet"))
+    new_tables = {p.name for p in new_run.glob("*.parquet")}
+    assert len(old_tables) >= 5
+    assert not set(old_tables) - new_tables, f"tables missing: {sorted(set(old_tables) - new_tables)}"
+    differ = []
+    for name in old_tables:
+        old, new = pq.read_table(old_run / name), pq.read_table(new_run / name)
+        if _ipc_bytes(old) != _ipc_bytes(new):
+            differ.append(f"{name}: {_difference(old, new)}")
+    assert not differ, "tables differ from the base commit's:\n" + "\n".join(differ)
