@@ -23,7 +23,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["code_version", "digest", "StageCache", "PairStore", "row_digests"]
+__all__ = ["code_version", "digest", "fragility_class_digests", "StageCache", "PairStore", "row_digests"]
 
 
 @lru_cache(maxsize=1)
@@ -36,8 +36,8 @@ def code_version():
     h = hashlib.sha256()
     for mod in (quakefolio.core, quakefolio.fragility, quakefolio.pipeline):
         folder = Path(mod.__file__).parent
-        for f in sorted(folder.glob("*.py")):
-            h.update(f.name.encode())
+        for f in sorted(folder.rglob("*.py")):
+            h.update(f.relative_to(folder).as_posix().encode())
             h.update(f.read_bytes())
     return h.hexdigest()
 
@@ -56,15 +56,36 @@ def digest(*parts):
     return h.hexdigest()
 
 
+def fragility_class_digests(library):
+    """sha256 per building class of its resolved parameters (to attribute changes between runs).
+
+    Parameters
+    ----------
+    library : quakefolio.fragility.FragilityLibrary
+
+    Returns
+    -------
+    dict code -> hex digest
+    """
+    out = {}
+    for code, dss in sorted(library.classes.items()):
+        blob = json.dumps({"im": dss.im, "names": list(dss.names), "medians": dss.medians.tolist(),
+                           "betas": dss.betas.tolist(), "mdr": dss.mean_damage_ratio.tolist(),
+                           "cov": dss.cov.tolist(), "collapse_index": dss.collapse_index}, sort_keys=True)
+        out[code] = hashlib.sha256(blob.encode()).hexdigest()
+    return out
+
+
 class StageCache:
-    """Key -> dict of arrays, one ``.npz`` per key under ``<output>/cache/<stage>/``."""
+    """Key -> dict of arrays, one ``.npz`` per key under ``<output>/cache/<stage>/``.
+
+    A handle on the cache folder only (no state of its own): stages count their hits
+    and misses in their results (:class:`quakefolio.pipeline.products.CacheCounts`).
+    """
 
     def __init__(self, output_folder, enabled=True):
         self.root = Path(output_folder) / "cache"
         self.enabled = enabled
-        self.hits = {}
-        self.misses = {}
-        self._lock = threading.Lock()
 
     def _path(self, stage, key):
         return self.root / stage / key[:2] / f"{key}.npz"
@@ -95,14 +116,6 @@ class StageCache:
             np.savez(fh, __key__=np.array(key), **arrays)
         os.replace(tmp, path)
 
-    def count(self, stage, hits=0, misses=0):
-        with self._lock:
-            self.hits[stage] = self.hits.get(stage, 0) + hits
-            self.misses[stage] = self.misses.get(stage, 0) + misses
-
-    def stats(self):
-        stages = sorted(set(self.hits) | set(self.misses))
-        return {s: {"from_cache": self.hits.get(s, 0), "computed": self.misses.get(s, 0)} for s in stages}
 
 
 class PairStore:

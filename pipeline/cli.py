@@ -146,11 +146,10 @@ def _non_negative_number(text):
 
 def _check(args):
     from quakefolio.pipeline.caution import CAUTION
-    from quakefolio.pipeline.stages import load_inputs, plan_blocks
+    from quakefolio.pipeline.stages import load_inputs, unique_pairs
 
     inputs = load_inputs(args.config)
-    blocks = plan_blocks(inputs)
-    n_pairs = sum(len(b.sites) for b in blocks)
+    n_pairs = unique_pairs(inputs)
     print(CAUTION)
     print(f"OK: {args.config}: {len(inputs.exposure)} assets, {inputs.exposure.building_class.nunique()} classes, "
           f"{len(inputs.hazard.site_id)} hazard sites, {n_pairs} unique (site, class) pairs")

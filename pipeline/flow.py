@@ -2,18 +2,18 @@
 as Prefect tasks.
 
 Import this module only after :func:`quakefolio.pipeline.env.configure_prefect` has
-set Prefect's environment (the CLI does it first thing).  Tasks pass in-memory
-objects between threads of one process and therefore use no cache policy and do not
-persist results (Prefect would pickle large arrays); flow parameters stay small JSON.
-The stage sequence is shared with the pure-library path, so both give identical tables.
+set Prefect's environment (the CLI does it first thing).  Stages that run once (ingest,
+combining blocks, writing the run) are tasks in the flow's process; block stages are
+submitted to the flow's task runner with small arguments (a run reference and a block:
+:mod:`quakefolio.pipeline.blocks`), so the same executor serves a thread pool and a Dask
+cluster.  Tasks use no cache policy and do not persist results (Prefect would pickle
+large arrays); flow parameters stay small JSON.  The stage sequence is shared with the
+plain library path, so both give identical tables.
 """
 from __future__ import annotations
 
-from contextlib import contextmanager
-
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
-from prefect.context import FlowRunContext
 from prefect.task_runners import ThreadPoolTaskRunner
 
 from quakefolio.pipeline import progress, stages
@@ -44,7 +44,12 @@ def _retry_on_os_error(task, task_run, state):
 
 
 class PrefectExecutor:
-    """Runs each stage function as a Prefect task; ``many`` maps over blocks."""
+    """Runs each stage function as a Prefect task; ``many`` submits a block task per block.
+
+    ``one(name, fn, *args)`` runs ``fn`` as a task in this process; ``many(name, fn, ref,
+    items)`` submits ``fn(ref, item)`` per item to the flow's task runner (threads or Dask
+    workers) and resolves every future (a failed block fails the flow).
+    """
 
     config_path = None
 
@@ -64,10 +69,10 @@ class PrefectExecutor:
     def one(self, name, fn, *args):
         return stage_guard(name, self.config_path, lambda: self._task(name, fn)(*args))
 
-    def many(self, name, fn, arglist):
+    def many(self, name, fn, ref, items):
         t = self._task(name, fn)
-        progress.stage(name, len(arglist))
-        futures = [t.submit(*args) for args in arglist]
+        progress.stage(name, len(items))
+        futures = [t.submit(ref, item) for item in items]
         out = []
         for f in futures:  # resolve every future: a failure fails the flow
             out.append(stage_guard(name, self.config_path, f.result))
@@ -77,33 +82,39 @@ class PrefectExecutor:
 
 @flow(name="portfolio-risk", persist_result=False, log_prints=False)
 def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
-    """Ingest -> hazard (compute mode) -> damage and loss per block -> store."""
+    """Read inputs -> hazard (compute mode) -> damage and loss -> events -> what-if -> store.
+
+    Parameters
+    ----------
+    config_path : str
+        Run config file.
+    stages_to_run : {"all", "hazard"}
+
+    Returns
+    -------
+    str
+        The run folder.
+    """
     executor = PrefectExecutor()
     executor.config_path = config_path
     inputs = executor.one("ingest", stages.load_inputs, config_path)
-    with _for_task_runner(executor, inputs, config_path) as executor:
-        return str(execute(inputs, executor, stages_to_run=stages_to_run))
-
-
-@contextmanager
-def _for_task_runner(executor, inputs, config_path):
-    """The executor for this flow run's task runner.
-
-    On a Dask task runner, block stages go to the workers with small arguments
-    (:class:`quakefolio.pipeline.orchestration.DaskExecutor`); otherwise ``executor``.
-    """
-    runner = FlowRunContext.get().task_runner
-    if not type(runner).__module__.startswith("prefect_dask"):
-        yield executor
-        return
-    from quakefolio.pipeline.orchestration import DaskExecutor
-
-    with DaskExecutor(inputs, config_path) as dask_executor:
-        dask_executor.config_path = executor.config_path
-        yield dask_executor
+    return str(execute(inputs, executor, stages_to_run=stages_to_run))
 
 
 def run_flow(config_path, max_workers=2, stages_to_run="all"):
-    """Run the flow embedded with a capped thread pool; returns the run folder."""
+    """Run the flow embedded with a capped thread pool.
+
+    Parameters
+    ----------
+    config_path : str or Path
+    max_workers : int
+        Threads of the task runner.
+    stages_to_run : {"all", "hazard"}
+
+    Returns
+    -------
+    str
+        The run folder.
+    """
     runner = ThreadPoolTaskRunner(max_workers=max_workers)
     return portfolio_risk.with_options(task_runner=runner)(str(config_path), stages_to_run)

@@ -6,7 +6,8 @@ into site blocks (the unit of a flow task) and lays results out as tables.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from typing import Mapping
 
 import numpy as np
 import pandas as pd
@@ -22,10 +23,11 @@ from quakefolio.core.hazard import (
 from quakefolio.core.ims import im_period
 from quakefolio.pipeline.cache import digest
 from quakefolio.pipeline.ingest import HazardCurves
+from quakefolio.pipeline.products import SiteBlockResult, frozen_mapping
 from quakefolio.pipeline.sources_io import load_source_model
 
-__all__ = ["HazardModel", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "disagg_block",
-           "combine_disaggregation", "statistic_name"]
+__all__ = ["HazardModel", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "with_branch_curves",
+           "disagg_block", "combine_disaggregation", "statistic_name", "branch_weights"]
 
 
 def statistic_name(q):
@@ -33,12 +35,44 @@ def statistic_name(q):
     return f"p{100 * q:g}"
 
 
-@dataclass
+@dataclass(frozen=True)
 class HazardModel:
-    """Everything the compute-mode hazard stage needs, validated."""
+    """The compute-mode hazard model, validated, and (after the hazard stage) its results.
 
-    source_branches: list  # [(id, weight, SourceModel)]
-    gmm_branches: list  # [(id, weight, model)]
+    Attributes
+    ----------
+    source_branches : tuple of (id, weight, SourceModel)
+    gmm_branches : tuple of (id, weight, ground-motion model)
+    ims : list of str
+        IMs computed (configured ones and those the fragility classes need), by period.
+    levels_g : ndarray (n_levels,) [g]
+        IM levels of every curve.
+    truncation_sigma : float or None
+        Symmetric truncation of ground-motion residuals [sigma].
+    max_distance_km : float
+        Integration distance [km].
+    region : str
+        Ground-motion model region.
+    fractiles : list of float
+        Logic-tree fractiles reported besides the mean [-].
+    disaggregation : bool
+        Whether the run disaggregates.
+    site_vs30 : ndarray (n_sites,) [m/s]
+    ref : tuple (lon, lat) [deg]
+        Reference point of the local projection.
+    branch_curves : ndarray (n_src, n_gmm, n_im, n_sites, n_levels) [1/yr] or None
+        Curves of every branch, once computed.
+    statistics : Mapping name -> ndarray (n_im, n_sites, n_levels) [1/yr]
+        ``mean`` and fractiles (``p16`` ...), once computed.
+    disagg : ndarray (n_im, n_sites, n_rp, n_mag, n_dist, n_eps) [1/yr] or None
+        Disaggregation, once computed.
+    bins : DisaggBins
+    digest : str
+        Content digest of everything a site's hazard depends on except the site.
+    """
+
+    source_branches: tuple
+    gmm_branches: tuple
     ims: list
     levels_g: np.ndarray
     truncation_sigma: float | None
@@ -48,12 +82,11 @@ class HazardModel:
     disaggregation: bool
     site_vs30: np.ndarray
     ref: tuple
-    branch_curves: np.ndarray | None = None  # (n_src, n_gmm, n_im, n_sites, n_lev)
-    statistics: dict = field(default_factory=dict)  # name -> (n_im, n_sites, n_lev)
+    branch_curves: np.ndarray | None = None
+    statistics: Mapping = field(default_factory=lambda: frozen_mapping({}))
     disagg: np.ndarray | None = None
     bins: DisaggBins = field(default_factory=DisaggBins.default)
-    digest: str = ""  # content digest of everything a site's hazard depends on except the site
-    cache: object = None  # quakefolio.pipeline.cache.StageCache
+    digest: str = ""
 
 
 def build_sites(exposure, spacing_km, default_vs30):
@@ -122,12 +155,12 @@ def prepare_compute(config, exposure, library):
                                  f"({lo:g}-{hi:g} s)", row=locate_toml_line(text, ("classes", code), "im"),
                                  column=f"classes.{code}.im")
     ids, lon, lat, vs30, site_index, dist, ref = build_sites(exposure, hz["site_spacing_km"], hz["default_vs30_mps"])
-    model = HazardModel(sources, gmms, ims, np.asarray(hz["im_levels_g"], dtype=float), hz["truncation_sigma"],
-                        hz["integration_distance_km"], hz["region"], list(hz["fractiles"]), hz["disaggregation"],
-                        vs30, ref)
-    model.digest = digest(
+    levels = np.asarray(hz["im_levels_g"], dtype=float)
+    model_digest = digest(
         "hazard-model", [(bid, w, src.sha256) for bid, w, src in sources], [(g, w) for g, w, _ in gmms], ims,
-        model.levels_g, model.truncation_sigma, model.max_distance_km, model.region, list(ref))
+        levels, hz["truncation_sigma"], hz["integration_distance_km"], hz["region"], list(ref))
+    model = HazardModel(tuple(sources), tuple(gmms), ims, levels, hz["truncation_sigma"], hz["integration_distance_km"],
+                        hz["region"], list(hz["fractiles"]), hz["disaggregation"], vs30, ref, digest=model_digest)
     hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=set())
     return model, hazard, site_index, dist
 
@@ -140,7 +173,18 @@ def _period_ok(gmm, im):
 
 
 def site_blocks(n_sites, size):
-    """Site slices of at most ``size`` sites (the unit of a hazard task)."""
+    """Site slices of at most ``size`` sites (the unit of a hazard task).
+
+    Parameters
+    ----------
+    n_sites : int
+    size : int
+        ``[execution] site_block_size``.
+
+    Returns
+    -------
+    list of (lo, hi)
+    """
     return [(lo, min(n_sites, lo + size)) for lo in range(0, n_sites, size)]
 
 
@@ -149,25 +193,45 @@ def _site_keys(model, hazard, lo, hi, *extra):
                    float(model.site_vs30[i]), *extra) for i in range(lo, hi)]
 
 
-def hazard_block(model, hazard, block):
-    """Curves of every (source branch, GMM branch) for one block of sites.
-
-    Sites whose content key is in the cache are read from it; the others are computed
-    (per-site results do not depend on the other sites of the block).
-
-    Returns ndarray (n_src, n_gmm, n_im, n_block_sites, n_levels) [1/yr].
-    """
-    lo, hi = block
-    keys = _site_keys(model, hazard, lo, hi)
-    shape = (len(model.source_branches), len(model.gmm_branches), len(model.ims), hi - lo, len(model.levels_g))
+def _cached_rows(cache, stage, keys, shape, name):
+    """Rows of ``keys`` found in the cache (filled into a zero array of ``shape``) and the missing row numbers."""
     out = np.zeros(shape)
     missing = []
     for j, key in enumerate(keys):
-        hit = model.cache.get("hazard", key) if model.cache is not None else None
-        if hit is not None and hit["curves"].shape == shape[:3] + shape[4:]:
-            out[:, :, :, j] = hit["curves"]
+        hit = cache.get(stage, key) if cache is not None else None
+        if hit is not None and hit[name].shape == out[j].shape:
+            out[j] = hit[name]
         else:
             missing.append(j)
+    return out, missing
+
+
+def hazard_block(model, hazard, block, cache=None):
+    """Curves of every (source branch, GMM branch) for one block of sites.
+
+    Sites whose content key is in the cache are read from it; the others are computed
+    with :func:`quakefolio.core.hazard.compute_site_hazard` (per-site results do not
+    depend on the other sites of the block).
+
+    Parameters
+    ----------
+    model : HazardModel
+    hazard : HazardCurves
+        The hazard sites (lon, lat [deg]).
+    block : tuple (lo, hi)
+        Site slice.
+    cache : quakefolio.pipeline.cache.StageCache or None
+
+    Returns
+    -------
+    SiteBlockResult
+        ``values`` (n_src, n_gmm, n_im, n_block_sites, n_levels) [1/yr].
+    """
+    lo, hi = block
+    keys = _site_keys(model, hazard, lo, hi)
+    per_site = (len(model.source_branches), len(model.gmm_branches), len(model.ims), len(model.levels_g))
+    rows, missing = _cached_rows(cache, "hazard", keys, (hi - lo,) + per_site, "curves")
+    out = np.ascontiguousarray(np.moveaxis(rows, 0, 3))
     if missing:
         idx = lo + np.array(missing)
         for s_i, (_, _, src) in enumerate(model.source_branches):
@@ -176,44 +240,105 @@ def hazard_block(model, hazard, block):
                 [g for _, _, g in model.gmm_branches], model.ims, model.levels_g,
                 truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km,
                 region=model.region, site_block=len(idx), ref=model.ref)
-        if model.cache is not None:
+        if cache is not None:
             for j in missing:
-                model.cache.put("hazard", keys[j], {"curves": out[:, :, :, j]})
-    if model.cache is not None:
-        model.cache.count("hazard_sites", hits=len(keys) - len(missing), misses=len(missing))
-    return out
+                cache.put("hazard", keys[j], {"curves": out[:, :, :, j]})
+    return SiteBlockResult(block, out, len(keys) - len(missing), len(missing))
 
 
 def branch_weights(model):
-    """Weight of each (source branch, GMM branch) pair, source-major [-]."""
+    """Weight of each (source branch, GMM branch) pair, source-major [-].
+
+    Returns
+    -------
+    ndarray (n_src * n_gmm,)
+    """
     ws = np.array([w for _, w, _ in model.source_branches])
     wg = np.array([w for _, w, _ in model.gmm_branches])
     return (ws[:, None] * wg[None, :]).ravel()
 
 
-def combine_hazard(model, hazard, blocks, parts):
-    """Assemble block results, compute the weighted mean and fractiles; the mean feeds risk."""
+def _assemble(parts, n_sites, axis):
+    """Concatenate site-block arrays along the site ``axis`` into one array of ``n_sites``."""
+    first = parts[0].values
+    shape = first.shape[:axis] + (n_sites,) + first.shape[axis + 1:]
+    out = np.zeros(shape)
+    index = [slice(None)] * len(shape)
+    for part in parts:
+        index[axis] = slice(*part.block)
+        out[tuple(index)] = part.values
+    return out
+
+
+def with_branch_curves(model, hazard, curves):
+    """The hazard model and curves once the branch curves are known (new objects).
+
+    Computes the weighted mean over branches and, with more than one branch, the
+    weighted fractiles (:func:`quakefolio.core.hazard.weighted_mean`,
+    :func:`~quakefolio.core.hazard.weighted_fractiles`); the mean feeds risk.
+
+    Parameters
+    ----------
+    model : HazardModel
+    hazard : HazardCurves
+        The hazard sites.
+    curves : ndarray (n_src, n_gmm, n_im, n_sites, n_levels) [1/yr]
+
+    Returns
+    -------
+    (HazardModel, HazardCurves)
+        ``statistics`` filled; ``curves[im]`` = (levels (n_sites, n_levels) [g], mean rates [1/yr]).
+    """
     n_sites = len(hazard.site_id)
-    first = parts[0]
-    curves = np.zeros(first.shape[:3] + (n_sites, first.shape[-1]))
-    for (lo, hi), part in zip(blocks, parts):
-        curves[:, :, :, lo:hi] = part
-    model.branch_curves = curves
     flat = curves.reshape((-1,) + curves.shape[2:])
     w = branch_weights(model)
-    model.statistics = {"mean": weighted_mean(flat, w)}
+    statistics = {"mean": weighted_mean(flat, w)}
     if len(w) > 1:
         for q, arr in zip(model.fractiles, weighted_fractiles(flat, w, model.fractiles)):
-            model.statistics[statistic_name(q)] = arr
+            statistics[statistic_name(q)] = arr
     levels = np.broadcast_to(model.levels_g, (n_sites, len(model.levels_g)))
-    for i, im in enumerate(model.ims):
-        hazard.curves[im] = (np.array(levels), model.statistics["mean"][i])
+    mean_curves = {im: (np.array(levels), statistics["mean"][i]) for i, im in enumerate(model.ims)}
+    return (replace(model, branch_curves=curves, statistics=frozen_mapping(statistics)),
+            replace(hazard, curves=mean_curves, interpolated=set()))
 
 
-def disagg_block(model, hazard, return_periods, block):
+def combine_hazard(model, hazard, parts):
+    """Assemble the site blocks' curves and compute the logic-tree statistics.
+
+    Parameters
+    ----------
+    model : HazardModel
+    hazard : HazardCurves
+    parts : list of SiteBlockResult
+        From :func:`hazard_block`, any order.
+
+    Returns
+    -------
+    (HazardModel, HazardCurves)
+        As :func:`with_branch_curves`.
+    """
+    return with_branch_curves(model, hazard, _assemble(parts, len(hazard.site_id), axis=3))
+
+
+def disagg_block(model, hazard, return_periods, block, cache=None):
     """Weighted (M, R, epsilon) contributions at the mean curve's return-period levels.
 
-    Cached per site (the key adds the return periods, the bins and the site's mean curve).
+    Cached per site (the key adds the return periods, the bins and the site's mean
+    curve); computed with :func:`quakefolio.core.hazard.compute_disaggregation`.
+
+    Parameters
+    ----------
+    model : HazardModel
+        With statistics (after :func:`combine_hazard`).
+    hazard : HazardCurves
+    return_periods : sequence of float [yr]
+    block : tuple (lo, hi)
+    cache : quakefolio.pipeline.cache.StageCache or None
+
+    Returns
+    -------
+    SiteBlockResult
+        ``values`` (n_im, n_block_sites, n_rp, n_mag, n_dist, n_eps) [1/yr].
     """
     lo, hi = block
     mean = model.statistics["mean"][:, lo:hi]  # (n_im, n_blk, n_lev)
@@ -222,14 +347,9 @@ def disagg_block(model, hazard, return_periods, block):
     bins = model.bins
     keys = [digest("disagg-site", k, list(map(float, return_periods)), bins.mag_edges, bins.dist_edges,
                    bins.eps_edges, mean[:, j]) for j, k in enumerate(_site_keys(model, hazard, lo, hi))]
-    total = np.zeros((len(model.ims), hi - lo, len(return_periods)) + bins.shape)
-    missing = []
-    for j, key in enumerate(keys):
-        hit = model.cache.get("disaggregation", key) if model.cache is not None else None
-        if hit is not None and hit["contrib"].shape == total[:, j].shape:
-            total[:, j] = hit["contrib"]
-        else:
-            missing.append(j)
+    per_site = (len(model.ims), len(return_periods)) + bins.shape
+    rows, missing = _cached_rows(cache, "disaggregation", keys, (hi - lo,) + per_site, "contrib")
+    total = np.ascontiguousarray(np.moveaxis(rows, 0, 1))
     if missing:
         idx = lo + np.array(missing)
         for _, ws, src in model.source_branches:
@@ -238,20 +358,27 @@ def disagg_block(model, hazard, return_periods, block):
                 [g for _, _, g in model.gmm_branches], [ws * wg for _, wg, _ in model.gmm_branches], model.ims,
                 targets[:, missing], bins, truncation_sigma=model.truncation_sigma,
                 max_distance_km=model.max_distance_km, region=model.region, site_block=len(idx), ref=model.ref)
-        if model.cache is not None:
+        if cache is not None:
             for j in missing:
-                model.cache.put("disaggregation", keys[j], {"contrib": total[:, j]})
-    if model.cache is not None:
-        model.cache.count("disaggregation_sites", hits=len(keys) - len(missing), misses=len(missing))
-    return total
+                cache.put("disaggregation", keys[j], {"contrib": total[:, j]})
+    return SiteBlockResult(block, total, len(keys) - len(missing), len(missing))
 
 
-def combine_disaggregation(model, hazard, blocks, parts):
-    n_sites = len(hazard.site_id)
-    out = np.zeros((parts[0].shape[0], n_sites) + parts[0].shape[2:])
-    for (lo, hi), part in zip(blocks, parts):
-        out[:, lo:hi] = part
-    model.disagg = out
+def combine_disaggregation(model, hazard, parts):
+    """The hazard model with the site blocks' disaggregation assembled (a new object).
+
+    Parameters
+    ----------
+    model : HazardModel
+    hazard : HazardCurves
+    parts : list of SiteBlockResult
+        From :func:`disagg_block`.
+
+    Returns
+    -------
+    HazardModel
+    """
+    return replace(model, disagg=_assemble(parts, len(hazard.site_id), axis=1))
 
 
 # --- tables -----------------------------------------------------------------------------------

@@ -2,10 +2,9 @@
 
 The flow is the same as for a local run; only its task runner differs
 (``prefect_dask.DaskTaskRunner``).  Stages that run once (ingest, combining blocks,
-writing the run) stay in the driver process; stages mapped over blocks (hazard site
-blocks, disaggregation site blocks, (site, class) blocks, event chunks) run on the
-workers through :class:`DaskExecutor`, which sends each task a small run reference and
-its block instead of the in-memory inputs (see :mod:`quakefolio.pipeline.worker`).
+writing the run) stay in the driver process; block tasks (hazard site blocks,
+disaggregation site blocks, (site, class) blocks, event chunks) run on the workers with
+a small run reference and their block (see :mod:`quakefolio.pipeline.blocks`).
 
 Every task reports to one Prefect API: :func:`run_on_dask` connects to (or starts) a
 local server on 127.0.0.1 (:mod:`quakefolio.pipeline.server`) and runs the flow with
@@ -21,10 +20,8 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from quakefolio.pipeline.config import resolve_execution  # noqa: F401 - part of this module's API
-from quakefolio.pipeline.flow import PrefectExecutor
-from quakefolio.pipeline.worker import RemoteBlocks
 
-__all__ = ["DaskExecutor", "LOCAL_CLUSTER", "resolve_execution", "dask_task_runner", "run_on_dask", "using_api",
+__all__ = ["LOCAL_CLUSTER", "resolve_execution", "dask_task_runner", "run_on_dask", "using_api",
            "flush_to_api"]
 
 #: The cluster started when no address is given: ``distributed.LocalCluster`` on loopback,
@@ -105,8 +102,3 @@ def run_on_dask(config_path, address="", *, stages_to_run="all", api_url=None):
     finally:
         if server is not None:
             server.stop()  # only if this call started it
-
-
-class DaskExecutor(RemoteBlocks, PrefectExecutor):
-    """Single stages as Prefect tasks in the driver; block stages as Prefect tasks on the
-    Dask workers, with small arguments (:class:`quakefolio.pipeline.worker.RemoteBlocks`)."""

@@ -361,7 +361,7 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
 def event_cache_key(inputs):
     """Digest of everything the event-based results depend on."""
     from quakefolio.pipeline.cache import digest
-    from quakefolio.pipeline.runner import fragility_class_digests
+    from quakefolio.pipeline.cache import fragility_class_digests
 
     cfg = inputs.config
     model = inputs.hazard_model

@@ -774,7 +774,7 @@ def _load_run_library(run):
     digests = run.manifest.get("fragility_classes")
     notes, stale = [], set()
     if isinstance(digests, dict):
-        from quakefolio.pipeline.runner import fragility_class_digests
+        from quakefolio.pipeline.cache import fragility_class_digests
 
         now = fragility_class_digests(lib)
         stale = {c for c in digests if now.get(c) != digests[c]}

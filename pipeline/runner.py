@@ -1,23 +1,43 @@
-"""Writing a run and the pure-library path (no Prefect) used by tests and benchmarks."""
+"""The run as a sequence of stages, shared by the plain library path and the Prefect flow.
+
+:func:`execute` reads as the pipeline: hazard (compute mode) -> damage and loss ->
+event-based portfolio -> screening and what-if -> store.  Each stage returns a frozen
+product (:mod:`quakefolio.pipeline.products`); block stages are mapped over blocks with
+small arguments (:mod:`quakefolio.pipeline.blocks`).  An *executor* decides how a stage
+runs: :class:`SequentialExecutor` in this thread, or
+:class:`quakefolio.pipeline.flow.PrefectExecutor` as Prefect tasks (on threads or on Dask).
+"""
 from __future__ import annotations
 
-import hashlib
 import json
 import platform
 import time
 from importlib import metadata
 
-from quakefolio.pipeline import progress, stages
+from quakefolio.core.errors import InputError
+from quakefolio.pipeline import blocks, progress, stages
+from quakefolio.pipeline import hazard_stage as hs
+from quakefolio.pipeline import portfolio_stage as ps
+from quakefolio.pipeline import whatif
+from quakefolio.pipeline.cache import digest, fragility_class_digests
 from quakefolio.pipeline.caution import CAUTION
+from quakefolio.pipeline.products import CacheCounts, EventProduct, WhatIfProduct
 from quakefolio.pipeline.store import RunWriter, new_run_id
 from quakefolio.pipeline.tables import TABLES, units_for
 
-__all__ = ["execute", "SequentialExecutor", "write_run", "run_pure", "inputs_digest", "package_versions"]
+__all__ = ["execute", "SequentialExecutor", "write_run", "run_pure", "inputs_digest", "package_versions",
+           "StageError", "stage_guard"]
 
 _PACKAGES = ("quakefolio", "numpy", "scipy", "pandas", "pyarrow", "prefect")
 
 
 def package_versions():
+    """Versions of quakefolio, its main dependencies and Python (for the manifest).
+
+    Returns
+    -------
+    dict name -> version string or None
+    """
     out = {}
     for name in _PACKAGES:
         try:
@@ -28,21 +48,9 @@ def package_versions():
     return out
 
 
-def fragility_class_digests(library):
-    """sha256 per building class of its resolved parameters (to attribute changes between runs)."""
-    out = {}
-    for code, dss in sorted(library.classes.items()):
-        blob = json.dumps({"im": dss.im, "names": list(dss.names), "medians": dss.medians.tolist(),
-                           "betas": dss.betas.tolist(), "mdr": dss.mean_damage_ratio.tolist(),
-                           "cov": dss.cov.tolist(), "collapse_index": dss.collapse_index}, sort_keys=True)
-        out[code] = hashlib.sha256(blob.encode()).hexdigest()
-    return out
-
-
 def inputs_digest(inputs):
-    """sha256 over the input files' digests and the resolved config."""
-    blob = json.dumps({"inputs": inputs.input_hashes, "config": inputs.config.resolved()}, sort_keys=True)
-    return hashlib.sha256(blob.encode()).hexdigest()
+    """sha256 over the input files' digests and the resolved config of ``inputs`` (a RunInputs)."""
+    return inputs.inputs_sha256
 
 
 class StageError(RuntimeError):
@@ -54,9 +62,22 @@ class StageError(RuntimeError):
 
 
 def stage_guard(name, config_path, call):
-    """Run ``call()``; wrap unexpected exceptions in :class:`StageError` (user-input errors pass)."""
-    from quakefolio.core.errors import InputError
+    """Run ``call()``; wrap unexpected exceptions in :class:`StageError` (user-input errors pass).
 
+    Parameters
+    ----------
+    name : str
+        Stage name.
+    config_path : str
+        Named in the error.
+    call : callable
+        No arguments.
+
+    Returns
+    -------
+    object
+        What ``call`` returns.
+    """
     try:
         return call()
     except (InputError, StageError, KeyboardInterrupt):
@@ -66,155 +87,266 @@ def stage_guard(name, config_path, call):
 
 
 class SequentialExecutor:
-    """Runs stage functions in this thread (the pure-library path)."""
+    """Runs stage functions in this thread (the plain library path).
+
+    ``one(name, fn, *args)`` runs a stage once; ``many(name, fn, ref, items)`` runs a
+    block task ``fn(ref, item)`` per item, in order.
+    """
 
     config_path = None
 
     def one(self, name, fn, *args):
         return stage_guard(name, self.config_path, lambda: fn(*args))
 
-    def many(self, name, fn, arglist):
-        progress.stage(name, len(arglist))
+    def many(self, name, fn, ref, items):
+        progress.stage(name, len(items))
         out = []
-        for args in arglist:
-            out.append(stage_guard(name, self.config_path, lambda a=args: fn(*a)))
+        for item in items:
+            out.append(stage_guard(name, self.config_path, lambda i=item: fn(ref, i)))
             progress.advance(name)
         return out
+
+
+class _Clock:
+    """Wall time per stage [s] (the manifest's ``timings_s``)."""
+
+    def __init__(self):
+        self.timings = {}
+
+    def __call__(self, name, since):
+        self.timings[name] = time.perf_counter() - since
+
+
+def _site_counts(stage, parts):
+    return CacheCounts.of(stage, sum(p.from_cache for p in parts), sum(p.computed for p in parts))
+
+
+def run_hazard(inputs, ref, executor, work, clock):
+    """Compute-mode hazard: curves per site block, logic-tree statistics, disaggregation.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+    ref : RunRef
+    executor : SequentialExecutor or PrefectExecutor
+    work : Path
+        Work folder for files other processes read (:func:`quakefolio.pipeline.blocks.work_folder`).
+    clock : callable(name, since)
+
+    Returns
+    -------
+    (RunInputs, RunRef, CacheCounts)
+        The inputs with the hazard, the reference to them, and the cache counts.
+    """
+    t = time.perf_counter()
+    site_blocks = hs.site_blocks(len(inputs.hazard.site_id), inputs.config["execution"]["site_block_size"])
+    parts = executor.many("hazard-block", blocks.hazard_task, ref, site_blocks)
+    model, hazard = executor.one("hazard-statistics", hs.combine_hazard, inputs.hazard_model, inputs.hazard, parts)
+    inputs = stages.with_hazard(inputs, model, hazard)
+    ref = blocks.publish_hazard(ref, inputs, work)
+    counts = _site_counts("hazard_sites", parts)
+    clock("hazard_s", t)
+    if model.disaggregation:
+        t = time.perf_counter()
+        parts = executor.many("disaggregation-block", blocks.disagg_task, ref, site_blocks)
+        model = executor.one("disaggregation-combine", hs.combine_disaggregation, model, hazard, parts)
+        inputs = stages.with_hazard(inputs, model, hazard)
+        blocks.register(inputs, ref)
+        counts = counts + _site_counts("disaggregation_sites", parts)
+        clock("disaggregation_s", t)
+    return inputs, ref, counts
+
+
+def run_damage(inputs, ref, executor, clock):
+    """Damage and loss per block of unique (site, class) pairs; the asset tables.
+
+    Returns
+    -------
+    (DamageProduct, CacheCounts)
+    """
+    t = time.perf_counter()
+    plan = stages.plan_blocks(inputs)
+    results = executor.many("damage-and-loss-block", blocks.damage_task, ref, list(plan.blocks))
+    damage = executor.one("damage-and-loss-tables", stages.combine_damage, inputs, plan, results)
+    clock("damage_loss_s", t)
+    return damage, plan.counts or CacheCounts()
+
+
+def run_events(inputs, ref, executor, clock):
+    """The event-based portfolio stage (whole-stage cache), or None when it is off.
+
+    Returns
+    -------
+    (EventProduct or None, EventModel or None, CacheCounts)
+    """
+    if not inputs.config["portfolio"]["event_based"]:
+        return None, None, CacheCounts()
+    t = time.perf_counter()
+    cache = stages.stage_cache(inputs)
+    key = ps.event_cache_key(inputs)
+    cached = ps.load_cached(cache, key)
+    em = None
+    if cached is not None:
+        events = EventProduct(*cached, from_cache=True)
+    else:
+        em = executor.one("event-set", ps.prepare_events, inputs)
+        blocks.register_events(ref, em)
+        chunks = executor.many("event-loss-block", blocks.event_task, ref, ps.event_chunks(em))
+        tables, checks = executor.one("portfolio-aggregate", ps.combine_events, em, inputs, chunks)
+        ps.save_cached(cache, key, (tables, checks))
+        events = EventProduct(tables, checks)
+    clock("event_based_s", t)
+    return events, em, CacheCounts.of("event_stage", events.from_cache, not events.from_cache)
+
+
+def run_whatif(inputs, damage, events, em, executor, clock):
+    """Collapse-risk screening and retrofit alternatives (whole-stage cache).
+
+    Returns
+    -------
+    (WhatIfProduct, CacheCounts)
+    """
+    t = time.perf_counter()
+    cache = stages.stage_cache(inputs)
+    key = digest("screening-and-what-if", inputs.inputs_sha256)  # every input file and setting
+    cached = ps.load_cached(cache, key, kind="whatif")
+    if cached is None:
+        portfolio = None if events is None else (events.tables, events.checks)
+        tables = executor.one("screening-and-what-if", whatif.evaluate, inputs, damage.pair_results(), portfolio, em)
+        ps.save_cached(cache, key, (tables, {}), kind="whatif")
+        product = WhatIfProduct(tables)
+    else:
+        product = WhatIfProduct(cached[0], from_cache=True)
+    clock("screening_whatif_s", t)
+    return product, CacheCounts.of("screening_and_what_if", product.from_cache, not product.from_cache)
 
 
 def execute(inputs, executor, *, stages_to_run="all"):
     """The run, stage by stage; ``executor`` decides how (in this thread or as Prefect tasks).
 
-    Stages: hazard (compute mode: curves per site block, logic-tree statistics,
-    disaggregation per site block) -> damage and loss per block of (site, class) pairs
-    -> store.  With ``stages_to_run="hazard"`` only the hazard tables are written.
-    Returns the run folder.
+    Parameters
+    ----------
+    inputs : RunInputs
+        From :func:`quakefolio.pipeline.stages.load_inputs`.
+    executor : SequentialExecutor or quakefolio.pipeline.flow.PrefectExecutor
+    stages_to_run : {"all", "hazard"}
+        ``"hazard"`` writes the hazard tables only.
+
+    Returns
+    -------
+    Path
+        The run folder.
     """
-    from quakefolio.pipeline import hazard_stage as hs
-
-    timings = {}
-    cfg = inputs.config
-    executor.config_path = str(cfg.path)
-    model = inputs.hazard_model
-    t = time.perf_counter()
-    if model is not None:
-        blocks = hs.site_blocks(len(inputs.hazard.site_id), cfg["execution"]["site_block_size"])
-        parts = executor.many("hazard-block", hs.hazard_block, [(model, inputs.hazard, b) for b in blocks])
-        executor.one("hazard-statistics", hs.combine_hazard, model, inputs.hazard, blocks, parts)
-        timings["hazard_s"] = time.perf_counter() - t
-        if model.disaggregation:
-            t = time.perf_counter()
-            rps = cfg["hazard"]["return_periods_yr"]
-            parts = executor.many("disaggregation-block", hs.disagg_block,
-                                  [(model, inputs.hazard, rps, b) for b in blocks])
-            executor.one("disaggregation-combine", hs.combine_disaggregation, model, inputs.hazard, blocks, parts)
-            timings["disaggregation_s"] = time.perf_counter() - t
-    results = portfolio = extra = None
-    if stages_to_run == "all":
-        t = time.perf_counter()
-        results = executor.many("damage-and-loss-block", stages.compute_block,
-                                [(inputs, b) for b in stages.plan_blocks(inputs)])
-        timings["damage_loss_s"] = time.perf_counter() - t
-        if cfg["portfolio"]["event_based"]:
-            from quakefolio.pipeline import portfolio_stage as ps
-
-            t = time.perf_counter()
-            key = ps.event_cache_key(inputs)
-            portfolio = ps.load_cached(inputs.cache, key)
-            from_cache = portfolio is not None
-            if not from_cache:
-                em = executor.one("event-set", ps.prepare_events, inputs)
-                chunks = executor.many("event-loss-block", ps.event_chunk, [(em, c) for c in ps.event_chunks(em)])
-                portfolio = executor.one("portfolio-aggregate", ps.combine_events, em, inputs, chunks)
-                ps.save_cached(inputs.cache, key, portfolio)
-            inputs.cache.count("event_stage", hits=int(from_cache), misses=int(not from_cache))
-            timings["event_based_s"] = time.perf_counter() - t
-        from quakefolio.pipeline import whatif
-
-        t = time.perf_counter()
-        from quakefolio.pipeline import portfolio_stage as ps
-        from quakefolio.pipeline.cache import digest
-
-        key = digest("screening-and-what-if", inputs_digest(inputs))  # every input file and setting
-        cached = ps.load_cached(inputs.cache, key, kind="whatif")
-        if cached is None:
-            extra = executor.one("screening-and-what-if", whatif.evaluate, inputs, results, portfolio)
-            ps.save_cached(inputs.cache, key, (extra, {}), kind="whatif")
-        else:
-            extra = cached[0]
-        inputs.cache.count("screening_and_what_if", hits=int(cached is not None), misses=int(cached is None))
-        timings["screening_whatif_s"] = time.perf_counter() - t
-    return executor.one("store-run", write_run, inputs, results, timings, portfolio, extra)
+    executor.config_path = str(inputs.config.path)
+    clock, counts = _Clock(), CacheCounts()
+    damage = events = extra = None
+    ref = blocks.register(inputs)
+    with blocks.work_folder(inputs) as work:
+        if inputs.hazard_model is not None:
+            inputs, ref, c = run_hazard(inputs, ref, executor, work, clock)
+            counts += c
+        if stages_to_run == "all":
+            damage, c = run_damage(inputs, ref, executor, clock)
+            counts += c
+            events, em, c = run_events(inputs, ref, executor, clock)
+            counts += c
+            extra, c = run_whatif(inputs, damage, events, em, executor, clock)
+            counts += c
+        return executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts)
 
 
-def write_run(inputs, results, timings, portfolio=None, extra=None):
-    """Assemble every table, write the run folder atomically, return its path.
-
-    ``results`` None writes the hazard tables only (``quakefolio hazard``); ``portfolio``
-    is the (tables, cross-checks) pair of the event-based stage, if it ran; ``extra`` a
-    dict of further tables (screening and what-if), if any.
-    """
-    t0 = time.perf_counter()
-    cfg = inputs.config
-    currency = cfg["scenario"]["currency"]
+def _hazard_frames(inputs):
     frames = {
         "site_hazard": stages.site_hazard_table(inputs),
         "hazard_at_return_periods": stages.hazard_at_return_periods_table(inputs),
     }
     model = inputs.hazard_model
     if model is not None and model.disagg is not None:
-        from quakefolio.pipeline.hazard_stage import disaggregation_frames
+        frames["disaggregation"], frames["disaggregation_summary"] = hs.disaggregation_frames(
+            model, inputs.hazard, inputs.config["hazard"]["return_periods_yr"])
+    return frames
 
-        frames["disaggregation"], frames["disaggregation_summary"] = disaggregation_frames(
-            model, inputs.hazard, cfg["hazard"]["return_periods_yr"])
-    if results is not None:
-        frames.update(stages.build_tables(inputs, results))
-    checks = None
-    if portfolio is not None:
-        frames.update(portfolio[0])
-        checks = portfolio[1]
-    if extra:
-        frames.update(extra)
-    digest = inputs_digest(inputs)
+
+def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, frames, warnings):
+    cfg = inputs.config
+    currency = cfg["scenario"]["currency"]
+    model = inputs.hazard_model
+    manifest = {
+        "run_id": run_id,
+        "created_utc": run_id[:16],
+        "caution": CAUTION,
+        "scenario": cfg["scenario"]["name"],
+        "stages": stages_written,
+        "inputs": dict(inputs.input_hashes),
+        "inputs_sha256": inputs.inputs_sha256,
+        "config": cfg.resolved(),
+        "packages": package_versions(),
+        "seed": cfg["portfolio"]["seed"] if events is not None else None,
+        "cross_checks": None if events is None else events.checks,
+        "cache": (counts or CacheCounts()).as_dict(),
+        "timings_s": {k: round(v, 4) for k, v in timings.items()},
+        "row_counts": dict(writer.row_counts),
+        "units": {name: units_for(name, currency) for name in frames},
+        "hazard_ims_interpolated": sorted(inputs.hazard.interpolated),
+        "fragility_classes": fragility_class_digests(inputs.library),
+        "hazard_sites": len(inputs.hazard.site_id),
+        "warnings": list(warnings),
+    }
+    if model is not None:
+        manifest["hazard_logic_tree"] = {
+            "source_branches": [{"id": i, "weight": w, "ruptures": len(s.ruptures), "sources": s.sources}
+                                for i, w, s in model.source_branches],
+            "gmm_branches": [{"id": i, "weight": w} for i, w, _ in model.gmm_branches],
+            "ims": model.ims,
+        }
+    return manifest
+
+
+def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None):
+    """Assemble every table, write the run folder atomically, return its path.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        With hazard.
+    damage : DamageProduct or None
+        None writes the hazard tables only (``quakefolio hazard``).
+    events : EventProduct or None
+        The event-based stage, if it ran.
+    extra : WhatIfProduct or None
+        Screening and what-if tables.
+    timings : dict stage -> seconds
+    counts : CacheCounts or None
+
+    Returns
+    -------
+    Path
+        The committed run folder.
+    """
+    t0 = time.perf_counter()
+    cfg = inputs.config
+    currency = cfg["scenario"]["currency"]
+    frames = _hazard_frames(inputs)
+    warnings = list(inputs.warnings)
+    if damage is not None:
+        frames.update(damage.tables)
+        warnings += list(damage.warnings)
+    if events is not None:
+        frames.update(events.tables)
+    if extra is not None:
+        frames.update(extra.tables)
     output = cfg["output"]["folder"]
-    run_id = new_run_id(output, digest)
-    versions = package_versions()
-    provenance = {"run_id": run_id, "inputs_sha256": digest, "quakefolio_version": versions["quakefolio"],
-                  "currency": currency, "caution": CAUTION}
+    run_id = new_run_id(output, inputs.inputs_sha256)
+    provenance = {"run_id": run_id, "inputs_sha256": inputs.inputs_sha256,
+                  "quakefolio_version": package_versions()["quakefolio"], "currency": currency, "caution": CAUTION}
     writer = RunWriter(output, run_id)
     try:
         for name, frame in frames.items():
             writer.write_table(name, frame, units=units_for(name, currency), description=TABLES[name]["description"],
                                provenance=provenance)
-        timings = dict(timings, store_s=time.perf_counter() - t0)
-        manifest = {
-            "run_id": run_id,
-            "created_utc": run_id[:16],
-            "caution": CAUTION,
-            "scenario": cfg["scenario"]["name"],
-            "stages": "hazard" if results is None else "all",
-            "inputs": inputs.input_hashes,
-            "inputs_sha256": digest,
-            "config": cfg.resolved(),
-            "packages": versions,
-            "seed": cfg["portfolio"]["seed"] if portfolio is not None else None,
-            "cross_checks": checks,
-            "cache": inputs.cache.stats() if inputs.cache is not None else {},
-            "timings_s": {k: round(v, 4) for k, v in timings.items()},
-            "row_counts": dict(writer.row_counts),
-            "units": {name: units_for(name, currency) for name in frames},
-            "hazard_ims_interpolated": sorted(inputs.hazard.interpolated),
-            "fragility_classes": fragility_class_digests(inputs.library),
-            "hazard_sites": len(inputs.hazard.site_id),
-            "warnings": list(inputs.warnings),
-        }
-        if model is not None:
-            manifest["hazard_logic_tree"] = {
-                "source_branches": [{"id": i, "weight": w, "ruptures": len(s.ruptures), "sources": s.sources}
-                                    for i, w, s in model.source_branches],
-                "gmm_branches": [{"id": i, "weight": w} for i, w, _ in model.gmm_branches],
-                "ims": model.ims,
-            }
+        timings = dict(timings or {}, store_s=time.perf_counter() - t0)
+        manifest = _manifest(inputs, run_id, "hazard" if damage is None else "all", events, counts, timings, writer,
+                             frames, warnings)
         writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
         if cfg["output"]["report"]:
             from quakefolio.pipeline.report import write_report  # lazy: the report module imports this one
@@ -227,6 +359,17 @@ def write_run(inputs, results, timings, portfolio=None, extra=None):
 
 
 def run_pure(config_path, stages_to_run="all"):
-    """The whole run without Prefect (same stage functions, sequential)."""
-    inputs = config_path if isinstance(config_path, stages.Inputs) else stages.load_inputs(config_path)
+    """The whole run without Prefect (same stage functions, sequential).
+
+    Parameters
+    ----------
+    config_path : str, Path or RunInputs
+    stages_to_run : {"all", "hazard"}
+
+    Returns
+    -------
+    Path
+        The run folder.
+    """
+    inputs = config_path if isinstance(config_path, stages.RunInputs) else stages.load_inputs(config_path)
     return execute(inputs, SequentialExecutor(), stages_to_run=stages_to_run)

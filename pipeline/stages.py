@@ -1,67 +1,73 @@
-"""Stage functions of the classical damage-and-loss path, free of Prefect.
+"""Stage functions of a run, free of Prefect: read inputs, damage and loss, tables.
 
-The flow (:mod:`quakefolio.pipeline.flow`) wraps these in thin tasks; tests call them
-directly.  Numerics stay in :mod:`quakefolio.core` and :mod:`quakefolio.fragility`:
-this module reads, groups work per unique (hazard site, building class) pair, calls the
-kernels, and lays results out as tables.
+Each stage takes the products before it and returns a new, frozen product
+(:mod:`quakefolio.pipeline.products`); the sequence is :func:`quakefolio.pipeline.runner.execute`.
+Numerics stay in :mod:`quakefolio.core` and :mod:`quakefolio.fragility`: this module
+reads, groups work per unique (hazard site, building class) pair, calls the kernels, and
+lays results out as tables.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+import hashlib
+import json
+from dataclasses import replace
 
 import numpy as np
 import pandas as pd
 
 from quakefolio.core.curves import im_at_rate, prob_in_years, return_period
 from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.hazard import weighted_fractiles
 from quakefolio.core.loss import expected_annual_loss, loss_exceedance_rates
 from quakefolio.fragility import CrossingError, load_library
-from quakefolio.pipeline.cache import PairStore, StageCache, digest, row_digests
+from quakefolio.pipeline.cache import PairStore, StageCache, digest, fragility_class_digests, row_digests  # noqa: F401
 from quakefolio.pipeline.config import load_config, sha256_file
+from quakefolio.pipeline.hazard_stage import branch_weights, prepare_compute, site_hazard_frame, statistic_name
 from quakefolio.pipeline.ingest import (
     UnavailableIM, curves_for_im, map_assets_to_sites, read_exposure, read_hazard_curves,
 )
+from quakefolio.pipeline.products import (
+    BlockResult, CacheCounts, ClassDamage, DamagePlan, DamageProduct, RunInputs, WorkBlock, frozen_mapping,
+)
 
-__all__ = ["Inputs", "WorkBlock", "load_inputs", "plan_blocks", "compute_block", "build_tables"]
+__all__ = ["RunInputs", "WorkBlock", "BlockResult", "load_inputs", "inputs_digest", "stage_cache", "with_hazard",
+           "unique_pairs", "plan_blocks", "compute_block", "combine_damage", "site_hazard_table", "hazard_at_return_periods_table",
+           "fragility_class_digests"]
 
-
-@dataclass
-class Inputs:
-    """Validated inputs of a run, with the asset-to-site mapping."""
-
-    config: object
-    library: object
-    hazard: object
-    exposure: pd.DataFrame
-    site_index: np.ndarray
-    site_distance_km: np.ndarray
-    input_hashes: dict
-    warnings: list = field(default_factory=list)
-    hazard_model: object = None  # compute mode: quakefolio.pipeline.hazard_stage.HazardModel
-    cache: object = None  # quakefolio.pipeline.cache.StageCache
-    cached_pairs: dict = field(default_factory=dict)  # class -> (sites, rows) read from the cache
-    pair_keys: dict = field(default_factory=dict)  # class -> (sites, (n, 32) digests)
+#: Former name of :class:`quakefolio.pipeline.products.RunInputs`.
+Inputs = RunInputs
 
 
-@dataclass(frozen=True)
-class WorkBlock:
-    """A chunk of work: one building class on a set of unique hazard sites."""
+def inputs_digest(input_hashes, config):
+    """sha256 over the input files' digests and the resolved config.
 
-    block_id: int
-    class_code: str
-    sites: np.ndarray  # unique site indices
+    Parameters
+    ----------
+    input_hashes : Mapping
+        Path and sha256 of every input file.
+    config : quakefolio.pipeline.config.Config
+
+    Returns
+    -------
+    str
+        Hex digest.
+    """
+    blob = json.dumps({"inputs": dict(input_hashes), "config": config.resolved()}, sort_keys=True)
+    return hashlib.sha256(blob.encode()).hexdigest()
 
 
-@dataclass
-class BlockResult:
-    block: WorkBlock
-    ds_rates: np.ndarray  # (m, n_ds) [1/yr]
-    share_below: np.ndarray
-    share_above: np.ndarray
-    eal_ratio: np.ndarray  # (m,) [1/yr]
-    loss_curve: np.ndarray  # (m, n_l) [1/yr]
-    ds_fractiles: np.ndarray | None = None  # (n_q, m, n_ds) [1/yr], propagated logic-tree branches
-    eal_fractiles: np.ndarray | None = None  # (n_q, m) [1/yr]
+def stage_cache(inputs):
+    """The run's content cache (``<output>/cache``), enabled per ``[execution] cache``.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+
+    Returns
+    -------
+    quakefolio.pipeline.cache.StageCache
+    """
+    return StageCache(inputs.config["output"]["folder"], enabled=inputs.config["execution"]["cache"])
 
 
 def load_inputs(config_or_path):
@@ -69,7 +75,16 @@ def load_inputs(config_or_path):
 
     Ingest mode reads the tabulated curves and maps assets to the nearest site; compute
     mode reads the source models and builds hazard sites from the exposure (the curves
-    are computed later by :mod:`quakefolio.pipeline.hazard_stage`).
+    are computed later by :mod:`quakefolio.pipeline.hazard_stage`).  Cross-file checks
+    (class IMs available, curves do not cross, retrofit alternatives) run here, once.
+
+    Parameters
+    ----------
+    config_or_path : str, Path or quakefolio.pipeline.config.Config
+
+    Returns
+    -------
+    RunInputs
     """
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
     hz, ex, fr = config["hazard"], config["exposure"], config["fragility"]
@@ -87,8 +102,6 @@ def load_inputs(config_or_path):
         site_index, dist = map_assets_to_sites(exposure, hazard, max_distance_km=hz["max_site_distance_km"],
                                                exposure_path=ex["file"])
     else:
-        from quakefolio.pipeline.hazard_stage import prepare_compute
-
         model, hazard, site_index, dist = prepare_compute(config, exposure, library)
         for bid, _, src in model.source_branches:
             hashes[f"source_model:{bid}"] = {"path": src.path, "sha256": src.sha256}
@@ -118,15 +131,29 @@ def load_inputs(config_or_path):
     if hazard.interpolated:
         warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
                         "(log-log between neighbouring tabulated periods)")
-    inputs = Inputs(config, library, hazard, exposure, site_index, dist, hashes, warnings)
-    inputs.hazard_model = model
-    inputs.cache = StageCache(config["output"]["folder"], enabled=config["execution"]["cache"])
-    if model is not None:
-        model.cache = inputs.cache
+    draft = RunInputs(config, library, hazard, exposure, site_index, dist, hashes, "", tuple(warnings), model)
     from quakefolio.pipeline.whatif import validate as validate_alternatives
 
-    validate_alternatives(inputs)  # retrofit alternatives: asset ids, classes, IMs
-    return inputs
+    validate_alternatives(draft, hashes)  # retrofit alternatives: asset ids, classes, IMs; adds their library files
+    return replace(draft, input_hashes=frozen_mapping(hashes), inputs_sha256=inputs_digest(hashes, config))
+
+
+def with_hazard(inputs, model, hazard):
+    """The run inputs with the computed hazard (a new object; compute mode).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+    model : quakefolio.pipeline.hazard_stage.HazardModel
+        With branch curves and statistics (and disaggregation, if any).
+    hazard : quakefolio.pipeline.ingest.HazardCurves
+        With the mean curves per IM.
+
+    Returns
+    -------
+    RunInputs
+    """
+    return replace(inputs, hazard_model=model, hazard=hazard)
 
 
 def _damage_group_key(inputs, code):
@@ -138,36 +165,78 @@ def _damage_group_key(inputs, code):
                   list(cfg["output"]["loss_curve_ratios"]))
 
 
+def unique_pairs(inputs):
+    """Number of unique (hazard site, building class) pairs of the exposure (the unit of damage work).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+
+    Returns
+    -------
+    int
+    """
+    classes = inputs.exposure.building_class.to_numpy()
+    return sum(len(np.unique(inputs.site_index[classes == code])) for code in set(classes))
+
+
 def plan_blocks(inputs):
     """Unique (site, class) pairs grouped per class and cut into blocks of ``block_size``.
 
     Pairs whose results are in the cache (same curve values, same class parameters and
     settings, same code) are read from it and left out of the blocks.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        With hazard curves.
+
+    Returns
+    -------
+    DamagePlan
     """
     size = inputs.config["execution"]["block_size"]
     model = inputs.hazard_model
-    use_cache = inputs.cache is not None and inputs.cache.enabled and not (
+    cache = stage_cache(inputs)
+    use_cache = cache.enabled and not (
         model is not None and (inputs.config["hazard"]["propagate_branches"] or not model.statistics))
-    blocks = []
+    blocks, cached, pair_keys = [], {}, {}
+    counts = CacheCounts()
     classes = inputs.exposure.building_class.to_numpy()
-    inputs.cached_pairs, inputs.pair_keys = {}, {}
     for code in sorted(set(classes)):
         sites = np.unique(inputs.site_index[classes == code])
         if use_cache:
             levels, rates = curves_for_im(inputs.hazard, inputs.library[code].im)
             keys = row_digests(levels[sites], rates[sites])
-            found, rows = PairStore(inputs.cache, "damage", _damage_group_key(inputs, code)).lookup(keys)
-            inputs.pair_keys[code] = (sites, keys)
-            inputs.cached_pairs[code] = (sites[found], rows)
-            inputs.cache.count("damage_pairs", hits=int(found.sum()), misses=int((~found).sum()))
+            found, rows = PairStore(cache, "damage", _damage_group_key(inputs, code)).lookup(keys)
+            pair_keys[code] = (sites, keys)
+            cached[code] = (sites[found], rows)
+            counts = counts + CacheCounts.of("damage_pairs", found.sum(), (~found).sum())
             sites = sites[~found]
         for start in range(0, len(sites), size):
             blocks.append(WorkBlock(len(blocks), code, sites[start:start + size]))
-    return blocks
+    return DamagePlan(tuple(blocks), frozen_mapping(cached), frozen_mapping(pair_keys), counts)
 
 
 def compute_block(inputs, block):
-    """Damage-state rates, EAL ratio and loss curve for one block (core kernels only)."""
+    """Damage-state rates, EAL ratio and loss curve for one block (core kernels only).
+
+    Rates by the exact per-segment integral of the fragility over the hazard curve
+    (:meth:`quakefolio.fragility.DamageStateSet.annual_rates`), EAL by
+    :func:`quakefolio.core.loss.expected_annual_loss`, loss curve by
+    :func:`quakefolio.core.loss.loss_exceedance_rates`; with propagated logic-tree
+    branches, the same kernels per branch and weighted fractiles over branches.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        With hazard curves.
+    block : WorkBlock
+
+    Returns
+    -------
+    BlockResult
+    """
     cfg = inputs.config
     dss = inputs.library[block.class_code]
     levels, rates = curves_for_im(inputs.hazard, dss.im)
@@ -177,22 +246,18 @@ def compute_block(inputs, block):
     eal_ratio = expected_annual_loss(ds, dss.mean_damage_ratio)
     curve = loss_exceedance_rates(ds, dss.mean_damage_ratio, np.asarray(cfg["output"]["loss_curve_ratios"]),
                                   dss.cov)
-    result = BlockResult(block, ds, below, above, eal_ratio, curve)
     model = inputs.hazard_model
-    if model is not None and cfg["hazard"]["propagate_branches"]:
-        # every logic-tree branch through the same kernels, then weighted fractiles over branches
-        from quakefolio.core.hazard import weighted_fractiles
-        from quakefolio.pipeline.hazard_stage import branch_weights
-
-        i = model.ims.index(dss.im)
-        branch = model.branch_curves[:, :, i][:, :, block.sites].reshape((-1, len(block.sites), x.shape[-1]))
-        ds_b = dss.annual_rates(x, branch, tail=cfg["fragility"]["tail"],
-                                envelope=cfg["fragility"]["crossing"] == "envelope")
-        w = branch_weights(model)
-        result.ds_fractiles = weighted_fractiles(ds_b, w, model.fractiles)
-        result.eal_fractiles = weighted_fractiles(expected_annual_loss(ds_b, dss.mean_damage_ratio), w,
-                                                  model.fractiles)
-    return result
+    if not (model is not None and cfg["hazard"]["propagate_branches"]):
+        return BlockResult(block, ds, below, above, eal_ratio, curve)
+    # every logic-tree branch through the same kernels, then weighted fractiles over branches
+    i = model.ims.index(dss.im)
+    branch = model.branch_curves[:, :, i][:, :, block.sites].reshape((-1, len(block.sites), x.shape[-1]))
+    ds_b = dss.annual_rates(x, branch, tail=cfg["fragility"]["tail"], envelope=cfg["fragility"]["crossing"] == "envelope")
+    w = branch_weights(model)
+    return BlockResult(block, ds, below, above, eal_ratio, curve,
+                       ds_fractiles=weighted_fractiles(ds_b, w, model.fractiles),
+                       eal_fractiles=weighted_fractiles(expected_annual_loss(ds_b, dss.mean_damage_ratio), w,
+                                                        model.fractiles))
 
 
 # --- tables -----------------------------------------------------------------------------------
@@ -200,8 +265,6 @@ def compute_block(inputs, block):
 def site_hazard_table(inputs):
     """Long-form curves (site_id, im, im_level [g], annual_rate [1/yr], statistic)."""
     if inputs.hazard_model is not None:
-        from quakefolio.pipeline.hazard_stage import site_hazard_frame
-
         return site_hazard_frame(inputs.hazard_model, inputs.hazard)
     frames = []
     hz = inputs.hazard
@@ -252,28 +315,21 @@ def _curve_sets(inputs):
             yield stat, im, levels, arr[i]
 
 
-def build_tables(inputs, results):
-    """Broadcast per-pair results to assets and build the asset tables.
+def _class_damage(inputs, plan, results):
+    """Computed and cached pairs of every class, sorted by site; the pair cache is rewritten.
 
-    Returns a dict of DataFrames: ``asset_damage``, ``asset_loss``, ``asset_loss_curve``.
+    Returns
+    -------
+    dict code -> ClassDamage
     """
-    ex = inputs.exposure
-    cfg = inputs.config
-    horizon = cfg["scenario"]["horizon_yr"]
-    ratios = np.asarray(cfg["output"]["loss_curve_ratios"])
-    classes = ex.building_class.to_numpy()
-    n_assets = len(ex)
     by_class = {}
     for res in results:
         by_class.setdefault(res.block.class_code, []).append(res)
-    for code, (sites, rows) in inputs.cached_pairs.items():
+    for code, (sites, rows) in plan.cached.items():
         if len(sites):
             by_class.setdefault(code, []).append(BlockResult(
                 WorkBlock(-1, code, sites), rows["ds"], rows["below"], rows["above"], rows["eal"], rows["curve"]))
-    damage_frames, curve_parts = [], []
-    eal_ratio = np.empty(n_assets)
-    collapse_rate = np.empty(n_assets)
-    max_tail = np.empty(n_assets)
+    out = {}
     for code in sorted(by_class):
         parts = sorted(by_class[code], key=lambda r: r.block.block_id)
         sites = np.concatenate([p.block.sites for p in parts])
@@ -284,13 +340,69 @@ def build_tables(inputs, results):
         curve = np.concatenate([p.loss_curve for p in parts])
         order = np.argsort(sites, kind="stable")  # cached and computed pairs, by site
         sites, ds, below, above, eal_r, curve = (a[order] for a in (sites, ds, below, above, eal_r, curve))
-        if code in inputs.pair_keys:
-            all_sites, keys = inputs.pair_keys[code]
+        if code in plan.pair_keys:
+            all_sites, keys = plan.pair_keys[code]
             assert np.array_equal(all_sites, sites)
-            PairStore.save_group(inputs.cache, "damage", _damage_group_key(inputs, code), keys,
+            PairStore.save_group(stage_cache(inputs), "damage", _damage_group_key(inputs, code), keys,
                                  {"ds": ds, "below": below, "above": above, "eal": eal_r, "curve": curve})
+        out[code] = ClassDamage(code, sites, ds, below, above, eal_r, curve)
+    return out
+
+
+def combine_damage(inputs, plan, results):
+    """The damage stage's product: per-class pair results and the asset tables.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        With hazard curves.
+    plan : DamagePlan
+        From :func:`plan_blocks` (its cached pairs join the computed ones; the pair cache
+        is rewritten with every pair of a class).
+    results : list of BlockResult
+        From :func:`compute_block`, any order.
+
+    Returns
+    -------
+    DamageProduct
+    """
+    classes = _class_damage(inputs, plan, results)
+    tables, warnings = build_tables(inputs, classes)
+    if any(r.ds_fractiles is not None for r in results):
+        tables.update(_fractile_tables(inputs, results))
+    return DamageProduct(frozen_mapping(classes), tuple(sorted(results, key=lambda r: r.block.block_id)),
+                         frozen_mapping(tables), tuple(warnings))
+
+
+def build_tables(inputs, classes):
+    """Broadcast per-pair results to assets and build the asset tables.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+    classes : dict code -> ClassDamage
+
+    Returns
+    -------
+    (dict, list)
+        DataFrames ``asset_damage``, ``asset_loss``, ``asset_loss_curve``; warning lines.
+    """
+    ex = inputs.exposure
+    cfg = inputs.config
+    horizon = cfg["scenario"]["horizon_yr"]
+    ratios = np.asarray(cfg["output"]["loss_curve_ratios"])
+    classes_of_assets = ex.building_class.to_numpy()
+    n_assets = len(ex)
+    damage_frames, curve_parts = [], []
+    eal_ratio = np.empty(n_assets)
+    collapse_rate = np.empty(n_assets)
+    max_tail = np.empty(n_assets)
+    for code in sorted(classes):
+        cd = classes[code]
+        sites, ds, below, above, eal_r, curve = (cd.sites, cd.ds_rates, cd.share_below, cd.share_above, cd.eal_ratio,
+                                                 cd.loss_curve)
         dss = inputs.library[code]
-        assets = np.flatnonzero(classes == code)
+        assets = np.flatnonzero(classes_of_assets == code)
         pair = np.searchsorted(sites, inputs.site_index[assets])
         n_ds = dss.n_states
         rate = ds[pair]  # (a, n_ds)
@@ -321,7 +433,7 @@ def build_tables(inputs, results):
     value = ex.replacement_value.to_numpy()
     asset_loss = pd.DataFrame({
         "asset_id": ex.asset_id.to_numpy(),
-        "building_class": classes,
+        "building_class": classes_of_assets,
         "site_id": inputs.hazard.site_id[inputs.site_index],
         "site_distance_km": inputs.site_distance_km,
         "replacement_value": value,
@@ -343,20 +455,16 @@ def build_tables(inputs, results):
     })
     threshold = cfg["fragility"]["tail_share_warning"]
     n_tail = int((max_tail > threshold).sum())
+    warnings = []
     if n_tail:
-        inputs.warnings.append(
+        warnings.append(
             f"{n_tail} assets draw more than {threshold:.0%} of a damage-state rate from beyond the tabulated "
             f"hazard range (tail policy '{cfg['fragility']['tail']}'; see tail_share_* in asset_damage)")
-    tables = {"asset_damage": asset_damage, "asset_loss": asset_loss, "asset_loss_curve": asset_loss_curve}
-    if any(r.ds_fractiles is not None for r in results):
-        tables.update(_fractile_tables(inputs, results))
-    return tables
+    return {"asset_damage": asset_damage, "asset_loss": asset_loss, "asset_loss_curve": asset_loss_curve}, warnings
 
 
 def _fractile_tables(inputs, results):
     """Logic-tree fractiles of per-asset damage-state rates and EAL (propagated branches)."""
-    from quakefolio.pipeline.hazard_stage import statistic_name
-
     ex = inputs.exposure
     model = inputs.hazard_model
     horizon = inputs.config["scenario"]["horizon_yr"]

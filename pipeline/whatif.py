@@ -129,13 +129,14 @@ def _check_new_class_hazard(inputs, dss, library_path, alt_id):
                              column=f"classes.{code}.states[{j}].beta") from None
 
 
-def validate(inputs):
+def validate(inputs, hashes=None):
     """Check every ``[[scenario.alternatives]]`` table against the exposure, libraries and hazard.
 
     Raises InputError naming the config file, the line and the key
     (``scenario.alternatives[i].<key>``) for unknown asset ids and classes, and naming the
     library file for a new class whose IM the hazard cannot provide or whose curves
-    cross.  Records the sha256 of every extra library in ``inputs.input_hashes``.
+    cross.  Records the path and sha256 of every extra library in ``hashes`` (a dict),
+    if given.
 
     Returns
     -------
@@ -181,7 +182,8 @@ def validate(inputs):
         else:
             library_path = str(entry["fragility_library"])
             library = load_library(library_path)
-            inputs.input_hashes[f"fragility_library:{aid}"] = {"path": library_path, "sha256": library.sha256}
+            if hashes is not None:
+                hashes[f"fragility_library:{aid}"] = {"path": library_path, "sha256": library.sha256}
         new_class = entry["new_class"]
         if new_class not in library:
             fail(f"unknown building class {new_class!r}" + _suggestion(new_class, library.classes,

@@ -112,7 +112,7 @@ def test_mean_curve_is_the_weighted_branch_mean(compute_config):
     model = inputs.hazard_model
     blocks = hazard_stage.site_blocks(len(inputs.hazard.site_id), 2)
     parts = [hazard_stage.hazard_block(model, inputs.hazard, b) for b in blocks]
-    hazard_stage.combine_hazard(model, inputs.hazard, blocks, parts)
+    model, _ = hazard_stage.combine_hazard(model, inputs.hazard, parts)
     w = np.array([0.6 * 0.5, 0.6 * 0.5, 0.4 * 0.5, 0.4 * 0.5])
     flat = model.branch_curves.reshape((-1,) + model.branch_curves.shape[2:])
     assert_allclose(model.statistics["mean"], np.tensordot(w, flat, axes=(0, 0)), rtol=1e-13)
@@ -173,8 +173,8 @@ def test_mean_curve_damage_rate_lies_between_the_branches(compute_config):
     inputs = stages.load_inputs(compute_config)
     model = inputs.hazard_model
     blocks = hazard_stage.site_blocks(len(inputs.hazard.site_id), 5)
-    hazard_stage.combine_hazard(model, inputs.hazard, blocks, [hazard_stage.hazard_block(model, inputs.hazard, b)
-                                                               for b in blocks])
+    model, _ = hazard_stage.combine_hazard(model, inputs.hazard, [hazard_stage.hazard_block(model, inputs.hazard, b)
+                                                                  for b in blocks])
     dss = inputs.library["TST-A"]
     i = model.ims.index(dss.im)
     branches = model.branch_curves[:, :, i].reshape((-1,) + model.branch_curves.shape[3:])

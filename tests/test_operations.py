@@ -104,44 +104,55 @@ def test_bad_address_flag_is_rejected_by_the_parser(mini_config, capsys):
     assert "expected a Dask scheduler address" in capsys.readouterr().err
 
 
-@pytest.mark.parametrize("config", ["quakefolio_compute.toml", "quakefolio.toml"])
-def test_worker_functions_give_the_in_memory_results(tmp_path, config):
-    """Every block stage goes out as a worker function with small arguments, rebuilt inputs give
-    identical tables, and the work folder is removed (the Dask path without a cluster)."""
-    from quakefolio.pipeline import worker
+class _OtherProcess(SequentialExecutor):
+    """Runs every block task as a process that holds none of the driver's products would:
+    the process registry is cleared before each block, so each task reads the inputs from the
+    config path (and, in compute mode, the published branch curves)."""
 
-    class InProcess(worker.RemoteBlocks, SequentialExecutor):
-        pass
+    def __init__(self):
+        self.resolved = []
+
+    def many(self, name, fn, ref, items):
+        from quakefolio.pipeline import blocks
+
+        out = []
+        for item in items:
+            blocks.clear()
+            out.append(fn(ref, item))
+            self.resolved.extend(blocks.resolved_runs())
+        return out
+
+
+@pytest.mark.parametrize("config", ["quakefolio_compute.toml", "quakefolio.toml"])
+def test_block_tasks_in_another_process_give_the_in_memory_results(tmp_path, config):
+    """Block tasks take only a run reference and their block: rebuilt from files, as on a Dask
+    worker, they give identical tables, and the work folder is removed."""
+    from quakefolio.pipeline import blocks
 
     remote_cfg = _copy_mini(tmp_path / "remote", config=config)
     reference = run_pure(_copy_mini(tmp_path / "reference", config=config))
-    worker.clear_memo()
+    executor = _OtherProcess()
     try:
-        inputs = load_inputs(remote_cfg)
-        with InProcess(inputs, remote_cfg) as executor:
-            run_dir = execute(inputs, executor)
-            assert executor.shipped_whole == []  # every mapped stage has a worker function
-            # compute mode: the combined branch curves are published for the workers
-            assert (executor.work is not None) == (config == "quakefolio_compute.toml")
-        assert worker.memo_runs() == [str(remote_cfg.resolve())]
+        run_dir = execute(load_inputs(remote_cfg), executor)
     finally:
-        worker.clear_memo()
+        blocks.clear()
+    assert executor.resolved and set(executor.resolved) == {str(remote_cfg.resolve())}
     assert not (tmp_path / "remote" / "output" / ".work").exists()
     _assert_same_tables(reference, run_dir, compute=config == "quakefolio_compute.toml")
-    # cache statistics counted on the "workers" reach the manifest
     assert _cache_computed(run_dir) == _cache_computed(reference)
 
 
-def test_worker_refuses_inputs_that_differ_from_the_driver(tmp_path):
-    from quakefolio.pipeline import worker
+def test_block_task_refuses_inputs_that_differ_from_the_driver(tmp_path):
+    from quakefolio.pipeline import blocks
+    from quakefolio.pipeline.products import RunRef
 
     cfg = _copy_mini(tmp_path / "m", config="quakefolio.toml")
-    worker.clear_memo()
+    blocks.clear()
     try:
         with pytest.raises(RuntimeError, match="differ from the driver's"):
-            worker.damage_block(worker.WorkRef(str(cfg.resolve()), "0" * 64), None)
+            blocks.damage_task(RunRef(str(cfg.resolve()), "0" * 64), None)
     finally:
-        worker.clear_memo()
+        blocks.clear()
 
 
 # --- slow: a real Prefect server, a Dask cluster, scheduled runs ----------------------------------
@@ -199,7 +210,7 @@ def test_dask_run_equals_local_run(tmp_path, prefect_server, ops_state):
     tables as the local thread-pool run."""
     from distributed import Client, LocalCluster
 
-    from quakefolio.pipeline import worker
+    from quakefolio.pipeline import blocks
     from quakefolio.pipeline.flow import run_flow
 
     local = run_flow(_copy_mini(tmp_path / "local"), max_workers=2)
@@ -214,7 +225,7 @@ def test_dask_run_equals_local_run(tmp_path, prefect_server, ops_state):
         assert proc.returncode == 0, proc.stderr
         assert "Traceback" not in proc.stderr and "Error" not in proc.stderr, proc.stderr
         with Client(address) as client:
-            held = client.run(worker.memo_runs)  # the workers rebuilt the inputs from the config path
+            held = client.run(blocks.resolved_runs)  # the workers rebuilt the inputs from the config path
     finally:
         cluster.close()
     run_dir = Path(proc.stdout.strip().splitlines()[-1])

@@ -55,7 +55,7 @@ def test_asset_results_follow_from_the_kernels(mini_config):
 
 def test_work_is_per_unique_site_class_pair(mini_config):
     inputs = stages.load_inputs(mini_config)
-    blocks = stages.plan_blocks(inputs)
+    blocks = stages.plan_blocks(inputs).blocks
     pairs = {(b.class_code, int(s)) for b in blocks for s in b.sites}
     expected = set(zip(inputs.exposure.building_class, inputs.site_index.tolist()))
     assert pairs == expected and sum(len(b.sites) for b in blocks) == len(expected)
