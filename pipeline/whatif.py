@@ -49,6 +49,7 @@ import numpy as np
 import pandas as pd
 
 from quakefolio.core.curves import im_at_rate, prob_in_years, rate_from_prob
+from quakefolio.core.economics import annuity_factor, benefit_cost_ratio, present_value
 from quakefolio.core.errors import InputError, locate_toml_line
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
@@ -312,33 +313,7 @@ def screening_tables(inputs, collapse_rate):
 
 # --- benefit-cost -----------------------------------------------------------------------------
 
-def annuity_factor(discount_rate, years):
-    r"""Present value [yr] of a unit amount received at the end of every year for ``years`` years.
-
-    Parameters
-    ----------
-    discount_rate : array_like [-], >= 0
-    years : array_like [yr], > 0
-
-    Notes
-    -----
-    Ordinary annuity (common practice):
-    :math:`a = \sum_{t=1}^{T}(1+r)^{-t} = (1 - (1+r)^{-T})/r`, and :math:`a = T` at
-    :math:`r = 0`; computed as ``-expm1(-T log1p(r)) / r`` for accuracy at small rates.
-    """
-    r = np.asarray(discount_rate, dtype=float)
-    t = np.asarray(years, dtype=float)
-    if np.any(~(r >= 0)):
-        raise ValueError(f"discount_rate must be non-negative, got {r!r}")
-    if np.any(~(t > 0)):
-        raise ValueError(f"years must be positive, got {t!r}")
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(r > 0, -np.expm1(-t * np.log1p(r)) / np.where(r > 0, r, 1.0), t)
-
-
-def present_value(annual_amount, discount_rate, years):
-    """Present value [currency] of a constant annual amount [currency/yr] (:func:`annuity_factor`)."""
-    return np.asarray(annual_amount, dtype=float) * annuity_factor(discount_rate, years)
+# ``annuity_factor`` and ``present_value`` are :mod:`quakefolio.core.economics`'s, re-exported here.
 
 
 # --- event-based rerun ------------------------------------------------------------------------
@@ -515,11 +490,10 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
                 portfolio_rows += _unchanged_event_rows(alt.alt_id, portfolio, rps, cur)
         # benefit-cost per asset and in total
         avoided = eal_before - eal_after
-        pv = avoided * factor
+        pv = present_value(avoided, rate, years)
         cost = alt.retrofit_cost
         annual_before, annual_after = prob_in_years(collapse_all[a], 1.0), prob_in_years(collapse_after, 1.0)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            bcr = pv / cost
+        bcr = benefit_cost_ratio(pv, cost)
         per_asset = pd.DataFrame({
             "alternative_id": alt.alt_id, "scope": "asset", "asset_id": ids[a].astype(object), "n_assets": 1,
             "retrofit_cost": cost, "eal_before": eal_before, "eal_after": eal_after, "avoided_eal": avoided,
@@ -535,7 +509,8 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
         total_row = pd.DataFrame({"alternative_id": [alt.alt_id], "scope": ["alternative"], "asset_id": [None],
                                   **total, "discount_rate": [rate], "benefit_horizon_yr": [years],
                                   "annuity_factor_yr": [factor],
-                                  "benefit_cost_ratio": [total["pv_avoided_loss"][0] / total["retrofit_cost"][0]]})
+                                  "benefit_cost_ratio": [benefit_cost_ratio(total["pv_avoided_loss"][0],
+                                                                            total["retrofit_cost"][0])[()]]})
         bc_frames += [total_row[per_asset.columns], per_asset]
     bc = pd.concat(bc_frames, ignore_index=True)
     bc["n_assets"] = bc["n_assets"].astype(np.int64)
