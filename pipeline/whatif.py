@@ -51,6 +51,7 @@ import pandas as pd
 from quakefolio.core.curves import im_at_rate, prob_in_years, rate_from_prob
 from quakefolio.core.economics import annuity_factor, benefit_cost_ratio, present_value
 from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.event_losses import sum_over_blocks
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
 from quakefolio.core.risk import risk_targeted_im
@@ -356,8 +357,7 @@ def rerun_events(em, alternative):
     chunks = sorted((ps.event_chunk(alt, c) for c in ps.event_chunks(alt)), key=lambda r: r.start)
     gu = np.concatenate([c.ground_up for c in chunks]) if chunks else np.zeros(0)
     net = np.concatenate([c.net for c in chunks]) if chunks else np.zeros(0)
-    asset_sum = (np.concatenate([c.asset_sum for c in chunks]).sum(axis=0) if chunks
-                 else np.zeros((2, n + len(changed))))
+    asset_sum = sum_over_blocks([c.asset_sum for c in chunks]) if chunks else np.zeros((2, n + len(changed)))
     per_asset = asset_sum[0, :n].copy()
     per_asset[changed] = asset_sum[0, extra]
     agg_gu, occ_gu = year_loss(em.events.year, gu, em.n_years)
