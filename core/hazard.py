@@ -175,7 +175,18 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
 
 
 def weighted_mean(curves, weights):
-    """Weighted mean over the leading (branch) axis; weights must sum to 1 (1e-9)."""
+    """Weighted mean over the leading (branch) axis; weights must sum to 1 (1e-9).
+
+    Parameters
+    ----------
+    curves : ndarray, shape (n_branches, ...)
+    weights : array_like, shape (n_branches,) [-]
+
+    Returns
+    -------
+    ndarray, shape curves.shape[1:]
+        Logic-tree mean (common practice), :func:`weighted_sum` of the checked weights.
+    """
     w = _check_weights(weights, curves.shape[0])
     return weighted_sum(curves, w)
 

@@ -66,9 +66,25 @@ def build_sites(exposure, spacing_km, default_vs30):
     theirs (common practice for gridded portfolio hazard: one site condition per cell).
     Assets without ``vs30_mps`` use ``default_vs30``.
 
-    Returns site ids, lon, lat, vs30 [m/s], each asset's site index and its distance to
-    the site [km], and the projection reference point (numerics:
-    :mod:`quakefolio.core.sites`).
+    Numerics: :mod:`quakefolio.core.sites`.
+
+    Parameters
+    ----------
+    exposure : DataFrame
+        With ``lon``, ``lat`` [deg] and ``vs30_mps`` [m/s] (NaN: none).
+    spacing_km : float [km]
+        Grid spacing; 0 for one site per distinct (location, Vs30).
+    default_vs30 : float [m/s]
+
+    Returns
+    -------
+    ids : ndarray of str, shape (n_sites,)
+    lon, lat : ndarray, shape (n_sites,) [deg]
+    vs30 : ndarray, shape (n_sites,) [m/s]
+    site_index : ndarray of int, shape (n_assets,)
+    distance_km : ndarray, shape (n_assets,) [km]
+    ref : (lon, lat) [deg]
+        Projection reference point.
     """
     lon = exposure.lon.to_numpy()
     lat = exposure.lat.to_numpy()

@@ -164,7 +164,21 @@ def _ground_motion(em, start, stop, b0, b1):
 
 
 def event_chunk(em, chunk):
-    """Losses of one chunk of events (whole random-number blocks)."""
+    """Losses of one chunk of events (whole random-number blocks).
+
+    Parameters
+    ----------
+    em : EventModel
+        From :func:`prepare_events`.
+    chunk : (int, int)
+        First and stop random-number block (:func:`event_chunks`).
+
+    Returns
+    -------
+    ChunkResult
+        Event losses [currency], per-block asset and class sums and the events' IM
+        exceedance counts (:func:`quakefolio.core.event_losses.portfolio_event_losses`).
+    """
     single_blas_thread()
     b0, b1 = chunk
     blocks = event_blocks(em.events.n_events, EVENT_BLOCK_SIZE)
@@ -181,7 +195,23 @@ def event_chunk(em, chunk):
 
 
 def combine_events(em, inputs, results):
-    """Tables and cross-checks of the event-based stage (dict of DataFrames, dict of checks)."""
+    """Tables and cross-checks of the event-based stage.
+
+    Parameters
+    ----------
+    em : EventModel
+    inputs : :class:`quakefolio.pipeline.stages.Inputs`
+    results : list of ChunkResult
+        Every chunk's result (any order).
+
+    Returns
+    -------
+    tables : dict name -> DataFrame
+        ``event_loss``, ``year_loss``, ``portfolio_ep``, ``portfolio_ep_curve``,
+        ``portfolio_summary``, ``asset_event_loss``, ``portfolio_breakdown``.
+    checks : dict
+        Event-based vs classical statistics (:mod:`quakefolio.core.event_losses`).
+    """
     results = sorted(results, key=lambda r: r.start)
     ev = em.events
     n_years = em.n_years

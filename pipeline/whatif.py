@@ -342,6 +342,16 @@ def rerun_events(em, alternative):
     assets' values set to zero there, and the changed assets are appended as extra
     entries of the new class: every other asset sees exactly the same losses, also with
     sampled damage states (whose random streams are per class entry).
+
+    Parameters
+    ----------
+    em : EventModel of the run
+    alternative : :class:`Alternative`
+
+    Returns
+    -------
+    EventRerun
+        Event and year losses [currency] and per-asset AAL [currency/yr] after the change.
     """
     from quakefolio.pipeline import portfolio_stage as ps
 
@@ -408,6 +418,11 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
     by_class : the run's per-asset rates (:func:`_run_asset_rates`)
     portfolio : (tables, checks) of the event-based stage, or None
     em : EventModel of the run (prepared here when needed and not given)
+
+    Returns
+    -------
+    dict name -> DataFrame
+        Benefit-cost through :mod:`quakefolio.core.economics`.
     """
     cfg = inputs.config
     sc, scen = cfg["screening"], cfg["scenario"]
