@@ -18,10 +18,18 @@ Every random quantity of the stage comes from a :class:`numpy.random.Generator` 
 by a :class:`numpy.random.SeedSequence` built from the user's seed, a fixed *stream tag*
 naming the quantity, and (for per-event quantities) a block index:
 
-* the event set: ``SeedSequence([seed, STREAM_EVENT_SET])``;
+* the event set: ``SeedSequence([seed, STREAM_EVENT_SET])`` (:func:`stream_rng`);
+* the ground-motion model of each event (drawn by logic-tree branch weight):
+  ``SeedSequence([seed, STREAM_GMM_CHOICE])`` (:func:`stream_rng`);
 * ground-motion residuals of event block ``b``:
   ``SeedSequence([seed, STREAM_GROUND_MOTION, b])`` (:func:`block_rng`);
-* other per-event draws (sampled damage states, loss ratios): their own tag, same form.
+* sampled damage states and loss ratios of event block ``b`` and class entry ``k`` (one
+  generator per block and class): ``SeedSequence([seed, STREAM_DAMAGE, b * 4096 + k])``
+  (:func:`damage_block_rng`, packing :func:`class_block_index`);
+* :data:`STREAM_LOSS_RATIO` is reserved for loss ratios drawn on their own.
+
+Every stream tag of the project is defined here and nowhere else; the tags are part of
+the reproducibility contract (changing one changes the draws of its quantity).
 
 Events are numbered in a fixed order and cut into blocks of :data:`EVENT_BLOCK_SIZE`
 consecutive events (the last block may be shorter). A block is the unit of random
@@ -48,10 +56,15 @@ __all__ = [
     "STREAM_GROUND_MOTION",
     "STREAM_DAMAGE",
     "STREAM_LOSS_RATIO",
+    "STREAM_GMM_CHOICE",
+    "MAX_CLASS_ENTRIES",
     "EventSet",
     "stochastic_event_set",
     "event_blocks",
     "block_rng",
+    "stream_rng",
+    "class_block_index",
+    "damage_block_rng",
     "check_seed",
 ]
 
@@ -69,8 +82,15 @@ STREAM_GROUND_MOTION = 2
 STREAM_DAMAGE = 3
 #: Stream tag reserved for sampled loss ratios.
 STREAM_LOSS_RATIO = 4
+#: Stream tag of the per-event ground-motion-model draw (one generator for the event set).
+STREAM_GMM_CHOICE = 11
+#: Class entries per event block in the packed index of :func:`class_block_index`.
+MAX_CLASS_ENTRIES = 4096
 
+#: Streams drawn per event block (:func:`block_rng`).
 _STREAMS = (STREAM_EVENT_SET, STREAM_GROUND_MOTION, STREAM_DAMAGE, STREAM_LOSS_RATIO)
+#: Streams drawn once per event set (:func:`stream_rng`).
+_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE)
 
 
 def check_seed(seed) -> int:
@@ -186,7 +206,7 @@ def stochastic_event_set(rupture_rates: ArrayLike, n_years: int, seed: int) -> E
         i = int(np.flatnonzero(bad)[0])
         raise ValueError(f"rupture_rates must be finite and >= 0 [1/yr]; got {rates[i]!r} at index {i}")
 
-    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, STREAM_EVENT_SET])))
+    rng = stream_rng(seed, STREAM_EVENT_SET)
     counts = rng.poisson(rates * n_years)  # one draw per rupture, in rupture order
     rupture = np.repeat(np.arange(rates.size, dtype=np.int64), counts)
     year = rng.integers(1, n_years, size=rupture.size, dtype=np.int32, endpoint=True)
@@ -246,3 +266,67 @@ def block_rng(seed: int, block_index: int, stream: int = STREAM_GROUND_MOTION) -
     if stream not in _STREAMS:
         raise ValueError(f"stream must be one of the stream tags {_STREAMS}; got {stream!r}")
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, int(stream), int(block_index)])))
+
+
+def stream_rng(seed: int, stream: int) -> np.random.Generator:
+    """The generator of a quantity drawn once per event set: ``SeedSequence([seed, stream])``.
+
+    Parameters
+    ----------
+    seed : int
+        The run's non-negative seed.
+    stream : int
+        :data:`STREAM_EVENT_SET` or :data:`STREAM_GMM_CHOICE`.
+
+    Returns
+    -------
+    numpy.random.Generator
+        A PCG64 generator (as ``numpy.random.default_rng`` builds from the same sequence).
+    """
+    seed = check_seed(seed)
+    if stream not in _WHOLE_SET_STREAMS:
+        raise ValueError(f"stream must be one of the stream tags {_WHOLE_SET_STREAMS}; got {stream!r}")
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, int(stream)])))
+
+
+def class_block_index(block_index: int, class_entry: int) -> int:
+    """Packed index ``block_index * MAX_CLASS_ENTRIES + class_entry`` of one (event block, class) pair.
+
+    Parameters
+    ----------
+    block_index : int
+        Global event block ``b`` >= 0 (row of :func:`event_blocks`).
+    class_entry : int
+        Position ``k`` of the building-class entry in the event stage's class list,
+        0 <= k < :data:`MAX_CLASS_ENTRIES`.
+
+    Returns
+    -------
+    int
+        ``b * 4096 + k``: distinct for every (b, k) pair, so each pair has its own generator.
+    """
+    if isinstance(class_entry, (bool, np.bool_)) or not isinstance(class_entry, numbers.Integral) \
+            or not 0 <= class_entry < MAX_CLASS_ENTRIES:
+        raise ValueError(f"class_entry must be an integer in [0, {MAX_CLASS_ENTRIES}); got {class_entry!r}")
+    return int(block_index) * MAX_CLASS_ENTRIES + int(class_entry)
+
+
+def damage_block_rng(seed: int, block_index: int, class_entry: int) -> np.random.Generator:
+    """The generator of sampled damage of one event block and class entry.
+
+    Parameters
+    ----------
+    seed : int
+        The run's non-negative seed.
+    block_index : int
+        Global event block ``b`` >= 0.
+    class_entry : int
+        Position ``k`` of the class entry (see :func:`class_block_index`).
+
+    Returns
+    -------
+    numpy.random.Generator
+        ``block_rng(seed, class_block_index(b, k), stream=STREAM_DAMAGE)``: identical
+        whatever the chunking of whole blocks into tasks.
+    """
+    return block_rng(seed, class_block_index(block_index, class_entry), stream=STREAM_DAMAGE)

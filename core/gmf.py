@@ -114,7 +114,7 @@ from scipy.special import expit, ndtr, ndtri
 
 from quakefolio.core.eventset import EVENT_BLOCK_SIZE, block_rng, check_seed, event_blocks
 from quakefolio.core.geometry import aeqd_forward, mean_position
-from quakefolio.core.gmm import im_period_s
+from quakefolio.core.ims import PGA_PERIOD_S, model_period
 
 __all__ = [
     "DENSE_MAX_SITES",
@@ -145,7 +145,7 @@ EIGEN_MAX_SITES = 20_000
 EIGEN_VARIANCE_SHARE = 0.99
 #: Period [s] standing for PGA in the Baker & Jayaram (2008) equation (common practice:
 #: the lower end of the equation's 0.01-10 s range).
-BJ08_PGA_PERIOD_S = 0.01
+BJ08_PGA_PERIOD_S = PGA_PERIOD_S
 
 _BJ08_MIN_S, _BJ08_MAX_S = 0.01, 10.0
 _ROW_CHUNK = 1024  # rows of an n x n matrix built at a time
@@ -272,7 +272,7 @@ def bj08_correlation(period1_s: ArrayLike, period2_s: ArrayLike) -> FloatArray:
 
 
 def _bj08_period(im: str) -> float:
-    t = im_period_s(im)
+    t = model_period(im)  # 0.0 for PGA (quakefolio.core.ims)
     return BJ08_PGA_PERIOD_S if t == 0.0 else t
 
 
@@ -501,7 +501,7 @@ class FieldSampler:
         self.ims = tuple(ims)
         if len(set(self.ims)) != len(self.ims):
             raise ValueError(f"ims must not repeat a name; got {self.ims}")
-        periods = np.array([im_period_s(im) for im in self.ims], dtype=np.float64)
+        periods = np.array([model_period(im) for im in self.ims], dtype=np.float64)  # PGA: 0.0
         if not (0.0 < eigen_variance_share <= 1.0):
             raise ValueError(f"eigen_variance_share must lie in (0, 1]; got {eigen_variance_share!r}")
         if isinstance(dense_max_sites, (bool, np.bool_)) or not isinstance(dense_max_sites, numbers.Integral) \

@@ -43,7 +43,6 @@ from __future__ import annotations
 import csv
 import importlib.util
 import math
-import re
 from dataclasses import dataclass, fields
 from functools import cached_property
 from pathlib import Path
@@ -51,6 +50,8 @@ from typing import ClassVar, Sequence
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+
+from quakefolio.core.ims import model_period
 
 __all__ = [
     "GmmInput",
@@ -68,14 +69,14 @@ __all__ = [
 
 FloatArray = NDArray[np.float64]
 
-_SA_PATTERN = re.compile(r"^SA_(\d+(?:\.\d*)?|\.\d+)$")
-
-
 # --------------------------------------------------------------------------- #
 # Intensity-measure names
 # --------------------------------------------------------------------------- #
 def im_period_s(im: str) -> float:
     """Spectral period [s] of an intensity-measure name; 0.0 for ``PGA``.
+
+    The names are read by the project's one parser, :func:`quakefolio.core.ims.model_period`
+    (PGA at T = 0, the row of the coefficient tables; see :mod:`quakefolio.core.ims`).
 
     Parameters
     ----------
@@ -90,22 +91,9 @@ def im_period_s(im: str) -> float:
     Raises
     ------
     ValueError
-        If the name is not of either form or the period is not positive.
+        If the name is not of either form or the period is not in (0, 20] s.
     """
-    if not isinstance(im, str):
-        raise ValueError(f"intensity measure must be a str like 'PGA' or 'SA_1.0'; got {im!r}")
-    if im == "PGA":
-        return 0.0
-    match = _SA_PATTERN.match(im)
-    if match is None:
-        raise ValueError(
-            f"intensity measure {im!r} not understood; expected 'PGA' or 'SA_<period in s>' "
-            "such as 'SA_0.2'"
-        )
-    period = float(match.group(1))
-    if not period > 0.0:
-        raise ValueError(f"intensity measure {im!r}: spectral period must be > 0 s")
-    return period
+    return model_period(im)
 
 
 # --------------------------------------------------------------------------- #

@@ -35,12 +35,14 @@ import scipy.sparse as sp
 from scipy.special import ndtr
 
 from quakefolio.core.curves import im_at_rate
+from quakefolio.core.gmf import ln_im
 
 __all__ = [
     "exceedance_probability",
     "pair_index",
     "hazard_from_pairs",
     "weighted_mean",
+    "weighted_sum",
     "weighted_fractiles",
     "DisaggBins",
     "disaggregation_from_pairs",
@@ -48,6 +50,9 @@ __all__ = [
     "uniform_hazard_targets",
     "compute_site_hazard",
     "compute_disaggregation",
+    "rupture_ground_motion",
+    "event_ground_motion",
+    "event_ln_im",
 ]
 
 
@@ -170,9 +175,38 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
 
 
 def weighted_mean(curves, weights):
-    """Weighted mean over the leading (branch) axis; weights must sum to 1 (1e-9)."""
+    """Weighted mean over the leading (branch) axis; weights must sum to 1 (1e-9).
+
+    Parameters
+    ----------
+    curves : ndarray, shape (n_branches, ...)
+    weights : array_like, shape (n_branches,) [-]
+
+    Returns
+    -------
+    ndarray, shape curves.shape[1:]
+        Logic-tree mean (common practice), :func:`weighted_sum` of the checked weights.
+    """
     w = _check_weights(weights, curves.shape[0])
-    return np.tensordot(w, curves, axes=(0, 0))
+    return weighted_sum(curves, w)
+
+
+def weighted_sum(curves, weights):
+    r"""Weighted sum over the leading (branch) axis, :math:`\sum_b w_b c_b`, weights as given.
+
+    Parameters
+    ----------
+    curves : ndarray, shape (n_branches, ...)
+        E.g. hazard curves [1/yr] of each ground-motion branch.
+    weights : array_like, shape (n_branches,) [-]
+        Branch weights (not re-checked: callers pass validated logic-tree weights).
+
+    Returns
+    -------
+    ndarray, shape curves.shape[1:]
+        The logic-tree mean when the weights sum to 1 (common practice).
+    """
+    return np.tensordot(np.asarray(weights, dtype=float), curves, axes=(0, 0))
 
 
 def weighted_fractiles(curves, weights, quantiles):
@@ -434,3 +468,112 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
                     ln_targets[i, blk], res.ln_median[i], res.sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
                     bins, n_blk, truncation_sigma)
     return out
+
+
+# --- event-based ground motion: the same pairs and GMM inputs as the classical engine ----------
+
+def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *, max_distance_km=200.0,
+                          region="global", ref, evaluate=None):
+    r"""Ln median [ln g], tau and phi [ln units] of every (model, IM, site, rupture).
+
+    The (site, rupture) pairs within the integration distance and their ground-motion
+    model inputs are those of the classical engine (:func:`_block_pairs`, as used by
+    :func:`compute_site_hazard`), for all sites at once.
+
+    Parameters
+    ----------
+    site_lon, site_lat : ndarray, shape (n_sites,) [deg]
+    site_vs30 : ndarray, shape (n_sites,) [m/s]
+    ruptures : quakefolio.core.ruptures.RuptureSet
+        ``n_ruptures`` ruptures.
+    gmms : sequence of ground-motion models
+    ims : sequence of str
+    max_distance_km : float
+        Integration distance on Rjb [km].
+    region : str
+    ref : (lon, lat) [deg]
+        Reference point of the local projection.
+    evaluate : array_like of int or None
+        Indices of the models to evaluate (default: all); the others keep the values of
+        pairs beyond the integration distance.
+
+    Returns
+    -------
+    ln_median, tau, phi : ndarray, shape (n_gmms, n_ims, n_sites, n_ruptures)
+        ``-inf`` median and zero tau and phi for pairs beyond the integration distance
+        (the ground motion there is taken as nil).
+    """
+    n_im = len(ims)
+    mu = np.full((len(gmms), n_im, len(site_lon), len(ruptures.mag)), -np.inf)
+    tau = np.zeros_like(mu)
+    phi = np.zeros_like(mu)
+    si, ri, _, _, inp, _ = _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
+    if inp is None:
+        return mu, tau, phi
+    for g in (range(len(gmms)) if evaluate is None else evaluate):
+        res = gmms[g].evaluate(inp, ims)
+        mu[g][:, si, ri] = res.ln_median
+        tau[g][:, si, ri] = res.tau
+        phi[g][:, si, ri] = res.phi
+    return mu, tau, phi
+
+
+def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, event_gmm, gmms, ims, *,
+                        max_distance_km=200.0, region="global", ref):
+    r"""Ln median [ln g], tau and phi [ln units] of each event's ground motion at each site.
+
+    Parameters
+    ----------
+    site_lon, site_lat, site_vs30 : ndarray, shape (n_sites,) [deg], [deg], [m/s]
+    ruptures : quakefolio.core.ruptures.RuptureSet
+    event_rupture : ndarray of int, shape (n_events,)
+        Rupture of each event (index into ``ruptures``).
+    event_gmm : ndarray of int, shape (n_events,)
+        Ground-motion model of each event (index into ``gmms``).
+    gmms : sequence of ground-motion models
+    ims : sequence of str
+    max_distance_km, region, ref
+        As :func:`rupture_ground_motion`.
+
+    Returns
+    -------
+    ln_median, tau, phi : ndarray, shape (n_events, n_ims, n_sites)
+        ``-inf`` median and zero tau, phi beyond the integration distance.
+
+    Notes
+    -----
+    Each distinct rupture of the events is evaluated once, with only the models the
+    events use (:func:`rupture_ground_motion`); the event field is then
+    :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
+    :func:`quakefolio.core.gmf.ln_im`).
+    """
+    ev_rup = np.asarray(event_rupture)
+    g_ev = np.asarray(event_gmm)
+    uniq, inv = np.unique(ev_rup, return_inverse=True)
+    mu, tau, phi = rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures.subset(uniq), gmms, list(ims),
+                                         max_distance_km=max_distance_km, region=region, ref=ref,
+                                         evaluate=np.unique(g_ev))
+    # (n_ev, n_im, n_sites): gather each event's model and rupture
+    return mu[g_ev, :, :, inv], tau[g_ev, :, :, inv], phi[g_ev, :, :, inv]
+
+
+def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):
+    r"""ln IM [ln g] of sampled events; ``-inf`` (no ground motion) beyond the integration distance.
+
+    Parameters
+    ----------
+    ln_median, tau, phi : ndarray, shape (n_events, n_ims, n_sites)
+        From :func:`event_ground_motion` (``-inf`` median beyond the integration distance).
+    eta : ndarray, shape (n_events, n_ims) [-]
+    eps : ndarray, shape (n_events, n_ims, n_sites) [-]
+        Standard-normal residuals (:class:`quakefolio.core.gmf.FieldSampler`).
+    truncation_sigma : float or None
+
+    Returns
+    -------
+    ndarray, shape (n_events, n_ims, n_sites) [ln g]
+        :func:`quakefolio.core.gmf.ln_im` where the median is finite, ``-inf`` elsewhere.
+    """
+    with np.errstate(invalid="ignore"):
+        out = ln_im(np.where(np.isfinite(ln_median), ln_median, 0.0), tau, phi, eta, eps, truncation_sigma)
+    return np.where(np.isfinite(ln_median), out, -np.inf)

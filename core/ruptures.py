@@ -38,6 +38,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from quakefolio.core.geometry import aeqd_forward, aeqd_inverse, mean_position, points_in_polygon
+from quakefolio.core.gmm import mechanism_flags
 from quakefolio.core.mfd import MagnitudeBins
 
 __all__ = [
@@ -244,15 +245,30 @@ WC94_TABLE_2A = {
 def slip_type_from_rake(rake_deg: ArrayLike) -> NDArray[np.str_]:
     """Wells & Coppersmith (1994) slip type of each rake [deg].
 
-    Reverse for 30 < rake < 150, normal for -150 < rake < -30, strike-slip otherwise:
-    the rake classes of the ground-motion models in :mod:`quakefolio.core.gmm`
-    (NGA-West2 convention), used here for one classification throughout (common
-    practice; Wells & Coppersmith classed events by their predominant slip component).
+    Parameters
+    ----------
+    rake_deg : array_like [deg]
+        Rake in [-180, 180].
+
+    Returns
+    -------
+    ndarray of str, shape of ``rake_deg``
+        ``"reverse"``, ``"normal"`` or ``"strike_slip"``.
+
+    Notes
+    -----
+    The rake classes are those of the ground-motion models,
+    :func:`quakefolio.core.gmm.mechanism_flags` (the one definition: reverse for
+    30 < rake < 150, normal for -150 < rake < -30, strike-slip otherwise, NGA-West2
+    convention), used here for one classification throughout (common practice; Wells &
+    Coppersmith classed events by their predominant slip component).  A NaN rake
+    (unspecified mechanism) is taken as strike-slip, Wells & Coppersmith's default.
     """
     rake = np.asarray(rake_deg, dtype=np.float64)
+    _, _, normal, reverse = mechanism_flags(rake)
     out = np.full(rake.shape, "strike_slip", dtype="<U11")
-    out[(rake > 30.0) & (rake < 150.0)] = "reverse"
-    out[(rake > -150.0) & (rake < -30.0)] = "normal"
+    out[reverse == 1.0] = "reverse"
+    out[normal == 1.0] = "normal"
     return out
 
 

@@ -14,13 +14,13 @@ import pandas as pd
 
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.errors import InputError, locate_toml_line
-from quakefolio.core.geometry import aeqd_forward, aeqd_inverse, mean_position
 from quakefolio.core.gmm import get_gmm
 from quakefolio.core.hazard import (
     DisaggBins, compute_disaggregation, compute_site_hazard, disaggregation_summary, weighted_fractiles,
     weighted_mean,
 )
 from quakefolio.core.ims import im_period
+from quakefolio.core.sites import exact_sites, grid_reference, snap_sites
 from quakefolio.pipeline.cache import digest
 from quakefolio.pipeline.ingest import HazardCurves
 from quakefolio.pipeline.products import SiteBlockResult, frozen_mapping
@@ -99,35 +99,38 @@ def build_sites(exposure, spacing_km, default_vs30):
     theirs (common practice for gridded portfolio hazard: one site condition per cell).
     Assets without ``vs30_mps`` use ``default_vs30``.
 
-    Returns site ids, lon, lat, vs30 [m/s], each asset's site index and its distance to
-    the site [km], and the projection reference point.
+    Numerics: :mod:`quakefolio.core.sites`.
+
+    Parameters
+    ----------
+    exposure : DataFrame
+        With ``lon``, ``lat`` [deg] and ``vs30_mps`` [m/s] (NaN: none).
+    spacing_km : float [km]
+        Grid spacing; 0 for one site per distinct (location, Vs30).
+    default_vs30 : float [m/s]
+
+    Returns
+    -------
+    ids : ndarray of str, shape (n_sites,)
+    lon, lat : ndarray, shape (n_sites,) [deg]
+    vs30 : ndarray, shape (n_sites,) [m/s]
+    site_index : ndarray of int, shape (n_assets,)
+    distance_km : ndarray, shape (n_assets,) [km]
+    ref : (lon, lat) [deg]
+        Projection reference point.
     """
     lon = exposure.lon.to_numpy()
     lat = exposure.lat.to_numpy()
     vs30 = exposure.vs30_mps.to_numpy(dtype=float)
     vs30 = np.where(np.isnan(vs30), default_vs30, vs30)
-    # projection reference rounded to 0.01 deg, so that small exposure edits keep it (and the
-    # cached hazard of unchanged sites stays valid); the projection error stays negligible
-    ref = tuple(round(v, 2) for v in mean_position(lon, lat))
+    ref = grid_reference(lon, lat)
     if spacing_km > 0:
-        x, y = aeqd_forward(lon, lat, *ref)
-        gx, gy = np.round(x / spacing_km) * spacing_km, np.round(y / spacing_km) * spacing_km
-        slon, slat = aeqd_inverse(gx, gy, *ref)
-        dist = np.sqrt((x - gx) ** 2 + (y - gy) ** 2)
-        key = pd.DataFrame({"lat": np.round(slat, 7), "lon": np.round(slon, 7), "ln_vs30": np.log(vs30)})
-        uniq = key.groupby(["lat", "lon"], sort=True, as_index=False)["ln_vs30"].mean()
-        uniq["vs30"] = np.exp(uniq.pop("ln_vs30"))
-        cols = ["lat", "lon"]
+        site_lon, site_lat, site_vs30, site_index, dist = snap_sites(lon, lat, vs30, spacing_km, ref)
     else:
-        dist = np.zeros(len(lon))
-        key = pd.DataFrame({"lat": np.round(lat, 7), "lon": np.round(lon, 7), "vs30": vs30})
-        uniq = key.drop_duplicates().sort_values(["lat", "lon", "vs30"], kind="stable").reset_index(drop=True)
-        cols = ["lat", "lon", "vs30"]
-    uniq["site"] = np.arange(len(uniq))
-    site_index = key[cols].merge(uniq[cols + ["site"]], on=cols, how="left")["site"].to_numpy()
-    width = max(4, len(str(len(uniq))))
-    ids = np.array([f"H{i + 1:0{width}d}" for i in range(len(uniq))])
-    return ids, uniq.lon.to_numpy(), uniq.lat.to_numpy(), uniq.vs30.to_numpy(), site_index, dist, ref
+        site_lon, site_lat, site_vs30, site_index, dist = exact_sites(lon, lat, vs30)
+    width = max(4, len(str(len(site_lon))))
+    ids = np.array([f"H{i + 1:0{width}d}" for i in range(len(site_lon))])
+    return ids, site_lon, site_lat, site_vs30, site_index, dist, ref
 
 
 def prepare_compute(config, exposure, library):

@@ -7,9 +7,12 @@ task each; results identical whatever the chunking) -> :func:`combine_events` (e
 year loss tables, AEP/OEP/TVaR, AAL with standard error, breakdowns, cross-checks against
 the classical results of the same model).
 
-Numerics live in :mod:`quakefolio.core.eventset`, :mod:`quakefolio.core.gmf` and
-:mod:`quakefolio.core.portfolio`; this module gathers inputs, loops over the few classes
-and ground-motion models, and lays results out as tables.
+Numerics live in :mod:`quakefolio.core.eventset` (event set, every random stream),
+:mod:`quakefolio.core.hazard` (event ground motion on the classical engine's pairs),
+:mod:`quakefolio.core.gmf` (correlated fields), :mod:`quakefolio.core.event_losses`
+(losses per asset and event, policy terms, sums, cross-check statistics) and
+:mod:`quakefolio.core.portfolio` (year losses, EP curves, AAL, TVaR); this module
+gathers inputs, calls them and lays results out as tables.
 """
 from __future__ import annotations
 
@@ -20,20 +23,18 @@ import pandas as pd
 
 from quakefolio.core.errors import InputError
 from quakefolio.core.eventset import (
-    EVENT_BLOCK_SIZE, STREAM_DAMAGE, block_rng, event_blocks, stochastic_event_set,
+    EVENT_BLOCK_SIZE, STREAM_GMM_CHOICE, event_blocks, stochastic_event_set, stream_rng,
 )
-from quakefolio.core.geometry import pair_distances, site_rupture_mask
-from quakefolio.core.gmf import FieldSampler, ln_im
-from quakefolio.core.gmm import GmmInput
+from quakefolio.core.event_losses import (
+    aal_cross_check, annual_average_by, asset_aal_statistics, event_hazard_cross_check, exceedance_counts,
+    portfolio_event_losses, sum_over_blocks,
+)
+from quakefolio.core.gmf import FieldSampler
+from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
 from quakefolio.core.loss import expected_annual_loss
-from quakefolio.core.portfolio import (
-    aal_with_standard_error, apply_policy, ep_from_years, expected_loss_ratio, full_ep_curve, sample_loss_ratio,
-    tvar, year_loss,
-)
+from quakefolio.core.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
 
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
-
-STREAM_GMM_CHOICE = 11  # random stream of the per-event ground-motion-model draw
 
 
 @dataclass
@@ -108,7 +109,7 @@ def prepare_events(inputs):
     rs = src.ruptures
     events = stochastic_event_set(rs.rate, pf["years"], pf["seed"])
     weights = np.array([w for _, w, _ in model.gmm_branches])
-    rng = np.random.default_rng(np.random.SeedSequence([pf["seed"], STREAM_GMM_CHOICE]))
+    rng = stream_rng(pf["seed"], STREAM_GMM_CHOICE)
     gmm_of_event = rng.choice(len(weights), size=events.n_events, p=weights / weights.sum()).astype(np.int64)
     used = np.unique(inputs.site_index)
     local = np.searchsorted(used, inputs.site_index)
@@ -155,83 +156,62 @@ class ChunkResult:
 
 def _ground_motion(em, start, stop, b0, b1):
     """ln IM [ln g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites)."""
-    ev_rup = em.events.rupture[start:stop]
-    uniq, inv = np.unique(ev_rup, return_inverse=True)
-    sub = em.ruptures.subset(uniq)
-    n_sites, n_u = len(em.sites), len(uniq)
-    mask = site_rupture_mask(em.site_lon, em.site_lat, sub, em.max_distance_km, metric="rjb", exact=True,
-                             ref_lon=em.ref[0], ref_lat=em.ref[1])
-    si, ri = np.nonzero(mask)
-    n_im = len(em.ims)
-    mu = np.full((len(em.gmms), n_im, n_sites, n_u), -np.inf)
-    tau = np.zeros_like(mu)
-    phi = np.zeros_like(mu)
-    if si.size:
-        d = pair_distances(em.site_lon, em.site_lat, sub, si, ri, ref_lon=em.ref[0], ref_lat=em.ref[1])
-        inp = GmmInput(mag=sub.mag[ri], vs30_mps=em.site_vs30[si], rrup_km=d["rrup_km"], rjb_km=d["rjb_km"],
-                       rx_km=d["rx_km"], ry0_km=d["ry0_km"], ztor_km=sub.ztor_km[ri], zhyp_km=sub.zhyp_km[ri],
-                       dip_deg=sub.dip_deg[ri], rake_deg=sub.rake_deg[ri], width_km=sub.width_km[ri], region=em.region)
-        for g in np.unique(em.gmm_of_event[start:stop]):
-            res = em.gmms[g].evaluate(inp, em.ims)
-            mu[g][:, si, ri] = res.ln_median
-            tau[g][:, si, ri] = res.tau
-            phi[g][:, si, ri] = res.phi
-    g_ev = em.gmm_of_event[start:stop]
-    # (n_ev, n_im, n_sites): gather each event's model and rupture
-    mu_e = mu[g_ev, :, :, inv]
-    tau_e = tau[g_ev, :, :, inv]
-    phi_e = phi[g_ev, :, :, inv]
+    mu, tau, phi = event_ground_motion(em.site_lon, em.site_lat, em.site_vs30, em.ruptures,
+                                       em.events.rupture[start:stop], em.gmm_of_event[start:stop], em.gmms, em.ims,
+                                       max_distance_km=em.max_distance_km, region=em.region, ref=em.ref)
     res = em.sampler.sample_event_blocks(em.seed, em.events.n_events, np.arange(b0, b1))
-    with np.errstate(invalid="ignore"):
-        out = ln_im(np.where(np.isfinite(mu_e), mu_e, 0.0), tau_e, phi_e, res.eta, res.eps, em.truncation_sigma)
-    return np.where(np.isfinite(mu_e), out, -np.inf)
+    return event_ln_im(mu, tau, phi, res.eta, res.eps, em.truncation_sigma)
 
 
 def event_chunk(em, chunk):
-    """Losses of one chunk of events (whole random-number blocks)."""
+    """Losses of one chunk of events (whole random-number blocks).
+
+    Parameters
+    ----------
+    em : EventModel
+        From :func:`prepare_events`.
+    chunk : (int, int)
+        First and stop random-number block (:func:`event_chunks`).
+
+    Returns
+    -------
+    ChunkResult
+        Event losses [currency], per-block asset and class sums and the events' IM
+        exceedance counts (:func:`quakefolio.core.event_losses.portfolio_event_losses`).
+    """
     single_blas_thread()
     b0, b1 = chunk
     blocks = event_blocks(em.events.n_events, EVENT_BLOCK_SIZE)
     start, stop = int(blocks[b0, 0]), int(blocks[b1 - 1, 1])
     lnim = _ground_motion(em, start, stop, b0, b1)
-    n_ev = stop - start
     im = np.exp(lnim)  # (n_ev, n_im, n_sites); 0 beyond the integration distance
-    counts = np.stack([(lnim[:, i, :, None] > np.log(em.levels_g)).sum(axis=0) for i in range(len(em.ims))])
-    n_assets = len(em.value)
-    gu_ev = np.zeros(n_ev)
-    net_ev = np.zeros(n_ev)
-    # partial sums per random-number block, so totals do not depend on the chunking
-    bounds = [(int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
-    asset_sum = np.zeros((len(bounds), 2, n_assets))
-    asset_sumsq = np.zeros((len(bounds), 2, n_assets))
-    class_sum = np.zeros((len(bounds), len(em.classes), 2))
-    for k, (code, assets, i_im, dss, usites, pair) in enumerate(em.classes):
-        x = im[:, i_im, usites]  # per unique (site, class) pair
-        if em.loss_model == "mean_damage_ratio":
-            ratio = expected_loss_ratio(x, dss.medians, dss.betas, dss.mean_damage_ratio)[:, pair]
-        else:
-            # one generator per event block and class: identical whatever the chunking
-            parts = []
-            for b in range(b0, b1):
-                lo, hi = int(blocks[b, 0]) - start, int(blocks[b, 1]) - start
-                rng = block_rng(em.seed, b * 4096 + k, stream=STREAM_DAMAGE)
-                parts.append(sample_loss_ratio(rng, x[lo:hi][:, pair], dss.medians, dss.betas,
-                                               dss.mean_damage_ratio, dss.cov)[1])
-            ratio = np.concatenate(parts)
-        gu = ratio * em.value[assets]
-        net = apply_policy(gu, em.deductible[assets], em.limit[assets])
-        gu_ev += gu.sum(axis=1)
-        net_ev += net.sum(axis=1)
-        for j, (lo, hi) in enumerate(bounds):
-            g, n = gu[lo:hi], net[lo:hi]
-            asset_sum[j, 0, assets], asset_sum[j, 1, assets] = g.sum(axis=0), n.sum(axis=0)
-            asset_sumsq[j, 0, assets], asset_sumsq[j, 1, assets] = (g * g).sum(axis=0), (n * n).sum(axis=0)
-            class_sum[j, k] = g.sum(), n.sum()
+    counts = exceedance_counts(lnim, em.levels_g)
+    rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
+    classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
+               for _, assets, i_im, dss, usites, pair in em.classes]
+    gu_ev, net_ev, asset_sum, asset_sumsq, class_sum = portfolio_event_losses(
+        im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows)
     return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts)
 
 
 def combine_events(em, inputs, results):
-    """Tables and cross-checks of the event-based stage (dict of DataFrames, dict of checks)."""
+    """Tables and cross-checks of the event-based stage.
+
+    Parameters
+    ----------
+    em : EventModel
+    inputs : :class:`quakefolio.pipeline.stages.Inputs`
+    results : list of ChunkResult
+        Every chunk's result (any order).
+
+    Returns
+    -------
+    tables : dict name -> DataFrame
+        ``event_loss``, ``year_loss``, ``portfolio_ep``, ``portfolio_ep_curve``,
+        ``portfolio_summary``, ``asset_event_loss``, ``portfolio_breakdown``.
+    checks : dict
+        Event-based vs classical statistics (:mod:`quakefolio.core.event_losses`).
+    """
     results = sorted(results, key=lambda r: r.start)
     ev = em.events
     n_years = em.n_years
@@ -268,30 +248,25 @@ def combine_events(em, inputs, results):
         summary_rows.append({"basis": basis, "aal": aal, "aal_standard_error": se, "n_events": ev.n_events,
                              "n_years": n_years, "seed": em.seed, "source_branch": em.branch_id,
                              "loss_model": em.loss_model})
-    asset_sum = np.concatenate([r.asset_sum for r in results]).sum(axis=0)
-    asset_sumsq = np.concatenate([r.asset_sumsq for r in results]).sum(axis=0)
-    class_sum = np.concatenate([r.class_sum for r in results]).sum(axis=0)
+    asset_sum = sum_over_blocks([r.asset_sum for r in results])
+    asset_sumsq = sum_over_blocks([r.asset_sumsq for r in results])
+    class_sum = sum_over_blocks([r.class_sum for r in results])
     checks, classical = _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results)
     ex = inputs.exposure
+    aal_gu, aal_net, aal_se, z_score = asset_aal_statistics(asset_sum, asset_sumsq, n_years, classical)
     asset_aal = pd.DataFrame({
         "asset_id": ex.asset_id.to_numpy(), "building_class": ex.building_class.to_numpy(),
-        "aal_ground_up": asset_sum[0] / n_years, "aal_net": asset_sum[1] / n_years,
-        # compound Poisson: Var(annual loss) = sum over event types of rate x E[L^2]
-        "aal_ground_up_standard_error": np.sqrt(asset_sumsq[0]) / n_years,
-        "classical_eal_same_branch": classical,
+        "aal_ground_up": aal_gu, "aal_net": aal_net, "aal_ground_up_standard_error": aal_se,
+        "classical_eal_same_branch": classical, "z_score": z_score,
     })
-    with np.errstate(divide="ignore", invalid="ignore"):
-        asset_aal["z_score"] = np.where(asset_aal.aal_ground_up_standard_error > 0,
-                                        (asset_aal.aal_ground_up - classical) / asset_aal.aal_ground_up_standard_error,
-                                        np.where(np.abs(asset_aal.aal_ground_up - classical) <= 1e-9 * (1 + classical),
-                                                 0.0, np.inf))
     src_idx = em.ruptures.source_index[rup]
+    n_src = len(em.source_ids)
     breakdown = [pd.DataFrame({"dimension": "building_class", "key": [c[0] for c in em.classes],
                                "aal_ground_up": class_sum[:, 0] / n_years, "aal_net": class_sum[:, 1] / n_years})]
     breakdown.append(pd.DataFrame({
         "dimension": "source", "key": list(em.source_ids),
-        "aal_ground_up": np.bincount(src_idx, weights=gu, minlength=len(em.source_ids)) / n_years,
-        "aal_net": np.bincount(src_idx, weights=net, minlength=len(em.source_ids)) / n_years}))
+        "aal_ground_up": annual_average_by(src_idx, gu, n_src, n_years),
+        "aal_net": annual_average_by(src_idx, net, n_src, n_years)}))
     summary = pd.DataFrame(summary_rows)
     summary["classical_eal_same_branch"] = [float(np.sum(classical)), np.nan]
     tables = {
@@ -306,7 +281,7 @@ def _branch_mean_curves(em, inputs):
     """Classical curves of the event set's source branch, GMM-weighted (n_im, n_sites_used, n_lev)."""
     model = inputs.hazard_model
     wg = np.array([w for _, w, _ in model.gmm_branches])
-    curves = np.tensordot(wg, model.branch_curves[em.branch_index], axes=(0, 0))
+    curves = weighted_sum(model.branch_curves[em.branch_index], wg)
     return curves[:, em.sites]
 
 
@@ -318,37 +293,16 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
     for code, assets, i_im, dss, usites, pair in em.classes:
         ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config["fragility"]["tail"])
         classical[assets] = expected_annual_loss(ds, dss.mean_damage_ratio)[pair] * em.value[assets]
-    aal = asset_sum[0] / n
-    se = np.sqrt(asset_sumsq[0]) / n
-    with np.errstate(divide="ignore", invalid="ignore"):
-        z = np.where(se > 0, (aal - classical) / se, 0.0)
-    total_aal, total_se = aal_with_standard_error(years["ground_up"][0])
-    total_cl = float(classical.sum())
+    aal = aal_cross_check(asset_sum[0], asset_sumsq[0], n, classical, years["ground_up"][0])
     # event-based hazard: rate of events with IM > x, vs the classical curve, where the
     # classical rate is above 10/N (Poisson standard error sqrt(lambda / N))
-    counts = sum(r.exceed_counts for r in results)
-    rate_eb = counts / n
-    ok = curves > 10.0 / n
-    with np.errstate(divide="ignore", invalid="ignore"):
-        zh = np.where(ok, (rate_eb - curves) / np.sqrt(curves / n), 0.0)
+    hazard = event_hazard_cross_check(sum(r.exceed_counts for r in results), curves, n)
+    per_asset = ("assets", "within_3_standard_errors", "share_within_3_standard_errors", "max_abs_z")
+    total = ("event_based_aal", "standard_error", "classical_eal", "z", "passed")
     checks = {
-        "asset_aal_vs_classical_eal": {
-            "assets": int(len(aal)), "within_3_standard_errors": int(np.sum(np.abs(z) <= 3)),
-            "share_within_3_standard_errors": float(np.mean(np.abs(z) <= 3)) if len(z) else 1.0,
-            "max_abs_z": float(np.max(np.abs(z))) if len(z) else 0.0,
-            "loss_model": em.loss_model,
-        },
-        "portfolio_aal_vs_classical_eal": {
-            "event_based_aal": float(total_aal), "standard_error": float(total_se), "classical_eal": total_cl,
-            "z": float((total_aal - total_cl) / total_se) if total_se > 0 else 0.0,
-            "passed": bool(abs(total_aal - total_cl) <= 3 * total_se),
-        },
-        "event_hazard_vs_classical": {
-            "compared_points": int(ok.sum()), "within_3_standard_errors": int(np.sum(np.abs(zh[ok]) <= 3)),
-            "share_within_3_standard_errors": float(np.mean(np.abs(zh[ok]) <= 3)) if ok.any() else 1.0,
-            "max_abs_z": float(np.max(np.abs(zh[ok]))) if ok.any() else 0.0,
-            "rate_threshold_per_yr": 10.0 / n,
-        },
+        "asset_aal_vs_classical_eal": {**{k: aal[k] for k in per_asset}, "loss_model": em.loss_model},
+        "portfolio_aal_vs_classical_eal": {k: aal[k] for k in total},
+        "event_hazard_vs_classical": hazard,
         "source_branch": em.branch_id,
         "note": "mean-damage-ratio mode makes event-based AAL an unbiased estimate of the classical EAL of the "
                 "same source branch and GMM weights; 99.7% of assets are expected within 3 standard errors",

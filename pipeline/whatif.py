@@ -49,7 +49,9 @@ import numpy as np
 import pandas as pd
 
 from quakefolio.core.curves import im_at_rate, prob_in_years, rate_from_prob
+from quakefolio.core.economics import annuity_factor, benefit_cost_ratio, present_value
 from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.event_losses import sum_over_blocks
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
 from quakefolio.core.risk import risk_targeted_im
@@ -314,33 +316,7 @@ def screening_tables(inputs, collapse_rate):
 
 # --- benefit-cost -----------------------------------------------------------------------------
 
-def annuity_factor(discount_rate, years):
-    r"""Present value [yr] of a unit amount received at the end of every year for ``years`` years.
-
-    Parameters
-    ----------
-    discount_rate : array_like [-], >= 0
-    years : array_like [yr], > 0
-
-    Notes
-    -----
-    Ordinary annuity (common practice):
-    :math:`a = \sum_{t=1}^{T}(1+r)^{-t} = (1 - (1+r)^{-T})/r`, and :math:`a = T` at
-    :math:`r = 0`; computed as ``-expm1(-T log1p(r)) / r`` for accuracy at small rates.
-    """
-    r = np.asarray(discount_rate, dtype=float)
-    t = np.asarray(years, dtype=float)
-    if np.any(~(r >= 0)):
-        raise ValueError(f"discount_rate must be non-negative, got {r!r}")
-    if np.any(~(t > 0)):
-        raise ValueError(f"years must be positive, got {t!r}")
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(r > 0, -np.expm1(-t * np.log1p(r)) / np.where(r > 0, r, 1.0), t)
-
-
-def present_value(annual_amount, discount_rate, years):
-    """Present value [currency] of a constant annual amount [currency/yr] (:func:`annuity_factor`)."""
-    return np.asarray(annual_amount, dtype=float) * annuity_factor(discount_rate, years)
+# ``annuity_factor`` and ``present_value`` are :mod:`quakefolio.core.economics`'s, re-exported here.
 
 
 # --- event-based rerun ------------------------------------------------------------------------
@@ -368,6 +344,16 @@ def rerun_events(em, alternative):
     assets' values set to zero there, and the changed assets are appended as extra
     entries of the new class: every other asset sees exactly the same losses, also with
     sampled damage states (whose random streams are per class entry).
+
+    Parameters
+    ----------
+    em : EventModel of the run
+    alternative : :class:`Alternative`
+
+    Returns
+    -------
+    EventRerun
+        Event and year losses [currency] and per-asset AAL [currency/yr] after the change.
     """
     from quakefolio.pipeline import portfolio_stage as ps
 
@@ -383,8 +369,7 @@ def rerun_events(em, alternative):
     chunks = sorted((ps.event_chunk(alt, c) for c in ps.event_chunks(alt)), key=lambda r: r.start)
     gu = np.concatenate([c.ground_up for c in chunks]) if chunks else np.zeros(0)
     net = np.concatenate([c.net for c in chunks]) if chunks else np.zeros(0)
-    asset_sum = (np.concatenate([c.asset_sum for c in chunks]).sum(axis=0) if chunks
-                 else np.zeros((2, n + len(changed))))
+    asset_sum = sum_over_blocks([c.asset_sum for c in chunks]) if chunks else np.zeros((2, n + len(changed)))
     per_asset = asset_sum[0, :n].copy()
     per_asset[changed] = asset_sum[0, extra]
     agg_gu, occ_gu = year_loss(em.events.year, gu, em.n_years)
@@ -435,6 +420,11 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
     by_class : the run's per-asset rates (:func:`_run_asset_rates`)
     portfolio : (tables, checks) of the event-based stage, or None
     em : EventModel of the run (prepared here when needed and not given)
+
+    Returns
+    -------
+    dict name -> DataFrame
+        Benefit-cost through :mod:`quakefolio.core.economics`.
     """
     cfg = inputs.config
     sc, scen = cfg["screening"], cfg["scenario"]
@@ -517,11 +507,10 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
                 portfolio_rows += _unchanged_event_rows(alt.alt_id, portfolio, rps, cur)
         # benefit-cost per asset and in total
         avoided = eal_before - eal_after
-        pv = avoided * factor
+        pv = present_value(avoided, rate, years)
         cost = alt.retrofit_cost
         annual_before, annual_after = prob_in_years(collapse_all[a], 1.0), prob_in_years(collapse_after, 1.0)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            bcr = pv / cost
+        bcr = benefit_cost_ratio(pv, cost)
         per_asset = pd.DataFrame({
             "alternative_id": alt.alt_id, "scope": "asset", "asset_id": ids[a].astype(object), "n_assets": 1,
             "retrofit_cost": cost, "eal_before": eal_before, "eal_after": eal_after, "avoided_eal": avoided,
@@ -537,7 +526,8 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
         total_row = pd.DataFrame({"alternative_id": [alt.alt_id], "scope": ["alternative"], "asset_id": [None],
                                   **total, "discount_rate": [rate], "benefit_horizon_yr": [years],
                                   "annuity_factor_yr": [factor],
-                                  "benefit_cost_ratio": [total["pv_avoided_loss"][0] / total["retrofit_cost"][0]]})
+                                  "benefit_cost_ratio": [benefit_cost_ratio(total["pv_avoided_loss"][0],
+                                                                            total["retrofit_cost"][0])[()]]})
         bc_frames += [total_row[per_asset.columns], per_asset]
     bc = pd.concat(bc_frames, ignore_index=True)
     bc["n_assets"] = bc["n_assets"].astype(np.int64)

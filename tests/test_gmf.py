@@ -344,7 +344,7 @@ def test_ln_im_combines_median_and_residuals():
 @pytest.mark.parametrize(
     "kwargs, match",
     [
-        ({"ims": ["PGV"]}, "not understood"),
+        ({"ims": ["PGV"]}, "unknown IM"),
         ({"ims": ["PGA", "PGA"]}, "repeat"),
         ({"ims": ["SA_15.0"]}, r"0.01, 10"),
         ({"ims": ["PGA"], "range_km": -5.0}, "range_km"),

@@ -478,7 +478,7 @@ def test_out_of_range_period_raises(name):
     for bad in (f"SA_{hi * 2:g}", f"SA_{lo / 2:g}"):
         with pytest.raises(ValueError, match=rf"{name}: intensity measure '{bad}'.*outside"):
             model.evaluate(inp, ["PGA", bad])
-    with pytest.raises(ValueError, match="not understood"):
+    with pytest.raises(ValueError, match="unknown IM 'PGV'"):
         model.evaluate(inp, ["PGV"])
 
 
