@@ -175,6 +175,9 @@ def write_run(inputs, results, timings, portfolio=None, extra=None):
         checks = portfolio[1]
     if extra:
         frames.update(extra)
+    from quakefolio.pipeline.run_inputs import run_input_frames  # the run stores the inputs it used
+
+    frames.update(run_input_frames(inputs.exposure, inputs.library))
     digest = inputs_digest(inputs)
     output = cfg["output"]["folder"]
     run_id = new_run_id(output, digest)
