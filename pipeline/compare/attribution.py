@@ -12,6 +12,7 @@ from quakefolio.pipeline.compare.diff import (
 
 __all__ = ["compare_runs"]
 
+
 def _fragility_changed_classes(run_a, run_b):
     """Classes whose fragility changed, and the classes known to both runs."""
     da, db = run_a.manifest.get("fragility_classes"), run_b.manifest.get("fragility_classes")
@@ -21,6 +22,7 @@ def _fragility_changed_classes(run_a, run_b):
     # older manifests without digests: the library file as a whole
     classes = set(run_a.table("asset_loss").building_class) | set(run_b.table("asset_loss").building_class)
     return (classes if _input_changed(run_a, run_b, "fragility_library") else set()), classes, "library sha256"
+
 
 def _attribute(m, dmg_changed, ims, hazard_changed, tab_a, tab_b, frag_changed, frag_known, exposure_file_changed,
                asset_settings):
@@ -91,6 +93,7 @@ def _attribute(m, dmg_changed, ims, hazard_changed, tab_a, tab_b, frag_changed, 
         "eal_change_from_value": from_value, "eal_change_from_ratio": from_ratio,
     }
 
+
 def _assets_table(m, attribution):
     def num(col):
         return m[col].to_numpy(float)
@@ -116,6 +119,7 @@ def _assets_table(m, attribution):
     out["causes"] = attribution["causes"]
     out["primary_cause"] = attribution["primary_cause"]
     return out
+
 
 def _run_notes(a, b):
     """Notes on runs of different scenarios or currencies."""
@@ -255,6 +259,7 @@ def _run_info(run):
     return {"run_id": run.run_id, "path": str(run.path), "given": str(run.given), "scenario": run.scenario,
             "created_utc": run.manifest.get("created_utc"), "inputs_sha256": run.manifest.get("inputs_sha256"),
             "currency": run.currency}
+
 
 def _jsonable(obj):
     """Plain JSON types (NaN as null)."""

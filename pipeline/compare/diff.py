@@ -66,6 +66,16 @@ def resolve_run(path):
     """The run folder ``path`` stands for: itself if it holds ``manifest.json``, else the
     run that ``LATEST`` names when ``path`` is an output folder.
 
+    Parameters
+    ----------
+    path : path-like
+        A run folder or an output folder.
+
+    Returns
+    -------
+    pathlib.Path
+        The resolved run folder.
+
     Raises
     ------
     InputError
@@ -133,6 +143,7 @@ def _differs(a, b, rtol):
         far = np.abs(a - b) > rtol * np.maximum(np.abs(a), np.abs(b))
     return np.where(na | nb, na != nb, far)
 
+
 def _relative(a, b):
     """(b - a) / a; NaN where a is zero or either side is missing."""
     a = np.asarray(a, dtype=float)
@@ -140,10 +151,12 @@ def _relative(a, b):
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(a != 0, (b - a) / a, np.nan)
 
+
 def _strings(series):
     """Object column of str with None where missing (written as Arrow nulls)."""
     out = series.astype(object)
     return out.where(series.notna(), None)
+
 
 def _flatten(cfg):
     """Resolved config as {(section, key): value}."""
@@ -156,14 +169,17 @@ def _flatten(cfg):
             out[(sec, "")] = body
     return out
 
+
 def _setting_scope(section, key):
     return SETTING_SCOPES.get((section, key), SETTING_SCOPES.get((section, "*"), "assets"))
+
 
 def _without_paths(section, key, value):
     """Compare source-model branches by id and weight only (their files by sha256)."""
     if (section, key) == ("hazard", "source_models") and isinstance(value, list):
         return [{k: v for k, v in b.items() if k != "file"} if isinstance(b, dict) else b for b in value]
     return value
+
 
 def _settings_changes(run_a, run_b):
     """Settings that differ, with their scope; a section only one run has is one entry."""
@@ -198,6 +214,7 @@ def _curves(run):
     sh["point"] = sh.groupby(["site_id", "im"], sort=False).cumcount()
     return sh
 
+
 def _hazard_changes(run_a, run_b):
     """Per (site_id, im): whether the curve differs; and the tabulated IMs of each run."""
     ca, cb = _curves(run_a), _curves(run_b)
@@ -217,6 +234,7 @@ def _hazard_changes(run_a, run_b):
         "curves_changed_by_im": {im: sum(1 for _, i in changed if i == im) for im in sorted({i for _, i in changed})},
     }
     return changed, set(ca.im), set(cb.im), summary
+
 
 def _ims_used(im, tabulated):
     """Tabulated IMs a class's IM was read from: itself, or its two neighbouring periods."""
@@ -254,6 +272,7 @@ def _asset_frame(run_a, run_b):
     m["status"] = m.pop("_merge").map({"both": "kept", "left_only": "removed", "right_only": "added"}).astype(object)
     return m
 
+
 def _damage_frame(run_a, run_b, asset_order):
     cols = ["asset_id", "im", "damage_state", "damage_state_index", "annual_rate_exceed", "prob_exceed_in_horizon"]
     da, db = run_a.table("asset_damage")[cols], run_b.table("asset_damage")[cols]
@@ -273,6 +292,7 @@ def _damage_frame(run_a, run_b, asset_order):
                | _differs(out.prob_exceed_in_horizon_a, out.prob_exceed_in_horizon_b, RESULT_RTOL))
     changed_assets = set(out.asset_id[changed])
     return out, ims, changed_assets
+
 
 def _input_changed(run_a, run_b, role):
     a = (run_a.manifest.get("inputs") or {}).get(role)
@@ -330,6 +350,7 @@ def _portfolio_rows(run_a, run_b, assets, notes):
     for col in ("metric", "basis", "unit", "versus_standard_error"):
         frame[col] = _strings(frame[col])
     return frame
+
 
 def _event_settings(run):
     """Whether the run holds event-based results, and their seed and number of simulated years."""

@@ -29,6 +29,7 @@ def _inside(path, folder):
     except ValueError:
         return False
 
+
 def write_change_report(run_a, run_b, out_dir=None, *, result=None):
     """Compare two runs and write the report; return the report folder.
 
@@ -39,8 +40,24 @@ def write_change_report(run_a, run_b, out_dir=None, *, result=None):
     under a hidden partial name and renamed into place when complete; an earlier report of
     the same pair is replaced only then.  Neither run folder is written to.
 
-    ``result``, when given, is :func:`compare_runs` of the same two runs (saves reading
-    them twice).
+    Parameters
+    ----------
+    run_a, run_b : path-like
+        Run folders, or output folders standing for their ``LATEST`` run.
+    out_dir : path-like, optional
+        The folder holding report folders (default ``<output folder of run B>/comparisons``).
+    result : dict, optional
+        :func:`compare_runs` of the same two runs (saves reading them twice).
+
+    Returns
+    -------
+    pathlib.Path
+        The report folder.
+
+    Raises
+    ------
+    InputError
+        When the report would be written inside one of the run folders.
     """
     if result is None:
         result = compare_runs(run_a, run_b)
@@ -94,6 +111,7 @@ def write_change_report(run_a, run_b, out_dir=None, *, result=None):
         raise
     return final
 
+
 def _version():
     from importlib import metadata
 
@@ -108,11 +126,14 @@ def _version():
 def _money(x):
     return "n/a" if x is None or not np.isfinite(x) else f"{x:,.0f}"
 
+
 def _signed(x):
     return "n/a" if x is None or not np.isfinite(x) else f"{x:+,.0f}"
 
+
 def _pct(x):
     return "n/a" if x is None or not np.isfinite(x) else f"{100 * x:+.2f}%"
+
 
 def _cause_lines(causes):
     """Inputs, classes, hazard sites, settings and simulation that changed between the runs."""

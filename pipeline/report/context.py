@@ -69,11 +69,13 @@ def _fractile_stats(stats):
             out.append((float(m.group(1)), s))
     return [s for _, s in sorted(out)]
 
+
 def _period_key(im):
     try:
         return im_period(im)
     except ValueError:
         return float("inf")
+
 
 def _created(run):
     stamp = run.manifest.get("created_utc") or ""

@@ -59,6 +59,7 @@ def _new_figure(width_in, height_in):
 
     return Figure(figsize=(width_in, height_in), dpi=DPI, layout="constrained")
 
+
 def _figure_html(fig, alt, caption):
     """Embed a figure as a base64 PNG with a caption; returns HTML."""
     buf = io.BytesIO()
@@ -66,6 +67,7 @@ def _figure_html(fig, alt, caption):
     data = base64.b64encode(buf.getvalue()).decode("ascii")
     return (f'<figure><img src="data:image/png;base64,{data}" alt="{_esc(alt)}">'
             f"<figcaption>{_esc(caption)}</figcaption></figure>")
+
 
 def _money_axis(ax, axis, cur):
     """Axis in millions of the currency, with thousands separators."""
@@ -212,12 +214,14 @@ def _uhs_figure(run, uhs, stat, chosen):
     axes[-1].legend(title="return period", title_fontsize=7.5)
     return fig
 
+
 def _bin_label(lo, hi, digits):
     if not np.isfinite(lo):
         return f"< {hi:.{digits}f}"
     if not np.isfinite(hi):
         return f"> {lo:.{digits}f}"
     return f"{lo:.{digits}f}–{hi:.{digits}f}"
+
 
 def _disagg_figure(d, every):
     """Marginal shares of one disaggregation; ``every``: the rows whose bins define the axes."""

@@ -90,11 +90,13 @@ th.addEventListener('keydown',function(e){if(e.key==='Enter'||e.key===' '){e.pre
 def _esc(x):
     return html.escape(str(x), quote=True)
 
+
 def _finite(x):
     try:
         return x is not None and math.isfinite(float(x))
     except (TypeError, ValueError):
         return False
+
 
 def _money(x, cur=""):
     """Whole currency units with thousands separators, e.g. ``4,559,725 USD``."""
@@ -102,33 +104,42 @@ def _money(x, cur=""):
         return "n/a"
     return f"{float(x):,.0f}" + (f" {cur}" if cur else "")
 
+
 def _signed_money(x):
     return "n/a" if not _finite(x) else f"{float(x):+,.0f}"
+
 
 def _rate(x):
     return "n/a" if not _finite(x) else f"{float(x):.3e}"
 
+
 def _prob(x):
     return "n/a" if not _finite(x) else f"{float(x):.4f}"
+
 
 def _pct(x, signed=False):
     if not _finite(x):
         return "n/a"
     return f"{100 * float(x):+.2f}%" if signed else f"{100 * float(x):.2f}%"
 
+
 def _g(x, digits=3):
     return "n/a" if not _finite(x) else f"{float(x):.{digits}g}"
 
+
 def _yr(x):
     return "n/a" if not _finite(x) else f"{float(x):,.6g} yr"
+
 
 def _sv(x):
     """Sort value for a numeric cell (NaN sorts first)."""
     return f"{float(x):.9g}" if _finite(x) else "nan"
 
+
 def _cell(text, value=None):
     """A numeric table cell: display text and the number it sorts by."""
     return ("n", text, _sv(value))
+
 
 def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=None, wide=False):
     """HTML table. ``headers``: labels (a label ending in ``#`` is a numeric column,
@@ -161,12 +172,15 @@ def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=
     out = f"<table{cls}>{cap}<thead>{top}<tr>{''.join(hs)}</tr></thead><tbody>{''.join(body)}</tbody></table>"
     return f'<div class="scroll">{out}</div>' if scroll else out
 
+
 def _html(fragment):
     """A table cell holding trusted HTML (already escaped by the caller)."""
     return ("html", fragment)
 
+
 def _note(text):
     return f'<p class="note">{_esc(text)}</p>'
+
 
 def _p(text):
     return f"<p>{_esc(text)}</p>"

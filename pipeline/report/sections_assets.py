@@ -7,6 +7,7 @@ from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, PREDATES_NOTE, TO
 from quakefolio.pipeline.report.figures import _figure_html, _fragility_figure, _map_figure
 from quakefolio.pipeline.report.html import _cell, _esc, _g, _money, _note, _p, _pct, _prob, _rate, _table
 
+
 # --- fragility ---------------------------------------------------------------------------------------
 
 def _fragility_rows(lib, codes):
@@ -127,6 +128,17 @@ def _section_damage(run):
 # --- riskiest assets ---------------------------------------------------------------------------------
 
 def _section_riskiest(run):
+    """Section 5: the assets with the highest collapse probability in the horizon, with their EAL.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a note when the run holds no such tables.
+    """
     loss = run.table("asset_loss")
     if loss is None or not len(loss):
         return _note("This run holds no per-asset results (hazard stage only).")

@@ -15,6 +15,7 @@ _METRIC_LABELS = {"n_assets": "assets", "total_replacement_value": "total replac
                   "eal": "EAL, classical", "aal": "AAL", "pml_aep": "PML aggregate (AEP)",
                   "pml_oep": "PML occurrence (OEP)", "tvar": "TVaR aggregate"}
 
+
 def _setting_text(value, limit=160):
     """A config value as compact JSON, shortened for the page."""
     if value is None:

@@ -10,6 +10,7 @@ from quakefolio.pipeline.report.context import _fractile_stats, _period_key
 from quakefolio.pipeline.report.figures import _disagg_figure, _figure_html, _hazard_curves_figure, _uhs_figure
 from quakefolio.pipeline.report.html import _cell, _finite, _note, _p, _table
 
+
 def _ranking_im(run, ims):
     """The IM that ranks the sites: the one most assets' fragility uses, else the shortest period."""
     dmg = run.table("asset_damage")

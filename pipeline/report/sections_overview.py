@@ -6,6 +6,7 @@ from quakefolio.pipeline.report.html import (
     _cell, _esc, _facts, _finite, _g, _html, _money, _note, _p, _pct, _prob, _table,
 )
 
+
 def _key_figures(run):
     cur = run.currency
     keys = []

@@ -5,7 +5,19 @@ from quakefolio.pipeline.report.context import SCREENING_ROWS
 from quakefolio.pipeline.report.figures import _ep_curve_figure, _figure_html
 from quakefolio.pipeline.report.html import _cell, _g, _money, _note, _p, _pct, _prob, _rate, _table
 
+
 def _section_portfolio(run):
+    """Section: event-based portfolio loss: EP curves, AAL with its standard error, PML and TVaR, breakdown.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a note when the run holds no such tables.
+    """
     summ, ep = run.table("portfolio_summary"), run.table("portfolio_ep")
     if summ is None or ep is None:
         if run.manifest.get("stages") == "hazard":
@@ -65,6 +77,17 @@ def _section_portfolio(run):
 
 
 def _section_screening(run):
+    """Section: collapse-risk screening against the target and the risk-targeted IM at the used sites.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a note when the run holds no such tables.
+    """
     scr = run.table("collapse_screening")
     if scr is None or not len(scr):
         return _note("This run holds no screening table (hazard stage only).")
@@ -106,7 +129,19 @@ def _section_screening(run):
                                   "dispersion as configured)"))
     return "".join(out)
 
+
 def _section_whatif(run):
+    """Section: retrofit alternatives, portfolio before and after, and benefit-cost.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a note when the run holds no such tables.
+    """
     port = run.table("whatif_portfolio")
     bc = run.table("whatif_benefit_cost")
     if port is None or not len(port):
