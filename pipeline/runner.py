@@ -22,6 +22,7 @@ from quakefolio.pipeline import whatif
 from quakefolio.pipeline.cache import digest, fragility_class_digests
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.products import CacheCounts, EventProduct, WhatIfProduct
+from quakefolio.pipeline.run_inputs import run_input_frames
 from quakefolio.pipeline.store import RunWriter, new_run_id
 from quakefolio.pipeline.tables import TABLES, units_for
 
@@ -335,6 +336,7 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         frames.update(events.tables)
     if extra is not None:
         frames.update(extra.tables)
+    frames.update(run_input_frames(inputs.exposure, inputs.library))  # the run stores the inputs it used
     output = cfg["output"]["folder"]
     run_id = new_run_id(output, inputs.inputs_sha256)
     provenance = {"run_id": run_id, "inputs_sha256": inputs.inputs_sha256,
@@ -349,7 +351,7 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
                              frames, warnings)
         writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
         if cfg["output"]["report"]:
-            from quakefolio.pipeline.report import write_report  # lazy: the report module imports this one
+            from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
 
             write_report(writer.partial, writer.partial / "report.html")
         return writer.commit()

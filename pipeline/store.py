@@ -8,10 +8,15 @@ Layout::
 
 A run is written under its ``.partial-`` name and renamed into place only when every
 table and the manifest are on disk (``os.replace`` of a folder within one file system
-is atomic); ``LATEST`` is then replaced atomically by writing a temporary file and
-renaming it.  A crash at any point leaves earlier runs and ``LATEST`` intact; a stale
+is atomic); ``LATEST`` is then replaced atomically by :func:`atomic_write_text`.  A crash at any point leaves earlier runs and ``LATEST`` intact; a stale
 partial folder (its process gone) is removed by the next run.  Every Parquet file carries units and
 provenance in its schema metadata under the key ``quakefolio``.
+
+Every file the pipeline replaces in place (the ``LATEST`` pointer, a report) goes through
+:func:`atomic_write_bytes` or :func:`atomic_write_text`: a temporary file in the target
+folder, flushed and fsynced, then renamed over the target.  Finished runs are read through
+:class:`RunFolder` (manifest, tables, table metadata, and the assets and fragility classes
+the run used).
 """
 from __future__ import annotations
 
@@ -19,13 +24,15 @@ import datetime as _dt
 import json
 import os
 import shutil
+import tempfile
 from pathlib import Path
 
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-__all__ = ["RunWriter", "latest_run", "read_table", "table_metadata", "PARTIAL_PREFIX"]
+__all__ = ["RunWriter", "RunFolder", "latest_run", "read_table", "table_metadata", "atomic_write_bytes",
+           "atomic_write_text", "PARTIAL_PREFIX"]
 
 PARTIAL_PREFIX = ".partial-"
 METADATA_KEY = b"quakefolio"
@@ -56,6 +63,69 @@ def fsync_path(path):
         pass
     finally:
         os.close(fd)
+
+
+def atomic_write_bytes(path, data, *, mode=None):
+    """Write ``data`` to ``path`` atomically: readers see the old file or the new one, never a part.
+
+    The bytes go to a temporary file in the target folder (``.<name>.<random>.tmp``), are
+    flushed and fsynced, then the file is renamed over ``path`` (``os.replace``) and the
+    folder is fsynced.  The temporary file is removed if anything fails.
+
+    Parameters
+    ----------
+    path : path-like
+        The target file; its folder must exist.
+    data : bytes
+        The whole new content.
+    mode : int, optional
+        Permission bits of the new file; default ``0o666`` less the process umask (as for
+        a file created with ``open``).
+
+    Returns
+    -------
+    pathlib.Path
+        ``path``.
+    """
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        if mode is None:
+            mask = os.umask(0)
+            os.umask(mask)
+            mode = 0o666 & ~mask
+        os.chmod(tmp, mode)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    fsync_path(folder)
+    return path
+
+
+def atomic_write_text(path, text, *, mode=None):
+    """Write ``text`` (UTF-8, newlines as given) to ``path`` atomically; see :func:`atomic_write_bytes`.
+
+    Parameters
+    ----------
+    path : path-like
+        The target file; its folder must exist.
+    text : str
+        The whole new content.
+    mode : int, optional
+        Permission bits of the new file (default: ``0o666`` less the umask).
+
+    Returns
+    -------
+    pathlib.Path
+        ``path``.
+    """
+    return atomic_write_bytes(path, text.encode("utf-8"), mode=mode)
 
 
 def _arrow_type(series):
@@ -143,13 +213,7 @@ class RunWriter:
         fsync_path(self.partial)
         os.replace(self.partial, self.final)
         fsync_path(self.runs)
-        tmp = self.output / f".LATEST.{os.getpid()}.tmp"
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(self.run_id + "\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, self.output / "LATEST")
-        fsync_path(self.output)
+        atomic_write_text(self.output / "LATEST", self.run_id + "\n")
         return self.final
 
     def abort(self):
@@ -180,14 +244,12 @@ def latest_run(output_folder):
 
 def read_manifest(run_dir):
     """The run's manifest as a dict; InputError naming the file if it is not a readable JSON object."""
-    import json as _json
-
     from quakefolio.core.errors import InputError
 
     manifest_path = Path(run_dir) / "manifest.json"
     try:
-        manifest = _json.loads(manifest_path.read_text(encoding="utf-8"))
-    except _json.JSONDecodeError as exc:
+        manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+    except json.JSONDecodeError as exc:
         raise InputError(manifest_path, f"not a readable run manifest ({exc.msg})", row=exc.lineno) from None
     if not isinstance(manifest, dict):
         raise InputError(manifest_path, "not a readable run manifest (expected a JSON object)")
@@ -203,3 +265,111 @@ def table_metadata(run_dir, name):
     """The quakefolio schema metadata (units, provenance) of a run table."""
     schema = pq.read_schema(Path(run_dir) / f"{name}.parquet")
     return json.loads(schema.metadata[METADATA_KEY])
+
+
+class RunFolder:
+    """One run folder, read only: its manifest, tables, table metadata and stored inputs.
+
+    The one reader of run folders for the report, the change report and the printed
+    summary; none of them opens the user's input files (config, exposure, library):
+    the run holds what they need (the resolved config in the manifest, the assets in
+    ``run_assets`` and the fragility classes in ``run_fragility``).
+
+    Parameters
+    ----------
+    path : path-like
+        A folder holding ``manifest.json`` (a finished run or a partial folder being
+        written; only this folder is read).
+    given : path-like, optional
+        The argument the user gave for it (e.g. an output folder standing for its
+        ``LATEST`` run); defaults to ``path``.
+
+    Raises
+    ------
+    InputError
+        When ``manifest.json`` is not a readable JSON object.
+    """
+
+    def __init__(self, path, given=None):
+        self.path = Path(path)
+        self.given = Path(given) if given is not None else self.path
+        self.manifest = read_manifest(self.path)
+        self.config = self.manifest.get("config") or {}
+        self.run_id = self.manifest.get("run_id") or self.path.name
+        self._tables = {}
+
+    def section(self, name):
+        """One section of the resolved config as a dict (empty when absent)."""
+        return self.config.get(name) or {}
+
+    @property
+    def currency(self):
+        """The run's currency code (empty when the manifest has no config)."""
+        return self.section("scenario").get("currency", "")
+
+    @property
+    def scenario(self):
+        """The scenario name recorded in the manifest."""
+        return self.manifest.get("scenario", "")
+
+    @property
+    def horizon(self):
+        """The probability horizon [yr] (NaN when not configured)."""
+        return float(self.section("scenario").get("horizon_yr", float("nan")))
+
+    def has(self, name):
+        """Whether the run holds ``<name>.parquet``."""
+        return (self.path / f"{name}.parquet").is_file()
+
+    def table(self, name):
+        """A run table as a DataFrame (read once, then kept).
+
+        Parameters
+        ----------
+        name : str
+            Table name without ``.parquet``.
+
+        Returns
+        -------
+        pandas.DataFrame
+
+        Raises
+        ------
+        InputError
+            When the table is missing or unreadable (naming the file).
+        """
+        from quakefolio.core.errors import InputError
+
+        if name not in self._tables:
+            file = self.path / f"{name}.parquet"
+            if not file.exists():
+                raise InputError(file, f"missing table: run {self.run_id} has no {name}.parquet")
+            try:
+                self._tables[name] = read_table(self.path, name)
+            except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
+                raise InputError(file, f"unreadable table ({exc})") from None
+        return self._tables[name]
+
+    def optional_table(self, name):
+        """The table as a DataFrame, or None when the run has no such table."""
+        return self.table(name) if self.has(name) else None
+
+    def metadata(self, name):
+        """The quakefolio schema metadata (units, description, provenance) of a run table."""
+        return table_metadata(self.path, name)
+
+    @property
+    def has_stored_inputs(self):
+        """Whether the run stores the assets and fragility classes it used (newer runs)."""
+        return self.has("run_assets") and self.has("run_fragility")
+
+    def assets(self):
+        """The validated exposure the run used (``run_assets``), or None for older runs."""
+        return self.optional_table("run_assets")
+
+    def fragility(self):
+        """The fragility classes the run used as a FragilityLibrary, or None for older runs."""
+        from quakefolio.pipeline.run_inputs import library_from_frame
+
+        frame = self.optional_table("run_fragility")
+        return None if frame is None else library_from_frame(frame)

@@ -1,11 +1,8 @@
-"""The short printed summary of a finished run."""
+"""The short printed summary of a finished run (read through :class:`~quakefolio.pipeline.store.RunFolder`)."""
 from __future__ import annotations
 
-import json
-from pathlib import Path
-
 from quakefolio.pipeline.caution import CAUTION
-from quakefolio.pipeline.store import read_table
+from quakefolio.pipeline.store import RunFolder
 
 __all__ = ["summary_text"]
 
@@ -14,9 +11,9 @@ def _money(x):
     return f"{x:,.0f}"
 
 
-def _hazard_lines(run_dir, manifest):
+def _hazard_lines(run, manifest):
     """Range over sites of the mean uniform-hazard values, and disaggregation at the worst site."""
-    uhs = read_table(run_dir, "hazard_at_return_periods")
+    uhs = run.table("hazard_at_return_periods")
     stat = "mean" if "mean" in set(uhs.statistic) else uhs.statistic.iloc[0]
     uhs = uhs[uhs.statistic == stat]
     tree = manifest.get("hazard_logic_tree")
@@ -35,8 +32,8 @@ def _hazard_lines(run_dir, manifest):
                          + ("" if len(v) == len(grp) else f"   ({len(grp) - len(v)} sites flagged)"))
         else:
             lines.append(f"    {im:<8} {rp:>6g} yr   not reported ({grp.flag.iloc[0]})")
-    if (Path(run_dir) / "disaggregation_summary.parquet").exists():
-        dis = read_table(run_dir, "disaggregation_summary").dropna(subset=["mean_mag"])
+    if run.has("disaggregation_summary"):
+        dis = run.table("disaggregation_summary").dropna(subset=["mean_mag"])
         if len(dis):
             worst = dis.sort_values(["im_level", "site_id"], ascending=[False, True]).iloc[0]
             lines.append(f"  disaggregation at the highest {worst.im} ({worst.return_period_yr:g} yr, site "
@@ -45,10 +42,10 @@ def _hazard_lines(run_dir, manifest):
     return lines
 
 
-def _portfolio_lines(run_dir, manifest, cur):
+def _portfolio_lines(run, manifest, cur):
     """AAL with its standard error, PML (AEP and OEP) and TVaR, and the built-in cross-checks."""
-    summ = read_table(run_dir, "portfolio_summary").set_index("basis")
-    ep = read_table(run_dir, "portfolio_ep")
+    summ = run.table("portfolio_summary").set_index("basis")
+    ep = run.table("portfolio_ep")
     gu = summ.loc["ground_up"]
     lines = ["", f"  event-based portfolio: {int(gu.n_years)} simulated years, {int(gu.n_events)} events "
                  f"(source branch '{gu.source_branch}', seed {int(gu.seed)}, {gu.loss_model.replace('_', ' ')})"]
@@ -91,11 +88,11 @@ def _cache_lines(manifest):
     return ["", "  cache: " + "; ".join(parts)]
 
 
-def _screening_lines(run_dir, cfg, top_n):
+def _screening_lines(run, cfg, top_n):
     """Assets above the collapse target (count and the worst few) and the risk-targeted IM range."""
-    if not (run_dir / "collapse_screening.parquet").exists():
+    if not run.has("collapse_screening"):
         return []
-    scr = read_table(run_dir, "collapse_screening")
+    scr = run.table("collapse_screening")
     sc = cfg.get("screening") or {}
     target_p = scr.target_prob.iloc[0] if len(scr) else sc.get("collapse_target_prob", float("nan"))
     target_t = scr.target_years.iloc[0] if len(scr) else sc.get("collapse_target_years", float("nan"))
@@ -105,8 +102,8 @@ def _screening_lines(run_dir, cfg, top_n):
     for r in flagged.head(min(3, top_n)).itertuples():
         lines.append(f"    {r.asset_id:<12}{r.building_class:<10}{r.site_id:<8}P({target_t:g} yr) "
                      f"{r.collapse_prob_in_target_years:.4f}  {r.ratio_to_target:.1f} x target")
-    if (run_dir / "site_risk_targeted_im.parquet").exists():
-        rt = read_table(run_dir, "site_risk_targeted_im")
+    if run.has("site_risk_targeted_im"):
+        rt = run.table("site_risk_targeted_im")
         lines.append(f"  risk-targeted IM [g] across sites (min / median / max; generic collapse fragility beta "
                      f"{sc.get('rt_beta', float('nan')):g}, {sc.get('rt_prob_at_im', float('nan')):.0%} at the IM), "
                      "risk coefficient vs 2% in 50 yr:")
@@ -119,13 +116,13 @@ def _screening_lines(run_dir, cfg, top_n):
     return lines
 
 
-def _whatif_lines(run_dir, cur):
+def _whatif_lines(run, cur):
     """One short block per retrofit alternative: EAL, collapses, event-based change, benefit-cost."""
-    if not (run_dir / "whatif_benefit_cost.parquet").exists():
+    if not run.has("whatif_benefit_cost"):
         return []
-    bc = read_table(run_dir, "whatif_benefit_cost")
-    port = read_table(run_dir, "whatif_portfolio")
-    assets = read_table(run_dir, "whatif_assets")
+    bc = run.table("whatif_benefit_cost")
+    port = run.table("whatif_portfolio")
+    assets = run.table("whatif_assets")
     lines = ["", "  retrofit what-if (each alternative against this run):"]
     for r in bc[bc.scope == "alternative"].itertuples():
         sel = assets[assets.alternative_id == r.alternative_id]
@@ -153,18 +150,33 @@ def _whatif_lines(run_dir, cur):
 
 
 def summary_text(run_dir, *, elapsed_s=None):
-    run_dir = Path(run_dir)
-    manifest = json.loads((run_dir / "manifest.json").read_text(encoding="utf-8"))
+    """The printed summary of a run: caution, assets, EAL, riskiest assets, hazard, portfolio, what-if, cache.
+
+    Parameters
+    ----------
+    run_dir : path-like
+        The run folder.
+    elapsed_s : float, optional
+        Wall time of the run [s], printed with the folder.
+
+    Returns
+    -------
+    str
+        Lines of plain text, amounts in the run's currency.
+    """
+    run = RunFolder(run_dir)
+    run_dir = run.path
+    manifest = run.manifest
     cfg = manifest["config"]
     cur = cfg["scenario"]["currency"]
     horizon = cfg["scenario"]["horizon_yr"]
     top_n = cfg["output"]["top_assets"]
     head = [CAUTION, "", f"quakefolio run {manifest['run_id']}  scenario: {manifest['scenario']}"]
-    hazard = _hazard_lines(run_dir, manifest)
+    hazard = _hazard_lines(run, manifest)
     timing = f" in {elapsed_s:.1f} s" if elapsed_s is not None else ""
     if manifest.get("stages") == "hazard":
         return "\n".join(head + hazard + ["", f"  run folder (hazard stage only){timing}: {run_dir}"])
-    loss = read_table(run_dir, "asset_loss")
+    loss = run.table("asset_loss")
     total_value = loss.replacement_value.sum()
     eal = loss.eal.sum()
     lines = head + [
@@ -183,11 +195,11 @@ def summary_text(run_dir, *, elapsed_s=None):
                      f"{r.collapse_prob_in_horizon:>12.4f}{_money(r.eal):>14}")
     for w in manifest.get("warnings", []):
         lines.append(f"  note: {w}")
-    lines += _screening_lines(run_dir, cfg, top_n)
+    lines += _screening_lines(run, cfg, top_n)
     lines += hazard
-    if (run_dir / "portfolio_summary.parquet").exists():
-        lines += _portfolio_lines(run_dir, manifest, cur)
-    lines += _whatif_lines(run_dir, cur)
+    if run.has("portfolio_summary"):
+        lines += _portfolio_lines(run, manifest, cur)
+    lines += _whatif_lines(run, cur)
     lines += _cache_lines(manifest)
     lines.append("")
     lines.append(f"  run folder{timing}: {run_dir}")

@@ -186,6 +186,25 @@ TABLES.update({
     ),
 })
 
+TABLES.update({
+    "run_assets": dict(
+        description="The assets this run used: the validated exposure as read (one row per asset, exposure "
+                    "order; optional columns NaN where not given). Positions in WGS84 degrees.",
+        units={"lon": "deg", "lat": "deg", "replacement_value": "{currency}", "vs30_mps": "m/s", "occupants": "-",
+               "deductible": "{currency}", "limit": "{currency}"},
+    ),
+    "run_fragility": dict(
+        description="The fragility and consequence model of every building class this run used, long form: one "
+                    "row per class and damage state in severity order (damage_state_index from 0); lognormal "
+                    "fragility P(DS >= ds | IM) = Phi(ln(IM / median) / beta) with the median in the units of the "
+                    "class's IM; mean damage ratio (repair cost / replacement value) with the CoV of the loss "
+                    "ratio (0: deterministic); downtime and casualty rate NaN where not given; "
+                    "is_collapse_state marks the state counted as collapse.",
+        units={"median": "g", "beta": "-", "mean_damage_ratio": "-", "cov": "-", "downtime_days": "days",
+               "casualty_rate": "-", "damage_state_index": "-", "n_states": "-"},
+    ),
+})
+
 
 def units_for(name, currency):
     return {k: v.replace("{currency}", currency) for k, v in TABLES[name]["units"].items()}

@@ -130,9 +130,9 @@ def test_hazard_change_reaches_a_class_on_an_interpolated_period(mini_config):
 
 def test_ims_used_for_an_interpolated_period():
     tab = {"PGA", "SA_0.3", "SA_1.0"}
-    assert compare._ims_used("SA_0.6", tab) == ["SA_0.3", "SA_1.0"]
-    assert compare._ims_used("SA_0.3", tab) == ["SA_0.3"]
-    assert compare._ims_used("SA_3.0", tab) == sorted(tab)  # cannot be bracketed: every curve counts
+    assert compare.diff._ims_used("SA_0.6", tab) == ["SA_0.3", "SA_1.0"]
+    assert compare.diff._ims_used("SA_0.3", tab) == ["SA_0.3"]
+    assert compare.diff._ims_used("SA_3.0", tab) == sorted(tab)  # cannot be bracketed: every curve counts
 
 
 def test_fragility_change_moves_only_that_class(mini_config):
@@ -332,7 +332,7 @@ def test_report_is_written_atomically_and_runs_stay_untouched(mini_config, monke
     # a failure half-way leaves the earlier report as it was and nothing partial
     earlier = _snapshot(folder)
     calls = {"n": 0}
-    real = compare.pq.write_table
+    real = compare.render.pq.write_table
 
     def failing(*args, **kwargs):
         calls["n"] += 1
@@ -340,7 +340,7 @@ def test_report_is_written_atomically_and_runs_stay_untouched(mini_config, monke
             raise OSError("disk full (simulated)")
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(compare.pq, "write_table", failing)
+    monkeypatch.setattr(compare.render.pq, "write_table", failing)
     with pytest.raises(OSError, match="simulated"):
         write_change_report(run_a, run_b)
     monkeypatch.undo()

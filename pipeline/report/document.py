@@ -1,0 +1,135 @@
+"""The report as one HTML document: sections in order, header, key figures, atomic writing."""
+from __future__ import annotations
+
+from pathlib import Path
+
+from quakefolio.core.errors import InputError
+from quakefolio.pipeline.caution import CAUTION
+from quakefolio.pipeline.report.context import ReportRun, _created
+from quakefolio.pipeline.report.figures import _RC
+from quakefolio.pipeline.report.html import _CSS, _JS, _esc, _note
+from quakefolio.pipeline.report.sections_assets import _section_damage, _section_fragility, _section_map
+from quakefolio.pipeline.report.sections_assets import _section_riskiest
+from quakefolio.pipeline.report.sections_changes import _section_changes
+from quakefolio.pipeline.report.sections_hazard import _section_hazard
+from quakefolio.pipeline.report.sections_overview import _key_figures, _section_checks, _section_inputs
+from quakefolio.pipeline.report.sections_portfolio import _section_portfolio, _section_screening, _section_whatif
+from quakefolio.pipeline.store import atomic_write_text
+
+__all__ = ["build_report", "write_report", "SECTIONS"]
+
+#: Section ids and headings, in report order.
+SECTIONS = (
+    ("inputs", "Inputs and provenance"),
+    ("hazard", "Seismic hazard at the sites"),
+    ("fragility", "Fragility curves by building class"),
+    ("damage", "Damage-state rates and probabilities per asset"),
+    ("riskiest", "The riskiest assets"),
+    ("portfolio", "Portfolio loss: exceedance curves, AAL, PML and TVaR"),
+    ("screening", "Collapse-risk screening"),
+    ("whatif", "Retrofit what-if and benefit-cost"),
+    ("map", "Map of assets"),
+    ("changes", "Changes since the previous run"),
+    ("checks", "Built-in cross-checks and hazard logic tree"),
+)
+
+
+def _safe(builder, *args):
+    """A section body; a failure becomes a note in that section instead of breaking the report."""
+    try:
+        return builder(*args)
+    except Exception as exc:  # noqa: BLE001 - one broken section must not lose the rest of the report
+        return _note(f"This section could not be drawn: {type(exc).__name__}: {exc}")
+
+
+def build_report(run_dir, *, previous_run=None):
+    """The HTML report of one run, as a string (one self-contained document).
+
+    Parameters
+    ----------
+    run_dir : path-like
+        The run folder holding ``manifest.json`` and the Parquet tables; a finished run
+        or a partial folder being written (only this folder is read).
+    previous_run : path-like, optional
+        A finished run (or an output folder, for its ``LATEST`` run) to compare with;
+        adds the change report (:func:`quakefolio.pipeline.compare.compare_runs`).
+
+    Returns
+    -------
+    str
+        HTML5: caution first, key figures, then one ``<section id=...>`` per entry of
+        :data:`SECTIONS`.  Plots are inline base64 PNG; no external resource is referenced.
+
+    Raises
+    ------
+    InputError
+        When ``run_dir`` is not a folder or holds no readable ``manifest.json``.
+    """
+    import matplotlib
+
+    run = ReportRun(run_dir)
+    builders = {
+        "inputs": (_section_inputs, run), "hazard": (_section_hazard, run), "fragility": (_section_fragility, run),
+        "damage": (_section_damage, run), "riskiest": (_section_riskiest, run),
+        "portfolio": (_section_portfolio, run), "screening": (_section_screening, run),
+        "whatif": (_section_whatif, run), "map": (_section_map, run),
+        "changes": (_section_changes, run, previous_run), "checks": (_section_checks, run),
+    }
+    with matplotlib.rc_context(_RC):
+        bodies = {sid: _safe(fn, *args) for sid, (fn, *args) in builders.items()}
+        keys = _safe(_key_figures, run)
+    scenario = run.manifest.get("scenario") or run.section("scenario").get("name", "")
+    nav = "<nav><ol>" + "".join(f'<li><a href="#{sid}">{_esc(title)}</a></li>'
+                                for sid, title in SECTIONS) + "</ol></nav>"
+    sections = "".join(f'<section id="{sid}"><h2>{_esc(title)}</h2>{bodies[sid]}</section>' for sid, title in SECTIONS)
+    version = (run.manifest.get("packages") or {}).get("quakefolio") or ""
+    return (
+        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+        "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+        f"<title>quakefolio report: {_esc(scenario)} ({_esc(run.run_id)})</title>"
+        f"<style>{_CSS}</style></head><body>"
+        f'<p class="caution" id="caution" role="note">{_esc(CAUTION)}</p>'
+        "<main><header>"
+        f"<h1>{_esc(scenario)}</h1>"
+        f"<p>Earthquake damage and loss of a building portfolio. Run {_esc(run.run_id)}, created {_esc(_created(run))}"
+        f"; amounts in {_esc(run.currency)}; probabilities over {run.horizon:g} years.</p>"
+        f"{nav}</header>{keys}{sections}"
+        f"<footer>quakefolio {_esc(version)}. {_esc(CAUTION)}</footer>"
+        f"</main><script>{_JS}</script></body></html>\n"
+    )
+
+
+def write_report(run_dir, out_path, *, previous_run=None):
+    """Build the report of ``run_dir`` and write it to ``out_path`` atomically; return the path.
+
+    Parameters
+    ----------
+    run_dir : path-like
+        The run folder (finished, or partial while being written).
+    out_path : path-like
+        The HTML file to write; its folder must exist.
+    previous_run : path-like, optional
+        A run to compare with (see :func:`build_report`).
+
+    Returns
+    -------
+    pathlib.Path
+        ``out_path``.
+
+    Raises
+    ------
+    InputError
+        When the target folder does not exist, or ``run_dir`` is not a readable run.
+
+    Notes
+    -----
+    Written through :func:`quakefolio.pipeline.store.atomic_write_text` (temporary file in
+    the target folder, fsync, ``os.replace``): readers see the old file or the new one,
+    never a half-written one.
+    """
+    text = build_report(run_dir, previous_run=previous_run)
+    out = Path(out_path)
+    folder = out.parent if str(out.parent) else Path(".")
+    if not folder.is_dir():
+        raise InputError(folder, "folder does not exist")
+    return atomic_write_text(out, text)

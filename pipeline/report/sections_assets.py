@@ -1,0 +1,196 @@
+"""Report sections per building class and per asset: fragility curves, damage table, riskiest assets, map."""
+from __future__ import annotations
+
+import pandas as pd
+
+from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, PREDATES_NOTE, TOP_ASSETS
+from quakefolio.pipeline.report.figures import _figure_html, _fragility_figure, _map_figure
+from quakefolio.pipeline.report.html import _cell, _esc, _g, _money, _note, _p, _pct, _prob, _rate, _table
+
+
+# --- fragility ---------------------------------------------------------------------------------------
+
+def _fragility_rows(lib, codes):
+    """Table rows: class, IM, damage state, median [g], beta, mean damage ratio and CoV per state."""
+    rows = []
+    for code in codes:
+        dss = lib[code]
+        for j, name in enumerate(dss.names):
+            marked = j == dss.collapse_index and name.lower() != "collapse"
+            rows.append([code if j == 0 else "", dss.im if j == 0 else "", name + (" (collapse state)" if marked else ""),
+                         _cell(f"{dss.medians[j]:.3f}", dss.medians[j]), _cell(f"{dss.betas[j]:.2f}", dss.betas[j]),
+                         _cell(f"{dss.mean_damage_ratio[j]:.3f}", dss.mean_damage_ratio[j]),
+                         _cell(_g(dss.cov[j], 2), dss.cov[j])])
+    return rows
+
+
+def _section_fragility(run):
+    """Section 3: fragility curves and parameters of the classes the run used (from ``run_fragility``).
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a one-line note for runs that predate stored inputs.
+    """
+    lib = run.fragility()
+    if lib is None:
+        return _note(PREDATES_NOTE.format(what="fragility curves"))
+    loss = run.table("asset_loss")
+    used = sorted(set(loss.building_class)) if loss is not None and len(loss) else sorted(lib.classes)
+    codes = [c for c in used if c in lib.classes]
+    if not codes:
+        return _note("No building class of the run can be drawn.")
+    counts = loss.building_class.value_counts() if loss is not None else pd.Series(dtype=int)
+    out = [_figure_html(_fragility_figure(lib, codes, counts), "fragility curves per building class",
+                        "Figure: lognormal fragility functions, probability of reaching or exceeding each "
+                        "damage state [-] against the class's intensity measure [g] on a log axis (from the "
+                        "first state's median / exp(2.5 beta) to the last state's median x exp(2.5 beta))."),
+           "<h3>Parameters</h3>",
+           _table(["class", "IM", "damage state", "median [g]#", "beta [-]#", "mean damage ratio [-]#",
+                   "loss-ratio CoV [-]#"], _fragility_rows(lib, codes))]
+    descr = [(c, lib[c].description) for c in codes if getattr(lib[c], "description", "")]
+    if descr:
+        out.append("<p>" + "; ".join(f"<b>{_esc(c)}</b>: {_esc(d)}" for c, d in descr) + ".</p>")
+    return "".join(out)
+
+
+# --- damage table ------------------------------------------------------------------------------------
+
+def _damage_rows(dmg, loss, shown, idx):
+    """Table rows: asset, class, site, IM, then rates [1/yr] and probabilities per damage state."""
+    rate = dmg.pivot_table(index="asset_id", columns="damage_state_index", values="annual_rate_exceed", aggfunc="first")
+    prob = dmg.pivot_table(index="asset_id", columns="damage_state_index", values="prob_exceed_in_horizon",
+                           aggfunc="first")
+    meta = loss.set_index("asset_id")
+    ims = dmg.drop_duplicates("asset_id").set_index("asset_id").im
+    rows = []
+    for a in shown:
+        r = meta.loc[a]
+        row = [a, r.building_class, r.site_id, ims.get(a, "")]
+        for table, fmt in ((rate, _rate), (prob, _prob)):
+            for i in idx:
+                v = table.at[a, i] if a in table.index and i in table.columns else float("nan")
+                row.append(_cell(fmt(v), v))
+        rows.append(row)
+    return rows
+
+
+def _state_names_note(dmg, names):
+    """A note when damage-state names differ between classes (columns are then numbered), else ''."""
+    if not (len(names) and any(len(v) > 1 for v in names)):
+        return ""
+    per_class = dmg.drop_duplicates(["building_class", "damage_state_index"]).sort_values(
+        ["building_class", "damage_state_index"])
+    legend = "; ".join(f"{c}: " + ", ".join(f"DS{int(i)} = {n}" for i, n in zip(g.damage_state_index, g.damage_state))
+                       for c, g in per_class.groupby("building_class"))
+    return _note(f"Damage-state names differ between classes; columns are numbered by severity ({legend}).")
+
+
+def _section_damage(run):
+    """Section 4: per asset and damage state, annual rate and probability in the horizon (sortable table).
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body.
+    """
+    dmg = run.table("asset_damage")
+    loss = run.table("asset_loss")
+    if dmg is None or not len(dmg) or loss is None:
+        return _note("This run holds no per-asset results (hazard stage only).")
+    horizon = run.horizon
+    idx = sorted(set(dmg.damage_state_index))
+    names = dmg.groupby("damage_state_index").damage_state.agg(lambda s: sorted(set(s)))
+    labels = {i: (names[i][0] if len(names[i]) == 1 else f"DS{i}") for i in idx}
+    order = loss.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).asset_id
+    rows = _damage_rows(dmg, loss, list(order[:MAX_TABLE_ROWS]), idx)
+    headers = ["asset", "class", "site", "IM"] + [f"{labels[i]}#" for i in idx] * 2
+    groups = [("", 4), ("annual rate of reaching or exceeding [1/yr]", len(idx)),
+              (f"probability in {horizon:g} yr [-]", len(idx))]
+    out = [_p(f"Per asset and damage state: the annual rate of reaching or exceeding the state [1/yr] and the "
+              f"probability of that in {horizon:g} years (Poisson, P = 1 - exp(-rate x {horizon:g})). Click a column "
+              "header to sort."), _state_names_note(dmg, names)]
+    if len(order) > MAX_TABLE_ROWS:
+        out.append(_note(f"Showing {MAX_TABLE_ROWS:,} of {len(order):,} assets (highest collapse probability first); "
+                         "every asset is in asset_damage.parquet of the run folder."))
+    out.append(_table(headers, rows, sortable=True, scroll=True, groups=groups, wide=True))
+    return "".join(out)
+
+
+# --- riskiest assets ---------------------------------------------------------------------------------
+
+def _section_riskiest(run):
+    """Section 5: the assets with the highest collapse probability in the horizon, with their EAL.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a note when the run holds no such tables.
+    """
+    loss = run.table("asset_loss")
+    if loss is None or not len(loss):
+        return _note("This run holds no per-asset results (hazard stage only).")
+    cur, h = run.currency, run.horizon
+    top = loss.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).head(TOP_ASSETS)
+    rows = [[r.asset_id, r.building_class, r.site_id, _cell(_money(r.replacement_value), r.replacement_value),
+             _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
+             _cell(_prob(r.collapse_prob_in_horizon), r.collapse_prob_in_horizon),
+             _cell(_money(r.eal), r.eal), _cell(f"{1000 * r.eal_ratio:.3f}", r.eal_ratio)]
+            for r in top.itertuples()]
+    share = top.eal.sum() / loss.eal.sum() if loss.eal.sum() > 0 else float("nan")
+    out = [_p(f"The {len(top)} assets with the highest probability of collapse in {h:g} years, with their expected "
+              f"annual loss (classical). Together they carry {_pct(share)} of the portfolio EAL.")]
+    out.append(_table(["asset", "class", "site", f"value [{cur}]#", "collapse rate [1/yr]#",
+                       f"P(collapse in {h:g} yr)#", f"EAL [{cur}/yr]#", "EAL ratio [‰/yr]#"], rows, sortable=True))
+    return "".join(out)
+
+
+# --- map ---------------------------------------------------------------------------------------------
+
+def _section_map(run):
+    """Section: map of the assets at their stored positions (``run_assets``), by value and EAL ratio.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a one-line note for runs that predate stored inputs.
+    """
+    loss = run.table("asset_loss")
+    if loss is None or not len(loss):
+        return _note("This run holds no per-asset results (hazard stage only).")
+    assets = run.assets()
+    if assets is None:
+        return _note(PREDATES_NOTE.format(what="asset positions"))
+    d = loss.merge(assets[["asset_id", "lon", "lat"]], on="asset_id", how="left")
+    missing = int(d.lon.isna().sum())
+    d = d.dropna(subset=["lon", "lat"])
+    if not len(d):
+        return _note("No asset of the run has a position in the stored assets.")
+    cur = run.currency
+    fig, capped, bar_km = _map_figure(d, cur)
+    caption = (f"Figure: {len(d):,} assets at their positions in the exposure the run used (WGS84 degrees); "
+               f"marker area grows with replacement value [{cur}], colour gives the expected annual loss ratio "
+               f"[‰ of value per year, classical]"
+               f"{' (colour scale capped at the 99th percentile)' if capped else ''}. Axes are drawn with equal "
+               f"ground distance per degree at latitude {d.lat.mean():.2f}° (x stretched by 1/cos(lat)); the scale "
+               f"bar is {bar_km:g} km.")
+    out = [_figure_html(fig, "map of assets by replacement value and EAL ratio", caption)]
+    if missing:
+        out.append(_note(f"{missing} asset(s) of the run have no position in the stored assets and are not drawn."))
+    return "".join(out)

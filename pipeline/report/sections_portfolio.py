@@ -1,0 +1,176 @@
+"""Report sections on portfolio results: event-based losses, collapse-risk screening, retrofit what-if."""
+from __future__ import annotations
+
+from quakefolio.pipeline.report.context import SCREENING_ROWS
+from quakefolio.pipeline.report.figures import _ep_curve_figure, _figure_html
+from quakefolio.pipeline.report.html import _cell, _g, _money, _note, _p, _pct, _prob, _rate, _table
+
+
+def _section_portfolio(run):
+    """Section: event-based portfolio loss: EP curves, AAL with its standard error, PML and TVaR, breakdown.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a note when the run holds no such tables.
+    """
+    summ, ep = run.table("portfolio_summary"), run.table("portfolio_ep")
+    if summ is None or ep is None:
+        if run.manifest.get("stages") == "hazard":
+            why = "this run is the hazard stage only"
+        elif run.section("hazard").get("mode") != "compute":
+            why = "hazard was tabulated from a file, and simulated events need a source model (computed hazard)"
+        else:
+            why = "the event-based stage is off ([portfolio] event_based = false)"
+        return _note(f"No event-based tables in this run: {why}. Loss-exceedance curves, AAL, PML and TVaR of the "
+                     "portfolio need the simulated event set; per-asset EAL above is classical.")
+    cur = run.currency
+    s = summ.set_index("basis")
+    gu = s.loc["ground_up"] if "ground_up" in s.index else s.iloc[0]
+    n_years = int(gu.n_years)
+    out = [_p(f"{n_years:,} simulated years, {int(gu.n_events):,} events (source branch '{gu.source_branch}', seed "
+              f"{int(gu.seed)}, loss model: {str(gu.loss_model).replace('_', ' ')}). Ground-up: before deductibles "
+              f"and limits; net: after the per-asset policy terms.")]
+    curve = run.table("portfolio_ep_curve")
+    rps = sorted(set(ep.return_period_yr))
+    if curve is not None and len(curve):
+        out.append(_figure_html(
+            _ep_curve_figure(curve, rps, n_years, cur), "portfolio loss exceedance curves",
+            f"Figure: portfolio loss [million {cur}] against return period [yr], log x. AEP: aggregate loss of a year; "
+            f"OEP (lighter, dashed): largest single event of a year; it runs close to AEP where one event "
+            f"dominates the year's loss. Dotted lines: configured return periods. Grey: return periods "
+            f"beyond {n_years / 10:,.0f} yr, where fewer than 10 simulated years exceed the loss."))
+    rows = []
+    for basis, r in s.iterrows():
+        classical = r.get("classical_eal_same_branch", float("nan"))
+        rows.append([basis.replace("_", "-"), _cell(_money(r.aal), r.aal),
+                     _cell(_money(r.aal_standard_error), r.aal_standard_error),
+                     _cell(_pct(r.aal_standard_error / r.aal) if r.aal else "n/a",
+                           r.aal_standard_error / r.aal if r.aal else float("nan")),
+                     _cell(_money(classical), classical)])
+    out.append("<h3>Average annual loss</h3>")
+    out.append(_table(["basis", f"AAL [{cur}/yr]#", "± 1 standard error#", "relative s.e.#",
+                       f"classical EAL, same branch [{cur}/yr]#"], rows))
+    out.append("<h3>Probable maximum loss and TVaR</h3>")
+    rows = []
+    for r in ep.sort_values(["basis", "return_period_yr"], key=lambda c: c.map({"ground_up": 0, "net": 1})
+                            if c.name == "basis" else c).itertuples():
+        rows.append([r.basis.replace("_", "-"), _cell(f"{r.return_period_yr:,.0f}", r.return_period_yr),
+                     _cell(_money(r.aep_loss), r.aep_loss), _cell(_money(r.oep_loss), r.oep_loss),
+                     _cell(_money(r.tvar_loss), r.tvar_loss)])
+    out.append(_table(["basis", "return period [yr]#", f"PML, aggregate (AEP) [{cur}]#",
+                       f"PML, occurrence (OEP) [{cur}]#", f"TVaR, aggregate [{cur}]#"], rows))
+    out.append(_p("PML: the loss exceeded with annual probability 1/T (empirical order statistic of the simulated "
+                  "years). TVaR: the mean annual aggregate loss given that it exceeds the PML at T."))
+    brk = run.table("portfolio_breakdown")
+    if brk is not None and len(brk):
+        out.append("<h3>AAL by building class and by source</h3>")
+        rows = [[r.dimension.replace("_", " "), r.key, _cell(_money(r.aal_ground_up), r.aal_ground_up),
+                 _cell(_money(r.aal_net), r.aal_net)]
+                for r in brk.sort_values(["dimension", "aal_ground_up"], ascending=[True, False]).itertuples()]
+        out.append(_table(["by", "key", f"AAL ground-up [{cur}/yr]#", f"AAL net [{cur}/yr]#"], rows, sortable=True))
+    return "".join(out)
+
+
+def _section_screening(run):
+    """Section: collapse-risk screening against the target and the risk-targeted IM at the used sites.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a note when the run holds no such tables.
+    """
+    scr = run.table("collapse_screening")
+    if scr is None or not len(scr):
+        return _note("This run holds no screening table (hazard stage only).")
+    target_p, target_t = float(scr.target_prob.iloc[0]), float(scr.target_years.iloc[0])
+    flagged = scr[scr.exceeds_target].sort_values(["ratio_to_target", "asset_id"], ascending=[False, True])
+    out = [_p(f"Each asset's annual collapse rate from this run, as a probability of collapse in {target_t:g} years "
+              f"(Poisson), against the target of {_pct(target_p)} in {target_t:g} years (the risk target of "
+              f"ASCE/SEI 7-16 Chapter 21). {len(flagged)} of {len(scr)} assets exceed it.")]
+    by_class = scr.groupby("building_class").agg(n=("asset_id", "size"), over=("exceeds_target", "sum"),
+                                                 worst=("ratio_to_target", "max")).sort_values("worst", ascending=False)
+    out.append(_table(["class", "assets", "above the target", "largest ratio to target"],
+                      [[c, int(r.n), int(r.over), f"{r.worst:.2f}"] for c, r in by_class.iterrows()],
+                      caption="Buildings above the collapse-risk target, by class"))
+    shown = flagged.head(SCREENING_ROWS)
+    rows = [[r.asset_id, r.building_class, r.site_id, _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
+             _cell(_prob(r.collapse_prob_in_target_years), r.collapse_prob_in_target_years),
+             _cell(f"{r.ratio_to_target:.2f}", r.ratio_to_target)] for r in shown.itertuples()]
+    if rows:
+        out.append(_table(["asset", "class", "site", "collapse rate [1/yr]#",
+                           f"P(collapse in {target_t:g} yr)#", "ratio to target#"], rows, sortable=True,
+                          caption="Assets above the collapse-risk target, highest first" +
+                                  (f" (first {len(shown)} of {len(flagged)}; all are in collapse_screening.parquet)"
+                                   if len(flagged) > len(shown) else "")))
+    rt = run.table("site_risk_targeted_im")
+    if rt is not None and len(rt):
+        rt = rt[rt.statistic == ("mean" if "mean" in set(rt.statistic) else rt.statistic.iloc[0])]
+        used = set(run.table("asset_loss").site_id) if run.table("asset_loss") is not None else set(rt.site_id)
+        rt = rt[rt.site_id.isin(used)]
+        rows = []
+        for im, grp in rt.groupby("im", sort=True):
+            v, c = grp.risk_targeted_im_g.dropna(), grp.risk_coefficient.dropna()
+            rows.append([im, len(grp), _g(v.min()) if len(v) else "n/a", _g(v.median()) if len(v) else "n/a",
+                         _g(v.max()) if len(v) else "n/a",
+                         f"{c.min():.2f} to {c.max():.2f}" if len(c) else "n/a"])
+        out.append(_table(["IM", "sites", "risk-targeted IM, min [g]", "median [g]", "max [g]",
+                           "risk coefficient (to the 2%-in-50-yr IM)"], rows,
+                          caption="Risk-targeted IM at the sites used by the portfolio (generic collapse fragility "
+                                  "of ASCE/SEI 7-16 Section 21.2.1.2: 10% collapse probability at the IM, "
+                                  "dispersion as configured)"))
+    return "".join(out)
+
+
+def _section_whatif(run):
+    """Section: retrofit alternatives, portfolio before and after, and benefit-cost.
+
+    Parameters
+    ----------
+    run : ReportRun
+
+    Returns
+    -------
+    str
+        HTML of the section body; a note when the run holds no such tables.
+    """
+    port = run.table("whatif_portfolio")
+    bc = run.table("whatif_benefit_cost")
+    if port is None or not len(port):
+        return _note("No retrofit alternative is configured for this run ([[scenario.alternatives]]).")
+    cur = run.currency
+    out = [_p("Each alternative assigns other building classes (retrofit designs) to a set of assets and recomputes "
+              "their damage and loss with the same hazard and, for the event-based results, the same simulated "
+              "events and ground motions. Amounts per year unless stated.")]
+    for alt_id, grp in port.groupby("alternative_id", sort=False):
+        rows = []
+        for r in grp.itertuples():
+            label = r.metric.replace("_", " ") + ("" if r.basis != r.basis or not r.basis else f" ({r.basis})")
+            if r.return_period_yr == r.return_period_yr:
+                label += f", {r.return_period_yr:g} yr"
+            se = "" if r.standard_error_of_change != r.standard_error_of_change else \
+                f" (± {_money(r.standard_error_of_change)})"
+            rows.append([label, r.unit, _g(r.value_before, 4), _g(r.value_after, 4),
+                         _g(r.change, 4) + se, _pct(r.relative_change, signed=True)])
+        out.append(_table(["metric", "unit", "before", "after", "change", "relative"], rows,
+                          caption=f"Alternative '{alt_id}': portfolio before and after"))
+    if bc is not None and len(bc):
+        tot = bc[bc.scope == "alternative"]
+        rows = [[r.alternative_id, r.n_assets, _money(r.retrofit_cost), _money(r.avoided_eal),
+                 f"{r.discount_rate:.1%}, {r.benefit_horizon_yr:g} yr", _money(r.pv_avoided_loss),
+                 _money(r.net_present_value), f"{r.benefit_cost_ratio:.2f}",
+                 _prob(r.avoided_annual_collapse_prob)] for r in tot.itertuples()]
+        out.append(_table(["alternative", "assets", f"retrofit cost [{cur}]", f"avoided EAL [{cur}/yr]",
+                           "discount, horizon", f"PV of avoided loss [{cur}]", f"NPV [{cur}]",
+                           "benefit-cost ratio", "avoided annual collapse probability (sum)"], rows,
+                          caption="Benefit-cost: present value of the avoided expected annual loss over the "
+                                  "horizon (annuity factor (1 - (1 + r)^-T) / r) against the retrofit cost"))
+    return "".join(out)
