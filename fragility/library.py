@@ -32,8 +32,8 @@ from pathlib import Path
 import numpy as np
 
 from quakefolio.core.errors import InputError
-from quakefolio.core.validation import Field, Interval, Pattern, Real, Schema, Text, toml_place, validate_table
 from quakefolio.core.loss import check_damage_ratios
+from quakefolio.core.validation import Field, Interval, Pattern, Real, Schema, Text, toml_place, validate_table
 from quakefolio.fragility.models import DamageStateSet, FragilityLibrary
 
 __all__ = ["load_library", "parse_library", "FORMAT_TAG"]

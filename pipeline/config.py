@@ -9,7 +9,6 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-import re
 from dataclasses import dataclass, field, fields
 from pathlib import Path
 from types import MappingProxyType
@@ -462,14 +461,14 @@ def _branches(kind, value, base):
     quakefolio.core.validation.Invalid
         With the message; the caller adds file, line and key.
     """
-    fields, build = _BRANCH_KINDS[kind]
+    keys, build = _BRANCH_KINDS[kind]
     if not isinstance(value, list) or not value or not all(isinstance(v, dict) for v in value):
-        raise Invalid(f"expected a list of tables like {{ {fields[0]} = ..., weight = ... }}")
+        raise Invalid(f"expected a list of tables like {{ {keys[0]} = ..., weight = ... }}")
     out = []
     for i, entry in enumerate(value):
         for key in entry:
-            if key not in fields:
-                raise Invalid(f"branch {i + 1}: unknown key '{key}'{_suggest(key, fields)}")
+            if key not in keys:
+                raise Invalid(f"branch {i + 1}: unknown key '{key}'{_suggest(key, keys)}")
         out.append(build(i, entry, base))
     total = sum(b["weight"] for b in out)
     if abs(total - 1.0) > 1e-6:

@@ -79,8 +79,9 @@ class SourceModel:
 
 
 _TOP_SCHEMA = Schema({key: Field((), None) for key in _TOP})
-_POSITIVE_NUMBER = (Real(finite=True), Interval(0, None, closed="neither"))
-_NON_NEGATIVE_NUMBER = (Real(finite=True), Interval(0, None))
+_NUMBER = (Real(finite=True),)
+_POSITIVE_NUMBER = _NUMBER + (Interval(0, None, closed="neither"),)
+_NON_NEGATIVE_NUMBER = _NUMBER + (Interval(0, None),)
 #: Kind -> schema of one source table: every key required, a missing one reported at the table.
 _SOURCE_SCHEMAS = {kind: Schema({key: Field(()) for key in keys}, missing_names_key=False, missing_first=True)
                    for kind, keys in _KEYS.items()}
@@ -169,7 +170,7 @@ class _FieldError(Exception):
 
 
 def _num(value, fail, *, positive=False, non_negative=False):
-    rules = _POSITIVE_NUMBER if positive else _NON_NEGATIVE_NUMBER if non_negative else _POSITIVE_NUMBER[:1]
+    rules = _POSITIVE_NUMBER if positive else _NON_NEGATIVE_NUMBER if non_negative else _NUMBER
     number, msg = check_value(rules, value)
     if msg is not None:
         fail(msg)
