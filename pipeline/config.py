@@ -119,6 +119,11 @@ _DASK_ADDRESS = Pattern(r"^(tcp|tls|ucx|inproc)://\S+$", "expected a Dask schedu
                         "'tcp://10.0.0.5:8786' (or \"\" for a local cluster)", allow_empty=True)
 
 
+def _dask_address(v):
+    """None for ``""`` (a local cluster) or a Dask scheduler address, else what is expected (used by the CLI)."""
+    return None if _DASK_ADDRESS.holds(v) else _DASK_ADDRESS.describe()
+
+
 def _key(kind, default=REQUIRED, *checks, choices=None, help=""):
     """A :class:`~quakefolio.core.validation.Field`: type rules, then the choice set, then the checks."""
     rules = tuple(kind) + ((OneOf(choices),) if choices else ()) + tuple(checks)
