@@ -7,13 +7,15 @@ files).  Its message reads::
     demo_portfolio/exposure.csv:14: column 'replacement_value': expected a positive number, got '-3e5'
 
 This module also holds a small locator for keys in TOML text, so that semantic errors
-in TOML files (which the standard parser does not locate) can name a line.
+in TOML files (which the standard parser does not locate) can name a line, and the one
+"did you mean" hint used by every reader for misspelt names.
 """
 from __future__ import annotations
 
+import difflib
 import re
 
-__all__ = ["InputError", "locate_toml_line"]
+__all__ = ["InputError", "locate_toml_line", "closest_name", "did_you_mean"]
 
 
 class InputError(ValueError):
@@ -32,6 +34,60 @@ class InputError(ValueError):
             where += f":{self.row}"
         col = f" column '{self.column}':" if self.column is not None else ""
         return f"{where}:{col} {self.message}"
+
+
+def closest_name(name, valid, *, cutoff):
+    """The valid name nearest to ``name``, or None when none is close enough.
+
+    Parameters
+    ----------
+    name : str
+        The name the user wrote.
+    valid : iterable of str
+        The accepted names, in the order used to break ties.
+    cutoff : float
+        Similarity in [0, 1] below which a valid name is not offered.
+
+    Returns
+    -------
+    str or None
+        The best match by :func:`difflib.get_close_matches` (Ratcliff-Obershelp
+        similarity), or None.
+    """
+    close = difflib.get_close_matches(name, list(valid), n=1, cutoff=cutoff)
+    return close[0] if close else None
+
+
+def did_you_mean(name, valid, *, cutoff, otherwise="", skip=(), quote="'"):
+    """The hint appended to an "unknown name" message: ``"; did you mean 'x'?"``.
+
+    Parameters
+    ----------
+    name : str
+        The unknown name.
+    valid : iterable of str
+        The accepted names.
+    cutoff : float
+        Similarity in [0, 1] below which no name is offered (see :func:`closest_name`).
+    otherwise : str
+        Text returned when no valid name is close enough (e.g. ``"; valid: a, b"``).
+    skip : collection of str
+        Names that give no hint when they are the closest match (e.g. columns that are
+        already present, so the unknown one is not a misspelling of them); ``otherwise``
+        is returned then.
+    quote : {"'", "repr"}
+        How the suggestion is quoted: in single quotes, or as ``repr(name)``.
+
+    Returns
+    -------
+    str
+        The hint, starting with ``"; "``, or ``otherwise``.
+    """
+    close = closest_name(name, valid, cutoff=cutoff)
+    if close is None or close in skip:
+        return otherwise
+    shown = repr(close) if quote == "repr" else f"'{close}'"
+    return f"; did you mean {shown}?"
 
 
 _HEADER = re.compile(r"^\s*\[\[?\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")

@@ -271,148 +271,13 @@ def _report(args):
     return 0
 
 
-_FIT_COLUMNS = {"im": False, "n_records": False, "n_exceed": False, "im_at_failure": False, "im_max": False}
-_MSA_COLUMNS = ("im", "n_records", "n_exceed")
-
-
-def _read_fit_data(path, method, im_max):
-    """Validated arrays of a fit-fragility DATA file as ``(method, keyword arguments of the fitting function)``."""
-    import numpy as np
-
-    from quakefolio.core.errors import InputError
-    from quakefolio.pipeline.ingest import _numbers, read_table
-
-    frame, rows = read_table(path, _FIT_COLUMNS)
-    cols = set(frame.columns)
-    has_msa = [c for c in _MSA_COLUMNS if c in cols]
-    if method is None:
-        if has_msa and "im_at_failure" in cols:
-            raise InputError(path, f"holds both multiple-stripe columns ({', '.join(has_msa)}) and im_at_failure; "
-                                   "choose with --method", row=1, column="im_at_failure")
-        if not has_msa and "im_at_failure" not in cols:
-            raise InputError(path, "cannot tell the kind of results: expected columns im, n_records, n_exceed "
-                                   "(multiple-stripe analysis) or im_at_failure (IDA)", row=1)
-        method = "msa" if has_msa else None
-    if method == "msa":
-        for col in _MSA_COLUMNS:
-            if col not in cols:
-                raise InputError(path, "missing required column", row=1, column=col)
-        if im_max is not None:
-            raise InputError(path, "--im-max applies to truncated IDA results, not to multiple-stripe results")
-        im = _numbers(frame, rows, path, "im", positive=True)
-        n_records = _numbers(frame, rows, path, "n_records", positive=True, integer=True)
-        n_exceed = _numbers(frame, rows, path, "n_exceed", non_negative=True, integer=True)
-        over = n_exceed > n_records
-        if over.any():
-            i = int(np.argmax(over))
-            raise InputError(path, f"n_exceed ({n_exceed[i]:g}) is larger than n_records ({n_records[i]:g})",
-                             row=int(rows[i]), column="n_exceed")
-        return "msa", {"im": im, "n_records": n_records, "n_exceed": n_exceed}
-    if "im_at_failure" not in cols:
-        raise InputError(path, "missing required column", row=1, column="im_at_failure")
-    failure = _numbers(frame, rows, path, "im_at_failure", required=False, positive=True)
-    standing = np.isnan(failure)
-    if method is None:
-        method = "ida-truncated" if standing.any() or im_max is not None or "im_max" in cols else "ida"
-    if method == "ida":
-        if im_max is not None:
-            raise InputError(path, "--im-max applies to truncated IDA results; use --method ida-truncated")
-        if standing.any():
-            raise InputError(path, "missing value: a record that did not fail needs --method ida-truncated with "
-                                   "--im-max X or a column im_max", row=int(rows[np.argmax(standing)]),
-                             column="im_at_failure")
-        return "ida", {"im_at_failure": failure}
-    if im_max is not None and "im_max" in cols:
-        raise InputError(path, "give the largest IM run either as --im-max or as this column, not both", row=1,
-                         column="im_max")
-    if im_max is None and "im_max" not in cols:
-        raise InputError(path, "truncated IDA needs the largest IM run of the records that did not fail: give "
-                               "--im-max X or a column im_max", row=1, column="im_at_failure")
-    if im_max is not None:
-        cap = np.full(failure.shape, float(im_max))
-    else:
-        cap = _numbers(frame, rows, path, "im_max", required=False, positive=True)
-        missing = standing & np.isnan(cap)
-        if missing.any():
-            raise InputError(path, "missing value: this record did not fail, so it needs its largest IM run",
-                             row=int(rows[np.argmax(missing)]), column="im_max")
-        cap = np.where(np.isnan(cap), failure, cap)
-    above = ~standing & (failure > cap)
-    if above.any():
-        i = int(np.argmax(above))
-        raise InputError(path, f"failure at {failure[i]:g} g lies above the largest IM run {cap[i]:g} g",
-                         row=int(rows[i]), column="im_at_failure")
-    return "ida-truncated", {"im_at_failure": failure, "im_max": cap}
-
-
-def _write_fitted_state(args, fit):
-    """Add or replace ``--state`` of ``--class`` in the ``--write-library`` file; returns lines to print."""
-    import os
-    import stat
-    import tempfile
-    import tomllib
-
-    from quakefolio.core.errors import InputError
-    from quakefolio.fragility.fitting import library_to_toml, set_damage_state
-    from quakefolio.fragility.library import FORMAT_TAG, load_library, parse_library, read_toml
-
-    path = Path(args.write_library)
-    if path.exists():
-        text, data, _ = read_toml(path)
-        parse_library(data, text=text, path=str(path))  # never rewrite a library that is already invalid
-    elif not path.parent.is_dir():
-        raise InputError(path, f"folder {str(path.parent)!r} does not exist")
-    else:
-        text, data = "# quakefolio fragility library\n", {"format": FORMAT_TAG, "classes": {}}
-    try:
-        new, notes = set_damage_state(data, args.class_code, args.state, fit.median, fit.beta_total,
-                                      mean_damage_ratio=args.mean_damage_ratio, cov=args.cov, im=args.im)
-    except ValueError as exc:
-        raise InputError(path, str(exc), column=f"classes.{args.class_code}") from None
-    tag = f"# fit-fragility: classes.{args.class_code} state {args.state!r}"
-    header = []
-    for line in text.splitlines():
-        if line.strip() and not line.startswith("#"):
-            break
-        if not line.startswith(tag):
-            header.append(line)
-    while header and not header[-1].strip():
-        header.pop()
-    header.append(f"{tag} fitted to {Path(args.data).name!r} ({fit.method}, n = {fit.n}; beta is beta_total)")
-    new_text = library_to_toml(new, header="\n".join(header))
-    try:  # validate before replacing anything; line numbers of the unwritten text would mislead, so none are given
-        parse_library(tomllib.loads(new_text), text=new_text, path=str(path))
-    except InputError as exc:
-        raise InputError(path, f"refused, the updated library would be invalid: {exc.message}",
-                         column=exc.column) from None
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(new_text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        if path.exists():
-            os.chmod(tmp, stat.S_IMODE(path.stat().st_mode))
-        else:
-            mask = os.umask(0)
-            os.umask(mask)
-            os.chmod(tmp, 0o666 & ~mask)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-    load_library(path)  # the file as written loads in our format
-    state = next(s for s in new["classes"][args.class_code]["states"] if s["name"] == args.state)
-    return [f"wrote {path}: class {args.class_code!r}, state {args.state!r}: median {state['median']:g} g, "
-            f"beta {state['beta']:g} (beta_total)"] + [f"note: {n}" for n in notes]
-
-
 def _fit_fragility(args):
     import json
 
     from quakefolio.core.errors import InputError
     from quakefolio.fragility import fitting
     from quakefolio.pipeline.caution import CAUTION
+    from quakefolio.pipeline.fit_io import read_fit_data, write_fitted_state
 
     if args.write_library:
         missing = [opt for opt, v in (("--class", args.class_code), ("--state", args.state)) if not v]
@@ -426,7 +291,7 @@ def _fit_fragility(args):
         if given:
             print(f"error: fit-fragility: {', '.join(given)} only apply with --write-library FILE", file=sys.stderr)
             return EXIT_USER_ERROR
-    method, data = _read_fit_data(args.data, args.method, args.im_max)
+    method, data = read_fit_data(args.data, args.method, args.im_max)
     fitter = {"msa": fitting.fit_msa, "ida": fitting.fit_ida, "ida-truncated": fitting.fit_ida_truncated}[method]
     try:
         fit = fitter(**data, beta_extra=args.extra_beta)
@@ -439,7 +304,9 @@ def _fit_fragility(args):
         print(CAUTION)
         print("\n".join(fit.summary_lines(source=args.data)))
     if args.write_library:
-        print("\n".join(_write_fitted_state(args, fit)), file=sys.stderr if args.json else sys.stdout)
+        lines = write_fitted_state(args.write_library, args.class_code, args.state, fit, data_path=args.data,
+                                   mean_damage_ratio=args.mean_damage_ratio, cov=args.cov, im=args.im)
+        print("\n".join(lines), file=sys.stderr if args.json else sys.stdout)
     return 0
 
 

@@ -6,87 +6,128 @@ names the file, the line and the key.  Paths are resolved relative to the config
 """
 from __future__ import annotations
 
-import difflib
 import hashlib
 import json
 import math
-import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
+from types import MappingProxyType
 
-from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.errors import InputError, did_you_mean, locate_toml_line
 from quakefolio.core.ims import parse_im
+from quakefolio.core.validation import (
+    REQUIRED, Boolean, Constraint, Field, Integer, Interval, Invalid, ListOf, OneOf, Pattern, Real, Rule, Schema, Text,
+    check_value, toml_place, validate_table,
+)
 from quakefolio.fragility.library import read_toml
 
-__all__ = ["Config", "load_config", "SCHEMA", "IM_UNITS_TO_G", "resolve_execution"]
+__all__ = ["Config", "load_config", "SCHEMA", "IM_UNITS_TO_G", "resolve_execution", "sha256_file", "DEFAULT_LEVELS_G",
+           "SETTINGS_CLASSES", "ScenarioSettings", "ScreeningSettings", "HazardSettings", "PortfolioSettings",
+           "ExposureSettings", "FragilitySettings", "OutputSettings", "ExecutionSettings"]
 
 #: Conversion factors from accepted IM-level units to g (standard gravity 9.80665 m/s2,
 #: CGPM 1901 / ISO 80000-3).
 IM_UNITS_TO_G = {"g": 1.0, "m/s2": 1.0 / 9.80665, "cm/s2": 1.0 / 980.665}
 
 
-class _Key:
-    """One config key: expected kind, default (``REQUIRED`` if none) and a check."""
-
-    REQUIRED = object()
-
-    def __init__(self, kind, default=REQUIRED, check=None, choices=None, help=""):
-        self.kind, self.default, self.check, self.choices, self.help = kind, default, check, choices, help
+def _positive_or_none(value):
+    return value == "none" or (not isinstance(value, bool) and isinstance(value, (int, float)) and value > 0
+                               and math.isfinite(value))
 
 
-def _positive(v):
-    return None if v > 0 else "expected a positive number"
+class _PositiveOrNone(Rule):
+    """A positive finite number, or the string ``"none"`` (converted to None)."""
+
+    def __init__(self):
+        super().__init__(_positive_or_none, "expected a positive number or \"none\"")
+
+    def convert(self, value, context):
+        return None if value == "none" else float(value)
 
 
-def _positive_int(v):
-    return None if v >= 1 else "expected an integer >= 1"
+class _IMNames(Rule):
+    """A list of IM names, converted to their canonical spelling (``parse_im``)."""
+
+    def __init__(self):
+        super().__init__(lambda v: isinstance(v, list) and all(isinstance(x, str) for x in v),
+                         "expected a list of IM names")
+
+    def convert(self, value, context):
+        out = []
+        for v in value:
+            try:
+                out.append(parse_im(v))
+            except ValueError as exc:
+                raise Invalid(str(exc)) from None
+        return out
 
 
-def _return_periods(v):
-    if not v:
-        return "expected at least one return period"
-    if any(x <= 1 for x in v):
-        return "return periods must be greater than 1 yr"
-    if sorted(set(v)) != list(v):
-        return "return periods must be strictly increasing"
-    return None
+def _resolve(value, base):
+    p = Path(value)
+    return (p if p.is_absolute() else base / p).resolve()
 
 
-def _ratios(v):
-    if len(v) < 2 or any(not 0 <= x <= 1 for x in v) or sorted(set(v)) != list(v):
-        return "expected at least 2 strictly increasing loss ratios in [0, 1]"
-    return None
+class _ResolvedPath(Rule):
+    """A path without NUL bytes, resolved against the config file's folder (``context["base"]``)."""
+
+    def __init__(self, message="path contains a NUL byte", test=lambda v: "\x00" not in v, show_value=False):
+        super().__init__(test, message, show_value=show_value)
+
+    def convert(self, value, context):
+        return _resolve(value, context["base"])
 
 
-def _probability(v):
-    return None if 0 < v < 1 else "expected a probability in (0, 1)"
+class _Branches(Constraint):
+    """Logic-tree branches (``"source_branches"`` or ``"gmm_branches"``), checked by :func:`_branches`."""
+
+    def __init__(self, kind):
+        super().__init__()
+        self.kind = kind
+
+    def holds(self, value):
+        return True
+
+    def convert(self, value, context):
+        return _branches(self.kind, value, context["base"])
 
 
-def _non_negative(v):
-    return None if v >= 0 else "expected a non-negative number"
-
-
-def _discount_rate(v):
-    return None if 0 <= v < 1 else "expected a discount rate in [0, 1)"
-
-
-def _quantiles(v):
-    if any(not 0 < q < 1 for q in v) or sorted(set(v)) != list(v):
-        return "expected strictly increasing probabilities in (0, 1)"
-    return None
+_STR = (Text(),)
+_BOOL = (Boolean(),)
+_INT = (Integer(),)
+_FLOAT = (Real(finite=True),)
+_FLOATS = (ListOf(Real(), "expected a list of numbers"),
+           ListOf(Real(finite=True), "expected finite numbers", show_value=False))
+_PATH = (Text("expected a file path string", non_empty=True), _ResolvedPath())
+_POSITIVE = Interval(0, None, closed="neither")
+_NON_NEGATIVE = Interval(0, None)
+_POSITIVE_INT = Interval(1, None, message="expected an integer >= 1")
+_PROBABILITY = Interval(0, 1, closed="neither", message="expected a probability in (0, 1)")
+_DISCOUNT_RATE = Interval(0, 1, closed="left", message="expected a discount rate in [0, 1)")
+_RETURN_PERIODS = (ListOf(message="expected at least one return period", min_len=1),
+                   ListOf(Interval(1, None, closed="neither"), "return periods must be greater than 1 yr"),
+                   ListOf(message="return periods must be strictly increasing", increasing=True))
+_RATIOS = ListOf(Interval(0, 1), "expected at least 2 strictly increasing loss ratios in [0, 1]", min_len=2,
+                 increasing=True)
+_QUANTILES = ListOf(Interval(0, 1, closed="neither"), "expected strictly increasing probabilities in (0, 1)",
+                    increasing=True)
+_LEVELS = ListOf(_POSITIVE, "expected at least 2 strictly increasing positive levels", min_len=2, increasing=True)
+#: Entries are checked with their lines by _alternatives.
+_ALTERNATIVE_LIST = (ListOf(Rule(lambda v: isinstance(v, dict), "a table"),
+                            "expected [[scenario.alternatives]] tables", show_value=False),)
+#: An empty string (start a local cluster) or a Dask scheduler address such as ``tcp://10.0.0.5:8786``.
+_DASK_ADDRESS = Pattern(r"^(tcp|tls|ucx|inproc)://\S+$", "expected a Dask scheduler address such as "
+                        "'tcp://10.0.0.5:8786' (or \"\" for a local cluster)", allow_empty=True)
 
 
 def _dask_address(v):
-    """An empty string (start a local cluster) or a Dask scheduler address such as ``tcp://10.0.0.5:8786``."""
-    if not v or re.match(r"^(tcp|tls|ucx|inproc)://\S+$", v):
-        return None
-    return "expected a Dask scheduler address such as 'tcp://10.0.0.5:8786' (or \"\" for a local cluster)"
+    """None for ``""`` (a local cluster) or a Dask scheduler address, else what is expected (used by the CLI)."""
+    return None if _DASK_ADDRESS.holds(v) else _DASK_ADDRESS.describe()
 
 
-def _levels(v):
-    if len(v) < 2 or any(x <= 0 for x in v) or sorted(set(v)) != list(v):
-        return "expected at least 2 strictly increasing positive levels"
-    return None
+def _key(kind, default=REQUIRED, *checks, choices=None, help=""):
+    """A :class:`~quakefolio.core.validation.Field`: type rules, then the choice set, then the checks."""
+    rules = tuple(kind) + ((OneOf(choices),) if choices else ()) + tuple(checks)
+    return Field(rules, default, help)
 
 
 #: Default IM level grid for computed hazard [g]: 40 levels log-spaced from 5e-4 to 4 g.
@@ -95,85 +136,235 @@ DEFAULT_LEVELS_G = [float(f"{5e-4 * (4.0 / 5e-4) ** (i / 39):.6g}") for i in ran
 
 SCHEMA = {
     "scenario": {
-        "name": _Key(str),
-        "description": _Key(str, ""),
-        "currency": _Key(str, "USD"),
-        "horizon_yr": _Key(float, 50.0, _positive, help="exposure period for N-year probabilities [yr]"),
-        "alternatives": _Key("alternatives", [], help="retrofit what-if: [[scenario.alternatives]] tables"),
-        "discount_rate": _Key(float, 0.03, _discount_rate, help="annual discount rate of avoided losses [-]"),
-        "benefit_horizon_yr": _Key(float, 50.0, _positive, help="years over which avoided losses count [yr]"),
+        "name": _key(_STR),
+        "description": _key(_STR, ""),
+        "currency": _key(_STR, "USD"),
+        "horizon_yr": _key(_FLOAT, 50.0, _POSITIVE, help="exposure period for N-year probabilities [yr]"),
+        "alternatives": _key(_ALTERNATIVE_LIST, [], help="retrofit what-if: [[scenario.alternatives]] tables"),
+        "discount_rate": _key(_FLOAT, 0.03, _DISCOUNT_RATE, help="annual discount rate of avoided losses [-]"),
+        "benefit_horizon_yr": _key(_FLOAT, 50.0, _POSITIVE, help="years over which avoided losses count [yr]"),
     },
     "screening": {
-        "collapse_target_prob": _Key(float, 0.01, _probability, help="target collapse probability [-]"),
-        "collapse_target_years": _Key(float, 50.0, _positive, help="period of the target probability [yr]"),
-        "rt_beta": _Key(float, 0.6, _positive, help="dispersion of the generic collapse fragility [-]"),
-        "rt_prob_at_im": _Key(float, 0.10, _probability,
+        "collapse_target_prob": _key(_FLOAT, 0.01, _PROBABILITY, help="target collapse probability [-]"),
+        "collapse_target_years": _key(_FLOAT, 50.0, _POSITIVE, help="period of the target probability [yr]"),
+        "rt_beta": _key(_FLOAT, 0.6, _POSITIVE, help="dispersion of the generic collapse fragility [-]"),
+        "rt_prob_at_im": _key(_FLOAT, 0.10, _PROBABILITY,
                               help="collapse probability of the generic fragility at the risk-targeted IM [-]"),
     },
     "hazard": {
-        "mode": _Key(str, choices=("ingest", "compute")),
-        "curves_file": _Key("path", None),
-        "im_unit": _Key(str, "g", choices=tuple(IM_UNITS_TO_G)),
-        "statistic": _Key(str, "mean"),
-        "return_periods_yr": _Key("floats", [100.0, 475.0, 2475.0], _return_periods),
-        "rate_floor": _Key(float, 1e-6, _positive, help="rates below are not reported as design values [1/yr]"),
-        "max_site_distance_km": _Key(float, 5.0, _positive),
-        "period_interpolation": _Key(bool, True),
-        "source_models": _Key("source_branches", None, help="compute mode: [{file, weight, id}]"),
-        "gmm_branches": _Key("gmm_branches", None, help="compute mode: [{model, weight}]"),
-        "truncation_sigma": _Key("float_or_none", 3.0, help="residual truncation [sigma] or \"none\""),
-        "integration_distance_km": _Key(float, 200.0, _positive),
-        "ims": _Key("ims", [], help="IMs to compute besides those the fragility library needs"),
-        "im_levels_g": _Key("floats", DEFAULT_LEVELS_G, _levels),
-        "fractiles": _Key("floats", [0.16, 0.5, 0.84], _quantiles),
-        "site_spacing_km": _Key(float, 0.0, _non_negative, help="0: a site per unique asset location"),
-        "default_vs30_mps": _Key(float, 760.0, _positive),
-        "region": _Key(str, "global"),
-        "disaggregation": _Key(bool, True),
-        "propagate_branches": _Key(bool, False, help="also give damage and EAL fractiles over branches"),
+        "mode": _key(_STR, choices=("ingest", "compute")),
+        "curves_file": _key(_PATH, None),
+        "im_unit": _key(_STR, "g", choices=tuple(IM_UNITS_TO_G)),
+        "statistic": _key(_STR, "mean"),
+        "return_periods_yr": _key(_FLOATS, [100.0, 475.0, 2475.0], *_RETURN_PERIODS),
+        "rate_floor": _key(_FLOAT, 1e-6, _POSITIVE, help="rates below are not reported as design values [1/yr]"),
+        "max_site_distance_km": _key(_FLOAT, 5.0, _POSITIVE),
+        "period_interpolation": _key(_BOOL, True),
+        "source_models": _key((_Branches("source_branches"),), None, help="compute mode: [{file, weight, id}]"),
+        "gmm_branches": _key((_Branches("gmm_branches"),), None, help="compute mode: [{model, weight}]"),
+        "truncation_sigma": _key((_PositiveOrNone(),), 3.0, help="residual truncation [sigma] or \"none\""),
+        "integration_distance_km": _key(_FLOAT, 200.0, _POSITIVE),
+        "ims": _key((_IMNames(),), [], help="IMs to compute besides those the fragility library needs"),
+        "im_levels_g": _key(_FLOATS, DEFAULT_LEVELS_G, _LEVELS),
+        "fractiles": _key(_FLOATS, [0.16, 0.5, 0.84], _QUANTILES),
+        "site_spacing_km": _key(_FLOAT, 0.0, _NON_NEGATIVE, help="0: a site per unique asset location"),
+        "default_vs30_mps": _key(_FLOAT, 760.0, _POSITIVE),
+        "region": _key(_STR, "global"),
+        "disaggregation": _key(_BOOL, True),
+        "propagate_branches": _key(_BOOL, False, help="also give damage and EAL fractiles over branches"),
     },
     "portfolio": {
-        "event_based": _Key(bool, None, help="event-based portfolio loss (default: on in compute mode)"),
-        "years": _Key(int, 10000, _positive_int, help="simulated years"),
-        "seed": _Key(int, 20261201, _non_negative, help="seed of every random draw"),
-        "source_branch": _Key(str, "", help="source-model branch of the event set (default: highest weight)"),
-        "spatial_correlation": _Key(bool, True),
-        "cross_im_correlation": _Key(bool, True),
-        "vs30_clustering": _Key(bool, False, help="Jayaram & Baker (2009) case with Vs30 clustering"),
-        "loss_model": _Key(str, "mean_damage_ratio", choices=("mean_damage_ratio", "sampled_damage")),
-        "return_periods_yr": _Key("floats", [100.0, 250.0, 475.0, 2475.0], _return_periods),
+        "event_based": _key(_BOOL, None, help="event-based portfolio loss (default: on in compute mode)"),
+        "years": _key(_INT, 10000, _POSITIVE_INT, help="simulated years"),
+        "seed": _key(_INT, 20261201, _NON_NEGATIVE, help="seed of every random draw"),
+        "source_branch": _key(_STR, "", help="source-model branch of the event set (default: highest weight)"),
+        "spatial_correlation": _key(_BOOL, True),
+        "cross_im_correlation": _key(_BOOL, True),
+        "vs30_clustering": _key(_BOOL, False, help="Jayaram & Baker (2009) case with Vs30 clustering"),
+        "loss_model": _key(_STR, "mean_damage_ratio", choices=("mean_damage_ratio", "sampled_damage")),
+        "return_periods_yr": _key(_FLOATS, [100.0, 250.0, 475.0, 2475.0], *_RETURN_PERIODS),
     },
     "exposure": {
-        "file": _Key("path"),
+        "file": _key(_PATH),
     },
     "fragility": {
-        "library": _Key("path"),
-        "crossing": _Key(str, "reject", choices=("reject", "envelope")),
-        "tail": _Key(str, "extrapolate", choices=("extrapolate", "truncate")),
-        "tail_share_warning": _Key(float, 0.05, _probability),
+        "library": _key(_PATH),
+        "crossing": _key(_STR, "reject", choices=("reject", "envelope")),
+        "tail": _key(_STR, "extrapolate", choices=("extrapolate", "truncate")),
+        "tail_share_warning": _key(_FLOAT, 0.05, _PROBABILITY),
     },
     "output": {
-        "folder": _Key("path", "output"),
-        "loss_curve_ratios": _Key("floats", [0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5,
-                                             0.6, 0.7, 0.8, 0.9, 0.95, 0.99], _ratios),
-        "top_assets": _Key(int, 10, _positive_int),
-        "report": _Key(bool, True, help="write report.html into the run folder"),
+        "folder": _key(_PATH, "output"),
+        "loss_curve_ratios": _key(_FLOATS, [0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5,
+                                             0.6, 0.7, 0.8, 0.9, 0.95, 0.99], _RATIOS),
+        "top_assets": _key(_INT, 10, _POSITIVE_INT),
+        "report": _key(_BOOL, True, help="write report.html into the run folder"),
     },
     "execution": {
-        "backend": _Key(str, "local", choices=("local", "dask")),
-        "address": _Key(str, "", _dask_address, help="Dask scheduler, e.g. tcp://10.0.0.5:8786"),
-        "max_workers": _Key(int, 2, _positive_int),
-        "block_size": _Key(int, 20000, _positive_int, help="(site, class) pairs per task"),
-        "site_block_size": _Key(int, 64, _positive_int, help="hazard sites per task"),
-        "event_block_size": _Key(int, 1024, _positive_int, help="events per task (whole blocks of 256)"),
-        "cache": _Key(bool, True, help="reuse stage results whose inputs did not change"),
+        "backend": _key(_STR, "local", choices=("local", "dask")),
+        "address": _key(_STR, "", _DASK_ADDRESS, help="Dask scheduler, e.g. tcp://10.0.0.5:8786"),
+        "max_workers": _key(_INT, 2, _POSITIVE_INT),
+        "block_size": _key(_INT, 20000, _POSITIVE_INT, help="(site, class) pairs per task"),
+        "site_block_size": _key(_INT, 64, _POSITIVE_INT, help="hazard sites per task"),
+        "event_block_size": _key(_INT, 1024, _POSITIVE_INT, help="events per task (whole blocks of 256)"),
+        "cache": _key(_BOOL, True, help="reuse stage results whose inputs did not change"),
     },
 }
 
 
+def _frozen(value):
+    """Lists as tuples and tables as read-only mappings, recursively."""
+    if isinstance(value, list):
+        return tuple(_frozen(v) for v in value)
+    if isinstance(value, dict):
+        return MappingProxyType({k: _frozen(v) for k, v in value.items()})
+    return value
+
+
+class _Section:
+    """Shared constructor of the frozen settings classes."""
+
+    @classmethod
+    def from_mapping(cls, values):
+        """The settings object of one resolved section.
+
+        Parameters
+        ----------
+        values : dict
+            ``Config.sections[section]``.
+
+        Returns
+        -------
+        The settings object; lists become tuples and tables read-only mappings.
+        """
+        return cls(**{f.name: _frozen(values[f.name]) for f in fields(cls)})
+
+
+@dataclass(frozen=True)
+class ScenarioSettings(_Section):
+    """``[scenario]``: what is assessed and how retrofit benefits are counted."""
+
+    name: str  #: title of the scenario
+    description: str  #: free text
+    currency: str  #: currency of every money amount (e.g. ``"USD"``)
+    horizon_yr: float  #: exposure period of N-year probabilities [yr]
+    alternatives: tuple  #: retrofit what-if alternatives (read-only mappings, keys of ALTERNATIVE_KEYS)
+    discount_rate: float  #: annual discount rate of avoided losses [-]
+    benefit_horizon_yr: float  #: years over which avoided losses count [yr]
+
+
+@dataclass(frozen=True)
+class ScreeningSettings(_Section):
+    """``[screening]``: collapse-risk target and the generic fragility of the risk-targeted IM."""
+
+    collapse_target_prob: float  #: target collapse probability [-]
+    collapse_target_years: float  #: period of the target probability [yr]
+    rt_beta: float  #: dispersion of the generic collapse fragility [-]
+    rt_prob_at_im: float  #: collapse probability of the generic fragility at the risk-targeted IM [-]
+
+
+@dataclass(frozen=True)
+class HazardSettings(_Section):
+    """``[hazard]``: ingested or computed site hazard."""
+
+    mode: str  #: ``"ingest"`` or ``"compute"``
+    curves_file: Path | None  #: tabulated hazard curves (ingest mode), resolved path
+    im_unit: str  #: unit of the tabulated IM levels: ``"g"``, ``"m/s2"`` or ``"cm/s2"``
+    statistic: str  #: statistic of the tabulated curves used (e.g. ``"mean"``)
+    return_periods_yr: tuple  #: return periods of the design values [yr]
+    rate_floor: float  #: rates below are not reported as design values [1/yr]
+    max_site_distance_km: float  #: largest asset-to-site distance [km]
+    period_interpolation: bool  #: interpolate curves across periods for untabulated IMs
+    source_models: tuple | None  #: source-model branches ``{file, weight, id}`` (compute mode)
+    gmm_branches: tuple | None  #: ground-motion model branches ``{model, weight, id}`` (compute mode)
+    truncation_sigma: float | None  #: residual truncation [sigma], None for no truncation
+    integration_distance_km: float  #: site-rupture distance cut-off [km]
+    ims: tuple  #: IMs computed besides those the fragility library needs
+    im_levels_g: tuple  #: IM level grid of computed curves [g]
+    fractiles: tuple  #: logic-tree fractiles [-]
+    site_spacing_km: float  #: grid spacing of hazard sites [km], 0 for a site per asset location
+    default_vs30_mps: float  #: Vs30 of assets without one [m/s]
+    region: str  #: ground-motion model region
+    disaggregation: bool  #: compute the disaggregation table
+    propagate_branches: bool  #: also give damage and EAL fractiles over branches
+
+
+@dataclass(frozen=True)
+class PortfolioSettings(_Section):
+    """``[portfolio]``: the event-based portfolio simulation."""
+
+    event_based: bool  #: simulate events (default: on in compute mode)
+    years: int  #: simulated years [yr]
+    seed: int  #: seed of every random draw
+    source_branch: str  #: source-model branch of the event set ("" for the highest weight)
+    spatial_correlation: bool  #: spatially correlated within-event residuals
+    cross_im_correlation: bool  #: correlated residuals across IMs
+    vs30_clustering: bool  #: correlation model with Vs30 clustering
+    loss_model: str  #: ``"mean_damage_ratio"`` or ``"sampled_damage"``
+    return_periods_yr: tuple  #: return periods of PML and TVaR [yr]
+
+
+@dataclass(frozen=True)
+class ExposureSettings(_Section):
+    """``[exposure]``: the asset file."""
+
+    file: Path  #: exposure table (CSV or Parquet), resolved path
+
+
+@dataclass(frozen=True)
+class FragilitySettings(_Section):
+    """``[fragility]``: the library and how its curves are used."""
+
+    library: Path  #: fragility library file (TOML), resolved path
+    crossing: str  #: ``"reject"`` or ``"envelope"`` for crossing damage-state curves
+    tail: str  #: ``"extrapolate"`` or ``"truncate"`` beyond the tabulated hazard
+    tail_share_warning: float  #: share of a damage-state rate from the tails that warns [-]
+
+
+@dataclass(frozen=True)
+class OutputSettings(_Section):
+    """``[output]``: where and what is written."""
+
+    folder: Path  #: output folder, resolved path
+    loss_curve_ratios: tuple  #: loss ratios of the per-asset loss curves [-]
+    top_assets: int  #: assets listed in the summary
+    report: bool  #: write report.html into the run folder
+
+
+@dataclass(frozen=True)
+class ExecutionSettings(_Section):
+    """``[execution]``: where and in which chunks the work runs."""
+
+    backend: str  #: ``"local"`` or ``"dask"``
+    address: str  #: Dask scheduler address ("" for a local cluster)
+    max_workers: int  #: worker threads of the local backend
+    block_size: int  #: (site, class) pairs per task
+    site_block_size: int  #: hazard sites per task
+    event_block_size: int  #: events per task (whole blocks of 256)
+    cache: bool  #: reuse stage results whose inputs did not change
+
+
+#: Section name -> its frozen settings class.
+SETTINGS_CLASSES = {"scenario": ScenarioSettings, "screening": ScreeningSettings, "hazard": HazardSettings,
+                    "portfolio": PortfolioSettings, "exposure": ExposureSettings, "fragility": FragilitySettings,
+                    "output": OutputSettings, "execution": ExecutionSettings}
+
+
+#: One :class:`~quakefolio.core.validation.Schema` per section: how its keys are checked and reported.
+SECTION_SCHEMAS = {sec: Schema(fields, cutoff=0.5, valid_label="valid",
+                               missing="missing required key '{key}' in [" + sec + "]")
+                   for sec, fields in SCHEMA.items()}
+
+
 @dataclass
 class Config:
-    """Resolved run configuration: ``sections[section][key]`` plus provenance."""
+    """Resolved run configuration: ``sections[section][key]`` plus provenance.
+
+    Each section is also available as a frozen settings object with typed attributes:
+    ``cfg.hazard.mode``, ``cfg.portfolio.years``, ``cfg.execution.block_size`` (see
+    :class:`HazardSettings` and the other ``*Settings`` classes).  The attribute view is
+    built from ``sections`` on access, so both views always agree.
+    """
 
     path: Path
     sections: dict
@@ -191,118 +382,167 @@ class Config:
         """JSON-serialisable resolved config (paths as strings)."""
         return json.loads(json.dumps(self.sections, default=str))
 
+    def settings(self, section):
+        """The frozen settings object of ``section`` (e.g. ``"hazard"``).
+
+        Parameters
+        ----------
+        section : str
+            A section name of :data:`SCHEMA`.
+
+        Returns
+        -------
+        ScenarioSettings, ScreeningSettings, HazardSettings, PortfolioSettings,
+        ExposureSettings, FragilitySettings, OutputSettings or ExecutionSettings
+        """
+        return SETTINGS_CLASSES[section].from_mapping(self.sections[section])
+
+    scenario = property(lambda self: self.settings("scenario"), doc="[scenario] as ScenarioSettings")
+    screening = property(lambda self: self.settings("screening"), doc="[screening] as ScreeningSettings")
+    hazard = property(lambda self: self.settings("hazard"), doc="[hazard] as HazardSettings")
+    portfolio = property(lambda self: self.settings("portfolio"), doc="[portfolio] as PortfolioSettings")
+    exposure = property(lambda self: self.settings("exposure"), doc="[exposure] as ExposureSettings")
+    fragility = property(lambda self: self.settings("fragility"), doc="[fragility] as FragilitySettings")
+    output = property(lambda self: self.settings("output"), doc="[output] as OutputSettings")
+    execution = property(lambda self: self.settings("execution"), doc="[execution] as ExecutionSettings")
+
 
 def _suggest(name, valid):
-    close = difflib.get_close_matches(name, list(valid), n=1, cutoff=0.5)
-    if close:
-        return f"; did you mean '{close[0]}'?"
-    return f"; valid: {', '.join(valid)}"
+    return did_you_mean(name, valid, cutoff=0.5, otherwise=f"; valid: {', '.join(valid)}")
 
 
-def _coerce(spec, value, path, row, column, base):
-    def fail(msg):
-        raise InputError(path, msg, row=row, column=column)
-
-    kind = spec.kind
-    if kind is str:
-        if not isinstance(value, str):
-            fail(f"expected a string, got {value!r}")
-        if spec.choices and value not in spec.choices:
-            fail(f"expected one of {', '.join(repr(c) for c in spec.choices)}, got {value!r}")
-        return value
-    if kind is bool:
-        if not isinstance(value, bool):
-            fail(f"expected true or false, got {value!r}")
-        return value
-    if kind is int:
-        if isinstance(value, bool) or not isinstance(value, int):
-            fail(f"expected an integer, got {value!r}")
-        return value
-    if kind is float:
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-            fail(f"expected a finite number, got {value!r}")
-        return float(value)
-    if kind == "floats":
-        if not isinstance(value, list) or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in value):
-            fail(f"expected a list of numbers, got {value!r}")
-        if any(not math.isfinite(v) for v in value):
-            fail("expected finite numbers")
-        return [float(v) for v in value]
-    if kind == "float_or_none":
-        if value == "none":
-            return None
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0 or not math.isfinite(value):
-            fail(f"expected a positive number or \"none\", got {value!r}")
-        return float(value)
-    if kind == "ims":
-        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
-            fail(f"expected a list of IM names, got {value!r}")
-        out = []
-        for v in value:
-            try:
-                out.append(parse_im(v))
-            except ValueError as exc:
-                fail(str(exc))
-        return out
-    if kind in ("source_branches", "gmm_branches"):
-        return _branches(kind, value, fail, base)
-    if kind == "alternatives":  # entries are checked with their lines by _alternatives
-        if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
-            fail("expected [[scenario.alternatives]] tables")
-        return value
-    if kind == "path":
-        if not isinstance(value, str) or not value.strip():
-            fail(f"expected a file path string, got {value!r}")
-        if "\x00" in value:
-            fail("path contains a NUL byte")
-        p = Path(value)
-        return (p if p.is_absolute() else base / p).resolve()
-    raise AssertionError(kind)
+def _branch_weight(i, entry):
+    weight = entry.get("weight")
+    if isinstance(weight, bool) or not isinstance(weight, (int, float)) or not 0 < weight <= 1:
+        raise Invalid(f"branch {i + 1}: weight must be a number in (0, 1], got {weight!r}")
+    return float(weight)
 
 
-def _branches(kind, value, fail, base):
-    """Logic-tree branches: a list of tables with a weight each; weights sum to 1."""
-    fields = ("file", "weight", "id") if kind == "source_branches" else ("model", "weight")
+def _source_branch(i, entry, base):
+    weight = _branch_weight(i, entry)
+    file = entry.get("file")
+    if not isinstance(file, str) or not file.strip():
+        raise Invalid(f"branch {i + 1}: 'file' must be a path string")
+    p = _resolve(file, base)
+    bid = entry.get("id", p.stem)
+    if not isinstance(bid, str) or not bid:
+        raise Invalid(f"branch {i + 1}: 'id' must be a non-empty string")
+    return {"file": p, "weight": weight, "id": bid}
+
+
+def _gmm_branch(i, entry, base):
+    from quakefolio.core.gmm import GMM_REGISTRY
+
+    weight = _branch_weight(i, entry)
+    model = entry.get("model")
+    if model not in GMM_REGISTRY:
+        raise Invalid(f"branch {i + 1}: unknown ground-motion model {model!r}; valid: {', '.join(GMM_REGISTRY)}")
+    return {"model": model, "weight": weight, "id": model}
+
+
+_BRANCH_KINDS = {"source_branches": (("file", "weight", "id"), _source_branch),
+                 "gmm_branches": (("model", "weight"), _gmm_branch)}
+
+
+def _branches(kind, value, base):
+    """Logic-tree branches: a list of tables with a weight each; weights sum to 1.
+
+    Parameters
+    ----------
+    kind : {"source_branches", "gmm_branches"}
+        Which tree: source-model files or ground-motion models.
+    value : object
+        The parsed TOML value.
+    base : Path
+        Folder relative file names are resolved against.
+
+    Returns
+    -------
+    list of dict
+        ``{"file", "weight", "id"}`` or ``{"model", "weight", "id"}`` per branch.
+
+    Raises
+    ------
+    quakefolio.core.validation.Invalid
+        With the message; the caller adds file, line and key.
+    """
+    keys, build = _BRANCH_KINDS[kind]
     if not isinstance(value, list) or not value or not all(isinstance(v, dict) for v in value):
-        fail(f"expected a list of tables like {{ {fields[0]} = ..., weight = ... }}")
+        raise Invalid(f"expected a list of tables like {{ {keys[0]} = ..., weight = ... }}")
     out = []
     for i, entry in enumerate(value):
         for key in entry:
-            if key not in fields:
-                fail(f"branch {i + 1}: unknown key '{key}'{_suggest(key, fields)}")
-        weight = entry.get("weight")
-        if isinstance(weight, bool) or not isinstance(weight, (int, float)) or not 0 < weight <= 1:
-            fail(f"branch {i + 1}: weight must be a number in (0, 1], got {weight!r}")
-        if kind == "source_branches":
-            file = entry.get("file")
-            if not isinstance(file, str) or not file.strip():
-                fail(f"branch {i + 1}: 'file' must be a path string")
-            p = Path(file)
-            p = (p if p.is_absolute() else base / p).resolve()
-            bid = entry.get("id", p.stem)
-            if not isinstance(bid, str) or not bid:
-                fail(f"branch {i + 1}: 'id' must be a non-empty string")
-            out.append({"file": p, "weight": float(weight), "id": bid})
-        else:
-            from quakefolio.core.gmm import GMM_REGISTRY
-
-            model = entry.get("model")
-            if model not in GMM_REGISTRY:
-                fail(f"branch {i + 1}: unknown ground-motion model {model!r}; valid: {', '.join(GMM_REGISTRY)}")
-            out.append({"model": model, "weight": float(weight), "id": model})
+            if key not in keys:
+                raise Invalid(f"branch {i + 1}: unknown key '{key}'{_suggest(key, keys)}")
+        out.append(build(i, entry, base))
     total = sum(b["weight"] for b in out)
     if abs(total - 1.0) > 1e-6:
-        fail(f"branch weights must sum to 1, got {total:.6g}")
+        raise Invalid(f"branch weights must sum to 1, got {total:.6g}")
     ids = [b["id"] for b in out]
     if len(set(ids)) != len(ids):
-        fail(f"branch ids must be unique, got {ids}")
+        raise Invalid(f"branch ids must be unique, got {ids}")
     return out
 
 
 #: Keys of one ``[[scenario.alternatives]]`` table (retrofit what-if).
 ALTERNATIVE_KEYS = ("id", "description", "assets", "building_class", "new_class", "fragility_library",
                     "retrofit_cost", "retrofit_cost_ratio")
-_ALTERNATIVE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$")
+_ALTERNATIVE_ID = Pattern(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$")
+_NAME = (Text(non_empty=True),)
+_OPTIONAL = Field((), None)
+#: Presence and type of the two names every alternative needs; the other keys are checked by
+#: :data:`_ALTERNATIVE_VALUES` once the id is known to be new.
+_ALTERNATIVE_SCHEMA = Schema({k: Field(_NAME) if k in ("id", "new_class") else _OPTIONAL for k in ALTERNATIVE_KEYS},
+                             cutoff=0.5, valid_label="valid")
+def _listed_twice(assets):
+    return f"asset id {sorted({a for a in assets if assets.count(a) > 1})[0]!r} listed more than once"
+
+
+#: Key -> (default, rules) of the optional keys of an alternative, in checking order.
+_ALTERNATIVE_VALUES = {
+    "description": ("", (Text(),)),
+    "assets": ([], (ListOf(Text(non_empty=True), "expected a list of asset ids (strings)"),
+                    ListOf(message="expected at least one asset id", min_len=1, show_value=False),
+                    Rule(lambda a: len(set(a)) == len(a), _listed_twice, show_value=False))),
+    "building_class": (None, (Text("expected a building class code", non_empty=True),)),
+}
+_LIBRARY_PATH = (_ResolvedPath("expected a file path string",
+                               lambda v: isinstance(v, str) and bool(v.strip()) and "\x00" not in v, True),)
+_COSTS = ("retrofit_cost", "retrofit_cost_ratio")
+_POSITIVE_COST = (Real(finite=True, message="expected a positive number"), _POSITIVE)
+
+
+def _alternative_values(entry, place, base):
+    """The optional values of one alternative after their declared checks (defaults filled in)."""
+    out = {}
+    for key, (default, rules) in _ALTERNATIVE_VALUES.items():
+        if key not in entry:
+            out[key] = default
+            continue
+        out[key], msg = check_value(rules, entry[key])
+        if msg is not None:
+            raise place.error(msg, key)
+    if not out["assets"] and out["building_class"] is None:
+        raise place.error("select assets with 'assets' (a list of asset ids) and/or 'building_class'")
+    if "fragility_library" in entry:
+        out["fragility_library"], msg = check_value(_LIBRARY_PATH, entry["fragility_library"], {"base": base})
+        if msg is not None:
+            raise place.error(msg, "fragility_library")
+    else:
+        out["fragility_library"] = None
+    return out
+
+
+def _alternative_cost(entry, place):
+    """``(retrofit_cost, retrofit_cost_ratio)`` of one alternative: exactly one is given, positive."""
+    costs = [k for k in _COSTS if k in entry]
+    if len(costs) != 1:
+        raise place.error("give exactly one of 'retrofit_cost' (per asset) and 'retrofit_cost_ratio' (of "
+                          f"replacement value), got {len(costs)}", costs[1] if len(costs) == 2 else None)
+    cost, msg = check_value(_POSITIVE_COST, entry[costs[0]])
+    if msg is not None:
+        raise place.error(msg, costs[0])
+    return (cost, None) if costs[0] == "retrofit_cost" else (None, cost)
 
 
 def _alternatives(entries, path, text, base):
@@ -311,68 +551,101 @@ def _alternatives(entries, path, text, base):
     Only the file-local checks live here (types, required keys, one cost form); asset
     ids and class codes are checked against the exposure and the fragility libraries by
     :func:`quakefolio.pipeline.whatif.validate`.
+
+    Parameters
+    ----------
+    entries : list of dict
+        The parsed tables.
+    path : Path
+        The config file.
+    text : str
+        Its TOML text (to locate lines).
+    base : Path
+        Folder relative file names are resolved against.
+
+    Returns
+    -------
+    list of dict
+        One dict per alternative with every key of :data:`ALTERNATIVE_KEYS` (costs as
+        float or None, ``fragility_library`` as a resolved path or None).
     """
-    table = ("scenario", "alternatives")
     out, ids = [], set()
     for i, entry in enumerate(entries):
-        col = f"scenario.alternatives[{i}]"
-
-        def fail(msg, key=None):
-            raise InputError(path, msg, row=locate_toml_line(text, table, key, i),
-                             column=f"{col}.{key}" if key else col)
-
-        for key in entry:
-            if key not in ALTERNATIVE_KEYS:
-                fail(f"unknown key{_suggest(key, ALTERNATIVE_KEYS)}", key)
-        for key in ("id", "new_class"):
-            if key not in entry:
-                fail(f"missing required key '{key}'", key)
-            if not isinstance(entry[key], str) or not entry[key].strip():
-                fail(f"expected a non-empty string, got {entry[key]!r}", key)
+        place = toml_place(path, text, ("scenario", "alternatives"), f"scenario.alternatives[{i}]", i)
+        validate_table(entry, _ALTERNATIVE_SCHEMA, place)
         aid = entry["id"]
-        if not _ALTERNATIVE_ID.match(aid):
-            fail(f"id {aid!r} must be 1-64 letters, digits, '-', '_' or '.'", "id")
+        if not _ALTERNATIVE_ID.holds(aid):
+            raise place.error(f"id {aid!r} must be 1-64 letters, digits, '-', '_' or '.'", "id")
         if aid in ids:
-            fail(f"duplicate alternative id {aid!r}", "id")
+            raise place.error(f"duplicate alternative id {aid!r}", "id")
         ids.add(aid)
-        description = entry.get("description", "")
-        if not isinstance(description, str):
-            fail(f"expected a string, got {description!r}", "description")
-        assets = entry.get("assets", [])
-        if not isinstance(assets, list) or not all(isinstance(a, str) and a.strip() for a in assets):
-            fail(f"expected a list of asset ids (strings), got {assets!r}", "assets")
-        if "assets" in entry and not assets:
-            fail("expected at least one asset id", "assets")
-        twice = sorted({a for a in assets if assets.count(a) > 1})
-        if twice:
-            fail(f"asset id {twice[0]!r} listed more than once", "assets")
-        selected_class = entry.get("building_class")
-        if selected_class is not None and (not isinstance(selected_class, str) or not selected_class.strip()):
-            fail(f"expected a building class code, got {selected_class!r}", "building_class")
-        if not assets and selected_class is None:
-            fail("select assets with 'assets' (a list of asset ids) and/or 'building_class'")
-        library = entry.get("fragility_library")
-        if library is not None:
-            if not isinstance(library, str) or not library.strip() or "\x00" in library:
-                fail(f"expected a file path string, got {library!r}", "fragility_library")
-            p = Path(library)
-            library = (p if p.is_absolute() else base / p).resolve()
-        costs = [k for k in ("retrofit_cost", "retrofit_cost_ratio") if k in entry]
-        if len(costs) != 1:
-            fail("give exactly one of 'retrofit_cost' (per asset) and 'retrofit_cost_ratio' (of replacement "
-                 f"value), got {len(costs)}", costs[1] if len(costs) == 2 else None)
-        cost = entry[costs[0]]
-        if isinstance(cost, bool) or not isinstance(cost, (int, float)) or not math.isfinite(cost) or cost <= 0:
-            fail(f"expected a positive number, got {cost!r}", costs[0])
-        out.append({"id": aid, "description": description, "assets": list(assets), "building_class": selected_class,
-                    "new_class": entry["new_class"], "fragility_library": library,
-                    "retrofit_cost": float(cost) if costs[0] == "retrofit_cost" else None,
-                    "retrofit_cost_ratio": float(cost) if costs[0] == "retrofit_cost_ratio" else None})
+        values = _alternative_values(entry, place, base)
+        cost, ratio = _alternative_cost(entry, place)
+        out.append({"id": aid, "description": values["description"], "assets": list(values["assets"]),
+                    "building_class": values["building_class"], "new_class": entry["new_class"],
+                    "fragility_library": values["fragility_library"], "retrofit_cost": cost,
+                    "retrofit_cost_ratio": ratio})
     return out
+
+
+def _check_sections(data, path, text):
+    """Unknown sections and keys (with a hint) and sections that are not tables, in file order."""
+    for sec, body in data.items():
+        if sec not in SCHEMA:
+            raise InputError(path, f"unknown section [{sec}]{_suggest(sec, SCHEMA)}",
+                             row=locate_toml_line(text, (sec,)), column=sec)
+        if not isinstance(body, dict):
+            raise InputError(path, f"[{sec}] must be a table", row=locate_toml_line(text, (), sec), column=sec)
+        for key in body:
+            if key not in SCHEMA[sec]:
+                raise toml_place(path, text, (sec,), sec).error(f"unknown key{_suggest(key, SCHEMA[sec])}", key)
+
+
+def _section_values(sec, body, path, text, base):
+    """One section after its schema: converted values, defaults filled in (paths resolved)."""
+    out = validate_table(body, SECTION_SCHEMAS[sec], toml_place(path, text, (sec,), sec), {"base": base})
+    for key, spec in SCHEMA[sec].items():
+        if key not in body and spec.default is not None and isinstance(spec.rules[-1], _ResolvedPath):
+            out[key] = (base / spec.default).resolve()
+    return out
+
+
+def _cross_checks(sections, path, text):
+    """Checks across keys: what each hazard mode needs, the output folder, event-based default."""
+    def error(message, sec, key, column=None):
+        return InputError(path, message, row=locate_toml_line(text, (sec,), key), column=column or f"{sec}.{key}")
+
+    hz = sections["hazard"]
+    if hz["mode"] == "ingest" and hz["curves_file"] is None:
+        raise error("mode = \"ingest\" needs curves_file", "hazard", "mode", "hazard.curves_file")
+    out = sections["output"]["folder"]
+    if out.exists() and not out.is_dir():
+        raise error(f"output folder {str(out)!r} is an existing file; name a folder", "output", "folder")
+    pf = sections["portfolio"]
+    if pf["event_based"] is None:
+        pf["event_based"] = hz["mode"] == "compute"
+    elif pf["event_based"] and hz["mode"] != "compute":
+        raise error("event_based = true needs [hazard] mode = \"compute\" (events come from the source model)",
+                    "portfolio", "event_based")
+    if hz["mode"] == "compute":
+        for key in ("source_models", "gmm_branches"):
+            if hz[key] is None:
+                raise error(f"mode = \"compute\" needs {key}", "hazard", "mode", f"hazard.{key}")
 
 
 def load_config(path):
     """Read, validate and resolve a run config file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The ``quakefolio.toml`` file.
+
+    Returns
+    -------
+    Config
+        Sections as mappings (``cfg["hazard"]["mode"]``) and as frozen settings objects
+        (``cfg.hazard.mode``); relative paths resolved against the file's folder.
 
     Raises
     ------
@@ -382,59 +655,10 @@ def load_config(path):
     path = Path(path).resolve() if Path(path).exists() else Path(path)
     text, data, digest = read_toml(path)
     base = path.parent
-    sections = {}
-    for sec, body in data.items():
-        if sec not in SCHEMA:
-            raise InputError(path, f"unknown section [{sec}]{_suggest(sec, SCHEMA)}",
-                             row=locate_toml_line(text, (sec,)), column=sec)
-        if not isinstance(body, dict):
-            raise InputError(path, f"[{sec}] must be a table", row=locate_toml_line(text, (), sec), column=sec)
-        for key in body:
-            if key not in SCHEMA[sec]:
-                raise InputError(path, f"unknown key{_suggest(key, SCHEMA[sec])}",
-                                 row=locate_toml_line(text, (sec,), key), column=f"{sec}.{key}")
-    for sec, keys in SCHEMA.items():
-        body = data.get(sec, {})
-        out = {}
-        for key, spec in keys.items():
-            row = locate_toml_line(text, (sec,), key)
-            column = f"{sec}.{key}"
-            if key in body:
-                value = _coerce(spec, body[key], path, row, column, base)
-                if spec.check is not None:
-                    msg = spec.check(value)
-                    if msg:
-                        raise InputError(path, f"{msg}, got {body[key]!r}", row=row, column=column)
-            elif spec.default is _Key.REQUIRED:
-                raise InputError(path, f"missing required key '{key}' in [{sec}]",
-                                 row=locate_toml_line(text, (sec,)), column=column)
-            else:
-                value = spec.default
-                if spec.kind == "path" and value is not None:
-                    value = (base / value).resolve()
-            out[key] = value
-        sections[sec] = out
+    _check_sections(data, path, text)
+    sections = {sec: _section_values(sec, data.get(sec, {}), path, text, base) for sec in SCHEMA}
     sections["scenario"]["alternatives"] = _alternatives(sections["scenario"]["alternatives"], path, text, base)
-    hz = sections["hazard"]
-    if hz["mode"] == "ingest" and hz["curves_file"] is None:
-        raise InputError(path, "mode = \"ingest\" needs curves_file", row=locate_toml_line(text, ("hazard",), "mode"),
-                         column="hazard.curves_file")
-    out = sections["output"]["folder"]
-    if out.exists() and not out.is_dir():
-        raise InputError(path, f"output folder {str(out)!r} is an existing file; name a folder",
-                         row=locate_toml_line(text, ("output",), "folder"), column="output.folder")
-    pf = sections["portfolio"]
-    if pf["event_based"] is None:
-        pf["event_based"] = hz["mode"] == "compute"
-    elif pf["event_based"] and hz["mode"] != "compute":
-        raise InputError(path, "event_based = true needs [hazard] mode = \"compute\" (events come from the "
-                               "source model)", row=locate_toml_line(text, ("portfolio",), "event_based"),
-                         column="portfolio.event_based")
-    if hz["mode"] == "compute":
-        for key in ("source_models", "gmm_branches"):
-            if hz[key] is None:
-                raise InputError(path, f"mode = \"compute\" needs {key}", row=locate_toml_line(text, ("hazard",), "mode"),
-                                 column=f"hazard.{key}")
+    _cross_checks(sections, path, text)
     return Config(path=path, sections=sections, sha256=digest, raw=data)
 
 

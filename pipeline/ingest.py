@@ -8,8 +8,8 @@ Parquet with pyarrow; nothing is executed or unpickled.
 from __future__ import annotations
 
 import csv
-import difflib
 import io
+import re
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,9 +20,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from quakefolio.core.curves import interpolate_period
-from quakefolio.core.errors import InputError
+from quakefolio.core.errors import InputError, did_you_mean
 from quakefolio.core.geo import nearest_site
 from quakefolio.core.ims import im_period, parse_im
+from quakefolio.core.validation import Interval, MaxMagnitude, Real, WholeNumber
 from quakefolio.pipeline.config import IM_UNITS_TO_G
 
 __all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves", "HazardCurves", "map_assets_to_sites",
@@ -38,12 +39,81 @@ _FORMULA_START = ("=", "+", "@", "\t", "\r")
 _MAX_ABS = 1e15
 
 
+def _read_parquet(path):
+    """Frame of a Parquet file and its 1-based record numbers."""
+    try:
+        frame = pq.read_table(path).to_pandas()
+    except (pa.ArrowException, OSError) as exc:
+        raise InputError(path, f"not a readable Parquet file ({type(exc).__name__})") from None
+    return frame, np.arange(1, len(frame) + 1)
+
+
+def _read_csv(path):
+    """Frame of a CSV file (all cells as text) and the file line where each record starts."""
+    raw = path.read_bytes()
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        raise InputError(path, f"not valid UTF-8 text (byte 0x{raw[exc.start]:02x})", row=line,
+                         column=_column_at_byte(raw, exc.start)) from None
+    _, starts = _csv_records(path, text)
+    try:
+        # index_col=False: a trailing delimiter on data rows must not turn the first column into an index;
+        # the fields it drops were checked empty above, so its warning is noise
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", pd.errors.ParserWarning)
+            frame = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=True,
+                                encoding="utf-8", comment=None, index_col=False)
+    except pd.errors.EmptyDataError:
+        raise InputError(path, "file is empty") from None
+    except pd.errors.ParserError as exc:
+        msg = str(exc)
+        m = re.search(r"line (\d+)", msg)
+        raise InputError(path, f"malformed CSV: {msg.splitlines()[0]}", row=int(m.group(1)) if m else None) \
+            from None
+    # line numbers where records start (quoted fields may span lines; blank lines are skipped)
+    if starts is not None and len(starts) == len(frame):
+        rows = np.array(starts, dtype=np.int64)
+    else:  # the two parsers disagree: fall back to counting non-blank lines
+        nonblank = [i + 1 for i, ln in enumerate(text.splitlines()) if ln.strip()]
+        rows = np.array(nonblank[1:1 + len(frame)] + [0] * max(0, len(frame) - len(nonblank) + 1))[: len(frame)]
+    return frame, rows
+
+
+def _check_columns(path, frame, columns):
+    """Header: unique names, no misspelt known column, every required column present."""
+    frame.columns = [str(c).strip() for c in frame.columns]
+    present = list(frame.columns)
+    _check_unique_columns(path, present)
+    for col in present:
+        if col not in columns:
+            hint = did_you_mean(col, columns, cutoff=0.8, skip=present)
+            if hint:
+                raise InputError(path, f"unknown column{hint}", row=1, column=col)
+    for col, required in columns.items():
+        if required and col not in present:
+            raise InputError(path, "missing required column", row=1, column=col)
+
+
 def read_table(path, columns):
     """Read a CSV or Parquet file as strings-or-values plus the row numbers of its records.
 
-    Returns ``(frame, rows)`` where ``rows[i]`` is the user-facing row of record ``i``.
     Checks: file exists, not empty, UTF-8 (CSV), required columns present, unknown
     columns that look like misspelt known ones.
+
+    Parameters
+    ----------
+    path : str or Path
+        A ``.csv`` (or ``.txt``) or ``.parquet`` file.
+    columns : dict
+        Column name -> whether it is required.
+
+    Returns
+    -------
+    (DataFrame, ndarray of int (n_records,))
+        The frame (CSV cells as text) and ``rows[i]``, the user-facing row of record
+        ``i`` (file line for CSV, 1-based record number for Parquet).
     """
     path = Path(path)
     if not path.exists():
@@ -54,56 +124,12 @@ def read_table(path, columns):
         raise InputError(path, "file is empty")
     suffix = path.suffix.lower()
     if suffix == ".parquet":
-        try:
-            frame = pq.read_table(path).to_pandas()
-        except (pa.ArrowException, OSError) as exc:
-            raise InputError(path, f"not a readable Parquet file ({type(exc).__name__})") from None
-        rows = np.arange(1, len(frame) + 1)
-        first_data_row = 1
+        (frame, rows), first_data_row = _read_parquet(path), 1
     elif suffix in (".csv", ".txt"):
-        raw = path.read_bytes()
-        try:
-            text = raw.decode("utf-8")
-        except UnicodeDecodeError as exc:
-            line = raw[: exc.start].count(b"\n") + 1
-            raise InputError(path, f"not valid UTF-8 text (byte 0x{raw[exc.start]:02x})", row=line,
-                             column=_column_at_byte(raw, exc.start)) from None
-        _, starts = _csv_records(path, text)
-        try:
-            # index_col=False: a trailing delimiter on data rows must not turn the first column into an index;
-            # the fields it drops were checked empty above, so its warning is noise
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", pd.errors.ParserWarning)
-                frame = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=True,
-                                    encoding="utf-8", comment=None, index_col=False)
-        except pd.errors.EmptyDataError:
-            raise InputError(path, "file is empty") from None
-        except pd.errors.ParserError as exc:
-            msg = str(exc)
-            import re
-
-            m = re.search(r"line (\d+)", msg)
-            raise InputError(path, f"malformed CSV: {msg.splitlines()[0]}", row=int(m.group(1)) if m else None) \
-                from None
-        # line numbers where records start (quoted fields may span lines; blank lines are skipped)
-        if starts is not None and len(starts) == len(frame):
-            rows = np.array(starts, dtype=np.int64)
-        else:  # the two parsers disagree: fall back to counting non-blank lines
-            nonblank = [i + 1 for i, ln in enumerate(text.splitlines()) if ln.strip()]
-            rows = np.array(nonblank[1:1 + len(frame)] + [0] * max(0, len(frame) - len(nonblank) + 1))[: len(frame)]
-        first_data_row = 2
+        (frame, rows), first_data_row = _read_csv(path), 2
     else:
         raise InputError(path, f"unsupported file type {suffix!r}: expected .csv or .parquet")
-    frame.columns = [str(c).strip() for c in frame.columns]
-    _check_unique_columns(path, list(frame.columns))
-    for col in frame.columns:
-        if col not in columns:
-            close = difflib.get_close_matches(col, list(columns), n=1, cutoff=0.8)
-            if close and close[0] not in frame.columns:
-                raise InputError(path, f"unknown column; did you mean '{close[0]}'?", row=1, column=col)
-    for col, required in columns.items():
-        if required and col not in frame.columns:
-            raise InputError(path, "missing required column", row=1, column=col)
+    _check_columns(path, frame, columns)
     if len(frame) == 0:
         raise InputError(path, "no data rows", row=first_data_row)
     return frame, rows
@@ -158,9 +184,42 @@ def _check_unique_columns(path, names):
         seen.add(name)
 
 
-def _numbers(frame, rows, path, column, *, required=True, positive=False, non_negative=False, lo=None, hi=None,
-             integer=False):
-    """Column as float64 with per-cell checks; errors name the row and cell text."""
+#: Declared per-cell checks of numeric columns (each a constraint with a column-wise test).
+POSITIVE = Interval(0, None, closed="neither")
+NON_NEGATIVE = Interval(0, None)
+LONGITUDE = Interval(-180.0, 180.0)
+LATITUDE = Interval(-90.0, 90.0)
+WHOLE = WholeNumber()
+#: Checked on every numeric column before its own rules.
+_ALWAYS = (Real(finite=True), MaxMagnitude(_MAX_ABS))
+#: Optional exposure columns and their rules.
+_OPTIONAL_EXPOSURE = {"vs30_mps": (POSITIVE,), "occupants": (NON_NEGATIVE, WHOLE), "deductible": (NON_NEGATIVE,),
+                      "limit": (POSITIVE,)}
+
+
+def _numbers(frame, rows, path, column, rules=(), *, required=True):
+    """Column as float64 with per-cell checks; errors name the row and cell text.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        From :func:`read_table`.
+    rows : ndarray of int (n,)
+        User-facing row of each record.
+    path : str or Path
+        The file, for errors.
+    column : str
+        The column to read.
+    rules : sequence of quakefolio.core.validation.Constraint
+        Checked in order on the non-empty cells (after "finite" and "not absurdly large").
+    required : bool
+        Whether empty cells (or NaN) are errors.
+
+    Returns
+    -------
+    ndarray of float (n,)
+        The values, NaN where a cell is empty.
+    """
     raw = frame[column]
     if raw.dtype == object or pd.api.types.is_string_dtype(raw):
         text = raw.astype(str).str.strip().fillna("")
@@ -178,22 +237,11 @@ def _numbers(frame, rows, path, column, *, required=True, positive=False, non_ne
     if required and empty.any():
         i = int(np.argmax(empty))
         raise InputError(path, "missing value (empty or NaN)", row=int(rows[i]), column=column)
-    checks = [
-        (~np.isfinite(values) & ~empty, "expected a finite number"),
-        (np.abs(np.nan_to_num(values)) > _MAX_ABS, f"value out of range (|x| > {_MAX_ABS:g})"),
-    ]
-    if positive:
-        checks.append((~empty & ~(values > 0), "expected a positive number"))
-    if non_negative:
-        checks.append((~empty & ~(values >= 0), "expected a non-negative number"))
-    if lo is not None:
-        checks.append((~empty & ~((values >= lo) & (values <= hi)), f"expected a number in [{lo:g}, {hi:g}]"))
-    if integer:
-        checks.append((~empty & (np.nan_to_num(values) != np.round(np.nan_to_num(values))), "expected an integer"))
-    for mask, msg in checks:
+    for rule in _ALWAYS + tuple(rules):
+        mask = ~empty & rule.violations(values)
         if mask.any():
             i = int(np.argmax(mask))
-            raise InputError(path, f"{msg}, got {text.iloc[i]!r}", row=int(rows[i]), column=column)
+            raise InputError(path, f"{rule.describe()}, got {text.iloc[i]!r}", row=int(rows[i]), column=column)
     return values
 
 
@@ -226,22 +274,20 @@ def read_exposure(path, library):
     """
     frame, rows = read_table(path, EXPOSURE_COLUMNS)
     out = pd.DataFrame({"asset_id": _identifiers(frame, rows, path, "asset_id", unique=True)})
-    out["lon"] = _numbers(frame, rows, path, "lon", lo=-180.0, hi=180.0)
-    out["lat"] = _numbers(frame, rows, path, "lat", lo=-90.0, hi=90.0)
+    out["lon"] = _numbers(frame, rows, path, "lon", (LONGITUDE,))
+    out["lat"] = _numbers(frame, rows, path, "lat", (LATITUDE,))
     classes = _identifiers(frame, rows, path, "building_class")
     unknown = ~np.isin(classes, list(library.classes))
     if unknown.any():
         i = int(np.argmax(unknown))
-        close = difflib.get_close_matches(classes[i], list(library.classes), n=1, cutoff=0.6)
-        hint = f"; did you mean '{close[0]}'?" if close else f"; the library defines {sorted(library.classes)}"
+        hint = did_you_mean(classes[i], library.classes, cutoff=0.6,
+                            otherwise=f"; the library defines {sorted(library.classes)}")
         raise InputError(path, f"unknown building class {str(classes[i])!r}{hint}", row=int(rows[i]),
                          column="building_class")
     out["building_class"] = classes
-    out["replacement_value"] = _numbers(frame, rows, path, "replacement_value", positive=True)
-    optional = {"vs30_mps": dict(positive=True), "occupants": dict(non_negative=True, integer=True),
-                "deductible": dict(non_negative=True), "limit": dict(positive=True)}
-    for col, kw in optional.items():
-        out[col] = _numbers(frame, rows, path, col, required=False, **kw) if col in frame.columns else np.nan
+    out["replacement_value"] = _numbers(frame, rows, path, "replacement_value", (POSITIVE,))
+    for col, rules in _OPTIONAL_EXPOSURE.items():
+        out[col] = _numbers(frame, rows, path, col, rules, required=False) if col in frame.columns else np.nan
     bad = (out["deductible"] >= out["limit"]).to_numpy()
     if bad.any():
         i = int(np.argmax(bad))
@@ -287,8 +333,8 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     """
     frame, rows = read_table(path, HAZARD_COLUMNS)
     site = _identifiers(frame, rows, path, "site_id")
-    lon = _numbers(frame, rows, path, "lon", lo=-180.0, hi=180.0)
-    lat = _numbers(frame, rows, path, "lat", lo=-90.0, hi=90.0)
+    lon = _numbers(frame, rows, path, "lon", (LONGITUDE,))
+    lat = _numbers(frame, rows, path, "lat", (LATITUDE,))
     ims = frame["im"].astype(str).str.strip().to_numpy(dtype=object)
     canon = {}
     for i, name in enumerate(ims):
@@ -298,8 +344,8 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
             except ValueError as exc:
                 raise InputError(path, str(exc), row=int(rows[i]), column="im") from None
     ims = np.array([canon[v] for v in ims], dtype=object)
-    level = _numbers(frame, rows, path, "im_level", positive=True) * IM_UNITS_TO_G[im_unit]
-    rate = _numbers(frame, rows, path, "annual_rate", non_negative=True)
+    level = _numbers(frame, rows, path, "im_level", (POSITIVE,)) * IM_UNITS_TO_G[im_unit]
+    rate = _numbers(frame, rows, path, "annual_rate", (NON_NEGATIVE,))
     if "statistic" in frame.columns:
         stat = frame["statistic"].astype(str).str.strip().to_numpy(dtype=object)
         keep = stat == statistic

@@ -40,16 +40,16 @@ rate / slip_rate_mm_per_yr).  Slip rates are moment-balanced on faults only.
 """
 from __future__ import annotations
 
-import difflib
 import math
 
-from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.errors import did_you_mean
 from quakefolio.core.mfd import (
     characteristic_yc85, moment_balanced, moment_rate_from_slip, single_magnitude, truncated_gr,
 )
 from quakefolio.core.ruptures import (
     RuptureSet, area_source_ruptures, fault_plane_area_km2, planar_fault_ruptures, point_source_ruptures,
 )
+from quakefolio.core.validation import Field, Interval, Real, Schema, check_value, toml_place, validate_table
 from quakefolio.fragility.library import read_toml
 
 __all__ = ["SourceModel", "load_source_model", "FORMAT_TAG"]
@@ -78,67 +78,90 @@ class SourceModel:
         self.path, self.name, self.ruptures, self.sources, self.sha256 = path, name, ruptures, sources, sha256
 
 
-def _suggest(key, valid):
-    close = difflib.get_close_matches(key, list(valid), n=1, cutoff=0.6)
-    return f"; did you mean '{close[0]}'?" if close else f"; valid keys: {', '.join(valid)}"
+_TOP_SCHEMA = Schema({key: Field((), None) for key in _TOP})
+_NUMBER = (Real(finite=True),)
+_POSITIVE_NUMBER = _NUMBER + (Interval(0, None, closed="neither"),)
+_NON_NEGATIVE_NUMBER = _NUMBER + (Interval(0, None),)
+#: Kind -> schema of one source table: every key required, a missing one reported at the table.
+_SOURCE_SCHEMAS = {kind: Schema({key: Field(()) for key in keys}, missing_names_key=False, missing_first=True)
+                   for kind, keys in _KEYS.items()}
 
 
-def load_source_model(path):
-    """Read and validate a source-model file; every problem is an InputError with its line."""
-    text, data, digest = read_toml(path)
-    path = str(path)
-
-    def fail(msg, table=(), key=None, occurrence=0, column=None):
-        raise InputError(path, msg, row=locate_toml_line(text, table, key, occurrence), column=column)
-
-    for key in data:
-        if key not in _TOP:
-            fail(f"unknown key{_suggest(key, _TOP)}", (), key, column=key)
-    if data.get("format") != FORMAT_TAG:
-        fail(f"expected format = \"{FORMAT_TAG}\", got {data.get('format')!r}", (), "format", column="format")
+def _settings(data, path, text):
+    """``[settings]`` with defaults, each value a positive finite number, checked in file order."""
+    place = toml_place(path, text, ("settings",), "settings")
     settings = dict(_SETTINGS)
     for key, value in data.get("settings", {}).items():
         if key not in _SETTINGS:
-            fail(f"unknown key{_suggest(key, _SETTINGS)}", ("settings",), key, column=f"settings.{key}")
-        settings[key] = _num(value, lambda m: fail(m, ("settings",), key, column=f"settings.{key}"), positive=True)
+            raise place.error(f"unknown key{_hint(key, _SETTINGS)}", key)
+        settings[key], msg = check_value(_POSITIVE_NUMBER, value)
+        if msg is not None:
+            raise place.error(msg, key)
     if not 9.0 <= settings["moment_constant"] <= 9.2:
-        fail("moment_constant must be 9.05 (Hanks & Kanamori 1979) or 9.1", ("settings",), "moment_constant",
-             column="settings.moment_constant")
+        raise place.error("moment_constant must be 9.05 (Hanks & Kanamori 1979) or 9.1", "moment_constant")
+    return settings
+
+
+def _source(kind, i, src, settings, seen, path, text):
+    """One ``[[faults]]``, ``[[areas]]`` or ``[[points]]`` table to its ruptures and summary row."""
+    place = toml_place(path, text, (kind,), f"{kind}[{i}]", i)
+    if not isinstance(src, dict):
+        raise place.error("expected a table")
+    validate_table(src, _SOURCE_SCHEMAS[kind], place)
+    sid = src["id"]
+    if not isinstance(sid, str) or not sid.strip() or sid in seen:
+        raise place.error(f"source id must be a unique non-empty string, got {sid!r}", "id")
+    seen.add(sid)
+    try:
+        rs, info = _build(kind, src, settings)
+    except _FieldError as exc:
+        raise place.error(exc.msg, exc.key) from None
+    except ValueError as exc:
+        raise place.error(f"source {sid!r}: {exc}") from None
+    return rs, {"source_id": sid, "kind": kind[:-1], **info, "n_ruptures": len(rs), "total_rate": float(rs.rate.sum())}
+
+
+def load_source_model(path):
+    """Read and validate a source-model file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The source-model TOML file.
+
+    Returns
+    -------
+    SourceModel
+        Ruptures of every source, a summary row per source and the file's sha256.
+
+    Raises
+    ------
+    InputError
+        On the first problem, naming file, line and key.
+    """
+    text, data, digest = read_toml(path)
+    path = str(path)
+    root = toml_place(path, text, (), "")
+    validate_table(data, _TOP_SCHEMA, root)
+    if data.get("format") != FORMAT_TAG:
+        raise root.error(f"expected format = \"{FORMAT_TAG}\", got {data.get('format')!r}", "format")
+    settings = _settings(data, path, text)
     sets, summary, seen = [], [], set()
     for kind in ("faults", "areas", "points"):
         entries = data.get(kind, [])
         if not isinstance(entries, list):
-            fail(f"'{kind}' must be an array of tables ([[{kind}]])", (), kind, column=kind)
+            raise root.error(f"'{kind}' must be an array of tables ([[{kind}]])", kind)
         for i, src in enumerate(entries):
-            col = f"{kind}[{i}]"
-
-            def where(key=None, msg="", _i=i, _kind=kind, _col=col):
-                fail(msg, (_kind,), key, _i, column=f"{_col}.{key}" if key else _col)
-
-            if not isinstance(src, dict):
-                where(None, "expected a table")
-            for key in src:
-                if key not in _KEYS[kind]:
-                    where(key, f"unknown key{_suggest(key, _KEYS[kind])}")
-            for key in _KEYS[kind]:
-                if key not in src:
-                    where(None, f"missing required key '{key}'")
-            sid = src["id"]
-            if not isinstance(sid, str) or not sid.strip() or sid in seen:
-                where("id", f"source id must be a unique non-empty string, got {sid!r}")
-            seen.add(sid)
-            try:
-                rs, info = _build(kind, src, settings)
-            except _FieldError as exc:
-                where(exc.key, exc.msg)
-            except ValueError as exc:
-                where(None, f"source {sid!r}: {exc}")
+            rs, row = _source(kind, i, src, settings, seen, path, text)
             sets.append(rs)
-            summary.append({"source_id": sid, "kind": kind[:-1], **info, "n_ruptures": len(rs),
-                            "total_rate": float(rs.rate.sum())})
+            summary.append(row)
     if not sets:
-        fail("the source model defines no source ([[faults]], [[areas]] or [[points]])")
+        raise root.error("the source model defines no source ([[faults]], [[areas]] or [[points]])")
     return SourceModel(path, str(data.get("name", "")), RuptureSet.concat(sets), summary, digest)
+
+
+def _hint(key, valid):
+    return did_you_mean(key, valid, cutoff=0.6, otherwise=f"; valid keys: {', '.join(valid)}")
 
 
 class _FieldError(Exception):
@@ -147,13 +170,11 @@ class _FieldError(Exception):
 
 
 def _num(value, fail, *, positive=False, non_negative=False):
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        fail(f"expected a finite number, got {value!r}")
-    if positive and value <= 0:
-        fail(f"expected a positive number, got {value!r}")
-    if non_negative and value < 0:
-        fail(f"expected a non-negative number, got {value!r}")
-    return float(value)
+    rules = _POSITIVE_NUMBER if positive else _NON_NEGATIVE_NUMBER if non_negative else _NUMBER
+    number, msg = check_value(rules, value)
+    if msg is not None:
+        fail(msg)
+    return number
 
 
 def _field(src, key, **kw):
@@ -183,7 +204,7 @@ def _mfd(src, settings, area_km2):
         raise _FieldError("mfd", f"mfd kind must be one of {', '.join(_MFD_KEYS)}, got {kind!r}")
     for key in spec:
         if key not in _MFD_KEYS[kind]:
-            raise _FieldError("mfd", f"unknown mfd key '{key}' for kind '{kind}'{_suggest(key, _MFD_KEYS[kind])}")
+            raise _FieldError("mfd", f"unknown mfd key '{key}' for kind '{kind}'{_hint(key, _MFD_KEYS[kind])}")
 
     def num(key, **kw):
         if key not in spec:

@@ -41,7 +41,6 @@ States. SEAOC 2007 Convention Proceedings.
 from __future__ import annotations
 
 import dataclasses
-import difflib
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -50,7 +49,7 @@ import pandas as pd
 
 from quakefolio.core.curves import im_at_rate, prob_in_years, rate_from_prob
 from quakefolio.core.economics import annuity_factor, benefit_cost_ratio, present_value
-from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.errors import InputError, did_you_mean, locate_toml_line
 from quakefolio.core.event_losses import sum_over_blocks
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
@@ -83,12 +82,10 @@ class Alternative:
 
 
 def _suggestion(name, valid, what):
-    close = difflib.get_close_matches(name, list(valid), n=1, cutoff=0.6)
-    if close:
-        return f"; did you mean {close[0]!r}?"
-    valid = sorted(valid)
-    shown = ", ".join(valid[:12]) + (", ..." if len(valid) > 12 else "")
-    return f"; {what}: {shown}"
+    names = list(valid)
+    ordered = sorted(names)
+    shown = ", ".join(ordered[:12]) + (", ..." if len(ordered) > 12 else "")
+    return did_you_mean(name, names, cutoff=0.6, otherwise=f"; {what}: {shown}", quote="repr")
 
 
 def _same_fragility(a, b):
