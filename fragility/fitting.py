@@ -662,14 +662,28 @@ def set_damage_state(library, class_code, state_name, median, beta, *, mean_dama
     tolerance (independent of any hazard curve; a run still checks crossings inside its
     hazard range).
     """
+    new_state = _new_state(state_name, median, beta, mean_damage_ratio, cov, digits)
+    data = copy.deepcopy(library)
+    classes = data.setdefault("classes", {})
+    if class_code not in classes:
+        return data, [_create_class(classes, class_code, state_name, new_state, im, mean_damage_ratio)]
+    body = classes[class_code]
+    if im is not None and parse_im(im) != parse_im(str(body.get("im"))):
+        raise ValueError(f"class {class_code!r} uses {body.get('im')}, not {parse_im(im)}; a fit on another IM "
+                         "cannot go into this class")
+    states = body.setdefault("states", [])
+    pos, notes = _place_state(body, states, class_code, state_name, new_state, mean_damage_ratio)
+    _check_neighbours(class_code, states, pos)
+    return data, notes
+
+
+def _new_state(state_name, median, beta, mean_damage_ratio, cov, digits):
+    """The state's table entry from checked arguments (median and beta rounded to ``digits``)."""
     if not isinstance(state_name, str) or not state_name.strip():
         raise ValueError(f"the damage-state name must be a non-empty string, got {state_name!r}")
     for label, v in (("median", median), ("beta", beta)):
         if not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
             raise ValueError(f"{label} must be a positive number, got {v!r}")
-    data = copy.deepcopy(library)
-    classes = data.setdefault("classes", {})
-    notes = []
     new_state = {"name": state_name, "median": _round_sig(median, digits), "beta": _round_sig(beta, digits)}
     if mean_damage_ratio is not None:
         if not 0 <= float(mean_damage_ratio) <= 1:
@@ -679,39 +693,45 @@ def set_damage_state(library, class_code, state_name, median, beta, *, mean_dama
         if not (math.isfinite(float(cov)) and float(cov) >= 0):
             raise ValueError(f"cov must be a non-negative number, got {cov!r}")
         new_state["cov"] = float(cov)
-    if class_code not in classes:
-        if im is None:
-            raise ValueError(f"class {class_code!r} is not in the library; give its IM (--im) to create it")
-        if mean_damage_ratio is None:
-            raise ValueError(f"state {state_name!r} is new; give its mean damage ratio (--mean-damage-ratio)")
-        classes[class_code] = {"im": parse_im(im), "states": [new_state]}
-        notes.append(f"created class {class_code!r} ({parse_im(im)}) with state {state_name!r}")
-        return data, notes
-    body = classes[class_code]
-    if im is not None and parse_im(im) != parse_im(str(body.get("im"))):
-        raise ValueError(f"class {class_code!r} uses {body.get('im')}, not {parse_im(im)}; a fit on another IM "
-                         "cannot go into this class")
-    states = body.setdefault("states", [])
+    return new_state
+
+
+def _create_class(classes, class_code, state_name, new_state, im, mean_damage_ratio):
+    """Add a new class holding the one state; returns the note for the user."""
+    if im is None:
+        raise ValueError(f"class {class_code!r} is not in the library; give its IM (--im) to create it")
+    if mean_damage_ratio is None:
+        raise ValueError(f"state {state_name!r} is new; give its mean damage ratio (--mean-damage-ratio)")
+    classes[class_code] = {"im": parse_im(im), "states": [new_state]}
+    return f"created class {class_code!r} ({parse_im(im)}) with state {state_name!r}"
+
+
+def _place_state(body, states, class_code, state_name, new_state, mean_damage_ratio):
+    """Replace the state of that name in place, or insert it where its median puts it.
+
+    Returns
+    -------
+    (int, list of str)
+        The state's position and notes for the user.
+    """
     names = [s.get("name") for s in states]
     if state_name in names:
         pos = names.index(state_name)
         merged = dict(states[pos])
         merged.update(new_state)
         states[pos] = merged
-        notes.append(f"replaced state {state_name!r} of class {class_code!r}")
-    else:
-        if mean_damage_ratio is None:
-            raise ValueError(f"state {state_name!r} is new in class {class_code!r}; give its mean damage ratio "
-                             "(--mean-damage-ratio)")
-        medians = [float(s.get("median", math.nan)) for s in states]
-        pos = int(np.searchsorted(medians, new_state["median"]))
-        states.insert(pos, new_state)
-        notes.append(f"added state {state_name!r} to class {class_code!r} at position {pos + 1} of {len(states)}")
-        if pos == len(states) - 1 and "collapse_state" not in body:
-            notes.append(f"{state_name!r} is now the last state of {class_code!r}, which sets no collapse_state, "
-                         "so it is the collapse state")
-    _check_neighbours(class_code, states, pos)
-    return data, notes
+        return pos, [f"replaced state {state_name!r} of class {class_code!r}"]
+    if mean_damage_ratio is None:
+        raise ValueError(f"state {state_name!r} is new in class {class_code!r}; give its mean damage ratio "
+                         "(--mean-damage-ratio)")
+    medians = [float(s.get("median", math.nan)) for s in states]
+    pos = int(np.searchsorted(medians, new_state["median"]))
+    states.insert(pos, new_state)
+    notes = [f"added state {state_name!r} to class {class_code!r} at position {pos + 1} of {len(states)}"]
+    if pos == len(states) - 1 and "collapse_state" not in body:
+        notes.append(f"{state_name!r} is now the last state of {class_code!r}, which sets no collapse_state, "
+                     "so it is the collapse state")
+    return pos, notes
 
 
 def _check_neighbours(class_code, states, pos):
