@@ -40,7 +40,7 @@ def main():
     from quakefolio.pipeline.flow import run_flow
     from quakefolio.pipeline.orchestration import run_on_dask, using_api
     from quakefolio.pipeline.server import connect_or_start
-    from quakefolio.pipeline.store import read_table
+    from quakefolio.pipeline.io.store import read_table
 
     server = connect_or_start()
     try:

@@ -16,11 +16,11 @@ import time
 import numpy as np
 from scipy.special import ndtr
 
-from quakefolio.core.geometry import site_rupture_mask
+from quakefolio.core.sources.geometry import site_rupture_mask
 from quakefolio.core.gmm import get_gmm
 from quakefolio.core.hazard import compute_site_hazard
-from quakefolio.core.mfd import truncated_gr
-from quakefolio.core.ruptures import area_source_ruptures
+from quakefolio.core.sources.mfd import truncated_gr
+from quakefolio.core.sources.ruptures import area_source_ruptures
 
 LEVELS = np.geomspace(1e-3, 3.0, 30)
 CUTOFF_KM = 200.0

@@ -63,8 +63,8 @@ def write_inputs(folder, years):
 
 
 def measure(years):
-    from quakefolio.core.eventset import event_blocks
-    from quakefolio.pipeline import portfolio_stage as ps
+    from quakefolio.core.events.eventset import event_blocks
+    from quakefolio.pipeline.stages import events as ps
     from quakefolio.pipeline import stages
 
     folder = Path(tempfile.mkdtemp(prefix="quakefolio-bench-"))
@@ -74,7 +74,7 @@ def measure(years):
     chunks = ps.event_chunks(em)
     totals = [ps.event_chunk(em, c) for c in chunks]
     gu = np.concatenate([r.ground_up for r in totals])
-    from quakefolio.core.portfolio import ep_from_years, year_loss
+    from quakefolio.core.events.portfolio import ep_from_years, year_loss
 
     agg, occ = year_loss(em.events.year, gu, years)
     ep_from_years(agg, [100, 250, 475, 2475])

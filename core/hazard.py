@@ -35,7 +35,7 @@ import scipy.sparse as sp
 from scipy.special import ndtr
 
 from quakefolio.core.curves import im_at_rate
-from quakefolio.core.gmf import ln_im
+from quakefolio.core.events.gmf import ln_im
 
 __all__ = [
     "exceedance_probability",
@@ -354,7 +354,7 @@ def uniform_hazard_targets(levels, curves, return_periods_yr):
 def _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region, z1p0_km=None,
                  z2p5_km=None):
     """Surviving (site, rupture) pairs of a block of sites and their GMM input."""
-    from quakefolio.core.geometry import pair_distances, site_rupture_mask
+    from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
     from quakefolio.core.gmm import GmmInput
 
     mask = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb", exact=True,
@@ -377,7 +377,7 @@ def _pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, regio
     """Blocks of sites with their surviving pairs: (slice, site, rupture, starts, owners, GMM input,
     distances, pair rate); blocks without any pair are skipped.  ``ref`` defaults to the mean site
     position, fixed for all blocks so results do not depend on the blocking."""
-    from quakefolio.core.geometry import mean_position
+    from quakefolio.core.sources.geometry import mean_position
 
     lon = np.asarray(site_lon, dtype=float)
     lat = np.asarray(site_lat, dtype=float)
@@ -399,7 +399,7 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     ----------
     site_lon, site_lat : array_like, shape (n_sites,) [deg]
     site_vs30 : array_like, shape (n_sites,) [m/s]
-    ruptures : quakefolio.core.ruptures.RuptureSet
+    ruptures : quakefolio.core.sources.ruptures.RuptureSet
     gmms : sequence of ground-motion models (``quakefolio.core.gmm``)
         Evaluated on the same pairs (distances are computed once per block).
     ims : sequence of str
@@ -484,7 +484,7 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     ----------
     site_lon, site_lat : ndarray, shape (n_sites,) [deg]
     site_vs30 : ndarray, shape (n_sites,) [m/s]
-    ruptures : quakefolio.core.ruptures.RuptureSet
+    ruptures : quakefolio.core.sources.ruptures.RuptureSet
         ``n_ruptures`` ruptures.
     gmms : sequence of ground-motion models
     ims : sequence of str
@@ -525,7 +525,7 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     Parameters
     ----------
     site_lon, site_lat, site_vs30 : ndarray, shape (n_sites,) [deg], [deg], [m/s]
-    ruptures : quakefolio.core.ruptures.RuptureSet
+    ruptures : quakefolio.core.sources.ruptures.RuptureSet
     event_rupture : ndarray of int, shape (n_events,)
         Rupture of each event (index into ``ruptures``).
     event_gmm : ndarray of int, shape (n_events,)
@@ -545,7 +545,7 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     Each distinct rupture of the events is evaluated once, with only the models the
     events use (:func:`rupture_ground_motion`); the event field is then
     :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
-    :func:`quakefolio.core.gmf.ln_im`).
+    :func:`quakefolio.core.events.gmf.ln_im`).
     """
     ev_rup = np.asarray(event_rupture)
     g_ev = np.asarray(event_gmm)
@@ -566,13 +566,13 @@ def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):
         From :func:`event_ground_motion` (``-inf`` median beyond the integration distance).
     eta : ndarray, shape (n_events, n_ims) [-]
     eps : ndarray, shape (n_events, n_ims, n_sites) [-]
-        Standard-normal residuals (:class:`quakefolio.core.gmf.FieldSampler`).
+        Standard-normal residuals (:class:`quakefolio.core.events.gmf.FieldSampler`).
     truncation_sigma : float or None
 
     Returns
     -------
     ndarray, shape (n_events, n_ims, n_sites) [ln g]
-        :func:`quakefolio.core.gmf.ln_im` where the median is finite, ``-inf`` elsewhere.
+        :func:`quakefolio.core.events.gmf.ln_im` where the median is finite, ``-inf`` elsewhere.
     """
     with np.errstate(invalid="ignore"):
         out = ln_im(np.where(np.isfinite(ln_median), ln_median, 0.0), tau, phi, eta, eps, truncation_sigma)

@@ -2,7 +2,7 @@ r"""Hazard sites from asset locations: exact locations or nodes of a local squar
 
 With a grid spacing :math:`s > 0`, asset positions are projected to a local
 azimuthal-equidistant plane about a reference point (Snyder 1987, ch. 25;
-:func:`quakefolio.core.geometry.aeqd_forward`), snapped to the nearest node
+:func:`quakefolio.core.sources.geometry.aeqd_forward`), snapped to the nearest node
 :math:`(\mathrm{round}(x/s)\,s, \mathrm{round}(y/s)\,s)` and projected back.  The assets of
 one node share a site whose Vs30 is the geometric mean of theirs,
 :math:`\exp(\overline{\ln V_{S30}})` (common practice for gridded portfolio hazard: one
@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from quakefolio.core.geometry import aeqd_forward, aeqd_inverse, mean_position
+from quakefolio.core.sources.geometry import aeqd_forward, aeqd_inverse, mean_position
 
 __all__ = ["grid_reference", "group_rows", "compensated_group_mean", "snap_sites", "exact_sites"]
 
@@ -44,7 +44,7 @@ def grid_reference(lon, lat):
     Returns
     -------
     (lon, lat) : tuple of float [deg]
-        :func:`quakefolio.core.geometry.mean_position` rounded to 2 decimals, so that small
+        :func:`quakefolio.core.sources.geometry.mean_position` rounded to 2 decimals, so that small
         exposure edits keep it (and cached hazard of unchanged sites stays valid); the
         projection error of so small a shift is negligible.
     """

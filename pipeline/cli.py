@@ -116,7 +116,7 @@ def _parser():
 
 
 def _dask_address(text):
-    from quakefolio.pipeline.config import _dask_address as problem_with
+    from quakefolio.pipeline.io.config import _dask_address as problem_with
 
     if not text or problem_with(text):
         raise argparse.ArgumentTypeError(f"expected a Dask scheduler address such as 'tcp://10.0.0.5:8786', "
@@ -194,7 +194,7 @@ def _run(args, stages_to_run="all"):
 def _backend(args, config):
     """(backend, address): the config's [execution], overridden by --executor / --address."""
     from quakefolio.core.errors import InputError
-    from quakefolio.pipeline.config import resolve_execution
+    from quakefolio.pipeline.io.config import resolve_execution
 
     if args.executor == "local" and args.address:
         raise InputError("--address", "applies to --executor dask, not --executor local")
@@ -277,7 +277,7 @@ def _fit_fragility(args):
     from quakefolio.core.errors import InputError
     from quakefolio.fragility import fitting
     from quakefolio.pipeline.caution import CAUTION
-    from quakefolio.pipeline.fit_io import read_fit_data, write_fitted_state
+    from quakefolio.pipeline.io.fit_data import read_fit_data, write_fitted_state
 
     if args.write_library:
         missing = [opt for opt, v in (("--class", args.class_code), ("--state", args.state)) if not v]

@@ -5,7 +5,7 @@ Import this module only after :func:`quakefolio.pipeline.env.configure_prefect` 
 set Prefect's environment (the CLI does it first thing).  Stages that run once (ingest,
 combining blocks, writing the run) are tasks in the flow's process; block stages are
 submitted to the flow's task runner with small arguments (a run reference and a block:
-:mod:`quakefolio.pipeline.blocks`), so the same executor serves a thread pool and a Dask
+:mod:`quakefolio.pipeline.stages.blocks`), so the same executor serves a thread pool and a Dask
 cluster.  Tasks use no cache policy and do not persist results (Prefect would pickle
 large arrays); flow parameters stay small JSON.  The stage sequence is shared with the
 plain library path, so both give identical tables.
@@ -16,8 +16,9 @@ from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 
-from quakefolio.pipeline import progress, stages
+from quakefolio.pipeline import progress
 from quakefolio.pipeline.runner import execute, stage_guard
+from quakefolio.pipeline.stages.inputs import load_inputs
 
 __all__ = ["portfolio_risk", "run_flow", "PrefectExecutor"]
 
@@ -97,7 +98,7 @@ def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
     """
     executor = PrefectExecutor()
     executor.config_path = config_path
-    inputs = executor.one("ingest", stages.load_inputs, config_path)
+    inputs = executor.one("ingest", load_inputs, config_path)
     return str(execute(inputs, executor, stages_to_run=stages_to_run))
 
 

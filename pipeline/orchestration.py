@@ -4,7 +4,7 @@ The flow is the same as for a local run; only its task runner differs
 (``prefect_dask.DaskTaskRunner``).  Stages that run once (ingest, combining blocks,
 writing the run) stay in the driver process; block tasks (hazard site blocks,
 disaggregation site blocks, (site, class) blocks, event chunks) run on the workers with
-a small run reference and their block (see :mod:`quakefolio.pipeline.blocks`).
+a small run reference and their block (see :mod:`quakefolio.pipeline.stages.blocks`).
 
 Every task reports to one Prefect API: :func:`run_on_dask` connects to (or starts) a
 local server on 127.0.0.1 (:mod:`quakefolio.pipeline.server`) and runs the flow with
@@ -19,7 +19,7 @@ import os
 from contextlib import contextmanager
 from pathlib import Path
 
-from quakefolio.pipeline.config import resolve_execution  # noqa: F401 - part of this module's API
+from quakefolio.pipeline.io.config import resolve_execution  # noqa: F401 - part of this module's API
 
 __all__ = ["LOCAL_CLUSTER", "resolve_execution", "dask_task_runner", "run_on_dask", "using_api",
            "flush_to_api"]

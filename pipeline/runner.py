@@ -2,8 +2,8 @@
 
 :func:`execute` reads as the pipeline: hazard (compute mode) -> damage and loss ->
 event-based portfolio -> screening and what-if -> store.  Each stage returns a frozen
-product (:mod:`quakefolio.pipeline.products`); block stages are mapped over blocks with
-small arguments (:mod:`quakefolio.pipeline.blocks`).  An *executor* decides how a stage
+product (:mod:`quakefolio.pipeline.stages.products`); block stages are mapped over blocks with
+small arguments (:mod:`quakefolio.pipeline.stages.blocks`).  An *executor* decides how a stage
 runs: :class:`SequentialExecutor` in this thread, or
 :class:`quakefolio.pipeline.flow.PrefectExecutor` as Prefect tasks (on threads or on Dask).
 """
@@ -15,16 +15,18 @@ import time
 from importlib import metadata
 
 from quakefolio.core.errors import InputError
-from quakefolio.pipeline import blocks, progress, stages
-from quakefolio.pipeline import hazard_stage as hs
-from quakefolio.pipeline import portfolio_stage as ps
-from quakefolio.pipeline import whatif
-from quakefolio.pipeline.cache import digest, fragility_class_digests
+from quakefolio.pipeline import progress
 from quakefolio.pipeline.caution import CAUTION
-from quakefolio.pipeline.products import CacheCounts, EventProduct, WhatIfProduct
-from quakefolio.pipeline.run_inputs import run_input_frames
-from quakefolio.pipeline.store import RunWriter, new_run_id
-from quakefolio.pipeline.tables import TABLES, units_for
+from quakefolio.pipeline.io.cache import digest, fragility_class_digests
+from quakefolio.pipeline.io.run_inputs import run_input_frames
+from quakefolio.pipeline.io.store import RunWriter, new_run_id
+from quakefolio.pipeline.io.tables import TABLES, units_for
+from quakefolio.pipeline.stages import blocks, whatif
+from quakefolio.pipeline.stages import events as ps
+from quakefolio.pipeline.stages import hazard as hs
+from quakefolio.pipeline.stages.damage import combine_damage, plan_blocks
+from quakefolio.pipeline.stages.inputs import load_inputs, stage_cache, with_hazard
+from quakefolio.pipeline.stages.products import CacheCounts, EventProduct, RunInputs, WhatIfProduct
 
 __all__ = ["execute", "SequentialExecutor", "write_run", "run_pure", "inputs_digest", "package_versions",
            "StageError", "stage_guard"]
@@ -131,7 +133,7 @@ def run_hazard(inputs, ref, executor, work, clock):
     ref : RunRef
     executor : SequentialExecutor or PrefectExecutor
     work : Path
-        Work folder for files other processes read (:func:`quakefolio.pipeline.blocks.work_folder`).
+        Work folder for files other processes read (:func:`quakefolio.pipeline.stages.blocks.work_folder`).
     clock : callable(name, since)
 
     Returns
@@ -143,7 +145,7 @@ def run_hazard(inputs, ref, executor, work, clock):
     site_blocks = hs.site_blocks(len(inputs.hazard.site_id), inputs.config["execution"]["site_block_size"])
     parts = executor.many("hazard-block", blocks.hazard_task, ref, site_blocks)
     model, hazard = executor.one("hazard-statistics", hs.combine_hazard, inputs.hazard_model, inputs.hazard, parts)
-    inputs = stages.with_hazard(inputs, model, hazard)
+    inputs = with_hazard(inputs, model, hazard)
     ref = blocks.publish_hazard(ref, inputs, work)
     counts = _site_counts("hazard_sites", parts)
     clock("hazard_s", t)
@@ -151,7 +153,7 @@ def run_hazard(inputs, ref, executor, work, clock):
         t = time.perf_counter()
         parts = executor.many("disaggregation-block", blocks.disagg_task, ref, site_blocks)
         model = executor.one("disaggregation-combine", hs.combine_disaggregation, model, hazard, parts)
-        inputs = stages.with_hazard(inputs, model, hazard)
+        inputs = with_hazard(inputs, model, hazard)
         blocks.register(inputs, ref)
         counts = counts + _site_counts("disaggregation_sites", parts)
         clock("disaggregation_s", t)
@@ -166,9 +168,9 @@ def run_damage(inputs, ref, executor, clock):
     (DamageProduct, CacheCounts)
     """
     t = time.perf_counter()
-    plan = stages.plan_blocks(inputs)
+    plan = plan_blocks(inputs)
     results = executor.many("damage-and-loss-block", blocks.damage_task, ref, list(plan.blocks))
-    damage = executor.one("damage-and-loss-tables", stages.combine_damage, inputs, plan, results)
+    damage = executor.one("damage-and-loss-tables", combine_damage, inputs, plan, results)
     clock("damage_loss_s", t)
     return damage, plan.counts or CacheCounts()
 
@@ -183,7 +185,7 @@ def run_events(inputs, ref, executor, clock):
     if not inputs.config["portfolio"]["event_based"]:
         return None, None, CacheCounts()
     t = time.perf_counter()
-    cache = stages.stage_cache(inputs)
+    cache = stage_cache(inputs)
     key = ps.event_cache_key(inputs)
     cached = ps.load_cached(cache, key)
     em = None
@@ -208,7 +210,7 @@ def run_whatif(inputs, damage, events, em, executor, clock):
     (WhatIfProduct, CacheCounts)
     """
     t = time.perf_counter()
-    cache = stages.stage_cache(inputs)
+    cache = stage_cache(inputs)
     key = digest("screening-and-what-if", inputs.inputs_sha256)  # every input file and setting
     cached = ps.load_cached(cache, key, kind="whatif")
     if cached is None:
@@ -258,8 +260,8 @@ def execute(inputs, executor, *, stages_to_run="all"):
 
 def _hazard_frames(inputs):
     frames = {
-        "site_hazard": stages.site_hazard_table(inputs),
-        "hazard_at_return_periods": stages.hazard_at_return_periods_table(inputs),
+        "site_hazard": hs.site_hazard_table(inputs),
+        "hazard_at_return_periods": hs.hazard_at_return_periods_table(inputs),
     }
     model = inputs.hazard_model
     if model is not None and model.disagg is not None:
@@ -373,5 +375,5 @@ def run_pure(config_path, stages_to_run="all"):
     Path
         The run folder.
     """
-    inputs = config_path if isinstance(config_path, stages.RunInputs) else stages.load_inputs(config_path)
+    inputs = config_path if isinstance(config_path, RunInputs) else load_inputs(config_path)
     return execute(inputs, SequentialExecutor(), stages_to_run=stages_to_run)

@@ -29,12 +29,12 @@ from pathlib import Path
 from prefect import flow, get_run_logger
 from prefect.task_runners import ThreadPoolTaskRunner
 
-from quakefolio.pipeline import stages
-from quakefolio.pipeline.config import resolve_execution
+from quakefolio.pipeline.stages.inputs import load_inputs
+from quakefolio.pipeline.io.config import resolve_execution
 from quakefolio.pipeline.flow import portfolio_risk
 from quakefolio.pipeline.orchestration import dask_task_runner, using_api
 from quakefolio.pipeline.runner import inputs_digest
-from quakefolio.pipeline.store import latest_run
+from quakefolio.pipeline.io.store import latest_run
 
 __all__ = ["scheduled_portfolio_risk", "serve_schedule", "unchanged_since", "deployment_name", "check_cron",
            "FLOW_NAME"]
@@ -72,7 +72,7 @@ def scheduled_portfolio_risk(config_path: str) -> str:
 
     Returns the new run folder, or ``""`` when nothing was written.
     """
-    inputs = stages.load_inputs(config_path)  # a bad input fails this run and writes nothing
+    inputs = load_inputs(config_path)  # a bad input fails this run and writes nothing
     same = unchanged_since(inputs)
     if same is not None:
         _say(f"inputs unchanged since run {same.name}; nothing written")

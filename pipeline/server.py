@@ -33,7 +33,7 @@ from pathlib import Path
 from urllib.parse import urlsplit
 
 from quakefolio.pipeline.env import state_folder
-from quakefolio.pipeline.store import process_alive
+from quakefolio.pipeline.io.store import process_alive
 
 __all__ = ["LOOPBACK", "LocalServer", "ServerError", "server_folder", "find_server", "start_server",
            "ensure_server", "connect_or_start", "is_healthy"]

@@ -1,8 +1,8 @@
-"""The short printed summary of a finished run (read through :class:`~quakefolio.pipeline.store.RunFolder`)."""
+"""The short printed summary of a finished run (read through :class:`~quakefolio.pipeline.io.store.RunFolder`)."""
 from __future__ import annotations
 
 from quakefolio.pipeline.caution import CAUTION
-from quakefolio.pipeline.store import RunFolder
+from quakefolio.pipeline.io.store import RunFolder
 
 __all__ = ["summary_text"]
 

@@ -19,7 +19,7 @@ import pytest
 from quakefolio.core.errors import InputError
 from quakefolio.fragility import load_library
 from quakefolio.pipeline.cli import main
-from quakefolio.pipeline.ingest import read_hazard_curves, read_table, EXPOSURE_COLUMNS
+from quakefolio.pipeline.io.ingest import read_hazard_curves, read_table, EXPOSURE_COLUMNS
 
 REPO = Path(__file__).resolve().parents[1]
 DATA = REPO / "tests" / "data"
@@ -179,7 +179,7 @@ def test_console_script_accepts_mini_without_prefect():
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert re.search(r"^OK: .*mini/quakefolio\.toml: 5 assets", proc.stdout, re.M), proc.stdout
     imported = {ln.rsplit("|", 1)[-1].strip() for ln in proc.stderr.splitlines() if ln.startswith("import time:")}
-    assert "quakefolio.pipeline.ingest" in imported
+    assert "quakefolio.pipeline.io.ingest" in imported
     assert not {m for m in imported if m.split(".")[0] == "prefect"}, "check must not import Prefect"
     assert not (MINI / "output").exists()
 

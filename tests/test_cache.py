@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import read_table
+from quakefolio.pipeline.io.store import read_table
 
 from conftest import MINI
 

@@ -18,7 +18,7 @@ from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.cli import main
 from quakefolio.pipeline.compare import compare_runs, resolve_run, write_change_report
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import read_table, table_metadata, to_arrow
+from quakefolio.pipeline.io.store import read_table, table_metadata, to_arrow
 
 REPORT_FILES = {"change_assets.parquet", "change_asset_damage.parquet", "change_portfolio.parquet",
                 "change_causes.json"}

@@ -6,9 +6,9 @@ import pytest
 from numpy.testing import assert_array_equal
 
 from quakefolio.core import ims
-from quakefolio.core.gmf import BJ08_PGA_PERIOD_S, cross_im_correlation_matrix
+from quakefolio.core.events.gmf import BJ08_PGA_PERIOD_S, cross_im_correlation_matrix
 from quakefolio.core.gmm import im_period_s, mechanism_flags
-from quakefolio.core.ruptures import slip_type_from_rake
+from quakefolio.core.sources.ruptures import slip_type_from_rake
 
 # --- IM names: quakefolio.core.ims is the one parser ------------------------------------------
 

@@ -8,9 +8,9 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
 from conftest import DEMO
-from quakefolio.core.geometry import aeqd_forward, aeqd_inverse, mean_position
+from quakefolio.core.sources.geometry import aeqd_forward, aeqd_inverse, mean_position
 from quakefolio.core.sites import compensated_group_mean, exact_sites, group_rows, snap_sites
-from quakefolio.pipeline.hazard_stage import build_sites
+from quakefolio.pipeline.stages.hazard import build_sites
 
 
 def _reference_build_sites(exposure, spacing_km, default_vs30):

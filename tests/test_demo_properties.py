@@ -7,7 +7,7 @@ from scipy import integrate
 from quakefolio.core.curves import prob_in_years
 from quakefolio.core.loss import expected_annual_loss, loss_exceedance_rates
 from quakefolio.pipeline import stages
-from quakefolio.pipeline.ingest import curves_for_im
+from quakefolio.pipeline.io.ingest import curves_for_im
 
 from conftest import DEMO
 

@@ -10,7 +10,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from quakefolio.core.economics import annuity_factor, benefit_cost_ratio, present_value
-from quakefolio.pipeline import whatif
+from quakefolio.pipeline.stages import whatif
 
 
 @pytest.mark.parametrize("r, t", [(0.03, 50), (0.07, 10), (0.001, 100), (0.25, 3), (1e-6, 40)])

@@ -1,6 +1,6 @@
-"""Event-based arithmetic in the core: random streams (quakefolio.core.eventset), event
+"""Event-based arithmetic in the core: random streams (quakefolio.core.events.eventset), event
 ground motion on the classical engine's pairs (quakefolio.core.hazard) and event losses
-and cross-check statistics (quakefolio.core.event_losses), each equal, bit for bit, to the
+and cross-check statistics (quakefolio.core.events.losses), each equal, bit for bit, to the
 previous stage code on random inputs (kept below as the reference)."""
 from __future__ import annotations
 
@@ -9,20 +9,20 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_array_equal
 
-from quakefolio.core.event_losses import (
+from quakefolio.core.events.losses import (
     aal_cross_check, annual_average_by, asset_aal_statistics, event_hazard_cross_check, exceedance_counts,
     portfolio_event_losses, sum_over_blocks,
 )
-from quakefolio.core.eventset import (
+from quakefolio.core.events.eventset import (
     MAX_CLASS_ENTRIES, STREAM_DAMAGE, STREAM_EVENT_SET, STREAM_GMM_CHOICE, STREAM_GROUND_MOTION, STREAM_LOSS_RATIO,
     block_rng, class_block_index, damage_block_rng, stream_rng,
 )
-from quakefolio.core.geometry import pair_distances, site_rupture_mask
+from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
 from quakefolio.core.gmm import GmmInput, get_gmm
 from quakefolio.core.hazard import event_ground_motion
-from quakefolio.core.mfd import truncated_gr
-from quakefolio.core.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio, sample_loss_ratio
-from quakefolio.core.ruptures import RuptureSet, planar_fault_ruptures, point_source_ruptures
+from quakefolio.core.sources.mfd import truncated_gr
+from quakefolio.core.events.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio, sample_loss_ratio
+from quakefolio.core.sources.ruptures import RuptureSet, planar_fault_ruptures, point_source_ruptures
 
 
 def _same(a, b):

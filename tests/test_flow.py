@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import latest_run, read_table
+from quakefolio.pipeline.io.store import latest_run, read_table
 
 from conftest import DEMO
 

@@ -13,7 +13,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from quakefolio.core.geo import great_circle_km
-from quakefolio.core.geometry import (
+from quakefolio.core.sources.geometry import (
     aeqd_forward,
     aeqd_inverse,
     pair_distances,
@@ -21,7 +21,7 @@ from quakefolio.core.geometry import (
     rupture_distances,
     site_rupture_mask,
 )
-from quakefolio.core.ruptures import RuptureSet
+from quakefolio.core.sources.ruptures import RuptureSet
 
 REF = (12.0, 45.0)  # projection centre of the km-frame tests (lon, lat) [deg]
 

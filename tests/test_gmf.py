@@ -11,7 +11,7 @@ import pytest
 import scipy.stats as st
 from numpy.testing import assert_allclose, assert_array_equal
 
-from quakefolio.core.eventset import (
+from quakefolio.core.events.eventset import (
     EVENT_BLOCK_SIZE,
     STREAM_DAMAGE,
     EventSet,
@@ -19,7 +19,7 @@ from quakefolio.core.eventset import (
     event_blocks,
     stochastic_event_set,
 )
-from quakefolio.core.gmf import (
+from quakefolio.core.events.gmf import (
     FieldSampler,
     bj08_correlation,
     cross_im_correlation_matrix,

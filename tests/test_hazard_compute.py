@@ -9,11 +9,12 @@ from numpy.testing import assert_allclose
 
 from quakefolio.core.gmm import GmmResult
 from quakefolio.core.hazard import compute_site_hazard, weighted_mean
-from quakefolio.core.mfd import single_magnitude, truncated_gr
-from quakefolio.core.ruptures import RuptureSet, planar_fault_ruptures, point_source_ruptures
-from quakefolio.pipeline import hazard_stage, stages
+from quakefolio.core.sources.mfd import single_magnitude, truncated_gr
+from quakefolio.core.sources.ruptures import RuptureSet, planar_fault_ruptures, point_source_ruptures
+from quakefolio.pipeline import stages
+from quakefolio.pipeline.stages import hazard as hazard_stage
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import read_table
+from quakefolio.pipeline.io.store import read_table
 
 from conftest import MINI
 from test_hazard_engine import closed_form_rate

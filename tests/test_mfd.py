@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from quakefolio.core.mfd import (
+from quakefolio.core.sources.mfd import (
     MagnitudeBins,
     characteristic_yc85,
     mfd_moment_rate,

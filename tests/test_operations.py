@@ -19,10 +19,10 @@ import psutil
 import pytest
 
 from quakefolio.core.errors import InputError
-from quakefolio.pipeline.config import load_config, resolve_execution
+from quakefolio.pipeline.io.config import load_config, resolve_execution
 from quakefolio.pipeline.runner import SequentialExecutor, execute, run_pure
 from quakefolio.pipeline.stages import load_inputs
-from quakefolio.pipeline.store import latest_run, read_table
+from quakefolio.pipeline.io.store import latest_run, read_table
 
 from conftest import MINI
 
@@ -113,7 +113,7 @@ class _OtherProcess(SequentialExecutor):
         self.resolved = []
 
     def many(self, name, fn, ref, items):
-        from quakefolio.pipeline import blocks
+        from quakefolio.pipeline.stages import blocks
 
         out = []
         for item in items:
@@ -127,7 +127,7 @@ class _OtherProcess(SequentialExecutor):
 def test_block_tasks_in_another_process_give_the_in_memory_results(tmp_path, config):
     """Block tasks take only a run reference and their block: rebuilt from files, as on a Dask
     worker, they give identical tables, and the work folder is removed."""
-    from quakefolio.pipeline import blocks
+    from quakefolio.pipeline.stages import blocks
 
     remote_cfg = _copy_mini(tmp_path / "remote", config=config)
     reference = run_pure(_copy_mini(tmp_path / "reference", config=config))
@@ -143,8 +143,8 @@ def test_block_tasks_in_another_process_give_the_in_memory_results(tmp_path, con
 
 
 def test_block_task_refuses_inputs_that_differ_from_the_driver(tmp_path):
-    from quakefolio.pipeline import blocks
-    from quakefolio.pipeline.products import RunRef
+    from quakefolio.pipeline.stages import blocks
+    from quakefolio.pipeline.stages.products import RunRef
 
     cfg = _copy_mini(tmp_path / "m", config="quakefolio.toml")
     blocks.clear()
@@ -210,7 +210,7 @@ def test_dask_run_equals_local_run(tmp_path, prefect_server, ops_state):
     tables as the local thread-pool run."""
     from distributed import Client, LocalCluster
 
-    from quakefolio.pipeline import blocks
+    from quakefolio.pipeline.stages import blocks
     from quakefolio.pipeline.flow import run_flow
 
     local = run_flow(_copy_mini(tmp_path / "local"), max_workers=2)

@@ -11,7 +11,7 @@ from quakefolio.core.curves import prob_in_years
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.pipeline import stages
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import RunWriter, latest_run, read_table, table_metadata
+from quakefolio.pipeline.io.store import RunWriter, latest_run, read_table, table_metadata
 
 TABLES = ["site_hazard", "hazard_at_return_periods", "asset_damage", "asset_loss", "asset_loss_curve",
           "collapse_screening", "site_risk_targeted_im", "run_assets", "run_fragility"]
@@ -88,7 +88,7 @@ def test_hazard_at_return_periods_flags(mini_config):
 def test_failed_write_leaves_earlier_runs_and_latest_intact(mini_config, monkeypatch):
     first = run_pure(mini_config)
     out = mini_config.parent / "output"
-    from quakefolio.pipeline import store
+    from quakefolio.pipeline.io import store
 
     def boom(*args, **kwargs):
         raise OSError("disk full (simulated)")
@@ -123,7 +123,7 @@ def test_stale_partial_is_removed_and_never_visible(tmp_path):
 
 def test_parquet_and_csv_hazard_curves_agree():
     from conftest import DEMO
-    from quakefolio.pipeline.ingest import read_hazard_curves
+    from quakefolio.pipeline.io.ingest import read_hazard_curves
 
     a = read_hazard_curves(DEMO / "hazard_curves.csv")
     b = read_hazard_curves(DEMO / "hazard_curves.parquet")
@@ -136,7 +136,7 @@ def test_parquet_and_csv_hazard_curves_agree():
 def test_hazard_unit_conversion(tmp_path):
     # 1 g = 9.80665 m/s2 (standard gravity, CGPM 1901)
     from conftest import MINI
-    from quakefolio.pipeline.ingest import read_hazard_curves
+    from quakefolio.pipeline.io.ingest import read_hazard_curves
 
     df = pd.read_csv(MINI / "hazard_curves.csv")
     df["im_level"] = df["im_level"] * 9.80665

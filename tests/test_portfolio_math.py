@@ -1,11 +1,11 @@
-"""Loss and aggregation math of the event-based portfolio stage (quakefolio.core.portfolio)."""
+"""Loss and aggregation math of the event-based portfolio stage (quakefolio.core.events.portfolio)."""
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 from scipy import integrate, stats
 
 from quakefolio.core.loss import beta_parameters
-from quakefolio.core.portfolio import (
+from quakefolio.core.events.portfolio import (
     aal_with_standard_error,
     apply_policy,
     ep_from_years,

@@ -7,10 +7,10 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
 
-from quakefolio.core.gmf import FieldSampler
-from quakefolio.core.portfolio import expected_loss_ratio
+from quakefolio.core.events.gmf import FieldSampler
+from quakefolio.core.events.portfolio import expected_loss_ratio
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import read_table
+from quakefolio.pipeline.io.store import read_table
 
 from conftest import MINI
 

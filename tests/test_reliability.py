@@ -13,7 +13,7 @@ import pandas as pd
 import pytest
 
 from quakefolio.pipeline.cli import main
-from quakefolio.pipeline.store import PARTIAL_PREFIX, latest_run, read_table
+from quakefolio.pipeline.io.store import PARTIAL_PREFIX, latest_run, read_table
 
 from conftest import MINI
 

@@ -12,7 +12,7 @@ from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.cli import main
 from quakefolio.pipeline.report import SECTIONS, build_report, write_report
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import PARTIAL_PREFIX, read_table
+from quakefolio.pipeline.io.store import PARTIAL_PREFIX, read_table
 
 from conftest import MINI
 

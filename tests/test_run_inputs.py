@@ -10,11 +10,11 @@ import pytest
 
 from quakefolio.fragility import load_library
 from quakefolio.pipeline.compare import compare_runs, write_change_report
-from quakefolio.pipeline.ingest import read_exposure
+from quakefolio.pipeline.io.ingest import read_exposure
 from quakefolio.pipeline.report import build_report
-from quakefolio.pipeline.run_inputs import ASSET_COLUMNS, library_from_frame, run_input_frames
+from quakefolio.pipeline.io.run_inputs import ASSET_COLUMNS, library_from_frame, run_input_frames
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import RunFolder, atomic_write_text, table_metadata
+from quakefolio.pipeline.io.store import RunFolder, atomic_write_text, table_metadata
 
 from conftest import MINI
 

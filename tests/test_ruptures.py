@@ -5,9 +5,9 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from quakefolio.core.geometry import aeqd_forward, mean_position
-from quakefolio.core.mfd import single_magnitude, truncated_gr
-from quakefolio.core.ruptures import (
+from quakefolio.core.sources.geometry import aeqd_forward, mean_position
+from quakefolio.core.sources.mfd import single_magnitude, truncated_gr
+from quakefolio.core.sources.ruptures import (
     RuptureSet,
     area_source_ruptures,
     planar_fault_ruptures,

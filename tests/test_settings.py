@@ -11,7 +11,7 @@ from types import MappingProxyType
 
 import pytest
 
-from quakefolio.pipeline.config import SCHEMA, SETTINGS_CLASSES, load_config
+from quakefolio.pipeline.io.config import SCHEMA, SETTINGS_CLASSES, load_config
 
 REPO = Path(__file__).resolve().parents[1]
 CONFIGS = sorted((REPO / "demo_portfolio").glob("quakefolio*.toml")) + sorted(

@@ -1,4 +1,4 @@
-"""Collapse-risk screening and retrofit what-if (pipeline/whatif.py), on copies of tests/data/mini."""
+"""Collapse-risk screening and retrofit what-if (pipeline/stages/whatif.py), on copies of tests/data/mini."""
 import shutil
 
 import numpy as np
@@ -11,12 +11,13 @@ from quakefolio.core.errors import InputError
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.risk import damage_state_rates, risk_targeted_im
 from quakefolio.fragility import load_library
-from quakefolio.pipeline import stages, whatif
+from quakefolio.pipeline import stages
+from quakefolio.pipeline.stages import whatif
 from quakefolio.pipeline.cli import main
-from quakefolio.pipeline.ingest import curves_for_im
-from quakefolio.pipeline.portfolio_stage import prepare_events
+from quakefolio.pipeline.io.ingest import curves_for_im
+from quakefolio.pipeline.stages.events import prepare_events
 from quakefolio.pipeline.runner import run_pure
-from quakefolio.pipeline.store import read_table
+from quakefolio.pipeline.io.store import read_table
 from quakefolio.pipeline.summary import summary_text
 
 from conftest import DEMO, MINI

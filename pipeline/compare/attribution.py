@@ -196,13 +196,13 @@ def compare_runs(run_a, run_b):
     ----------
     run_a, run_b : path-like or RunFolder
         Run folders, or output folders standing for their ``LATEST`` run; a
-        :class:`~quakefolio.pipeline.store.RunFolder` is read as it is.
+        :class:`~quakefolio.pipeline.io.store.RunFolder` is read as it is.
 
     Returns
     -------
     dict
         ``change_assets``, ``change_asset_damage``, ``change_portfolio`` (DataFrames, long
-        form, described in the module docstring and in :mod:`quakefolio.pipeline.tables`)
+        form, described in the module docstring and in :mod:`quakefolio.pipeline.io.tables`)
         and ``change_causes`` (a JSON-ready dict: the run-level cause summary).
 
     Raises

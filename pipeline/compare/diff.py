@@ -1,7 +1,7 @@
 """Reading two runs and the differences between them: settings, hazard curves, assets, damage, portfolio.
 
 Part of the change report (:mod:`quakefolio.pipeline.compare`); runs are read through
-:class:`quakefolio.pipeline.store.RunFolder` only.
+:class:`quakefolio.pipeline.io.store.RunFolder` only.
 """
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ import pandas as pd
 
 from quakefolio.core.errors import InputError
 from quakefolio.core.ims import im_period
-from quakefolio.pipeline.store import PARTIAL_PREFIX, RunFolder, latest_run
+from quakefolio.pipeline.io.store import PARTIAL_PREFIX, RunFolder, latest_run
 
 __all__ = ["CAUSES", "HAZARD_RTOL", "RESULT_RTOL", "SETTING_SCOPES", "resolve_run", "load_run"]
 
@@ -103,7 +103,7 @@ def resolve_run(path):
 
 
 def load_run(path):
-    """A finished run with asset results, read through :class:`~quakefolio.pipeline.store.RunFolder`.
+    """A finished run with asset results, read through :class:`~quakefolio.pipeline.io.store.RunFolder`.
 
     Parameters
     ----------

@@ -14,8 +14,8 @@ from quakefolio.core.errors import InputError
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.compare.attribution import compare_runs
 from quakefolio.pipeline.compare.diff import CAUSES
-from quakefolio.pipeline.store import PARTIAL_PREFIX, fsync_path, to_arrow
-from quakefolio.pipeline.tables import TABLES, units_for
+from quakefolio.pipeline.io.store import PARTIAL_PREFIX, fsync_path, to_arrow
+from quakefolio.pipeline.io.tables import TABLES, units_for
 
 __all__ = ["write_change_report", "change_summary_text"]
 

@@ -15,9 +15,9 @@ still present, holding a note that says why.  A section that fails to draw holds
 with the error instead of breaking the whole report.
 
 :func:`write_report` writes it atomically
-(:func:`quakefolio.pipeline.store.atomic_write_text`).
+(:func:`quakefolio.pipeline.io.store.atomic_write_text`).
 
-The report reads the run folder only (:class:`quakefolio.pipeline.store.RunFolder`): the
+The report reads the run folder only (:class:`quakefolio.pipeline.io.store.RunFolder`): the
 assets and fragility classes come from the run's ``run_assets`` and ``run_fragility``
 tables, never from the user's input files; a run written before those tables existed
 gets a one-line note in the sections that need them.

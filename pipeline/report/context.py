@@ -1,4 +1,4 @@
-"""The run as the report sees it: a :class:`~quakefolio.pipeline.store.RunFolder` whose missing
+"""The run as the report sees it: a :class:`~quakefolio.pipeline.io.store.RunFolder` whose missing
 tables read as None, and small helpers shared by the sections."""
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ from pathlib import Path
 
 from quakefolio.core.errors import InputError
 from quakefolio.core.ims import im_period
-from quakefolio.pipeline.store import RunFolder
+from quakefolio.pipeline.io.store import RunFolder
 
 #: The screening section lists at most this many flagged assets (the table holds them all).
 SCREENING_ROWS = 50

@@ -14,7 +14,7 @@ from quakefolio.pipeline.report.sections_changes import _section_changes
 from quakefolio.pipeline.report.sections_hazard import _section_hazard
 from quakefolio.pipeline.report.sections_overview import _key_figures, _section_checks, _section_inputs
 from quakefolio.pipeline.report.sections_portfolio import _section_portfolio, _section_screening, _section_whatif
-from quakefolio.pipeline.store import atomic_write_text
+from quakefolio.pipeline.io.store import atomic_write_text
 
 __all__ = ["build_report", "write_report", "SECTIONS"]
 
@@ -123,7 +123,7 @@ def write_report(run_dir, out_path, *, previous_run=None):
 
     Notes
     -----
-    Written through :func:`quakefolio.pipeline.store.atomic_write_text` (temporary file in
+    Written through :func:`quakefolio.pipeline.io.store.atomic_write_text` (temporary file in
     the target folder, fsync, ``os.replace``): readers see the old file or the new one,
     never a half-written one.
     """

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 
 from quakefolio.core.errors import InputError
-from quakefolio.pipeline.store import RunFolder
+from quakefolio.pipeline.io.store import RunFolder
 from quakefolio.pipeline.report.context import TOP_ASSETS
 from quakefolio.pipeline.report.html import (
     _cell, _esc, _facts, _finite, _html, _money, _note, _p, _pct, _prob, _signed_money, _table,

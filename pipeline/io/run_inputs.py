@@ -71,7 +71,7 @@ def run_input_frames(exposure, library, classes=None):
     Parameters
     ----------
     exposure : pandas.DataFrame
-        The validated exposure (``quakefolio.pipeline.ingest.read_exposure``): columns
+        The validated exposure (``quakefolio.pipeline.io.ingest.read_exposure``): columns
         ``asset_id``, ``lon``, ``lat`` [deg, WGS84], ``building_class``,
         ``replacement_value`` [currency], optional ``vs30_mps`` [m/s], ``occupants`` [-],
         ``deductible``, ``limit`` [currency]; other columns are left out.

@@ -1,4 +1,4 @@
-"""Source-model files (TOML, our own layout) to a :class:`~quakefolio.core.ruptures.RuptureSet`.
+"""Source-model files (TOML, our own layout) to a :class:`~quakefolio.core.sources.ruptures.RuptureSet`.
 
 Layout::
 
@@ -43,10 +43,10 @@ from __future__ import annotations
 import math
 
 from quakefolio.core.errors import did_you_mean
-from quakefolio.core.mfd import (
+from quakefolio.core.sources.mfd import (
     characteristic_yc85, moment_balanced, moment_rate_from_slip, single_magnitude, truncated_gr,
 )
-from quakefolio.core.ruptures import (
+from quakefolio.core.sources.ruptures import (
     RuptureSet, area_source_ruptures, fault_plane_area_km2, planar_fault_ruptures, point_source_ruptures,
 )
 from quakefolio.core.validation import Field, Interval, Real, Schema, check_value, toml_place, validate_table

@@ -24,7 +24,7 @@ from quakefolio.core.errors import InputError, did_you_mean
 from quakefolio.core.geo import nearest_site
 from quakefolio.core.ims import im_period, parse_im
 from quakefolio.core.validation import Interval, MaxMagnitude, Real, WholeNumber
-from quakefolio.pipeline.config import IM_UNITS_TO_G
+from quakefolio.pipeline.io.config import IM_UNITS_TO_G
 
 __all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves", "HazardCurves", "map_assets_to_sites",
            "curves_for_im", "EXPOSURE_COLUMNS"]

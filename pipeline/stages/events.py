@@ -7,11 +7,11 @@ task each; results identical whatever the chunking) -> :func:`combine_events` (e
 year loss tables, AEP/OEP/TVaR, AAL with standard error, breakdowns, cross-checks against
 the classical results of the same model).
 
-Numerics live in :mod:`quakefolio.core.eventset` (event set, every random stream),
+Numerics live in :mod:`quakefolio.core.events.eventset` (event set, every random stream),
 :mod:`quakefolio.core.hazard` (event ground motion on the classical engine's pairs),
-:mod:`quakefolio.core.gmf` (correlated fields), :mod:`quakefolio.core.event_losses`
+:mod:`quakefolio.core.events.gmf` (correlated fields), :mod:`quakefolio.core.events.losses`
 (losses per asset and event, policy terms, sums, cross-check statistics) and
-:mod:`quakefolio.core.portfolio` (year losses, EP curves, AAL, TVaR); this module
+:mod:`quakefolio.core.events.portfolio` (year losses, EP curves, AAL, TVaR); this module
 gathers inputs, calls them and lays results out as tables.
 """
 from __future__ import annotations
@@ -22,17 +22,17 @@ import numpy as np
 import pandas as pd
 
 from quakefolio.core.errors import InputError
-from quakefolio.core.eventset import (
+from quakefolio.core.events.eventset import (
     EVENT_BLOCK_SIZE, STREAM_GMM_CHOICE, event_blocks, stochastic_event_set, stream_rng,
 )
-from quakefolio.core.event_losses import (
+from quakefolio.core.events.losses import (
     aal_cross_check, annual_average_by, asset_aal_statistics, event_hazard_cross_check, exceedance_counts,
     portfolio_event_losses, sum_over_blocks,
 )
-from quakefolio.core.gmf import FieldSampler
+from quakefolio.core.events.gmf import FieldSampler
 from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
 from quakefolio.core.loss import expected_annual_loss
-from quakefolio.core.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
+from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
 
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
@@ -177,7 +177,7 @@ def event_chunk(em, chunk):
     -------
     ChunkResult
         Event losses [currency], per-block asset and class sums and the events' IM
-        exceedance counts (:func:`quakefolio.core.event_losses.portfolio_event_losses`).
+        exceedance counts (:func:`quakefolio.core.events.losses.portfolio_event_losses`).
     """
     single_blas_thread()
     b0, b1 = chunk
@@ -200,7 +200,7 @@ def combine_events(em, inputs, results):
     Parameters
     ----------
     em : EventModel
-    inputs : :class:`quakefolio.pipeline.stages.Inputs`
+    inputs : :class:`quakefolio.pipeline.stages.products.RunInputs`
     results : list of ChunkResult
         Every chunk's result (any order).
 
@@ -210,7 +210,7 @@ def combine_events(em, inputs, results):
         ``event_loss``, ``year_loss``, ``portfolio_ep``, ``portfolio_ep_curve``,
         ``portfolio_summary``, ``asset_event_loss``, ``portfolio_breakdown``.
     checks : dict
-        Event-based vs classical statistics (:mod:`quakefolio.core.event_losses`).
+        Event-based vs classical statistics (:mod:`quakefolio.core.events.losses`).
     """
     results = sorted(results, key=lambda r: r.start)
     ev = em.events
@@ -314,8 +314,8 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
 
 def event_cache_key(inputs):
     """Digest of everything the event-based results depend on."""
-    from quakefolio.pipeline.cache import digest
-    from quakefolio.pipeline.cache import fragility_class_digests
+    from quakefolio.pipeline.io.cache import digest
+    from quakefolio.pipeline.io.cache import fragility_class_digests
 
     cfg = inputs.config
     model = inputs.hazard_model

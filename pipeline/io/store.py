@@ -369,7 +369,7 @@ class RunFolder:
 
     def fragility(self):
         """The fragility classes the run used as a FragilityLibrary, or None for older runs."""
-        from quakefolio.pipeline.run_inputs import library_from_frame
+        from quakefolio.pipeline.io.run_inputs import library_from_frame
 
         frame = self.optional_table("run_fragility")
         return None if frame is None else library_from_frame(frame)

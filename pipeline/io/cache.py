@@ -80,7 +80,7 @@ class StageCache:
     """Key -> dict of arrays, one ``.npz`` per key under ``<output>/cache/<stage>/``.
 
     A handle on the cache folder only (no state of its own): stages count their hits
-    and misses in their results (:class:`quakefolio.pipeline.products.CacheCounts`).
+    and misses in their results (:class:`quakefolio.pipeline.stages.products.CacheCounts`).
     """
 
     def __init__(self, output_folder, enabled=True):

@@ -61,11 +61,11 @@ class RunInputs:
 
     Attributes
     ----------
-    config : quakefolio.pipeline.config.Config
+    config : quakefolio.pipeline.io.config.Config
     library : quakefolio.fragility.FragilityLibrary
-    hazard : quakefolio.pipeline.ingest.HazardCurves
+    hazard : quakefolio.pipeline.io.ingest.HazardCurves
         Ingest mode: the tabulated curves [g, 1/yr].  Compute mode: the hazard sites, with
-        curves only after the hazard stage (:func:`quakefolio.pipeline.stages.with_hazard`).
+        curves only after the hazard stage (:func:`quakefolio.pipeline.stages.inputs.with_hazard`).
     exposure : pandas.DataFrame
         Validated exposure, one row per asset.
     site_index : ndarray of int (n_assets,)
@@ -78,7 +78,7 @@ class RunInputs:
         Digest of the input files and the resolved config.
     warnings : tuple of str
         Lines for the run summary and manifest.
-    hazard_model : quakefolio.pipeline.hazard_stage.HazardModel or None
+    hazard_model : quakefolio.pipeline.stages.hazard.HazardModel or None
         Compute mode: source and ground-motion logic tree, sites' Vs30, and (after the
         hazard stage) branch curves, statistics and disaggregation.
     """

@@ -43,7 +43,7 @@ from numpy.typing import ArrayLike, NDArray
 from quakefolio.core.geo import EARTH_RADIUS_KM
 
 if TYPE_CHECKING:  # pragma: no cover
-    from quakefolio.core.ruptures import RuptureSet
+    from quakefolio.core.sources.ruptures import RuptureSet
 
 __all__ = [
     "EARTH_RADIUS_KM",

@@ -21,7 +21,7 @@ Sampling (:class:`FieldSampler`)
 --------------------------------
 Everything that depends only on the sites is computed once per site set: local
 east/north coordinates (azimuthal equidistant projection about the sites' mean
-position, :func:`~quakefolio.core.geometry.aeqd_forward`), distances between unique
+position, :func:`~quakefolio.core.sources.geometry.aeqd_forward`), distances between unique
 sites, one correlation matrix :math:`C_k` per distinct range and a factor :math:`L_k`
 with :math:`L_k L_k^T \approx C_k`. A chunk of events then costs one random draw and,
 per IM, one (blocked) matrix product :math:`\varepsilon_k = W_k L_k^T` for all its events.
@@ -112,8 +112,8 @@ import scipy.linalg as sla
 from numpy.typing import ArrayLike, NDArray
 from scipy.special import expit, ndtr, ndtri
 
-from quakefolio.core.eventset import EVENT_BLOCK_SIZE, block_rng, check_seed, event_blocks
-from quakefolio.core.geometry import aeqd_forward, mean_position
+from quakefolio.core.events.eventset import EVENT_BLOCK_SIZE, block_rng, check_seed, event_blocks
+from quakefolio.core.sources.geometry import aeqd_forward, mean_position
 from quakefolio.core.ims import PGA_PERIOD_S, model_period
 
 __all__ = [
@@ -737,7 +737,7 @@ class FieldSampler:
 
         Notes
         -----
-        Block b draws from :func:`~quakefolio.core.eventset.block_rng` ``(seed, b)`` exactly
+        Block b draws from :func:`~quakefolio.core.events.eventset.block_rng` ``(seed, b)`` exactly
         as :meth:`sample` would for its events, and every block's matrix product has the
         same shape whatever the other blocks of the call, so **the residuals of an event are
         identical whatever grouping of whole blocks into tasks is used** (deterministic for

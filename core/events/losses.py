@@ -4,9 +4,9 @@ The arithmetic of the event-based stage between the sampled ground motion and th
 tables, vectorised over events and assets:
 
 1. **Loss per asset and event**: the loss ratio at the sampled intensity
-   (:func:`quakefolio.core.portfolio.expected_loss_ratio`, or sampled damage states with
+   (:func:`quakefolio.core.events.portfolio.expected_loss_ratio`, or sampled damage states with
    one random stream per event block and class entry), times the replacement value;
-   policy terms per asset and event (:func:`quakefolio.core.portfolio.apply_policy`).
+   policy terms per asset and event (:func:`quakefolio.core.events.portfolio.apply_policy`).
 2. **Sums per random-number block** (per event, per asset, per class), so that totals do
    not depend on how blocks are grouped into tasks.
 3. **Statistics of the simulation**: per-asset AAL with its compound-Poisson standard
@@ -19,8 +19,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from quakefolio.core.eventset import damage_block_rng
-from quakefolio.core.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio, sample_loss_ratio
+from quakefolio.core.events.eventset import damage_block_rng
+from quakefolio.core.events.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio, sample_loss_ratio
 
 __all__ = [
     "event_loss_ratio",
@@ -55,7 +55,7 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
         The chunk's random-number blocks and their rows in ``x``.
     class_entry : int
         Position of the class entry (its own random stream per block,
-        :func:`quakefolio.core.eventset.damage_block_rng`).
+        :func:`quakefolio.core.events.eventset.damage_block_rng`).
 
     Returns
     -------

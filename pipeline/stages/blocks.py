@@ -1,7 +1,7 @@
 """Block tasks: the functions mapped over blocks, with small arguments only.
 
-Every block task takes a :class:`~quakefolio.pipeline.products.RunRef` (paths and
-digests) and its block (a site slice, a :class:`~quakefolio.pipeline.products.WorkBlock`,
+Every block task takes a :class:`~quakefolio.pipeline.stages.products.RunRef` (paths and
+digests) and its block (a site slice, a :class:`~quakefolio.pipeline.stages.products.WorkBlock`,
 a chunk of event blocks), and finds its run's products with :func:`resolve`:
 
 * in the process that read the inputs (the plain path, a thread pool) they were
@@ -10,7 +10,7 @@ a chunk of event blocks), and finds its run's products with :func:`resolve`:
   once per process and run; a digest that differs from the driver's refuses the task
   instead of computing on other inputs; in compute mode the branch curves come from the
   ``.npy`` file the driver wrote (:func:`publish_hazard`) and pass through the same
-  :func:`quakefolio.pipeline.hazard_stage.with_branch_curves`, so a block gives the same
+  :func:`quakefolio.pipeline.stages.hazard.with_branch_curves`, so a block gives the same
   numbers in every process.  Workers must see the input files and the output folder
   under the same paths as the driver (a shared file system).
 
@@ -31,10 +31,11 @@ from pathlib import Path
 
 import numpy as np
 
-from quakefolio.pipeline import hazard_stage as hs
-from quakefolio.pipeline import portfolio_stage as ps
-from quakefolio.pipeline import stages
-from quakefolio.pipeline.products import RunRef
+from quakefolio.pipeline.stages import events as ps
+from quakefolio.pipeline.stages import hazard as hs
+from quakefolio.pipeline.stages.damage import compute_block
+from quakefolio.pipeline.stages.inputs import load_inputs, stage_cache, with_hazard
+from quakefolio.pipeline.stages.products import RunRef
 
 __all__ = ["register", "register_events", "resolve", "publish_hazard", "work_folder", "hazard_task",
            "disagg_task", "damage_task", "event_task", "clear", "resolved_runs"]
@@ -106,7 +107,7 @@ def register(inputs, ref=None):
 
 
 def register_events(ref, event_model):
-    """Make ``event_model`` (from :func:`quakefolio.pipeline.portfolio_stage.prepare_events`) that of ``ref``."""
+    """Make ``event_model`` (from :func:`quakefolio.pipeline.stages.events.prepare_events`) that of ``ref``."""
     entry = _entry(ref)
     with entry.lock:
         entry.event_model = event_model
@@ -114,7 +115,7 @@ def register_events(ref, event_model):
 
 def _read_inputs(ref):
     """The inputs of ``ref`` read from its files; they must give the driver's digest."""
-    inputs = stages.load_inputs(ref.config_path)
+    inputs = load_inputs(ref.config_path)
     if inputs.inputs_sha256 != ref.inputs_sha256:
         raise RuntimeError(
             f"the inputs of {ref.config_path} read in this process (digest {inputs.inputs_sha256[:12]}) differ from "
@@ -123,7 +124,7 @@ def _read_inputs(ref):
     if ref.hazard_file is not None:
         curves = np.load(ref.hazard_file, allow_pickle=False)
         model, hazard = hs.with_branch_curves(inputs.hazard_model, inputs.hazard, curves)
-        inputs = stages.with_hazard(inputs, model, hazard)
+        inputs = with_hazard(inputs, model, hazard)
     return inputs
 
 
@@ -208,23 +209,23 @@ def publish_hazard(ref, inputs, folder):
 
 
 def hazard_task(ref, block):
-    """:func:`quakefolio.pipeline.hazard_stage.hazard_block` for one site slice of the run ``ref``."""
+    """:func:`quakefolio.pipeline.stages.hazard.hazard_block` for one site slice of the run ``ref``."""
     inputs = resolve(ref)
-    return hs.hazard_block(inputs.hazard_model, inputs.hazard, block, stages.stage_cache(inputs))
+    return hs.hazard_block(inputs.hazard_model, inputs.hazard, block, stage_cache(inputs))
 
 
 def disagg_task(ref, block):
-    """:func:`quakefolio.pipeline.hazard_stage.disagg_block` for one site slice (needs the computed hazard)."""
+    """:func:`quakefolio.pipeline.stages.hazard.disagg_block` for one site slice (needs the computed hazard)."""
     inputs = resolve(ref)
     return hs.disagg_block(inputs.hazard_model, inputs.hazard, inputs.config["hazard"]["return_periods_yr"], block,
-                           stages.stage_cache(inputs))
+                           stage_cache(inputs))
 
 
 def damage_task(ref, block):
-    """:func:`quakefolio.pipeline.stages.compute_block` for one block of (site, class) pairs."""
-    return stages.compute_block(resolve(ref), block)
+    """:func:`quakefolio.pipeline.stages.damage.compute_block` for one block of (site, class) pairs."""
+    return compute_block(resolve(ref), block)
 
 
 def event_task(ref, chunk):
-    """:func:`quakefolio.pipeline.portfolio_stage.event_chunk` for one chunk of event blocks."""
+    """:func:`quakefolio.pipeline.stages.events.event_chunk` for one chunk of event blocks."""
     return ps.event_chunk(_event_model(ref), chunk)

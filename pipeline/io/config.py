@@ -550,7 +550,7 @@ def _alternatives(entries, path, text, base):
 
     Only the file-local checks live here (types, required keys, one cost form); asset
     ids and class codes are checked against the exposure and the fragility libraries by
-    :func:`quakefolio.pipeline.whatif.validate`.
+    :func:`quakefolio.pipeline.stages.whatif.validate`.
 
     Parameters
     ----------

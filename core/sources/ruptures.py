@@ -2,7 +2,7 @@ r"""Earthquake ruptures of a source model as a structure of arrays.
 
 Sources become :class:`RuptureSet` objects, one row per finite rectangular rupture with
 its magnitude, annual rate, mechanism, depths, dimensions and corner coordinates; the
-hazard engine consumes them together with :mod:`quakefolio.core.geometry` (distances)
+hazard engine consumes them together with :mod:`quakefolio.core.sources.geometry` (distances)
 and :mod:`quakefolio.core.gmm` (ground motion).
 
 Source types
@@ -25,7 +25,7 @@ Strike is an azimuth [deg] clockwise from north; the plane dips to the right of 
 strike direction (Aki & Richards 2002). The four corners of a rupture are, in order,
 top-start, top-end, bottom-end and bottom-start, "start -> end" being the strike
 direction; each corner is (lon [deg], lat [deg], depth [km]). Local geometry is built in
-the azimuthal equidistant projection of :mod:`quakefolio.core.geometry` and converted
+the azimuthal equidistant projection of :mod:`quakefolio.core.sources.geometry` and converted
 back to lon/lat.
 """
 from __future__ import annotations
@@ -37,9 +37,9 @@ from typing import Sequence
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from quakefolio.core.geometry import aeqd_forward, aeqd_inverse, mean_position, points_in_polygon
+from quakefolio.core.sources.geometry import aeqd_forward, aeqd_inverse, mean_position, points_in_polygon
 from quakefolio.core.gmm import mechanism_flags
-from quakefolio.core.mfd import MagnitudeBins
+from quakefolio.core.sources.mfd import MagnitudeBins
 
 __all__ = [
     "RuptureSet",
@@ -89,7 +89,7 @@ class RuptureSet:
     corners : ndarray, shape (n, 4, 3)
         (lon [deg], lat [deg], depth [km]) of the top-start, top-end, bottom-end and
         bottom-start corners; the plane dips to the right of start -> end. The distance
-        code (:func:`quakefolio.core.geometry.rupture_distances`) uses the two top
+        code (:func:`quakefolio.core.sources.geometry.rupture_distances`) uses the two top
         corners with ``ztor_km``, ``dip_deg`` and ``width_km``; the bottom corners are for
         display and checks. Construction checks the corner depths against
         ``ztor_km``/``zbot_km`` and ``zbot_km = ztor_km + width_km sin(dip)`` (1e-6 km).
@@ -427,7 +427,7 @@ def rupture_corners(
     Notes
     -----
     The rectangle is built in the azimuthal equidistant projection about the given
-    point (:func:`quakefolio.core.geometry.aeqd_forward`), where the strike is the true
+    point (:func:`quakefolio.core.sources.geometry.aeqd_forward`), where the strike is the true
     azimuth at the point, and converted back to lon/lat.
     """
     arrays = np.broadcast_arrays(*(np.asarray(v, dtype=np.float64) for v in (
@@ -861,11 +861,11 @@ def polygon_grid(polygon: Sequence[Sequence[float]], spacing_km: float) -> tuple
     Notes
     -----
     The polygon is projected with the azimuthal equidistant projection about the mean
-    of its vertices (:mod:`quakefolio.core.geometry`); there its edges are straight
+    of its vertices (:mod:`quakefolio.core.sources.geometry`); there its edges are straight
     lines (for a regional polygon the departure from great circles is negligible), a
     square grid of the given spacing centred on the polygon's bounding box is laid over
     it, and points inside are kept by ray casting
-    (:func:`quakefolio.core.geometry.points_in_polygon`).
+    (:func:`quakefolio.core.sources.geometry.points_in_polygon`).
     """
     pts = np.asarray(polygon, dtype=np.float64)
     if pts.ndim != 2 or pts.shape[1] != 2 or not np.all(np.isfinite(pts)):

@@ -15,7 +15,7 @@ Retrofit what-if (``[[scenario.alternatives]]``)
     another fragility library) and is evaluated against the run on its own (alternatives
     are not combined).  Per affected asset the damage-state rates, the annual collapse
     rate and its probability in the horizon and the EAL are recomputed per unique
-    (site, class) pair with the kernels of :func:`quakefolio.pipeline.stages.compute_block`.
+    (site, class) pair with the kernels of :func:`quakefolio.pipeline.stages.damage.compute_block`.
     Assets whose new class has the same fragility and consequence parameters as their
     current one are not recomputed (their results are unchanged by definition).  In an
     event-based run the event losses are recomputed with the same events and ground-motion
@@ -50,12 +50,12 @@ import pandas as pd
 from quakefolio.core.curves import im_at_rate, prob_in_years, rate_from_prob
 from quakefolio.core.economics import annuity_factor, benefit_cost_ratio, present_value
 from quakefolio.core.errors import InputError, did_you_mean, locate_toml_line
-from quakefolio.core.event_losses import sum_over_blocks
+from quakefolio.core.events.losses import sum_over_blocks
 from quakefolio.core.loss import expected_annual_loss
-from quakefolio.core.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
+from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
 from quakefolio.core.risk import risk_targeted_im
 from quakefolio.fragility import CrossingError, load_library
-from quakefolio.pipeline.ingest import UnavailableIM, curves_for_im
+from quakefolio.pipeline.io.ingest import UnavailableIM, curves_for_im
 
 __all__ = ["Alternative", "EventRerun", "validate", "evaluate", "screening_tables", "alternative_tables",
            "rerun_events", "annuity_factor", "present_value", "UHS_PROB", "UHS_YEARS"]
@@ -205,7 +205,7 @@ def validate(inputs, hashes=None):
 def _pair_kernel(inputs, dss, sites):
     """Damage-state rates (m, n_ds) [1/yr] and EAL ratio (m,) [1/yr] at unique hazard sites.
 
-    The calls of :func:`quakefolio.pipeline.stages.compute_block` (same curves, tail
+    The calls of :func:`quakefolio.pipeline.stages.damage.compute_block` (same curves, tail
     policy and crossing option).
     """
     fr = inputs.config["fragility"]
@@ -352,7 +352,7 @@ def rerun_events(em, alternative):
     EventRerun
         Event and year losses [currency] and per-asset AAL [currency/yr] after the change.
     """
-    from quakefolio.pipeline import portfolio_stage as ps
+    from quakefolio.pipeline.stages import events as ps
 
     changed = alternative.assets[alternative.changed]
     n = len(em.value)
@@ -495,7 +495,7 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
         if portfolio is not None:
             if changed.size:
                 if em is None:
-                    from quakefolio.pipeline.portfolio_stage import prepare_events
+                    from quakefolio.pipeline.stages.events import prepare_events
 
                     em = prepare_events(inputs)
                 rerun = rerun_events(em, alt)
@@ -577,7 +577,7 @@ def evaluate(inputs, results, portfolio=None, em=None):
 
     Parameters
     ----------
-    inputs : :class:`quakefolio.pipeline.stages.Inputs`
+    inputs : :class:`quakefolio.pipeline.stages.products.RunInputs`
     results : list of the damage stage's block results
     portfolio : (tables, checks) of the event-based stage, or None
     em : the event stage's EventModel, if at hand (otherwise prepared again when an

@@ -21,13 +21,14 @@ from quakefolio.core.hazard import (
 )
 from quakefolio.core.ims import im_period
 from quakefolio.core.sites import exact_sites, grid_reference, snap_sites
-from quakefolio.pipeline.cache import digest
-from quakefolio.pipeline.ingest import HazardCurves
-from quakefolio.pipeline.products import SiteBlockResult, frozen_mapping
-from quakefolio.pipeline.sources_io import load_source_model
+from quakefolio.pipeline.io.cache import digest
+from quakefolio.pipeline.io.ingest import HazardCurves
+from quakefolio.pipeline.stages.products import SiteBlockResult, frozen_mapping
+from quakefolio.pipeline.io.source_model import load_source_model
 
 __all__ = ["HazardModel", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "with_branch_curves",
-           "disagg_block", "combine_disaggregation", "statistic_name", "branch_weights"]
+           "disagg_block", "combine_disaggregation", "statistic_name", "branch_weights",
+           "site_hazard_table", "hazard_at_return_periods_table"]
 
 
 def statistic_name(q):
@@ -223,7 +224,7 @@ def hazard_block(model, hazard, block, cache=None):
         The hazard sites (lon, lat [deg]).
     block : tuple (lo, hi)
         Site slice.
-    cache : quakefolio.pipeline.cache.StageCache or None
+    cache : quakefolio.pipeline.io.cache.StageCache or None
 
     Returns
     -------
@@ -336,7 +337,7 @@ def disagg_block(model, hazard, return_periods, block, cache=None):
     hazard : HazardCurves
     return_periods : sequence of float [yr]
     block : tuple (lo, hi)
-    cache : quakefolio.pipeline.cache.StageCache or None
+    cache : quakefolio.pipeline.io.cache.StageCache or None
 
     Returns
     -------
@@ -424,3 +425,56 @@ def disaggregation_frames(model, hazard, return_periods, min_share=1e-6):
         "mode_mag": om.ravel(), "mode_dist_km": orr.ravel(), "mode_eps": oe.ravel(),
     })
     return detail, summary
+
+
+def site_hazard_table(inputs):
+    """Long-form curves (site_id, im, im_level [g], annual_rate [1/yr], statistic)."""
+    if inputs.hazard_model is not None:
+        return site_hazard_frame(inputs.hazard_model, inputs.hazard)
+    frames = []
+    hz = inputs.hazard
+    stat = inputs.config["hazard"]["statistic"]
+    for im in sorted(set(hz.curves) - hz.interpolated):
+        x, lam = hz.curves[im]
+        m, n = x.shape
+        frames.append(pd.DataFrame({"site_id": np.repeat(hz.site_id, n), "im": im, "im_level": x.ravel(),
+                                    "annual_rate": lam.ravel(), "statistic": stat}))
+    return pd.concat(frames, ignore_index=True)
+
+
+def hazard_at_return_periods_table(inputs):
+    """Uniform-hazard values per site, IM, statistic and return period, with a flag column.
+
+    ``flag`` is ``ok``, ``below_rate_floor`` (the rate 1/T is below the configured floor:
+    not reported as a design value) or ``outside_range`` (not within the tabulated rates).
+    """
+    cfg = inputs.config["hazard"]
+    rps = np.asarray(cfg["return_periods_yr"])
+    target = 1.0 / rps
+    frames = []
+    for stat, im, x, lam in _curve_sets(inputs):
+        vals = im_at_rate(target, x, lam)  # (m, n_rp)
+        flag = np.where(np.isnan(vals), "outside_range", "ok")
+        floor = np.broadcast_to(target < cfg["rate_floor"], vals.shape)
+        flag = np.where(floor, "below_rate_floor", flag)
+        vals = np.where(floor, np.nan, vals)
+        frames.append(pd.DataFrame({"site_id": np.repeat(inputs.hazard.site_id, len(rps)), "im": im,
+                                    "statistic": stat, "return_period_yr": np.tile(rps, len(inputs.hazard.site_id)),
+                                    "im_level": vals.ravel(), "flag": flag.ravel()}))
+    return pd.concat(frames, ignore_index=True)
+
+
+def _curve_sets(inputs):
+    """(statistic, im, levels, rates) for every stored curve set."""
+    model = inputs.hazard_model
+    if model is None:
+        hz = inputs.hazard
+        stat = inputs.config["hazard"]["statistic"]
+        for im in sorted(set(hz.curves) - hz.interpolated):
+            yield (stat, im) + tuple(hz.curves[im])
+        return
+    n_sites = len(inputs.hazard.site_id)
+    levels = np.broadcast_to(model.levels_g, (n_sites, len(model.levels_g)))
+    for stat, arr in model.statistics.items():
+        for i, im in enumerate(model.ims):
+            yield stat, im, levels, arr[i]

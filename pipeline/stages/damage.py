@@ -1,159 +1,27 @@
-"""Stage functions of a run, free of Prefect: read inputs, damage and loss, tables.
+"""The damage-and-loss stage: unique (site, class) pairs in blocks, the exact risk integral per
+pair, and the asset tables (damage-state rates, EAL, loss curves, logic-tree fractiles).
 
-Each stage takes the products before it and returns a new, frozen product
-(:mod:`quakefolio.pipeline.products`); the sequence is :func:`quakefolio.pipeline.runner.execute`.
 Numerics stay in :mod:`quakefolio.core` and :mod:`quakefolio.fragility`: this module
-reads, groups work per unique (hazard site, building class) pair, calls the kernels, and
-lays results out as tables.
+groups work per unique (hazard site, building class) pair, calls the kernels, reads and
+writes the pair cache, and lays results out as tables.
 """
 from __future__ import annotations
-
-import hashlib
-import json
-from dataclasses import replace
 
 import numpy as np
 import pandas as pd
 
-from quakefolio.core.curves import im_at_rate, prob_in_years, return_period
-from quakefolio.core.errors import InputError, locate_toml_line
+from quakefolio.core.curves import prob_in_years, return_period
 from quakefolio.core.hazard import weighted_fractiles
 from quakefolio.core.loss import expected_annual_loss, loss_exceedance_rates
-from quakefolio.fragility import CrossingError, load_library
-from quakefolio.pipeline.cache import PairStore, StageCache, digest, fragility_class_digests, row_digests  # noqa: F401
-from quakefolio.pipeline.config import load_config, sha256_file
-from quakefolio.pipeline.hazard_stage import branch_weights, prepare_compute, site_hazard_frame, statistic_name
-from quakefolio.pipeline.ingest import (
-    UnavailableIM, curves_for_im, map_assets_to_sites, read_exposure, read_hazard_curves,
-)
-from quakefolio.pipeline.products import (
-    BlockResult, CacheCounts, ClassDamage, DamagePlan, DamageProduct, RunInputs, WorkBlock, frozen_mapping,
+from quakefolio.pipeline.io.cache import PairStore, digest, row_digests
+from quakefolio.pipeline.io.ingest import curves_for_im
+from quakefolio.pipeline.stages.hazard import branch_weights, statistic_name
+from quakefolio.pipeline.stages.inputs import stage_cache
+from quakefolio.pipeline.stages.products import (
+    BlockResult, CacheCounts, ClassDamage, DamagePlan, DamageProduct, WorkBlock, frozen_mapping,
 )
 
-__all__ = ["RunInputs", "WorkBlock", "BlockResult", "load_inputs", "inputs_digest", "stage_cache", "with_hazard",
-           "unique_pairs", "plan_blocks", "compute_block", "combine_damage", "site_hazard_table", "hazard_at_return_periods_table",
-           "fragility_class_digests"]
-
-#: Former name of :class:`quakefolio.pipeline.products.RunInputs`.
-Inputs = RunInputs
-
-
-def inputs_digest(input_hashes, config):
-    """sha256 over the input files' digests and the resolved config.
-
-    Parameters
-    ----------
-    input_hashes : Mapping
-        Path and sha256 of every input file.
-    config : quakefolio.pipeline.config.Config
-
-    Returns
-    -------
-    str
-        Hex digest.
-    """
-    blob = json.dumps({"inputs": dict(input_hashes), "config": config.resolved()}, sort_keys=True)
-    return hashlib.sha256(blob.encode()).hexdigest()
-
-
-def stage_cache(inputs):
-    """The run's content cache (``<output>/cache``), enabled per ``[execution] cache``.
-
-    Parameters
-    ----------
-    inputs : RunInputs
-
-    Returns
-    -------
-    quakefolio.pipeline.cache.StageCache
-    """
-    return StageCache(inputs.config["output"]["folder"], enabled=inputs.config["execution"]["cache"])
-
-
-def load_inputs(config_or_path):
-    """Read and validate every input of a run; raise InputError at the first problem.
-
-    Ingest mode reads the tabulated curves and maps assets to the nearest site; compute
-    mode reads the source models and builds hazard sites from the exposure (the curves
-    are computed later by :mod:`quakefolio.pipeline.hazard_stage`).  Cross-file checks
-    (class IMs available, curves do not cross, retrofit alternatives) run here, once.
-
-    Parameters
-    ----------
-    config_or_path : str, Path or quakefolio.pipeline.config.Config
-
-    Returns
-    -------
-    RunInputs
-    """
-    config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
-    hz, ex, fr = config["hazard"], config["exposure"], config["fragility"]
-    library = load_library(fr["library"])
-    exposure = read_exposure(ex["file"], library)
-    hashes = {
-        "config": {"path": str(config.path), "sha256": config.sha256},
-        "fragility_library": {"path": str(fr["library"]), "sha256": library.sha256},
-        "exposure": {"path": str(ex["file"]), "sha256": sha256_file(ex["file"])},
-    }
-    model = None
-    if hz["mode"] == "ingest":
-        hazard = read_hazard_curves(hz["curves_file"], im_unit=hz["im_unit"], statistic=hz["statistic"])
-        hashes["hazard_curves"] = {"path": str(hz["curves_file"]), "sha256": sha256_file(hz["curves_file"])}
-        site_index, dist = map_assets_to_sites(exposure, hazard, max_distance_km=hz["max_site_distance_km"],
-                                               exposure_path=ex["file"])
-    else:
-        model, hazard, site_index, dist = prepare_compute(config, exposure, library)
-        for bid, _, src in model.source_branches:
-            hashes[f"source_model:{bid}"] = {"path": src.path, "sha256": src.sha256}
-    text = None
-    for code in sorted(set(exposure.building_class)):
-        dss = library[code]
-        if model is None:
-            try:
-                levels, _ = curves_for_im(hazard, dss.im, allow_interpolation=hz["period_interpolation"])
-            except UnavailableIM as exc:
-                text = text or open(fr["library"], encoding="utf-8").read()
-                raise InputError(fr["library"], f"class {code!r}: {exc}",
-                                 row=locate_toml_line(text, ("classes", code), "im"), column=f"classes.{code}.im") \
-                    from None
-        else:
-            levels = model.levels_g
-        if fr["crossing"] == "reject":
-            try:
-                dss.check_crossing(float(levels.min()), float(levels.max()))
-            except CrossingError as exc:
-                text = text or open(fr["library"], encoding="utf-8").read()
-                j = dss.names.index(exc.upper)
-                raise InputError(fr["library"], str(exc),
-                                 row=locate_toml_line(text, ("classes", code, "states"), "beta", j),
-                                 column=f"classes.{code}.states[{j}].beta") from None
-    warnings = []
-    if hazard.interpolated:
-        warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
-                        "(log-log between neighbouring tabulated periods)")
-    draft = RunInputs(config, library, hazard, exposure, site_index, dist, hashes, "", tuple(warnings), model)
-    from quakefolio.pipeline.whatif import validate as validate_alternatives
-
-    validate_alternatives(draft, hashes)  # retrofit alternatives: asset ids, classes, IMs; adds their library files
-    return replace(draft, input_hashes=frozen_mapping(hashes), inputs_sha256=inputs_digest(hashes, config))
-
-
-def with_hazard(inputs, model, hazard):
-    """The run inputs with the computed hazard (a new object; compute mode).
-
-    Parameters
-    ----------
-    inputs : RunInputs
-    model : quakefolio.pipeline.hazard_stage.HazardModel
-        With branch curves and statistics (and disaggregation, if any).
-    hazard : quakefolio.pipeline.ingest.HazardCurves
-        With the mean curves per IM.
-
-    Returns
-    -------
-    RunInputs
-    """
-    return replace(inputs, hazard_model=model, hazard=hazard)
+__all__ = ["plan_blocks", "compute_block", "combine_damage", "build_tables"]
 
 
 def _damage_group_key(inputs, code):
@@ -163,21 +31,6 @@ def _damage_group_key(inputs, code):
     return digest("damage", code, dss.im, list(dss.names), dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov,
                   dss.collapse_index, cfg["fragility"]["tail"], cfg["fragility"]["crossing"],
                   list(cfg["output"]["loss_curve_ratios"]))
-
-
-def unique_pairs(inputs):
-    """Number of unique (hazard site, building class) pairs of the exposure (the unit of damage work).
-
-    Parameters
-    ----------
-    inputs : RunInputs
-
-    Returns
-    -------
-    int
-    """
-    classes = inputs.exposure.building_class.to_numpy()
-    return sum(len(np.unique(inputs.site_index[classes == code])) for code in set(classes))
 
 
 def plan_blocks(inputs):
@@ -258,61 +111,6 @@ def compute_block(inputs, block):
                        ds_fractiles=weighted_fractiles(ds_b, w, model.fractiles),
                        eal_fractiles=weighted_fractiles(expected_annual_loss(ds_b, dss.mean_damage_ratio), w,
                                                         model.fractiles))
-
-
-# --- tables -----------------------------------------------------------------------------------
-
-def site_hazard_table(inputs):
-    """Long-form curves (site_id, im, im_level [g], annual_rate [1/yr], statistic)."""
-    if inputs.hazard_model is not None:
-        return site_hazard_frame(inputs.hazard_model, inputs.hazard)
-    frames = []
-    hz = inputs.hazard
-    stat = inputs.config["hazard"]["statistic"]
-    for im in sorted(set(hz.curves) - hz.interpolated):
-        x, lam = hz.curves[im]
-        m, n = x.shape
-        frames.append(pd.DataFrame({"site_id": np.repeat(hz.site_id, n), "im": im, "im_level": x.ravel(),
-                                    "annual_rate": lam.ravel(), "statistic": stat}))
-    return pd.concat(frames, ignore_index=True)
-
-
-def hazard_at_return_periods_table(inputs):
-    """Uniform-hazard values per site, IM, statistic and return period, with a flag column.
-
-    ``flag`` is ``ok``, ``below_rate_floor`` (the rate 1/T is below the configured floor:
-    not reported as a design value) or ``outside_range`` (not within the tabulated rates).
-    """
-    cfg = inputs.config["hazard"]
-    rps = np.asarray(cfg["return_periods_yr"])
-    target = 1.0 / rps
-    frames = []
-    for stat, im, x, lam in _curve_sets(inputs):
-        vals = im_at_rate(target, x, lam)  # (m, n_rp)
-        flag = np.where(np.isnan(vals), "outside_range", "ok")
-        floor = np.broadcast_to(target < cfg["rate_floor"], vals.shape)
-        flag = np.where(floor, "below_rate_floor", flag)
-        vals = np.where(floor, np.nan, vals)
-        frames.append(pd.DataFrame({"site_id": np.repeat(inputs.hazard.site_id, len(rps)), "im": im,
-                                    "statistic": stat, "return_period_yr": np.tile(rps, len(inputs.hazard.site_id)),
-                                    "im_level": vals.ravel(), "flag": flag.ravel()}))
-    return pd.concat(frames, ignore_index=True)
-
-
-def _curve_sets(inputs):
-    """(statistic, im, levels, rates) for every stored curve set."""
-    model = inputs.hazard_model
-    if model is None:
-        hz = inputs.hazard
-        stat = inputs.config["hazard"]["statistic"]
-        for im in sorted(set(hz.curves) - hz.interpolated):
-            yield (stat, im) + tuple(hz.curves[im])
-        return
-    n_sites = len(inputs.hazard.site_id)
-    levels = np.broadcast_to(model.levels_g, (n_sites, len(model.levels_g)))
-    for stat, arr in model.statistics.items():
-        for i, im in enumerate(model.ims):
-            yield stat, im, levels, arr[i]
 
 
 def _class_damage(inputs, plan, results):

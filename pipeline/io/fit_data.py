@@ -23,7 +23,7 @@ import numpy as np
 from quakefolio.core.errors import InputError
 from quakefolio.fragility.fitting import library_to_toml, set_damage_state
 from quakefolio.fragility.library import FORMAT_TAG, load_library, parse_library, read_toml
-from quakefolio.pipeline.ingest import NON_NEGATIVE, POSITIVE, WHOLE, _numbers, read_table
+from quakefolio.pipeline.io.ingest import NON_NEGATIVE, POSITIVE, WHOLE, _numbers, read_table
 
 __all__ = ["read_fit_data", "write_fitted_state", "FIT_COLUMNS"]
 

@@ -1,0 +1,85 @@
+r"""Vectorised ground-motion models (GMMs) for shallow crustal earthquakes.
+
+Every model evaluates the natural-log median of an intensity measure (IM) and
+its aleatory variability for many rupture-site scenarios at once. Scenario
+parameters are passed as a structure of arrays (:class:`GmmInput`) whose fields
+broadcast against one another; results come back as arrays of shape
+``(n_ims, *scenario_shape)`` (:class:`GmmResult`).
+
+Intensity measures are named ``PGA`` or ``SA_<period in s>`` (``SA_0.2``,
+``SA_1.0``); values are in g, medians are returned as ``ln(g)``.
+
+Coefficient tables are read from the data files shipped inside the installed
+``pygmm`` package (never copied into this repository), with the standard
+``csv`` module into numpy arrays, once per model; this module does no other
+file I/O and does not import pygmm itself.
+
+Models
+------
+``BSSA14``
+    Boore, Stewart, Seyhan & Atkinson (2014), Earthquake Spectra 30(3),
+    1057-1085, doi:10.1193/070113EQS184M.
+``CB14``
+    Campbell & Bozorgnia (2014), Earthquake Spectra 30(3), 1087-1115,
+    doi:10.1193/062913EQS175M.
+
+Spectral periods between tabulated periods
+------------------------------------------
+For ``SA_T`` with ``T`` not in a model's table, the ln median, tau, phi and
+total sigma are each interpolated linearly in ``ln(T)`` between the two
+bracketing tabulated periods (a local power law in period for the median).
+``sigma**2 == tau**2 + phi**2`` therefore holds exactly only at tabulated
+periods. A period outside the tabulated range raises ``ValueError``.
+
+Verification
+------------
+Both models are checked against pygmm's scalar implementations to 1e-6 in ln
+units (``tests/test_gmm_oracle.py``); the few places where that package departs
+from the papers, and how the comparison handles them, are listed there.
+"""
+from __future__ import annotations
+
+from quakefolio.core.gmm.base import (
+    GmmInput, GmmResult, VectorGmm, im_period_s, mean_z1p0_km, mean_z2p5_km, mechanism_flags,
+)
+from quakefolio.core.gmm.bssa14 import Bssa14
+from quakefolio.core.gmm.cb14 import Cb14
+
+__all__ = [
+    "GmmInput",
+    "GmmResult",
+    "VectorGmm",
+    "Bssa14",
+    "Cb14",
+    "GMM_REGISTRY",
+    "get_gmm",
+    "im_period_s",
+    "mechanism_flags",
+    "mean_z1p0_km",
+    "mean_z2p5_km",
+]
+
+
+# --------------------------------------------------------------------------- #
+# Registry
+# --------------------------------------------------------------------------- #
+GMM_REGISTRY: dict[str, VectorGmm] = {
+    "BSSA14": Bssa14(),
+    "CB14": Cb14(),
+}
+
+
+def get_gmm(name: str) -> VectorGmm:
+    """Ground-motion model registered under ``name``.
+
+    Raises
+    ------
+    ValueError
+        If ``name`` is not registered; the message lists the valid names.
+    """
+    try:
+        return GMM_REGISTRY[name]
+    except (KeyError, TypeError):
+        raise ValueError(
+            f"unknown ground-motion model {name!r}; valid names: " + ", ".join(sorted(GMM_REGISTRY))
+        ) from None

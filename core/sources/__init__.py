@@ -1,0 +1,1 @@
+"""Seismic sources: magnitude-frequency distributions, finite ruptures, source-to-site distances."""
