@@ -7,7 +7,8 @@ underlined with dashes):
 
 - a docstring whose first line is a one-line summary;
 - a ``Parameters`` section naming every parameter of the signature except ``self``/``cls``
-  and ``*args``/``**kwargs`` (a function with no such parameter needs no section);
+  and ``*args``/``**kwargs`` (a function with no such parameter needs no section), each
+  entry with its type (``name : type``);
 - a ``Returns`` section if the function returns a value, a ``Yields`` section if it is a
   generator.
 
@@ -48,6 +49,12 @@ def _documented_names(section):
         for name in head.split(","):
             names.add(name.strip().lstrip("*"))
     return names
+
+
+def _untyped_entries(section):
+    """Entries of a Parameters section without ``name : type`` (``*args`` may go untyped)."""
+    return [line.strip() for line in section.splitlines()
+            if line.strip() and not line[:1].isspace() and " : " not in line and not line.startswith("*")]
 
 
 def _own_nodes(fn):
@@ -138,6 +145,9 @@ def _problems(fn, is_property):
             missing = [p for p in params if p not in _documented_names(sections["Parameters"])]
             if missing:
                 problems.append(f"Parameters lacks {', '.join(missing)}")
+            untyped = _untyped_entries(sections["Parameters"])
+            if untyped:
+                problems.append(f"Parameters entries without a type: {', '.join(untyped)}")
     if _is_generator(fn):
         if "Yields" not in sections:
             problems.append("no Yields section")
@@ -186,7 +196,8 @@ def lacks_c(a, *, c):
 
     Parameters
     ----------
-    a : int
+    a
+        First term.
     """
     return a + c
 
@@ -232,7 +243,7 @@ class Thing:
     got = {name: _problems(fn, prop) for name, fn, prop in _public_functions(tree)}
     assert got == {
         "documented": [],
-        "lacks_c": ["Parameters lacks c", "no Returns section"],
+        "lacks_c": ["Parameters lacks c", "Parameters entries without a type: a", "no Returns section"],
         "gen": ["no Yields section"],
         "bare": ["no docstring"],
         "Thing.size": [],
