@@ -311,6 +311,23 @@ def _fit_fragility(args):
 
 
 def main(argv=None):
+    """The ``quakefolio`` command: parse ``argv``, run the subcommand, map errors to exit codes.
+
+    A user-input error prints ``error: <message>`` (file, row and column) on stderr and
+    returns 2; a failed stage or any other error prints one line and returns 1; Ctrl-C
+    returns 130.  With ``--debug`` the exception is raised instead (a traceback).
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        Command-line arguments without the program name; default ``sys.argv[1:]``.
+
+    Returns
+    -------
+    int
+        Exit status: 0 on success, 2 (:data:`EXIT_USER_ERROR`), 1 (:data:`EXIT_INTERNAL`)
+        or 130.
+    """
     args = _parser().parse_args(argv)
     from quakefolio.core.errors import InputError
     from quakefolio.pipeline.runner import StageError

@@ -15,11 +15,29 @@ __all__ = ["configure_prefect", "state_folder"]
 
 
 def state_folder():
-    """Absolute folder for Prefect state: ``$QUAKEFOLIO_STATE`` or ``./.quakefolio``."""
+    """Absolute folder for Prefect state: ``$QUAKEFOLIO_STATE`` or ``./.quakefolio``.
+
+    Returns
+    -------
+    pathlib.Path
+        Resolved against the current folder; not created here.
+    """
     return Path(os.environ.get("QUAKEFOLIO_STATE", ".quakefolio")).resolve()
 
 
 def configure_prefect():
+    """Set Prefect's environment for embedded runs (values already set are kept).
+
+    Sets ``PREFECT_HOME`` to ``<state folder>/prefect`` (created), telemetry off, the
+    console log level to WARNING, the embedded server's start-up timeout to 90 s and its
+    log level to ERROR.  Has no effect once ``prefect`` is imported (Prefect reads its
+    settings at import), so the CLI calls it first.
+
+    Returns
+    -------
+    pathlib.Path
+        Prefect's home folder ``<state folder>/prefect``.
+    """
     if "prefect" in sys.modules:  # too late to take effect; the caller imported prefect first
         return state_folder() / "prefect"
     home = state_folder() / "prefect"

@@ -68,9 +68,51 @@ class PrefectExecutor:
         return self._tasks[key]
 
     def one(self, name, fn, *args):
+        """Run a stage once, as a Prefect task in this process.
+
+        Stages in ``_IO_STAGES`` are retried on ``OSError`` only.
+
+        Parameters
+        ----------
+        name : str
+            Stage (task) name.
+        fn : callable
+            The stage function.
+        *args
+            Its arguments.
+
+        Returns
+        -------
+        object
+            What ``fn(*args)`` returns.
+
+        Raises
+        ------
+        quakefolio.pipeline.runner.StageError
+            For anything but a user-input error (:func:`quakefolio.pipeline.runner.stage_guard`).
+        """
         return stage_guard(name, self.config_path, lambda: self._task(name, fn)(*args))
 
     def many(self, name, fn, ref, items):
+        """Submit the block task ``fn(ref, item)`` per item to the flow's task runner; resolve all.
+
+        Parameters
+        ----------
+        name : str
+            Stage (task) name; also the progress bar's label.
+        fn : callable
+            Block task taking ``(ref, item)`` (:mod:`quakefolio.pipeline.stages.blocks`).
+        ref : quakefolio.pipeline.stages.products.RunRef
+            The run reference (small and picklable).
+        items : list
+            The blocks.
+
+        Returns
+        -------
+        list
+            Results in the order of ``items``; a failed block raises
+            :class:`quakefolio.pipeline.runner.StageError` (the flow fails).
+        """
         t = self._task(name, fn)
         progress.stage(name, len(items))
         futures = [t.submit(ref, item) for item in items]

@@ -31,7 +31,18 @@ LOCAL_CLUSTER = {"n_workers": 2, "threads_per_worker": 1, "processes": True, "ho
 
 
 def dask_task_runner(address=""):
-    """A ``DaskTaskRunner`` on the cluster at ``address``, or on a new :data:`LOCAL_CLUSTER`."""
+    """A ``DaskTaskRunner`` on the cluster at ``address``, or on a new :data:`LOCAL_CLUSTER`.
+
+    Parameters
+    ----------
+    address : str
+        Scheduler address (``tcp://host:port``); empty for a local cluster started with
+        the flow run.
+
+    Returns
+    -------
+    prefect_dask.DaskTaskRunner
+    """
     from prefect_dask import DaskTaskRunner
 
     if address:
@@ -45,7 +56,17 @@ def using_api(url):
 
     Prefect's settings of this process (they travel with every task submitted to Dask)
     and ``PREFECT_API_URL`` in the environment (inherited by flow-run subprocesses) are
-    both set, and restored afterwards.
+    both set, and restored afterwards; queued logs and events are flushed to the API
+    before leaving (:func:`flush_to_api`).
+
+    Parameters
+    ----------
+    url : str
+        Prefect API URL, e.g. ``http://127.0.0.1:4200/api``.
+
+    Yields
+    ------
+    None
     """
     from prefect.settings import PREFECT_API_URL, temporary_settings
 
@@ -69,6 +90,11 @@ def flush_to_api(timeout_s=10.0):
 
     Call it before the server goes away; otherwise the background senders keep retrying
     a closed port when the process exits.
+
+    Parameters
+    ----------
+    timeout_s : float
+        Longest wait per sender (logs, events) [s].
     """
     from prefect.events.worker import EventsWorker
     from prefect.logging.handlers import APILogWorker
@@ -87,6 +113,22 @@ def run_on_dask(config_path, address="", *, stages_to_run="all", api_url=None):
     starts :data:`LOCAL_CLUSTER` for this run.  ``api_url`` is the Prefect API every
     task reports to; None connects to (or starts, and afterwards stops) the local
     server of the state folder, or uses ``PREFECT_API_URL`` if set.
+
+    Parameters
+    ----------
+    config_path : str or Path
+        Run config file.
+    address : str
+        Dask scheduler address; empty for a local cluster.
+    stages_to_run : {"all", "hazard"}
+        Every stage, or the hazard stage only.
+    api_url : str, optional
+        Prefect API URL of a running server.
+
+    Returns
+    -------
+    pathlib.Path
+        The run folder.
     """
     from quakefolio.pipeline.flow import portfolio_risk
     from quakefolio.pipeline.server import connect_or_start

@@ -55,12 +55,30 @@ class StageProgress:
 
 
 def stage(name, total):
-    """Announce ``total`` items of stage ``name`` (no-op without an active display)."""
+    """Announce ``total`` items of stage ``name`` (no-op without an active display).
+
+    A stage announced again adds ``total`` to its bar's total.
+
+    Parameters
+    ----------
+    name : str
+        Stage name, shown as the bar's label.
+    total : int
+        Items (blocks, chunks) the stage will report.
+    """
     if _active is not None:
         _active._stage(name, total)
 
 
 def advance(name, n=1):
-    """Mark ``n`` items of stage ``name`` done (no-op without an active display)."""
+    """Mark ``n`` items of stage ``name`` done (no-op without an active display).
+
+    Parameters
+    ----------
+    name : str
+        Stage name given to :func:`stage`.
+    n : int
+        Items finished.
+    """
     if _active is not None:
         _active._advance(name, n)

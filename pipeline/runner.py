@@ -52,7 +52,19 @@ def package_versions():
 
 
 def inputs_digest(inputs):
-    """sha256 over the input files' digests and the resolved config of ``inputs`` (a RunInputs)."""
+    """sha256 over the input files' digests and the resolved config of ``inputs`` (a RunInputs).
+
+    Parameters
+    ----------
+    inputs : quakefolio.pipeline.stages.products.RunInputs
+        Validated run inputs (the digest was computed when they were read,
+        :func:`quakefolio.pipeline.stages.inputs.inputs_digest`).
+
+    Returns
+    -------
+    str
+        64 hex characters.
+    """
     return inputs.inputs_sha256
 
 
@@ -99,9 +111,43 @@ class SequentialExecutor:
     config_path = None
 
     def one(self, name, fn, *args):
+        """Run a stage once, in this thread.
+
+        Parameters
+        ----------
+        name : str
+            Stage name (named in a :class:`StageError`).
+        fn : callable
+            The stage function.
+        *args
+            Its arguments.
+
+        Returns
+        -------
+        object
+            What ``fn(*args)`` returns.
+        """
         return stage_guard(name, self.config_path, lambda: fn(*args))
 
     def many(self, name, fn, ref, items):
+        """Run the block task ``fn(ref, item)`` per item, in order, in this thread.
+
+        Parameters
+        ----------
+        name : str
+            Stage name; also the progress bar's label.
+        fn : callable
+            Block task taking ``(ref, item)`` (:mod:`quakefolio.pipeline.stages.blocks`).
+        ref : quakefolio.pipeline.stages.products.RunRef
+            The run reference.
+        items : list
+            The blocks.
+
+        Returns
+        -------
+        list
+            Results in the order of ``items``.
+        """
         progress.stage(name, len(items))
         out = []
         for item in items:
@@ -163,6 +209,20 @@ def run_hazard(inputs, ref, executor, work, clock):
 def run_damage(inputs, ref, executor, clock):
     """Damage and loss per block of unique (site, class) pairs; the asset tables.
 
+    Pairs found in the content cache are left out of the blocks
+    (:func:`quakefolio.pipeline.stages.damage.plan_blocks`).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        With hazard curves.
+    ref : RunRef
+        Reference the block tasks resolve the inputs by.
+    executor : SequentialExecutor or PrefectExecutor
+        How the stage's tasks run.
+    clock : callable(name, since)
+        Records the stage's wall time [s].
+
     Returns
     -------
     (DamageProduct, CacheCounts)
@@ -178,9 +238,21 @@ def run_damage(inputs, ref, executor, clock):
 def run_events(inputs, ref, executor, clock):
     """The event-based portfolio stage (whole-stage cache), or None when it is off.
 
+    Parameters
+    ----------
+    inputs : RunInputs
+        With the computed hazard (compute mode).
+    ref : RunRef
+        Reference the event tasks resolve the inputs by.
+    executor : SequentialExecutor or PrefectExecutor
+        How the stage's tasks run.
+    clock : callable(name, since)
+        Records the stage's wall time [s].
+
     Returns
     -------
     (EventProduct or None, EventModel or None, CacheCounts)
+        The event model is None when the stage is off or read from the cache.
     """
     if not inputs.config["portfolio"]["event_based"]:
         return None, None, CacheCounts()
@@ -204,6 +276,21 @@ def run_events(inputs, ref, executor, clock):
 
 def run_whatif(inputs, damage, events, em, executor, clock):
     """Collapse-risk screening and retrofit alternatives (whole-stage cache).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        With hazard curves.
+    damage : DamageProduct
+        The damage stage's product (its per-pair results).
+    events : EventProduct or None
+        The event-based stage's product, if it ran.
+    em : EventModel or None
+        The event model, if prepared in this run (else prepared again when needed).
+    executor : SequentialExecutor or PrefectExecutor
+        How the stage's tasks run.
+    clock : callable(name, since)
+        Records the stage's wall time [s].
 
     Returns
     -------

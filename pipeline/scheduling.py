@@ -48,6 +48,17 @@ def unchanged_since(inputs):
     "Exactly these inputs": the manifest's ``inputs_sha256`` equals
     :func:`inputs_digest` of ``inputs`` (every input file's sha256 and the resolved
     config) and the run holds every stage (not a ``quakefolio hazard`` run).
+
+    Parameters
+    ----------
+    inputs : quakefolio.pipeline.stages.products.RunInputs
+        The validated inputs of the scheduled run.
+
+    Returns
+    -------
+    pathlib.Path or None
+        The unchanged run's folder; None also when there is no run or its manifest is
+        unreadable.
     """
     previous = latest_run(inputs.config["output"]["folder"])
     if previous is None:
@@ -70,7 +81,18 @@ def _say(message):
 def scheduled_portfolio_risk(config_path: str) -> str:
     """Rerun ``portfolio-risk`` for ``config_path`` if any input changed since the last run.
 
-    Returns the new run folder, or ``""`` when nothing was written.
+    Runs with the config's executor (threads, or Dask) and writes the change report
+    against the previous run when there is one.
+
+    Parameters
+    ----------
+    config_path : str
+        Absolute path of the run config.
+
+    Returns
+    -------
+    str
+        The new run folder, or ``""`` when nothing was written.
     """
     inputs = load_inputs(config_path)  # a bad input fails this run and writes nothing
     same = unchanged_since(inputs)
@@ -95,14 +117,39 @@ def scheduled_portfolio_risk(config_path: str) -> str:
 
 
 def deployment_name(config_path):
-    """Deployment name of a config: its folder name and 8 hex of its absolute path."""
+    """Deployment name of a config: its folder name and 8 hex of its absolute path.
+
+    Parameters
+    ----------
+    config_path : str or Path
+        Run config file.
+
+    Returns
+    -------
+    str
+        ``<folder name>-<8 hex of the sha256 of the absolute path>``; characters other than
+        letters, digits, ``_``, ``.`` and ``-`` become ``-``.
+    """
     path = str(Path(config_path).resolve())
     stem = re.sub(r"[^A-Za-z0-9_.-]+", "-", Path(path).parent.name).strip("-") or "config"
     return f"{stem}-{hashlib.sha256(path.encode()).hexdigest()[:8]}"
 
 
 def check_cron(cron, timezone="UTC"):
-    """The problem with a cron string or time zone, or None (Prefect's own validation)."""
+    """The problem with a cron string or time zone, or None (Prefect's own validation).
+
+    Parameters
+    ----------
+    cron : str
+        Cron string, e.g. ``"0 3 * * 1"``.
+    timezone : str
+        IANA time zone name.
+
+    Returns
+    -------
+    str or None
+        Prefect's validation messages joined by ``; ``, or None when both are valid.
+    """
     from prefect.client.schemas.schedules import CronSchedule
 
     try:

@@ -50,7 +50,13 @@ class ServerError(RuntimeError):
 
 
 def server_folder():
-    """``<state folder>/server``: database, log and the record of the running server."""
+    """``<state folder>/server``: database, log and the record of the running server.
+
+    Returns
+    -------
+    pathlib.Path
+        Not created here.
+    """
     return state_folder() / "server"
 
 
@@ -72,7 +78,16 @@ class LocalServer:
     _process: subprocess.Popen | None = field(default=None, repr=False, compare=False)
 
     def stop(self, timeout_s=20.0):
-        """End the server if this process started it (its whole process group); else do nothing."""
+        """End the server if this process started it (its whole process group); else do nothing.
+
+        SIGTERM to the process group, SIGKILL if it has not exited within ``timeout_s``; the
+        state folder's record is removed if it names this server.
+
+        Parameters
+        ----------
+        timeout_s : float
+            Wait for a clean exit before killing [s].
+        """
         if not self.owned or self.pid is None:
             return
         try:
@@ -113,7 +128,19 @@ def _wait_exit(server, timeout_s):
 
 
 def is_healthy(url, timeout_s=2.0):
-    """True if the Prefect API at ``url`` answers its health check (no proxy is used)."""
+    """True if the Prefect API at ``url`` answers its health check (no proxy is used).
+
+    Parameters
+    ----------
+    url : str
+        Prefect API URL (``.../api``); ``/health`` is appended.
+    timeout_s : float
+        Request timeout [s].
+
+    Returns
+    -------
+    bool
+    """
     opener = urllib.request.build_opener(urllib.request.ProxyHandler({}))
     try:
         with opener.open(url.rstrip("/") + "/health", timeout=timeout_s) as resp:
@@ -123,7 +150,13 @@ def is_healthy(url, timeout_s=2.0):
 
 
 def find_server():
-    """The server recorded in the state folder if it is still running and answers, else None."""
+    """The server recorded in the state folder if it is still running and answers, else None.
+
+    Returns
+    -------
+    LocalServer or None
+        Not owned by this process (:meth:`LocalServer.stop` leaves it running).
+    """
     record = server_folder() / "server.json"
     try:
         info = json.loads(record.read_text(encoding="utf-8"))
@@ -172,9 +205,25 @@ def _start_lock(folder):
 def start_server(timeout_s=START_TIMEOUT_S):
     """Start a Prefect server on 127.0.0.1 with its database in the state folder.
 
-    Returns an owned :class:`LocalServer` once its health check answers.  Raises
-    :class:`ServerError` (with the end of the server log) if it exits or does not answer
-    within ``timeout_s``.
+    The server runs as ``python -m prefect server start`` in a new session on a free
+    loopback port, UI off, logging to ``server.log``; once healthy it is recorded in
+    ``server.json`` (written atomically).
+
+    Parameters
+    ----------
+    timeout_s : float
+        Longest wait for the health check to answer [s].
+
+    Returns
+    -------
+    LocalServer
+        Owned by this process.
+
+    Raises
+    ------
+    ServerError
+        With the end of the server log, if it exits or does not answer within
+        ``timeout_s``.
     """
     folder = server_folder()
     folder.mkdir(parents=True, exist_ok=True)
@@ -217,7 +266,19 @@ def _tail(path, n=20):
 
 
 def ensure_server(timeout_s=START_TIMEOUT_S):
-    """The running server of this state folder, or a new one (then owned by the caller)."""
+    """The running server of this state folder, or a new one (then owned by the caller).
+
+    A file lock in the server folder keeps two processes from starting a server each.
+
+    Parameters
+    ----------
+    timeout_s : float
+        Longest wait for a new server to answer [s].
+
+    Returns
+    -------
+    LocalServer
+    """
     folder = server_folder()
     folder.mkdir(parents=True, exist_ok=True)
     with _start_lock(folder):
@@ -227,7 +288,20 @@ def ensure_server(timeout_s=START_TIMEOUT_S):
 def connect_or_start(timeout_s=START_TIMEOUT_S):
     """The server named by ``PREFECT_API_URL`` if set, else :func:`ensure_server`.
 
-    Raises :class:`ServerError` if ``PREFECT_API_URL`` is set but does not answer.
+    Parameters
+    ----------
+    timeout_s : float
+        Longest wait for a new server to answer [s].
+
+    Returns
+    -------
+    LocalServer
+        Not owned when taken from ``PREFECT_API_URL`` or found running.
+
+    Raises
+    ------
+    ServerError
+        If ``PREFECT_API_URL`` is set but does not answer.
     """
     url = os.environ.get("PREFECT_API_URL", "").strip()
     if url:

@@ -28,7 +28,17 @@ __all__ = ["code_version", "digest", "fragility_class_digests", "StageCache", "P
 
 @lru_cache(maxsize=1)
 def code_version():
-    """sha256 of quakefolio's source files (any code change invalidates every cache entry)."""
+    """sha256 of quakefolio's source files (any code change invalidates every cache entry).
+
+    The digest runs over the relative path and bytes of every ``*.py`` file of
+    ``quakefolio.core``, ``quakefolio.fragility`` and ``quakefolio.pipeline`` in sorted
+    order; it is computed once per process.
+
+    Returns
+    -------
+    str
+        64 hex characters.
+    """
     import quakefolio.core
     import quakefolio.fragility
     import quakefolio.pipeline
@@ -43,7 +53,22 @@ def code_version():
 
 
 def digest(*parts):
-    """sha256 hex of a sequence of JSON-able values and numpy arrays (with dtype and shape)."""
+    """sha256 hex of a sequence of JSON-able values and numpy arrays (with dtype and shape).
+
+    The hash starts from :func:`code_version`; arrays contribute their dtype, shape and
+    C-ordered bytes, other values their JSON text with sorted keys (``str`` for what JSON
+    cannot encode); parts are separated by ``|``.
+
+    Parameters
+    ----------
+    *parts : ndarray or JSON-able value
+        Everything the cached item depends on, in a fixed order.
+
+    Returns
+    -------
+    str
+        64 hex characters.
+    """
     h = hashlib.sha256(code_version().encode())
     for p in parts:
         if isinstance(p, np.ndarray):
@@ -91,6 +116,22 @@ class StageCache:
         return self.root / stage / key[:2] / f"{key}.npz"
 
     def get(self, stage, key):
+        """The arrays stored under ``key`` for ``stage``, or None on a miss.
+
+        A file whose stored key differs from ``key`` or that cannot be read is a miss and is
+        removed; a disabled cache always misses.
+
+        Parameters
+        ----------
+        stage : str
+            Cache subfolder (e.g. ``"hazard"``).
+        key : str
+            Hex digest of everything the entry depends on (:func:`digest`).
+
+        Returns
+        -------
+        dict of str -> ndarray or None
+        """
         if not self.enabled:
             return None
         path = self._path(stage, key)
@@ -107,6 +148,19 @@ class StageCache:
         return out
 
     def put(self, stage, key, arrays):
+        """Store ``arrays`` under ``key`` for ``stage``, atomically (temporary file, then rename).
+
+        Does nothing when the cache is disabled.
+
+        Parameters
+        ----------
+        stage : str
+            Cache subfolder (e.g. ``"hazard"``).
+        key : str
+            Hex digest of everything the entry depends on (:func:`digest`).
+        arrays : dict of str -> ndarray
+            The entry's content; names must not start with ``__``.
+        """
         if not self.enabled:
             return
         path = self._path(stage, key)
@@ -132,11 +186,39 @@ class PairStore:
 
     @staticmethod
     def save_group(cache, stage, group_key, keys, arrays):
-        """Store a group's rows (replacing what was stored), without reading it first."""
+        """Store a group's rows (replacing what was stored), without reading it first.
+
+        Parameters
+        ----------
+        cache : StageCache
+            The cache to write into.
+        stage : str
+            Cache subfolder.
+        group_key : str
+            Hex digest of the group (e.g. one class and its settings).
+        keys : ndarray, shape (n, 32), uint8
+            Row digests (:func:`row_digests`).
+        arrays : dict of str -> ndarray, each of length n
+            Result rows aligned with ``keys``.
+        """
         cache.put(stage, group_key, {"keys": keys, **arrays})
 
     def lookup(self, keys):
-        """Rows for ``keys`` (n, 32) uint8: (found mask, dict of arrays for found rows)."""
+        """Stored rows for ``keys``: which were found, and their arrays.
+
+        Parameters
+        ----------
+        keys : ndarray, shape (n, 32), uint8
+            Row digests (:func:`row_digests`).
+
+        Returns
+        -------
+        found : ndarray of bool, shape (n,)
+            True where ``keys[i]`` is stored.
+        rows : dict of str -> ndarray
+            Stored arrays for the found rows, in the order of ``keys[found]`` (empty when
+            nothing is stored).
+        """
         stored = self._data.get("keys")
         if stored is None or len(stored) == 0 or len(keys) == 0:
             return np.zeros(len(keys), dtype=bool), {}
@@ -149,7 +231,20 @@ class PairStore:
 
 
 def row_digests(*arrays):
-    """One 32-byte sha256 per row of equally long arrays (rows flattened), as (n, 32) uint8."""
+    """One 32-byte sha256 per row of equally long arrays (rows flattened), as (n, 32) uint8.
+
+    Each row hash starts from :func:`code_version` and takes the bytes of row ``i`` of every
+    array in turn.
+
+    Parameters
+    ----------
+    *arrays : ndarray, each of shape (n, ...)
+        Arrays with the same first dimension.
+
+    Returns
+    -------
+    ndarray, shape (n, 32), uint8
+    """
     n = len(arrays[0])
     flat = [np.ascontiguousarray(a).reshape(n, -1) for a in arrays]
     out = np.empty((n, 32), dtype=np.uint8)

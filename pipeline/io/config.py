@@ -376,10 +376,18 @@ class Config:
 
     @property
     def base(self):
+        """Folder of the config file; relative input paths resolve against it."""
         return self.path.parent
 
     def resolved(self):
-        """JSON-serialisable resolved config (paths as strings)."""
+        """JSON-serialisable resolved config (paths as strings).
+
+        Returns
+        -------
+        dict
+            ``{section: {key: value}}`` after a JSON round trip (``str`` for paths and other
+            values JSON cannot encode), as stored in the run manifest.
+        """
         return json.loads(json.dumps(self.sections, default=str))
 
     def settings(self, section):
@@ -663,7 +671,20 @@ def load_config(path):
 
 
 def sha256_file(path, chunk=1 << 20):
-    """sha256 hex digest of a file's bytes."""
+    """sha256 hex digest of a file's bytes.
+
+    Parameters
+    ----------
+    path : path-like
+        The file to hash.
+    chunk : int
+        Read size [bytes] (default 1 MiB).
+
+    Returns
+    -------
+    str
+        64 hex characters.
+    """
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         while True:
@@ -680,6 +701,21 @@ def resolve_execution(config, executor=None, address=None):
     ``executor`` (``"local"`` or ``"dask"``) replaces ``backend``; ``address`` replaces
     ``address`` and alone implies the Dask backend.  An empty address with the Dask
     backend means a local cluster (``quakefolio.pipeline.orchestration.LOCAL_CLUSTER``).
+
+    Parameters
+    ----------
+    config : Config
+        The loaded run configuration.
+    executor : {"local", "dask"}, optional
+        The command line's ``--executor``.
+    address : str, optional
+        The command line's ``--address`` of a Dask scheduler.
+
+    Returns
+    -------
+    backend : {"local", "dask"}
+    address : str
+        Scheduler address; empty for the local backend (and for a local Dask cluster).
     """
     ex = config["execution"]
     backend = executor or ("dask" if address else ex["backend"])

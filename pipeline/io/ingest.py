@@ -271,6 +271,26 @@ def read_exposure(path, library):
 
     Checks: unique ids, WGS84 ranges, known building classes (against ``library``),
     positive replacement values, optional columns non-negative, deductible below limit.
+
+    Parameters
+    ----------
+    path : str or Path
+        Exposure file (CSV or Parquet), columns as in :data:`EXPOSURE_COLUMNS`.
+    library : quakefolio.fragility.FragilityLibrary
+        The building classes an asset may name.
+
+    Returns
+    -------
+    pandas.DataFrame, n_assets rows
+        ``asset_id``, ``lon``, ``lat`` [deg], ``building_class``, ``replacement_value``
+        [currency], ``vs30_mps`` [m/s], ``occupants`` [-], ``deductible`` and ``limit``
+        [currency] (NaN where the optional column is absent or empty) and ``row``, the
+        user-facing row of each asset (see :func:`read_table`).
+
+    Raises
+    ------
+    InputError
+        On the first problem, naming file, row and column.
     """
     frame, rows = read_table(path, EXPOSURE_COLUMNS)
     out = pd.DataFrame({"asset_id": _identifiers(frame, rows, path, "asset_id", unique=True)})
@@ -330,6 +350,27 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     per site, no duplicated level within a curve, rates non-increasing with level,
     every site tabulated for every IM with the same number of levels per IM, at least
     two levels.  Levels are converted from ``im_unit`` to g.
+
+    Parameters
+    ----------
+    path : str or Path
+        Hazard-curve file (CSV or Parquet), columns as in ``HAZARD_COLUMNS``.
+    im_unit : {"g", "m/s2", "cm/s2"}
+        Unit of the ``im_level`` column.
+    statistic : str
+        Rows of this ``statistic`` are kept (e.g. ``"mean"``); ignored when the file has
+        no ``statistic`` column.
+
+    Returns
+    -------
+    HazardCurves
+        Sites sorted by id; per IM, levels [g] and annual rates [1/yr] of shape
+        (n_sites, n_levels).
+
+    Raises
+    ------
+    InputError
+        On the first problem, naming file, row and column.
     """
     frame, rows = read_table(path, HAZARD_COLUMNS)
     site = _identifiers(frame, rows, path, "site_id")
@@ -406,9 +447,29 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
 def curves_for_im(hazard, im, *, allow_interpolation=True):
     """Curves for ``im``; if not tabulated, interpolated across the neighbouring periods.
 
-    Raises UnavailableIM when the IM is not tabulated and cannot be interpolated (no
-    neighbour on one side, or interpolation disabled).  Interpolated curves are cached
+    Interpolation is log-log across the two nearest tabulated periods on either side
+    (:func:`quakefolio.core.curves.interpolate_period`).  Interpolated curves are cached
     on ``hazard`` and the IM is recorded in ``hazard.interpolated``.
+
+    Parameters
+    ----------
+    hazard : HazardCurves
+        Curves read by :func:`read_hazard_curves` (modified: interpolated IMs are added).
+    im : str
+        IM name (``PGA`` or ``SA_<period in s>``).
+    allow_interpolation : bool
+        If False, only tabulated IMs are returned.
+
+    Returns
+    -------
+    levels : ndarray, shape (n_sites, n_levels) [g]
+    rates : ndarray, shape (n_sites, n_levels) [1/yr]
+
+    Raises
+    ------
+    UnavailableIM
+        When the IM is not tabulated and cannot be interpolated (no neighbour on one
+        side, or interpolation disabled).
     """
     if im in hazard.curves:
         return hazard.curves[im]
@@ -433,7 +494,29 @@ def curves_for_im(hazard, im, *, allow_interpolation=True):
 def map_assets_to_sites(exposure, hazard, *, max_distance_km, exposure_path):
     """Nearest hazard site of every asset (great circle); beyond the limit is an error.
 
-    Returns ``(site_index, distance_km)`` arrays aligned with ``exposure``.
+    Parameters
+    ----------
+    exposure : pandas.DataFrame
+        Validated exposure (:func:`read_exposure`): ``asset_id``, ``lon``, ``lat`` [deg],
+        ``row``.
+    hazard : HazardCurves
+        Sites with ``lon``, ``lat`` [deg].
+    max_distance_km : float
+        Largest allowed asset-to-site distance [km].
+    exposure_path : str or Path
+        Named in the error for an asset too far away.
+
+    Returns
+    -------
+    site_index : ndarray of int, shape (n_assets,)
+        Index into ``hazard.site_id`` of each asset's site.
+    distance_km : ndarray, shape (n_assets,) [km]
+        Great-circle distance (:func:`quakefolio.core.geo.nearest_site`).
+
+    Raises
+    ------
+    InputError
+        Naming the first asset beyond ``max_distance_km``.
     """
     idx, dist = nearest_site(exposure.lon.to_numpy(), exposure.lat.to_numpy(), hazard.lon, hazard.lat)
     far = dist > max_distance_km

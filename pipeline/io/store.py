@@ -39,7 +39,19 @@ METADATA_KEY = b"quakefolio"
 
 
 def process_alive(pid):
-    """Whether another process with this id exists (POSIX signal 0 probe; this process: False)."""
+    """Whether another process with this id exists (POSIX signal 0 probe; this process: False).
+
+    Parameters
+    ----------
+    pid : int
+        Process id, e.g. the suffix of a partial run folder.
+
+    Returns
+    -------
+    bool
+        True if the process exists (also when it belongs to another user), False if it
+        does not or if ``pid`` is this process.
+    """
     if pid == os.getpid():
         return False  # e.g. a leftover of an earlier run that had this very process id
     try:
@@ -52,7 +64,13 @@ def process_alive(pid):
 
 
 def fsync_path(path):
-    """fsync a file or folder by path (best effort: ignored where the OS refuses)."""
+    """fsync a file or folder by path (best effort: ignored where the OS refuses).
+
+    Parameters
+    ----------
+    path : path-like
+        File or folder whose data and metadata are flushed to disk.
+    """
     try:
         fd = os.open(path, os.O_RDONLY)
     except OSError:
@@ -142,7 +160,27 @@ def to_arrow(frame, *, name, units, description, provenance):
     """DataFrame to an Arrow table with an explicit schema and quakefolio metadata.
 
     Strings are written as ``string`` (not ``large_string``) so readers and later
-    concatenations agree whatever the pandas version.
+    concatenations agree whatever the pandas version; booleans, integers (int64 or int32)
+    and floats (float64) keep their kind, everything else becomes a string.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        The table, long form.
+    name : str
+        Table name (stored in the metadata).
+    units : dict of str -> str
+        Unit of each column.
+    description : str
+        What one row means.
+    provenance : dict
+        Run id, input digests and the like, merged into the metadata.
+
+    Returns
+    -------
+    pyarrow.Table
+        Schema metadata under the key ``quakefolio``: JSON with ``table``,
+        ``description``, ``units`` and the provenance entries.
     """
     fields = [pa.field(c, _arrow_type(frame[c])) for c in frame.columns]
     meta = {"table": name, "description": description, "units": units, **provenance}
@@ -190,7 +228,26 @@ class RunWriter:
         return target
 
     def write_table(self, name, frame, *, units, description, provenance):
-        """Write ``<name>.parquet`` with units and provenance in its schema metadata."""
+        """Write ``<name>.parquet`` with units and provenance in its schema metadata.
+
+        Parameters
+        ----------
+        name : str
+            Table name without ``.parquet``; must stay inside the run folder.
+        frame : pandas.DataFrame
+            The table.
+        units : dict of str -> str
+            Unit of each column.
+        description : str
+            What one row means.
+        provenance : dict
+            Run id, input digests and the like.
+
+        Returns
+        -------
+        pathlib.Path
+            The written file inside the partial folder (zstd-compressed Parquet).
+        """
         table = to_arrow(frame, name=name, units=units, description=description, provenance=provenance)
         path = self._inside(f"{name}.parquet")
         pq.write_table(table, path, compression="zstd")
@@ -198,6 +255,20 @@ class RunWriter:
         return path
 
     def write_text(self, name, text):
+        """Write a text file (UTF-8, fsynced) into the partial run folder.
+
+        Parameters
+        ----------
+        name : str
+            File name; must stay inside the run folder.
+        text : str
+            The whole content.
+
+        Returns
+        -------
+        pathlib.Path
+            The written file inside the partial folder.
+        """
         path = self._inside(name)
         with open(path, "w", encoding="utf-8") as fh:
             fh.write(text)
@@ -206,7 +277,16 @@ class RunWriter:
         return path
 
     def commit(self):
-        """Rename the partial folder into place, then point ``LATEST`` at it."""
+        """Rename the partial folder into place, then point ``LATEST`` at it.
+
+        Every file and the folder are fsynced first; the rename (``os.replace``) is atomic
+        within one file system and ``LATEST`` is replaced by :func:`atomic_write_text`.
+
+        Returns
+        -------
+        pathlib.Path
+            The final run folder ``<output>/runs/<run_id>``.
+        """
         for f in self.partial.iterdir():
             with open(f, "rb") as fh:
                 os.fsync(fh.fileno())
@@ -217,11 +297,27 @@ class RunWriter:
         return self.final
 
     def abort(self):
+        """Remove the partial folder (the run leaves nothing behind)."""
         shutil.rmtree(self.partial, ignore_errors=True)
 
 
 def new_run_id(output_folder, digest):
-    """``YYYYmmddTHHMMSSZ-<8 hex of the inputs digest>``, suffixed if already taken."""
+    """``YYYYmmddTHHMMSSZ-<8 hex of the inputs digest>``, suffixed if already taken.
+
+    The time stamp is UTC; an id that exists as a run folder or a partial folder gets the
+    suffix ``-2``, ``-3``, ... until it is free.
+
+    Parameters
+    ----------
+    output_folder : path-like
+        The output folder holding ``runs/``.
+    digest : str
+        Hex digest of the run's inputs (its first 8 characters are used).
+
+    Returns
+    -------
+    str
+    """
     stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
     base = f"{stamp}-{digest[:8]}"
     runs = Path(output_folder) / "runs"
@@ -233,7 +329,18 @@ def new_run_id(output_folder, digest):
 
 
 def latest_run(output_folder):
-    """Path of the run ``LATEST`` points to, or None."""
+    """Path of the run ``LATEST`` points to, or None.
+
+    Parameters
+    ----------
+    output_folder : path-like
+        The output folder holding ``LATEST`` and ``runs/``.
+
+    Returns
+    -------
+    pathlib.Path or None
+        None when there is no pointer or the run folder it names does not exist.
+    """
     pointer = Path(output_folder) / "LATEST"
     if not pointer.exists():
         return None
@@ -243,7 +350,22 @@ def latest_run(output_folder):
 
 
 def read_manifest(run_dir):
-    """The run's manifest as a dict; InputError naming the file if it is not a readable JSON object."""
+    """The run's manifest as a dict; InputError naming the file if it is not a readable JSON object.
+
+    Parameters
+    ----------
+    run_dir : path-like
+        A run folder holding ``manifest.json``.
+
+    Returns
+    -------
+    dict
+
+    Raises
+    ------
+    InputError
+        When the manifest is not valid JSON (naming the line) or not a JSON object.
+    """
     from quakefolio.core.errors import InputError
 
     manifest_path = Path(run_dir) / "manifest.json"
@@ -257,12 +379,38 @@ def read_manifest(run_dir):
 
 
 def read_table(run_dir, name):
-    """A run table as a DataFrame."""
+    """A run table as a DataFrame.
+
+    Parameters
+    ----------
+    run_dir : path-like
+        A run folder.
+    name : str
+        Table name without ``.parquet``.
+
+    Returns
+    -------
+    pandas.DataFrame
+    """
     return pq.read_table(Path(run_dir) / f"{name}.parquet").to_pandas()
 
 
 def table_metadata(run_dir, name):
-    """The quakefolio schema metadata (units, provenance) of a run table."""
+    """The quakefolio schema metadata (units, provenance) of a run table.
+
+    Parameters
+    ----------
+    run_dir : path-like
+        A run folder.
+    name : str
+        Table name without ``.parquet``.
+
+    Returns
+    -------
+    dict
+        ``table``, ``description``, ``units`` (column -> unit) and the provenance
+        entries (see :func:`to_arrow`).
+    """
     schema = pq.read_schema(Path(run_dir) / f"{name}.parquet")
     return json.loads(schema.metadata[METADATA_KEY])
 
@@ -299,7 +447,17 @@ class RunFolder:
         self._tables = {}
 
     def section(self, name):
-        """One section of the resolved config as a dict (empty when absent)."""
+        """One section of the resolved config as a dict (empty when absent).
+
+        Parameters
+        ----------
+        name : str
+            Section name, e.g. ``"scenario"``.
+
+        Returns
+        -------
+        dict
+        """
         return self.config.get(name) or {}
 
     @property
@@ -318,7 +476,17 @@ class RunFolder:
         return float(self.section("scenario").get("horizon_yr", float("nan")))
 
     def has(self, name):
-        """Whether the run holds ``<name>.parquet``."""
+        """Whether the run holds ``<name>.parquet``.
+
+        Parameters
+        ----------
+        name : str
+            Table name without ``.parquet``.
+
+        Returns
+        -------
+        bool
+        """
         return (self.path / f"{name}.parquet").is_file()
 
     def table(self, name):
@@ -351,11 +519,32 @@ class RunFolder:
         return self._tables[name]
 
     def optional_table(self, name):
-        """The table as a DataFrame, or None when the run has no such table."""
+        """The table as a DataFrame, or None when the run has no such table.
+
+        Parameters
+        ----------
+        name : str
+            Table name without ``.parquet``.
+
+        Returns
+        -------
+        pandas.DataFrame or None
+        """
         return self.table(name) if self.has(name) else None
 
     def metadata(self, name):
-        """The quakefolio schema metadata (units, description, provenance) of a run table."""
+        """The quakefolio schema metadata (units, description, provenance) of a run table.
+
+        Parameters
+        ----------
+        name : str
+            Table name without ``.parquet``.
+
+        Returns
+        -------
+        dict
+            As :func:`table_metadata`.
+        """
         return table_metadata(self.path, name)
 
     @property
@@ -364,11 +553,23 @@ class RunFolder:
         return self.has("run_assets") and self.has("run_fragility")
 
     def assets(self):
-        """The validated exposure the run used (``run_assets``), or None for older runs."""
+        """The validated exposure the run used (``run_assets``), or None for older runs.
+
+        Returns
+        -------
+        pandas.DataFrame or None
+        """
         return self.optional_table("run_assets")
 
     def fragility(self):
-        """The fragility classes the run used as a FragilityLibrary, or None for older runs."""
+        """The fragility classes the run used as a FragilityLibrary, or None for older runs.
+
+        Returns
+        -------
+        quakefolio.fragility.FragilityLibrary or None
+            Rebuilt from ``run_fragility``
+            (:func:`quakefolio.pipeline.io.run_inputs.library_from_frame`).
+        """
         from quakefolio.pipeline.io.run_inputs import library_from_frame
 
         frame = self.optional_table("run_fragility")

@@ -207,4 +207,18 @@ TABLES.update({
 
 
 def units_for(name, currency):
+    """Column units of a run table, with ``{currency}`` replaced by the run's currency.
+
+    Parameters
+    ----------
+    name : str
+        A table name of :data:`TABLES`.
+    currency : str
+        Currency code of the run (e.g. ``"EUR"``).
+
+    Returns
+    -------
+    dict of str -> str
+        Column name -> unit.
+    """
     return {k: v.replace("{currency}", currency) for k, v in TABLES[name]["units"].items()}

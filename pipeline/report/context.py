@@ -48,11 +48,34 @@ class ReportRun(RunFolder):
         super().__init__(path)
 
     def table(self, name):
-        """The table as a DataFrame, or None when the run has no such table."""
+        """The table as a DataFrame, or None when the run has no such table.
+
+        Parameters
+        ----------
+        name : str
+            Table name without ``.parquet``.
+
+        Returns
+        -------
+        pandas.DataFrame or None
+        """
         return super().table(name) if self.has(name) else None
 
     def hazard_statistic(self, available):
-        """The statistic the run's damage used, if among ``available``; else ``mean`` or the first one."""
+        """The statistic the run's damage used, if among ``available``; else ``mean`` or the first one.
+
+        An ingest run's damage uses the configured ``[hazard] statistic``; a compute run's
+        the logic-tree mean.
+
+        Parameters
+        ----------
+        available : collection of str
+            Statistics present in the run's hazard tables (``mean``, ``p16`` ...).
+
+        Returns
+        -------
+        str
+        """
         hz = self.section("hazard")
         wanted = hz.get("statistic", "mean") if hz.get("mode") == "ingest" else "mean"
         if wanted in available:

@@ -80,7 +80,13 @@ def clear():
 
 
 def resolved_runs():
-    """Config paths of the runs whose products this process holds (for diagnostics)."""
+    """Config paths of the runs whose products this process holds (for diagnostics).
+
+    Returns
+    -------
+    list of str
+        Oldest first; at most :data:`KEEP_RUNS` entries.
+    """
     with _RUNS_LOCK:
         return [key[0] for key in _RUNS]
 
@@ -107,7 +113,16 @@ def register(inputs, ref=None):
 
 
 def register_events(ref, event_model):
-    """Make ``event_model`` (from :func:`quakefolio.pipeline.stages.events.prepare_events`) that of ``ref``."""
+    """Make ``event_model`` (from :func:`quakefolio.pipeline.stages.events.prepare_events`) that of ``ref``.
+
+    Parameters
+    ----------
+    ref : RunRef
+        The run the event model belongs to.
+    event_model : quakefolio.pipeline.stages.events.EventModel
+        Prepared by the driver; event tasks of ``ref`` in this process use it instead of
+        preparing their own.
+    """
     entry = _entry(ref)
     with entry.lock:
         entry.event_model = event_model
@@ -209,23 +224,77 @@ def publish_hazard(ref, inputs, folder):
 
 
 def hazard_task(ref, block):
-    """:func:`quakefolio.pipeline.stages.hazard.hazard_block` for one site slice of the run ``ref``."""
+    """:func:`quakefolio.pipeline.stages.hazard.hazard_block` for one site slice of the run ``ref``.
+
+    Parameters
+    ----------
+    ref : RunRef
+        The run (its inputs are resolved in this process, :func:`resolve`).
+    block : tuple (lo, hi)
+        Site slice [lo, hi) of the hazard sites.
+
+    Returns
+    -------
+    SiteBlockResult
+        Branch curves ``(n_src, n_gmm, n_im, n_block_sites, n_levels)`` [1/yr].
+    """
     inputs = resolve(ref)
     return hs.hazard_block(inputs.hazard_model, inputs.hazard, block, stage_cache(inputs))
 
 
 def disagg_task(ref, block):
-    """:func:`quakefolio.pipeline.stages.hazard.disagg_block` for one site slice (needs the computed hazard)."""
+    """:func:`quakefolio.pipeline.stages.hazard.disagg_block` for one site slice (needs the computed hazard).
+
+    Parameters
+    ----------
+    ref : RunRef
+        The run, with ``hazard_file`` set in other processes (:func:`publish_hazard`).
+    block : tuple (lo, hi)
+        Site slice [lo, hi) of the hazard sites.
+
+    Returns
+    -------
+    SiteBlockResult
+        Contributions ``(n_im, n_block_sites, n_rp, n_mag, n_dist, n_eps)`` [1/yr].
+    """
     inputs = resolve(ref)
     return hs.disagg_block(inputs.hazard_model, inputs.hazard, inputs.config["hazard"]["return_periods_yr"], block,
                            stage_cache(inputs))
 
 
 def damage_task(ref, block):
-    """:func:`quakefolio.pipeline.stages.damage.compute_block` for one block of (site, class) pairs."""
+    """:func:`quakefolio.pipeline.stages.damage.compute_block` for one block of (site, class) pairs.
+
+    Parameters
+    ----------
+    ref : RunRef
+        The run (its inputs are resolved in this process, :func:`resolve`).
+    block : WorkBlock
+        One building class and a set of its sites.
+
+    Returns
+    -------
+    BlockResult
+        Damage-state rates [1/yr], tail shares [-], EAL ratios [1/yr] and loss curves of
+        the block's pairs.
+    """
     return compute_block(resolve(ref), block)
 
 
 def event_task(ref, chunk):
-    """:func:`quakefolio.pipeline.stages.events.event_chunk` for one chunk of event blocks."""
+    """:func:`quakefolio.pipeline.stages.events.event_chunk` for one chunk of event blocks.
+
+    Parameters
+    ----------
+    ref : RunRef
+        The run (its event model is registered or prepared once in this process).
+    chunk : (int, int)
+        First and stop random-number block
+        (:func:`quakefolio.pipeline.stages.events.event_chunks`).
+
+    Returns
+    -------
+    quakefolio.pipeline.stages.events.ChunkResult
+        Event losses [currency] and per-block sums of the chunk.
+    """
     return ps.event_chunk(_event_model(ref), chunk)

@@ -99,7 +99,30 @@ def single_blas_thread():
 
 
 def prepare_events(inputs):
-    """Event set, per-event ground-motion model, sites, classes and the field sampler."""
+    """Event set, per-event ground-motion model, sites, classes and the field sampler.
+
+    The events are a Poisson stochastic event set over ``[portfolio] years`` from the
+    ruptures of one source-model branch (the configured one, else the heaviest)
+    (:func:`quakefolio.core.events.eventset.stochastic_event_set`); each event draws its
+    ground-motion model by branch weight from its own random stream; fields are spatially
+    correlated (Jayaram & Baker 2009) and cross-IM correlated (Baker & Jayaram 2008)
+    (:class:`quakefolio.core.events.gmf.FieldSampler`).  Sets BLAS to one thread
+    (:func:`single_blas_thread`).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        Compute-mode inputs with the hazard model.
+
+    Returns
+    -------
+    EventModel
+
+    Raises
+    ------
+    InputError
+        When ``[portfolio] source_branch`` names no branch of the logic tree.
+    """
     single_blas_thread()
     cfg = inputs.config
     pf = cfg["portfolio"]
@@ -137,7 +160,18 @@ def prepare_events(inputs):
 
 
 def event_chunks(em):
-    """Chunks of whole random-number blocks: [(first_block, stop_block)]."""
+    """Chunks of whole random-number blocks: [(first_block, stop_block)].
+
+    Parameters
+    ----------
+    em : EventModel
+        From :func:`prepare_events` (``chunk_blocks`` blocks per chunk).
+
+    Returns
+    -------
+    list of (int, int)
+        Consecutive, covering every block of the event set.
+    """
     n_blocks = len(event_blocks(em.events.n_events, EVENT_BLOCK_SIZE))
     return [(lo, min(n_blocks, lo + em.chunk_blocks)) for lo in range(0, n_blocks, em.chunk_blocks)]
 
@@ -313,7 +347,22 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
 # --- cache of the whole stage -----------------------------------------------------------------
 
 def event_cache_key(inputs):
-    """Digest of everything the event-based results depend on."""
+    """Digest of everything the event-based results depend on.
+
+    The hazard model's digest, the resolved ``[portfolio]`` and ``[hazard]`` sections, the
+    tail policy, the digests of the building classes the exposure uses and the exposure
+    file's sha256 (and the code version, :func:`quakefolio.pipeline.io.cache.digest`).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        Compute-mode inputs with the hazard model.
+
+    Returns
+    -------
+    str
+        64 hex characters.
+    """
     from quakefolio.pipeline.io.cache import digest
     from quakefolio.pipeline.io.cache import fragility_class_digests
 
@@ -326,7 +375,22 @@ def event_cache_key(inputs):
 
 
 def load_cached(cache, key, kind="events"):
-    """(tables, checks) of a cached stage result (``kind``: its cache folder), or None."""
+    """(tables, checks) of a cached stage result (``kind``: its cache folder), or None.
+
+    Parameters
+    ----------
+    cache : quakefolio.pipeline.io.cache.StageCache or None
+        The run's cache; None or disabled: always None.
+    key : str
+        Digest of the stage's inputs (e.g. :func:`event_cache_key`).
+    kind : str
+        Cache subfolder (``"events"``, or another whole-stage result).
+
+    Returns
+    -------
+    (dict of str -> pandas.DataFrame, dict) or None
+        None when absent, unreadable or stored under another key.
+    """
     import json
 
     import pyarrow.parquet as pq
@@ -345,7 +409,22 @@ def load_cached(cache, key, kind="events"):
 
 
 def save_cached(cache, key, portfolio, kind="events"):
-    """Store a stage's (tables, checks) under the key (atomic folder rename)."""
+    """Store a stage's (tables, checks) under the key (atomic folder rename).
+
+    Each table is a Parquet file and the checks a JSON file in a temporary folder renamed
+    into ``<cache>/<kind>/<key>``; an existing entry is kept.
+
+    Parameters
+    ----------
+    cache : quakefolio.pipeline.io.cache.StageCache or None
+        The run's cache; None or disabled: nothing is written.
+    key : str
+        Digest of the stage's inputs (e.g. :func:`event_cache_key`).
+    portfolio : (dict of str -> pandas.DataFrame, dict)
+        The stage's tables and JSON-able checks.
+    kind : str
+        Cache subfolder.
+    """
     import json
     import os
     import shutil

@@ -32,7 +32,18 @@ __all__ = ["HazardModel", "prepare_compute", "site_blocks", "hazard_block", "com
 
 
 def statistic_name(q):
-    """Column label of a fractile: 0.16 -> 'p16', 0.025 -> 'p2.5'."""
+    """Column label of a fractile: 0.16 -> 'p16', 0.025 -> 'p2.5'.
+
+    Parameters
+    ----------
+    q : float
+        Fractile in (0, 1) [-].
+
+    Returns
+    -------
+    str
+        ``"p"`` followed by the percentage in ``%g`` format.
+    """
     return f"p{100 * q:g}"
 
 
@@ -137,7 +148,36 @@ def build_sites(exposure, spacing_km, default_vs30):
 def prepare_compute(config, exposure, library):
     """Validate the compute-mode inputs and build the sites (no hazard computed yet).
 
-    Returns ``(HazardModel, HazardCurves with empty curves, site_index, site_distance_km)``.
+    Reads every source-model branch, resolves the ground-motion model branches, adds the
+    IMs the exposure's fragility classes need to the configured ones (sorted by period),
+    checks that every ground-motion model covers those periods and builds the sites
+    (:func:`build_sites`).
+
+    Parameters
+    ----------
+    config : quakefolio.pipeline.io.config.Config
+        The run configuration (``[hazard]`` in compute mode).
+    exposure : pandas.DataFrame
+        Validated exposure (:func:`quakefolio.pipeline.io.ingest.read_exposure`).
+    library : quakefolio.fragility.FragilityLibrary
+        The fragility classes.
+
+    Returns
+    -------
+    model : HazardModel
+        Without curves; ``digest`` covers the branches, IMs, levels and settings.
+    hazard : HazardCurves
+        The sites with empty ``curves``.
+    site_index : ndarray of int, shape (n_assets,)
+        Site of every asset.
+    site_distance_km : ndarray, shape (n_assets,) [km]
+        Asset-to-site distance.
+
+    Raises
+    ------
+    InputError
+        When a class's IM lies outside a ground-motion model's periods (naming the
+        library file and the class), or a source model is invalid.
     """
     hz = config["hazard"]
     sources = []
@@ -252,6 +292,13 @@ def hazard_block(model, hazard, block, cache=None):
 
 def branch_weights(model):
     """Weight of each (source branch, GMM branch) pair, source-major [-].
+
+    The logic-tree weight of a pair is the product of its branch weights.
+
+    Parameters
+    ----------
+    model : HazardModel
+        With ``source_branches`` and ``gmm_branches``.
 
     Returns
     -------
@@ -388,7 +435,21 @@ def combine_disaggregation(model, hazard, parts):
 # --- tables -----------------------------------------------------------------------------------
 
 def site_hazard_frame(model, hazard):
-    """Long-form curves for every statistic (mean and fractiles)."""
+    """Long-form curves for every statistic (mean and fractiles).
+
+    Parameters
+    ----------
+    model : HazardModel
+        With ``statistics`` (after :func:`combine_hazard`).
+    hazard : HazardCurves
+        The sites.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``site_id``, ``im``, ``im_level`` [g], ``annual_rate`` [1/yr], ``statistic``;
+        statistic-major, then IM, site and level.
+    """
     frames = []
     n_sites, n_lev = len(hazard.site_id), len(model.levels_g)
     for stat, arr in model.statistics.items():
@@ -400,7 +461,33 @@ def site_hazard_frame(model, hazard):
 
 
 def disaggregation_frames(model, hazard, return_periods, min_share=1e-6):
-    """``disaggregation`` (non-negligible bin shares) and ``disaggregation_summary`` tables."""
+    """``disaggregation`` (non-negligible bin shares) and ``disaggregation_summary`` tables.
+
+    The target level of each return period T is the mean curve's IM at rate 1/T
+    (log-log interpolation, :func:`quakefolio.core.curves.im_at_rate`); shares, mean
+    and modal magnitude, distance and epsilon come from
+    :func:`quakefolio.core.hazard.disaggregation_summary`.
+
+    Parameters
+    ----------
+    model : HazardModel
+        With ``disagg`` and ``statistics`` (after :func:`combine_disaggregation`).
+    hazard : HazardCurves
+        The sites.
+    return_periods : sequence of float [yr]
+        The return periods disaggregated.
+    min_share : float
+        Bins with a share at or below this are left out of the detail table [-].
+
+    Returns
+    -------
+    detail : pandas.DataFrame
+        One row per (site, IM, return period, magnitude, distance, epsilon bin) with its
+        ``share`` [-]; bin edges in Mw, km and sigma.
+    summary : pandas.DataFrame
+        One row per (IM, site, return period): ``im_level`` [g], mean and modal
+        magnitude [Mw], distance [km] and epsilon [-].
+    """
     rps = np.asarray(return_periods, dtype=float)
     shares, mm, mr, me, om, orr, oe = disaggregation_summary(model.disagg, model.bins)
     n_im, n_sites, n_t = shares.shape[:3]
@@ -428,7 +515,21 @@ def disaggregation_frames(model, hazard, return_periods, min_share=1e-6):
 
 
 def site_hazard_table(inputs):
-    """Long-form curves (site_id, im, im_level [g], annual_rate [1/yr], statistic)."""
+    """Long-form curves (site_id, im, im_level [g], annual_rate [1/yr], statistic).
+
+    Compute mode: every statistic of the hazard model (:func:`site_hazard_frame`); ingest
+    mode: the tabulated curves with the configured statistic (period-interpolated IMs are
+    not repeated).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        After the hazard stage.
+
+    Returns
+    -------
+    pandas.DataFrame
+    """
     if inputs.hazard_model is not None:
         return site_hazard_frame(inputs.hazard_model, inputs.hazard)
     frames = []
@@ -447,6 +548,19 @@ def hazard_at_return_periods_table(inputs):
 
     ``flag`` is ``ok``, ``below_rate_floor`` (the rate 1/T is below the configured floor:
     not reported as a design value) or ``outside_range`` (not within the tabulated rates).
+    Values are read off each curve by log-log interpolation at rate 1/T
+    (:func:`quakefolio.core.curves.im_at_rate`).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        After the hazard stage.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``site_id``, ``im``, ``statistic``, ``return_period_yr`` [yr], ``im_level`` [g]
+        (NaN unless ``ok``), ``flag``.
     """
     cfg = inputs.config["hazard"]
     rps = np.asarray(cfg["return_periods_yr"])

@@ -26,7 +26,17 @@ __all__ = ["RunRef", "RunInputs", "SiteBlockResult", "WorkBlock", "BlockResult",
 
 
 def frozen_mapping(d):
-    """A read-only view of a dict (the dict is copied first)."""
+    """A read-only view of a dict (the dict is copied first).
+
+    Parameters
+    ----------
+    d : Mapping or iterable of (key, value)
+        Anything ``dict`` accepts.
+
+    Returns
+    -------
+    types.MappingProxyType
+    """
     return MappingProxyType(dict(d))
 
 
@@ -218,7 +228,13 @@ class DamageProduct:
     warnings: tuple = ()
 
     def pair_results(self):
-        """Every class's pairs as one :class:`BlockResult` per class (cached pairs included)."""
+        """Every class's pairs as one :class:`BlockResult` per class (cached pairs included).
+
+        Returns
+        -------
+        list of BlockResult
+            One per class in ``classes`` order, with block id -1 and the class's sites.
+        """
         return [BlockResult(WorkBlock(-1, c.code, c.sites), c.ds_rates, c.share_below, c.share_above, c.eal_ratio,
                             c.loss_curve) for c in self.classes.values()]
 
@@ -249,7 +265,21 @@ class CacheCounts:
 
     @staticmethod
     def of(stage, from_cache, computed):
-        """Counts of one stage."""
+        """Counts of one stage.
+
+        Parameters
+        ----------
+        stage : str
+            Cache stage name (e.g. ``"hazard"``).
+        from_cache : int
+            Items read from the content cache.
+        computed : int
+            Items computed.
+
+        Returns
+        -------
+        CacheCounts
+        """
         return CacheCounts(frozen_mapping({stage: int(from_cache)}), frozen_mapping({stage: int(computed)}))
 
     def __add__(self, other):
@@ -263,6 +293,11 @@ class CacheCounts:
         return CacheCounts(frozen_mapping(hits), frozen_mapping(miss))
 
     def as_dict(self):
-        """``{stage: {"from_cache": n, "computed": n}}`` sorted by stage (the manifest's ``cache``)."""
+        """``{stage: {"from_cache": n, "computed": n}}`` sorted by stage (the manifest's ``cache``).
+
+        Returns
+        -------
+        dict of str -> dict of str -> int
+        """
         stages = sorted(set(self.from_cache) | set(self.computed))
         return {s: {"from_cache": self.from_cache.get(s, 0), "computed": self.computed.get(s, 0)} for s in stages}

@@ -137,6 +137,14 @@ def validate(inputs, hashes=None):
     cross.  Records the path and sha256 of every extra library in ``hashes`` (a dict),
     if given.
 
+    Parameters
+    ----------
+    inputs : quakefolio.pipeline.stages.products.RunInputs
+        The run's validated inputs (exposure, library, hazard).
+    hashes : dict, optional
+        Filled with ``{"fragility_library:<alt_id>": {"path": ..., "sha256": ...}}`` per extra
+        library.
+
     Returns
     -------
     list of :class:`Alternative`, in config order.
@@ -275,12 +283,28 @@ def _mean_curve_sets(inputs):
 
 
 def screening_tables(inputs, collapse_rate):
-    """``collapse_screening`` (per asset) and ``site_risk_targeted_im`` (per site and IM).
+    r"""``collapse_screening`` (per asset) and ``site_risk_targeted_im`` (per site and IM).
+
+    Per asset: the probability of collapse in the target years (Poisson,
+    :math:`P = 1 - e^{-\lambda t}`) against the target probability.  Per site and IM:
+    the risk-targeted IM (ASCE 7 Chapter 21 definition, after Luco et al. 2007:
+    lognormal collapse fragility with the configured beta and probability at the IM,
+    giving the target collapse probability in the target years;
+    :func:`quakefolio.core.risk.risk_targeted_im`), the uniform-hazard IM at 2% in 50
+    years and their ratio, read off the mean curves.
 
     Parameters
     ----------
+    inputs : quakefolio.pipeline.stages.products.RunInputs
+        After the hazard stage.
     collapse_rate : ndarray (n_assets,) [1/yr]
         The run's annual collapse rate of every asset (exposure order).
+
+    Returns
+    -------
+    dict name -> pandas.DataFrame
+        ``collapse_screening`` and ``site_risk_targeted_im`` (IMs in g, a ``flag`` column
+        where a value is not bracketed, outside the curve or below the rate floor).
     """
     cfg = inputs.config
     sc = cfg["screening"]
@@ -344,8 +368,10 @@ def rerun_events(em, alternative):
 
     Parameters
     ----------
-    em : EventModel of the run
+    em : quakefolio.pipeline.stages.events.EventModel
+        The event model of the run.
     alternative : :class:`Alternative`
+        The retrofit alternative.
 
     Returns
     -------
@@ -413,15 +439,24 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
 
     Parameters
     ----------
-    alternatives : list of :class:`Alternative` (from :func:`validate`)
-    by_class : the run's per-asset rates (:func:`_run_asset_rates`)
-    portfolio : (tables, checks) of the event-based stage, or None
-    em : EventModel of the run (prepared here when needed and not given)
+    inputs : quakefolio.pipeline.stages.products.RunInputs
+        After the hazard stage.
+    alternatives : list of :class:`Alternative`
+        From :func:`validate`.
+    by_class : dict
+        The run's per-asset rates (:func:`_run_asset_rates`): class -> (asset indices,
+        damage-state rates (a, n_ds) [1/yr], EAL ratios (a,) [1/yr]).
+    portfolio : (dict, dict) or None
+        (tables, checks) of the event-based stage, or None.
+    em : quakefolio.pipeline.stages.events.EventModel or None
+        Event model of the run (prepared here when needed and not given).
 
     Returns
     -------
     dict name -> DataFrame
-        Benefit-cost through :mod:`quakefolio.core.economics`.
+        Benefit-cost through :mod:`quakefolio.core.economics` (present value of the
+        avoided annual loss with the annuity factor of the discount rate and benefit
+        horizon).
     """
     cfg = inputs.config
     sc, scen = cfg["screening"], cfg["scenario"]
@@ -578,16 +613,21 @@ def evaluate(inputs, results, portfolio=None, em=None):
     Parameters
     ----------
     inputs : :class:`quakefolio.pipeline.stages.products.RunInputs`
-    results : list of the damage stage's block results
-    portfolio : (tables, checks) of the event-based stage, or None
-    em : the event stage's EventModel, if at hand (otherwise prepared again when an
-        alternative needs the events: same seed, same events)
+        After the hazard stage.
+    results : list of BlockResult
+        The damage stage's block results.
+    portfolio : (dict, dict) or None
+        (tables, checks) of the event-based stage, or None.
+    em : quakefolio.pipeline.stages.events.EventModel or None
+        The event stage's event model, if at hand (otherwise prepared again when an
+        alternative needs the events: same seed, same events).
 
     Returns
     -------
-    dict name -> DataFrame: ``collapse_screening``, ``site_risk_targeted_im`` always;
-    ``whatif_assets``, ``whatif_asset_damage``, ``whatif_portfolio`` and
-    ``whatif_benefit_cost`` when the config has alternatives.
+    dict name -> DataFrame
+        ``collapse_screening``, ``site_risk_targeted_im`` always; ``whatif_assets``,
+        ``whatif_asset_damage``, ``whatif_portfolio`` and ``whatif_benefit_cost`` when
+        the config has alternatives.
     """
     alternatives = validate(inputs)
     by_class = _run_asset_rates(inputs, results)
