@@ -49,7 +49,7 @@ def unchanged_since(inputs):
     :func:`inputs_digest` of ``inputs`` (every input file's sha256 and the resolved
     config) and the run holds every stage (not a ``quakefolio hazard`` run).
     """
-    previous = latest_run(inputs.config["output"]["folder"])
+    previous = latest_run(inputs.config.output.folder)
     if previous is None:
         return None
     try:
@@ -77,12 +77,12 @@ def scheduled_portfolio_risk(config_path: str) -> str:
     if same is not None:
         _say(f"inputs unchanged since run {same.name}; nothing written")
         return ""
-    previous = latest_run(inputs.config["output"]["folder"])
+    previous = latest_run(inputs.config.output.folder)
     backend, address = resolve_execution(inputs.config)
     if backend == "dask":
         runner = dask_task_runner(address)
     else:
-        runner = ThreadPoolTaskRunner(max_workers=inputs.config["execution"]["max_workers"])
+        runner = ThreadPoolTaskRunner(max_workers=inputs.config.execution.max_workers)
     run_dir = Path(portfolio_risk.with_options(task_runner=runner)(config_path, "all"))
     if previous is None:
         _say(f"new run {run_dir.name} (no earlier run to compare with)")

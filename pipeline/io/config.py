@@ -363,7 +363,8 @@ class Config:
     Each section is also available as a frozen settings object with typed attributes:
     ``cfg.hazard.mode``, ``cfg.portfolio.years``, ``cfg.execution.block_size`` (see
     :class:`HazardSettings` and the other ``*Settings`` classes).  The attribute view is
-    built from ``sections`` on access, so both views always agree.
+    built from ``sections`` on first access and kept: a Config is not changed after
+    :func:`load_config` returns it, so both views always agree.
     """
 
     path: Path
@@ -395,7 +396,14 @@ class Config:
         ScenarioSettings, ScreeningSettings, HazardSettings, PortfolioSettings,
         ExposureSettings, FragilitySettings, OutputSettings or ExecutionSettings
         """
-        return SETTINGS_CLASSES[section].from_mapping(self.sections[section])
+        cache = self.__dict__.setdefault("_settings", {})
+        if section not in cache:
+            cache[section] = SETTINGS_CLASSES[section].from_mapping(self.sections[section])
+        return cache[section]
+
+    def __getstate__(self):
+        """Pickled without the settings objects (read-only mappings do not pickle; rebuilt on access)."""
+        return {k: v for k, v in self.__dict__.items() if k != "_settings"}
 
     scenario = property(lambda self: self.settings("scenario"), doc="[scenario] as ScenarioSettings")
     screening = property(lambda self: self.settings("screening"), doc="[screening] as ScreeningSettings")
@@ -680,9 +688,23 @@ def resolve_execution(config, executor=None, address=None):
     ``executor`` (``"local"`` or ``"dask"``) replaces ``backend``; ``address`` replaces
     ``address`` and alone implies the Dask backend.  An empty address with the Dask
     backend means a local cluster (``quakefolio.pipeline.orchestration.LOCAL_CLUSTER``).
+
+    Parameters
+    ----------
+    config : Config
+        The run config.
+    executor : {"local", "dask"} or None
+        ``--executor`` of the command line, if given.
+    address : str or None
+        ``--address`` of the command line, if given.
+
+    Returns
+    -------
+    (str, str)
+        ``("local", "")`` or ``("dask", address)``.
     """
-    ex = config["execution"]
-    backend = executor or ("dask" if address else ex["backend"])
+    ex = config.execution
+    backend = executor or ("dask" if address else ex.backend)
     if backend != "dask":
         return "local", ""
-    return "dask", address if address is not None else ex["address"]
+    return "dask", address if address is not None else ex.address

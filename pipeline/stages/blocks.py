@@ -168,7 +168,7 @@ def work_folder(inputs):
     Path
         Created on first use by :func:`publish_hazard`.
     """
-    root = Path(inputs.config["output"]["folder"]).resolve() / ".work"
+    root = Path(inputs.config.output.folder).resolve() / ".work"
     folder = root / uuid.uuid4().hex
     try:
         yield folder
@@ -217,7 +217,7 @@ def hazard_task(ref, block):
 def disagg_task(ref, block):
     """:func:`quakefolio.pipeline.stages.hazard.disagg_block` for one site slice (needs the computed hazard)."""
     inputs = resolve(ref)
-    return hs.disagg_block(inputs.hazard_model, inputs.hazard, inputs.config["hazard"]["return_periods_yr"], block,
+    return hs.disagg_block(inputs.hazard_model, inputs.hazard, inputs.config.hazard.return_periods_yr, block,
                            stage_cache(inputs))
 
 
