@@ -178,6 +178,16 @@ def run_damage(inputs, ref, executor, clock):
 def run_events(inputs, ref, executor, clock):
     """The event-based portfolio stage (whole-stage cache), or None when it is off.
 
+    Parameters
+    ----------
+    inputs : RunInputs
+        With the computed hazard.
+    ref : RunRef
+        What the block tasks resolve the run's products from.
+    executor : SequentialExecutor or quakefolio.pipeline.flow.PrefectExecutor
+    clock : _Clock
+        Stage timings of the run.
+
     Returns
     -------
     (EventProduct or None, EventModel or None, CacheCounts)

@@ -48,6 +48,15 @@ def unchanged_since(inputs):
     "Exactly these inputs": the manifest's ``inputs_sha256`` equals
     :func:`inputs_digest` of ``inputs`` (every input file's sha256 and the resolved
     config) and the run holds every stage (not a ``quakefolio hazard`` run).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+
+    Returns
+    -------
+    Path or None
+        The unchanged run's folder.
     """
     previous = latest_run(inputs.config.output.folder)
     if previous is None:
@@ -70,7 +79,15 @@ def _say(message):
 def scheduled_portfolio_risk(config_path: str) -> str:
     """Rerun ``portfolio-risk`` for ``config_path`` if any input changed since the last run.
 
-    Returns the new run folder, or ``""`` when nothing was written.
+    Parameters
+    ----------
+    config_path : str
+        The run config.
+
+    Returns
+    -------
+    str
+        The new run folder, or ``""`` when nothing was written.
     """
     inputs = load_inputs(config_path)  # a bad input fails this run and writes nothing
     same = unchanged_since(inputs)

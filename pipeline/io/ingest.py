@@ -367,6 +367,20 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     per site, no duplicated level within a curve, rates non-increasing with level,
     every site tabulated for every IM with the same number of levels per IM, at least
     two levels.  Levels are converted from ``im_unit`` to g.
+
+    Parameters
+    ----------
+    path : Path
+        CSV or Parquet file.
+    im_unit : {"g", "m/s2", "cm/s2"}
+        Unit of ``im_level``.
+    statistic : str
+        Rows of this ``statistic`` are used (when the column is there).
+
+    Returns
+    -------
+    HazardCurves
+        Tabulated curves, none interpolated.
     """
     frame, rows = read_table(path, HAZARD_COLUMNS)
     site = _identifiers(frame, rows, path, "site_id")

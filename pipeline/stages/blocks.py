@@ -215,7 +215,18 @@ def hazard_task(ref, block):
 
 
 def disagg_task(ref, block):
-    """:func:`quakefolio.pipeline.stages.hazard.disagg_block` for one site slice (needs the computed hazard)."""
+    """:func:`quakefolio.pipeline.stages.hazard.disagg_block` for one site slice (needs the computed hazard).
+
+    Parameters
+    ----------
+    ref : RunRef
+    block : (lo, hi)
+        Site slice.
+
+    Returns
+    -------
+    As :func:`quakefolio.pipeline.stages.hazard.disagg_block`.
+    """
     inputs = resolve(ref)
     return hs.disagg_block(inputs.hazard_model, inputs.hazard, inputs.config.hazard.return_periods_yr, block,
                            stage_cache(inputs))

@@ -98,7 +98,17 @@ def single_blas_thread():
 
 
 def prepare_events(inputs):
-    """Event set, per-event ground-motion model, sites, classes and the field sampler."""
+    """Event set, per-event ground-motion model, sites, classes and the field sampler.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        Compute mode, with the hazard model.
+
+    Returns
+    -------
+    EventModel
+    """
     single_blas_thread()
     cfg = inputs.config
     pf = cfg.portfolio
@@ -312,7 +322,17 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
 # --- cache of the whole stage -----------------------------------------------------------------
 
 def event_cache_key(inputs):
-    """Digest of everything the event-based results depend on."""
+    """Digest of everything the event-based results depend on.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+
+    Returns
+    -------
+    str
+        Hex digest.
+    """
     from quakefolio.pipeline.io.cache import digest
     from quakefolio.pipeline.io.cache import fragility_class_digests
 

@@ -427,7 +427,17 @@ def disaggregation_frames(model, hazard, return_periods, min_share=1e-6):
 
 
 def site_hazard_table(inputs):
-    """Long-form curves (site_id, im, im_level [g], annual_rate [1/yr], statistic)."""
+    """Long-form curves (site_id, im, im_level [g], annual_rate [1/yr], statistic).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        With the hazard (tabulated, or computed by the hazard stage).
+
+    Returns
+    -------
+    pandas.DataFrame
+    """
     if inputs.hazard_model is not None:
         return site_hazard_frame(inputs.hazard_model, inputs.hazard)
     frames = []
@@ -446,6 +456,16 @@ def hazard_at_return_periods_table(inputs):
 
     ``flag`` is ``ok``, ``below_rate_floor`` (the rate 1/T is below the configured floor:
     not reported as a design value) or ``outside_range`` (not within the tabulated rates).
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        With the hazard.
+
+    Returns
+    -------
+    pandas.DataFrame
+        site_id, im, statistic, return_period_yr [yr], im_level [g], flag.
     """
     cfg = inputs.config.hazard
     rps = np.asarray(cfg.return_periods_yr)

@@ -262,8 +262,13 @@ def screening_tables(inputs, collapse_rate):
 
     Parameters
     ----------
+    inputs : :class:`quakefolio.pipeline.stages.products.RunInputs`
     collapse_rate : ndarray (n_assets,) [1/yr]
         The run's annual collapse rate of every asset (exposure order).
+
+    Returns
+    -------
+    dict name -> DataFrame
     """
     cfg = inputs.config
     sc = cfg.screening
