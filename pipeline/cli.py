@@ -181,7 +181,7 @@ def _run(args, stages_to_run="all"):
             configure_prefect()
             from quakefolio.pipeline.flow import run_flow
 
-            run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config["execution"]["max_workers"],
+            run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config.execution.max_workers,
                                stages_to_run=stages_to_run)
     elapsed = time.perf_counter() - t0
     if args.quiet:

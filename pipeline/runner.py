@@ -188,7 +188,7 @@ def run_hazard(inputs, ref, executor, work, clock):
         The inputs with the hazard, the reference to them, and the cache counts.
     """
     t = time.perf_counter()
-    site_blocks = hs.site_blocks(len(inputs.hazard.site_id), inputs.config["execution"]["site_block_size"])
+    site_blocks = hs.site_blocks(len(inputs.hazard.site_id), inputs.config.execution.site_block_size)
     parts = executor.many("hazard-block", blocks.hazard_task, ref, site_blocks)
     model, hazard = executor.one("hazard-statistics", hs.combine_hazard, inputs.hazard_model, inputs.hazard, parts)
     inputs = with_hazard(inputs, model, hazard)
@@ -254,7 +254,7 @@ def run_events(inputs, ref, executor, clock):
     (EventProduct or None, EventModel or None, CacheCounts)
         The event model is None when the stage is off or read from the cache.
     """
-    if not inputs.config["portfolio"]["event_based"]:
+    if not inputs.config.portfolio.event_based:
         return None, None, CacheCounts()
     t = time.perf_counter()
     cache = stage_cache(inputs)
@@ -353,25 +353,25 @@ def _hazard_frames(inputs):
     model = inputs.hazard_model
     if model is not None and model.disagg is not None:
         frames["disaggregation"], frames["disaggregation_summary"] = hs.disaggregation_frames(
-            model, inputs.hazard, inputs.config["hazard"]["return_periods_yr"])
+            model, inputs.hazard, inputs.config.hazard.return_periods_yr)
     return frames
 
 
 def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, frames, warnings):
     cfg = inputs.config
-    currency = cfg["scenario"]["currency"]
+    currency = cfg.scenario.currency
     model = inputs.hazard_model
     manifest = {
         "run_id": run_id,
         "created_utc": run_id[:16],
         "caution": CAUTION,
-        "scenario": cfg["scenario"]["name"],
+        "scenario": cfg.scenario.name,
         "stages": stages_written,
         "inputs": dict(inputs.input_hashes),
         "inputs_sha256": inputs.inputs_sha256,
         "config": cfg.resolved(),
         "packages": package_versions(),
-        "seed": cfg["portfolio"]["seed"] if events is not None else None,
+        "seed": cfg.portfolio.seed if events is not None else None,
         "cross_checks": None if events is None else events.checks,
         "cache": (counts or CacheCounts()).as_dict(),
         "timings_s": {k: round(v, 4) for k, v in timings.items()},
@@ -415,7 +415,7 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     """
     t0 = time.perf_counter()
     cfg = inputs.config
-    currency = cfg["scenario"]["currency"]
+    currency = cfg.scenario.currency
     frames = _hazard_frames(inputs)
     warnings = list(inputs.warnings)
     if damage is not None:
@@ -426,7 +426,7 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     if extra is not None:
         frames.update(extra.tables)
     frames.update(run_input_frames(inputs.exposure, inputs.library))  # the run stores the inputs it used
-    output = cfg["output"]["folder"]
+    output = cfg.output.folder
     run_id = new_run_id(output, inputs.inputs_sha256)
     provenance = {"run_id": run_id, "inputs_sha256": inputs.inputs_sha256,
                   "quakefolio_version": package_versions()["quakefolio"], "currency": currency, "caution": CAUTION}
@@ -439,7 +439,7 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         manifest = _manifest(inputs, run_id, "hazard" if damage is None else "all", events, counts, timings, writer,
                              frames, warnings)
         writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
-        if cfg["output"]["report"]:
+        if cfg.output.report:
             from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
 
             write_report(writer.partial, writer.partial / "report.html")

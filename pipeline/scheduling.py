@@ -60,7 +60,7 @@ def unchanged_since(inputs):
         The unchanged run's folder; None also when there is no run or its manifest is
         unreadable.
     """
-    previous = latest_run(inputs.config["output"]["folder"])
+    previous = latest_run(inputs.config.output.folder)
     if previous is None:
         return None
     try:
@@ -99,12 +99,12 @@ def scheduled_portfolio_risk(config_path: str) -> str:
     if same is not None:
         _say(f"inputs unchanged since run {same.name}; nothing written")
         return ""
-    previous = latest_run(inputs.config["output"]["folder"])
+    previous = latest_run(inputs.config.output.folder)
     backend, address = resolve_execution(inputs.config)
     if backend == "dask":
         runner = dask_task_runner(address)
     else:
-        runner = ThreadPoolTaskRunner(max_workers=inputs.config["execution"]["max_workers"])
+        runner = ThreadPoolTaskRunner(max_workers=inputs.config.execution.max_workers)
     run_dir = Path(portfolio_risk.with_options(task_runner=runner)(config_path, "all"))
     if previous is None:
         _say(f"new run {run_dir.name} (no earlier run to compare with)")

@@ -25,12 +25,12 @@ EXPECTED = {"site_hazard", "hazard_at_return_periods", "asset_damage", "asset_lo
 def test_failing_stage_is_named_with_its_cause(tmp_path, monkeypatch, capsys):
     dst = tmp_path / "mini"
     shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
-    from quakefolio.pipeline import stages
+    from quakefolio.pipeline.stages import blocks
 
     def broken(inputs, block):
         raise RuntimeError("simulated numerical failure")
 
-    monkeypatch.setattr(stages, "compute_block", broken)
+    monkeypatch.setattr(blocks, "compute_block", broken)  # what the damage block task calls
     code = main(["run", "--no-flow", str(dst / "quakefolio.toml")])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 1 and len(err) == 1

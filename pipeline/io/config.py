@@ -363,7 +363,8 @@ class Config:
     Each section is also available as a frozen settings object with typed attributes:
     ``cfg.hazard.mode``, ``cfg.portfolio.years``, ``cfg.execution.block_size`` (see
     :class:`HazardSettings` and the other ``*Settings`` classes).  The attribute view is
-    built from ``sections`` on access, so both views always agree.
+    built from ``sections`` on first access and kept: a Config is not changed after
+    :func:`load_config` returns it, so both views always agree.
     """
 
     path: Path
@@ -403,7 +404,14 @@ class Config:
         ScenarioSettings, ScreeningSettings, HazardSettings, PortfolioSettings,
         ExposureSettings, FragilitySettings, OutputSettings or ExecutionSettings
         """
-        return SETTINGS_CLASSES[section].from_mapping(self.sections[section])
+        cache = self.__dict__.setdefault("_settings", {})
+        if section not in cache:
+            cache[section] = SETTINGS_CLASSES[section].from_mapping(self.sections[section])
+        return cache[section]
+
+    def __getstate__(self):
+        """Pickled without the settings objects (read-only mappings do not pickle; rebuilt on access)."""
+        return {k: v for k, v in self.__dict__.items() if k != "_settings"}
 
     scenario = property(lambda self: self.settings("scenario"), doc="[scenario] as ScenarioSettings")
     screening = property(lambda self: self.settings("screening"), doc="[screening] as ScreeningSettings")
@@ -717,8 +725,8 @@ def resolve_execution(config, executor=None, address=None):
     address : str
         Scheduler address; empty for the local backend (and for a local Dask cluster).
     """
-    ex = config["execution"]
-    backend = executor or ("dask" if address else ex["backend"])
+    ex = config.execution
+    backend = executor or ("dask" if address else ex.backend)
     if backend != "dask":
         return "local", ""
-    return "dask", address if address is not None else ex["address"]
+    return "dask", address if address is not None else ex.address

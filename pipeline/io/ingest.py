@@ -11,8 +11,10 @@ import csv
 import io
 import re
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
+from types import MappingProxyType
+from typing import Mapping
 
 import numpy as np
 import pandas as pd
@@ -321,26 +323,61 @@ class UnavailableIM(ValueError):
     """The hazard file cannot provide curves for an IM a fragility class needs."""
 
 
-@dataclass
+@dataclass(frozen=True)
 class HazardCurves:
-    """Tabulated hazard curves per IM for a set of sites.
+    """Tabulated hazard curves per IM for a set of sites (read-only).
+
+    Curves at untabulated periods are added once, at input time, by :meth:`with_im`
+    (a new object); nothing changes an existing one.
 
     Attributes
     ----------
     site_id : ndarray of str (n_sites,)
     lon, lat : ndarray (n_sites,) [deg]
-    curves : dict IM name -> (levels (n_sites, n_levels) [g], rates (n_sites, n_levels) [1/yr])
+    curves : Mapping IM name -> (levels (n_sites, n_levels) [g], rates (n_sites, n_levels) [1/yr])
+        Read-only.
     source : str
         File the curves came from.
-    interpolated : set of IM names built by period interpolation
+    interpolated : frozenset of IM names built by period interpolation
     """
 
     site_id: np.ndarray
     lon: np.ndarray
     lat: np.ndarray
-    curves: dict
+    curves: Mapping
     source: str
-    interpolated: set
+    interpolated: frozenset = frozenset()
+
+    def __post_init__(self):
+        object.__setattr__(self, "curves", MappingProxyType(dict(self.curves)))
+        object.__setattr__(self, "interpolated", frozenset(self.interpolated))
+
+    def with_im(self, im, *, allow_interpolation=True):
+        """These curves with ``im`` available: ``self`` if it is there, else a new object with its
+        curves interpolated across periods (:func:`curves_for_im`) and ``im`` in ``interpolated``.
+
+        Parameters
+        ----------
+        im : str
+            Canonical IM name.
+        allow_interpolation : bool
+            ``[hazard] period_interpolation``.
+
+        Returns
+        -------
+        HazardCurves
+
+        Raises
+        ------
+        UnavailableIM
+            As :func:`curves_for_im`.
+        """
+        if im in self.curves:
+            return self
+        curves = dict(self.curves)
+        levels, rates = curves_for_im(self, im, allow_interpolation=allow_interpolation)
+        curves[im] = (levels, rates)
+        return replace(self, curves=curves, interpolated=self.interpolated | {im})
 
 
 def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
@@ -364,8 +401,8 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     Returns
     -------
     HazardCurves
-        Sites sorted by id; per IM, levels [g] and annual rates [1/yr] of shape
-        (n_sites, n_levels).
+        Sites sorted by id; per tabulated IM (none interpolated), levels [g] and annual
+        rates [1/yr] of shape (n_sites, n_levels).
 
     Raises
     ------
@@ -441,20 +478,20 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
         sub = sub.set_index("site_id").loc[site_ids]
         curves[im] = (sub.level.to_numpy().reshape(-1, n), sub.rate.to_numpy().reshape(-1, n))
     return HazardCurves(site_id=site_ids, lon=sites.lon.to_numpy(), lat=sites.lat.to_numpy(), curves=curves,
-                        source=str(path), interpolated=set())
+                        source=str(path), interpolated=frozenset())
 
 
 def curves_for_im(hazard, im, *, allow_interpolation=True):
-    """Curves for ``im``; if not tabulated, interpolated across the neighbouring periods.
+    """Curves for ``im``; if not among ``hazard.curves``, interpolated across the neighbouring periods.
 
-    Interpolation is log-log across the two nearest tabulated periods on either side
-    (:func:`quakefolio.core.curves.interpolate_period`).  Interpolated curves are cached
-    on ``hazard`` and the IM is recorded in ``hazard.interpolated``.
+    A pure look-up: interpolated curves are returned, not stored
+    (:meth:`HazardCurves.with_im` keeps them).  Between periods the interpolation is
+    log-log at equal rates (:func:`quakefolio.core.curves.interpolate_period`).
 
     Parameters
     ----------
     hazard : HazardCurves
-        Curves read by :func:`read_hazard_curves` (modified: interpolated IMs are added).
+        Curves read by :func:`read_hazard_curves` (not modified).
     im : str
         IM name (``PGA`` or ``SA_<period in s>``).
     allow_interpolation : bool
@@ -485,10 +522,7 @@ def curves_for_im(hazard, im, *, allow_interpolation=True):
                          "it can be interpolated between periods, not extrapolated")
     lo, hi = below[-1], above[0]
     (x1, l1), (x2, l2) = hazard.curves[lo], hazard.curves[hi]
-    levels, rates = interpolate_period(t, im_period(lo), x1, l1, im_period(hi), x2, l2)
-    hazard.curves[im] = (levels, rates)
-    hazard.interpolated.add(im)
-    return levels, rates
+    return interpolate_period(t, im_period(lo), x1, l1, im_period(hi), x2, l2)
 
 
 def map_assets_to_sites(exposure, hazard, *, max_distance_km, exposure_path):

@@ -183,7 +183,7 @@ def work_folder(inputs):
     Path
         Created on first use by :func:`publish_hazard`.
     """
-    root = Path(inputs.config["output"]["folder"]).resolve() / ".work"
+    root = Path(inputs.config.output.folder).resolve() / ".work"
     folder = root / uuid.uuid4().hex
     try:
         yield folder
@@ -258,7 +258,7 @@ def disagg_task(ref, block):
         Contributions ``(n_im, n_block_sites, n_rp, n_mag, n_dist, n_eps)`` [1/yr].
     """
     inputs = resolve(ref)
-    return hs.disagg_block(inputs.hazard_model, inputs.hazard, inputs.config["hazard"]["return_periods_yr"], block,
+    return hs.disagg_block(inputs.hazard_model, inputs.hazard, inputs.config.hazard.return_periods_yr, block,
                            stage_cache(inputs))
 
 

@@ -29,8 +29,8 @@ def _damage_group_key(inputs, code):
     cfg = inputs.config
     dss = inputs.library[code]
     return digest("damage", code, dss.im, list(dss.names), dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov,
-                  dss.collapse_index, cfg["fragility"]["tail"], cfg["fragility"]["crossing"],
-                  list(cfg["output"]["loss_curve_ratios"]))
+                  dss.collapse_index, cfg.fragility.tail, cfg.fragility.crossing,
+                  list(cfg.output.loss_curve_ratios))
 
 
 def plan_blocks(inputs):
@@ -48,11 +48,11 @@ def plan_blocks(inputs):
     -------
     DamagePlan
     """
-    size = inputs.config["execution"]["block_size"]
+    size = inputs.config.execution.block_size
     model = inputs.hazard_model
     cache = stage_cache(inputs)
     use_cache = cache.enabled and not (
-        model is not None and (inputs.config["hazard"]["propagate_branches"] or not model.statistics))
+        model is not None and (inputs.config.hazard.propagate_branches or not model.statistics))
     blocks, cached, pair_keys = [], {}, {}
     counts = CacheCounts()
     classes = inputs.exposure.building_class.to_numpy()
@@ -94,18 +94,18 @@ def compute_block(inputs, block):
     dss = inputs.library[block.class_code]
     levels, rates = curves_for_im(inputs.hazard, dss.im)
     x, lam = levels[block.sites], rates[block.sites]
-    ds, below, above = dss.annual_rates(x, lam, tail=cfg["fragility"]["tail"],
-                                        envelope=cfg["fragility"]["crossing"] == "envelope", diagnostics=True)
+    ds, below, above = dss.annual_rates(x, lam, tail=cfg.fragility.tail,
+                                        envelope=cfg.fragility.crossing == "envelope", diagnostics=True)
     eal_ratio = expected_annual_loss(ds, dss.mean_damage_ratio)
-    curve = loss_exceedance_rates(ds, dss.mean_damage_ratio, np.asarray(cfg["output"]["loss_curve_ratios"]),
+    curve = loss_exceedance_rates(ds, dss.mean_damage_ratio, np.asarray(cfg.output.loss_curve_ratios),
                                   dss.cov)
     model = inputs.hazard_model
-    if not (model is not None and cfg["hazard"]["propagate_branches"]):
+    if not (model is not None and cfg.hazard.propagate_branches):
         return BlockResult(block, ds, below, above, eal_ratio, curve)
     # every logic-tree branch through the same kernels, then weighted fractiles over branches
     i = model.ims.index(dss.im)
     branch = model.branch_curves[:, :, i][:, :, block.sites].reshape((-1, len(block.sites), x.shape[-1]))
-    ds_b = dss.annual_rates(x, branch, tail=cfg["fragility"]["tail"], envelope=cfg["fragility"]["crossing"] == "envelope")
+    ds_b = dss.annual_rates(x, branch, tail=cfg.fragility.tail, envelope=cfg.fragility.crossing == "envelope")
     w = branch_weights(model)
     return BlockResult(block, ds, below, above, eal_ratio, curve,
                        ds_fractiles=weighted_fractiles(ds_b, w, model.fractiles),
@@ -187,8 +187,8 @@ def build_tables(inputs, classes):
     """
     ex = inputs.exposure
     cfg = inputs.config
-    horizon = cfg["scenario"]["horizon_yr"]
-    ratios = np.asarray(cfg["output"]["loss_curve_ratios"])
+    horizon = cfg.scenario.horizon_yr
+    ratios = np.asarray(cfg.output.loss_curve_ratios)
     classes_of_assets = ex.building_class.to_numpy()
     n_assets = len(ex)
     damage_frames, curve_parts = [], []
@@ -251,13 +251,13 @@ def build_tables(inputs, classes):
         "loss": (value[:, None] * ratios[None, :]).ravel(),
         "annual_rate_exceed": curve_all.ravel(),
     })
-    threshold = cfg["fragility"]["tail_share_warning"]
+    threshold = cfg.fragility.tail_share_warning
     n_tail = int((max_tail > threshold).sum())
     warnings = []
     if n_tail:
         warnings.append(
             f"{n_tail} assets draw more than {threshold:.0%} of a damage-state rate from beyond the tabulated "
-            f"hazard range (tail policy '{cfg['fragility']['tail']}'; see tail_share_* in asset_damage)")
+            f"hazard range (tail policy '{cfg.fragility.tail}'; see tail_share_* in asset_damage)")
     return {"asset_damage": asset_damage, "asset_loss": asset_loss, "asset_loss_curve": asset_loss_curve}, warnings
 
 
@@ -265,7 +265,7 @@ def _fractile_tables(inputs, results):
     """Logic-tree fractiles of per-asset damage-state rates and EAL (propagated branches)."""
     ex = inputs.exposure
     model = inputs.hazard_model
-    horizon = inputs.config["scenario"]["horizon_yr"]
+    horizon = inputs.config.scenario.horizon_yr
     names = [statistic_name(q) for q in model.fractiles]
     classes = ex.building_class.to_numpy()
     dmg, loss = [], []

@@ -16,7 +16,7 @@ gathers inputs, calls them and lays results out as tables.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -37,9 +37,9 @@ from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_ye
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
 
-@dataclass
+@dataclass(frozen=True)
 class EventModel:
-    """Inputs of the event-based stage, prepared once."""
+    """Inputs of the event-based stage, prepared once (read-only)."""
 
     branch_id: str
     branch_index: int
@@ -69,11 +69,10 @@ class EventModel:
     deductible: np.ndarray
     limit: np.ndarray
     chunk_blocks: int
-    extra: dict = field(default_factory=dict)
 
 
 def _branch(config, model):
-    wanted = config["portfolio"]["source_branch"]
+    wanted = config.portfolio.source_branch
     ids = [b for b, _, _ in model.source_branches]
     if wanted:
         if wanted not in ids:
@@ -125,14 +124,14 @@ def prepare_events(inputs):
     """
     single_blas_thread()
     cfg = inputs.config
-    pf = cfg["portfolio"]
+    pf = cfg.portfolio
     model = inputs.hazard_model
     b = _branch(cfg, model)
     bid, _, src = model.source_branches[b]
     rs = src.ruptures
-    events = stochastic_event_set(rs.rate, pf["years"], pf["seed"])
+    events = stochastic_event_set(rs.rate, pf.years, pf.seed)
     weights = np.array([w for _, w, _ in model.gmm_branches])
-    rng = stream_rng(pf["seed"], STREAM_GMM_CHOICE)
+    rng = stream_rng(pf.seed, STREAM_GMM_CHOICE)
     gmm_of_event = rng.choice(len(weights), size=events.n_events, p=weights / weights.sum()).astype(np.int64)
     used = np.unique(inputs.site_index)
     local = np.searchsorted(used, inputs.site_index)
@@ -145,16 +144,16 @@ def prepare_events(inputs):
         usites, pair = np.unique(local[assets], return_inverse=True)
         classes.append((code, assets, model.ims.index(dss.im), dss, usites, pair))
     sampler = FieldSampler(inputs.hazard.lon[used], inputs.hazard.lat[used], model.ims,
-                           spatial_correlation=pf["spatial_correlation"],
-                           cross_im_correlation=pf["cross_im_correlation"], vs30_clustering=pf["vs30_clustering"])
-    per_task = max(1, int(np.ceil(cfg["execution"]["event_block_size"] / EVENT_BLOCK_SIZE)))
+                           spatial_correlation=pf.spatial_correlation,
+                           cross_im_correlation=pf.cross_im_correlation, vs30_clustering=pf.vs30_clustering)
+    per_task = max(1, int(np.ceil(cfg.execution.event_block_size / EVENT_BLOCK_SIZE)))
     return EventModel(
         branch_id=bid, branch_index=b, ruptures=rs, source_ids=tuple(rs.source_ids), events=events,
         gmm_of_event=gmm_of_event, gmms=[g for _, _, g in model.gmm_branches],
         gmm_ids=[i for i, _, _ in model.gmm_branches], ims=list(model.ims), sites=used,
         site_lon=inputs.hazard.lon[used], site_lat=inputs.hazard.lat[used], site_vs30=model.site_vs30[used],
-        sampler=sampler, seed=pf["seed"], n_years=pf["years"], truncation_sigma=model.truncation_sigma,
-        max_distance_km=model.max_distance_km, region=model.region, ref=model.ref, loss_model=pf["loss_model"],
+        sampler=sampler, seed=pf.seed, n_years=pf.years, truncation_sigma=model.truncation_sigma,
+        max_distance_km=model.max_distance_km, region=model.region, ref=model.ref, loss_model=pf.loss_model,
         levels_g=model.levels_g, asset_site=local, classes=classes, value=ex.replacement_value.to_numpy(),
         deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task)
 
@@ -252,7 +251,7 @@ def combine_events(em, inputs, results):
     gu = np.concatenate([r.ground_up for r in results]) if results else np.zeros(0)
     net = np.concatenate([r.net for r in results]) if results else np.zeros(0)
     rup = ev.rupture
-    rps = np.asarray(inputs.config["portfolio"]["return_periods_yr"], dtype=float)
+    rps = np.asarray(inputs.config.portfolio.return_periods_yr, dtype=float)
     event_loss = pd.DataFrame({
         "event_id": ev.event_id, "year": ev.year.astype(np.int64), "rupture_id": rup,
         "source_id": np.array(em.source_ids, dtype=object)[em.ruptures.source_index[rup]],
@@ -325,7 +324,7 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
     curves = _branch_mean_curves(em, inputs)
     classical = np.zeros(len(em.value))
     for code, assets, i_im, dss, usites, pair in em.classes:
-        ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config["fragility"]["tail"])
+        ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)
         classical[assets] = expected_annual_loss(ds, dss.mean_damage_ratio)[pair] * em.value[assets]
     aal = aal_cross_check(asset_sum[0], asset_sumsq[0], n, classical, years["ground_up"][0])
     # event-based hazard: rate of events with IM > x, vs the classical curve, where the
@@ -371,7 +370,7 @@ def event_cache_key(inputs):
     used = sorted(set(inputs.exposure.building_class))
     classes = fragility_class_digests(inputs.library)
     return digest("events", model.digest, cfg.resolved()["portfolio"], cfg.resolved()["hazard"],
-                  cfg["fragility"]["tail"], {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"])
+                  cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"])
 
 
 def load_cached(cache, key, kind="events"):

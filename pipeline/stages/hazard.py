@@ -13,7 +13,6 @@ import numpy as np
 import pandas as pd
 
 from quakefolio.core.curves import im_at_rate
-from quakefolio.core.errors import InputError, locate_toml_line
 from quakefolio.core.gmm import get_gmm
 from quakefolio.core.hazard import (
     DisaggBins, compute_disaggregation, compute_site_hazard, disaggregation_summary, weighted_fractiles,
@@ -23,6 +22,7 @@ from quakefolio.core.ims import im_period
 from quakefolio.core.sites import exact_sites, grid_reference, snap_sites
 from quakefolio.pipeline.io.cache import digest
 from quakefolio.pipeline.io.ingest import HazardCurves
+from quakefolio.pipeline.stages.checks import LibraryLines, check_class_hazard, model_periods
 from quakefolio.pipeline.stages.products import SiteBlockResult, frozen_mapping
 from quakefolio.pipeline.io.source_model import load_source_model
 
@@ -145,13 +145,14 @@ def build_sites(exposure, spacing_km, default_vs30):
     return ids, site_lon, site_lat, site_vs30, site_index, dist, ref
 
 
-def prepare_compute(config, exposure, library):
+def prepare_compute(config, exposure, library, lines=None):
     """Validate the compute-mode inputs and build the sites (no hazard computed yet).
 
     Reads every source-model branch, resolves the ground-motion model branches, adds the
     IMs the exposure's fragility classes need to the configured ones (sorted by period),
     checks that every ground-motion model covers those periods and builds the sites
-    (:func:`build_sites`).
+    (:func:`build_sites`).  The class check is
+    :func:`quakefolio.pipeline.stages.checks.check_class_hazard`.
 
     Parameters
     ----------
@@ -161,6 +162,8 @@ def prepare_compute(config, exposure, library):
         Validated exposure (:func:`quakefolio.pipeline.io.ingest.read_exposure`).
     library : quakefolio.fragility.FragilityLibrary
         The fragility classes.
+    lines : quakefolio.pipeline.stages.checks.LibraryLines, optional
+        Line locator of the library files (a new one if not given).
 
     Returns
     -------
@@ -179,41 +182,26 @@ def prepare_compute(config, exposure, library):
         When a class's IM lies outside a ground-motion model's periods (naming the
         library file and the class), or a source model is invalid.
     """
-    hz = config["hazard"]
+    hz = config.hazard
     sources = []
-    for branch in hz["source_models"]:
+    for branch in hz.source_models:
         sources.append((branch["id"], branch["weight"], load_source_model(branch["file"])))
-    gmms = [(b["id"], b["weight"], get_gmm(b["model"])) for b in hz["gmm_branches"]]
+    gmms = [(b["id"], b["weight"], get_gmm(b["model"])) for b in hz.gmm_branches]
     used = sorted(set(exposure.building_class))
     needed = {library[c].im for c in used}
-    ims = sorted(set(hz["ims"]) | needed, key=im_period)
-    text = None
+    ims = sorted(set(hz.ims) | needed, key=im_period)
+    lines = lines or LibraryLines()
     for code in used:
-        im = library[code].im
-        for gid, _, gmm in gmms:
-            if im not in gmm.supported_ims and not _period_ok(gmm, im):
-                text = text or open(config["fragility"]["library"], encoding="utf-8").read()
-                lo, hi = gmm.period_range_s
-                raise InputError(config["fragility"]["library"],
-                                 f"class {code!r}: {im} is outside the periods of ground-motion model {gid} "
-                                 f"({lo:g}-{hi:g} s)", row=locate_toml_line(text, ("classes", code), "im"),
-                                 column=f"classes.{code}.im")
-    ids, lon, lat, vs30, site_index, dist, ref = build_sites(exposure, hz["site_spacing_km"], hz["default_vs30_mps"])
-    levels = np.asarray(hz["im_levels_g"], dtype=float)
+        check_class_hazard(library[code], model_periods(gmms), config.fragility.library, lines, reject_crossing=False)
+    ids, lon, lat, vs30, site_index, dist, ref = build_sites(exposure, hz.site_spacing_km, hz.default_vs30_mps)
+    levels = np.asarray(hz.im_levels_g, dtype=float)
     model_digest = digest(
         "hazard-model", [(bid, w, src.sha256) for bid, w, src in sources], [(g, w) for g, w, _ in gmms], ims,
-        levels, hz["truncation_sigma"], hz["integration_distance_km"], hz["region"], list(ref))
-    model = HazardModel(tuple(sources), tuple(gmms), ims, levels, hz["truncation_sigma"], hz["integration_distance_km"],
-                        hz["region"], list(hz["fractiles"]), hz["disaggregation"], vs30, ref, digest=model_digest)
-    hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=set())
+        levels, hz.truncation_sigma, hz.integration_distance_km, hz.region, list(ref))
+    model = HazardModel(tuple(sources), tuple(gmms), ims, levels, hz.truncation_sigma, hz.integration_distance_km,
+                        hz.region, list(hz.fractiles), hz.disaggregation, vs30, ref, digest=model_digest)
+    hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=frozenset())
     return model, hazard, site_index, dist
-
-
-def _period_ok(gmm, im):
-    if im == "PGA":
-        return "PGA" in gmm.supported_ims
-    lo, hi = gmm.period_range_s
-    return lo <= im_period(im) <= hi
 
 
 def site_blocks(n_sites, size):
@@ -350,7 +338,7 @@ def with_branch_curves(model, hazard, curves):
     levels = np.broadcast_to(model.levels_g, (n_sites, len(model.levels_g)))
     mean_curves = {im: (np.array(levels), statistics["mean"][i]) for i, im in enumerate(model.ims)}
     return (replace(model, branch_curves=curves, statistics=frozen_mapping(statistics)),
-            replace(hazard, curves=mean_curves, interpolated=set()))
+            replace(hazard, curves=mean_curves, interpolated=frozenset()))
 
 
 def combine_hazard(model, hazard, parts):
@@ -534,7 +522,7 @@ def site_hazard_table(inputs):
         return site_hazard_frame(inputs.hazard_model, inputs.hazard)
     frames = []
     hz = inputs.hazard
-    stat = inputs.config["hazard"]["statistic"]
+    stat = inputs.config.hazard.statistic
     for im in sorted(set(hz.curves) - hz.interpolated):
         x, lam = hz.curves[im]
         m, n = x.shape
@@ -562,14 +550,14 @@ def hazard_at_return_periods_table(inputs):
         ``site_id``, ``im``, ``statistic``, ``return_period_yr`` [yr], ``im_level`` [g]
         (NaN unless ``ok``), ``flag``.
     """
-    cfg = inputs.config["hazard"]
-    rps = np.asarray(cfg["return_periods_yr"])
+    cfg = inputs.config.hazard
+    rps = np.asarray(cfg.return_periods_yr)
     target = 1.0 / rps
     frames = []
     for stat, im, x, lam in _curve_sets(inputs):
         vals = im_at_rate(target, x, lam)  # (m, n_rp)
         flag = np.where(np.isnan(vals), "outside_range", "ok")
-        floor = np.broadcast_to(target < cfg["rate_floor"], vals.shape)
+        floor = np.broadcast_to(target < cfg.rate_floor, vals.shape)
         flag = np.where(floor, "below_rate_floor", flag)
         vals = np.where(floor, np.nan, vals)
         frames.append(pd.DataFrame({"site_id": np.repeat(inputs.hazard.site_id, len(rps)), "im": im,
@@ -583,7 +571,7 @@ def _curve_sets(inputs):
     model = inputs.hazard_model
     if model is None:
         hz = inputs.hazard
-        stat = inputs.config["hazard"]["statistic"]
+        stat = inputs.config.hazard.statistic
         for im in sorted(set(hz.curves) - hz.interpolated):
             yield (stat, im) + tuple(hz.curves[im])
         return

@@ -9,13 +9,11 @@ from dataclasses import replace
 
 import numpy as np
 
-from quakefolio.core.errors import InputError, locate_toml_line
-from quakefolio.fragility import CrossingError, load_library
+from quakefolio.fragility import load_library
 from quakefolio.pipeline.io.cache import StageCache
 from quakefolio.pipeline.io.config import load_config, sha256_file
-from quakefolio.pipeline.io.ingest import (
-    UnavailableIM, curves_for_im, map_assets_to_sites, read_exposure, read_hazard_curves,
-)
+from quakefolio.pipeline.io.ingest import map_assets_to_sites, read_exposure, read_hazard_curves
+from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 from quakefolio.pipeline.stages.hazard import prepare_compute
 from quakefolio.pipeline.stages.products import RunInputs, frozen_mapping
 from quakefolio.pipeline.stages.whatif import validate as validate_alternatives
@@ -52,7 +50,7 @@ def stage_cache(inputs):
     -------
     quakefolio.pipeline.io.cache.StageCache
     """
-    return StageCache(inputs.config["output"]["folder"], enabled=inputs.config["execution"]["cache"])
+    return StageCache(inputs.config.output.folder, enabled=inputs.config.execution.cache)
 
 
 def load_inputs(config_or_path):
@@ -72,53 +70,43 @@ def load_inputs(config_or_path):
     RunInputs
     """
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
-    hz, ex, fr = config["hazard"], config["exposure"], config["fragility"]
-    library = load_library(fr["library"])
-    exposure = read_exposure(ex["file"], library)
+    hz, ex, fr = config.hazard, config.exposure, config.fragility
+    library = load_library(fr.library)
+    exposure = read_exposure(ex.file, library)
     hashes = {
         "config": {"path": str(config.path), "sha256": config.sha256},
-        "fragility_library": {"path": str(fr["library"]), "sha256": library.sha256},
-        "exposure": {"path": str(ex["file"]), "sha256": sha256_file(ex["file"])},
+        "fragility_library": {"path": str(fr.library), "sha256": library.sha256},
+        "exposure": {"path": str(ex.file), "sha256": sha256_file(ex.file)},
     }
+    lines = LibraryLines()
     model = None
-    if hz["mode"] == "ingest":
-        hazard = read_hazard_curves(hz["curves_file"], im_unit=hz["im_unit"], statistic=hz["statistic"])
-        hashes["hazard_curves"] = {"path": str(hz["curves_file"]), "sha256": sha256_file(hz["curves_file"])}
-        site_index, dist = map_assets_to_sites(exposure, hazard, max_distance_km=hz["max_site_distance_km"],
-                                               exposure_path=ex["file"])
+    if hz.mode == "ingest":
+        hazard = read_hazard_curves(hz.curves_file, im_unit=hz.im_unit, statistic=hz.statistic)
+        hashes["hazard_curves"] = {"path": str(hz.curves_file), "sha256": sha256_file(hz.curves_file)}
+        site_index, dist = map_assets_to_sites(exposure, hazard, max_distance_km=hz.max_site_distance_km,
+                                               exposure_path=ex.file)
+        levels_of = TabulatedLevels(hazard, hz.period_interpolation)
     else:
-        model, hazard, site_index, dist = prepare_compute(config, exposure, library)
+        model, hazard, site_index, dist = prepare_compute(config, exposure, library, lines)
         for bid, _, src in model.source_branches:
             hashes[f"source_model:{bid}"] = {"path": src.path, "sha256": src.sha256}
-    text = None
+        levels_of = computed_levels(model, config.path)
     for code in sorted(set(exposure.building_class)):
-        dss = library[code]
-        if model is None:
-            try:
-                levels, _ = curves_for_im(hazard, dss.im, allow_interpolation=hz["period_interpolation"])
-            except UnavailableIM as exc:
-                text = text or open(fr["library"], encoding="utf-8").read()
-                raise InputError(fr["library"], f"class {code!r}: {exc}",
-                                 row=locate_toml_line(text, ("classes", code), "im"), column=f"classes.{code}.im") \
-                    from None
-        else:
-            levels = model.levels_g
-        if fr["crossing"] == "reject":
-            try:
-                dss.check_crossing(float(levels.min()), float(levels.max()))
-            except CrossingError as exc:
-                text = text or open(fr["library"], encoding="utf-8").read()
-                j = dss.names.index(exc.upper)
-                raise InputError(fr["library"], str(exc),
-                                 row=locate_toml_line(text, ("classes", code, "states"), "beta", j),
-                                 column=f"classes.{code}.states[{j}].beta") from None
+        check_class_hazard(library[code], levels_of, fr.library, lines, reject_crossing=fr.crossing == "reject")
+    if model is None:
+        hazard = levels_of.hazard  # with the curves interpolated across periods for the classes
     warnings = []
     if hazard.interpolated:
         warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
                         "(log-log between neighbouring tabulated periods)")
     draft = RunInputs(config, library, hazard, exposure, site_index, dist, hashes, "", tuple(warnings), model)
-    validate_alternatives(draft, hashes)  # retrofit alternatives: asset ids, classes, IMs; adds their library files
-    return replace(draft, input_hashes=frozen_mapping(hashes), inputs_sha256=inputs_digest(hashes, config))
+    # retrofit alternatives: asset ids, classes, IMs; adds their library files to hashes
+    alternatives = validate_alternatives(draft, hashes, lines)
+    if model is None:  # the new classes' IMs, interpolated as the checks did
+        for alt in alternatives:
+            hazard = hazard.with_im(alt.dss.im, allow_interpolation=hz.period_interpolation)
+    return replace(draft, hazard=hazard, input_hashes=frozen_mapping(hashes),
+                   inputs_sha256=inputs_digest(hashes, config))
 
 
 def with_hazard(inputs, model, hazard):

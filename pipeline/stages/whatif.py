@@ -54,8 +54,9 @@ from quakefolio.core.events.losses import sum_over_blocks
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
 from quakefolio.core.risk import risk_targeted_im
-from quakefolio.fragility import CrossingError, load_library
-from quakefolio.pipeline.io.ingest import UnavailableIM, curves_for_im
+from quakefolio.fragility import load_library
+from quakefolio.pipeline.io.ingest import curves_for_im
+from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 
 __all__ = ["Alternative", "EventRerun", "validate", "evaluate", "screening_tables", "alternative_tables",
            "rerun_events", "annuity_factor", "present_value", "UHS_PROB", "UHS_YEARS"]
@@ -95,40 +96,7 @@ def _same_fragility(a, b):
                     for k in ("medians", "betas", "mean_damage_ratio", "cov")))
 
 
-def _check_new_class_hazard(inputs, dss, library_path, alt_id):
-    """The hazard must provide the new class's IM, and its curves must not cross (as for the run's classes)."""
-    cfg = inputs.config
-    code = dss.class_code
-    model = inputs.hazard_model
-
-    def text():
-        return Path(library_path).read_text(encoding="utf-8")
-
-    if model is None:
-        try:
-            levels, _ = curves_for_im(inputs.hazard, dss.im, allow_interpolation=cfg["hazard"]["period_interpolation"])
-        except UnavailableIM as exc:
-            raise InputError(library_path, f"class {code!r} (new_class of alternative {alt_id!r}): {exc}",
-                             row=locate_toml_line(text(), ("classes", code), "im"), column=f"classes.{code}.im") \
-                from None
-    else:
-        if dss.im not in model.ims:
-            raise InputError(library_path, f"class {code!r} (new_class of alternative {alt_id!r}): {dss.im} is not "
-                                           f"among the computed IMs ({', '.join(model.ims)}); add it to [hazard] ims "
-                                           f"in {cfg.path}",
-                             row=locate_toml_line(text(), ("classes", code), "im"), column=f"classes.{code}.im")
-        levels = model.levels_g
-    if cfg["fragility"]["crossing"] == "reject":
-        try:
-            dss.check_crossing(float(np.min(levels)), float(np.max(levels)))
-        except CrossingError as exc:
-            j = dss.names.index(exc.upper)
-            raise InputError(library_path, f"{exc} (new_class of alternative {alt_id!r})",
-                             row=locate_toml_line(text(), ("classes", code, "states"), "beta", j),
-                             column=f"classes.{code}.states[{j}].beta") from None
-
-
-def validate(inputs, hashes=None):
+def validate(inputs, hashes=None, lines=None):
     """Check every ``[[scenario.alternatives]]`` table against the exposure, libraries and hazard.
 
     Raises InputError naming the config file, the line and the key
@@ -144,15 +112,22 @@ def validate(inputs, hashes=None):
     hashes : dict, optional
         Filled with ``{"fragility_library:<alt_id>": {"path": ..., "sha256": ...}}`` per extra
         library.
+    lines : quakefolio.pipeline.stages.checks.LibraryLines, optional
+        Line locator of the library files already used by the run (a new one if not given).
 
     Returns
     -------
     list of :class:`Alternative`, in config order.
     """
     cfg = inputs.config
-    entries = cfg["scenario"]["alternatives"]
+    entries = cfg.scenario.alternatives
     if not entries:
         return []
+    lines = lines or LibraryLines()
+    if inputs.hazard_model is None:
+        levels_of = TabulatedLevels(inputs.hazard, cfg.hazard.period_interpolation)
+    else:
+        levels_of = computed_levels(inputs.hazard_model, cfg.path)
     config_text = Path(cfg.path).read_text(encoding="utf-8")
     ex = inputs.exposure
     ids = ex.asset_id.to_numpy().astype(str)
@@ -172,7 +147,7 @@ def validate(inputs, hashes=None):
             known = np.isin(wanted, ids)
             if not known.all():
                 bad = str(wanted[np.argmin(known)])
-                fail(f"unknown asset id {bad!r}" + _suggestion(bad, ids, f"the exposure {cfg['exposure']['file']} "
+                fail(f"unknown asset id {bad!r}" + _suggestion(bad, ids, f"the exposure {cfg.exposure.file} "
                                                                          "has ids"), "assets")
             selected[position.loc[wanted].to_numpy()] = True
         code = entry["building_class"]
@@ -182,10 +157,10 @@ def validate(inputs, hashes=None):
                                                                       "the library defines"), "building_class")
             of_class = classes == code
             if not of_class.any():
-                fail(f"no asset of class {code!r} in the exposure {cfg['exposure']['file']}", "building_class")
+                fail(f"no asset of class {code!r} in the exposure {cfg.exposure.file}", "building_class")
             selected |= of_class
         if entry["fragility_library"] is None:
-            library, library_path = inputs.library, str(cfg["fragility"]["library"])
+            library, library_path = inputs.library, str(cfg.fragility.library)
         else:
             library_path = str(entry["fragility_library"])
             library = load_library(library_path)
@@ -196,7 +171,9 @@ def validate(inputs, hashes=None):
             fail(f"unknown building class {new_class!r}" + _suggestion(new_class, library.classes,
                                                                        f"{library_path} defines"), "new_class")
         dss = library[new_class]
-        _check_new_class_hazard(inputs, dss, library_path, aid)
+        # the hazard must provide the new class's IM, and its curves must not cross (as for the run's classes)
+        check_class_hazard(dss, levels_of, library_path, lines, reject_crossing=cfg.fragility.crossing == "reject",
+                           alternative=aid)
         assets = np.flatnonzero(selected)
         value = ex.replacement_value.to_numpy()[assets]
         if entry["retrofit_cost"] is not None:
@@ -216,9 +193,9 @@ def _pair_kernel(inputs, dss, sites):
     The calls of :func:`quakefolio.pipeline.stages.damage.compute_block` (same curves, tail
     policy and crossing option).
     """
-    fr = inputs.config["fragility"]
+    fr = inputs.config.fragility
     levels, rates = curves_for_im(inputs.hazard, dss.im)
-    ds = dss.annual_rates(levels[sites], rates[sites], tail=fr["tail"], envelope=fr["crossing"] == "envelope")
+    ds = dss.annual_rates(levels[sites], rates[sites], tail=fr.tail, envelope=fr.crossing == "envelope")
     return ds, expected_annual_loss(ds, dss.mean_damage_ratio)
 
 
@@ -273,7 +250,7 @@ def _mean_curve_sets(inputs):
     model = inputs.hazard_model
     hz = inputs.hazard
     if model is None:
-        stat = inputs.config["hazard"]["statistic"]
+        stat = inputs.config.hazard.statistic
         for im in sorted(set(hz.curves) - hz.interpolated):
             yield (stat, im) + tuple(hz.curves[im])
         return
@@ -307,8 +284,8 @@ def screening_tables(inputs, collapse_rate):
         where a value is not bracketed, outside the curve or below the rate floor).
     """
     cfg = inputs.config
-    sc = cfg["screening"]
-    target_p, target_t = sc["collapse_target_prob"], sc["collapse_target_years"]
+    sc = cfg.screening
+    target_p, target_t = sc.collapse_target_prob, sc.collapse_target_years
     ex = inputs.exposure
     prob = prob_in_years(collapse_rate, target_t)
     assets = pd.DataFrame({
@@ -318,11 +295,11 @@ def screening_tables(inputs, collapse_rate):
         "exceeds_target": prob > target_p, "ratio_to_target": prob / target_p,
     })
     uhs_rate = float(rate_from_prob(UHS_PROB, UHS_YEARS))
-    below_floor = uhs_rate < cfg["hazard"]["rate_floor"]
+    below_floor = uhs_rate < cfg.hazard.rate_floor
     frames = []
     for stat, im, x, lam in _mean_curve_sets(inputs):
-        rt = risk_targeted_im(x, lam, beta=sc["rt_beta"], prob_at_im=sc["rt_prob_at_im"], target_prob=target_p,
-                              years=target_t, tail=cfg["fragility"]["tail"])
+        rt = risk_targeted_im(x, lam, beta=sc.rt_beta, prob_at_im=sc.rt_prob_at_im, target_prob=target_p,
+                              years=target_t, tail=cfg.fragility.tail)
         uhs = np.full(len(rt), np.nan) if below_floor else im_at_rate(uhs_rate, x, lam)
         flag = np.where(np.isnan(rt), "risk_targeted_not_bracketed",
                         np.where(np.isnan(uhs), "below_rate_floor" if below_floor else "uhs_outside_range", "ok"))
@@ -459,9 +436,9 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
         horizon).
     """
     cfg = inputs.config
-    sc, scen = cfg["screening"], cfg["scenario"]
-    cur, horizon = scen["currency"], scen["horizon_yr"]
-    rate, years = scen["discount_rate"], scen["benefit_horizon_yr"]
+    sc, scen = cfg.screening, cfg.scenario
+    cur, horizon = scen.currency, scen.horizon_yr
+    rate, years = scen.discount_rate, scen.benefit_horizon_yr
     factor = float(annuity_factor(rate, years))
     ex = inputs.exposure
     ids = ex.asset_id.to_numpy()
@@ -471,9 +448,9 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
     site_all = inputs.hazard.site_id[inputs.site_index]
     collapse_all, eal_ratio_all = _per_asset(inputs, by_class)
     eal_all = eal_ratio_all * value_all
-    target_p, target_t = sc["collapse_target_prob"], sc["collapse_target_years"]
+    target_p, target_t = sc.collapse_target_prob, sc.collapse_target_years
     exceed_all = prob_in_years(collapse_all, target_t) > target_p
-    rps = np.asarray(cfg["portfolio"]["return_periods_yr"], dtype=float)
+    rps = np.asarray(cfg.portfolio.return_periods_yr, dtype=float)
     asset_frames, damage_frames, portfolio_rows, bc_frames = [], [], [], []
     for alt in alternatives:
         a = alt.assets
