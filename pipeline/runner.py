@@ -259,7 +259,7 @@ def run_events(inputs, ref, executor, clock):
     t = time.perf_counter()
     cache = stage_cache(inputs)
     key = ps.event_cache_key(inputs)
-    cached = ps.load_cached(cache, key)
+    cached = cache.get_tables("events", key)
     em = None
     if cached is not None:
         events = EventProduct(*cached, from_cache=True)
@@ -268,7 +268,7 @@ def run_events(inputs, ref, executor, clock):
         blocks.register_events(ref, em)
         chunks = executor.many("event-loss-block", blocks.event_task, ref, ps.event_chunks(em))
         tables, checks = executor.one("portfolio-aggregate", ps.combine_events, em, inputs, chunks)
-        ps.save_cached(cache, key, (tables, checks))
+        cache.put_tables("events", key, tables, checks)
         events = EventProduct(tables, checks)
     clock("event_based_s", t)
     return events, em, CacheCounts.of("event_stage", events.from_cache, not events.from_cache)
@@ -299,11 +299,11 @@ def run_whatif(inputs, damage, events, em, executor, clock):
     t = time.perf_counter()
     cache = stage_cache(inputs)
     key = digest("screening-and-what-if", inputs.inputs_sha256)  # every input file and setting
-    cached = ps.load_cached(cache, key, kind="whatif")
+    cached = cache.get_tables("whatif", key)
     if cached is None:
         portfolio = None if events is None else (events.tables, events.checks)
         tables = executor.one("screening-and-what-if", whatif.evaluate, inputs, damage.pair_results(), portfolio, em)
-        ps.save_cached(cache, key, (tables, {}), kind="whatif")
+        cache.put_tables("whatif", key, tables, {})
         product = WhatIfProduct(tables)
     else:
         product = WhatIfProduct(cached[0], from_cache=True)

@@ -33,7 +33,7 @@ from pathlib import Path
 from urllib.parse import urlsplit
 
 from quakefolio.pipeline.env import state_folder
-from quakefolio.pipeline.io.store import process_alive
+from quakefolio.pipeline.io.store import atomic_write_text, process_alive
 
 __all__ = ["LOOPBACK", "LocalServer", "ServerError", "server_folder", "find_server", "start_server",
            "ensure_server", "connect_or_start", "is_healthy"]
@@ -252,9 +252,7 @@ def start_server(timeout_s=START_TIMEOUT_S):
         time.sleep(0.25)
     info = {"url": url, "host": LOOPBACK, "port": port, "pid": proc.pid, "database": str(database),
             "log": str(log_path)}
-    tmp = folder / f".server.json.{os.getpid()}.tmp"
-    tmp.write_text(json.dumps(info, indent=2) + "\n", encoding="utf-8")
-    os.replace(tmp, folder / "server.json")
+    atomic_write_text(folder / "server.json", json.dumps(info, indent=2) + "\n")
     return server
 
 

@@ -2,9 +2,12 @@
 import json
 import shutil
 
+import numpy as np
 import pandas as pd
 import pytest
+from numpy.testing import assert_array_equal
 
+from quakefolio.pipeline.io.cache import StageCache
 from quakefolio.pipeline.runner import run_pure
 from quakefolio.pipeline.io.store import read_table
 
@@ -91,3 +94,76 @@ def test_unchanged_rerun_with_events_and_what_if_is_all_cached_and_identical(fol
     assert "whatif_portfolio" in names and "event_loss" in names
     for name in names:
         pd.testing.assert_frame_equal(read_table(a, name), read_table(b, name), check_exact=True)
+
+
+def _events_config(folder):
+    cfg = folder / "quakefolio_compute.toml"
+    cfg.write_text(cfg.read_text().replace("[exposure]", "[portfolio]\nyears = 500\nseed = 3\n\n[exposure]"))
+    return cfg
+
+
+def test_edited_table_entry_is_recomputed_and_replaced(folder):
+    # a well-formed Parquet file with other numbers must not be trusted
+    cfg = _events_config(folder)
+    a = run_pure(cfg)
+    entry = next((folder / "output" / "cache" / "events").iterdir())
+    path = entry / "event_loss.parquet"
+    frame = pd.read_parquet(path)
+    frame["ground_up_loss"] = frame["ground_up_loss"] * 2.0 + 1.0
+    frame.to_parquet(path, index=False)
+    b = run_pure(cfg)
+    assert stats(b)["event_stage"] == {"computed": 1, "from_cache": 0}
+    for name in ("event_loss", "year_loss", "portfolio_ep", "portfolio_summary"):
+        pd.testing.assert_frame_equal(read_table(a, name), read_table(b, name), check_exact=True)
+    c = run_pure(cfg)  # the replaced entry is trusted again
+    assert stats(c)["event_stage"] == {"computed": 0, "from_cache": 1}
+    pd.testing.assert_frame_equal(read_table(a, "event_loss"), read_table(c, "event_loss"), check_exact=True)
+
+
+def test_corrupt_event_entry_is_replaced(folder):
+    cfg = _events_config(folder)
+    a = run_pure(cfg)
+    entry = next((folder / "output" / "cache" / "events").iterdir())
+    (entry / "year_loss.parquet").write_bytes(b"not parquet")
+    (entry / "checks.json").write_text("{", encoding="utf-8")
+    b = run_pure(cfg)
+    assert stats(b)["event_stage"] == {"computed": 1, "from_cache": 0}
+    assert json.loads((entry / "checks.json").read_text())["tables"]  # a complete entry again
+    c = run_pure(cfg)
+    assert stats(c)["event_stage"] == {"computed": 0, "from_cache": 1}
+    for name in ("event_loss", "year_loss"):
+        pd.testing.assert_frame_equal(read_table(a, name), read_table(c, name), check_exact=True)
+
+
+def test_edited_array_entry_is_a_miss(tmp_path):
+    # a valid .npz archive with the right key but other numbers is removed, not trusted
+    cache = StageCache(tmp_path)
+    cache.put("hazard", "ab" * 32, {"curves": np.linspace(0.0, 1.0, 7)})
+    assert_array_equal(cache.get("hazard", "ab" * 32)["curves"], np.linspace(0.0, 1.0, 7))
+    path = cache._path("hazard", "ab" * 32)
+    with np.load(path) as data:
+        stored = {k: data[k] for k in data.files}
+    stored["curves"] = stored["curves"] + 1e-12
+    np.savez(path, **stored)
+    assert cache.get("hazard", "ab" * 32) is None
+    assert not path.exists()
+
+
+def test_table_entry_round_trip_and_checks_are_verified(tmp_path):
+    cache = StageCache(tmp_path)
+    frame = pd.DataFrame({"a": np.arange(4, dtype=np.int64), "b": np.linspace(0, 1, 4), "c": list("wxyz")})
+    cache.put_tables("whatif", "cd" * 32, {"t": frame}, {"passed": True, "z": 0.5})
+    tables, checks = cache.get_tables("whatif", "cd" * 32)
+    pd.testing.assert_frame_equal(tables["t"], frame, check_exact=True)
+    assert checks == {"passed": True, "z": 0.5}
+    meta_path = cache.root / "whatif" / ("cd" * 32) / "checks.json"
+    meta = json.loads(meta_path.read_text())
+    meta["checks"]["passed"] = False  # an edited check is an edited entry
+    meta_path.write_text(json.dumps(meta))
+    assert cache.get_tables("whatif", "cd" * 32) is None
+    assert not meta_path.parent.exists()
+    cache.put_tables("whatif", "cd" * 32, {"t": frame}, {})
+    cache.put_tables("whatif", "cd" * 32, {"t": frame.iloc[:2]}, {})  # an existing entry is replaced
+    pd.testing.assert_frame_equal(cache.get_tables("whatif", "cd" * 32)[0]["t"], frame.iloc[:2], check_exact=True)
+    assert sorted(p.name for p in (cache.root / "whatif").iterdir()) == ["cd" * 32]  # no leftovers
+    assert StageCache(tmp_path, enabled=False).get_tables("whatif", "cd" * 32) is None

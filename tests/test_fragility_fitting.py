@@ -9,6 +9,7 @@ import ast
 import json
 import math
 import shutil
+import stat
 import subprocess
 import sys
 import tomllib
@@ -475,6 +476,16 @@ def test_cli_write_library_replaces_a_state_and_keeps_its_consequences(tmp_path,
     assert after.names == before.names and after.medians[2] != before.medians[2]
     assert after.mean_damage_ratio[2] == before.mean_damage_ratio[2] and after.cov[2] == before.cov[2]
     assert after.downtime_days[2] == before.downtime_days[2]
+
+
+def test_cli_write_library_keeps_the_file_mode(tmp_path, capsys):
+    lib = _copy_library(tmp_path)
+    lib.chmod(0o640)
+    code, _, _ = _run(["fit-fragility", str(EXAMPLE_MSA), "--extra-beta", "0.45", "--write-library", str(lib),
+                       "--class", "RCF-LO", "--state", "irreparable"], capsys)
+    assert code == 0 and lib.read_bytes() != DEMO_LIBRARY.read_bytes()
+    assert stat.S_IMODE(lib.stat().st_mode) == 0o640
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["library.toml"]
 
 
 def test_cli_write_library_creates_class_and_file(tmp_path, capsys):

@@ -14,7 +14,7 @@ from quakefolio.core.errors import InputError
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.compare.attribution import compare_runs
 from quakefolio.pipeline.compare.diff import CAUSES
-from quakefolio.pipeline.io.store import PARTIAL_PREFIX, fsync_path, to_arrow
+from quakefolio.pipeline.io.store import PARTIAL_PREFIX, atomic_publish_folder, to_arrow
 from quakefolio.pipeline.io.tables import TABLES, units_for
 
 __all__ = ["write_change_report", "change_summary_text"]
@@ -90,22 +90,7 @@ def write_change_report(run_a, run_b, out_dir=None, *, result=None):
         text = json.dumps(dict(causes, created_utc=provenance["created_utc"]), indent=2, sort_keys=True) + "\n"
         with open(partial / "change_causes.json", "w", encoding="utf-8") as fh:
             fh.write(text)
-        for f in partial.iterdir():
-            fsync_path(f)
-        fsync_path(partial)
-        old = None
-        if final.exists():
-            old = parent / f".replaced-{name}-{os.getpid()}"
-            os.replace(final, old)
-        try:
-            os.replace(partial, final)
-        except BaseException:
-            if old is not None:
-                os.replace(old, final)
-            raise
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-        fsync_path(parent)
+        atomic_publish_folder(partial, final, replace=True)
     except BaseException:
         shutil.rmtree(partial, ignore_errors=True)
         raise

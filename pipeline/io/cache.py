@@ -3,27 +3,45 @@
 Every cached item is keyed by the sha256 of everything it depends on: the content of the
 inputs it reads (file bytes, the site's coordinates and Vs30, the curve values, the class
 parameters), the configuration it uses and the code version (a digest of quakefolio's own
-source files).  The cache lives in ``<output>/cache/``; it is safe to delete, files are
-written atomically, and an entry is used only when the key stored inside it matches the
-key asked for (a corrupt or mismatched file is a miss and is removed).  Entries are numpy
-``.npz`` archives read with ``allow_pickle=False``: nothing in the cache is ever unpickled.
+source files).  The cache lives in ``<output>/cache/``; it is safe to delete, and every
+entry is written atomically (:func:`quakefolio.pipeline.io.store.atomic_write_bytes` for a
+file, :func:`quakefolio.pipeline.io.store.atomic_publish_folder` for a folder).
+
+Two kinds of entry, one rule for trusting them:
+
+- arrays: one numpy ``.npz`` archive per key, ``<stage>/<key[:2]>/<key>.npz``, read with
+  ``allow_pickle=False`` (nothing in the cache is ever unpickled);
+- tables: one folder per key, ``<stage>/<key>/``, holding a Parquet file per table and
+  ``checks.json`` (the key, the table names, the stage's checks).
+
+Each entry stores the key it was written for and a sha256 of its content (the arrays'
+names, dtypes, shapes and bytes; the Parquet files' bytes and the checks).  On reading
+both are recomputed and compared: a missing entry is a miss, and a corrupt, mismatched or
+edited one (even a well-formed file with other numbers) is a miss that is removed, so the
+stage recomputes and the new entry replaces it.
 
 Granularity: hazard per site (all logic-tree branches of one site), damage and loss per
-unique (site, class) pair, and the event-based stage as a whole (its events share every
-site and asset).
+unique (site, class) pair, and the event-based and what-if stages as a whole (as tables:
+their events share every site and asset).
 """
 from __future__ import annotations
 
+import errno
 import hashlib
+import io
 import json
 import os
+import shutil
 import threading
 from functools import lru_cache
 from pathlib import Path
 
 import numpy as np
 
-__all__ = ["code_version", "digest", "fragility_class_digests", "StageCache", "PairStore", "row_digests"]
+from quakefolio.pipeline.io.store import atomic_publish_folder, atomic_write_bytes
+
+__all__ = ["code_version", "digest", "content_digest", "fragility_class_digests", "StageCache", "PairStore",
+           "row_digests"]
 
 
 @lru_cache(maxsize=1)
@@ -101,11 +119,56 @@ def fragility_class_digests(library):
     return out
 
 
+def content_digest(arrays):
+    """sha256 hex of a set of named arrays: names (sorted), dtypes, shapes and bytes.
+
+    Parameters
+    ----------
+    arrays : dict str -> array_like
+
+    Returns
+    -------
+    str
+        64 hex digits; equal for equal content whatever the order of the dict.
+    """
+    h = hashlib.sha256()
+    for name in sorted(arrays):
+        a = np.ascontiguousarray(arrays[name])
+        h.update(f"{name}|{a.dtype.str}|{a.shape}|".encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _tables_digest(files, checks_text):
+    """sha256 hex of a table entry: each Parquet file's sha256 (by name) and the checks' JSON."""
+    h = hashlib.sha256()
+    for name in sorted(files):
+        h.update(f"{name}|{files[name]}|".encode())
+    h.update(checks_text.encode())
+    return h.hexdigest()
+
+
+class _Untrusted(Exception):
+    """A cache entry that exists but is not what was written for its key."""
+
+
 class StageCache:
-    """Key -> dict of arrays, one ``.npz`` per key under ``<output>/cache/<stage>/``.
+    """The content cache of one output folder: arrays (``.npz``) and tables (Parquet folders).
+
+    Arrays: key -> dict of arrays, one ``.npz`` per key under ``<output>/cache/<stage>/``
+    (:meth:`get`, :meth:`put`).  Tables: key -> (dict of DataFrames, checks), one folder per
+    key (:meth:`get_tables`, :meth:`put_tables`).  Every entry carries its key and a sha256
+    of its content, checked on reading (see the module notes).
 
     A handle on the cache folder only (no state of its own): stages count their hits
     and misses in their results (:class:`quakefolio.pipeline.stages.products.CacheCounts`).
+
+    Parameters
+    ----------
+    output_folder : path-like
+        The run's output folder; the cache is its ``cache/`` subfolder.
+    enabled : bool, default True
+        When False every lookup is a miss and nothing is written.
     """
 
     def __init__(self, output_folder, enabled=True):
@@ -116,21 +179,18 @@ class StageCache:
         return self.root / stage / key[:2] / f"{key}.npz"
 
     def get(self, stage, key):
-        """The arrays stored under ``key`` for ``stage``, or None on a miss.
-
-        A file whose stored key differs from ``key`` or that cannot be read is a miss and is
-        removed; a disabled cache always misses.
+        """The arrays stored under ``key``, or None (missing, or not trusted: then removed).
 
         Parameters
         ----------
         stage : str
-            Cache subfolder (e.g. ``"hazard"``).
+            The stage's cache folder.
         key : str
-            Hex digest of everything the entry depends on (:func:`digest`).
+            Hex digest of everything the entry depends on.
 
         Returns
         -------
-        dict of str -> ndarray or None
+        dict str -> ndarray, or None
         """
         if not self.enabled:
             return None
@@ -138,38 +198,121 @@ class StageCache:
         try:
             with np.load(path, allow_pickle=False) as data:
                 if str(data["__key__"]) != key:
-                    raise ValueError("key mismatch")
-                out = {k: data[k] for k in data.files if k != "__key__"}
+                    raise _Untrusted("key mismatch")
+                out = {k: data[k] for k in data.files if k not in ("__key__", "__sha256__")}
+                stored = str(data["__sha256__"])
+            if content_digest(out) != stored:
+                raise _Untrusted("content does not match its digest")
         except FileNotFoundError:
             return None
-        except Exception:  # corrupt or foreign file: never trusted, removed
+        except Exception:  # corrupt, foreign or edited file: never trusted, removed
             path.unlink(missing_ok=True)
             return None
         return out
 
     def put(self, stage, key, arrays):
-        """Store ``arrays`` under ``key`` for ``stage``, atomically (temporary file, then rename).
-
-        Does nothing when the cache is disabled.
+        """Store ``arrays`` under ``key`` with the key and their content digest (atomic write).
 
         Parameters
         ----------
         stage : str
-            Cache subfolder (e.g. ``"hazard"``).
+            The stage's cache folder.
         key : str
-            Hex digest of everything the entry depends on (:func:`digest`).
-        arrays : dict of str -> ndarray
-            The entry's content; names must not start with ``__``.
+            Hex digest of everything the entry depends on.
+        arrays : dict str -> ndarray
+            Names must not start with ``__``.
         """
         if not self.enabled:
             return
         path = self._path(stage, key)
         path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.{threading.get_ident()}.tmp")
-        with open(tmp, "wb") as fh:
-            np.savez(fh, __key__=np.array(key), **arrays)
-        os.replace(tmp, path)
+        buffer = io.BytesIO()
+        np.savez(buffer, __key__=np.array(key), __sha256__=np.array(content_digest(arrays)), **arrays)
+        atomic_write_bytes(path, buffer.getvalue())
 
+    def get_tables(self, stage, key):
+        """The tables and checks stored under ``key``, or None (missing, or not trusted: then removed).
+
+        Parameters
+        ----------
+        stage : str
+            The stage's cache folder (``"events"``, ``"whatif"``).
+        key : str
+            Hex digest of everything the stage's results depend on.
+
+        Returns
+        -------
+        (dict str -> pandas.DataFrame, dict) or None
+            The tables in the order they were stored, and the stage's checks.
+        """
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        if not self.enabled:
+            return None
+        folder = self.root / stage / key
+        if not folder.is_dir():
+            return None
+        try:
+            meta = json.loads((folder / "checks.json").read_text(encoding="utf-8"))
+            if meta.get("key") != key:
+                raise _Untrusted("key mismatch")
+            blobs = {name: (folder / f"{name}.parquet").read_bytes() for name in meta["tables"]}
+            files = {name: hashlib.sha256(b).hexdigest() for name, b in blobs.items()}
+            if _tables_digest(files, json.dumps(meta["checks"], sort_keys=True)) != meta["sha256"]:
+                raise _Untrusted("content does not match its digest")
+            tables = {name: pq.read_table(pa.BufferReader(b)).to_pandas() for name, b in blobs.items()}
+        except Exception:  # corrupt, foreign or edited entry: never trusted, removed
+            shutil.rmtree(folder, ignore_errors=True)
+            return None
+        return tables, meta["checks"]
+
+    def put_tables(self, stage, key, tables, checks):
+        """Store a stage's tables and checks under ``key`` (a folder renamed into place).
+
+        An existing entry under the same key is replaced.  Written under a temporary name
+        and published by :func:`quakefolio.pipeline.io.store.atomic_publish_folder`; if
+        another process publishes the same key at the same moment, its entry is kept.
+
+        Parameters
+        ----------
+        stage : str
+            The stage's cache folder (``"events"``, ``"whatif"``).
+        key : str
+            Hex digest of everything the stage's results depend on.
+        tables : dict str -> pandas.DataFrame
+            Written as Parquet without the index.
+        checks : dict
+            JSON-able stage checks.
+        """
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        if not self.enabled:
+            return
+        parent = self.root / stage
+        tmp = parent / f".{key}.{os.getpid()}.{threading.get_ident()}.tmp"
+        shutil.rmtree(tmp, ignore_errors=True)
+        tmp.mkdir(parents=True)
+        try:
+            files = {}
+            for name, frame in tables.items():
+                sink = pa.BufferOutputStream()
+                pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), sink)
+                blob = sink.getvalue().to_pybytes()
+                (tmp / f"{name}.parquet").write_bytes(blob)
+                files[name] = hashlib.sha256(blob).hexdigest()
+            meta = {"key": key, "tables": list(tables), "checks": checks,
+                    "sha256": _tables_digest(files, json.dumps(checks, sort_keys=True))}
+            (tmp / "checks.json").write_text(json.dumps(meta), encoding="utf-8")
+            try:
+                atomic_publish_folder(tmp, parent / key, replace=True)
+            except OSError as exc:
+                if exc.errno not in (errno.ENOTEMPTY, errno.EEXIST):
+                    raise
+                # another process published this key meanwhile: its entry stands
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
 
 
 class PairStore:

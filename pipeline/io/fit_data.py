@@ -12,9 +12,7 @@ library that is already invalid is never rewritten.
 """
 from __future__ import annotations
 
-import os
 import stat
-import tempfile
 import tomllib
 from pathlib import Path
 
@@ -24,6 +22,7 @@ from quakefolio.core.errors import InputError
 from quakefolio.fragility.fitting import library_to_toml, set_damage_state
 from quakefolio.fragility.library import FORMAT_TAG, load_library, parse_library, read_toml
 from quakefolio.pipeline.io.ingest import NON_NEGATIVE, POSITIVE, WHOLE, _numbers, read_table
+from quakefolio.pipeline.io.store import atomic_write_text
 
 __all__ = ["read_fit_data", "write_fitted_state", "FIT_COLUMNS"]
 
@@ -165,23 +164,17 @@ def _header(text, tag, note):
 
 
 def _replace_file(path, text):
-    """Write ``text`` to a temporary file beside ``path``, then rename it into place (same permissions)."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        if path.exists():
-            os.chmod(tmp, stat.S_IMODE(path.stat().st_mode))
-        else:
-            mask = os.umask(0)
-            os.umask(mask)
-            os.chmod(tmp, 0o666 & ~mask)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    """Write ``text`` to ``path`` atomically, keeping the permissions of an existing file.
+
+    Parameters
+    ----------
+    path : pathlib.Path
+        The library file (its folder must exist).
+    text : str
+        The whole new content (UTF-8, newlines as given).
+    """
+    mode = stat.S_IMODE(path.stat().st_mode) if path.exists() else None
+    atomic_write_text(path, text, mode=mode)
 
 
 def write_fitted_state(library_path, class_code, state, fit, *, data_path, mean_damage_ratio=None, cov=None,

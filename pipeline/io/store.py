@@ -32,7 +32,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 __all__ = ["RunWriter", "RunFolder", "latest_run", "read_table", "table_metadata", "atomic_write_bytes",
-           "atomic_write_text", "PARTIAL_PREFIX"]
+           "atomic_write_text", "atomic_publish_folder", "PARTIAL_PREFIX"]
 
 PARTIAL_PREFIX = ".partial-"
 METADATA_KEY = b"quakefolio"
@@ -144,6 +144,50 @@ def atomic_write_text(path, text, *, mode=None):
         ``path``.
     """
     return atomic_write_bytes(path, text.encode("utf-8"), mode=mode)
+
+
+def atomic_publish_folder(partial, final, *, replace=False):
+    """Rename a completely written folder into place: readers see no folder, the old one or the new one.
+
+    Every file of ``partial`` and the folder itself are fsynced, then ``partial`` is renamed
+    to ``final`` (``os.replace`` of a folder within one file system is atomic) and the
+    parent folder is fsynced.  ``os.replace`` cannot rename over a non-empty folder: with
+    ``replace=True`` an existing ``final`` is first moved aside (``.replaced-<name>-<pid>``
+    beside it), put back if the rename fails, and removed once the new folder is in place.
+
+    Parameters
+    ----------
+    partial : path-like
+        The written folder (same parent file system as ``final``).
+    final : path-like
+        Its name once complete.
+    replace : bool, default False
+        Whether an existing ``final`` is replaced; without it an existing non-empty
+        ``final`` makes the rename fail (``OSError``) and nothing changes.
+
+    Returns
+    -------
+    pathlib.Path
+        ``final``.
+    """
+    partial, final = Path(partial), Path(final)
+    for f in partial.iterdir():
+        fsync_path(f)
+    fsync_path(partial)
+    old = None
+    if replace and final.exists():
+        old = final.with_name(f".replaced-{final.name}-{os.getpid()}")
+        os.replace(final, old)
+    try:
+        os.replace(partial, final)
+    except BaseException:
+        if old is not None:
+            os.replace(old, final)
+        raise
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
+    fsync_path(final.parent)
+    return final
 
 
 def _arrow_type(series):
@@ -279,20 +323,16 @@ class RunWriter:
     def commit(self):
         """Rename the partial folder into place, then point ``LATEST`` at it.
 
-        Every file and the folder are fsynced first; the rename (``os.replace``) is atomic
-        within one file system and ``LATEST`` is replaced by :func:`atomic_write_text`.
+        Every file and the folder are fsynced and the rename is atomic within one file
+        system (:func:`atomic_publish_folder`); ``LATEST`` is replaced by
+        :func:`atomic_write_text`.
 
         Returns
         -------
         pathlib.Path
             The final run folder ``<output>/runs/<run_id>``.
         """
-        for f in self.partial.iterdir():
-            with open(f, "rb") as fh:
-                os.fsync(fh.fileno())
-        fsync_path(self.partial)
-        os.replace(self.partial, self.final)
-        fsync_path(self.runs)
+        atomic_publish_folder(self.partial, self.final)
         atomic_write_text(self.output / "LATEST", self.run_id + "\n")
         return self.final
 

@@ -20,7 +20,7 @@ no executor needs to know where its tasks run.
 from __future__ import annotations
 
 import hashlib
-import os
+import io
 import shutil
 import threading
 import uuid
@@ -31,6 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
+from quakefolio.pipeline.io.store import atomic_write_bytes
 from quakefolio.pipeline.stages import events as ps
 from quakefolio.pipeline.stages import hazard as hs
 from quakefolio.pipeline.stages.damage import compute_block
@@ -216,10 +217,9 @@ def publish_hazard(ref, inputs, folder):
     sha = hashlib.sha256(curves.tobytes()).hexdigest()
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / f"branch_curves-{sha[:16]}.npy"
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    with open(tmp, "wb") as fh:
-        np.save(fh, curves, allow_pickle=False)
-    os.replace(tmp, path)
+    buffer = io.BytesIO()
+    np.save(buffer, curves, allow_pickle=False)
+    atomic_write_bytes(path, buffer.getvalue())
     return register(inputs, replace(ref, hazard_file=str(path), hazard_sha256=sha))
 
 

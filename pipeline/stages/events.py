@@ -343,7 +343,7 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
     return checks, classical
 
 
-# --- cache of the whole stage -----------------------------------------------------------------
+# --- cache key of the whole stage (entry: StageCache.get_tables / put_tables) -----------------
 
 def event_cache_key(inputs):
     """Digest of everything the event-based results depend on.
@@ -371,77 +371,3 @@ def event_cache_key(inputs):
     classes = fragility_class_digests(inputs.library)
     return digest("events", model.digest, cfg.resolved()["portfolio"], cfg.resolved()["hazard"],
                   cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"])
-
-
-def load_cached(cache, key, kind="events"):
-    """(tables, checks) of a cached stage result (``kind``: its cache folder), or None.
-
-    Parameters
-    ----------
-    cache : quakefolio.pipeline.io.cache.StageCache or None
-        The run's cache; None or disabled: always None.
-    key : str
-        Digest of the stage's inputs (e.g. :func:`event_cache_key`).
-    kind : str
-        Cache subfolder (``"events"``, or another whole-stage result).
-
-    Returns
-    -------
-    (dict of str -> pandas.DataFrame, dict) or None
-        None when absent, unreadable or stored under another key.
-    """
-    import json
-
-    import pyarrow.parquet as pq
-
-    if cache is None or not cache.enabled:
-        return None
-    folder = cache.root / kind / key
-    try:
-        meta = json.loads((folder / "checks.json").read_text(encoding="utf-8"))
-        if meta.get("key") != key:
-            return None
-        tables = {name: pq.read_table(folder / f"{name}.parquet").to_pandas() for name in meta["tables"]}
-    except (OSError, ValueError, KeyError):
-        return None
-    return tables, meta["checks"]
-
-
-def save_cached(cache, key, portfolio, kind="events"):
-    """Store a stage's (tables, checks) under the key (atomic folder rename).
-
-    Each table is a Parquet file and the checks a JSON file in a temporary folder renamed
-    into ``<cache>/<kind>/<key>``; an existing entry is kept.
-
-    Parameters
-    ----------
-    cache : quakefolio.pipeline.io.cache.StageCache or None
-        The run's cache; None or disabled: nothing is written.
-    key : str
-        Digest of the stage's inputs (e.g. :func:`event_cache_key`).
-    portfolio : (dict of str -> pandas.DataFrame, dict)
-        The stage's tables and JSON-able checks.
-    kind : str
-        Cache subfolder.
-    """
-    import json
-    import os
-    import shutil
-
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    if cache is None or not cache.enabled:
-        return
-    tables, checks = portfolio
-    final = cache.root / kind / key
-    if final.exists():
-        return
-    tmp = cache.root / kind / f".{key}.{os.getpid()}.tmp"
-    shutil.rmtree(tmp, ignore_errors=True)
-    tmp.mkdir(parents=True)
-    for name, frame in tables.items():
-        pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), tmp / f"{name}.parquet")
-    (tmp / "checks.json").write_text(json.dumps({"key": key, "tables": list(tables), "checks": checks}),
-                                     encoding="utf-8")
-    os.replace(tmp, final)

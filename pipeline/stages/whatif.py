@@ -52,8 +52,9 @@ from quakefolio.core.economics import annuity_factor, benefit_cost_ratio, presen
 from quakefolio.core.errors import InputError, did_you_mean, locate_toml_line
 from quakefolio.core.events.losses import sum_over_blocks
 from quakefolio.core.loss import expected_annual_loss
-from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
+from quakefolio.core.events.portfolio import ep_from_years, tvar, year_loss
 from quakefolio.core.risk import risk_targeted_im
+from quakefolio.core.whatif import alternative_change, change, paired_aal_change, rerun_asset_aal
 from quakefolio.fragility import load_library
 from quakefolio.pipeline.io.ingest import curves_for_im
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
@@ -370,11 +371,10 @@ def rerun_events(em, alternative):
     gu = np.concatenate([c.ground_up for c in chunks]) if chunks else np.zeros(0)
     net = np.concatenate([c.net for c in chunks]) if chunks else np.zeros(0)
     asset_sum = sum_over_blocks([c.asset_sum for c in chunks]) if chunks else np.zeros((2, n + len(changed)))
-    per_asset = asset_sum[0, :n].copy()
-    per_asset[changed] = asset_sum[0, extra]
     agg_gu, occ_gu = year_loss(em.events.year, gu, em.n_years)
     agg_net, occ_net = year_loss(em.events.year, net, em.n_years)
-    return EventRerun(em.events.event_id, gu, net, agg_gu, agg_net, occ_gu, occ_net, per_asset / em.n_years)
+    return EventRerun(em.events.event_id, gu, net, agg_gu, agg_net, occ_gu, occ_net,
+                      rerun_asset_aal(asset_sum[0], n, changed, em.n_years))
 
 
 def _event_rows(alt_id, portfolio, rerun, return_periods, cur):
@@ -386,11 +386,8 @@ def _event_rows(alt_id, portfolio, rerun, return_periods, cur):
     rows = []
     for basis, agg, occ in (("ground_up", rerun.year_ground_up, rerun.max_event_ground_up),
                             ("net", rerun.year_net, rerun.max_event_net)):
-        before_years = years[f"{basis}_loss"].to_numpy()
-        aal, _ = aal_with_standard_error(agg)
-        _, se_change = aal_with_standard_error(agg - before_years)  # paired: same simulated years
-        rows.append(_row(alt_id, "aal", basis, np.nan, f"{cur}/yr", float(summary.loc[basis, "aal"]), float(aal),
-                         float(se_change)))
+        aal, se_change = paired_aal_change(years[f"{basis}_loss"].to_numpy(), agg)  # same simulated years
+        rows.append(_row(alt_id, "aal", basis, np.nan, f"{cur}/yr", float(summary.loc[basis, "aal"]), aal, se_change))
         b = ep[ep.basis == basis].set_index("return_period_yr")
         after = {"aep_loss": ep_from_years(agg, return_periods), "oep_loss": ep_from_years(occ, return_periods),
                  "tvar_loss": tvar(agg, return_periods)}
@@ -401,11 +398,26 @@ def _event_rows(alt_id, portfolio, rerun, return_periods, cur):
 
 
 def _row(alt_id, metric, basis, rp, unit, before, after, se=np.nan):
-    change = after - before
-    with np.errstate(divide="ignore", invalid="ignore"):
-        relative = change / before if before != 0 else (0.0 if change == 0 else np.nan)
+    """One ``whatif_portfolio`` row: the metric before and after, its change and relative change.
+
+    Parameters
+    ----------
+    alt_id, metric, basis, unit : str
+    rp : float [yr]
+        Return period of the metric (NaN when it has none).
+    before, after : float [unit]
+    se : float [unit]
+        Standard error of the change (NaN when not estimated).
+
+    Returns
+    -------
+    dict
+        Column -> value (change and relative change by :func:`quakefolio.core.whatif.change`).
+    """
+    delta, relative = change(before, after)
+    change_value, relative = float(delta), float(relative)
     return {"alternative_id": alt_id, "metric": metric, "basis": basis, "return_period_yr": rp, "unit": unit,
-            "value_before": before, "value_after": after, "change": change, "relative_change": relative,
+            "value_before": before, "value_after": after, "change": change_value, "relative_change": relative,
             "standard_error_of_change": se}
 
 
@@ -447,9 +459,8 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
     value_all = ex.replacement_value.to_numpy()
     site_all = inputs.hazard.site_id[inputs.site_index]
     collapse_all, eal_ratio_all = _per_asset(inputs, by_class)
-    eal_all = eal_ratio_all * value_all
-    target_p, target_t = sc.collapse_target_prob, sc.collapse_target_years
-    exceed_all = prob_in_years(collapse_all, target_t) > target_p
+    targets = {"horizon_yr": horizon, "target_prob": sc.collapse_target_prob,
+               "target_years": sc.collapse_target_years}
     rps = np.asarray(cfg.portfolio.return_periods_yr, dtype=float)
     asset_frames, damage_frames, portfolio_rows, bc_frames = [], [], [], []
     for alt in alternatives:
@@ -478,31 +489,24 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
         order = np.lexsort((dmg.damage_state_index.to_numpy(), (dmg.case == "after").to_numpy(),
                             position.loc[dmg.asset_id].to_numpy()))
         damage_frames.append(dmg.iloc[order])
-        value = value_all[a]
-        eal_before, eal_after = eal_all[a], eal_ratio_after * value
-        p_before = prob_in_years(collapse_all[a], horizon)
-        p_after = prob_in_years(collapse_after, horizon)
-        exceed_after = prob_in_years(collapse_after, target_t) > target_p
+        m = alternative_change(value_all, eal_ratio_all, collapse_all, a, eal_ratio_after, collapse_after, **targets)
+        eal_before, eal_after = m.eal_before, m.eal_after
+        p_before, p_after = m.collapse_prob_before, m.collapse_prob_after
         asset_frames.append(pd.DataFrame({
             "alternative_id": alt.alt_id, "asset_id": ids[a], "building_class": classes[a],
-            "new_class": alt.new_class, "site_id": site_all[a], "replacement_value": value,
+            "new_class": alt.new_class, "site_id": site_all[a], "replacement_value": value_all[a],
             "fragility_changed": alt.changed, "eal_before": eal_before, "eal_after": eal_after,
             "eal_reduction": eal_before - eal_after, "annual_collapse_rate_before": collapse_all[a],
             "annual_collapse_rate_after": collapse_after, "collapse_prob_in_horizon_before": p_before,
             "collapse_prob_in_horizon_after": p_after, "collapse_prob_reduction": p_before - p_after,
-            "horizon_yr": horizon, "exceeds_collapse_target_before": exceed_all[a],
-            "exceeds_collapse_target_after": exceed_after,
+            "horizon_yr": horizon, "exceeds_collapse_target_before": m.exceeds_target_before,
+            "exceeds_collapse_target_after": m.exceeds_target_after,
         }))
         # portfolio metrics (classical: every asset of the exposure, only the selected ones change)
-        eal_total_after = eal_all.sum() - (eal_before - eal_after).sum()
-        collapses = prob_in_years(collapse_all, horizon)
-        exceed_count_after = exceed_all.sum() - exceed_all[a].sum() + exceed_after.sum()
         portfolio_rows += [
-            _row(alt.alt_id, "eal", "classical", np.nan, f"{cur}/yr", float(eal_all.sum()), float(eal_total_after)),
-            _row(alt.alt_id, "expected_collapses_in_horizon", "classical", np.nan, "-", float(collapses.sum()),
-                 float(collapses.sum() - (p_before - p_after).sum())),
-            _row(alt.alt_id, "assets_exceeding_collapse_target", "classical", np.nan, "-", float(exceed_all.sum()),
-                 float(exceed_count_after)),
+            _row(alt.alt_id, "eal", "classical", np.nan, f"{cur}/yr", *m.total_eal),
+            _row(alt.alt_id, "expected_collapses_in_horizon", "classical", np.nan, "-", *m.expected_collapses),
+            _row(alt.alt_id, "assets_exceeding_collapse_target", "classical", np.nan, "-", *m.assets_exceeding_target),
         ]
         if portfolio is not None:
             if changed.size:
