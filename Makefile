@@ -20,8 +20,11 @@ $(STAMP): pyproject.toml requirements.lock
 demo: $(STAMP)
 	$(BIN)/quakefolio run demo_portfolio/quakefolio.toml
 
+# the suite runs in TEST_WORKERS processes (pytest-xdist), one test file per process at a time
+TEST_WORKERS ?= 2
+
 test: $(STAMP)
-	$(BIN)/python -m pytest
+	$(BIN)/python -m pytest -n $(TEST_WORKERS) --dist loadfile
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run_all.py

@@ -7,6 +7,11 @@ import pytest
 
 _STATE = Path(tempfile.mkdtemp(prefix="quakefolio-test-state-"))
 os.environ.setdefault("QUAKEFOLIO_STATE", str(_STATE))
+if os.environ.get("PYTEST_XDIST_WORKER"):
+    # parallel test processes (``pytest -n``): one Prefect state folder (database, server) each
+    _WORKER_STATE = Path(os.environ["QUAKEFOLIO_STATE"]) / f"test-{os.environ['PYTEST_XDIST_WORKER']}"
+    _WORKER_STATE.mkdir(parents=True, exist_ok=True)
+    os.environ["QUAKEFOLIO_STATE"] = str(_WORKER_STATE)
 
 from quakefolio.pipeline.env import configure_prefect  # noqa: E402
 
