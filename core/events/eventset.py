@@ -26,10 +26,36 @@ naming the quantity, and (for per-event quantities) a block index:
 * sampled damage states and loss ratios of event block ``b`` and class entry ``k`` (one
   generator per block and class): ``SeedSequence([seed, STREAM_DAMAGE, b * 4096 + k])``
   (:func:`damage_block_rng`, packing :func:`class_block_index`);
-* :data:`STREAM_LOSS_RATIO` is reserved for loss ratios drawn on their own.
+* :data:`STREAM_LOSS_RATIO` is reserved for loss ratios drawn on their own;
+* the logic-tree branch combination of each simulated year (whole logic tree):
+  ``SeedSequence([seed, STREAM_BRANCH_YEARS])`` (:func:`stream_rng`, :func:`branch_years`);
+* the occurrences of source-model branch ``s`` in its years (whole logic tree):
+  ``SeedSequence([seed, STREAM_BRANCH_EVENTS, s])`` (:func:`branch_rng`,
+  :func:`logic_tree_event_set`).
 
 Every stream tag of the project is defined here and nowhere else; the tags are part of
 the reproducibility contract (changing one changes the draws of its quantity).
+
+Whole logic tree
+----------------
+Epistemic uncertainty enters by simulated year: every year is one realisation of one
+branch combination (source-model branch x ground-motion branch) of the logic tree, with
+all of that year's events drawn from the combination's ruptures and ground-motion model.
+The number of years of combination :math:`c` is the weight apportioned to whole years,
+:math:`N_c = w_c N` rounded by largest remainders (:func:`allocate_years`), and which years
+they are is a uniformly random permutation (:func:`branch_years`), so the year axis stays
+exchangeable. The pooled years are then a stratified sample of the mixture whose annual
+loss distribution is :math:`F = \sum_c w_c F_c`: at every loss :math:`x` the pooled
+empirical exceedance probability is exactly :math:`\sum_c (N_c/N)\,\hat P_c(L > x)`, the
+weighted mean of the branch exceedance curves (the mean-hazard convention applied to the
+EP curve), and each combination's own years give its own EP curve. Stratifying rather than
+drawing each year's branch independently reproduces the weights to within :math:`1/N`
+and removes the between-branch term from the sampling variance of the pooled AAL, whose
+variance is then :math:`\sum_c N_c \lambda_c E_c[L^2] / N^2`, estimated without bias by the
+compound-Poisson form :math:`\sum_e L_e^2 / N^2`.
+One event set per branch combined by weight was the alternative; it multiplies the
+simulated years (and the ground-motion fields) by the number of combinations, while the
+year assignment costs the same per simulated year as a single-branch set.
 
 Events are numbered in a fixed order and cut into blocks of :data:`EVENT_BLOCK_SIZE`
 consecutive events (the last block may be shorter). A block is the unit of random
@@ -57,6 +83,8 @@ __all__ = [
     "STREAM_DAMAGE",
     "STREAM_LOSS_RATIO",
     "STREAM_GMM_CHOICE",
+    "STREAM_BRANCH_YEARS",
+    "STREAM_BRANCH_EVENTS",
     "MAX_CLASS_ENTRIES",
     "EventSet",
     "stochastic_event_set",
@@ -66,6 +94,10 @@ __all__ = [
     "class_block_index",
     "damage_block_rng",
     "check_seed",
+    "allocate_years",
+    "branch_years",
+    "branch_rng",
+    "logic_tree_event_set",
 ]
 
 #: Events per random-number block (see module notes). Changing it changes every sampled
@@ -84,13 +116,17 @@ STREAM_DAMAGE = 3
 STREAM_LOSS_RATIO = 4
 #: Stream tag of the per-event ground-motion-model draw (one generator for the event set).
 STREAM_GMM_CHOICE = 11
+#: Stream tag of the branch combination of each simulated year (whole logic tree).
+STREAM_BRANCH_YEARS = 12
+#: Stream tag of the occurrences of one source-model branch in its years (whole logic tree).
+STREAM_BRANCH_EVENTS = 13
 #: Class entries per event block in the packed index of :func:`class_block_index`.
 MAX_CLASS_ENTRIES = 4096
 
 #: Streams drawn per event block (:func:`block_rng`).
 _STREAMS = (STREAM_EVENT_SET, STREAM_GROUND_MOTION, STREAM_DAMAGE, STREAM_LOSS_RATIO)
 #: Streams drawn once per event set (:func:`stream_rng`).
-_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE)
+_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE, STREAM_BRANCH_YEARS)
 
 
 def check_seed(seed) -> int:
@@ -276,7 +312,7 @@ def stream_rng(seed: int, stream: int) -> np.random.Generator:
     seed : int
         The run's non-negative seed.
     stream : int
-        :data:`STREAM_EVENT_SET` or :data:`STREAM_GMM_CHOICE`.
+        :data:`STREAM_EVENT_SET`, :data:`STREAM_GMM_CHOICE` or :data:`STREAM_BRANCH_YEARS`.
 
     Returns
     -------
@@ -330,3 +366,140 @@ def damage_block_rng(seed: int, block_index: int, class_entry: int) -> np.random
         whatever the chunking of whole blocks into tasks.
     """
     return block_rng(seed, class_block_index(block_index, class_entry), stream=STREAM_DAMAGE)
+
+
+# --------------------------------------------------------------------------- whole logic tree
+
+
+def allocate_years(weights: ArrayLike, n_years: int) -> NDArray[np.int64]:
+    r"""Whole simulated years per branch combination: ``weights * n_years`` by largest remainders.
+
+    Parameters
+    ----------
+    weights : array_like, shape (n_combinations,) [-]
+        Logic-tree weights, >= 0, summing to 1 (1e-9).
+    n_years : int
+        Number of simulated years N, >= 1.
+
+    Returns
+    -------
+    ndarray of int64, shape (n_combinations,)
+        :math:`N_c`, summing to N with :math:`|N_c - w_c N| < 1`: the floors
+        :math:`\lfloor w_c N \rfloor`, then one more year to each of the combinations
+        with the largest remainders (ties to the lower index).
+
+    Notes
+    -----
+    Largest-remainder (Hamilton) apportionment (common practice). A combination whose
+    weight times N is below 1 may get no year.
+    """
+    n_years = _check_positive_int("n_years", n_years)
+    w = np.asarray(weights, dtype=np.float64)
+    if w.ndim != 1 or w.size == 0 or not np.all(np.isfinite(w)) or np.any(w < 0) or abs(w.sum() - 1.0) > 1e-9:
+        raise ValueError(f"weights must be a 1-D array of non-negative numbers summing to 1; got {w.tolist()}")
+    exact = w * n_years
+    counts = np.floor(exact).astype(np.int64)
+    short = n_years - int(counts.sum())
+    order = np.argsort(-(exact - counts), kind="stable")
+    counts[order[:short]] += 1
+    return counts
+
+
+def branch_years(weights: ArrayLike, n_years: int, seed: int) -> NDArray[np.int64]:
+    """Branch combination of every simulated year 1..N (stratified by weight, random order).
+
+    Parameters
+    ----------
+    weights : array_like, shape (n_combinations,) [-]
+        Logic-tree weight of each branch combination (summing to 1).
+    n_years : int
+        Number of simulated years N.
+    seed : int
+        Non-negative seed; the generator is ``SeedSequence([seed, STREAM_BRANCH_YEARS])``.
+
+    Returns
+    -------
+    ndarray of int64, shape (n_years,)
+        Entry ``y - 1`` is the combination of year ``y``; combination ``c`` holds exactly
+        :func:`allocate_years` ``[c]`` years, placed by a uniformly random permutation
+        (module notes, "Whole logic tree").
+    """
+    seed = check_seed(seed)
+    counts = allocate_years(weights, n_years)
+    labels = np.repeat(np.arange(counts.size, dtype=np.int64), counts)
+    return stream_rng(seed, STREAM_BRANCH_YEARS).permutation(labels)
+
+
+def branch_rng(seed: int, branch_index: int) -> np.random.Generator:
+    """The generator of source-model branch ``s``'s occurrences: ``SeedSequence([seed, STREAM_BRANCH_EVENTS, s])``.
+
+    One stream per branch, so a branch's events do not depend on the other branches'
+    rupture sets.
+    """
+    seed = check_seed(seed)
+    if isinstance(branch_index, (bool, np.bool_)) or not isinstance(branch_index, numbers.Integral) \
+            or branch_index < 0:
+        raise ValueError(f"branch_index must be a non-negative integer; got {branch_index!r}")
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence(
+        [seed, STREAM_BRANCH_EVENTS, int(branch_index)])))
+
+
+def logic_tree_event_set(branch_rates, year_branch: ArrayLike, seed: int) -> EventSet:
+    r"""Poisson occurrences when each simulated year belongs to one source-model branch.
+
+    Parameters
+    ----------
+    branch_rates : sequence of array_like, each shape (n_ruptures_s,) [1/yr]
+        Annual rupture rates of each source-model branch ``s`` (finite, >= 0).
+    year_branch : array_like of int, shape (n_years,)
+        Source-model branch of every year 1..N (index into ``branch_rates``), e.g. the
+        source branch of :func:`branch_years`' combinations.
+    seed : int
+        Non-negative seed; branch ``s`` draws from :func:`branch_rng` ``(seed, s)``.
+
+    Returns
+    -------
+    EventSet
+        ``rupture`` indexes the concatenation of the branches' rupture lists (branch ``s``
+        starts at ``sum(len(branch_rates[:s]))``); events sorted by year, then rupture,
+        then occurrence; ``n_years = len(year_branch)``.
+
+    Notes
+    -----
+    For branch :math:`s` with years :math:`Y_s` (:math:`N_s = |Y_s|`),
+    :math:`K_r \sim \mathrm{Poisson}(\nu_r N_s)` occurrences of each of its ruptures, each
+    in a year drawn uniformly from :math:`Y_s`: independent :math:`\mathrm{Poisson}(\nu_r)`
+    counts in every year of :math:`Y_s` and none elsewhere (conditional uniformity,
+    module notes). With one branch owning every year this is the distribution of
+    :func:`stochastic_event_set` (drawn from another stream).
+    """
+    seed = check_seed(seed)
+    yb = np.asarray(year_branch)
+    if yb.ndim != 1 or yb.size == 0 or not np.issubdtype(yb.dtype, np.integer):
+        raise ValueError(f"year_branch must be a non-empty 1-D integer array; got {yb!r}")
+    if yb.size > np.iinfo(np.int32).max:
+        raise ValueError(f"at most {np.iinfo(np.int32).max} years; got {yb.size}")
+    rates = []
+    for s, r in enumerate(branch_rates):
+        r = np.asarray(r, dtype=np.float64)
+        if r.ndim != 1 or not np.all(np.isfinite(r)) or np.any(r < 0):
+            raise ValueError(f"branch_rates[{s}] must be a 1-D array of finite rates >= 0 [1/yr]")
+        rates.append(r)
+    if yb.min() < 0 or yb.max() >= len(rates):
+        raise ValueError(f"year_branch must index the {len(rates)} branches; got values in [{yb.min()}, {yb.max()}]")
+    offset = 0
+    ruptures, years = [], []
+    for s, r in enumerate(rates):
+        own = (np.flatnonzero(yb == s) + 1).astype(np.int32)
+        if own.size:
+            rng = branch_rng(seed, s)
+            counts = rng.poisson(r * own.size)
+            ruptures.append(offset + np.repeat(np.arange(r.size, dtype=np.int64), counts))
+            years.append(own[rng.integers(0, own.size, size=int(counts.sum()))])
+        offset += r.size
+    rupture = np.concatenate(ruptures) if ruptures else np.zeros(0, dtype=np.int64)
+    year = np.concatenate(years).astype(np.int32) if years else np.zeros(0, dtype=np.int32)
+    order = np.lexsort((rupture, year))
+    rupture, year = rupture[order], year[order]
+    event_id = np.arange(1, rupture.size + 1, dtype=np.int64)
+    return EventSet(_readonly(event_id), _readonly(year), _readonly(rupture), int(yb.size))

@@ -253,7 +253,8 @@ def asset_aal_statistics(asset_sum, asset_sumsq, n_years, classical):
     return aal_gu, aal_net, se, z
 
 
-def aal_cross_check(asset_sum_ground_up, asset_sumsq_ground_up, n_years, classical, year_ground_up):
+def aal_cross_check(asset_sum_ground_up, asset_sumsq_ground_up, n_years, classical, year_ground_up,
+                    standard_error=None):
     r"""Event-based AAL against the classical EAL of the same model, per asset and in total.
 
     Parameters
@@ -264,6 +265,10 @@ def aal_cross_check(asset_sum_ground_up, asset_sumsq_ground_up, n_years, classic
     classical : ndarray, shape (n_assets,) [currency/yr]
     year_ground_up : ndarray, shape (n_years,) [currency]
         Annual portfolio losses.
+    standard_error : float, optional
+        Standard error of the portfolio AAL [currency/yr] to use instead of the one of
+        the year losses (e.g. the compound-Poisson one of years stratified by logic-tree
+        branch).
 
     Returns
     -------
@@ -278,6 +283,8 @@ def aal_cross_check(asset_sum_ground_up, asset_sumsq_ground_up, n_years, classic
     with np.errstate(divide="ignore", invalid="ignore"):
         z = np.where(se > 0, (aal - classical) / se, 0.0)
     total_aal, total_se = aal_with_standard_error(year_ground_up)
+    if standard_error is not None:
+        total_se = float(standard_error)
     total_cl = float(classical.sum())
     return {
         "assets": int(len(aal)), "within_3_standard_errors": int(np.sum(np.abs(z) <= 3)),

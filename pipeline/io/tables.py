@@ -90,12 +90,15 @@ TABLES = {
 
 TABLES.update({
     "event_loss": dict(
-        description="Event loss table: one row per simulated event (Poisson occurrences of every rupture of the "
-                    "event-set source branch over the simulated years), with the ground-motion model drawn for it.",
+        description="Event loss table: one row per simulated event (Poisson occurrences of the ruptures of the "
+                    "simulated year's source branch), with its ground-motion model. Whole logic tree (default): "
+                    "source_branch names the year's source-model branch and rupture_id is the rupture's index within "
+                    "it; per-branch mode: one source branch (no source_branch column), the model drawn per event.",
         units={"magnitude": "Mw", "ground_up_loss": "{currency}", "net_loss": "{currency}"},
     ),
     "year_loss": dict(
-        description="Year loss table: aggregate and largest event loss of every simulated year.",
+        description="Year loss table: aggregate and largest event loss of every simulated year; whole logic tree: "
+                    "the year's branch combination (source_branch, gmm).",
         units={"ground_up_loss": "{currency}", "net_loss": "{currency}", "max_event_ground_up_loss": "{currency}",
                "max_event_net_loss": "{currency}"},
     ),
@@ -111,14 +114,18 @@ TABLES.update({
         units={"loss": "{currency}", "annual_exceedance_prob": "1/yr", "return_period_yr": "yr"},
     ),
     "portfolio_summary": dict(
-        description="Average annual loss with its standard error (sample standard deviation of year losses / "
-                    "sqrt(N)), event and year counts, seed, and the classical EAL of the same model.",
+        description="Average annual loss with its standard error, event and year counts, seed, and the classical "
+                    "EAL of the same model. Whole logic tree (source_branch 'all'): the pooled years of every branch "
+                    "combination (the weighted-mean EP), standard error compound Poisson sqrt(sum of squared event "
+                    "losses) / N, classical EAL of every branch by weight (column name kept); per-branch mode: "
+                    "standard error s / sqrt(N) of the year losses, classical EAL of the source branch.",
         units={"aal": "{currency}/yr", "aal_standard_error": "{currency}/yr",
                "classical_eal_same_branch": "{currency}/yr"},
     ),
     "asset_event_loss": dict(
         description="Per asset: event-based AAL (ground-up, net) with its standard error (compound Poisson), the "
-                    "classical EAL of the same source branch and GMM weights, and their z-score.",
+                    "classical EAL of the same model (whole logic tree: every branch by weight; per-branch mode: the "
+                    "source branch with GMM weights), and their z-score.",
         units={"aal_ground_up": "{currency}/yr", "aal_net": "{currency}/yr",
                "aal_ground_up_standard_error": "{currency}/yr", "classical_eal_same_branch": "{currency}/yr",
                "z_score": "-"},
@@ -126,6 +133,27 @@ TABLES.update({
     "portfolio_breakdown": dict(
         description="Event-based AAL by building class and by seismic source.",
         units={"aal_ground_up": "{currency}/yr", "aal_net": "{currency}/yr"},
+    ),
+    "portfolio_branch_summary": dict(
+        description="Whole logic tree: per branch combination (source-model branch x ground-motion model) and "
+                    "basis, its weight, simulated years (the weight's share of N) and events, AAL of its own years "
+                    "with the compound-Poisson standard error, its classical EAL (ground-up; NaN for net) and the "
+                    "z-score between them.",
+        units={"weight": "-", "aal": "{currency}/yr", "aal_standard_error": "{currency}/yr",
+               "classical_eal": "{currency}/yr", "z_score": "-"},
+    ),
+    "portfolio_branch_ep": dict(
+        description="Whole logic tree: PML on the AEP and OEP curves and TVaR of each branch combination's own "
+                    "years at the configured return periods (NaN where the return period exceeds its years).",
+        units={"weight": "-", "return_period_yr": "yr", "aep_loss": "{currency}", "oep_loss": "{currency}",
+               "tvar_loss": "{currency}"},
+    ),
+    "portfolio_branch_fractiles": dict(
+        description="Whole logic tree: weighted fractiles across branch combinations ([hazard] fractiles; the "
+                    "smallest branch value whose cumulative weight reaches the fractile) of AAL (return_period_yr "
+                    "NaN) and of PML (aep_loss, oep_loss) and TVaR per return period; NaN where a branch has fewer "
+                    "years than the return period.",
+        units={"return_period_yr": "yr", "fractile": "-", "value": "{currency} ({currency}/yr for aal)"},
     ),
 })
 

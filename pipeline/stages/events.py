@@ -1,8 +1,9 @@
 """Event-based portfolio stage: stochastic events, correlated ground motions, losses, EP curves.
 
-Sequence: :func:`prepare_events` (event set of one source-model branch, a ground-motion
-model drawn per event by branch weight, the field sampler on the hazard sites the
-portfolio uses) -> :func:`event_chunk` per chunk of whole random-number blocks (a flow
+Sequence: :func:`prepare_events` (event set of the whole logic tree, each simulated year
+one source-model x ground-motion branch combination by weight, or in per-branch mode one
+source-model branch with a ground-motion model drawn per event by weight; the field
+sampler on the hazard sites the portfolio uses) -> :func:`event_chunk` per chunk of whole random-number blocks (a flow
 task each; results identical whatever the chunking) -> :func:`combine_events` (event and
 year loss tables, AEP/OEP/TVaR, AAL with standard error, breakdowns, cross-checks against
 the classical results of the same model).
@@ -30,6 +31,7 @@ from quakefolio.core.events.losses import (
     portfolio_event_losses, sum_over_blocks,
 )
 from quakefolio.core.events.gmf import FieldSampler
+from quakefolio.pipeline.stages import event_branches as eb
 from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
@@ -69,9 +71,15 @@ class EventModel:
     deductible: np.ndarray
     limit: np.ndarray
     chunk_blocks: int
+    # whole-tree mode (None / empty in per-branch mode): combination of every year, the
+    # combinations [(source index, gmm index, weight)] and each source branch's first rupture
+    year_combo: np.ndarray | None = None
+    combos: tuple = ()
+    rupture_offsets: np.ndarray | None = None
 
 
 def _branch(config, model):
+    """Index of the per-branch mode's source branch; None for the whole logic tree (``""``)."""
     wanted = config.portfolio.source_branch
     ids = [b for b, _, _ in model.source_branches]
     if wanted:
@@ -79,8 +87,7 @@ def _branch(config, model):
             raise InputError(config.path, f"unknown source branch {wanted!r}; the logic tree has {ids}",
                              column="portfolio.source_branch")
         return ids.index(wanted)
-    weights = [w for _, w, _ in model.source_branches]
-    return int(np.argmax(weights))
+    return None
 
 
 def single_blas_thread():
@@ -100,10 +107,16 @@ def single_blas_thread():
 def prepare_events(inputs):
     """Event set, per-event ground-motion model, sites, classes and the field sampler.
 
-    The events are a Poisson stochastic event set over ``[portfolio] years`` from the
-    ruptures of one source-model branch (the configured one, else the heaviest)
-    (:func:`quakefolio.core.events.eventset.stochastic_event_set`); each event draws its
-    ground-motion model by branch weight from its own random stream; fields are spatially
+    By default (``[portfolio] source_branch = ""``) the whole logic tree enters: each
+    simulated year is one (source-model, ground-motion) branch combination, the
+    combinations holding their weights' shares of the years in random order, and the
+    year's events are Poisson occurrences of its source branch's ruptures with its
+    ground-motion model (:func:`quakefolio.pipeline.stages.event_branches.whole_tree_events`;
+    why by year: :mod:`quakefolio.core.events.eventset`, "Whole logic tree").  With a
+    branch id (per-branch mode, for sensitivity) the events are a Poisson stochastic event
+    set over ``[portfolio] years`` from that branch's ruptures
+    (:func:`quakefolio.core.events.eventset.stochastic_event_set`) and each event draws its
+    ground-motion model by branch weight from its own random stream.  Fields are spatially
     correlated (Jayaram & Baker 2009) and cross-IM correlated (Baker & Jayaram 2008)
     (:class:`quakefolio.core.events.gmf.FieldSampler`).  Sets BLAS to one thread
     (:func:`single_blas_thread`).
@@ -127,12 +140,18 @@ def prepare_events(inputs):
     pf = cfg.portfolio
     model = inputs.hazard_model
     b = _branch(cfg, model)
-    bid, _, src = model.source_branches[b]
-    rs = src.ruptures
-    events = stochastic_event_set(rs.rate, pf.years, pf.seed)
-    weights = np.array([w for _, w, _ in model.gmm_branches])
-    rng = stream_rng(pf.seed, STREAM_GMM_CHOICE)
-    gmm_of_event = rng.choice(len(weights), size=events.n_events, p=weights / weights.sum()).astype(np.int64)
+    tree = {}
+    if b is None:
+        bid, b = eb.WHOLE_TREE, -1
+        rs, events, gmm_of_event, year_combo, combos, offsets = eb.whole_tree_events(model, pf.years, pf.seed)
+        tree = dict(year_combo=year_combo, combos=combos, rupture_offsets=offsets)
+    else:
+        bid, _, src = model.source_branches[b]
+        rs = src.ruptures
+        events = stochastic_event_set(rs.rate, pf.years, pf.seed)
+        weights = np.array([w for _, w, _ in model.gmm_branches])
+        rng = stream_rng(pf.seed, STREAM_GMM_CHOICE)
+        gmm_of_event = rng.choice(len(weights), size=events.n_events, p=weights / weights.sum()).astype(np.int64)
     used = np.unique(inputs.site_index)
     local = np.searchsorted(used, inputs.site_index)
     ex = inputs.exposure
@@ -155,7 +174,8 @@ def prepare_events(inputs):
         sampler=sampler, seed=pf.seed, n_years=pf.years, truncation_sigma=model.truncation_sigma,
         max_distance_km=model.max_distance_km, region=model.region, ref=model.ref, loss_model=pf.loss_model,
         levels_g=model.levels_g, asset_site=local, classes=classes, value=ex.replacement_value.to_numpy(),
-        deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task)
+        deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task,
+        **tree)
 
 
 def event_chunks(em):
@@ -241,7 +261,10 @@ def combine_events(em, inputs, results):
     -------
     tables : dict name -> DataFrame
         ``event_loss``, ``year_loss``, ``portfolio_ep``, ``portfolio_ep_curve``,
-        ``portfolio_summary``, ``asset_event_loss``, ``portfolio_breakdown``.
+        ``portfolio_summary``, ``asset_event_loss``, ``portfolio_breakdown``; in whole-tree
+        mode also ``portfolio_branch_summary``, ``portfolio_branch_ep`` and
+        ``portfolio_branch_fractiles`` (:func:`quakefolio.pipeline.stages.event_branches.branch_tables`),
+        the pooled tables being the weighted-mean EP of the logic tree.
     checks : dict
         Event-based vs classical statistics (:mod:`quakefolio.core.events.losses`).
     """
@@ -267,8 +290,15 @@ def combine_events(em, inputs, results):
         "ground_up_loss": years["ground_up"][0], "net_loss": years["net"][0],
         "max_event_ground_up_loss": years["ground_up"][1], "max_event_net_loss": years["net"][1],
     })
+    tree = em.year_combo is not None
+    if tree:  # the source branch of each event and its rupture index within that branch
+        branch_of_event, event_loss["rupture_id"] = eb.event_branch_columns(em, inputs.hazard_model)
+        event_loss.insert(event_loss.columns.get_loc("gmm"), "source_branch", branch_of_event)
+        sid, gid = eb.branch_ids(em, inputs.hazard_model)
+        year_table.insert(1, "source_branch", np.array(sid, dtype=object)[em.year_combo])
+        year_table.insert(2, "gmm", np.array(gid, dtype=object)[em.year_combo])
     ep_rows, curve_rows, summary_rows = [], [], []
-    for basis in ("ground_up", "net"):
+    for basis, ev_loss in (("ground_up", gu), ("net", net)):
         agg, occ = years[basis]
         ep_rows.append(pd.DataFrame({"return_period_yr": rps, "aep_loss": ep_from_years(agg, rps),
                                      "oep_loss": ep_from_years(occ, rps), "tvar_loss": tvar(agg, rps),
@@ -278,13 +308,16 @@ def combine_events(em, inputs, results):
             curve_rows.append(pd.DataFrame({"basis": basis, "metric": metric, "loss": loss,
                                             "annual_exceedance_prob": prob, "return_period_yr": rp}))
         aal, se = aal_with_standard_error(agg)
+        if tree:  # compound Poisson, exact for years stratified by branch (core.events.eventset notes)
+            se = np.sqrt(np.sum(ev_loss * ev_loss)) / n_years
         summary_rows.append({"basis": basis, "aal": aal, "aal_standard_error": se, "n_events": ev.n_events,
                              "n_years": n_years, "seed": em.seed, "source_branch": em.branch_id,
                              "loss_model": em.loss_model})
     asset_sum = sum_over_blocks([r.asset_sum for r in results])
     asset_sumsq = sum_over_blocks([r.asset_sumsq for r in results])
     class_sum = sum_over_blocks([r.class_sum for r in results])
-    checks, classical = _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results)
+    checks, classical = _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results,
+                                      summary_rows[0]["aal_standard_error"] if tree else None)
     ex = inputs.exposure
     aal_gu, aal_net, aal_se, z_score = asset_aal_statistics(asset_sum, asset_sumsq, n_years, classical)
     asset_aal = pd.DataFrame({
@@ -307,26 +340,45 @@ def combine_events(em, inputs, results):
         "portfolio_ep_curve": pd.concat(curve_rows, ignore_index=True), "portfolio_summary": summary,
         "asset_event_loss": asset_aal, "portfolio_breakdown": pd.concat(breakdown, ignore_index=True),
     }
+    if tree:
+        model = inputs.hazard_model
+        tables.update(eb.branch_tables(em, model, gu, net, years, rps, model.fractiles,
+                                       eb.classical_by_combination(em, model, inputs.config.fragility.tail)))
+        checks["branch_aal_vs_classical_eal"] = _branch_check(tables["portfolio_branch_summary"])
     return tables, checks
 
 
+def _branch_check(summary):
+    """Per branch combination: event-based AAL vs that combination's classical EAL (ground-up)."""
+    gu = summary[summary.basis == "ground_up"]
+    return [{"source_branch": r.source_branch, "gmm": r.gmm, "weight": float(r.weight), "n_years": int(r.n_years),
+             "event_based_aal": float(r.aal), "standard_error": float(r.aal_standard_error),
+             "classical_eal": float(r.classical_eal), "z": float(r.z_score)} for r in gu.itertuples()]
+
+
 def _branch_mean_curves(em, inputs):
-    """Classical curves of the event set's source branch, GMM-weighted (n_im, n_sites_used, n_lev)."""
+    """Classical curves the event set samples (n_im, n_sites_used, n_lev): all branches by weight
+    (whole tree) or the event set's source branch, GMM-weighted (per-branch mode)."""
     model = inputs.hazard_model
+    if em.year_combo is not None:
+        return eb.mean_curves(model, em.sites)
     wg = np.array([w for _, w, _ in model.gmm_branches])
     curves = weighted_sum(model.branch_curves[em.branch_index], wg)
     return curves[:, em.sites]
 
 
-def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
-    """Event-based vs classical results of the same model (source branch, GMM weights)."""
+def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results, total_se=None):
+    """Event-based vs classical results of the same model (all branches, or one source branch, by weight).
+
+    ``total_se`` replaces the standard error of the portfolio AAL (whole tree: compound Poisson).
+    """
     n = em.n_years
     curves = _branch_mean_curves(em, inputs)
     classical = np.zeros(len(em.value))
     for code, assets, i_im, dss, usites, pair in em.classes:
         ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)
         classical[assets] = expected_annual_loss(ds, dss.mean_damage_ratio)[pair] * em.value[assets]
-    aal = aal_cross_check(asset_sum[0], asset_sumsq[0], n, classical, years["ground_up"][0])
+    aal = aal_cross_check(asset_sum[0], asset_sumsq[0], n, classical, years["ground_up"][0], standard_error=total_se)
     # event-based hazard: rate of events with IM > x, vs the classical curve, where the
     # classical rate is above 10/N (Poisson standard error sqrt(lambda / N))
     hazard = event_hazard_cross_check(sum(r.exceed_counts for r in results), curves, n)
@@ -340,6 +392,10 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results):
         "note": "mean-damage-ratio mode makes event-based AAL an unbiased estimate of the classical EAL of the "
                 "same source branch and GMM weights; 99.7% of assets are expected within 3 standard errors",
     }
+    if em.year_combo is not None:
+        checks["note"] = ("mean-damage-ratio mode makes event-based AAL an unbiased estimate of the classical EAL of "
+                          "every logic-tree branch by weight (years stratified by branch combination; compound-"
+                          "Poisson standard error); 99.7% of assets are expected within 3 standard errors")
     return checks, classical
 
 
