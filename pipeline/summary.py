@@ -47,8 +47,11 @@ def _portfolio_lines(run, manifest, cur):
     summ = run.table("portfolio_summary").set_index("basis")
     ep = run.table("portfolio_ep")
     gu = summ.loc["ground_up"]
+    tree = run.has("portfolio_branch_summary")
+    scope = (f"whole logic tree, {run.table('portfolio_branch_summary').source_branch.size // 2} branch combinations "
+             "by weight" if tree else f"source branch '{gu.source_branch}' only")
     lines = ["", f"  event-based portfolio: {int(gu.n_years)} simulated years, {int(gu.n_events)} events "
-                 f"(source branch '{gu.source_branch}', seed {int(gu.seed)}, {gu.loss_model.replace('_', ' ')})"]
+                 f"({scope}, seed {int(gu.seed)}, {gu.loss_model.replace('_', ' ')})"]
     for basis in ("ground_up", "net"):
         row = summ.loc[basis]
         lines.append(f"  AAL {basis.replace('_', '-'):<10} {_money(row.aal):>14} {cur}/yr  +- {_money(row.aal_standard_error)}"
@@ -58,13 +61,16 @@ def _portfolio_lines(run, manifest, cur):
         fmt = lambda v: "n/a" if v != v else _money(v)
         lines.append(f"  {r.return_period_yr:>12g} yr {fmt(r.aep_loss):>16} {fmt(r.oep_loss):>16} "
                      f"{fmt(r.tvar_loss):>16}   {r.basis.replace('_', '-')}")
+    if tree:
+        lines += _branch_fractile_lines(run.table("portfolio_branch_fractiles"), cur)
     checks = manifest.get("cross_checks") or {}
     a = checks.get("asset_aal_vs_classical_eal")
     p = checks.get("portfolio_aal_vs_classical_eal")
     h = checks.get("event_hazard_vs_classical")
     if p:
-        lines.append(f"  cross-check, portfolio: event-based AAL {_money(p['event_based_aal'])} vs classical EAL of the "
-                     f"same branch {_money(p['classical_eal'])} {cur}/yr, z = {p['z']:+.2f} "
+        lines.append(f"  cross-check, portfolio: event-based AAL {_money(p['event_based_aal'])} vs classical EAL of "
+                     f"{'all branches' if tree else 'the same branch'} {_money(p['classical_eal'])} {cur}/yr, "
+                     f"z = {p['z']:+.2f} "
                      f"({'within' if p['passed'] else 'OUTSIDE'} 3 standard errors)")
     if a:
         lines.append(f"  cross-check, assets: {a['within_3_standard_errors']} of {a['assets']} within 3 standard "
@@ -73,6 +79,20 @@ def _portfolio_lines(run, manifest, cur):
         lines.append(f"  cross-check, hazard: {h['within_3_standard_errors']} of {h['compared_points']} event-based "
                      f"exceedance rates above {h['rate_threshold_per_yr']:.1e}/yr within 3 standard errors of the "
                      f"classical curves (max |z| {h['max_abs_z']:.2f})")
+    return lines
+
+
+def _branch_fractile_lines(frac, cur):
+    """Ground-up AAL and PML (AEP) fractiles across logic-tree branch combinations."""
+    gu = frac[frac.basis == "ground_up"]
+    qs = sorted(set(gu.fractile))
+    head = "/".join(f"{q * 100:g}" for q in qs)
+    aal = gu[gu.metric == "aal"].sort_values("fractile")
+    fmt = lambda v: "n/a" if v != v else _money(v)
+    lines = [f"  across branches ({head}% fractiles): AAL ground-up {' / '.join(fmt(v) for v in aal.value)} {cur}/yr"]
+    pml = gu[gu.metric == "aep_loss"]
+    for rp, grp in pml.groupby("return_period_yr"):
+        lines.append(f"  {'':>14}PML AEP {rp:>6g} yr {' / '.join(fmt(v) for v in grp.sort_values('fractile').value)}")
     return lines
 
 

@@ -177,7 +177,9 @@ SCHEMA = {
         "event_based": _key(_BOOL, None, help="event-based portfolio loss (default: on in compute mode)"),
         "years": _key(_INT, 10000, _POSITIVE_INT, help="simulated years"),
         "seed": _key(_INT, 20261201, _NON_NEGATIVE, help="seed of every random draw"),
-        "source_branch": _key(_STR, "", help="source-model branch of the event set (default: highest weight)"),
+        "source_branch": _key(_STR, "", help="\"\" (default): every source-model and GMM branch by weight, one "
+                              "branch combination per simulated year; a source branch id: that branch only, GMM "
+                              "drawn per event (per-branch mode, for sensitivity)"),
         "spatial_correlation": _key(_BOOL, True),
         "cross_im_correlation": _key(_BOOL, True),
         "vs30_clustering": _key(_BOOL, False, help="Jayaram & Baker (2009) case with Vs30 clustering"),
@@ -296,7 +298,7 @@ class PortfolioSettings(_Section):
     event_based: bool  #: simulate events (default: on in compute mode)
     years: int  #: simulated years [yr]
     seed: int  #: seed of every random draw
-    source_branch: str  #: source-model branch of the event set ("" for the highest weight)
+    source_branch: str  #: "" for the whole logic tree, else the one source-model branch of the event set
     spatial_correlation: bool  #: spatially correlated within-event residuals
     cross_im_correlation: bool  #: correlated residuals across IMs
     vs30_clustering: bool  #: correlation model with Vs30 clustering

@@ -32,7 +32,12 @@ def _section_portfolio(run):
     s = summ.set_index("basis")
     gu = s.loc["ground_up"] if "ground_up" in s.index else s.iloc[0]
     n_years = int(gu.n_years)
-    out = [_p(f"{n_years:,} simulated years, {int(gu.n_events):,} events (source branch '{gu.source_branch}', seed "
+    branches = run.table("portfolio_branch_summary")
+    scope = ("the whole logic tree: every source-model and ground-motion branch combination by weight, each "
+             "simulated year one combination, so the curves below are the weighted-mean EP"
+             if branches is not None else f"source branch '{gu.source_branch}' only (per-branch mode), ground-motion "
+             "model drawn per event by weight")
+    out = [_p(f"{n_years:,} simulated years, {int(gu.n_events):,} events covering {scope} (seed "
               f"{int(gu.seed)}, loss model: {str(gu.loss_model).replace('_', ' ')}). Ground-up: before deductibles "
               f"and limits; net: after the per-asset policy terms.")]
     curve = run.table("portfolio_ep_curve")
@@ -54,7 +59,10 @@ def _section_portfolio(run):
                      _cell(_money(classical), classical)])
     out.append("<h3>Average annual loss</h3>")
     out.append(_table(["basis", f"AAL [{cur}/yr]#", "± 1 standard error#", "relative s.e.#",
-                       f"classical EAL, same branch [{cur}/yr]#"], rows))
+                       f"classical EAL, {'all branches' if branches is not None else 'same branch'} [{cur}/yr]#"],
+                      rows))
+    if branches is not None:
+        out.append(_branch_section(branches, run.table("portfolio_branch_fractiles"), cur))
     out.append("<h3>Probable maximum loss and TVaR</h3>")
     rows = []
     for r in ep.sort_values(["basis", "return_period_yr"], key=lambda c: c.map({"ground_up": 0, "net": 1})
@@ -73,6 +81,30 @@ def _section_portfolio(run):
                  _cell(_money(r.aal_net), r.aal_net)]
                 for r in brk.sort_values(["dimension", "aal_ground_up"], ascending=[True, False]).itertuples()]
         out.append(_table(["by", "key", f"AAL ground-up [{cur}/yr]#", f"AAL net [{cur}/yr]#"], rows, sortable=True))
+    return "".join(out)
+
+
+def _branch_section(branches, frac, cur):
+    """Per branch combination: weight, years, AAL against its classical EAL; fractiles across branches."""
+    rows = [[r.source_branch, r.gmm, _cell(f"{r.weight:.3g}", r.weight), _cell(f"{r.n_years:,}", r.n_years),
+             _cell(_money(r.aal), r.aal), _cell(_money(r.aal_standard_error), r.aal_standard_error),
+             _cell(_money(r.classical_eal), r.classical_eal), _cell(f"{r.z_score:+.2f}", r.z_score)]
+            for r in branches[branches.basis == "ground_up"].itertuples()]
+    out = ["<h3>Logic-tree branches</h3>",
+           _table(["source model", "ground-motion model", "weight#", "years#", f"AAL ground-up [{cur}/yr]#",
+                   "± 1 s.e.#", f"classical EAL [{cur}/yr]#", "z#"], rows)]
+    gu = frac[frac.basis == "ground_up"]
+    qs = sorted(set(gu.fractile))
+    rows = []
+    for (metric, rp), grp in gu.groupby(["metric", "return_period_yr"], dropna=False, sort=False):
+        vals = grp.sort_values("fractile").value.tolist()
+        label = {"aal": "AAL", "aep_loss": "PML, aggregate", "oep_loss": "PML, occurrence", "tvar_loss": "TVaR"}[metric]
+        rows.append([label, _cell("" if rp != rp else f"{rp:,.0f}", rp)]
+                    + [_cell("n/a" if v != v else _money(v), v) for v in vals])
+    out.append(_table(["ground-up", "return period [yr]#"] + [f"{q * 100:g}% [{cur}]#" for q in qs], rows))
+    out.append(_p("Fractiles across the branch combinations by weight (the smallest branch value whose cumulative "
+                  "weight reaches the fractile), each branch from its own years; n/a where a branch has fewer "
+                  "years than the return period."))
     return "".join(out)
 
 
