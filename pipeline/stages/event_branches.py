@@ -70,13 +70,39 @@ def whole_tree_events(model, years, seed):
 
 
 def combination_curves(model, sites):
-    """Classical curves of every combination at ``sites``: (n_combos, n_im, n_sites, n_lev) [1/yr]."""
+    """Classical hazard curves of every branch combination at some sites.
+
+    Parameters
+    ----------
+    model : HazardModel
+        With ``branch_curves`` (n_src, n_gmm, n_im, n_sites, n_lev) [1/yr].
+    sites : ndarray of int
+        Hazard-site indices.
+
+    Returns
+    -------
+    ndarray, shape (n_src * n_gmm, n_im, len(sites), n_lev) [1/yr]
+        Source-major combination order.
+    """
     bc = model.branch_curves
     return bc.reshape((-1,) + bc.shape[2:])[:, :, sites]
 
 
 def classical_by_combination(em, model, tail):
-    """Classical EAL [currency/yr] per branch combination and asset, shape (n_combos, n_assets)."""
+    """Classical EAL of every asset under each branch combination's hazard.
+
+    Parameters
+    ----------
+    em : EventModel
+        Whole-tree event model (classes, values, sites, combinations).
+    model : HazardModel
+    tail : str
+        ``[fragility] tail``.
+
+    Returns
+    -------
+    ndarray, shape (n_combos, n_assets) [currency/yr]
+    """
     curves = combination_curves(model, em.sites)
     out = np.zeros((len(em.combos), len(em.value)))
     for _, assets, i_im, dss, usites, pair in em.classes:
@@ -86,21 +112,54 @@ def classical_by_combination(em, model, tail):
 
 
 def mean_curves(model, sites):
-    """All-branch weighted mean curves at ``sites`` (n_im, n_sites, n_lev) [1/yr]."""
+    """Logic-tree weighted mean hazard curves at some sites.
+
+    Parameters
+    ----------
+    model : HazardModel
+    sites : ndarray of int
+
+    Returns
+    -------
+    ndarray, shape (n_im, len(sites), n_lev) [1/yr]
+        :math:`\sum_c w_c \lambda_c` over every (source, GMM) combination.
+    """
     ws = np.array([w for _, w, _ in model.source_branches])
     wg = np.array([w for _, w, _ in model.gmm_branches])
     return weighted_sum(combination_curves(model, sites), (ws[:, None] * wg[None, :]).ravel())
 
 
 def event_branch_columns(em, model):
-    """Per-event source branch and its rupture index within the branch (whole-tree mode)."""
+    """Source branch of each event and its rupture's index within that branch (whole-tree mode).
+
+    Parameters
+    ----------
+    em : EventModel
+    model : HazardModel
+
+    Returns
+    -------
+    branch_id : ndarray of object, shape (n_events,)
+    rupture : ndarray of int64, shape (n_events,)
+    """
     ids = np.array([b for b, _, _ in model.source_branches], dtype=object)
     src = np.array([c[0] for c in em.combos])[em.year_combo[em.events.year - 1]]
     return ids[src], em.events.rupture - em.rupture_offsets[src]
 
 
 def branch_ids(em, model):
-    """Source-branch id and GMM id of every combination (two lists)."""
+    """Ids of every branch combination.
+
+    Parameters
+    ----------
+    em : EventModel
+    model : HazardModel
+
+    Returns
+    -------
+    source_ids, gmm_ids : list of str
+        One entry per combination, in ``em.combos`` order.
+    """
     sid = [model.source_branches[s][0] for s, _, _ in em.combos]
     gid = [em.gmm_ids[g] for _, g, _ in em.combos]
     return sid, gid
