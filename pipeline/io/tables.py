@@ -112,9 +112,11 @@ TABLES.update({
     ),
     "portfolio_summary": dict(
         description="Average annual loss with its standard error (sample standard deviation of year losses / "
-                    "sqrt(N)), event and year counts, seed, and the classical EAL of the same model.",
+                    "sqrt(N)), event and year counts, seed, the loss model with its within-group correlation of "
+                    "sampled damage and the grouping column (NaN and empty for mean damage ratios), and the "
+                    "classical EAL of the same model.",
         units={"aal": "{currency}/yr", "aal_standard_error": "{currency}/yr",
-               "classical_eal_same_branch": "{currency}/yr"},
+               "classical_eal_same_branch": "{currency}/yr", "secondary_correlation": "-"},
     ),
     "asset_event_loss": dict(
         description="Per asset: event-based AAL (ground-up, net) with its standard error (compound Poisson), the "
@@ -126,6 +128,16 @@ TABLES.update({
     "portfolio_breakdown": dict(
         description="Event-based AAL by building class and by seismic source.",
         units={"aal_ground_up": "{currency}/yr", "aal_net": "{currency}/yr"},
+    ),
+    "portfolio_correlation_effect": dict(
+        description="Sampled damage with a within-group correlation above 0: AAL, PML (AEP, OEP) and TVaR with "
+                    "that correlation against independent draws on the same events and ground motions; change and "
+                    "relative change from independent to correlated; for the AAL the paired standard error of "
+                    "the change (its expectation is 0).",
+        units={"return_period_yr": "yr", "value_correlated": "{currency} ({currency}/yr for aal)",
+               "value_independent": "{currency} ({currency}/yr for aal)",
+               "change": "{currency} ({currency}/yr for aal)", "relative_change": "-",
+               "standard_error_of_change": "{currency}/yr", "secondary_correlation": "-"},
     ),
 })
 
