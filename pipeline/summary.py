@@ -43,7 +43,17 @@ def _hazard_lines(run, manifest):
 
 
 def loss_model_label(row):
-    """The loss model of a ``portfolio_summary`` row in words, with its correlation when sampled."""
+    """The loss model of a ``portfolio_summary`` row in words, with its correlation when sampled.
+
+    Parameters
+    ----------
+    row : pandas.Series
+        A ``portfolio_summary`` row (older runs may lack the correlation columns).
+
+    Returns
+    -------
+    str
+    """
     label = str(row.loss_model).replace("_", " ")
     rho = getattr(row, "secondary_correlation", float("nan"))
     if row.loss_model == "mean_damage_ratio" or rho != rho:
@@ -55,7 +65,20 @@ def loss_model_label(row):
 
 
 def correlation_effect_lines(run, basis="ground_up"):
-    """Sentences: by how much PML, TVaR and AAL move against independent sampling (empty without the table)."""
+    """Sentences: by how much PML, TVaR and AAL move against independent sampling.
+
+    Parameters
+    ----------
+    run : RunFolder
+        A finished run.
+    basis : str
+        ``"ground_up"`` or ``"net"``.
+
+    Returns
+    -------
+    list of str
+        Two lines, or none when the run has no ``portfolio_correlation_effect`` table.
+    """
     if not run.has("portfolio_correlation_effect"):
         return []
     eff = run.table("portfolio_correlation_effect")

@@ -203,5 +203,5 @@ def _correlation_effect_html(run, cur):
                f"published calibration). Below, the same events and ground motions with independent draws: the "
                f"correlation leaves each building's mean loss, hence the AAL, unchanged in expectation and "
                f"widens the tail."),
-            _table(["basis", "metric", "return period [yr]#", "correlated#", "independent#", "change#",
+            _table(["basis", "metric", "return period [yr]#", "correlated#", "independent#", "relative change#",
                     f"paired s.e. of the change [{cur}/yr]#"], rows)]

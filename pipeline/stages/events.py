@@ -88,6 +88,20 @@ def extended_group(em, changed, new_class):
     Grouped by building class, the moved assets join the group of their new class (a new group
     after the others when no asset of the run has that class); grouped by another column,
     they keep their group.  Existing groups keep their indices, hence their random factors.
+
+    Parameters
+    ----------
+    em : EventModel
+        The run's event model.
+    changed : ndarray of int
+        Assets moved to the new class (appended after the run's assets).
+    new_class : str
+        Their new building class.
+
+    Returns
+    -------
+    ndarray of int, shape (n_assets + len(changed),)
+        Group index of every asset, the appended ones last.
     """
     if em.group_column != "building_class":
         extra = em.group[changed]
@@ -217,7 +231,7 @@ class ChunkResult:
     independent: tuple | None = None  # (ground-up, net) (n_ev,) with independent draws (sampled, correlation > 0)
 
 
-def correlated(em):
+def _correlated(em):
     """True when the run samples damage with a within-group correlation above 0."""
     return em.loss_model != "mean_damage_ratio" and em.correlation > 0
 
@@ -264,7 +278,7 @@ def event_chunk(em, chunk, independent=True):
         im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows,
         correlation=em.correlation, group=em.group)
     other = None
-    if independent and correlated(em):  # the same ground motions, independent draws: the correlation's effect
+    if independent and _correlated(em):  # the same ground motions, independent draws: the correlation's effect
         other = portfolio_event_losses(im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model,
                                              seed=em.seed, blocks=rows)[:2]
     return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts, other)
@@ -354,7 +368,7 @@ def combine_events(em, inputs, results):
         "portfolio_ep_curve": pd.concat(curve_rows, ignore_index=True), "portfolio_summary": summary,
         "asset_event_loss": asset_aal, "portfolio_breakdown": pd.concat(breakdown, ignore_index=True),
     }
-    if correlated(em):
+    if _correlated(em):
         tables["portfolio_correlation_effect"] = correlation_effect_table(em, results, years, rps)
         aal = tables["portfolio_correlation_effect"].query("metric == 'aal'")
         checks["aal_correlated_vs_independent"] = {
@@ -369,6 +383,21 @@ def correlation_effect_table(em, results, years, rps):
 
     Both come from the same events and ground-motion fields; only the damage and loss-ratio
     draws differ (:func:`quakefolio.core.events.secondary.correlation_effect`).
+
+    Parameters
+    ----------
+    em : EventModel
+    results : list of ChunkResult
+        In event order, each with its ``independent`` event losses.
+    years : dict basis -> (aggregate, largest event) year losses [currency]
+        Of the correlated (headline) simulation.
+    rps : ndarray [yr]
+        Return periods.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``portfolio_correlation_effect`` rows for the ground-up and net bases.
     """
     rows = []
     for j, basis in enumerate(("ground_up", "net")):
