@@ -4,7 +4,7 @@ from __future__ import annotations
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.store import RunFolder
 
-__all__ = ["summary_text"]
+__all__ = ["summary_text", "loss_model_label", "correlation_effect_lines"]
 
 
 def _money(x):
@@ -42,6 +42,62 @@ def _hazard_lines(run, manifest):
     return lines
 
 
+def loss_model_label(row):
+    """The loss model of a ``portfolio_summary`` row in words, with its correlation when sampled.
+
+    Parameters
+    ----------
+    row : pandas.Series
+        A ``portfolio_summary`` row (older runs may lack the correlation columns).
+
+    Returns
+    -------
+    str
+    """
+    label = str(row.loss_model).replace("_", " ")
+    rho = getattr(row, "secondary_correlation", float("nan"))
+    if row.loss_model == "mean_damage_ratio" or rho != rho:
+        return label
+    group = str(getattr(row, "secondary_group", "building_class")).replace("_", " ")
+    if rho == 0:
+        return f"{label}, independent between buildings"
+    return f"{label}, correlation {rho:g} within each {group} per event"
+
+
+def correlation_effect_lines(run, basis="ground_up"):
+    """Sentences: by how much PML, TVaR and AAL move against independent sampling.
+
+    Parameters
+    ----------
+    run : RunFolder
+        A finished run.
+    basis : str
+        ``"ground_up"`` or ``"net"``.
+
+    Returns
+    -------
+    list of str
+        Two lines, or none when the run has no ``portfolio_correlation_effect`` table.
+    """
+    if not run.has("portfolio_correlation_effect"):
+        return []
+    eff = run.table("portfolio_correlation_effect")
+    eff = eff[eff.basis == basis]
+    first = eff.iloc[0]
+    pct = lambda r: "n/a" if r.relative_change != r.relative_change else f"{100 * r.relative_change:+.1f}%"
+    parts = []
+    for metric, name in (("aep_loss", "PML AEP"), ("tvar_loss", "TVaR")):
+        rows = eff[eff.metric == metric]
+        parts.append(f"{name} " + "; ".join(f"{r.return_period_yr:g} yr {pct(r)}" for r in rows.itertuples()))
+    aal = eff[eff.metric == "aal"].iloc[0]
+    return [f"secondary uncertainty correlated within each {first.secondary_group.replace('_', ' ')} "
+            f"(correlation {first.secondary_correlation:g}) against independent sampling on the same events and "
+            f"ground motions, {basis.replace('_', '-')}: " + "; ".join(parts) + ".",
+            f"AAL {_money(aal.value_correlated)} vs {_money(aal.value_independent)} independent: change "
+            f"{_money(aal.change)} +- {_money(aal.standard_error_of_change)} (paired standard error; "
+            "the expected change is zero)."]
+
+
 def _portfolio_lines(run, manifest, cur):
     """AAL with its standard error, PML (AEP and OEP) and TVaR, and the built-in cross-checks."""
     summ = run.table("portfolio_summary").set_index("basis")
@@ -51,7 +107,7 @@ def _portfolio_lines(run, manifest, cur):
     scope = (f"whole logic tree, {run.table('portfolio_branch_summary').source_branch.size // 2} branch combinations "
              "by weight" if tree else f"source branch '{gu.source_branch}' only")
     lines = ["", f"  event-based portfolio: {int(gu.n_years)} simulated years, {int(gu.n_events)} events "
-                 f"({scope}, seed {int(gu.seed)}, {gu.loss_model.replace('_', ' ')})"]
+                 f"({scope}, seed {int(gu.seed)}, {loss_model_label(gu)})"]
     for basis in ("ground_up", "net"):
         row = summ.loc[basis]
         lines.append(f"  AAL {basis.replace('_', '-'):<10} {_money(row.aal):>14} {cur}/yr  +- {_money(row.aal_standard_error)}"
@@ -63,6 +119,7 @@ def _portfolio_lines(run, manifest, cur):
                      f"{fmt(r.tvar_loss):>16}   {r.basis.replace('_', '-')}")
     if tree:
         lines += _branch_fractile_lines(run.table("portfolio_branch_fractiles"), cur)
+    lines += [f"  {line}" for line in correlation_effect_lines(run)]
     checks = manifest.get("cross_checks") or {}
     a = checks.get("asset_aal_vs_classical_eal")
     p = checks.get("portfolio_aal_vs_classical_eal")

@@ -32,6 +32,10 @@ naming the quantity, and (for per-event quantities) a block index:
 * the occurrences of source-model branch ``s`` in its years (whole logic tree):
   ``SeedSequence([seed, STREAM_BRANCH_EVENTS, s])`` (:func:`branch_rng`,
   :func:`logic_tree_event_set`).
+* group factors of correlated secondary uncertainty (damage state and loss ratio shared by
+  the assets of a group in an event) of event block ``b`` and group ``g``:
+  ``SeedSequence([seed, STREAM_GROUP_FACTOR, b, g])`` (:func:`group_factor_rng`; one
+  generator per block and group, so adding a group leaves the others' factors unchanged).
 
 Every stream tag of the project is defined here and nowhere else; the tags are part of
 the reproducibility contract (changing one changes the draws of its quantity).
@@ -85,6 +89,7 @@ __all__ = [
     "STREAM_GMM_CHOICE",
     "STREAM_BRANCH_YEARS",
     "STREAM_BRANCH_EVENTS",
+    "STREAM_GROUP_FACTOR",
     "MAX_CLASS_ENTRIES",
     "EventSet",
     "stochastic_event_set",
@@ -93,6 +98,7 @@ __all__ = [
     "stream_rng",
     "class_block_index",
     "damage_block_rng",
+    "group_factor_rng",
     "check_seed",
     "allocate_years",
     "branch_years",
@@ -114,6 +120,8 @@ STREAM_GROUND_MOTION = 2
 STREAM_DAMAGE = 3
 #: Stream tag reserved for sampled loss ratios.
 STREAM_LOSS_RATIO = 4
+#: Stream tag of the group factors of correlated secondary uncertainty (per block and group).
+STREAM_GROUP_FACTOR = 5
 #: Stream tag of the per-event ground-motion-model draw (one generator for the event set).
 STREAM_GMM_CHOICE = 11
 #: Stream tag of the branch combination of each simulated year (whole logic tree).
@@ -503,3 +511,29 @@ def logic_tree_event_set(branch_rates, year_branch: ArrayLike, seed: int) -> Eve
     rupture, year = rupture[order], year[order]
     event_id = np.arange(1, rupture.size + 1, dtype=np.int64)
     return EventSet(_readonly(event_id), _readonly(year), _readonly(rupture), int(yb.size))
+def group_factor_rng(seed: int, block_index: int, group: int) -> np.random.Generator:
+    """The generator of the group factors of one event block and group.
+
+    Parameters
+    ----------
+    seed : int
+        The run's non-negative seed.
+    block_index : int
+        Global event block ``b`` >= 0.
+    group : int
+        Index ``g`` >= 0 of the group (building class or exposure grouping value) whose assets
+        share part of their damage and loss-ratio uncertainty
+        (:mod:`quakefolio.core.events.secondary`).
+
+    Returns
+    -------
+    numpy.random.Generator
+        PCG64 seeded by ``SeedSequence([seed, STREAM_GROUP_FACTOR, b, g])``: identical whatever
+        the chunking of whole blocks into tasks, and independent of the number of groups.
+    """
+    seed = check_seed(seed)
+    for name, v in (("block_index", block_index), ("group", group)):
+        if isinstance(v, (bool, np.bool_)) or not isinstance(v, numbers.Integral) or v < 0:
+            raise ValueError(f"{name} must be a non-negative integer; got {v!r}")
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence(
+        [seed, STREAM_GROUP_FACTOR, int(block_index), int(group)])))

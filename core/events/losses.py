@@ -5,7 +5,8 @@ tables, vectorised over events and assets:
 
 1. **Loss per asset and event**: the loss ratio at the sampled intensity
    (:func:`quakefolio.core.events.portfolio.expected_loss_ratio`, or sampled damage states with
-   one random stream per event block and class entry), times the replacement value;
+   one random stream per event block and class entry, optionally correlated within groups of
+   assets, :mod:`quakefolio.core.events.secondary`), times the replacement value;
    policy terms per asset and event (:func:`quakefolio.core.events.portfolio.apply_policy`).
 2. **Sums per random-number block** (per event, per asset, per class), so that totals do
    not depend on how blocks are grouped into tasks.
@@ -20,7 +21,8 @@ from __future__ import annotations
 import numpy as np
 
 from quakefolio.core.events.eventset import damage_block_rng
-from quakefolio.core.events.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio, sample_loss_ratio
+from quakefolio.core.events.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio
+from quakefolio.core.events.secondary import group_factors, sample_correlated_loss_ratio
 
 __all__ = [
     "event_loss_ratio",
@@ -35,7 +37,8 @@ __all__ = [
 ]
 
 
-def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_model, seed, blocks, class_entry):
+def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_model, seed, blocks, class_entry,
+                     correlation=0.0, factors=None):
     r"""Loss ratio [-] of one class's assets in a chunk of events.
 
     Parameters
@@ -56,6 +59,12 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
     class_entry : int
         Position of the class entry (its own random stream per block,
         :func:`quakefolio.core.events.eventset.damage_block_rng`).
+    correlation : float
+        Within-group correlation of the sampled damage states and loss ratios, in [0, 1]
+        (:func:`quakefolio.core.events.secondary.sample_correlated_loss_ratio`); 0: independent.
+    factors : ndarray, shape (n_events, n_assets, 2), or None [-]
+        Group factors of each asset's group (:func:`quakefolio.core.events.secondary.group_factors`);
+        needed when ``correlation > 0``.
 
     Returns
     -------
@@ -67,7 +76,9 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
     parts = []
     for b, lo, hi in blocks:
         rng = damage_block_rng(seed, b, class_entry)
-        parts.append(sample_loss_ratio(rng, x[lo:hi][:, pair], medians, betas, mean_damage_ratio, cov)[1])
+        f = (0.0, 0.0) if factors is None else (factors[lo:hi, :, 0], factors[lo:hi, :, 1])
+        parts.append(sample_correlated_loss_ratio(rng, x[lo:hi][:, pair], medians, betas, mean_damage_ratio, cov,
+                                                  f[0], f[1], correlation)[1])
     return np.concatenate(parts)
 
 
@@ -115,7 +126,8 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
     return gu.sum(axis=1), net.sum(axis=1), asset_sum, asset_sumsq, total
 
 
-def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model, seed, blocks):
+def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model, seed, blocks, correlation=0.0,
+                           group=None):
     r"""Losses of a portfolio in a chunk of events, class by class.
 
     Parameters
@@ -129,6 +141,10 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     loss_model, seed : as :func:`event_loss_ratio`
     blocks : sequence of (block index, first row, stop row)
         The chunk's random-number blocks.
+    correlation : float
+        Within-group correlation of sampled damage (:func:`event_loss_ratio`); 0: independent.
+    group : ndarray of int, shape (n_assets,), or None
+        Group index of each asset (needed when sampling with ``correlation > 0``).
 
     Returns
     -------
@@ -149,9 +165,12 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     asset_sum = np.zeros((len(bounds), 2, len(value)))
     asset_sumsq = np.zeros((len(bounds), 2, len(value)))
     class_sum = np.zeros((len(bounds), len(classes), 2))
+    shared = loss_model != "mean_damage_ratio" and correlation > 0
+    factors = group_factors(seed, blocks, int(np.max(group)) + 1 if len(group) else 0) if shared else None
     for k, (assets, i_im, medians, betas, mdr, cov, usites, pair) in enumerate(classes):
         ratio = event_loss_ratio(im[:, i_im, usites], medians, betas, mdr, cov, pair, loss_model=loss_model,
-                                 seed=seed, blocks=blocks, class_entry=k)
+                                 seed=seed, blocks=blocks, class_entry=k, correlation=correlation,
+                                 factors=None if factors is None else factors[:, group[assets]])
         gu, net, a_sum, a_sumsq, total = block_loss_sums(ratio, value[assets], deductible[assets], limit[assets],
                                                          bounds)
         gu_ev += gu

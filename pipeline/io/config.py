@@ -102,6 +102,7 @@ _POSITIVE = Interval(0, None, closed="neither")
 _NON_NEGATIVE = Interval(0, None)
 _POSITIVE_INT = Interval(1, None, message="expected an integer >= 1")
 _PROBABILITY = Interval(0, 1, closed="neither", message="expected a probability in (0, 1)")
+_CORRELATION = Interval(0, 1, message="expected a correlation coefficient in [0, 1]")
 _DISCOUNT_RATE = Interval(0, 1, closed="left", message="expected a discount rate in [0, 1)")
 _RETURN_PERIODS = (ListOf(message="expected at least one return period", min_len=1),
                    ListOf(Interval(1, None, closed="neither"), "return periods must be greater than 1 yr"),
@@ -184,6 +185,11 @@ SCHEMA = {
         "cross_im_correlation": _key(_BOOL, True),
         "vs30_clustering": _key(_BOOL, False, help="Jayaram & Baker (2009) case with Vs30 clustering"),
         "loss_model": _key(_STR, "mean_damage_ratio", choices=("mean_damage_ratio", "sampled_damage")),
+        "secondary_correlation": _key(_FLOAT, 0.3, _CORRELATION,
+                                      help="sampled damage: share of damage and loss-ratio uncertainty common to a "
+                                           "group in an event [-] (0.3: an assumption, not a published value)"),
+        "secondary_group": _key((Text("expected an exposure column name", non_empty=True),), "building_class",
+                                help="exposure column whose values group assets sharing that uncertainty"),
         "return_periods_yr": _key(_FLOATS, [100.0, 250.0, 475.0, 2475.0], *_RETURN_PERIODS),
     },
     "exposure": {
@@ -303,6 +309,8 @@ class PortfolioSettings(_Section):
     cross_im_correlation: bool  #: correlated residuals across IMs
     vs30_clustering: bool  #: correlation model with Vs30 clustering
     loss_model: str  #: ``"mean_damage_ratio"`` or ``"sampled_damage"``
+    secondary_correlation: float  #: within-group correlation of sampled damage and loss ratios [-]
+    secondary_group: str  #: exposure column grouping assets that share that uncertainty
     return_periods_yr: tuple  #: return periods of PML and TVaR [yr]
 
 

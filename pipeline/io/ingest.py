@@ -268,7 +268,7 @@ def _identifiers(frame, rows, path, column, *, unique=False):
     return ids.astype(str)
 
 
-def read_exposure(path, library):
+def read_exposure(path, library, group_column="building_class"):
     """Validated exposure as a DataFrame with columns of :data:`EXPOSURE_COLUMNS` and ``row``.
 
     Checks: unique ids, WGS84 ranges, known building classes (against ``library``),
@@ -280,6 +280,10 @@ def read_exposure(path, library):
         Exposure file (CSV or Parquet), columns as in :data:`EXPOSURE_COLUMNS`.
     library : quakefolio.fragility.FragilityLibrary
         The building classes an asset may name.
+    group_column : str
+        Column grouping assets that share secondary uncertainty (``[portfolio] secondary_group``);
+        another column than those of :data:`EXPOSURE_COLUMNS` is kept as identifiers (text,
+        every row non-empty).
 
     Returns
     -------
@@ -287,7 +291,8 @@ def read_exposure(path, library):
         ``asset_id``, ``lon``, ``lat`` [deg], ``building_class``, ``replacement_value``
         [currency], ``vs30_mps`` [m/s], ``occupants`` [-], ``deductible`` and ``limit``
         [currency] (NaN where the optional column is absent or empty) and ``row``, the
-        user-facing row of each asset (see :func:`read_table`).
+        user-facing row of each asset (see :func:`read_table`); and ``group_column`` if it is
+        none of these.
 
     Raises
     ------
@@ -315,6 +320,11 @@ def read_exposure(path, library):
         i = int(np.argmax(bad))
         raise InputError(path, f"deductible {out['deductible'].iloc[i]:g} is not below the limit "
                                f"{out['limit'].iloc[i]:g}", row=int(rows[i]), column="deductible")
+    if group_column not in out.columns:
+        if group_column not in frame.columns:
+            raise InputError(path, "missing column named by [portfolio] secondary_group (assets sharing secondary "
+                                   "uncertainty)", row=1, column=group_column)
+        out[group_column] = _identifiers(frame, rows, path, group_column)
     out["row"] = rows
     return out
 

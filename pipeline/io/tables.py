@@ -114,13 +114,15 @@ TABLES.update({
         units={"loss": "{currency}", "annual_exceedance_prob": "1/yr", "return_period_yr": "yr"},
     ),
     "portfolio_summary": dict(
-        description="Average annual loss with its standard error, event and year counts, seed, and the classical "
-                    "EAL of the same model. Whole logic tree (source_branch 'all'): the pooled years of every branch "
-                    "combination (the weighted-mean EP), standard error compound Poisson sqrt(sum of squared event "
-                    "losses) / N, classical EAL of every branch by weight (column name kept); per-branch mode: "
-                    "standard error s / sqrt(N) of the year losses, classical EAL of the source branch.",
+        description="Average annual loss with its standard error, event and year counts, seed, the loss model "
+                    "with its within-group correlation of sampled damage and the grouping column (NaN and empty for "
+                    "mean damage ratios), and the classical EAL of the same model. Whole logic tree (source_branch "
+                    "'all'): the pooled years of every branch combination (the weighted-mean EP), standard error "
+                    "compound Poisson sqrt(sum of squared event losses) / N, classical EAL of every branch by weight "
+                    "(column name kept); per-branch mode: standard error s / sqrt(N) of the year losses, classical "
+                    "EAL of the source branch.",
         units={"aal": "{currency}/yr", "aal_standard_error": "{currency}/yr",
-               "classical_eal_same_branch": "{currency}/yr"},
+               "classical_eal_same_branch": "{currency}/yr", "secondary_correlation": "-"},
     ),
     "asset_event_loss": dict(
         description="Per asset: event-based AAL (ground-up, net) with its standard error (compound Poisson), the "
@@ -154,6 +156,15 @@ TABLES.update({
                     "NaN) and of PML (aep_loss, oep_loss) and TVaR per return period; NaN where a branch has fewer "
                     "years than the return period.",
         units={"return_period_yr": "yr", "fractile": "-", "value": "{currency} ({currency}/yr for aal)"},
+    "portfolio_correlation_effect": dict(
+        description="Sampled damage with a within-group correlation above 0: AAL, PML (AEP, OEP) and TVaR with "
+                    "that correlation against independent draws on the same events and ground motions; change and "
+                    "relative change from independent to correlated; for the AAL the paired standard error of "
+                    "the change (its expectation is 0).",
+        units={"return_period_yr": "yr", "value_correlated": "{currency} ({currency}/yr for aal)",
+               "value_independent": "{currency} ({currency}/yr for aal)",
+               "change": "{currency} ({currency}/yr for aal)", "relative_change": "-",
+               "standard_error_of_change": "{currency}/yr", "secondary_correlation": "-"},
     ),
 })
 

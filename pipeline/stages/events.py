@@ -31,10 +31,11 @@ from quakefolio.core.events.losses import (
     portfolio_event_losses, sum_over_blocks,
 )
 from quakefolio.core.events.gmf import FieldSampler
-from quakefolio.pipeline.stages import event_branches as eb
+from quakefolio.core.events.secondary import correlation_effect
 from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
+from quakefolio.pipeline.stages import event_branches as eb
 
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
@@ -76,6 +77,46 @@ class EventModel:
     year_combo: np.ndarray | None = None
     combos: tuple = ()
     rupture_offsets: np.ndarray | None = None
+    correlation: float = 0.0  # within-group correlation of sampled damage and loss ratios [-]
+    group_column: str = "building_class"
+    group_names: tuple = ()
+    group: np.ndarray | None = None  # (n_assets,) index into group_names
+
+
+def _groups(exposure, column):
+    """Groups sharing secondary uncertainty: sorted distinct values of ``column`` and each asset's index."""
+    names, group = np.unique(exposure[column].astype(str).to_numpy(dtype=object), return_inverse=True)
+    return tuple(str(n) for n in names), group.astype(np.int64).ravel()
+
+
+def extended_group(em, changed, new_class):
+    """Group of every asset after appending ``changed`` assets moved to ``new_class`` (the what-if).
+
+    Grouped by building class, the moved assets join the group of their new class (a new group
+    after the others when no asset of the run has that class); grouped by another column,
+    they keep their group.  Existing groups keep their indices, hence their random factors.
+
+    Parameters
+    ----------
+    em : EventModel
+        The run's event model.
+    changed : ndarray of int
+        Assets moved to the new class (appended after the run's assets).
+    new_class : str
+        Their new building class.
+
+    Returns
+    -------
+    ndarray of int, shape (n_assets + len(changed),)
+        Group index of every asset, the appended ones last.
+    """
+    if em.group_column != "building_class":
+        extra = em.group[changed]
+    elif new_class in em.group_names:
+        extra = np.full(len(changed), em.group_names.index(new_class), dtype=np.int64)
+    else:
+        extra = np.full(len(changed), len(em.group_names), dtype=np.int64)
+    return np.concatenate([em.group, extra])
 
 
 def _branch(config, model):
@@ -166,6 +207,7 @@ def prepare_events(inputs):
                            spatial_correlation=pf.spatial_correlation,
                            cross_im_correlation=pf.cross_im_correlation, vs30_clustering=pf.vs30_clustering)
     per_task = max(1, int(np.ceil(cfg.execution.event_block_size / EVENT_BLOCK_SIZE)))
+    group_names, group = _groups(ex, pf.secondary_group)
     return EventModel(
         branch_id=bid, branch_index=b, ruptures=rs, source_ids=tuple(rs.source_ids), events=events,
         gmm_of_event=gmm_of_event, gmms=[g for _, _, g in model.gmm_branches],
@@ -175,6 +217,7 @@ def prepare_events(inputs):
         max_distance_km=model.max_distance_km, region=model.region, ref=model.ref, loss_model=pf.loss_model,
         levels_g=model.levels_g, asset_site=local, classes=classes, value=ex.replacement_value.to_numpy(),
         deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task,
+        correlation=pf.secondary_correlation, group_column=pf.secondary_group, group_names=group_names, group=group,
         **tree)
 
 
@@ -205,6 +248,12 @@ class ChunkResult:
     asset_sumsq: np.ndarray  # (n_blocks, 2, n_assets) [currency^2]
     class_sum: np.ndarray  # (n_blocks, n_classes, 2)
     exceed_counts: np.ndarray  # (n_im, n_sites, n_levels)
+    independent: tuple | None = None  # (ground-up, net) (n_ev,) with independent draws (sampled, correlation > 0)
+
+
+def _correlated(em):
+    """True when the run samples damage with a within-group correlation above 0."""
+    return em.loss_model != "mean_damage_ratio" and em.correlation > 0
 
 
 def _ground_motion(em, start, stop, b0, b1):
@@ -216,7 +265,7 @@ def _ground_motion(em, start, stop, b0, b1):
     return event_ln_im(mu, tau, phi, res.eta, res.eps, em.truncation_sigma)
 
 
-def event_chunk(em, chunk):
+def event_chunk(em, chunk, independent=True):
     """Losses of one chunk of events (whole random-number blocks).
 
     Parameters
@@ -225,6 +274,9 @@ def event_chunk(em, chunk):
         From :func:`prepare_events`.
     chunk : (int, int)
         First and stop random-number block (:func:`event_chunks`).
+    independent : bool
+        With correlated sampled damage, also the event losses of independent draws on the
+        same ground motions (``ChunkResult.independent``).
 
     Returns
     -------
@@ -243,8 +295,13 @@ def event_chunk(em, chunk):
     classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
                for _, assets, i_im, dss, usites, pair in em.classes]
     gu_ev, net_ev, asset_sum, asset_sumsq, class_sum = portfolio_event_losses(
-        im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows)
-    return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts)
+        im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows,
+        correlation=em.correlation, group=em.group)
+    other = None
+    if independent and _correlated(em):  # the same ground motions, independent draws: the correlation's effect
+        other = portfolio_event_losses(im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model,
+                                             seed=em.seed, blocks=rows)[:2]
+    return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts, other)
 
 
 def combine_events(em, inputs, results):
@@ -264,7 +321,8 @@ def combine_events(em, inputs, results):
         ``portfolio_summary``, ``asset_event_loss``, ``portfolio_breakdown``; in whole-tree
         mode also ``portfolio_branch_summary``, ``portfolio_branch_ep`` and
         ``portfolio_branch_fractiles`` (:func:`quakefolio.pipeline.stages.event_branches.branch_tables`),
-        the pooled tables being the weighted-mean EP of the logic tree.
+        the pooled tables being the weighted-mean EP of the logic tree; with correlated
+        sampled damage ``portfolio_correlation_effect`` (:func:`correlation_effect_table`).
     checks : dict
         Event-based vs classical statistics (:mod:`quakefolio.core.events.losses`).
     """
@@ -298,6 +356,7 @@ def combine_events(em, inputs, results):
         year_table.insert(1, "source_branch", np.array(sid, dtype=object)[em.year_combo])
         year_table.insert(2, "gmm", np.array(gid, dtype=object)[em.year_combo])
     ep_rows, curve_rows, summary_rows = [], [], []
+    sampled = em.loss_model != "mean_damage_ratio"
     for basis, ev_loss in (("ground_up", gu), ("net", net)):
         agg, occ = years[basis]
         ep_rows.append(pd.DataFrame({"return_period_yr": rps, "aep_loss": ep_from_years(agg, rps),
@@ -312,7 +371,9 @@ def combine_events(em, inputs, results):
             se = np.sqrt(np.sum(ev_loss * ev_loss)) / n_years
         summary_rows.append({"basis": basis, "aal": aal, "aal_standard_error": se, "n_events": ev.n_events,
                              "n_years": n_years, "seed": em.seed, "source_branch": em.branch_id,
-                             "loss_model": em.loss_model})
+                             "loss_model": em.loss_model,
+                             "secondary_correlation": em.correlation if sampled else np.nan,
+                             "secondary_group": em.group_column if sampled else ""})
     asset_sum = sum_over_blocks([r.asset_sum for r in results])
     asset_sumsq = sum_over_blocks([r.asset_sumsq for r in results])
     class_sum = sum_over_blocks([r.class_sum for r in results])
@@ -345,6 +406,13 @@ def combine_events(em, inputs, results):
         tables.update(eb.branch_tables(em, model, gu, net, years, rps, model.fractiles,
                                        eb.classical_by_combination(em, model, inputs.config.fragility.tail)))
         checks["branch_aal_vs_classical_eal"] = _branch_check(tables["portfolio_branch_summary"])
+    if _correlated(em):
+        tables["portfolio_correlation_effect"] = correlation_effect_table(em, results, years, rps)
+        aal = tables["portfolio_correlation_effect"].query("metric == 'aal'")
+        checks["aal_correlated_vs_independent"] = {
+            "secondary_correlation": em.correlation, "secondary_group": em.group_column,
+            "change": aal.change.tolist(), "standard_error_of_change": aal.standard_error_of_change.tolist(),
+            "passed": bool((aal.change.abs() <= 3 * aal.standard_error_of_change).all())}
     return tables, checks
 
 
@@ -354,6 +422,37 @@ def _branch_check(summary):
     return [{"source_branch": r.source_branch, "gmm": r.gmm, "weight": float(r.weight), "n_years": int(r.n_years),
              "event_based_aal": float(r.aal), "standard_error": float(r.aal_standard_error),
              "classical_eal": float(r.classical_eal), "z": float(r.z_score)} for r in gu.itertuples()]
+
+
+def correlation_effect_table(em, results, years, rps):
+    """PML, TVaR and AAL with the configured within-group correlation against independent sampling.
+
+    Both come from the same events and ground-motion fields; only the damage and loss-ratio
+    draws differ (:func:`quakefolio.core.events.secondary.correlation_effect`).
+
+    Parameters
+    ----------
+    em : EventModel
+    results : list of ChunkResult
+        In event order, each with its ``independent`` event losses.
+    years : dict basis -> (aggregate, largest event) year losses [currency]
+        Of the correlated (headline) simulation.
+    rps : ndarray [yr]
+        Return periods.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``portfolio_correlation_effect`` rows for the ground-up and net bases.
+    """
+    rows = []
+    for j, basis in enumerate(("ground_up", "net")):
+        loss = np.concatenate([r.independent[j] for r in results]) if results else np.zeros(0)
+        agg, occ = year_loss(em.events.year, loss, em.n_years)
+        effect = correlation_effect(years[basis][0], agg, years[basis][1], occ, rps)
+        rows.append(pd.DataFrame({"basis": basis, **effect, "secondary_correlation": em.correlation,
+                                  "secondary_group": em.group_column}))
+    return pd.concat(rows, ignore_index=True)
 
 
 def _branch_mean_curves(em, inputs):

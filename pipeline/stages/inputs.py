@@ -72,7 +72,7 @@ def load_inputs(config_or_path):
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
     hz, ex, fr = config.hazard, config.exposure, config.fragility
     library = load_library(fr.library)
-    exposure = read_exposure(ex.file, library)
+    exposure = read_exposure(ex.file, library, config.portfolio.secondary_group)
     hashes = {
         "config": {"path": str(config.path), "sha256": config.sha256},
         "fragility_library": {"path": str(fr.library), "sha256": library.sha256},

@@ -366,8 +366,9 @@ def rerun_events(em, alternative):
     usites, pair = np.unique(em.asset_site[changed], return_inverse=True)
     entry = (alternative.new_class, extra, em.ims.index(alternative.dss.im), alternative.dss, usites, pair.ravel())
     alt = dataclasses.replace(em, value=value, deductible=np.concatenate([em.deductible, em.deductible[changed]]),
-                              limit=np.concatenate([em.limit, em.limit[changed]]), classes=list(em.classes) + [entry])
-    chunks = sorted((ps.event_chunk(alt, c) for c in ps.event_chunks(alt)), key=lambda r: r.start)
+                              limit=np.concatenate([em.limit, em.limit[changed]]), classes=list(em.classes) + [entry],
+                              group=ps.extended_group(em, changed, alternative.new_class))
+    chunks = sorted((ps.event_chunk(alt, c, independent=False) for c in ps.event_chunks(alt)), key=lambda r: r.start)
     gu = np.concatenate([c.ground_up for c in chunks]) if chunks else np.zeros(0)
     net = np.concatenate([c.net for c in chunks]) if chunks else np.zeros(0)
     asset_sum = sum_over_blocks([c.asset_sum for c in chunks]) if chunks else np.zeros((2, n + len(changed)))

@@ -1,0 +1,283 @@
+"""Correlated secondary uncertainty (quakefolio.core.events.secondary): limits, mean, variance, streams, stage.
+
+Checks and their sources:
+
+* correlation 0 gives the draws of independent sampling bit for bit
+  (``quakefolio.core.events.portfolio.sample_loss_ratio``, the model before the change);
+* correlation 1 gives comonotonic draws within a group: every asset's uniform is
+  Phi(X_group) (Frechet upper bound; common practice);
+* each asset's mean loss is unchanged by the correlation (the marginals of a copula are
+  uniform; Monte Carlo within 4 standard errors of ``expected_loss_ratio``);
+* the variance of the loss of n identical assets at a fixed intensity with deterministic loss
+  per state is n Var(L) + n(n-1) Cov(L_i, L_k) (variance of a sum, common practice), with the
+  pairwise exceedance P(DS_i >= j, DS_k >= l) = Phi2(Phi^-1(P_j), Phi^-1(P_l); rho) of the
+  one-factor Gaussian copula (Vasicek 2002), evaluated by scipy.stats.multivariate_normal
+  (Genz 2004 algorithm);
+* the rank correlation of two loss ratios of one group in a fixed damage state is
+  (6/pi) arcsin(rho/2), Spearman's rho of a bivariate normal (Kruskal 1958, eq. 5.3; from memory);
+* streams: one per (event block, group), results identical whatever the chunking.
+"""
+from __future__ import annotations
+
+import json
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+from numpy.testing import assert_allclose
+from scipy import special, stats
+
+from quakefolio.core.errors import InputError
+from quakefolio.core.events.eventset import STREAM_GROUP_FACTOR, group_factor_rng
+from quakefolio.core.events.losses import portfolio_event_losses
+from quakefolio.core.events.portfolio import expected_loss_ratio, sample_loss_ratio
+from quakefolio.core.events.secondary import (
+    correlated_uniform, correlation_effect, group_factors, sample_correlated_loss_ratio,
+)
+from quakefolio.core.loss import beta_parameters
+
+from conftest import MINI
+
+MED, BETA = np.array([0.2, 0.45, 0.9]), np.array([0.5, 0.55, 0.6])
+MDR, COV = np.array([0.05, 0.3, 1.0]), np.array([0.6, 0.4, 0.0])
+
+
+def _same(a, b):
+    a, b = np.asarray(a), np.asarray(b)
+    assert a.shape == b.shape and a.dtype == b.dtype and a.tobytes() == b.tobytes()
+
+
+def _draw(rho, im, n_ev, seed=3, cov=COV):
+    """Damage states and loss ratios of assets (columns) over n_ev events of one group."""
+    z = np.random.default_rng(seed + 1000).standard_normal((n_ev, 2))
+    x = np.broadcast_to(im, (n_ev, np.size(im)))
+    return sample_correlated_loss_ratio(np.random.default_rng(seed), x, MED, BETA, MDR, cov,
+                                        z[:, :1], z[:, 1:], rho), z
+
+
+# --- limits -----------------------------------------------------------------------------------
+
+def test_correlation_zero_is_independent_sampling_bit_for_bit():
+    im = np.exp(np.random.default_rng(1).normal(-1.2, 0.8, (300, 40)))
+    for seed in range(3):
+        want = sample_loss_ratio(np.random.default_rng(seed), im, MED, BETA, MDR, COV)
+        got = sample_correlated_loss_ratio(np.random.default_rng(seed), im, MED, BETA, MDR, COV, 5.0, -5.0, 0.0)
+        for g, w in zip(got, want):
+            _same(g, w)
+
+
+def test_correlation_one_is_comonotonic_within_a_group():
+    im = np.array([0.1, 0.3, 0.3, 0.6, 2.0])  # assets of one group at different intensities
+    (state, lr), z = _draw(1.0, im, 2000)
+    u, v = special.ndtr(z[:, 0]), special.ndtr(z[:, 1])
+    p = stats.norm.cdf(np.log(im[None, :, None] / MED) / BETA)  # (1, n_assets, n_ds), P(DS >= j)
+    assert (state == np.sum(p > u[:, None, None], axis=-1)).all()  # every asset uses the group's uniform
+    assert (state[:, 1] == state[:, 2]).all() and (lr[:, 1] == lr[:, 2]).all()  # same intensity: identical
+    assert (np.diff(state, axis=1) >= 0).all()  # comonotonic: higher intensity, never a lower state
+    a, b = beta_parameters(MDR, COV)
+    for j in (1, 2):  # random loss ratios: the group's quantile of each state's beta
+        sel = state == j
+        assert_allclose(lr[sel], special.betaincinv(a[j - 1], b[j - 1], np.broadcast_to(v[:, None], sel.shape)[sel]),
+                        rtol=1e-12)
+
+
+def test_correlated_uniform_limits_and_marginal():
+    u = np.random.default_rng(2).random(200_000)
+    z = np.random.default_rng(3).standard_normal(200_000)
+    assert correlated_uniform(u, z, 0.0) is not None and (correlated_uniform(u, z, 0.0) == u).all()
+    assert (correlated_uniform(u, z, 1.0) == special.ndtr(z)).all()
+    w = correlated_uniform(u, z, 0.6)
+    assert stats.kstest(w, "uniform").pvalue > 1e-3  # still U(0, 1)
+    with pytest.raises(ValueError, match="rho"):
+        correlated_uniform(u, z, 1.2)
+
+
+# --- mean and variance ------------------------------------------------------------------------
+
+@pytest.mark.parametrize("rho", [0.0, 0.3, 0.8, 1.0])
+def test_mean_loss_is_unchanged_by_the_correlation(rho):
+    im = np.array([0.15, 0.35, 0.7, 1.5])
+    n = 60_000
+    (_, lr), _ = _draw(rho, im, n, seed=11)
+    want = expected_loss_ratio(im, MED, BETA, MDR)
+    se = lr.std(axis=0, ddof=1) / np.sqrt(n)
+    assert (np.abs(lr.mean(axis=0) - want) <= 4 * se).all()
+
+
+def _pair_exceed(a, b, rho):
+    """P(Z_i < a, Z_k < b), Z bivariate standard normal with correlation rho (scipy, Genz 2004)."""
+    if rho >= 1.0:
+        return stats.norm.cdf(min(a, b))
+    if not np.isfinite(a) or not np.isfinite(b):
+        return stats.norm.cdf(min(a, b))
+    return stats.multivariate_normal(mean=[0, 0], cov=[[1, rho], [rho, 1]]).cdf([a, b])
+
+
+@pytest.mark.parametrize("rho", [0.25, 0.7])
+def test_variance_of_identical_assets_follows_the_closed_form(rho):
+    # n identical assets at one intensity, deterministic loss ratio per state (CoV 0):
+    # L_i = sum_j dmu_j 1{DS_i >= j}, 1{DS_i >= j} = 1{Z_i < Phi^-1(P_j)}
+    n, n_ev, im = 12, 40_000, 0.4
+    p = stats.norm.cdf(np.log(im / MED) / BETA)
+    dmu = np.diff(MDR, prepend=0.0)
+    a = stats.norm.ppf(p)
+    cov_pair = sum(dmu[j] * dmu[k] * (_pair_exceed(a[j], a[k], rho) - p[j] * p[k])
+                   for j in range(3) for k in range(3))
+    var_one = sum(dmu[j] * dmu[k] * (p[max(j, k)] - p[j] * p[k]) for j in range(3) for k in range(3))
+    want = n * var_one + n * (n - 1) * cov_pair
+    (_, lr), _ = _draw(rho, np.full(n, im), n_ev, seed=5, cov=np.zeros(3))
+    total = lr.sum(axis=1)
+    # the sample variance of 40,000 draws has a relative standard error of about
+    # sqrt((kurtosis - 1) / N); allow 4 of them
+    k = stats.kurtosis(total, fisher=False)
+    assert_allclose(total.var(ddof=1), want, rtol=4 * np.sqrt((k - 1) / n_ev))
+    indep = n * var_one
+    assert want > 2 * indep  # the check is not a weak one: correlation more than doubles the variance
+
+
+def test_loss_ratio_rank_correlation_is_the_copulas():
+    rho, n_ev = 0.5, 50_000
+    im = np.array([50.0, 50.0])  # every state exceeded: both assets in the top state, loss ratio random
+    mdr, cov = np.array([0.05, 0.3, 0.6]), np.array([0.6, 0.4, 0.3])
+    z = np.random.default_rng(8).standard_normal((n_ev, 2))
+    _, lr = sample_correlated_loss_ratio(np.random.default_rng(9), np.broadcast_to(im, (n_ev, 2)), MED, BETA, mdr, cov,
+                                         z[:, :1], z[:, 1:], rho)
+    got = stats.spearmanr(lr[:, 0], lr[:, 1]).statistic
+    want = 6 / np.pi * np.arcsin(rho / 2)
+    assert abs(got - want) < 4 * 1.0 / np.sqrt(n_ev - 1)  # standard error of Spearman's rho ~ 1/sqrt(N-1)
+
+
+# --- streams, chunking ------------------------------------------------------------------------
+
+def test_group_factor_streams():
+    want = np.random.default_rng(np.random.SeedSequence([7, STREAM_GROUP_FACTOR, 3, 2])).standard_normal(4)
+    _same(group_factor_rng(7, 3, 2).standard_normal(4), want)
+    blocks = [(3, 0, 256), (4, 256, 300)]
+    f = group_factors(7, blocks, 3)
+    _same(f[:256, 2], group_factor_rng(7, 3, 2).standard_normal((256, 2)))
+    _same(np.concatenate([group_factors(7, blocks[:1], 3), group_factors(7, [(4, 0, 44)], 3)]), f)
+    _same(group_factors(7, blocks, 5)[:, :3], f)  # more groups: the others' factors unchanged
+    with pytest.raises(ValueError, match="group"):
+        group_factor_rng(7, 0, -1)
+
+
+def _portfolio(rng, n_ev=700):
+    n_sites, n_assets = 6, 30
+    im = np.exp(rng.normal(-1.5, 1.0, (n_ev, 1, n_sites)))
+    site = rng.integers(0, n_sites, n_assets)
+    cls = np.arange(n_assets) % 3
+    classes = []
+    for c in range(3):
+        assets = np.flatnonzero(cls == c)
+        usites, pair = np.unique(site[assets], return_inverse=True)
+        classes.append((assets, 0, MED * (1 + 0.3 * c), BETA, MDR, COV, usites, pair))
+    value = rng.uniform(1e5, 1e6, n_assets)
+    ded = np.full(n_assets, 1e4)
+    lim = np.full(n_assets, np.nan)
+    edges = list(range(0, n_ev, 256)) + [n_ev]
+    blocks = [(j, lo, hi) for j, (lo, hi) in enumerate(zip(edges[:-1], edges[1:]))]
+    return im, classes, value, ded, lim, blocks, cls
+
+
+def test_identical_whatever_the_chunking_and_zero_is_independent():
+    im, classes, value, ded, lim, blocks, cls = _portfolio(np.random.default_rng(4))
+    district = np.arange(len(value)) % 4  # a grouping that spans the classes
+    kw = dict(loss_model="sampled_damage", seed=9, correlation=0.4, group=district)
+    whole = portfolio_event_losses(im, classes, value, ded, lim, blocks=blocks, **kw)
+    parts = []
+    for b, lo, hi in blocks:  # one chunk per block
+        parts.append(portfolio_event_losses(im[lo:hi], classes, value, ded, lim, blocks=[(b, 0, hi - lo)], **kw))
+    _same(np.concatenate([p[0] for p in parts]), whole[0])
+    _same(np.concatenate([p[2] for p in parts]), whole[2])
+    indep = portfolio_event_losses(im, classes, value, ded, lim, blocks=blocks, loss_model="sampled_damage", seed=9)
+    zero = portfolio_event_losses(im, classes, value, ded, lim, blocks=blocks, **{**kw, "correlation": 0.0})
+    for a, b in zip(indep, zero):
+        _same(a, b)
+    assert not np.array_equal(whole[0], indep[0])
+
+
+def test_correlation_effect_arithmetic():
+    rng = np.random.default_rng(0)
+    ind = rng.gamma(0.3, 1e6, 5000)
+    cor = ind * rng.uniform(0.5, 1.6, 5000)
+    out = correlation_effect(cor, ind, cor, ind, [10.0, 100.0])
+    assert list(out["metric"]) == ["aal", "aep_loss", "aep_loss", "oep_loss", "oep_loss", "tvar_loss", "tvar_loss"]
+    assert_allclose(out["value_correlated"][0], cor.mean(), rtol=1e-12)
+    assert_allclose(out["change"], out["value_correlated"] - out["value_independent"], rtol=1e-12)
+    assert_allclose(out["standard_error_of_change"][0], (cor - ind).std(ddof=1) / np.sqrt(5000), rtol=1e-12)
+    assert np.isnan(out["standard_error_of_change"][1:]).all()
+
+
+# --- the stage --------------------------------------------------------------------------------
+
+@pytest.fixture
+def event_config(tmp_path):
+    dst = tmp_path / "mini"
+    shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
+    cfg = dst / "quakefolio_compute.toml"
+    text = cfg.read_text().replace(
+        "[exposure]", "[portfolio]\nyears = 20000\nseed = 7\nloss_model = \"sampled_damage\"\n\n[exposure]")
+    cfg.write_text(text.replace("site_block_size = 2", "site_block_size = 2\nevent_block_size = 256"))
+    return cfg
+
+
+def _with(cfg, old, new):
+    cfg.write_text(cfg.read_text().replace(old, new))
+
+
+def test_stage_reports_the_correlation_effect(event_config):
+    from quakefolio.pipeline.io.store import read_table
+    from quakefolio.pipeline.runner import run_pure
+
+    run = run_pure(event_config)
+    summary = read_table(run, "portfolio_summary")
+    assert (summary.secondary_correlation == 0.3).all() and (summary.secondary_group == "building_class").all()
+    eff = read_table(run, "portfolio_correlation_effect")
+    ep = read_table(run, "portfolio_ep")
+    for basis in ("ground_up", "net"):
+        e = eff[eff.basis == basis]
+        aep = e[e.metric == "aep_loss"].value_correlated.to_numpy()
+        _same(aep, ep[ep.basis == basis].aep_loss.to_numpy())  # the headline numbers are the correlated ones
+        aal = e[e.metric == "aal"].iloc[0]
+        assert abs(aal.change) <= 3 * aal.standard_error_of_change  # the mean is unchanged
+    checks = json.loads((run / "manifest.json").read_text())["cross_checks"]
+    assert checks["aal_correlated_vs_independent"]["passed"]
+    # the independent counterpart is exactly the run with correlation 0
+    _with(event_config, "seed = 7", "seed = 7\nsecondary_correlation = 0.0")
+    zero = run_pure(event_config)
+    assert "portfolio_correlation_effect" not in {p.stem for p in zero.glob("*.parquet")}
+    ep0 = read_table(zero, "portfolio_ep")
+    for basis in ("ground_up", "net"):
+        e = eff[eff.basis == basis]
+        for metric in ("aep_loss", "oep_loss", "tvar_loss"):
+            _same(e[e.metric == metric].value_independent.to_numpy(), ep0[ep0.basis == basis][metric].to_numpy())
+
+
+def test_stage_identical_whatever_the_chunking(event_config):
+    from quakefolio.pipeline.io.store import read_table
+    from quakefolio.pipeline.runner import run_pure
+
+    a = run_pure(event_config)
+    _with(event_config, "event_block_size = 256", "event_block_size = 4096")
+    b = run_pure(event_config)
+    for name in ("event_loss", "portfolio_ep", "asset_event_loss", "portfolio_correlation_effect"):
+        pd.testing.assert_frame_equal(read_table(a, name), read_table(b, name), check_exact=True)
+
+
+def test_grouping_column_from_the_exposure(event_config):
+    from quakefolio.pipeline.io.store import read_table
+    from quakefolio.pipeline.runner import run_pure
+    from quakefolio.pipeline.stages.inputs import load_inputs
+
+    ex = event_config.parent / "exposure.csv"
+    rows = ex.read_text().splitlines()
+    ex.write_text("\n".join([rows[0] + ",district"] + [r + (",north" if i % 2 else ",south")
+                                                         for i, r in enumerate(rows[1:])]) + "\n")
+    _with(event_config, "seed = 7", "seed = 7\nsecondary_group = \"district\"")
+    run = run_pure(event_config)
+    assert (read_table(run, "portfolio_summary").secondary_group == "district").all()
+    _with(event_config, "secondary_group = \"district\"", "secondary_group = \"zone\"")
+    with pytest.raises(InputError) as err:
+        load_inputs(event_config)
+    assert err.value.column == "zone" and err.value.row == 1
