@@ -156,6 +156,7 @@ TABLES.update({
                     "NaN) and of PML (aep_loss, oep_loss) and TVaR per return period; NaN where a branch has fewer "
                     "years than the return period.",
         units={"return_period_yr": "yr", "fractile": "-", "value": "{currency} ({currency}/yr for aal)"},
+    ),
     "portfolio_correlation_effect": dict(
         description="Sampled damage with a within-group correlation above 0: AAL, PML (AEP, OEP) and TVaR with "
                     "that correlation against independent draws on the same events and ground motions; change and "

@@ -112,7 +112,7 @@ def classical_by_combination(em, model, tail):
 
 
 def mean_curves(model, sites):
-    """Logic-tree weighted mean hazard curves at some sites.
+    r"""Logic-tree weighted mean hazard curves at some sites.
 
     Parameters
     ----------
