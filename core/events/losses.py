@@ -71,7 +71,7 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
     return np.concatenate(parts)
 
 
-def block_loss_sums(ratio, value, deductible, limit, bounds):
+def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None):
     r"""Ground-up and net losses [currency] of assets over events, summed per event and per block.
 
     Parameters
@@ -84,6 +84,9 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
         Policy terms (NaN: none), :func:`apply_policy`.
     bounds : sequence of (first row, stop row)
         Rows of each random-number block.
+    on_net : callable, optional
+        Called with the net losses, shape (n_events, n_assets) [currency] (e.g.
+        :meth:`quakefolio.core.events.programme.GroupSums.add` for group terms).
 
     Returns
     -------
@@ -103,6 +106,8 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
     """
     gu = ratio * value
     net = apply_policy(gu, deductible, limit)
+    if on_net is not None:
+        on_net(net)
     n_assets = gu.shape[1]
     asset_sum = np.zeros((len(bounds), 2, n_assets))
     asset_sumsq = np.zeros((len(bounds), 2, n_assets))
@@ -115,7 +120,7 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
     return gu.sum(axis=1), net.sum(axis=1), asset_sum, asset_sumsq, total
 
 
-def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model, seed, blocks):
+def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model, seed, blocks, group_sums=None):
     r"""Losses of a portfolio in a chunk of events, class by class.
 
     Parameters
@@ -129,6 +134,8 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     loss_model, seed : as :func:`event_loss_ratio`
     blocks : sequence of (block index, first row, stop row)
         The chunk's random-number blocks.
+    group_sums : quakefolio.core.events.programme.GroupSums, optional
+        Receives every asset's net loss per event, summed by terms group.
 
     Returns
     -------
@@ -152,8 +159,9 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     for k, (assets, i_im, medians, betas, mdr, cov, usites, pair) in enumerate(classes):
         ratio = event_loss_ratio(im[:, i_im, usites], medians, betas, mdr, cov, pair, loss_model=loss_model,
                                  seed=seed, blocks=blocks, class_entry=k)
+        on_net = None if group_sums is None else (lambda n, a=assets: group_sums.add(a, n))
         gu, net, a_sum, a_sumsq, total = block_loss_sums(ratio, value[assets], deductible[assets], limit[assets],
-                                                         bounds)
+                                                         bounds, on_net)
         gu_ev += gu
         net_ev += net
         asset_sum[:, :, assets] = a_sum

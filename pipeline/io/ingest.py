@@ -34,6 +34,7 @@ __all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves",
 EXPOSURE_COLUMNS = {  # name: required
     "asset_id": True, "lon": True, "lat": True, "building_class": True, "replacement_value": True,
     "vs30_mps": False, "occupants": False, "deductible": False, "limit": False,
+    "terms_group": False,  # programme terms group (policy or account), pipeline/io/group_terms.py
 }
 HAZARD_COLUMNS = {"site_id": True, "lon": True, "lat": True, "im": True, "im_level": True, "annual_rate": True,
                   "statistic": False}
@@ -286,8 +287,9 @@ def read_exposure(path, library):
     pandas.DataFrame, n_assets rows
         ``asset_id``, ``lon``, ``lat`` [deg], ``building_class``, ``replacement_value``
         [currency], ``vs30_mps`` [m/s], ``occupants`` [-], ``deductible`` and ``limit``
-        [currency] (NaN where the optional column is absent or empty) and ``row``, the
-        user-facing row of each asset (see :func:`read_table`).
+        [currency] (NaN where the optional column is absent or empty), ``terms_group``
+        (only where the file has the column; every asset then names its group) and
+        ``row``, the user-facing row of each asset (see :func:`read_table`).
 
     Raises
     ------
@@ -315,6 +317,8 @@ def read_exposure(path, library):
         i = int(np.argmax(bad))
         raise InputError(path, f"deductible {out['deductible'].iloc[i]:g} is not below the limit "
                                f"{out['limit'].iloc[i]:g}", row=int(rows[i]), column="deductible")
+    if "terms_group" in frame.columns:
+        out["terms_group"] = _identifiers(frame, rows, path, "terms_group")
     out["row"] = rows
     return out
 

@@ -30,9 +30,11 @@ from quakefolio.core.events.losses import (
     portfolio_event_losses, sum_over_blocks,
 )
 from quakefolio.core.events.gmf import FieldSampler
+from quakefolio.core.events.programme import GroupSums, chunk_programme_loss
 from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
+from quakefolio.pipeline.stages.programme import programme_digest, programme_tables
 
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
@@ -69,6 +71,7 @@ class EventModel:
     deductible: np.ndarray
     limit: np.ndarray
     chunk_blocks: int
+    group_terms: object = None  # GroupTerms of [programme] (None: no group terms)
 
 
 def _branch(config, model):
@@ -155,7 +158,8 @@ def prepare_events(inputs):
         sampler=sampler, seed=pf.seed, n_years=pf.years, truncation_sigma=model.truncation_sigma,
         max_distance_km=model.max_distance_km, region=model.region, ref=model.ref, loss_model=pf.loss_model,
         levels_g=model.levels_g, asset_site=local, classes=classes, value=ex.replacement_value.to_numpy(),
-        deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task)
+        deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task,
+        group_terms=inputs.group_terms)
 
 
 def event_chunks(em):
@@ -185,6 +189,8 @@ class ChunkResult:
     asset_sumsq: np.ndarray  # (n_blocks, 2, n_assets) [currency^2]
     class_sum: np.ndarray  # (n_blocks, n_classes, 2)
     exceed_counts: np.ndarray  # (n_im, n_sites, n_levels)
+    programme: np.ndarray = None  # (n_ev,) after building and group terms [currency]
+    group_sum: np.ndarray = None  # (n_blocks, 2, n_groups): before, after group terms [currency]
 
 
 def _ground_motion(em, start, stop, b0, b1):
@@ -222,9 +228,13 @@ def event_chunk(em, chunk):
     rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
     classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
                for _, assets, i_im, dss, usites, pair in em.classes]
+    gt = em.group_terms
+    groups = None if gt is None else GroupSums(gt.group_of_asset, len(gt.ids), stop - start)
     gu_ev, net_ev, asset_sum, asset_sumsq, class_sum = portfolio_event_losses(
-        im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows)
-    return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts)
+        im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows,
+        group_sums=groups)
+    programme, group_sum = chunk_programme_loss(gt, groups, net_ev, [(lo, hi) for _, lo, hi in rows])
+    return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts, programme, group_sum)
 
 
 def combine_events(em, inputs, results):
@@ -306,6 +316,7 @@ def combine_events(em, inputs, results):
         "event_loss": event_loss, "year_loss": year_table, "portfolio_ep": pd.concat(ep_rows, ignore_index=True),
         "portfolio_ep_curve": pd.concat(curve_rows, ignore_index=True), "portfolio_summary": summary,
         "asset_event_loss": asset_aal, "portfolio_breakdown": pd.concat(breakdown, ignore_index=True),
+        **programme_tables(em, inputs, results),
     }
     return tables, checks
 
@@ -370,4 +381,5 @@ def event_cache_key(inputs):
     used = sorted(set(inputs.exposure.building_class))
     classes = fragility_class_digests(inputs.library)
     return digest("events", model.digest, cfg.resolved()["portfolio"], cfg.resolved()["hazard"],
-                  cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"])
+                  cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"],
+                  *programme_digest(inputs))
