@@ -257,11 +257,11 @@ def test_bad_group_terms_are_located(programme_config, terms, where, row):
     assert where in str(exc.value) and exc.value.row == row
 
 
-def test_group_column_and_file_need_each_other(programme_config):
+def test_group_column_without_file_warns_and_file_needs_the_column(programme_config):
     text = programme_config.read_text()
     programme_config.write_text(text.replace('group_terms_file = "group_terms.csv"\n', ""))
-    with pytest.raises(InputError, match="group_terms_file is not set"):
-        load_inputs(programme_config)
+    inputs = load_inputs(programme_config)
+    assert inputs.group_terms is None and any("terms_group not used" in w for w in inputs.warnings)
     programme_config.write_text(text)
     shutil.copy(MINI / "exposure.csv", programme_config.parent / "exposure.csv")
     with pytest.raises(InputError, match="needs a terms_group column") as exc:

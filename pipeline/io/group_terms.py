@@ -89,26 +89,26 @@ def group_terms_for(config, exposure, text=None):
 
     Returns
     -------
-    GroupTerms or None
-        None when neither the exposure column nor ``group_terms_file`` is given.
+    terms : GroupTerms or None
+        None without ``group_terms_file``.
+    warning : str or None
+        When the exposure names terms groups but no terms file is set in an event-based
+        run (the column is then not used; without the event-based stage it never is).
 
     Raises
     ------
     InputError
-        The column without the file (located at the exposure header) or the file without
-        the column (located at the config key), or any problem of the file.
+        The file without the column (located at the config key), or any problem of the file.
     """
     file = config.programme.group_terms_file
     has_column = "terms_group" in exposure.columns
-    if file is None and not has_column:
-        return None
     if file is None:
-        raise InputError(config.exposure.file, "the exposure names terms groups but [programme] group_terms_file is "
-                                               "not set", row=1, column="terms_group")
+        used = has_column and config.portfolio.event_based
+        return None, "exposure column terms_group not used: no [programme] group_terms_file" if used else None
     if not has_column:
         if text is None:
             text = config.path.read_text(encoding="utf-8") if config.path.exists() else ""
         raise InputError(config.path, "group_terms_file needs a terms_group column in the exposure",
                          row=locate_toml_line(text, ("programme",), "group_terms_file"),
                          column="programme.group_terms_file")
-    return read_group_terms(file, exposure, config.exposure.file)
+    return read_group_terms(file, exposure, config.exposure.file), None

@@ -79,7 +79,7 @@ def load_inputs(config_or_path):
         "fragility_library": {"path": str(fr.library), "sha256": library.sha256},
         "exposure": {"path": str(ex.file), "sha256": sha256_file(ex.file)},
     }
-    group_terms = group_terms_for(config, exposure)
+    group_terms, group_warning = group_terms_for(config, exposure)
     if group_terms is not None:
         gt = config.programme.group_terms_file
         hashes["group_terms"] = {"path": str(gt), "sha256": sha256_file(gt)}
@@ -100,7 +100,7 @@ def load_inputs(config_or_path):
         check_class_hazard(library[code], levels_of, fr.library, lines, reject_crossing=fr.crossing == "reject")
     if model is None:
         hazard = levels_of.hazard  # with the curves interpolated across periods for the classes
-    warnings = []
+    warnings = [group_warning] if group_warning else []
     if hazard.interpolated:
         warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
                         "(log-log between neighbouring tabulated periods)")
