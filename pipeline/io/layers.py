@@ -24,9 +24,33 @@ class Layers(Constraint):
         self.kind = kind
 
     def holds(self, value):
+        """Always true: the checks run in :meth:`convert`, which words each problem.
+
+        Parameters
+        ----------
+        value : object
+            The parsed TOML value.
+
+        Returns
+        -------
+        bool
+        """
         return True
 
     def convert(self, value, context):
+        """The checked layers (:func:`_layers`).
+
+        Parameters
+        ----------
+        value : object
+            The parsed TOML value.
+        context : dict
+            Unused (the config reader's context).
+
+        Returns
+        -------
+        list of dict
+        """
         return _layers(self.kind, value)
 
 
