@@ -13,6 +13,7 @@ this file:
 - ``hazard_curves.csv`` and ``hazard_curves.parquet``: mean hazard curves (long form) on a
   9 x 9 grid of sites, for PGA, SA_0.3 and SA_1.0 at 40 levels [g];
 - ``exposure.csv``: the invented building portfolio;
+- ``group_terms.csv``: invented per-event deductible and limit of each account (``terms_group``);
 - ``fragility_library.toml``: the invented fragility and consequence library.
 
 Re-running it reproduces the files byte for byte (same numpy and pyarrow versions).
@@ -448,6 +449,15 @@ VALUE_MODEL = {
     "RCW":     (20.0e6, 0.50, (6.0e6, 60.0e6), 110e3),
     "STL-BR":  (9.0e6, 0.60, (2.0e6, 45.0e6), 400e3),
 }
+#: Invented terms groups (accounts): one per district, with a per-event deductible and limit [USD]
+#: applied to the sum of the account's building net losses (group_terms.csv; every number invented).
+ACCOUNTS = {
+    "Saltgrave Quay": ("ACC-SALTGRAVE", 2_000_000, 40_000_000),
+    "Lanternhill": ("ACC-LANTERNHILL", 10_000_000, 250_000_000),
+    "Corvell Flats": ("ACC-CORVELL", 5_000_000, 120_000_000),
+    "Thistlerow": ("ACC-THISTLEROW", 1_000_000, ""),
+    "Harnmere Rise": ("ACC-HARNMERE", "", 60_000_000),
+}
 GRID_HALF_KM = 0.5 * (GRID_N - 1) * GRID_SPACING_KM
 MIN_COAST_KM = 0.3
 P_NO_DEDUCTIBLE, P_NO_LIMIT = 0.10, 0.12
@@ -500,6 +510,7 @@ def build_exposure(rng):
                 "deductible": "" if no_ded else int(round(ded_frac * value / 1000.0) * 1000),
                 "limit": "" if no_lim else int(math.floor(lim_frac * value / 10000.0) * 10000),
                 "district": name,
+                "terms_group": ACCOUNTS[name][0],
             })
     for i, r in enumerate(rows, start=1):
         r["asset_id"] = f"A{i:04d}"
@@ -507,7 +518,7 @@ def build_exposure(rng):
 
 
 EXPOSURE_COLUMNS = ("asset_id", "lon", "lat", "building_class", "replacement_value",
-                    "vs30_mps", "occupants", "deductible", "limit")
+                    "vs30_mps", "occupants", "deductible", "limit", "terms_group")
 HAZARD_COLUMNS = ("site_id", "lon", "lat", "im", "im_level", "annual_rate", "statistic")
 
 
@@ -605,6 +616,8 @@ def main():
     exp_lines = [",".join(EXPOSURE_COLUMNS)]
     exp_lines += [",".join(str(r[c]) for c in EXPOSURE_COLUMNS) for r in rows]
     (OUT_DIR / "exposure.csv").write_text("\n".join(exp_lines) + "\n", encoding="utf-8")
+    terms = ["terms_group,deductible,limit"] + [f"{g},{d},{u}" for g, d, u in ACCOUNTS.values()]
+    (OUT_DIR / "group_terms.csv").write_text("\n".join(terms) + "\n", encoding="utf-8")
 
     # ---- summary ---------------------------------------------------------------------
     pga = rates_r[:, IMS.index("PGA"), :]

@@ -153,6 +153,35 @@ def _branch_fractile_lines(frac, cur):
     return lines
 
 
+def _programme_lines(run, cur):
+    """Programme AAL after group terms and the layer table (only when [programme] was set)."""
+    if not run.has("programme_summary"):
+        return []
+    ps = run.table("programme_summary").set_index("basis")
+    lines = ["", f"  programme: AAL net of building terms {_money(ps.loc['net', 'aal'])}, after group terms "
+                 f"{_money(ps.loc['programme', 'aal'])} {cur}/yr ({int(ps.loc['programme', 'n_groups'])} terms groups);"
+                 " the layers take the latter, event by event"]
+    if ps.loc["programme", "loss_model"] == "mean_damage_ratio":
+        lines.append("  note: mean-damage-ratio loss model: group terms and layers see the ground-motion variability "
+                     "but not the damage and loss-ratio uncertainty given the shaking")
+    if run.has("layer_summary"):
+        ls, ep = run.table("layer_summary"), run.table("layer_ep")
+        lines.append(f"  {'layer':<12}{'kind':<11}{'attachment':>14}{'limit':>14}{'reinst.':>8}{'E[loss]/yr':>13}"
+                     f"{'P(attach)':>11}{'P(exhaust)':>11}")
+        for r in ls.itertuples():
+            lim = "unlimited" if r.limit == float("inf") else _money(r.limit)
+            rein = "-" if r.layer_kind == "aggregate" else ("unl." if r.reinstatements != r.reinstatements
+                                                            else f"{r.reinstatements:g}")
+            lines.append(f"  {r.layer_id:<12}{r.layer_kind:<11}{_money(r.attachment):>14}{lim:>14}{rein:>8}"
+                         f"{_money(r.expected_annual_loss):>13}{r.prob_attachment:>11.4f}{r.prob_exhaustion:>11.4f}")
+        top = ep[ep.return_period_yr == ep.return_period_yr.max()]
+        if len(top):
+            lines.append(f"  layer loss at {top.return_period_yr.iloc[0]:g} yr (AEP): " + ", ".join(
+                f"{r.layer_id} {'n/a' if r.aep_layer_loss != r.aep_layer_loss else _money(r.aep_layer_loss)}"
+                for r in top.itertuples()) + f" {cur}")
+    return lines
+
+
 def _cache_lines(manifest):
     """One line saying what was recomputed and what came from the content cache."""
     stats = manifest.get("cache") or {}
@@ -276,6 +305,7 @@ def summary_text(run_dir, *, elapsed_s=None):
     lines += hazard
     if run.has("portfolio_summary"):
         lines += _portfolio_lines(run, manifest, cur)
+        lines += _programme_lines(run, cur)
     lines += _whatif_lines(run, cur)
     lines += _cache_lines(manifest)
     lines.append("")

@@ -82,7 +82,7 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
     return np.concatenate(parts)
 
 
-def block_loss_sums(ratio, value, deductible, limit, bounds):
+def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None):
     r"""Ground-up and net losses [currency] of assets over events, summed per event and per block.
 
     Parameters
@@ -95,6 +95,9 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
         Policy terms (NaN: none), :func:`apply_policy`.
     bounds : sequence of (first row, stop row)
         Rows of each random-number block.
+    on_net : callable, optional
+        Called with the net losses, shape (n_events, n_assets) [currency] (e.g.
+        :meth:`quakefolio.core.events.programme.GroupSums.add` for group terms).
 
     Returns
     -------
@@ -114,6 +117,8 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
     """
     gu = ratio * value
     net = apply_policy(gu, deductible, limit)
+    if on_net is not None:
+        on_net(net)
     n_assets = gu.shape[1]
     asset_sum = np.zeros((len(bounds), 2, n_assets))
     asset_sumsq = np.zeros((len(bounds), 2, n_assets))
@@ -127,7 +132,7 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
 
 
 def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model, seed, blocks, correlation=0.0,
-                           group=None):
+                           group=None, group_sums=None):
     r"""Losses of a portfolio in a chunk of events, class by class.
 
     Parameters
@@ -145,6 +150,8 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
         Within-group correlation of sampled damage (:func:`event_loss_ratio`); 0: independent.
     group : ndarray of int, shape (n_assets,), or None
         Group index of each asset (needed when sampling with ``correlation > 0``).
+    group_sums : quakefolio.core.events.programme.GroupSums, optional
+        Receives every asset's net loss per event, summed by terms group.
 
     Returns
     -------
@@ -171,8 +178,9 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
         ratio = event_loss_ratio(im[:, i_im, usites], medians, betas, mdr, cov, pair, loss_model=loss_model,
                                  seed=seed, blocks=blocks, class_entry=k, correlation=correlation,
                                  factors=None if factors is None else factors[:, group[assets]])
+        on_net = None if group_sums is None else (lambda n, a=assets: group_sums.add(a, n))
         gu, net, a_sum, a_sumsq, total = block_loss_sums(ratio, value[assets], deductible[assets], limit[assets],
-                                                         bounds)
+                                                         bounds, on_net)
         gu_ev += gu
         net_ev += net
         asset_sum[:, :, assets] = a_sum

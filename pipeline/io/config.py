@@ -20,10 +20,11 @@ from quakefolio.core.validation import (
     check_value, toml_place, validate_table,
 )
 from quakefolio.fragility.library import read_toml
+from quakefolio.pipeline.io.layers import Layers as _Layers
 
 __all__ = ["Config", "load_config", "SCHEMA", "IM_UNITS_TO_G", "resolve_execution", "sha256_file", "DEFAULT_LEVELS_G",
            "SETTINGS_CLASSES", "ScenarioSettings", "ScreeningSettings", "HazardSettings", "PortfolioSettings",
-           "ExposureSettings", "FragilitySettings", "OutputSettings", "ExecutionSettings"]
+           "ProgrammeSettings", "ExposureSettings", "FragilitySettings", "OutputSettings", "ExecutionSettings"]
 
 #: Conversion factors from accepted IM-level units to g (standard gravity 9.80665 m/s2,
 #: CGPM 1901 / ISO 80000-3).
@@ -192,6 +193,12 @@ SCHEMA = {
                                 help="exposure column whose values group assets sharing that uncertainty"),
         "return_periods_yr": _key(_FLOATS, [100.0, 250.0, 475.0, 2475.0], *_RETURN_PERIODS),
     },
+    "programme": {
+        "group_terms_file": _key(_PATH, None, help="per terms_group: deductible and limit per event (CSV or Parquet)"),
+        "occurrence_layers": _key((_Layers("occurrence"),), [],
+                                  help="per-event layers [{id, attachment, limit, reinstatements}]"),
+        "aggregate_layers": _key((_Layers("aggregate"),), [], help="annual aggregate layers [{id, attachment, limit}]"),
+    },
     "exposure": {
         "file": _key(_PATH),
     },
@@ -315,6 +322,15 @@ class PortfolioSettings(_Section):
 
 
 @dataclass(frozen=True)
+class ProgrammeSettings(_Section):
+    """``[programme]``: terms above the building (group terms, occurrence and aggregate layers)."""
+
+    group_terms_file: Path | None  #: group terms per ``terms_group`` (resolved path), None for none
+    occurrence_layers: tuple  #: ``{id, attachment, limit, reinstatements}`` (limit None: unlimited)
+    aggregate_layers: tuple  #: ``{id, attachment, limit}`` on the annual sum (limit None: unlimited)
+
+
+@dataclass(frozen=True)
 class ExposureSettings(_Section):
     """``[exposure]``: the asset file."""
 
@@ -356,7 +372,7 @@ class ExecutionSettings(_Section):
 
 #: Section name -> its frozen settings class.
 SETTINGS_CLASSES = {"scenario": ScenarioSettings, "screening": ScreeningSettings, "hazard": HazardSettings,
-                    "portfolio": PortfolioSettings, "exposure": ExposureSettings, "fragility": FragilitySettings,
+                    "portfolio": PortfolioSettings, "programme": ProgrammeSettings, "exposure": ExposureSettings, "fragility": FragilitySettings,
                     "output": OutputSettings, "execution": ExecutionSettings}
 
 
@@ -412,7 +428,7 @@ class Config:
         Returns
         -------
         ScenarioSettings, ScreeningSettings, HazardSettings, PortfolioSettings,
-        ExposureSettings, FragilitySettings, OutputSettings or ExecutionSettings
+        ProgrammeSettings, ExposureSettings, FragilitySettings, OutputSettings or ExecutionSettings
         """
         cache = self.__dict__.setdefault("_settings", {})
         if section not in cache:
@@ -427,6 +443,7 @@ class Config:
     screening = property(lambda self: self.settings("screening"), doc="[screening] as ScreeningSettings")
     hazard = property(lambda self: self.settings("hazard"), doc="[hazard] as HazardSettings")
     portfolio = property(lambda self: self.settings("portfolio"), doc="[portfolio] as PortfolioSettings")
+    programme = property(lambda self: self.settings("programme"), doc="[programme] as ProgrammeSettings")
     exposure = property(lambda self: self.settings("exposure"), doc="[exposure] as ExposureSettings")
     fragility = property(lambda self: self.settings("fragility"), doc="[fragility] as FragilitySettings")
     output = property(lambda self: self.settings("output"), doc="[output] as OutputSettings")
@@ -653,10 +670,25 @@ def _cross_checks(sections, path, text):
     elif pf["event_based"] and hz["mode"] != "compute":
         raise error("event_based = true needs [hazard] mode = \"compute\" (events come from the source model)",
                     "portfolio", "event_based")
+    _programme_checks(sections, error)
     if hz["mode"] == "compute":
         for key in ("source_models", "gmm_branches"):
             if hz[key] is None:
                 raise error(f"mode = \"compute\" needs {key}", "hazard", "mode", f"hazard.{key}")
+
+
+def _programme_checks(sections, error):
+    """Layer ids unique across both kinds; programme terms need the event-based stage."""
+    pr = sections["programme"]
+    occ = {layer["id"] for layer in pr["occurrence_layers"]}
+    both = sorted(occ & {layer["id"] for layer in pr["aggregate_layers"]})
+    if both:
+        raise error(f"layer id {both[0]!r} is used by an occurrence and an aggregate layer", "programme",
+                    "aggregate_layers")
+    used = [k for k in ("group_terms_file", "occurrence_layers", "aggregate_layers") if pr[k]]
+    if used and not sections["portfolio"]["event_based"]:
+        raise error(f"[programme] {used[0]} needs the event-based stage ([portfolio] event_based = true with "
+                    "[hazard] mode = \"compute\")", "programme", used[0])
 
 
 def load_config(path):

@@ -34,6 +34,7 @@ __all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves",
 EXPOSURE_COLUMNS = {  # name: required
     "asset_id": True, "lon": True, "lat": True, "building_class": True, "replacement_value": True,
     "vs30_mps": False, "occupants": False, "deductible": False, "limit": False,
+    "terms_group": False,  # programme terms group (policy or account), pipeline/io/group_terms.py
 }
 HAZARD_COLUMNS = {"site_id": True, "lon": True, "lat": True, "im": True, "im_level": True, "annual_rate": True,
                   "statistic": False}
@@ -291,8 +292,9 @@ def read_exposure(path, library, group_column="building_class"):
         ``asset_id``, ``lon``, ``lat`` [deg], ``building_class``, ``replacement_value``
         [currency], ``vs30_mps`` [m/s], ``occupants`` [-], ``deductible`` and ``limit``
         [currency] (NaN where the optional column is absent or empty) and ``row``, the
-        user-facing row of each asset (see :func:`read_table`); and ``group_column`` if it is
-        none of these.
+        user-facing row of each asset (see :func:`read_table`); ``terms_group`` (only where
+        the file has the column; every asset then names its group); and ``group_column`` if
+        it is none of these.
 
     Raises
     ------
@@ -325,6 +327,8 @@ def read_exposure(path, library, group_column="building_class"):
             raise InputError(path, "missing column named by [portfolio] secondary_group (assets sharing secondary "
                                    "uncertainty)", row=1, column=group_column)
         out[group_column] = _identifiers(frame, rows, path, group_column)
+    if "terms_group" in frame.columns:
+        out["terms_group"] = _identifiers(frame, rows, path, "terms_group")
     out["row"] = rows
     return out
 

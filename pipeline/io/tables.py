@@ -246,6 +246,60 @@ TABLES.update({
 })
 
 
+# Programme terms above the building (pipeline/stages/programme.py; [programme] of the config). The loss
+# entering group terms is each building's net loss (after its own deductible and limit); the loss entering
+# the layers is the programme loss: the portfolio net loss of each event after building and group terms.
+TABLES.update({
+    "programme_summary": dict(
+        description="Event-based AAL of the portfolio net loss after building terms (basis 'net') and after "
+                    "building and group terms (basis 'programme', the loss entering the layers), with the "
+                    "standard error and the largest event loss of the simulation.",
+        units={"aal": "{currency}/yr", "aal_standard_error": "{currency}/yr", "max_event_loss": "{currency}",
+               "n_years": "yr", "n_groups": "-"},
+    ),
+    "group_loss": dict(
+        description="Per terms group (exposure column terms_group): assets, per-event deductible and limit "
+                    "(NaN: none) applied to the sum of the group's building net losses in each event, and the "
+                    "event-based AAL before and after the group terms.",
+        units={"n_assets": "-", "deductible": "{currency}", "limit": "{currency}",
+               "aal_before_group_terms": "{currency}/yr", "aal_after_group_terms": "{currency}/yr"},
+    ),
+    "layer_event_loss": dict(
+        description="Occurrence layers, per layer and event whose programme loss exceeds the attachment: "
+                    "programme loss, loss to the layer before the annual reinstatement cap "
+                    "(min(max(loss - attachment, 0), limit)) and after it (cap limit x (1 + reinstatements) "
+                    "per year, spent in event order within the year).",
+        units={"year": "-", "programme_loss": "{currency}", "layer_loss_before_cap": "{currency}",
+               "layer_loss": "{currency}"},
+    ),
+    "layer_year_loss": dict(
+        description="Per layer and simulated year in which the layer pays: the loss entering the layer (largest "
+                    "event programme loss of the year for occurrence layers; annual sum of the programme loss for "
+                    "aggregate layers) and the annual loss to the layer. Years not listed pay 0.",
+        units={"year": "-", "entering_loss": "{currency}", "layer_loss": "{currency}"},
+    ),
+    "layer_summary": dict(
+        description="Per layer: terms (limit inf: unlimited; reinstatements NaN: unlimited; annual_cap = limit x "
+                    "(1 + reinstatements), inf without a cap), expected annual layer loss with its standard error, "
+                    "annual probability of attachment (a year in which the layer pays), of exhaustion (a year in "
+                    "which one event, or the annual sum for aggregate layers, uses the whole limit) and of using "
+                    "up the annual cap (NaN without a finite cap), as counts of simulated years / years.",
+        units={"attachment": "{currency}", "limit": "{currency}", "reinstatements": "-", "annual_cap": "{currency}",
+               "expected_annual_loss": "{currency}/yr", "expected_annual_loss_standard_error": "{currency}/yr",
+               "prob_attachment": "-", "prob_exhaustion": "-", "prob_annual_cap_used": "-",
+               "n_years": "yr"},
+    ),
+    "layer_ep": dict(
+        description="Per layer and configured return period: annual layer loss exceeded with probability 1/T "
+                    "(AEP), largest single-event layer loss of a year (OEP; occurrence layers, NaN for aggregate) "
+                    "and TVaR of the annual layer loss (same estimators as portfolio_ep; NaN where T exceeds the "
+                    "simulated years).",
+        units={"return_period_yr": "yr", "aep_layer_loss": "{currency}", "oep_layer_loss": "{currency}",
+               "tvar_layer_loss": "{currency}"},
+    ),
+})
+
+
 def units_for(name, currency):
     """Column units of a run table, with ``{currency}`` replaced by the run's currency.
 

@@ -5,6 +5,7 @@ from quakefolio.pipeline.report.context import SCREENING_ROWS
 from quakefolio.pipeline.report.figures import _ep_curve_figure, _figure_html
 from quakefolio.pipeline.report.html import _cell, _g, _money, _note, _p, _pct, _prob, _rate, _table
 from quakefolio.pipeline.summary import loss_model_label
+from quakefolio.pipeline.report.sections_programme import programme_html
 
 
 def _section_portfolio(run):
@@ -83,6 +84,7 @@ def _section_portfolio(run):
                  _cell(_money(r.aal_net), r.aal_net)]
                 for r in brk.sort_values(["dimension", "aal_ground_up"], ascending=[True, False]).itertuples()]
         out.append(_table(["by", "key", f"AAL ground-up [{cur}/yr]#", f"AAL net [{cur}/yr]#"], rows, sortable=True))
+    out.append(programme_html(run))
     return "".join(out)
 
 

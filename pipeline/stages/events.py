@@ -31,11 +31,13 @@ from quakefolio.core.events.losses import (
     portfolio_event_losses, sum_over_blocks,
 )
 from quakefolio.core.events.gmf import FieldSampler
+from quakefolio.core.events.programme import GroupSums, chunk_programme_loss
 from quakefolio.core.events.secondary import correlation_effect
 from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
 from quakefolio.pipeline.stages import event_branches as eb
+from quakefolio.pipeline.stages.programme import programme_digest, programme_tables
 
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
@@ -81,6 +83,7 @@ class EventModel:
     group_column: str = "building_class"
     group_names: tuple = ()
     group: np.ndarray | None = None  # (n_assets,) index into group_names
+    group_terms: object = None  # GroupTerms of [programme] (None: no group terms)
 
 
 def _groups(exposure, column):
@@ -218,7 +221,7 @@ def prepare_events(inputs):
         levels_g=model.levels_g, asset_site=local, classes=classes, value=ex.replacement_value.to_numpy(),
         deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task,
         correlation=pf.secondary_correlation, group_column=pf.secondary_group, group_names=group_names, group=group,
-        **tree)
+        group_terms=inputs.group_terms, **tree)
 
 
 def event_chunks(em):
@@ -249,6 +252,8 @@ class ChunkResult:
     class_sum: np.ndarray  # (n_blocks, n_classes, 2)
     exceed_counts: np.ndarray  # (n_im, n_sites, n_levels)
     independent: tuple | None = None  # (ground-up, net) (n_ev,) with independent draws (sampled, correlation > 0)
+    programme: np.ndarray = None  # (n_ev,) after building and group terms [currency]
+    group_sum: np.ndarray = None  # (n_blocks, 2, n_groups): before, after group terms [currency]
 
 
 def _correlated(em):
@@ -294,14 +299,18 @@ def event_chunk(em, chunk, independent=True):
     rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
     classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
                for _, assets, i_im, dss, usites, pair in em.classes]
+    gt = em.group_terms
+    groups = None if gt is None else GroupSums(gt.group_of_asset, len(gt.ids), stop - start)
     gu_ev, net_ev, asset_sum, asset_sumsq, class_sum = portfolio_event_losses(
         im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows,
-        correlation=em.correlation, group=em.group)
+        correlation=em.correlation, group=em.group, group_sums=groups)
+    programme, group_sum = chunk_programme_loss(gt, groups, net_ev, [(lo, hi) for _, lo, hi in rows])
     other = None
     if independent and _correlated(em):  # the same ground motions, independent draws: the correlation's effect
         other = portfolio_event_losses(im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model,
                                              seed=em.seed, blocks=rows)[:2]
-    return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts, other)
+    return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts, other, programme,
+                       group_sum)
 
 
 def combine_events(em, inputs, results):
@@ -400,6 +409,7 @@ def combine_events(em, inputs, results):
         "event_loss": event_loss, "year_loss": year_table, "portfolio_ep": pd.concat(ep_rows, ignore_index=True),
         "portfolio_ep_curve": pd.concat(curve_rows, ignore_index=True), "portfolio_summary": summary,
         "asset_event_loss": asset_aal, "portfolio_breakdown": pd.concat(breakdown, ignore_index=True),
+        **programme_tables(em, inputs, results),
     }
     if tree:
         model = inputs.hazard_model
@@ -525,4 +535,5 @@ def event_cache_key(inputs):
     used = sorted(set(inputs.exposure.building_class))
     classes = fragility_class_digests(inputs.library)
     return digest("events", model.digest, cfg.resolved()["portfolio"], cfg.resolved()["hazard"],
-                  cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"])
+                  cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"],
+                  *programme_digest(inputs))

@@ -12,6 +12,7 @@ import numpy as np
 from quakefolio.fragility import load_library
 from quakefolio.pipeline.io.cache import StageCache
 from quakefolio.pipeline.io.config import load_config, sha256_file
+from quakefolio.pipeline.io.group_terms import group_terms_for
 from quakefolio.pipeline.io.ingest import map_assets_to_sites, read_exposure, read_hazard_curves
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 from quakefolio.pipeline.stages.hazard import prepare_compute
@@ -78,6 +79,10 @@ def load_inputs(config_or_path):
         "fragility_library": {"path": str(fr.library), "sha256": library.sha256},
         "exposure": {"path": str(ex.file), "sha256": sha256_file(ex.file)},
     }
+    group_terms, group_warning = group_terms_for(config, exposure)
+    if group_terms is not None:
+        gt = config.programme.group_terms_file
+        hashes["group_terms"] = {"path": str(gt), "sha256": sha256_file(gt)}
     lines = LibraryLines()
     model = None
     if hz.mode == "ingest":
@@ -95,7 +100,7 @@ def load_inputs(config_or_path):
         check_class_hazard(library[code], levels_of, fr.library, lines, reject_crossing=fr.crossing == "reject")
     if model is None:
         hazard = levels_of.hazard  # with the curves interpolated across periods for the classes
-    warnings = []
+    warnings = [group_warning] if group_warning else []
     if hazard.interpolated:
         warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
                         "(log-log between neighbouring tabulated periods)")
@@ -106,7 +111,7 @@ def load_inputs(config_or_path):
         for alt in alternatives:
             hazard = hazard.with_im(alt.dss.im, allow_interpolation=hz.period_interpolation)
     return replace(draft, hazard=hazard, input_hashes=frozen_mapping(hashes),
-                   inputs_sha256=inputs_digest(hashes, config))
+                   inputs_sha256=inputs_digest(hashes, config), group_terms=group_terms)
 
 
 def with_hazard(inputs, model, hazard):

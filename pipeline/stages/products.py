@@ -91,6 +91,8 @@ class RunInputs:
     hazard_model : quakefolio.pipeline.stages.hazard.HazardModel or None
         Compute mode: source and ground-motion logic tree, sites' Vs30, and (after the
         hazard stage) branch curves, statistics and disaggregation.
+    group_terms : quakefolio.core.events.programme.GroupTerms or None
+        ``[programme] group_terms_file`` with the exposure's ``terms_group`` column.
     """
 
     config: object
@@ -103,6 +105,7 @@ class RunInputs:
     inputs_sha256: str
     warnings: tuple = ()
     hazard_model: object = None
+    group_terms: object = None  # quakefolio.core.events.programme.GroupTerms or None
 
 
 @dataclass(frozen=True)

@@ -367,7 +367,8 @@ def rerun_events(em, alternative):
     entry = (alternative.new_class, extra, em.ims.index(alternative.dss.im), alternative.dss, usites, pair.ravel())
     alt = dataclasses.replace(em, value=value, deductible=np.concatenate([em.deductible, em.deductible[changed]]),
                               limit=np.concatenate([em.limit, em.limit[changed]]), classes=list(em.classes) + [entry],
-                              group=ps.extended_group(em, changed, alternative.new_class))
+                              group=ps.extended_group(em, changed, alternative.new_class),
+                              group_terms=None)  # the what-if compares building losses; no programme terms
     chunks = sorted((ps.event_chunk(alt, c, independent=False) for c in ps.event_chunks(alt)), key=lambda r: r.start)
     gu = np.concatenate([c.ground_up for c in chunks]) if chunks else np.zeros(0)
     net = np.concatenate([c.net for c in chunks]) if chunks else np.zeros(0)
