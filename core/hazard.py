@@ -16,6 +16,14 @@ optionally truncated symmetrically at :math:`\pm n` and renormalised, so that
 clipped to [0, 1].  With :math:`\sigma_r = 0` the exceedance is the step
 :math:`\mathbf{1}[\ln x < \mu_r]`.
 
+Disaggregation (Bazzurro & Cornell 1999) splits the rate of exceeding a target level
+:math:`x^*` into the contributions :math:`\nu_r P(IM > x^* \mid r)` of each (site,
+rupture) pair, binned by magnitude, distance and epsilon; the mean magnitude, distance
+and epsilon are the exact contribution-weighted means over the pairs (not bin centres).
+Epsilon is the one needed to reach the target level,
+:math:`\varepsilon^* = (\ln x^* - \mu_{\ln Y})/\sigma_{\ln Y}` with the model's median and
+standard deviation for the pair (Bazzurro & Cornell 1999; McGuire 1995).
+
 Work is organised as flat *pairs* (site, rupture) that survive the distance cut-off,
 sorted by site, so that one vectorised pass evaluates every pair and level and a
 segmented sum (``np.add.reduceat``) gathers the curves per site.
@@ -25,6 +33,8 @@ References
 Cornell, C.A. (1968). Engineering seismic risk analysis. BSSA 58(5), 1583-1606.
 McGuire, R.K. (2004). Seismic Hazard and Risk Analysis. EERI Monograph MNO-10.
 Bazzurro, P., Cornell, C.A. (1999). Disaggregation of seismic hazard. BSSA 89(2), 501-520.
+McGuire, R.K. (1995). Probabilistic seismic hazard analysis and design earthquakes: closing
+the loop. BSSA 85(5), 1275-1284.
 """
 from __future__ import annotations
 
@@ -45,7 +55,9 @@ __all__ = [
     "weighted_sum",
     "weighted_fractiles",
     "DisaggBins",
+    "DISAGG_MOMENTS",
     "disaggregation_from_pairs",
+    "disaggregation_means",
     "disaggregation_summary",
     "uniform_hazard_targets",
     "compute_site_hazard",
@@ -262,8 +274,15 @@ class DisaggBins:
         return (len(self.mag_edges) - 1, len(self.dist_edges) - 1, len(self.eps_edges) - 1)
 
 
+#: Columns of the disaggregation moments (last axis), each summed over (site, rupture) pairs
+#: with the pair's contribution :math:`w = \nu_r P(IM > x^* \mid r)` [1/yr]: the rate, the
+#: rate-weighted magnitude [Mw/yr], Rrup [km/yr], the rate of pairs with a finite epsilon
+#: and their rate-weighted epsilon [1/yr].
+DISAGG_MOMENTS = ("rate", "rate_mag", "rate_dist_km", "rate_eps_finite", "rate_eps")
+
+
 def disaggregation_from_pairs(ln_targets, ln_median, sigma, pair_rate, pair_site, mag, dist_km, bins, n_sites,
-                              truncation_sigma=None):
+                              truncation_sigma=None, *, moments=False):
     r"""Exceedance-rate contributions by (M, R, epsilon) bin at target levels.
 
     Parameters
@@ -273,23 +292,38 @@ def disaggregation_from_pairs(ln_targets, ln_median, sigma, pair_rate, pair_site
     ln_median, sigma, pair_rate, pair_site, mag, dist_km : ndarray, shape (n_pairs,)
     bins : DisaggBins
     n_sites : int
+    truncation_sigma : float or None
+    moments : bool
+        Also return the exact rate-weighted sums (:data:`DISAGG_MOMENTS`).
 
     Returns
     -------
-    ndarray, shape (n_sites, n_targets, n_mag, n_dist, n_eps) [1/yr]
-        Each pair contributes :math:`\nu_r P(IM > x^* \mid r)` to the bin of its magnitude,
-        distance and :math:`\varepsilon^* = (\ln x^* - \mu_r)/\sigma_r` (Bazzurro & Cornell
-        1999); pairs outside the magnitude or distance edges go to the nearest end bin.
+    contrib : ndarray, shape (n_sites, n_targets, n_mag, n_dist, n_eps) [1/yr]
+        Each pair contributes :math:`w = \nu_r P(IM > x^* \mid r)` to the bin of its
+        magnitude, distance and :math:`\varepsilon^* = (\ln x^* - \mu_r)/\sigma_r`, the
+        epsilon needed to reach the target (Bazzurro & Cornell 1999); pairs outside the
+        magnitude or distance edges go to the nearest end bin.
+    moments : ndarray, shape (n_sites, n_targets, 5), if ``moments``
+        :math:`\sum w`, :math:`\sum w M`, :math:`\sum w R`, and over the pairs with a
+        finite :math:`\varepsilon^*` (nonzero sigma) :math:`\sum w` and
+        :math:`\sum w \varepsilon^*`; :func:`disaggregation_means` turns them into the
+        exact means.
+
+    Notes
+    -----
+    Vectorised over pairs: one segmented sum (``np.bincount``) per target level.
     """
     n_t = ln_targets.shape[1]
     nm, nr, ne = bins.shape
     out = np.zeros((n_sites, n_t, nm, nr, ne))
+    mom = np.zeros((n_sites, n_t, len(DISAGG_MOMENTS)))
     if len(ln_median) == 0:
-        return out
+        return (out, mom) if moments else out
     im = np.clip(np.searchsorted(bins.mag_edges, mag, side="right") - 1, 0, nm - 1)
     ir = np.clip(np.searchsorted(bins.dist_edges, dist_km, side="right") - 1, 0, nr - 1)
     base = (im * nr + ir) * ne
     out_flat = out.reshape(-1)  # a view: out is contiguous
+    mom_rows = mom.reshape(-1, len(DISAGG_MOMENTS))  # a view: (site, target) rows
     for t in range(n_t):
         target = ln_targets[pair_site, t]
         ok = np.isfinite(target)
@@ -303,24 +337,64 @@ def disaggregation_from_pairs(ln_targets, ln_median, sigma, pair_rate, pair_site
         ie = np.clip(np.searchsorted(bins.eps_edges, eps, side="right") - 1, 0, ne - 1)
         row = pair_site[ok] * n_t + t
         cell = row * (nm * nr * ne) + base[ok] + ie
-        out_flat += np.bincount(cell, weights=p * pair_rate[ok], minlength=out_flat.size)
-    return out
+        w = p * pair_rate[ok]
+        out_flat += np.bincount(cell, weights=w, minlength=out_flat.size)
+        if moments:
+            finite = np.isfinite(eps)
+            w_eps = np.where(finite, w, 0.0)
+            for c, weights in enumerate((w, w * mag[ok], w * dist_km[ok], w_eps,
+                                         w_eps * np.where(finite, eps, 0.0))):
+                mom_rows[:, c] += np.bincount(row, weights=weights, minlength=mom_rows.shape[0])
+    return (out, mom) if moments else out
 
 
-def disaggregation_summary(contrib, bins):
-    """Shares, mean and modal (M, R, epsilon) from binned contributions.
+def disaggregation_means(moments):
+    r"""Exact mean magnitude [Mw], distance [km] and epsilon [-] from disaggregation moments.
+
+    Parameters
+    ----------
+    moments : ndarray, shape (..., 5)
+        Rate-weighted sums (:data:`DISAGG_MOMENTS`), e.g. from
+        :func:`disaggregation_from_pairs`, summed over ruptures and logic-tree branches
+        with their weights.
+
+    Returns
+    -------
+    mean_m, mean_r, mean_eps : ndarray, shape (...)
+        :math:`\bar M = \sum w M / \sum w` (likewise :math:`\bar R`;
+        :math:`\bar\varepsilon` over the pairs with a finite epsilon), with
+        :math:`w = \nu_r P(IM > x^* \mid r)`: the means of the disaggregation
+        distribution of the model itself (Bazzurro & Cornell 1999), NaN where nothing
+        contributes.
+    """
+    m = np.asarray(moments, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_m = np.where(m[..., 0] > 0, m[..., 1] / m[..., 0], np.nan)
+        mean_r = np.where(m[..., 0] > 0, m[..., 2] / m[..., 0], np.nan)
+        mean_e = np.where(m[..., 3] > 0, m[..., 4] / m[..., 3], np.nan)
+    return mean_m, mean_r, mean_e
+
+
+def disaggregation_summary(contrib, bins, moments=None):
+    r"""Shares, mean and modal (M, R, epsilon) from binned contributions.
 
     Parameters
     ----------
     contrib : ndarray, shape (..., n_mag, n_dist, n_eps) [1/yr]
+    bins : DisaggBins
+    moments : ndarray, shape (..., 5), optional
+        Exact rate-weighted sums (:func:`disaggregation_from_pairs` with ``moments=True``).
 
     Returns
     -------
     shares : ndarray, same shape, summing to 1 over the last three axes (0 where the
         total is 0)
     mean_m, mean_r, mean_eps, mode_m, mode_r, mode_eps : ndarray, shape (...)
-        Means use bin centres (open-ended epsilon bins are taken 0.5 wide); modes are the
-        centres of the single most contributing (M, R, epsilon) cell.
+        Means: exact (:func:`disaggregation_means`) when ``moments`` are given, else from
+        bin centres (open-ended epsilon bins are taken 0.5 wide), an approximation that
+        converges to the exact means as the bins get finer.  Modes are the centres of
+        the single most contributing (M, R, epsilon) cell.  Epsilon is the one needed to
+        reach the target level, :math:`(\ln x^* - \mu_{\ln Y})/\sigma_{\ln Y}`.
     """
     total = contrib.sum(axis=(-3, -2, -1), keepdims=True)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -331,9 +405,12 @@ def disaggregation_summary(contrib, bins):
     e[0] = e[1] - 0.5 if np.isinf(e[0]) else e[0]
     e[-1] = e[-2] + 0.5 if np.isinf(e[-1]) else e[-1]
     ec = 0.5 * (e[:-1] + e[1:])
-    mean_m = np.einsum("...ijk,i->...", shares, mc)
-    mean_r = np.einsum("...ijk,j->...", shares, rc)
-    mean_e = np.einsum("...ijk,k->...", shares, ec)
+    if moments is None:
+        mean_m = np.einsum("...ijk,i->...", shares, mc)
+        mean_r = np.einsum("...ijk,j->...", shares, rc)
+        mean_e = np.einsum("...ijk,k->...", shares, ec)
+    else:
+        mean_m, mean_r, mean_e = disaggregation_means(moments)
     flat = shares.reshape(shares.shape[:-3] + (-1,))
     idx = np.argmax(flat, axis=-1)
     i, j, k = np.unravel_index(idx, shares.shape[-3:])
@@ -440,7 +517,8 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
 
 
 def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_weights, ims, ln_targets, bins, *,
-                           truncation_sigma=None, max_distance_km=200.0, region="global", site_block=64, ref=None):
+                           truncation_sigma=None, max_distance_km=200.0, region="global", site_block=64, ref=None,
+                           moments=False):
     r"""Weighted (M, R, epsilon) contributions [1/yr] at target levels per site and IM.
 
     Parameters
@@ -451,23 +529,32 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
         Weights of ``gmms`` (contributions are summed with these weights).
     Others as :func:`compute_site_hazard`.
 
+    moments : bool
+        Also return the weighted exact moments (:data:`DISAGG_MOMENTS`).
+
     Returns
     -------
-    ndarray, shape (n_ims, n_sites, n_targets, n_mag, n_dist, n_eps) [1/yr]
+    contrib : ndarray, shape (n_ims, n_sites, n_targets, n_mag, n_dist, n_eps) [1/yr]
         Distance is Rrup. See :func:`disaggregation_from_pairs` (Bazzurro & Cornell 1999).
+    moments : ndarray, shape (n_ims, n_sites, n_targets, 5), if ``moments``
+        Rate-weighted sums over every (site, rupture) pair and model, with the model
+        weights (:func:`disaggregation_means` gives the exact means).
     """
     n_t = ln_targets.shape[-1]
     out = np.zeros((len(ims), len(site_lon), n_t) + bins.shape)
+    mom = np.zeros((len(ims), len(site_lon), n_t, len(DISAGG_MOMENTS)))
     for blk, site, rup, starts, owners, inp, d, rate in _pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for gmm, w in zip(gmms, gmm_weights):
             res = gmm.evaluate(inp, list(ims))
             for i in range(len(ims)):
-                out[i, blk] += w * disaggregation_from_pairs(
+                c, m = disaggregation_from_pairs(
                     ln_targets[i, blk], res.ln_median[i], res.sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
-                    bins, n_blk, truncation_sigma)
-    return out
+                    bins, n_blk, truncation_sigma, moments=True)
+                out[i, blk] += w * c
+                mom[i, blk] += w * m
+    return (out, mom) if moments else out
 
 
 # --- event-based ground motion: the same pairs and GMM inputs as the classical engine ----------

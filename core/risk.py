@@ -45,7 +45,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.special import log_ndtr, ndtr, ndtri
 
-from quakefolio.core.curves import rate_at_im, rate_from_prob, validate_curve
+from quakefolio.core.curves import rate_from_prob, validate_curve
 
 __all__ = [
     "lognormal_fragility",
@@ -201,9 +201,12 @@ def damage_state_rates(im_levels, rates, medians, betas, tail="extrapolate", *,
     envelope : bool
         If True, damage state :math:`j` uses the upper envelope
         :math:`\max_{l \ge j} P(DS \ge l \mid x)` so that crossing curves still give
-        ordered probabilities.  The envelope is :math:`\Phi(\max_l z_l)`; each segment
-        is split at the crossing intensities so the integral stays exact inside the
-        tabulated range (the tails use the curve dominant at the end level).
+        ordered probabilities.  The envelope is :math:`\Phi(\max_{l \ge j} z_l)`; every
+        segment of the curve and both extrapolated tails are split at the crossing
+        intensities that fall inside them (crossings outside a piece add nothing), so
+        the integral is exact everywhere; the top level and its rate are used as
+        tabulated (the truncated top mass is :math:`\lambda_n` times the envelope at
+        :math:`x_n`).
     diagnostics : bool
         Also return the extrapolated tail shares.
 
@@ -241,41 +244,87 @@ def damage_state_rates(im_levels, rates, medians, betas, tail="extrapolate", *,
 
 
 def _envelope_parts(x, lam, ln_theta, b):
-    """Risk-integral parts for the upper-envelope fragility (see damage_state_rates)."""
+    r"""Risk-integral parts for the upper-envelope fragility (see damage_state_rates).
+
+    The integration range is cut into pieces, each under one power law (or one
+    zero-ending linear segment) of the curve: the lower tail :math:`(-\infty, x_0]`, the
+    tabulated segments, the upper tail :math:`[x_{n-1}, \infty)`.  Every piece is split
+    further at every pairwise crossing of the fragility curves, clipped into the piece;
+    between two break points the envelope is one lognormal curve, so the exact
+    per-segment integral applies, evaluated on the piece's own power law (no
+    re-interpolation, the levels stay exact).  Sub-pieces of zero width (crossings
+    outside a piece, parallel curves) contribute exactly 0.
+    """
     n_ds = ln_theta.shape[-1]
     batch = np.broadcast_shapes(x.shape[:-1], ln_theta.shape[:-1])
     lnx = np.log(x)
-    # all pairwise crossings, clipped into the tabulated range (harmless duplicates)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ln_lam = np.log(lam)
+        k = (ln_lam[..., :-1] - ln_lam[..., 1:]) / np.diff(lnx, axis=-1)
+    cat = lambda *parts: np.concatenate(parts, axis=-1)  # noqa: E731
+    inf = np.full(lnx.shape[:-1] + (1,), np.inf)
+    # pieces p = 0 (lower tail), 1..n-1 (segments), n (upper tail): bounds, anchor, law
+    lo = cat(-inf, lnx)
+    hi = cat(lnx, inf)
+    ax = cat(lnx[..., :1], lnx[..., :-1], lnx[..., -1:])
+    al = cat(lam[..., :1], lam[..., :-1], lam[..., -1:])
+    nl = cat(lam[..., 1:2], lam[..., 1:], lam[..., -1:])  # rate at the piece's other end
+    kp = cat(k[..., :1], k, k[..., -1:])
+    dp = cat(np.diff(lnx, axis=-1)[..., :1], np.diff(lnx, axis=-1), np.diff(lnx, axis=-1)[..., -1:])
+    # all pairwise crossings (ln IM); none where parallel (equal betas)
     ii, jj = np.triu_indices(n_ds, k=1)
     with np.errstate(divide="ignore", invalid="ignore"):
         cross = (b[..., jj] * ln_theta[..., ii] - b[..., ii] * ln_theta[..., jj]) / (b[..., jj] - b[..., ii])
-    cross = np.where(np.isfinite(cross), cross, lnx[..., :1])
-    cross = np.clip(np.broadcast_to(cross, batch + cross.shape[-1:]), lnx[..., :1], lnx[..., -1:])
-    grid = np.sort(np.concatenate([np.broadcast_to(lnx, batch + lnx.shape[-1:]), cross], axis=-1), axis=-1)
-    xb = np.broadcast_to(x, batch + x.shape[-1:])
-    lb = np.broadcast_to(lam, batch + lam.shape[-1:])
-    lam_grid = rate_at_im(np.exp(grid), xb, lb)
-    mid = 0.5 * (grid[..., :-1] + grid[..., 1:])  # (B, m-1)
-    z_mid = (mid[..., None, :] - ln_theta[..., :, None]) / b[..., :, None]  # (B, n_ds, m-1)
-    # for state j the envelope takes the maximum over l >= j: reverse cumulative argmax
+    cross = np.where(np.isfinite(cross), cross, -np.inf)
+    cross = np.broadcast_to(cross, batch + cross.shape[-1:])[..., None, :]  # (B, 1, P)
+    piece = lambda a: np.broadcast_to(a, batch + a.shape[-1:])[..., :, None]  # noqa: E731  (B, n+1, 1)
+    lo_b, hi_b = piece(lo), piece(hi)
+    pts = np.sort(cat(lo_b, np.clip(cross, lo_b, hi_b), hi_b), axis=-1)  # (B, n+1, P+2)
+    u, v = pts[..., :-1], pts[..., 1:]  # (B, n+1, P+1)
+    with np.errstate(invalid="ignore"):
+        rep = np.where(np.isfinite(u) & np.isfinite(v), 0.5 * (u + v), np.where(np.isfinite(v), v - 1.0, u + 1.0))
+    # the curve dominant in each sub-piece for state j: argmax of z_l over l >= j
+    z_rep = (rep[..., None] - ln_theta[..., None, None, :]) / b[..., None, None, :]  # (B, n+1, P+1, l)
     upper_mask = np.triu(np.ones((n_ds, n_ds), dtype=bool))  # [j, l] = l >= j
-    zz = np.where(upper_mask[:, :, None], z_mid[..., None, :, :], -np.inf)  # (B, j, l, m-1)
-    dom = np.argmax(zz, axis=-2)  # (B, n_ds, m-1)
-    th_seg = np.take_along_axis(np.broadcast_to(ln_theta[..., :, None], batch + (n_ds, dom.shape[-1])), dom, axis=-2)
-    b_seg = np.take_along_axis(np.broadcast_to(b[..., :, None], batch + (n_ds, dom.shape[-1])), dom, axis=-2)
-    seg = _segment_contributions(grid[..., None, :], lam_grid[..., None, :], th_seg, b_seg)
-    inner = seg.sum(axis=-1)
-    # tails: the curve dominant at each end level
-    def _at(lnx_end):
-        z = (lnx_end[..., None] - ln_theta) / b  # (B, n_ds)
-        zz_end = np.where(upper_mask, z[..., None, :], -np.inf)
-        d = np.argmax(zz_end, axis=-1)
-        return (np.take_along_axis(np.broadcast_to(ln_theta, batch + (n_ds,)), d, axis=-1),
-                np.take_along_axis(np.broadcast_to(b, batch + (n_ds,)), d, axis=-1))
-    th_lo, b_lo = _at(np.broadcast_to(lnx[..., 0], batch))
-    th_hi, b_hi = _at(np.broadcast_to(lnx[..., -1], batch))
-    low, high_ext, high_trunc = _tails(lnx[..., None, :], lam[..., None, :], th_lo, b_lo, th_hi, b_hi)
+    zz = np.where(upper_mask, z_rep[..., None, :], -np.inf)  # (B, n+1, P+1, j, l)
+    dom = np.moveaxis(np.argmax(zz, axis=-1), -1, -3)  # (B, j, n+1, P+1)
+    full = batch + (n_ds,) + dom.shape[-2:]
+    th_d = np.take_along_axis(np.broadcast_to(ln_theta[..., :, None, None], full), dom, axis=-3)
+    b_d = np.take_along_axis(np.broadcast_to(b[..., :, None, None], full), dom, axis=-3)
+    law = [piece(a)[..., None, :, :] for a in (ax, al, nl, kp, dp)]  # (B, 1, n+1, 1)
+    contrib = _subpiece_integral(u[..., None, :, :], v[..., None, :, :], *law, th_d, b_d).sum(axis=-1)
+    low, inner, high_ext = contrib[..., 0], contrib[..., 1:-1].sum(axis=-1), contrib[..., -1]
+    # the top-level mass under truncation: envelope at the top level itself
+    z_top = (lnx[..., -1:] - ln_theta) / b  # (B, l)
+    env_top = np.max(np.where(upper_mask, z_top[..., None, :], -np.inf), axis=-1)  # (B, j)
+    lam_top = lam[..., -1:]
+    high_trunc = np.where(lam_top > 0, lam_top * ndtr(env_top), 0.0)
     return inner, low, high_ext, high_trunc
+
+
+def _subpiece_integral(u, v, a, la, lb, k, delta, ln_theta, beta):
+    r"""Exact :math:`\int_u^v \Phi(z)\,|d\lambda|` on part of one piece of the hazard curve [1/yr].
+
+    The piece follows :math:`\ln\lambda(s) = \ln\lambda_a - k(s - a)` in :math:`s = \ln x`
+    (power law, where its other end rate ``lb`` is positive) or falls linearly in
+    :math:`s` to zero over ``delta`` (where ``lb`` is 0 and ``la`` positive); otherwise
+    it contributes nothing.  ``u`` may be :math:`-\infty` and ``v`` :math:`+\infty` (tails;
+    :math:`\lambda\Phi` vanishes there); ``v <= u`` gives 0.  Same closed forms as
+    :func:`_segment_contributions` (module notes), with the end rates taken on the
+    piece's law.
+    """
+    zu = (u - ln_theta) / beta
+    zv = (v - ln_theta) / beta
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        ln_la = np.log(la)
+        end_u = np.where(np.isneginf(u), 0.0, np.exp(ln_la - k * (u - a) + log_ndtr(zu)))
+        end_v = np.where(np.isposinf(v), 0.0, np.exp(ln_la - k * (v - a) + log_ndtr(zv)))
+        power = end_u - end_v + _power_term(ln_la, a, k, ln_theta, beta, _log_ndtr_diff(zu + k * beta, zv + k * beta))
+        g_u = np.where(np.isneginf(zu), 0.0, _g(zu))
+        linear = la * beta / delta * (_g(zv) - g_u)
+    out = np.where(lb > 0, power, np.where(la > 0, linear, 0.0))
+    out = np.where(v > u, out, 0.0)
+    return np.maximum(out, 0.0)  # remove round-off below zero
 
 
 def risk_disaggregation(im_levels, rates, medians, betas, tail="extrapolate"):

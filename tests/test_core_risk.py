@@ -3,6 +3,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 from scipy import integrate, stats
+from scipy.special import ndtr
 
 from quakefolio.core.curves import rate_at_im, rate_from_prob
 from quakefolio.core.risk import (
@@ -142,3 +143,150 @@ def test_invalid_fragility_inputs_are_loud():
         damage_state_rates(LEVELS, lam, [-0.2], [0.5])
     with pytest.raises(ValueError, match="tail must be one of"):
         damage_state_rates(LEVELS, lam, [0.2], [0.5], tail="clip")
+
+
+# --- the upper envelope for crossing curves, against quadrature -------------------------------------
+#
+# Reference: the rate of reaching or exceeding state j is the risk integral of the enveloped
+# fragility, lambda_j = int max_{l >= j} Phi((ln x - ln theta_l)/beta_l) |d lambda(x)| (Cornell et al.
+# 2002 with the envelope of damage_state_rates), on the same log-log interpolated hazard curve (power
+# law between levels, linear in ln x on a segment ending at rate 0, end power laws continued into the
+# tails under "extrapolate", the top-level mass lambda_n P(x_n) under "truncate").  Evaluated by
+# scipy.integrate.quad (QUADPACK QAGS: adaptive 21-point Gauss-Kronrod with Wynn epsilon
+# extrapolation; QAGI on the infinite tails), in u = ln x, with the interval cut at every crossing of
+# two fragility curves so that each quad call integrates a smooth function.
+
+def _density(u, i, lnx, lam):
+    """-d lambda / d ln x on piece i of the curve (i = -1 below the range, n-1 above it)."""
+    n = len(lnx)
+    seg = min(max(i, 0), n - 2)
+    la, lb = lam[seg], lam[seg + 1]
+    if i >= n - 1 and lam[-1] == 0:
+        return 0.0
+    if lb > 0:
+        k = np.log(la / lb) / (lnx[seg + 1] - lnx[seg])
+        return k * la * np.exp(-k * (u - lnx[seg]))
+    return la / (lnx[seg + 1] - lnx[seg]) if la > 0 else 0.0
+
+
+def _envelope_by_quadrature(levels, lam, medians, betas, tail):
+    lnx = np.log(levels)
+    ln_m, b = np.log(medians), np.asarray(betas, dtype=float)
+    n_ds = len(ln_m)
+    cuts = []
+    for i in range(n_ds):
+        for j in range(i + 1, n_ds):
+            if b[i] != b[j]:
+                cuts.append((b[j] * ln_m[i] - b[i] * ln_m[j]) / (b[j] - b[i]))
+    cuts = np.sort(cuts)
+
+    def env(u, j):
+        return ndtr(np.max((u - ln_m[j:]) / b[j:]))  # standard normal CDF
+
+    def piece(j, i, lo, hi):
+        inner = [c for c in cuts if lo < c < hi]
+        edges = [lo, *inner, hi]
+        return sum(integrate.quad(lambda u: env(u, j) * _density(u, i, lnx, lam), a, c, epsabs=0,
+                                  epsrel=1e-12, limit=200)[0] for a, c in zip(edges[:-1], edges[1:]))
+
+    out = []
+    for j in range(n_ds):
+        total = sum(piece(j, i, lnx[i], lnx[i + 1]) for i in range(len(lnx) - 1))
+        if tail == "extrapolate":
+            total += piece(j, -1, -np.inf, lnx[0]) + piece(j, len(lnx) - 1, lnx[-1], np.inf)
+        else:
+            total += lam[-1] * env(lnx[-1], j)
+        out.append(total)
+    return np.array(out)
+
+
+# 4 states: states 1-2 parallel (equal betas, no crossing); crossings inside the levels
+# (0.015, 0.12, 2.08 g) and above them (78 g, 1113 g) (invented)
+CROSS_INSIDE_AND_ABOVE = (np.array([0.08, 0.25, 0.6, 1.4]), np.array([0.5, 0.5, 1.1, 0.35]))
+# 4 states like the demo library (beta grows with severity): every crossing far below the levels
+CROSS_BELOW = (np.array([0.09, 0.18, 0.34, 0.58]), np.array([0.7, 0.72, 0.75, 0.78]))
+# 3 states: crossings inside the levels (0.016 g, 4.8 g) and one below them (7e-7 g) (invented)
+CROSS_THREE = (np.array([0.05, 0.3, 1.2]), np.array([0.35, 0.9, 0.45]))
+
+
+def test_envelope_cases_cross_where_they_claim():
+    lo, hi = LEVELS[0], LEVELS[-1]
+
+    def where(m, b):
+        x = [lognormal_crossing_im(m[i], b[i], m[j], b[j]) for i in range(len(m)) for j in range(i + 1, len(m))]
+        return {("none" if not np.isfinite(v) else "below" if v < lo else "above" if v > hi else "inside")
+                for v in x}
+    assert where(*CROSS_INSIDE_AND_ABOVE) == {"none", "inside", "above"}
+    assert where(*CROSS_BELOW) == {"below"}
+    assert where(*CROSS_THREE) == {"inside", "below"}
+
+
+@pytest.mark.parametrize("tail", ["extrapolate", "truncate"])
+@pytest.mark.parametrize("case", [CROSS_INSIDE_AND_ABOVE, CROSS_BELOW, CROSS_THREE],
+                         ids=["inside_and_above", "below", "three_states"])
+def test_envelope_matches_quadrature(case, tail):
+    m, b = case
+    lam = curved_hazard(LEVELS)
+    got = damage_state_rates(LEVELS, lam, m, b, tail=tail, envelope=True)
+    assert np.all(np.isfinite(got))
+    assert np.all(np.diff(got) <= 0)  # the envelope keeps the states ordered
+    assert_allclose(got, _envelope_by_quadrature(LEVELS, lam, m, b, tail), rtol=1e-8)
+    # the envelope never lowers a state's rate, and the most severe state is never enveloped
+    plain = damage_state_rates(LEVELS, lam, m, b, tail=tail)
+    assert np.all(got >= plain * (1 - 1e-12))
+    assert got[-1] == pytest.approx(plain[-1], rel=1e-12)
+
+
+@pytest.mark.parametrize("tail", ["extrapolate", "truncate"])
+def test_envelope_on_a_curve_ending_at_zero_rate(tail):
+    # the last levels carry rate 0: one segment linear in ln x, then nothing (package convention)
+    m, b = CROSS_INSIDE_AND_ABOVE
+    lam = curved_hazard(LEVELS)
+    lam[-4:] = 0.0
+    got = damage_state_rates(LEVELS, lam, m, b, tail=tail, envelope=True)
+    assert_allclose(got, _envelope_by_quadrature(LEVELS, lam, m, b, tail), rtol=1e-8)
+
+
+@pytest.mark.parametrize("tail", ["extrapolate", "truncate"])
+def test_envelope_without_crossings_equals_the_plain_integral(tail):
+    # equal betas: the curves never cross, the envelope is each state's own curve
+    m, b = np.array([0.1, 0.3, 0.7, 1.6]), np.full(4, 0.6)
+    lam = curved_hazard(LEVELS)
+    assert_allclose(damage_state_rates(LEVELS, lam, m, b, tail=tail, envelope=True),
+                    damage_state_rates(LEVELS, lam, m, b, tail=tail), rtol=1e-12)
+    # crossings only far outside the levels and tails truncated: also the plain integral
+    m, b = CROSS_BELOW
+    if tail == "truncate":
+        assert_allclose(damage_state_rates(LEVELS, lam, m, b, tail=tail, envelope=True),
+                        damage_state_rates(LEVELS, lam, m, b, tail=tail), rtol=1e-12)
+
+
+def test_envelope_crossing_on_a_level_and_the_top_level_is_exact():
+    # two curves crossing exactly at a tabulated level (a zero-width piece on either side)
+    x_star, z_star = LEVELS[17], -0.4
+    b = np.array([0.4, 0.9])
+    m = x_star * np.exp(-z_star * b)
+    lam = curved_hazard(LEVELS)
+    for tail in ("extrapolate", "truncate"):
+        got = damage_state_rates(LEVELS, lam, m, b, tail=tail, envelope=True)
+        assert_allclose(got, _envelope_by_quadrature(LEVELS, lam, m, b, tail), rtol=1e-8)
+    # a curve tabulated up to a level whose log does not round-trip through exp: the top rate is
+    # counted once, not again as a sliver above the top level
+    levels = np.array([0.01, 0.1, 0.7, 3.0])
+    assert np.exp(np.log(levels[-1])) > levels[-1]  # rounds past the top level
+    lam = curved_hazard(levels)
+    m, b = CROSS_INSIDE_AND_ABOVE
+    got = damage_state_rates(levels, lam, m, b, tail="truncate", envelope=True)
+    assert_allclose(got, _envelope_by_quadrature(levels, lam, m, b, "truncate"), rtol=1e-8)
+
+
+def test_envelope_broadcasts_over_curves_and_classes():
+    lam = np.vstack([curved_hazard(LEVELS), 0.3 * curved_hazard(LEVELS)])[:, None, :]  # (2, 1, n)
+    medians = np.stack([CROSS_INSIDE_AND_ABOVE[0], CROSS_BELOW[0]])  # (2, 4)
+    betas = np.stack([CROSS_INSIDE_AND_ABOVE[1], CROSS_BELOW[1]])
+    got = damage_state_rates(LEVELS, lam, medians, betas, envelope=True)
+    assert got.shape == (2, 2, 4)
+    for c in range(2):
+        for f in range(2):
+            assert_allclose(got[c, f], damage_state_rates(LEVELS, lam[c, 0], medians[f], betas[f], envelope=True),
+                            rtol=1e-13)

@@ -13,12 +13,17 @@ TABLES = {
     "disaggregation": dict(
         description="Share of the mean-hazard exceedance rate at each return-period level by magnitude, "
                     "distance (Rrup) and epsilon bin (shares above 1e-6 listed; all shares sum to 1 per site, "
-                    "IM and return period).",
+                    "IM and return period). Epsilon is the one needed to reach the target level: "
+                    "(ln im_level - mean ln IM) / sigma ln IM of the ground-motion model for the rupture and site.",
         units={"return_period_yr": "yr", "im_level": "g", "mag_lo": "Mw", "mag_hi": "Mw", "dist_lo_km": "km",
                "dist_hi_km": "km", "eps_lo": "-", "eps_hi": "-", "share": "-"},
     ),
     "disaggregation_summary": dict(
-        description="Mean and modal magnitude, distance (Rrup) and epsilon of the disaggregation.",
+        description="Mean and modal magnitude, distance (Rrup) and epsilon of the disaggregation. Means are exact: "
+                    "weighted by each (rupture, site) pair's rate of exceeding the target level (rupture rate x "
+                    "P(IM > im_level)) over every pair and logic-tree branch, not taken from bin centres; modes "
+                    "are the centres of the most contributing bin. Epsilon is the one needed to reach the target "
+                    "level: (ln im_level - mean ln IM) / sigma ln IM of the ground-motion model.",
         units={"return_period_yr": "yr", "im_level": "g", "mean_mag": "Mw", "mean_dist_km": "km", "mean_eps": "-",
                "mode_mag": "Mw", "mode_dist_km": "km", "mode_eps": "-"},
     ),

@@ -15,8 +15,8 @@ import pandas as pd
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.gmm import get_gmm
 from quakefolio.core.hazard import (
-    DisaggBins, compute_disaggregation, compute_site_hazard, disaggregation_summary, weighted_fractiles,
-    weighted_mean,
+    DISAGG_MOMENTS, DisaggBins, compute_disaggregation, compute_site_hazard, disaggregation_summary,
+    weighted_fractiles, weighted_mean,
 )
 from quakefolio.core.ims import im_period
 from quakefolio.core.sites import exact_sites, grid_reference, snap_sites
@@ -78,6 +78,9 @@ class HazardModel:
         ``mean`` and fractiles (``p16`` ...), once computed.
     disagg : ndarray (n_im, n_sites, n_rp, n_mag, n_dist, n_eps) [1/yr] or None
         Disaggregation, once computed.
+    disagg_moments : ndarray (n_im, n_sites, n_rp, 5) or None
+        Exact rate-weighted sums over (site, rupture) pairs for the mean magnitude,
+        distance and epsilon (:data:`quakefolio.core.hazard.DISAGG_MOMENTS`), once computed.
     bins : DisaggBins
     digest : str
         Content digest of everything a site's hazard depends on except the site.
@@ -99,6 +102,7 @@ class HazardModel:
     disagg: np.ndarray | None = None
     bins: DisaggBins = field(default_factory=DisaggBins.default)
     digest: str = ""
+    disagg_moments: np.ndarray | None = None
 
 
 def build_sites(exposure, spacing_km, default_vs30):
@@ -225,17 +229,23 @@ def _site_keys(model, hazard, lo, hi, *extra):
                    float(model.site_vs30[i]), *extra) for i in range(lo, hi)]
 
 
-def _cached_rows(cache, stage, keys, shape, name):
-    """Rows of ``keys`` found in the cache (filled into a zero array of ``shape``) and the missing row numbers."""
-    out = np.zeros(shape)
+def _cached_rows(cache, stage, keys, shape, name, *also):
+    """Rows of ``keys`` found in the cache (filled into a zero array of ``shape``) and the missing row numbers.
+
+    ``also``: further ``(name, shape)`` entries of the same cache entries, returned as
+    further arrays after the first (an entry lacking one of them counts as missing).
+    """
+    wanted = [(name, shape), *also]
+    outs = [np.zeros(sh) for _, sh in wanted]
     missing = []
     for j, key in enumerate(keys):
         hit = cache.get(stage, key) if cache is not None else None
-        if hit is not None and hit[name].shape == out[j].shape:
-            out[j] = hit[name]
+        if hit is not None and all(n in hit and hit[n].shape == o[j].shape for (n, _), o in zip(wanted, outs)):
+            for (n, _), o in zip(wanted, outs):
+                o[j] = hit[n]
         else:
             missing.append(j)
-    return out, missing
+    return (*outs, missing)
 
 
 def hazard_block(model, hazard, block, cache=None):
@@ -363,7 +373,8 @@ def disagg_block(model, hazard, return_periods, block, cache=None):
     """Weighted (M, R, epsilon) contributions at the mean curve's return-period levels.
 
     Cached per site (the key adds the return periods, the bins and the site's mean
-    curve); computed with :func:`quakefolio.core.hazard.compute_disaggregation`.
+    curve); computed with :func:`quakefolio.core.hazard.compute_disaggregation`, with the
+    exact rate-weighted moments of magnitude, distance and epsilon (for the means).
 
     Parameters
     ----------
@@ -377,30 +388,37 @@ def disagg_block(model, hazard, return_periods, block, cache=None):
     Returns
     -------
     SiteBlockResult
-        ``values`` (n_im, n_block_sites, n_rp, n_mag, n_dist, n_eps) [1/yr].
+        ``values`` (n_im, n_block_sites, n_rp, n_mag, n_dist, n_eps) [1/yr] and
+        ``moments`` (n_im, n_block_sites, n_rp, 5).
     """
     lo, hi = block
     mean = model.statistics["mean"][:, lo:hi]  # (n_im, n_blk, n_lev)
     with np.errstate(divide="ignore", invalid="ignore"):
         targets = np.log(im_at_rate(1.0 / np.asarray(return_periods), model.levels_g, mean))
     bins = model.bins
-    keys = [digest("disagg-site", k, list(map(float, return_periods)), bins.mag_edges, bins.dist_edges,
+    keys = [digest("disagg-site-moments", k, list(map(float, return_periods)), bins.mag_edges, bins.dist_edges,
                    bins.eps_edges, mean[:, j]) for j, k in enumerate(_site_keys(model, hazard, lo, hi))]
     per_site = (len(model.ims), len(return_periods)) + bins.shape
-    rows, missing = _cached_rows(cache, "disaggregation", keys, (hi - lo,) + per_site, "contrib")
+    per_site_moments = (len(model.ims), len(return_periods), len(DISAGG_MOMENTS))
+    rows, mom_rows, missing = _cached_rows(cache, "disaggregation", keys, (hi - lo,) + per_site, "contrib",
+                                           ("moments", (hi - lo,) + per_site_moments))
     total = np.ascontiguousarray(np.moveaxis(rows, 0, 1))
+    moments = np.ascontiguousarray(np.moveaxis(mom_rows, 0, 1))
     if missing:
         idx = lo + np.array(missing)
         for _, ws, src in model.source_branches:
-            total[:, missing] += compute_disaggregation(
+            contrib, mom = compute_disaggregation(
                 hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures,
                 [g for _, _, g in model.gmm_branches], [ws * wg for _, wg, _ in model.gmm_branches], model.ims,
                 targets[:, missing], bins, truncation_sigma=model.truncation_sigma,
-                max_distance_km=model.max_distance_km, region=model.region, site_block=len(idx), ref=model.ref)
+                max_distance_km=model.max_distance_km, region=model.region, site_block=len(idx), ref=model.ref,
+                moments=True)
+            total[:, missing] += contrib
+            moments[:, missing] += mom
         if cache is not None:
             for j in missing:
-                cache.put("disaggregation", keys[j], {"contrib": total[:, j]})
-    return SiteBlockResult(block, total, len(keys) - len(missing), len(missing))
+                cache.put("disaggregation", keys[j], {"contrib": total[:, j], "moments": moments[:, j]})
+    return SiteBlockResult(block, total, len(keys) - len(missing), len(missing), moments=moments)
 
 
 def combine_disaggregation(model, hazard, parts):
@@ -416,8 +434,11 @@ def combine_disaggregation(model, hazard, parts):
     Returns
     -------
     HazardModel
+        With ``disagg`` and ``disagg_moments``.
     """
-    return replace(model, disagg=_assemble(parts, len(hazard.site_id), axis=1))
+    n_sites = len(hazard.site_id)
+    moments = _assemble([replace(p, values=p.moments) for p in parts], n_sites, axis=1)
+    return replace(model, disagg=_assemble(parts, n_sites, axis=1), disagg_moments=moments)
 
 
 # --- tables -----------------------------------------------------------------------------------
@@ -449,12 +470,15 @@ def site_hazard_frame(model, hazard):
 
 
 def disaggregation_frames(model, hazard, return_periods, min_share=1e-6):
-    """``disaggregation`` (non-negligible bin shares) and ``disaggregation_summary`` tables.
+    r"""``disaggregation`` (non-negligible bin shares) and ``disaggregation_summary`` tables.
 
     The target level of each return period T is the mean curve's IM at rate 1/T
-    (log-log interpolation, :func:`quakefolio.core.curves.im_at_rate`); shares, mean
-    and modal magnitude, distance and epsilon come from
-    :func:`quakefolio.core.hazard.disaggregation_summary`.
+    (log-log interpolation, :func:`quakefolio.core.curves.im_at_rate`); shares and modal
+    magnitude, distance and epsilon come from the bins, the means are exact
+    contribution-weighted means over every (site, rupture) pair
+    (:func:`quakefolio.core.hazard.disaggregation_summary` with the model's moments).
+    Epsilon is the one needed to reach the target level,
+    :math:`(\ln x^* - \mu_{\ln Y})/\sigma_{\ln Y}`.
 
     Parameters
     ----------
@@ -473,11 +497,11 @@ def disaggregation_frames(model, hazard, return_periods, min_share=1e-6):
         One row per (site, IM, return period, magnitude, distance, epsilon bin) with its
         ``share`` [-]; bin edges in Mw, km and sigma.
     summary : pandas.DataFrame
-        One row per (IM, site, return period): ``im_level`` [g], mean and modal
-        magnitude [Mw], distance [km] and epsilon [-].
+        One row per (IM, site, return period): ``im_level`` [g], exact mean and modal
+        (bin-centre) magnitude [Mw], distance [km] and epsilon [-].
     """
     rps = np.asarray(return_periods, dtype=float)
-    shares, mm, mr, me, om, orr, oe = disaggregation_summary(model.disagg, model.bins)
+    shares, mm, mr, me, om, orr, oe = disaggregation_summary(model.disagg, model.bins, model.disagg_moments)
     n_im, n_sites, n_t = shares.shape[:3]
     targets = im_at_rate(1.0 / rps, model.levels_g, model.statistics["mean"])  # (n_im, n_sites, n_t)
     idx = np.nonzero(shares > min_share)

@@ -121,12 +121,16 @@ class SiteBlockResult:
         contributions ``(n_im, n_block_sites, n_rp, n_mag, n_dist, n_eps)`` [1/yr].
     from_cache, computed : int
         Sites read from the content cache and sites computed.
+    moments : ndarray or None
+        Disaggregation only: exact rate-weighted moments ``(n_im, n_block_sites, n_rp, 5)``
+        (:data:`quakefolio.core.hazard.DISAGG_MOMENTS`).
     """
 
     block: tuple
     values: np.ndarray
     from_cache: int = 0
     computed: int = 0
+    moments: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
