@@ -26,7 +26,9 @@ naming the quantity, and (for per-event quantities) a block index:
 * sampled damage states and loss ratios of event block ``b`` and class entry ``k`` (one
   generator per block and class): ``SeedSequence([seed, STREAM_DAMAGE, b * 4096 + k])``
   (:func:`damage_block_rng`, packing :func:`class_block_index`);
-* :data:`STREAM_LOSS_RATIO` is reserved for loss ratios drawn on their own.
+* :data:`STREAM_LOSS_RATIO` is reserved for loss ratios drawn on their own;
+* the period of the day of each event (time-of-day occupancy):
+  ``SeedSequence([seed, STREAM_OCCUPANCY])`` (:func:`stream_rng`).
 
 Every stream tag of the project is defined here and nowhere else; the tags are part of
 the reproducibility contract (changing one changes the draws of its quantity).
@@ -57,6 +59,7 @@ __all__ = [
     "STREAM_DAMAGE",
     "STREAM_LOSS_RATIO",
     "STREAM_GMM_CHOICE",
+    "STREAM_OCCUPANCY",
     "MAX_CLASS_ENTRIES",
     "EventSet",
     "stochastic_event_set",
@@ -84,13 +87,15 @@ STREAM_DAMAGE = 3
 STREAM_LOSS_RATIO = 4
 #: Stream tag of the per-event ground-motion-model draw (one generator for the event set).
 STREAM_GMM_CHOICE = 11
+#: Stream tag of the per-event period of the day (time-of-day occupancy; one generator for the event set).
+STREAM_OCCUPANCY = 17
 #: Class entries per event block in the packed index of :func:`class_block_index`.
 MAX_CLASS_ENTRIES = 4096
 
 #: Streams drawn per event block (:func:`block_rng`).
 _STREAMS = (STREAM_EVENT_SET, STREAM_GROUND_MOTION, STREAM_DAMAGE, STREAM_LOSS_RATIO)
 #: Streams drawn once per event set (:func:`stream_rng`).
-_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE)
+_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE, STREAM_OCCUPANCY)
 
 
 def check_seed(seed) -> int:
@@ -276,7 +281,7 @@ def stream_rng(seed: int, stream: int) -> np.random.Generator:
     seed : int
         The run's non-negative seed.
     stream : int
-        :data:`STREAM_EVENT_SET` or :data:`STREAM_GMM_CHOICE`.
+        :data:`STREAM_EVENT_SET`, :data:`STREAM_GMM_CHOICE` or :data:`STREAM_OCCUPANCY`.
 
     Returns
     -------

@@ -33,6 +33,7 @@ from quakefolio.core.events.gmf import FieldSampler
 from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
+from quakefolio.pipeline.stages import people as pp
 
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
@@ -69,6 +70,7 @@ class EventModel:
     deductible: np.ndarray
     limit: np.ndarray
     chunk_blocks: int
+    people: object = None  # PeopleModel: casualties, downtime, contents and interruption (stages.people)
 
 
 def _branch(config, model):
@@ -155,7 +157,8 @@ def prepare_events(inputs):
         sampler=sampler, seed=pf.seed, n_years=pf.years, truncation_sigma=model.truncation_sigma,
         max_distance_km=model.max_distance_km, region=model.region, ref=model.ref, loss_model=pf.loss_model,
         levels_g=model.levels_g, asset_site=local, classes=classes, value=ex.replacement_value.to_numpy(),
-        deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task)
+        deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task,
+        people=pp.prepare_people(inputs, events.n_events, pf.seed, classes))
 
 
 def event_chunks(em):
@@ -185,6 +188,7 @@ class ChunkResult:
     asset_sumsq: np.ndarray  # (n_blocks, 2, n_assets) [currency^2]
     class_sum: np.ndarray  # (n_blocks, n_classes, 2)
     exceed_counts: np.ndarray  # (n_im, n_sites, n_levels)
+    people: np.ndarray = None  # (n_ev, 4): casualties, downtime, contents and interruption loss (stages.people)
 
 
 def _ground_motion(em, start, stop, b0, b1):
@@ -224,7 +228,8 @@ def event_chunk(em, chunk):
                for _, assets, i_im, dss, usites, pair in em.classes]
     gu_ev, net_ev, asset_sum, asset_sumsq, class_sum = portfolio_event_losses(
         im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows)
-    return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts)
+    return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts,
+                       pp.chunk_consequences(em, im, start, stop))
 
 
 def combine_events(em, inputs, results):
@@ -307,6 +312,9 @@ def combine_events(em, inputs, results):
         "portfolio_ep_curve": pd.concat(curve_rows, ignore_index=True), "portfolio_summary": summary,
         "asset_event_loss": asset_aal, "portfolio_breakdown": pd.concat(breakdown, ignore_index=True),
     }
+    if em.people is not None and results:
+        tables.update(pp.event_consequence_tables(em, inputs, np.concatenate([r.people for r in results]),
+                                                  _branch_mean_curves(em, inputs)))
     return tables, checks
 
 
@@ -370,4 +378,5 @@ def event_cache_key(inputs):
     used = sorted(set(inputs.exposure.building_class))
     classes = fragility_class_digests(inputs.library)
     return digest("events", model.digest, cfg.resolved()["portfolio"], cfg.resolved()["hazard"],
-                  cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"])
+                  cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"],
+                  pp.people_cache_key(inputs))
