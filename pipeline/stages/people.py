@@ -45,7 +45,17 @@ UNITS = {"casualties": "persons", "downtime_days": "building-days", "contents_lo
 
 
 def profile(config):
-    """``(hours, present)`` arrays of ``[exposure] occupancy_periods``, or ``(None, None)``."""
+    """The time-of-day occupancy profile of a run.
+
+    Parameters
+    ----------
+    config : Config
+
+    Returns
+    -------
+    hours, present : ndarray [h], ndarray [-], or (None, None)
+        From ``[exposure] occupancy_periods``; None when not given (every occupant present).
+    """
     periods = config.exposure.occupancy_periods
     if not periods:
         return None, None
@@ -186,7 +196,20 @@ def prepare_people(inputs, n_events, seed, classes):
 
 
 def moved_people(people, changed, new_dss):
-    """The model with assets ``changed`` moved to appended entries of class ``new_dss`` (what-if rerun)."""
+    """The people model with assets moved to appended entries of a new class (what-if rerun).
+
+    Parameters
+    ----------
+    people : PeopleModel or None
+    changed : ndarray of int
+        Assets moved; their weights are zeroed in place and appended in this order.
+    new_dss : DamageStateSet
+        The new class (consequences it does not give get weight 0).
+
+    Returns
+    -------
+    PeopleModel or None
+    """
     if people is None:
         return None
     w = np.concatenate([people.weights, people.weights[changed]])
@@ -281,7 +304,17 @@ def _classical_same_branch(em, inputs, curves):
 
 
 def people_cache_key(inputs):
-    """What the event consequences depend on beyond the event stage's key: profile and class consequences."""
+    """What the event consequences depend on beyond the event stage's key.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+
+    Returns
+    -------
+    dict
+        The occupancy profile and the consequences per state of every class used.
+    """
     lib = inputs.library
     used = sorted(set(inputs.exposure.building_class))
     return {"occupancy_periods": [dict(p) for p in (inputs.config.exposure.occupancy_periods or ())],
@@ -299,7 +332,7 @@ def _asset_figures(inputs, ds, dss, assets):
     occ = np.nan_to_num(_column(ex, "occupants")[assets])
     contents = np.nan_to_num(_column(ex, "contents_value")[assets])
     per_day = np.nan_to_num(_column(ex, "interruption_value_per_day")[assets])
-    table = np.nan_to_num(_class_per_state(dss))
+    table = _class_per_state(dss)  # NaN where the class does not give the consequence: NaN figures
     figures = np.stack([expected_annual_consequence(ds, table[:, k]) for k in range(4)], axis=1)
     return figures * np.stack([occ * f_bar, np.ones(len(assets)), contents, per_day], axis=1)
 
@@ -360,6 +393,17 @@ def add_benefits(tables, inputs):
     ``benefits_counted`` saying so; ``whatif_people`` gains the present values and
     ``benefit_cost_ratio_all`` (repair + contents + interruption + life safety when a
     value per avoided casualty is given).
+
+    Parameters
+    ----------
+    tables : dict name -> DataFrame
+        The what-if tables with ``whatif_benefit_cost`` and ``whatif_people``; changed in place.
+    inputs : RunInputs
+
+    Returns
+    -------
+    dict
+        ``tables``.
     """
     scen = inputs.config.scenario
     bc, people = tables["whatif_benefit_cost"], tables["whatif_people"]
@@ -407,7 +451,9 @@ def _portfolio_rows(alt, before, after, totals, rerun_years, cur):
     for k, q in enumerate(QUANTITIES):
         unit = UNITS[q].replace("{currency}", cur) + "/yr"
         total = float(totals["classical"][k])
-        rows.append(_row(alt.alt_id, q, "classical", unit, total, total - float((before[:, k] - after[:, k]).sum())))
+        # NaN where an asset's class gives the consequence before but the new class does not
+        after_total = total - float(np.nansum(before[:, k]) - after[:, k].sum())
+        rows.append(_row(alt.alt_id, q, "classical", unit, total, after_total))
         if "event_years" not in totals:
             continue
         years_before = totals["event_years"][:, k]
@@ -416,6 +462,8 @@ def _portfolio_rows(alt, before, after, totals, rerun_years, cur):
             rows.append(_row(alt.alt_id, q, "event_based", unit, mean_before, mean_before, 0.0))
         else:
             mean_after, se = paired_aal_change(years_before, rerun_years[:, k])  # same simulated years
+            if not np.isfinite(after_total):
+                mean_after, se = np.nan, np.nan
             rows.append(_row(alt.alt_id, q, "event_based", unit, mean_before, mean_after, se))
     return rows
 
@@ -424,7 +472,7 @@ def _totals(inputs, by_class, portfolio):
     """Classical totals of the 4 quantities over every asset, and the run's event year totals (n_years, 4)."""
     total = np.zeros(len(QUANTITIES))
     for code, (assets, ds, _) in sorted(by_class.items()):
-        total += _asset_figures(inputs, ds, inputs.library[code], assets).sum(axis=0)
+        total += np.nansum(_asset_figures(inputs, ds, inputs.library[code], assets), axis=0)
     out = {"classical": total}
     if portfolio is not None and "event_consequences" in portfolio[0]:
         ev = portfolio[0]["event_consequences"]
@@ -435,5 +483,16 @@ def _totals(inputs, by_class, portfolio):
 
 
 def year_totals(event_year, per_event, n_years):
-    """Annual totals (n_years, 4) of per-event consequences (n_events, 4)."""
+    """Annual totals of per-event consequences.
+
+    Parameters
+    ----------
+    event_year : ndarray of int (n_events,)
+    per_event : ndarray (n_events, n_q)
+    n_years : int
+
+    Returns
+    -------
+    ndarray (n_years, n_q)
+    """
     return np.stack([year_loss(event_year, per_event[:, k], n_years)[0] for k in range(per_event.shape[1])], axis=1)
