@@ -19,8 +19,9 @@ Layout::
     casualty_rate = 0.0            # optional, fraction of occupants present
     contents_damage_ratio = 0.05   # optional, contents loss / contents value
 
-``downtime_days``, ``casualty_rate`` and ``contents_damage_ratio`` are given for every
-state of a class or for none.
+A class that gives ``downtime_days``, ``casualty_rate`` or ``contents_damage_ratio`` for
+only some of its states has no figure for that consequence (its assets are left out of the
+totals and counted; contents or interruption values in the exposure are then an error).
 
 Every problem is raised as :class:`quakefolio.core.errors.InputError` naming the file,
 the line and the key.  The file is data only: parsed with :mod:`tomllib`, never executed.
@@ -106,8 +107,7 @@ _ORDER = (("median", "medians must increase with severity", lambda prev, cur: cu
           ("mean_damage_ratio", "mean damage ratios must not decrease with severity", lambda prev, cur: cur < prev),
           ("contents_damage_ratio", "contents damage ratios must not decrease with severity",
            lambda prev, cur: cur < prev))
-#: Optional per-state consequences: given for every state of a class or for none.
-_ALL_OR_NONE = ("downtime_days", "casualty_rate", "contents_damage_ratio")
+
 
 
 def _check_top(data, text, path):
@@ -148,11 +148,6 @@ def _state_rows(code, states, text, path):
             raise place.error(str(exc), "cov", row_key="cov" if "cov" in st else None) from None
         if i > 0:
             _check_state_order(rows, i, place)
-            for key in _ALL_OR_NONE:
-                if (key in st) != (key in states[0]):
-                    raise place.error(f"{key} is given for state '{rows['name'][0]}' but not for this one, or the "
-                                      "other way round: give it for every state of the class or for none",
-                                      key, row_key=key if key in st else None)
     return rows
 
 

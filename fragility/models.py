@@ -104,7 +104,7 @@ class DamageStateSet:
         cdr = self.contents_damage_ratio
         if np.isfinite(cdr).any():
             try:
-                check_damage_ratios(cdr)
+                check_damage_ratios(cdr[np.isfinite(cdr)])  # the states that give one
             except ValueError as exc:
                 raise ValueError(f"class {self.class_code!r}: contents_damage_ratio: {exc}") from None
         ci = self.collapse_index % n

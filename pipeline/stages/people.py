@@ -245,6 +245,8 @@ def chunk_consequences(em, im, start, stop):
     for code, assets, i_im, dss, usites, pair in em.classes:
         w = np.zeros((len(usites), len(QUANTITIES)))
         np.add.at(w, pair, people.weights[assets])
+        if not w.any():  # nothing of this class counts (e.g. no consequences given): skip the kernel
+            continue
         out += event_consequence_sums(im[:, i_im, usites], dss.medians, dss.betas, people.per_state[code], w)
     out[:, 0] *= people.present[start:stop]
     return out
@@ -292,7 +294,7 @@ def event_consequence_tables(em, inputs, per_event, classical_curves):
 def _classical_same_branch(em, inputs, curves):
     """Classical annual expectation of the 4 quantities for the event set's source branch (same weights)."""
     people = em.people
-    f_bar = float(np.mean(people.present)) if profile(inputs.config)[0] is None else _present_fraction(inputs.config)
+    f_bar = _present_fraction(inputs.config)
     total = np.zeros(len(QUANTITIES))
     for code, assets, i_im, dss, usites, pair in em.classes:
         ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)

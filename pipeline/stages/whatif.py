@@ -92,7 +92,7 @@ def _suggestion(name, valid, what):
 
 
 def _same_fragility(a, b):
-    """True when two damage-state sets give identical damage and loss (same IM and parameters)."""
+    """True when two damage-state sets give identical damage, loss and consequences (same IM and parameters)."""
     return (a.im == b.im and a.collapse_index == b.collapse_index and a.n_states == b.n_states
             and all(np.array_equal(getattr(a, k), getattr(b, k), equal_nan=True)
                     for k in ("medians", "betas", "mean_damage_ratio", "cov", "casualty_rate", "downtime_days",
