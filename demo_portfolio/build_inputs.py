@@ -74,6 +74,7 @@ mean_damage_ratio = 0.03
 cov = 0.8
 downtime_days = 5
 casualty_rate = 0.0
+contents_damage_ratio = 0.01
 
 [[classes.MAS-UR-RF.states]]
 name = "repairable"
@@ -83,6 +84,7 @@ mean_damage_ratio = 0.18
 cov = 0.55
 downtime_days = 60
 casualty_rate = 0.0005
+contents_damage_ratio = 0.08
 
 [[classes.MAS-UR-RF.states]]
 name = "irreparable"
@@ -92,6 +94,7 @@ mean_damage_ratio = 0.65
 cov = 0.3
 downtime_days = 300
 casualty_rate = 0.012
+contents_damage_ratio = 0.35
 
 [[classes.MAS-UR-RF.states]]
 name = "collapse"
@@ -100,6 +103,7 @@ beta = 0.74
 mean_damage_ratio = 1.0
 downtime_days = 540
 casualty_rate = 0.15
+contents_damage_ratio = 0.8
 """
 
 # --------------------------------------------------------------------------------------
@@ -302,6 +306,13 @@ def im_at_rate_loglog(levels, rates, target_rate):
 # Fragility library (invented parameters)
 # --------------------------------------------------------------------------------------
 STATE_NAMES = ("cosmetic", "repairable", "irreparable", "collapse")
+#: Invented contents damage ratio per state (contents loss / contents value), every class.
+CONTENTS_DAMAGE_RATIO = (0.01, 0.08, 0.35, 0.8)
+#: Invented contents value as a share of the replacement value, per class.
+CONTENTS_SHARE = {"TMB": 0.2, "MAS-UR": 0.25, "MAS-CF": 0.25, "RCF-LO": 0.3, "RCF-MID": 0.35, "RCW": 0.35,
+                  "STL-BR": 0.5}
+#: Invented value of one day of business interruption as a share of the replacement value [1/day].
+INTERRUPTION_SHARE_PER_DAY = 0.0003
 
 FRAGILITY = {
     "RCF-LO": {
@@ -418,6 +429,7 @@ def fragility_toml(fragility):
             lines += [
                 f"downtime_days = {int(c['downtime_days'][i])}",
                 f"casualty_rate = {_toml_float(c['casualty_rate'][i])}",
+                f"contents_damage_ratio = {_toml_float(CONTENTS_DAMAGE_RATIO[i])}",
             ]
     return "\n".join(lines) + "\n"
 
@@ -509,6 +521,9 @@ def build_exposure(rng):
                 "occupants": occupants,
                 "deductible": "" if no_ded else int(round(ded_frac * value / 1000.0) * 1000),
                 "limit": "" if no_lim else int(math.floor(lim_frac * value / 10000.0) * 10000),
+                # invented, derived without random draws (the draws above are unchanged)
+                "contents_value": int(round(CONTENTS_SHARE[cls] * value / 1000.0) * 1000),
+                "interruption_value_per_day": int(round(INTERRUPTION_SHARE_PER_DAY * value / 10.0) * 10),
                 "district": name,
                 "terms_group": ACCOUNTS[name][0],
             })
@@ -518,7 +533,8 @@ def build_exposure(rng):
 
 
 EXPOSURE_COLUMNS = ("asset_id", "lon", "lat", "building_class", "replacement_value",
-                    "vs30_mps", "occupants", "deductible", "limit", "terms_group")
+                    "vs30_mps", "occupants", "deductible", "limit", "contents_value",
+                    "interruption_value_per_day", "terms_group")
 HAZARD_COLUMNS = ("site_id", "lon", "lat", "im", "im_level", "annual_rate", "statistic")
 
 

@@ -16,7 +16,12 @@ Layout::
     mean_damage_ratio = 0.02       # repair cost / replacement value
     cov = 0.8                      # optional, CoV of the loss ratio
     downtime_days = 3              # optional
-    casualty_rate = 0.0            # optional, fraction of occupants
+    casualty_rate = 0.0            # optional, fraction of occupants present
+    contents_damage_ratio = 0.05   # optional, contents loss / contents value
+
+A class that gives ``downtime_days``, ``casualty_rate`` or ``contents_damage_ratio`` for
+only some of its states has no figure for that consequence (its assets are left out of the
+totals and counted; contents or interruption values in the exposure are then an error).
 
 Every problem is raised as :class:`quakefolio.core.errors.InputError` naming the file,
 the line and the key.  The file is data only: parsed with :mod:`tomllib`, never executed.
@@ -93,11 +98,16 @@ _STATE_SCHEMA = Schema({
     "downtime_days": Field(_NUMBER + (_NON_NEGATIVE,), math.nan, help="downtime [days]"),
     "casualty_rate": Field(_NUMBER + (Interval(0, 1), _NON_NEGATIVE), math.nan,
                            help="casualties as a fraction of occupants [-]"),
+    "contents_damage_ratio": Field(_NUMBER + (Interval(0, 1),), math.nan,
+                                   help="contents loss / contents value [-]"),
 }, missing_first=True)
 _CLASS_CODE = Pattern(_CODE.pattern, lambda code: f"class code {code!r} must be 1-32 letters, digits, '-', '_' or '.'",
                       show_value=False)
 _ORDER = (("median", "medians must increase with severity", lambda prev, cur: cur <= prev),
-          ("mean_damage_ratio", "mean damage ratios must not decrease with severity", lambda prev, cur: cur < prev))
+          ("mean_damage_ratio", "mean damage ratios must not decrease with severity", lambda prev, cur: cur < prev),
+          ("contents_damage_ratio", "contents damage ratios must not decrease with severity",
+           lambda prev, cur: cur < prev))
+
 
 
 def _check_top(data, text, path):
@@ -167,6 +177,7 @@ def _parse_class(code, body, text, path):
             cov=np.array(rows["cov"]),
             downtime_days=np.array(rows["downtime_days"]),
             casualty_rate=np.array(rows["casualty_rate"]),
+            contents_damage_ratio=np.array(rows["contents_damage_ratio"]),
             collapse_index=rows["name"].index(collapse),
             description=str(body.get("description", "")),
         )

@@ -50,6 +50,9 @@ class DamageStateSet:
     casualty_rate : ndarray (n_ds,) [-], fraction of occupants, NaN where not given
     collapse_index : int
         Index of the collapse state (default: the last).
+    contents_damage_ratio : ndarray (n_ds,) [-]
+        Mean contents loss / contents value per state, in [0, 1] and non-decreasing;
+        NaN where not given (default).
     """
 
     class_code: str
@@ -63,6 +66,7 @@ class DamageStateSet:
     casualty_rate: np.ndarray
     collapse_index: int = -1
     description: str = ""
+    contents_damage_ratio: np.ndarray = None
 
     def __post_init__(self):
         n = len(self.names)
@@ -71,7 +75,10 @@ class DamageStateSet:
         if len(set(self.names)) != n:
             raise ValueError(f"class {self.class_code!r}: damage-state names must be unique, got {list(self.names)}")
         object.__setattr__(self, "im", parse_im(self.im))
-        for attr in ("medians", "betas", "mean_damage_ratio", "cov", "downtime_days", "casualty_rate"):
+        if self.contents_damage_ratio is None:
+            object.__setattr__(self, "contents_damage_ratio", np.full(n, np.nan))
+        for attr in ("medians", "betas", "mean_damage_ratio", "cov", "downtime_days", "casualty_rate",
+                     "contents_damage_ratio"):
             arr = np.asarray(getattr(self, attr), dtype=float)
             if arr.shape != (n,):
                 raise ValueError(f"class {self.class_code!r}: {attr} needs {n} values, got shape {arr.shape}")
@@ -94,6 +101,12 @@ class DamageStateSet:
             raise ValueError(f"class {self.class_code!r}: downtime_days must be non-negative")
         if np.any((cr[np.isfinite(cr)] < 0) | (cr[np.isfinite(cr)] > 1)) or np.any(np.isinf(cr)):
             raise ValueError(f"class {self.class_code!r}: casualty_rate must lie in [0, 1]")
+        cdr = self.contents_damage_ratio
+        if np.isfinite(cdr).any():
+            try:
+                check_damage_ratios(cdr[np.isfinite(cdr)])  # the states that give one
+            except ValueError as exc:
+                raise ValueError(f"class {self.class_code!r}: contents_damage_ratio: {exc}") from None
         ci = self.collapse_index % n
         object.__setattr__(self, "collapse_index", ci)
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.store import RunFolder
 
-__all__ = ["summary_text", "loss_model_label", "correlation_effect_lines"]
+__all__ = ["summary_text", "loss_model_label", "correlation_effect_lines", "people_lines"]
 
 
 def _money(x):
@@ -307,7 +307,51 @@ def summary_text(run_dir, *, elapsed_s=None):
         lines += _portfolio_lines(run, manifest, cur)
         lines += _programme_lines(run, cur)
     lines += _whatif_lines(run, cur)
+    lines += people_lines(run, cur)
     lines += _cache_lines(manifest)
     lines.append("")
     lines.append(f"  run folder{timing}: {run_dir}")
     return "\n".join(lines)
+
+
+def people_lines(run, cur):
+    """Casualties, downtime and losses by coverage (classical; event-based and what-if where present).
+
+    Parameters
+    ----------
+    run : RunFolder
+    cur : str
+        Currency of the run.
+
+    Returns
+    -------
+    list of str
+    """
+    if not run.has("portfolio_consequences"):
+        return []
+    t = run.table("portfolio_consequences").set_index("metric")
+    cas, down = t.loc["casualties"], t.loc["downtime_days"]
+    fraction = run.table("asset_consequences").mean_present_fraction.iloc[0]
+    lines = ["", f"  people and time (classical; mean share of occupants present {fraction:.3f}):",
+             f"    expected casualties {cas.classical_annual_mean:.4g} persons/yr ({int(cas.assets_left_out)} assets "
+             f"without occupants or casualty rates left out); expected downtime {down.classical_annual_mean:,.1f} "
+             f"building-days/yr",
+             "    EAL by coverage (" + "; ".join(f"{m.split('_')[0]} {_money(t.loc[m, 'classical_annual_mean'])}"
+                                           for m in ("building_loss", "contents_loss", "interruption_loss"))
+             + f" {cur}/yr); deductible and limit apply to the building coverage only"]
+    if run.has("consequence_event_summary"):
+        ev = run.table("consequence_event_summary").set_index("metric")
+        ep = run.table("consequence_ep")
+        for metric, unit in (("casualties", "persons"), ("downtime_days", "building-days")):
+            r = ev.loc[metric]
+            pml = ep[ep.metric == metric].dropna(subset=["aep_value"])
+            at = ", ".join(f"{p.return_period_yr:g} yr {p.aep_value:,.1f}" for p in pml.itertuples())
+            lines.append(f"    event-based {metric.replace('_days', '')}: {r.annual_average:.4g} {unit}/yr +- "
+                         f"{r.standard_error:.2g} (classical, same branch {r.classical_same_branch:.4g}); "
+                         f"annual total at {at or 'no return period within the simulated years'}")
+    if run.has("whatif_people"):
+        for r in run.table("whatif_people").query("scope == 'alternative'").itertuples():
+            lines.append(f"    what-if '{r.alternative_id}': avoided casualties {r.avoided_casualties:.4g} persons/yr, "
+                         f"downtime {r.avoided_downtime_days:,.1f} building-days/yr; benefit-cost with every "
+                         f"benefit {r.benefit_cost_ratio_all:.2f} ({r.benefits_counted})")
+    return lines

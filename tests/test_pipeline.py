@@ -14,7 +14,8 @@ from quakefolio.pipeline.runner import run_pure
 from quakefolio.pipeline.io.store import RunWriter, latest_run, read_table, table_metadata
 
 TABLES = ["site_hazard", "hazard_at_return_periods", "asset_damage", "asset_loss", "asset_loss_curve",
-          "collapse_screening", "site_risk_targeted_im", "run_assets", "run_fragility"]
+          "collapse_screening", "site_risk_targeted_im", "run_assets", "run_fragility",
+          "asset_consequences", "portfolio_consequences"]  # people and time
 
 
 def test_pure_run_writes_a_complete_run(mini_config):

@@ -36,6 +36,10 @@ naming the quantity, and (for per-event quantities) a block index:
   the assets of a group in an event) of event block ``b`` and group ``g``:
   ``SeedSequence([seed, STREAM_GROUP_FACTOR, b, g])`` (:func:`group_factor_rng`; one
   generator per block and group, so adding a group leaves the others' factors unchanged).
+* the period of the day of each event (time-of-day occupancy):
+  ``SeedSequence([seed, STREAM_OCCUPANCY])`` (:func:`stream_rng`).
+* the period of the day of each event (time-of-day occupancy):
+  ``SeedSequence([seed, STREAM_OCCUPANCY])`` (:func:`stream_rng`).
 
 Every stream tag of the project is defined here and nowhere else; the tags are part of
 the reproducibility contract (changing one changes the draws of its quantity).
@@ -90,6 +94,8 @@ __all__ = [
     "STREAM_BRANCH_YEARS",
     "STREAM_BRANCH_EVENTS",
     "STREAM_GROUP_FACTOR",
+    "STREAM_OCCUPANCY",
+    "STREAM_OCCUPANCY",
     "MAX_CLASS_ENTRIES",
     "EventSet",
     "stochastic_event_set",
@@ -128,13 +134,15 @@ STREAM_GMM_CHOICE = 11
 STREAM_BRANCH_YEARS = 12
 #: Stream tag of the occurrences of one source-model branch in its years (whole logic tree).
 STREAM_BRANCH_EVENTS = 13
+#: Stream tag of the per-event period of the day (time-of-day occupancy; one generator for the event set).
+STREAM_OCCUPANCY = 17
 #: Class entries per event block in the packed index of :func:`class_block_index`.
 MAX_CLASS_ENTRIES = 4096
 
 #: Streams drawn per event block (:func:`block_rng`).
 _STREAMS = (STREAM_EVENT_SET, STREAM_GROUND_MOTION, STREAM_DAMAGE, STREAM_LOSS_RATIO)
 #: Streams drawn once per event set (:func:`stream_rng`).
-_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE, STREAM_BRANCH_YEARS)
+_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE, STREAM_BRANCH_YEARS, STREAM_OCCUPANCY)
 
 
 def check_seed(seed) -> int:
@@ -320,7 +328,8 @@ def stream_rng(seed: int, stream: int) -> np.random.Generator:
     seed : int
         The run's non-negative seed.
     stream : int
-        :data:`STREAM_EVENT_SET`, :data:`STREAM_GMM_CHOICE` or :data:`STREAM_BRANCH_YEARS`.
+        :data:`STREAM_EVENT_SET`, :data:`STREAM_GMM_CHOICE`, :data:`STREAM_BRANCH_YEARS` or
+        :data:`STREAM_OCCUPANCY`.
 
     Returns
     -------

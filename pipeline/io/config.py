@@ -63,6 +63,62 @@ class _IMNames(Rule):
         return out
 
 
+class _OccupancyPeriods(Constraint):
+    """Periods of the day ``{name, hours, present}``, checked by :func:`_occupancy_periods`."""
+
+    def holds(self, value):
+        return True
+
+    def convert(self, value, context):
+        return _occupancy_periods(value)
+
+
+#: Keys of one entry of ``[exposure] occupancy_periods``.
+OCCUPANCY_PERIOD_KEYS = ("name", "hours", "present")
+
+
+def _occupancy_periods(value):
+    """Time-of-day occupancy: a list of ``{name, hours, present}``; hours sum to 24, present in [0, 1].
+
+    Parameters
+    ----------
+    value : object
+        The parsed TOML value.
+
+    Returns
+    -------
+    list of dict
+        ``{"name": str, "hours": float [h], "present": float [-]}`` per period, in the given order.
+
+    Raises
+    ------
+    quakefolio.core.validation.Invalid
+        With the message; the caller adds file, line and key.
+    """
+    if not isinstance(value, list) or not value or not all(isinstance(v, dict) for v in value):
+        raise Invalid("expected a list of tables like { name = \"day\", hours = 10, present = 0.9 }")
+    out = []
+    for i, entry in enumerate(value):
+        for key in entry:
+            if key not in OCCUPANCY_PERIOD_KEYS:
+                raise Invalid(f"period {i + 1}: unknown key '{key}'{_suggest(key, OCCUPANCY_PERIOD_KEYS)}")
+        name, hours, present = entry.get("name"), entry.get("hours"), entry.get("present")
+        if not isinstance(name, str) or not name.strip():
+            raise Invalid(f"period {i + 1}: 'name' must be a non-empty string")
+        if isinstance(hours, bool) or not isinstance(hours, (int, float)) or not 0 < hours <= 24:
+            raise Invalid(f"period {i + 1}: 'hours' must be a number of hours in (0, 24], got {hours!r}")
+        if isinstance(present, bool) or not isinstance(present, (int, float)) or not 0 <= present <= 1:
+            raise Invalid(f"period {i + 1}: 'present' must be a fraction of occupants in [0, 1], got {present!r}")
+        out.append({"name": name, "hours": float(hours), "present": float(present)})
+    total = sum(p["hours"] for p in out)
+    if abs(total - 24.0) > 1e-9:
+        raise Invalid(f"period hours must sum to 24, got {total:.6g}")
+    names = [p["name"] for p in out]
+    if len(set(names)) != len(names):
+        raise Invalid(f"period names must be unique, got {names}")
+    return out
+
+
 def _resolve(value, base):
     p = Path(value)
     return (p if p.is_absolute() else base / p).resolve()
@@ -145,6 +201,9 @@ SCHEMA = {
         "alternatives": _key(_ALTERNATIVE_LIST, [], help="retrofit what-if: [[scenario.alternatives]] tables"),
         "discount_rate": _key(_FLOAT, 0.03, _DISCOUNT_RATE, help="annual discount rate of avoided losses [-]"),
         "benefit_horizon_yr": _key(_FLOAT, 50.0, _POSITIVE, help="years over which avoided losses count [yr]"),
+        "value_per_avoided_casualty": _key((_PositiveOrNone(),), None,
+                                           help="life-safety benefit of the what-if [currency per casualty]; "
+                                                "none: benefit-cost counts losses only"),
     },
     "screening": {
         "collapse_target_prob": _key(_FLOAT, 0.01, _PROBABILITY, help="target collapse probability [-]"),
@@ -201,6 +260,8 @@ SCHEMA = {
     },
     "exposure": {
         "file": _key(_PATH),
+        "occupancy_periods": _key((_OccupancyPeriods(),), None,
+                                  help="time-of-day occupancy [{name, hours, present}]; none: all occupants present"),
     },
     "fragility": {
         "library": _key(_PATH),
@@ -266,6 +327,7 @@ class ScenarioSettings(_Section):
     alternatives: tuple  #: retrofit what-if alternatives (read-only mappings, keys of ALTERNATIVE_KEYS)
     discount_rate: float  #: annual discount rate of avoided losses [-]
     benefit_horizon_yr: float  #: years over which avoided losses count [yr]
+    value_per_avoided_casualty: float | None  #: life-safety benefit per avoided casualty [currency], or None
 
 
 @dataclass(frozen=True)
@@ -335,6 +397,7 @@ class ExposureSettings(_Section):
     """``[exposure]``: the asset file."""
 
     file: Path  #: exposure table (CSV or Parquet), resolved path
+    occupancy_periods: tuple | None  #: periods of the day ``{name, hours [h], present [-]}``, or None
 
 
 @dataclass(frozen=True)

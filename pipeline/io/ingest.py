@@ -34,6 +34,7 @@ __all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves",
 EXPOSURE_COLUMNS = {  # name: required
     "asset_id": True, "lon": True, "lat": True, "building_class": True, "replacement_value": True,
     "vs30_mps": False, "occupants": False, "deductible": False, "limit": False,
+    "contents_value": False, "interruption_value_per_day": False,
     "terms_group": False,  # programme terms group (policy or account), pipeline/io/group_terms.py
 }
 HAZARD_COLUMNS = {"site_id": True, "lon": True, "lat": True, "im": True, "im_level": True, "annual_rate": True,
@@ -197,7 +198,10 @@ WHOLE = WholeNumber()
 _ALWAYS = (Real(finite=True), MaxMagnitude(_MAX_ABS))
 #: Optional exposure columns and their rules.
 _OPTIONAL_EXPOSURE = {"vs30_mps": (POSITIVE,), "occupants": (NON_NEGATIVE, WHOLE), "deductible": (NON_NEGATIVE,),
-                      "limit": (POSITIVE,)}
+                      "limit": (POSITIVE,), "contents_value": (NON_NEGATIVE,),
+                      "interruption_value_per_day": (NON_NEGATIVE,)}
+#: Optional money columns -> the per-state consequence their class must give.
+_NEEDS_CONSEQUENCE = {"contents_value": "contents_damage_ratio", "interruption_value_per_day": "downtime_days"}
 
 
 def _numbers(frame, rows, path, column, rules=(), *, required=True):
@@ -291,8 +295,10 @@ def read_exposure(path, library, group_column="building_class"):
     pandas.DataFrame, n_assets rows
         ``asset_id``, ``lon``, ``lat`` [deg], ``building_class``, ``replacement_value``
         [currency], ``vs30_mps`` [m/s], ``occupants`` [-], ``deductible`` and ``limit``
-        [currency] (NaN where the optional column is absent or empty) and ``row``, the
-        user-facing row of each asset (see :func:`read_table`); ``terms_group`` (only where
+        [currency] (building coverage), ``contents_value`` [currency],
+        ``interruption_value_per_day`` [currency/day] (NaN where the optional column is
+        absent or empty) and ``row``, the user-facing row of each asset (see
+        :func:`read_table`); ``terms_group`` (only where
         the file has the column; every asset then names its group); and ``group_column`` if
         it is none of these.
 
@@ -329,6 +335,13 @@ def read_exposure(path, library, group_column="building_class"):
         out[group_column] = _identifiers(frame, rows, path, group_column)
     if "terms_group" in frame.columns:
         out["terms_group"] = _identifiers(frame, rows, path, "terms_group")
+    for col, key in _NEEDS_CONSEQUENCE.items():
+        lacking = [c for c in library.classes if not np.isfinite(getattr(library[c], key)).all()]
+        bad = (out[col].to_numpy() > 0) & np.isin(classes, lacking)
+        if bad.any():
+            i = int(np.argmax(bad))
+            raise InputError(path, f"{col} is given but class {str(classes[i])!r} has no {key} in the fragility "
+                                   "library", row=int(rows[i]), column=col)
     out["row"] = rows
     return out
 

@@ -24,12 +24,12 @@ __all__ = ["run_input_frames", "library_from_frame", "ASSET_COLUMNS", "FRAGILITY
 
 #: Columns of ``run_assets`` (the exposure contract), in order.
 ASSET_COLUMNS = ("asset_id", "lon", "lat", "building_class", "replacement_value", "vs30_mps", "occupants",
-                 "deductible", "limit")
+                 "deductible", "limit", "contents_value", "interruption_value_per_day")
 
 #: Columns of ``run_fragility``, in order.
 FRAGILITY_COLUMNS = ("building_class", "description", "im", "damage_state", "damage_state_index", "n_states",
                      "median", "beta", "mean_damage_ratio", "cov", "downtime_days", "casualty_rate",
-                     "is_collapse_state")
+                     "is_collapse_state", "contents_damage_ratio")
 
 
 def _asset_frame(exposure):
@@ -53,7 +53,7 @@ def _fragility_frame(library, classes):
         for j, name in enumerate(dss.names):
             values = (code, dss.description, dss.im, name, j, dss.n_states, dss.medians[j], dss.betas[j],
                       dss.mean_damage_ratio[j], dss.cov[j], dss.downtime_days[j], dss.casualty_rate[j],
-                      j == dss.collapse_index)
+                      j == dss.collapse_index, dss.contents_damage_ratio[j])
             for col, v in zip(FRAGILITY_COLUMNS, values):
                 rows[col].append(v)
     out = pd.DataFrame({c: pd.Series(rows[c], dtype=object) for c in FRAGILITY_COLUMNS[:4]})
@@ -62,6 +62,7 @@ def _fragility_frame(library, classes):
     for col in FRAGILITY_COLUMNS[6:12]:
         out[col] = np.asarray(rows[col], dtype=float)
     out["is_collapse_state"] = np.asarray(rows["is_collapse_state"], dtype=bool)
+    out["contents_damage_ratio"] = np.asarray(rows["contents_damage_ratio"], dtype=float)
     return out
 
 
@@ -74,7 +75,8 @@ def run_input_frames(exposure, library, classes=None):
         The validated exposure (``quakefolio.pipeline.io.ingest.read_exposure``): columns
         ``asset_id``, ``lon``, ``lat`` [deg, WGS84], ``building_class``,
         ``replacement_value`` [currency], optional ``vs30_mps`` [m/s], ``occupants`` [-],
-        ``deductible``, ``limit`` [currency]; other columns are left out.
+        ``deductible``, ``limit`` [currency], ``contents_value`` [currency],
+        ``interruption_value_per_day`` [currency/day]; other columns are left out.
     library : FragilityLibrary
         The fragility library the run loaded.
     classes : iterable of str, optional
@@ -100,7 +102,8 @@ def library_from_frame(frame):
     frame : pandas.DataFrame
         Columns :data:`FRAGILITY_COLUMNS`; one row per class and damage state
         (``median`` [IM units, g], ``beta`` [-], ``mean_damage_ratio`` [-], ``cov`` [-],
-        ``downtime_days`` [days], ``casualty_rate`` [-]).
+        ``downtime_days`` [days], ``casualty_rate`` [-], ``contents_damage_ratio`` [-], absent
+        in runs written before it existed).
 
     Returns
     -------
@@ -119,5 +122,7 @@ def library_from_frame(frame):
             mean_damage_ratio=g.mean_damage_ratio.to_numpy(float), cov=g["cov"].to_numpy(float),
             downtime_days=g.downtime_days.to_numpy(float), casualty_rate=g.casualty_rate.to_numpy(float),
             collapse_index=int(collapse[0]) if len(collapse) else -1,
+            contents_damage_ratio=(g.contents_damage_ratio.to_numpy(float) if "contents_damage_ratio" in g
+                                   else None),
             description="" if description is None or description != description else str(description))
     return FragilityLibrary(classes=classes)

@@ -304,6 +304,75 @@ TABLES.update({
     ),
 })
 
+# People and time (pipeline/stages/people.py): casualties, downtime, contents and interruption losses.
+TABLES["run_assets"]["units"].update({"contents_value": "{currency}", "interruption_value_per_day": "{currency}/day"})
+TABLES["run_fragility"]["units"].update({"contents_damage_ratio": "-"})
+_PEOPLE_UNITS = {"casualties": "persons", "downtime_days": "building-days", "contents_loss": "{currency}",
+                 "interruption_loss": "{currency}", "present_fraction": "-"}
+TABLES.update({
+    "asset_consequences": dict(
+        description="Per asset, classical annual expectations of the same model as the EAL: casualties = "
+                    "occupants x mean fraction present x sum over states of (rate of being in the state) x "
+                    "casualty_rate; downtime = sum of (rate in state) x downtime_days; contents EAL = contents value "
+                    "x sum of (rate in state) x contents_damage_ratio; interruption EAL = downtime x value of a day; "
+                    "total EAL over the three coverages (ground-up). NaN where an input is not given.",
+        units={"occupants": "persons", "mean_present_fraction": "-", "expected_annual_casualties": "persons/yr",
+               "expected_annual_downtime_days": "building-days/yr", "building_eal": "{currency}/yr",
+               "contents_value": "{currency}", "contents_eal": "{currency}/yr",
+               "interruption_value_per_day": "{currency}/day", "interruption_eal": "{currency}/yr",
+               "total_eal": "{currency}/yr"},
+    ),
+    "portfolio_consequences": dict(
+        description="Portfolio totals of the classical annual expectations of asset_consequences, one row per "
+                    "metric (casualties, downtime, losses by coverage: building, contents, interruption), with the "
+                    "assets counted and left out (inputs not given) and how terms apply to the coverage.",
+        units={"classical_annual_mean": "see column unit", "assets_counted": "-", "assets_left_out": "-"},
+    ),
+    "event_consequences": dict(
+        description="Per event of the event set: casualties (expected over damage states at the sampled intensity, "
+                    "times the fraction of occupants present in the event's period of the day), downtime, contents "
+                    "and interruption losses (ground-up).",
+        units=_PEOPLE_UNITS,
+    ),
+    "consequence_ep": dict(
+        description="Casualties, downtime, contents and interruption losses at the configured return periods: "
+                    "aggregate annual (AEP) and largest-event (OEP) values and TVaR of the annual totals.",
+        units={"return_period_yr": "yr", "aep_value": "see column unit", "oep_value": "see column unit",
+               "tvar_value": "see column unit"},
+    ),
+    "consequence_event_summary": dict(
+        description="Event-based annual averages of casualties, downtime, contents and interruption losses with "
+                    "their standard errors, against the classical expectation of the same source branch and "
+                    "ground-motion weights (z-score).",
+        units={"annual_average": "see column unit", "standard_error": "see column unit",
+               "classical_same_branch": "see column unit", "z": "-"},
+    ),
+    "whatif_people": dict(
+        description="Retrofit what-if per alternative (scope 'alternative', sums) and selected asset: classical "
+                    "casualties, downtime, contents and interruption EAL before, after and avoided; present values "
+                    "of the avoided losses (building, contents, interruption) and of the avoided casualties at the "
+                    "user's value per avoided casualty (NaN when none is given: no built-in value), and the "
+                    "benefit-cost ratio of the total (benefits_counted says what it counts).",
+        units={"retrofit_cost": "{currency}", "casualties_before": "persons/yr", "casualties_after": "persons/yr",
+               "avoided_casualties": "persons/yr", "downtime_days_before": "building-days/yr",
+               "downtime_days_after": "building-days/yr", "avoided_downtime_days": "building-days/yr",
+               "contents_eal_before": "{currency}/yr", "contents_eal_after": "{currency}/yr",
+               "avoided_contents_eal": "{currency}/yr", "interruption_eal_before": "{currency}/yr",
+               "interruption_eal_after": "{currency}/yr", "avoided_interruption_eal": "{currency}/yr",
+               "pv_avoided_losses": "{currency}", "value_per_avoided_casualty": "{currency}/person",
+               "pv_life_safety_benefit": "{currency}", "pv_total_benefit": "{currency}",
+               "benefit_cost_ratio_all": "-"},
+    ),
+    "whatif_people_portfolio": dict(
+        description="Retrofit what-if, portfolio casualties, downtime, contents and interruption losses before and "
+                    "after each alternative: classical annual expectations, and in event-based runs the annual "
+                    "averages over the same simulated years (standard error of the change from paired years).",
+        units={"value_before": "see column unit", "value_after": "see column unit", "change": "see column unit",
+               "relative_change": "-", "standard_error_of_change": "see column unit"},
+    ),
+})
+TABLES["whatif_benefit_cost"]["description"] += (" benefits_counted: this ratio counts building repair cost only "
+                                                 "(whatif_people adds contents, interruption and life safety).")
 
 def units_for(name, currency):
     """Column units of a run table, with ``{currency}`` replaced by the run's currency.

@@ -14,6 +14,7 @@ from quakefolio.pipeline.report.sections_changes import _section_changes
 from quakefolio.pipeline.report.sections_hazard import _section_hazard
 from quakefolio.pipeline.report.sections_overview import _key_figures, _section_checks, _section_inputs
 from quakefolio.pipeline.report.sections_portfolio import _section_portfolio, _section_screening, _section_whatif
+from quakefolio.pipeline.report.sections_people import _section_people
 from quakefolio.pipeline.io.store import atomic_write_text
 
 __all__ = ["build_report", "write_report", "SECTIONS"]
@@ -28,6 +29,7 @@ SECTIONS = (
     ("portfolio", "Portfolio loss: exceedance curves, AAL, PML and TVaR"),
     ("screening", "Collapse-risk screening"),
     ("whatif", "Retrofit what-if and benefit-cost"),
+    ("people", "People and time: casualties, downtime, losses by coverage"),
     ("map", "Map of assets"),
     ("changes", "Changes since the previous run"),
     ("checks", "Built-in cross-checks and hazard logic tree"),
@@ -72,7 +74,7 @@ def build_report(run_dir, *, previous_run=None):
         "inputs": (_section_inputs, run), "hazard": (_section_hazard, run), "fragility": (_section_fragility, run),
         "damage": (_section_damage, run), "riskiest": (_section_riskiest, run),
         "portfolio": (_section_portfolio, run), "screening": (_section_screening, run),
-        "whatif": (_section_whatif, run), "map": (_section_map, run),
+        "whatif": (_section_whatif, run), "people": (_section_people, run), "map": (_section_map, run),
         "changes": (_section_changes, run, previous_run), "checks": (_section_checks, run),
     }
     with matplotlib.rc_context(_RC):

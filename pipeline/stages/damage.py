@@ -17,6 +17,7 @@ from quakefolio.pipeline.io.cache import PairStore, digest, row_digests
 from quakefolio.pipeline.io.ingest import curves_for_im
 from quakefolio.pipeline.stages.hazard import branch_weights, statistic_name
 from quakefolio.pipeline.stages.inputs import stage_cache
+from quakefolio.pipeline.stages.people import consequence_tables
 from quakefolio.pipeline.stages.products import (
     BlockResult, CacheCounts, ClassDamage, DamagePlan, DamageProduct, WorkBlock, frozen_mapping,
 )
@@ -166,6 +167,7 @@ def combine_damage(inputs, plan, results):
     """
     classes = _class_damage(inputs, plan, results)
     tables, warnings = build_tables(inputs, classes)
+    tables.update(consequence_tables(inputs, classes, tables["asset_loss"]))
     if any(r.ds_fractiles is not None for r in results):
         tables.update(_fractile_tables(inputs, results))
     return DamageProduct(frozen_mapping(classes), tuple(sorted(results, key=lambda r: r.block.block_id)),

@@ -38,6 +38,7 @@ from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
 from quakefolio.pipeline.stages import event_branches as eb
 from quakefolio.pipeline.stages.programme import programme_digest, programme_tables
+from quakefolio.pipeline.stages import people as pp
 
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
@@ -84,6 +85,7 @@ class EventModel:
     group_names: tuple = ()
     group: np.ndarray | None = None  # (n_assets,) index into group_names
     group_terms: object = None  # GroupTerms of [programme] (None: no group terms)
+    people: object = None  # PeopleModel: casualties, downtime, contents and interruption (stages.people)
 
 
 def _groups(exposure, column):
@@ -221,7 +223,7 @@ def prepare_events(inputs):
         levels_g=model.levels_g, asset_site=local, classes=classes, value=ex.replacement_value.to_numpy(),
         deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task,
         correlation=pf.secondary_correlation, group_column=pf.secondary_group, group_names=group_names, group=group,
-        group_terms=inputs.group_terms, **tree)
+        group_terms=inputs.group_terms, people=pp.prepare_people(inputs, events.n_events, pf.seed, classes), **tree)
 
 
 def event_chunks(em):
@@ -254,6 +256,7 @@ class ChunkResult:
     independent: tuple | None = None  # (ground-up, net) (n_ev,) with independent draws (sampled, correlation > 0)
     programme: np.ndarray = None  # (n_ev,) after building and group terms [currency]
     group_sum: np.ndarray = None  # (n_blocks, 2, n_groups): before, after group terms [currency]
+    people: np.ndarray = None  # (n_ev, 4): casualties, downtime, contents and interruption loss (stages.people)
 
 
 def _correlated(em):
@@ -310,7 +313,7 @@ def event_chunk(em, chunk, independent=True):
         other = portfolio_event_losses(im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model,
                                              seed=em.seed, blocks=rows)[:2]
     return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts, other, programme,
-                       group_sum)
+                       group_sum, pp.chunk_consequences(em, im, start, stop))
 
 
 def combine_events(em, inputs, results):
@@ -423,6 +426,9 @@ def combine_events(em, inputs, results):
             "secondary_correlation": em.correlation, "secondary_group": em.group_column,
             "change": aal.change.tolist(), "standard_error_of_change": aal.standard_error_of_change.tolist(),
             "passed": bool((aal.change.abs() <= 3 * aal.standard_error_of_change).all())}
+    if em.people is not None and results:
+        tables.update(pp.event_consequence_tables(em, inputs, np.concatenate([r.people for r in results]),
+                                                  _branch_mean_curves(em, inputs)))
     return tables, checks
 
 
@@ -536,4 +542,4 @@ def event_cache_key(inputs):
     classes = fragility_class_digests(inputs.library)
     return digest("events", model.digest, cfg.resolved()["portfolio"], cfg.resolved()["hazard"],
                   cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"],
-                  *programme_digest(inputs))
+                  *programme_digest(inputs), pp.people_cache_key(inputs))

@@ -58,6 +58,7 @@ from quakefolio.core.whatif import alternative_change, change, paired_aal_change
 from quakefolio.fragility import load_library
 from quakefolio.pipeline.io.ingest import curves_for_im
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
+from quakefolio.pipeline.stages.people import add_benefits, moved_people, whatif_people_tables, year_totals
 
 __all__ = ["Alternative", "EventRerun", "validate", "evaluate", "screening_tables", "alternative_tables",
            "rerun_events", "annuity_factor", "present_value", "UHS_PROB", "UHS_YEARS"]
@@ -91,10 +92,11 @@ def _suggestion(name, valid, what):
 
 
 def _same_fragility(a, b):
-    """True when two damage-state sets give identical damage and loss (same IM and parameters)."""
+    """True when two damage-state sets give identical damage, loss and consequences (same IM and parameters)."""
     return (a.im == b.im and a.collapse_index == b.collapse_index and a.n_states == b.n_states
-            and all(np.array_equal(getattr(a, k), getattr(b, k))
-                    for k in ("medians", "betas", "mean_damage_ratio", "cov")))
+            and all(np.array_equal(getattr(a, k), getattr(b, k), equal_nan=True)
+                    for k in ("medians", "betas", "mean_damage_ratio", "cov", "casualty_rate", "downtime_days",
+                              "contents_damage_ratio")))
 
 
 def validate(inputs, hashes=None, lines=None):
@@ -332,6 +334,7 @@ class EventRerun:
     max_event_ground_up: np.ndarray  # (n_years,) largest event [currency]
     max_event_net: np.ndarray
     asset_aal_ground_up: np.ndarray  # (n_assets,) [currency/yr], exposure order
+    people_years: np.ndarray = None  # (n_years, 4) annual casualties, downtime, contents, interruption (stages.people)
 
 
 def rerun_events(em, alternative):
@@ -368,15 +371,18 @@ def rerun_events(em, alternative):
     alt = dataclasses.replace(em, value=value, deductible=np.concatenate([em.deductible, em.deductible[changed]]),
                               limit=np.concatenate([em.limit, em.limit[changed]]), classes=list(em.classes) + [entry],
                               group=ps.extended_group(em, changed, alternative.new_class),
-                              group_terms=None)  # the what-if compares building losses; no programme terms
+                              group_terms=None,  # the what-if compares building losses; no programme terms
+                              people=moved_people(em.people, changed, alternative.dss))
     chunks = sorted((ps.event_chunk(alt, c, independent=False) for c in ps.event_chunks(alt)), key=lambda r: r.start)
     gu = np.concatenate([c.ground_up for c in chunks]) if chunks else np.zeros(0)
     net = np.concatenate([c.net for c in chunks]) if chunks else np.zeros(0)
     asset_sum = sum_over_blocks([c.asset_sum for c in chunks]) if chunks else np.zeros((2, n + len(changed)))
     agg_gu, occ_gu = year_loss(em.events.year, gu, em.n_years)
     agg_net, occ_net = year_loss(em.events.year, net, em.n_years)
+    people = (year_totals(em.events.year, np.concatenate([c.people for c in chunks]), em.n_years)
+              if chunks and em.people is not None else None)
     return EventRerun(em.events.event_id, gu, net, agg_gu, agg_net, occ_gu, occ_net,
-                      rerun_asset_aal(asset_sum[0], n, changed, em.n_years))
+                      rerun_asset_aal(asset_sum[0], n, changed, em.n_years), people)
 
 
 def _event_rows(alt_id, portfolio, rerun, return_periods, cur):
@@ -425,7 +431,7 @@ def _row(alt_id, metric, basis, rp, unit, before, after, se=np.nan):
 
 # --- what-if tables ---------------------------------------------------------------------------
 
-def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
+def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None, people_out=None):
     """``whatif_assets``, ``whatif_asset_damage``, ``whatif_portfolio``, ``whatif_benefit_cost``.
 
     Parameters
@@ -441,6 +447,10 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
         (tables, checks) of the event-based stage, or None.
     em : quakefolio.pipeline.stages.events.EventModel or None
         Event model of the run (prepared here when needed and not given).
+    people_out : dict, optional
+        Filled with ``ds_after`` (alternative id -> damage-state rates of the selected
+        assets after) and ``reruns`` (alternative id -> annual event consequences after,
+        :mod:`quakefolio.pipeline.stages.people`).
 
     Returns
     -------
@@ -484,6 +494,8 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
             keep = ~alt.changed[pos]  # same parameters as the new class, so the same number of states
             if keep.any():
                 ds_after[pos[keep]] = r[keep]
+        if people_out is not None:
+            people_out.setdefault("ds_after", {})[alt.alt_id] = ds_after.copy()
         frames = [_damage_frame(alt.alt_id, ids[a[pos]], "before", code, inputs.library[code].names, r, horizon)
                   for code, (pos, r) in ds_before.items()]
         frames.append(_damage_frame(alt.alt_id, ids[a], "after", alt.new_class, new.names, ds_after, horizon))
@@ -517,6 +529,8 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None):
 
                     em = prepare_events(inputs)
                 rerun = rerun_events(em, alt)
+                if people_out is not None and rerun.people_years is not None:
+                    people_out.setdefault("reruns", {})[alt.alt_id] = rerun.people_years
                 portfolio_rows += _event_rows(alt.alt_id, portfolio, rerun, rps, cur)
             else:  # nothing changes: the run's own numbers
                 portfolio_rows += _unchanged_event_rows(alt.alt_id, portfolio, rps, cur)
@@ -617,5 +631,9 @@ def evaluate(inputs, results, portfolio=None, em=None):
     collapse, _ = _per_asset(inputs, by_class)
     tables = screening_tables(inputs, collapse)
     if alternatives:
-        tables.update(alternative_tables(inputs, alternatives, by_class, portfolio, em))
+        people = {}
+        tables.update(alternative_tables(inputs, alternatives, by_class, portfolio, em, people))
+        tables.update(whatif_people_tables(inputs, alternatives, by_class, people["ds_after"], portfolio,
+                                           people.get("reruns")))
+        add_benefits(tables, inputs)
     return tables
