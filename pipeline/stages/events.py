@@ -414,9 +414,33 @@ def combine_events(em, inputs, results):
         "asset_event_loss": asset_aal, "portfolio_breakdown": pd.concat(breakdown, ignore_index=True),
         **programme_tables(em, inputs, results),
     }
-    if tree:
+    _optional_tables(em, inputs, results, (gu, net), years, rps, tables, checks)
+    return tables, checks
+
+
+def _optional_tables(em, inputs, results, losses, years, rps, tables, checks):
+    """Add the tables and checks of the options in use (filled in place).
+
+    Whole logic tree: per-branch tables and checks; correlated sampled damage: the
+    correlation's effect against independent draws; people and time: event consequences.
+
+    Parameters
+    ----------
+    em : EventModel
+    inputs : RunInputs
+    results : list of ChunkResult
+        In event order.
+    losses : (ndarray, ndarray)
+        Ground-up and net loss of every event [currency].
+    years : dict basis -> (aggregate, largest event) year losses [currency]
+    rps : ndarray [yr]
+        Return periods.
+    tables, checks : dict
+        The stage's tables and checks, completed here.
+    """
+    if em.year_combo is not None:
         model = inputs.hazard_model
-        tables.update(eb.branch_tables(em, model, gu, net, years, rps, model.fractiles,
+        tables.update(eb.branch_tables(em, model, *losses, years, rps, model.fractiles,
                                        eb.classical_by_combination(em, model, inputs.config.fragility.tail)))
         checks["branch_aal_vs_classical_eal"] = _branch_check(tables["portfolio_branch_summary"])
     if _correlated(em):
@@ -429,7 +453,6 @@ def combine_events(em, inputs, results):
     if em.people is not None and results:
         tables.update(pp.event_consequence_tables(em, inputs, np.concatenate([r.people for r in results]),
                                                   _branch_mean_curves(em, inputs)))
-    return tables, checks
 
 
 def _branch_check(summary):
