@@ -6,7 +6,10 @@ tables, vectorised over events and assets:
 1. **Loss per asset and event**: the loss ratio at the sampled intensity
    (:func:`quakefolio.core.events.portfolio.expected_loss_ratio`, or sampled damage states with
    one random stream per event block and class entry), times the replacement value;
-   policy terms per asset and event (:func:`quakefolio.core.events.portfolio.apply_policy`).
+   policy terms per asset and event: on the sampled loss
+   (:func:`quakefolio.core.events.portfolio.apply_policy`), or in the mean mode the
+   expected net loss over damage states and loss ratios
+   (:func:`quakefolio.core.events.portfolio.expected_net_loss_ratio`, closed form).
 2. **Sums per random-number block** (per event, per asset, per class), so that totals do
    not depend on how blocks are grouped into tasks.
 3. **Statistics of the simulation**: per-asset AAL with its compound-Poisson standard
@@ -20,7 +23,9 @@ from __future__ import annotations
 import numpy as np
 
 from quakefolio.core.events.eventset import damage_block_rng
-from quakefolio.core.events.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio, sample_loss_ratio
+from quakefolio.core.events.portfolio import (
+    aal_with_standard_error, apply_policy, expected_loss_ratio, expected_net_loss_ratio, sample_loss_ratio,
+)
 
 __all__ = [
     "event_loss_ratio",
@@ -71,7 +76,7 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
     return np.concatenate(parts)
 
 
-def block_loss_sums(ratio, value, deductible, limit, bounds):
+def block_loss_sums(ratio, value, deductible, limit, bounds, net=None):
     r"""Ground-up and net losses [currency] of assets over events, summed per event and per block.
 
     Parameters
@@ -84,6 +89,10 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
         Policy terms (NaN: none), :func:`apply_policy`.
     bounds : sequence of (first row, stop row)
         Rows of each random-number block.
+    net : ndarray, shape (n_events, n_assets), optional [currency]
+        Net loss of every asset-event when already known (mean mode:
+        :func:`quakefolio.core.events.portfolio.expected_net_loss_ratio` x value);
+        otherwise the terms are applied to ``ratio x value``.
 
     Returns
     -------
@@ -98,11 +107,12 @@ def block_loss_sums(ratio, value, deductible, limit, bounds):
 
     Notes
     -----
-    Loss = ratio x value; net = :func:`apply_policy`.  Sums are kept per random-number
-    block so that totals do not depend on how blocks are grouped into tasks.
+    Loss = ratio x value; net = :func:`apply_policy` unless given.  Sums are kept per
+    random-number block so that totals do not depend on how blocks are grouped into tasks.
     """
     gu = ratio * value
-    net = apply_policy(gu, deductible, limit)
+    if net is None:
+        net = apply_policy(gu, deductible, limit)
     n_assets = gu.shape[1]
     asset_sum = np.zeros((len(bounds), 2, n_assets))
     asset_sumsq = np.zeros((len(bounds), 2, n_assets))
@@ -140,7 +150,10 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     Notes
     -----
     Classes are added in their given order (:func:`event_loss_ratio`,
-    :func:`block_loss_sums`).
+    :func:`block_loss_sums`).  Mean mode: ground-up from the mean loss ratio, net the
+    expected net loss given the intensity (not the terms applied to the mean loss), so
+    both are the conditional expectations, given the ground motion, of the sampled
+    mode's losses.
     """
     n_ev = im.shape[0]
     bounds = [(lo, hi) for _, lo, hi in blocks]
@@ -150,10 +163,15 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     asset_sumsq = np.zeros((len(bounds), 2, len(value)))
     class_sum = np.zeros((len(bounds), len(classes), 2))
     for k, (assets, i_im, medians, betas, mdr, cov, usites, pair) in enumerate(classes):
-        ratio = event_loss_ratio(im[:, i_im, usites], medians, betas, mdr, cov, pair, loss_model=loss_model,
+        x = im[:, i_im, usites]
+        ratio = event_loss_ratio(x, medians, betas, mdr, cov, pair, loss_model=loss_model,
                                  seed=seed, blocks=blocks, class_entry=k)
+        net_k = None
+        if loss_model == "mean_damage_ratio":  # expected net loss given x, over the loss distribution
+            net_k = value[assets] * expected_net_loss_ratio(x[:, pair], medians, betas, mdr, cov, value[assets],
+                                                            deductible[assets], limit[assets])
         gu, net, a_sum, a_sumsq, total = block_loss_sums(ratio, value[assets], deductible[assets], limit[assets],
-                                                         bounds)
+                                                         bounds, net=net_k)
         gu_ev += gu
         net_ev += net
         asset_sum[:, :, assets] = a_sum
