@@ -9,7 +9,7 @@ tables, vectorised over events and assets:
    policy terms per asset and event: on the sampled loss
    (:func:`quakefolio.core.events.portfolio.apply_policy`), or in the mean mode the
    expected net loss over damage states and loss ratios
-   (:func:`quakefolio.core.events.portfolio.expected_net_loss_ratio`, closed form).
+   (:func:`quakefolio.core.events.portfolio.expected_loss_ratios`, closed form).
 2. **Sums per random-number block** (per event, per asset, per class), so that totals do
    not depend on how blocks are grouped into tasks.
 3. **Statistics of the simulation**: per-asset AAL with its compound-Poisson standard
@@ -24,7 +24,7 @@ import numpy as np
 
 from quakefolio.core.events.eventset import damage_block_rng
 from quakefolio.core.events.portfolio import (
-    aal_with_standard_error, apply_policy, expected_loss_ratio, expected_net_loss_ratio, sample_loss_ratio,
+    aal_with_standard_error, apply_policy, expected_loss_ratio, expected_loss_ratios, sample_loss_ratio,
 )
 
 __all__ = [
@@ -164,12 +164,14 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     class_sum = np.zeros((len(bounds), len(classes), 2))
     for k, (assets, i_im, medians, betas, mdr, cov, usites, pair) in enumerate(classes):
         x = im[:, i_im, usites]
-        ratio = event_loss_ratio(x, medians, betas, mdr, cov, pair, loss_model=loss_model,
-                                 seed=seed, blocks=blocks, class_entry=k)
         net_k = None
-        if loss_model == "mean_damage_ratio":  # expected net loss given x, over the loss distribution
-            net_k = value[assets] * expected_net_loss_ratio(x[:, pair], medians, betas, mdr, cov, value[assets],
-                                                            deductible[assets], limit[assets])
+        if loss_model == "mean_damage_ratio":  # net: expected over the loss distribution given x
+            ratio, net_ratio = expected_loss_ratios(x, medians, betas, mdr, cov, value[assets], deductible[assets],
+                                                    limit[assets], pair=pair)
+            net_k = value[assets] * net_ratio
+        else:
+            ratio = event_loss_ratio(x, medians, betas, mdr, cov, pair, loss_model=loss_model,
+                                     seed=seed, blocks=blocks, class_entry=k)
         gu, net, a_sum, a_sumsq, total = block_loss_sums(ratio, value[assets], deductible[assets], limit[assets],
                                                          bounds, net=net_k)
         gu_ev += gu

@@ -78,6 +78,7 @@ __all__ = [
     "exceedance_envelope",
     "expected_loss_ratio",
     "expected_net_loss_ratio",
+    "expected_loss_ratios",
     "sample_loss_ratio",
     "apply_policy",
     "year_loss",
@@ -205,7 +206,7 @@ def expected_loss_ratio(im, medians, betas, mean_damage_ratio):
     return np.sum(increments * p, axis=-1)
 
 
-def expected_net_loss_ratio(im, medians, betas, mean_damage_ratio, cov, value, deductible, limit):
+def expected_net_loss_ratio(im, medians, betas, mean_damage_ratio, cov, value, deductible, limit, pair=None):
     r"""Expected net loss per unit of value [-] at intensity ``im``, after per-event policy terms.
 
     Parameters
@@ -219,6 +220,10 @@ def expected_net_loss_ratio(im, medians, betas, mean_damage_ratio, cov, value, d
     value, deductible, limit : array_like, broadcastable to broadcast(S, F, M) [currency]
         Replacement value and per-event terms of each asset (NaN: none, as
         :func:`apply_policy`).
+    pair : ndarray of int, shape (n_assets,), optional
+        When given, ``im`` holds intensities at shared locations along its last axis and
+        asset ``i`` takes column ``pair[i]`` (the fragility is evaluated once per
+        location); the result's last axis is then the assets'.
 
     Returns
     -------
@@ -239,16 +244,39 @@ def expected_net_loss_ratio(im, medians, betas, mean_damage_ratio, cov, value, d
     applied to the loss distribution, not to the mean loss ratio (the deductible payoff
     is convex, the limit concave: Jensen's inequality).
     """
+    return expected_loss_ratios(im, medians, betas, mean_damage_ratio, cov, value, deductible, limit, pair)[1]
+
+
+def expected_loss_ratios(im, medians, betas, mean_damage_ratio, cov, value, deductible, limit, pair=None):
+    r"""Expected ground-up and net loss per unit of value [-], one fragility evaluation for both.
+
+    Parameters and notes as :func:`expected_net_loss_ratio`.
+
+    Returns
+    -------
+    ground_up : ndarray [-]
+        Bit for bit :func:`expected_loss_ratio` (gathered by ``pair`` when given).
+    net : ndarray [-]
+        :func:`expected_net_loss_ratio`.
+    """
     p = exceedance_envelope(im, medians, betas)
     mdr, c = check_damage_ratios(mean_damage_ratio, cov)
     if mdr.shape[-1] != p.shape[-1]:
         raise ValueError(
             f"mean_damage_ratio has {mdr.shape[-1]} damage states but the fragility has {p.shape[-1]}"
         )
-    v, d, lim = (np.asarray(t, dtype=float)[..., None] for t in (value, deductible, limit))
-    r = net_loss_ratio(mdr, c, v, d, lim)  # (..., n_ds): per asset, not per asset-event
+    ground_up = np.sum(np.diff(mdr, axis=-1, prepend=0.0) * p, axis=-1)
+    v, d, lim = (np.asarray(t, dtype=float) for t in (value, deductible, limit))
+    r = net_loss_ratio(mdr, c, v[..., None], d[..., None], lim[..., None])  # per asset, not per asset-event
     increments = np.diff(r, axis=-1, prepend=0.0)
-    return np.sum(increments * p, axis=-1)
+    net = 0.0
+    for j in range(p.shape[-1]):  # state by state: no (events, assets, states) temporaries
+        p_j = p[..., j] if pair is None else p[..., j][..., pair]
+        net = net + increments[..., j] * p_j
+    if pair is not None:
+        ground_up = ground_up[..., pair]
+    no_terms = ((d == 0) | np.isnan(d)) & (np.isnan(lim) | (lim == np.inf))
+    return ground_up, np.where(no_terms, ground_up, net)  # equal in exact arithmetic; kept bit for bit
 
 
 def sample_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov=None):
