@@ -68,7 +68,7 @@ def _portfolio_lines(run, manifest, cur):
                      f"({'within' if p['passed'] else 'OUTSIDE'} 3 standard errors)")
     n = checks.get("portfolio_net_aal_vs_classical_net_eal")
     if n:
-        lines.append(f"  cross-check, net: event-based net AAL {_money(n['event_based_aal'])} vs classical net EAL "
+        lines.append(f"  cross-check, net: event-based net AAL {_money(n['event_based_aal'])} vs classical net EAL of the same branch "
                      f"{_money(n['classical_eal'])} {cur}/yr, z = {n['z']:+.2f} "
                      f"({'within' if n['passed'] else 'OUTSIDE'} 3 standard errors)")
     if a:
