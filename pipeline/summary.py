@@ -129,6 +129,11 @@ def _portfolio_lines(run, manifest, cur):
                      f"{'all branches' if tree else 'the same branch'} {_money(p['classical_eal'])} {cur}/yr, "
                      f"z = {p['z']:+.2f} "
                      f"({'within' if p['passed'] else 'OUTSIDE'} 3 standard errors)")
+    n = checks.get("portfolio_net_aal_vs_classical_net_eal")
+    if n:
+        lines.append(f"  cross-check, net: event-based net AAL {_money(n['event_based_aal'])} vs classical net EAL of the same branch "
+                     f"{_money(n['classical_eal'])} {cur}/yr, z = {n['z']:+.2f} "
+                     f"({'within' if n['passed'] else 'OUTSIDE'} 3 standard errors)")
     if a:
         lines.append(f"  cross-check, assets: {a['within_3_standard_errors']} of {a['assets']} within 3 standard "
                      f"errors of their classical EAL (max |z| {a['max_abs_z']:.2f})")
@@ -255,6 +260,13 @@ def _whatif_lines(run, cur):
     return lines
 
 
+def _net_eal_line(loss, cur):
+    """Portfolio EAL net of the per-event deductibles and limits (older runs lack the column)."""
+    if "eal_net" not in loss:
+        return []
+    return [f"  portfolio EAL net of deductibles and limits (classical) {_money(loss.eal_net.sum())} {cur}/yr"]
+
+
 def summary_text(run_dir, *, elapsed_s=None):
     """The printed summary of a run: caution, assets, EAL, riskiest assets, hazard, portfolio, what-if, cache.
 
@@ -290,6 +302,7 @@ def summary_text(run_dir, *, elapsed_s=None):
         f"{loss.site_id.nunique()}   total replacement value {_money(total_value)} {cur}",
         f"  portfolio EAL (classical, sum of per-asset EAL) {_money(eal)} {cur}/yr  "
         f"({1000 * eal / total_value:.3f} per mille of value)",
+        *_net_eal_line(loss, cur),
         "",
         f"  {top_n} assets with the highest collapse probability in {horizon:g} years:",
         f"  {'asset_id':<12}{'class':<10}{'site':<8}{'collapse/yr':>13}{'P(' + format(horizon, 'g') + ' yr)':>12}"

@@ -21,7 +21,9 @@ from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
 from quakefolio.core.gmm import GmmInput, get_gmm
 from quakefolio.core.hazard import event_ground_motion
 from quakefolio.core.sources.mfd import truncated_gr
-from quakefolio.core.events.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio, sample_loss_ratio
+from quakefolio.core.events.portfolio import (
+    aal_with_standard_error, apply_policy, expected_loss_ratio, expected_net_loss_ratio, sample_loss_ratio,
+)
 from quakefolio.core.sources.ruptures import RuptureSet, planar_fault_ruptures, point_source_ruptures
 
 
@@ -102,7 +104,8 @@ def test_event_ground_motion_equals_the_previous_stage_code(seed):
 # --- event losses -----------------------------------------------------------------------------
 
 def _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks):
-    """The previous stage loop (event_chunk)."""
+    """The previous stage loop (event_chunk), with the mean mode's net loss now the expected net loss
+    given the intensity (expected_net_loss_ratio, checked against Monte Carlo in test_net_loss.py)."""
     n_ev, n_assets = im.shape[0], len(value)
     gu_ev, net_ev = np.zeros(n_ev), np.zeros(n_ev)
     bounds = [(lo, hi) for _, lo, hi in blocks]
@@ -121,6 +124,9 @@ def _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks):
             ratio = np.concatenate(parts)
         gu = ratio * value[assets]
         net = apply_policy(gu, ded[assets], lim[assets])
+        if loss_model == "mean_damage_ratio":
+            net = value[assets] * expected_net_loss_ratio(x[:, pair], med, beta, mdr, cov, value[assets], ded[assets],
+                                                          lim[assets])
         gu_ev += gu.sum(axis=1)
         net_ev += net.sum(axis=1)
         for j, (lo, hi) in enumerate(bounds):

@@ -110,3 +110,32 @@ def test_independent_and_comonotonic_limits():
     assert_allclose(ind.sum(axis=1).var(ddof=1), var_sum, rtol=0.15)  # sampling error of 4000 draws
     com = _single_event_losses(np.inf)
     assert_allclose(com.sum(axis=1).std(ddof=1), com.std(axis=0, ddof=1).sum(), rtol=1e-9)
+
+
+def test_net_loss_mean_mode_agrees_with_sampled_mode_and_classical(event_config):
+    # Mean mode: the expected net loss given the ground motion (terms over the loss distribution,
+    # closed form), so its net AAL estimates that of the sampled mode of the same model; with the
+    # same seed the events and ground motion are shared and the difference of the year losses has
+    # the paired standard error. Both agree with the classical net EAL of the same branch.
+    mean_run = run_pure(event_config)
+    _with(event_config, "seed = 7", "seed = 7\nloss_model = \"sampled_damage\"")
+    sampled_run = run_pure(event_config)
+    ym, ys = read_table(mean_run, "year_loss"), read_table(sampled_run, "year_loss")
+    assert_allclose(ym.ground_up_loss.sum(), read_table(mean_run, "event_loss").ground_up_loss.sum(), rtol=1e-12)
+    diff = ys.net_loss.to_numpy() - ym.net_loss.to_numpy()
+    paired_se = diff.std(ddof=1) / np.sqrt(len(diff))
+    assert abs(diff.mean()) <= 3 * paired_se
+    for run in (mean_run, sampled_run):
+        checks = json.loads((run / "manifest.json").read_text())["cross_checks"]
+        net = checks["portfolio_net_aal_vs_classical_net_eal"]
+        assert net["passed"], net
+        summary = read_table(run, "portfolio_summary").set_index("basis")
+        loss = read_table(run, "asset_loss")
+        assert summary.loc["net", "classical_eal_same_branch"] == pytest.approx(net["classical_eal"], rel=1e-12)
+        assert summary.loc["net", "classical_eal_same_branch"] < summary.loc["ground_up", "classical_eal_same_branch"]
+    # classical net EAL per asset: below the EAL, equal (bit for bit) where the asset has no terms
+    assets = pd.read_csv(event_config.parent / "exposure.csv")
+    no_terms = (assets.deductible.isna() & assets.limit.isna()).to_numpy()
+    assert no_terms.any() and (~no_terms).any()
+    assert (loss.eal_net[no_terms] == loss.eal[no_terms]).all()
+    assert (loss.eal_net[~no_terms] < loss.eal[~no_terms]).all()

@@ -7,7 +7,10 @@ tables, vectorised over events and assets:
    (:func:`quakefolio.core.events.portfolio.expected_loss_ratio`, or sampled damage states with
    one random stream per event block and class entry, optionally correlated within groups of
    assets, :mod:`quakefolio.core.events.secondary`), times the replacement value;
-   policy terms per asset and event (:func:`quakefolio.core.events.portfolio.apply_policy`).
+   policy terms per asset and event: on the sampled loss
+   (:func:`quakefolio.core.events.portfolio.apply_policy`), or in the mean mode the
+   expected net loss over damage states and loss ratios
+   (:func:`quakefolio.core.events.portfolio.expected_loss_ratios`, closed form).
 2. **Sums per random-number block** (per event, per asset, per class), so that totals do
    not depend on how blocks are grouped into tasks.
 3. **Statistics of the simulation**: per-asset AAL with its compound-Poisson standard
@@ -21,7 +24,9 @@ from __future__ import annotations
 import numpy as np
 
 from quakefolio.core.events.eventset import damage_block_rng
-from quakefolio.core.events.portfolio import aal_with_standard_error, apply_policy, expected_loss_ratio
+from quakefolio.core.events.portfolio import (
+    aal_with_standard_error, apply_policy, expected_loss_ratio, expected_loss_ratios,
+)
 from quakefolio.core.events.secondary import group_factors, sample_correlated_loss_ratio
 
 __all__ = [
@@ -82,7 +87,7 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
     return np.concatenate(parts)
 
 
-def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None):
+def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=None):
     r"""Ground-up and net losses [currency] of assets over events, summed per event and per block.
 
     Parameters
@@ -98,6 +103,10 @@ def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None):
     on_net : callable, optional
         Called with the net losses, shape (n_events, n_assets) [currency] (e.g.
         :meth:`quakefolio.core.events.programme.GroupSums.add` for group terms).
+    net : ndarray, shape (n_events, n_assets), optional [currency]
+        Net loss of every asset-event when already known (mean mode:
+        :func:`quakefolio.core.events.portfolio.expected_net_loss_ratio` x value);
+        otherwise the terms are applied to ``ratio x value``.
 
     Returns
     -------
@@ -112,11 +121,12 @@ def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None):
 
     Notes
     -----
-    Loss = ratio x value; net = :func:`apply_policy`.  Sums are kept per random-number
-    block so that totals do not depend on how blocks are grouped into tasks.
+    Loss = ratio x value; net = :func:`apply_policy` unless given.  Sums are kept per
+    random-number block so that totals do not depend on how blocks are grouped into tasks.
     """
     gu = ratio * value
-    net = apply_policy(gu, deductible, limit)
+    if net is None:
+        net = apply_policy(gu, deductible, limit)
     if on_net is not None:
         on_net(net)
     n_assets = gu.shape[1]
@@ -163,7 +173,10 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     Notes
     -----
     Classes are added in their given order (:func:`event_loss_ratio`,
-    :func:`block_loss_sums`).
+    :func:`block_loss_sums`).  Mean mode: ground-up from the mean loss ratio, net the
+    expected net loss given the intensity (not the terms applied to the mean loss), so
+    both are the conditional expectations, given the ground motion, of the sampled
+    mode's losses.
     """
     n_ev = im.shape[0]
     bounds = [(lo, hi) for _, lo, hi in blocks]
@@ -175,12 +188,19 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     shared = loss_model != "mean_damage_ratio" and correlation > 0
     factors = group_factors(seed, blocks, int(np.max(group)) + 1 if len(group) else 0) if shared else None
     for k, (assets, i_im, medians, betas, mdr, cov, usites, pair) in enumerate(classes):
-        ratio = event_loss_ratio(im[:, i_im, usites], medians, betas, mdr, cov, pair, loss_model=loss_model,
-                                 seed=seed, blocks=blocks, class_entry=k, correlation=correlation,
-                                 factors=None if factors is None else factors[:, group[assets]])
+        x = im[:, i_im, usites]
+        net_k = None
+        if loss_model == "mean_damage_ratio":  # net: expected over the loss distribution given x
+            ratio, net_ratio = expected_loss_ratios(x, medians, betas, mdr, cov, value[assets], deductible[assets],
+                                                    limit[assets], pair=pair)
+            net_k = value[assets] * net_ratio
+        else:
+            ratio = event_loss_ratio(x, medians, betas, mdr, cov, pair, loss_model=loss_model,
+                                     seed=seed, blocks=blocks, class_entry=k, correlation=correlation,
+                                     factors=None if factors is None else factors[:, group[assets]])
         on_net = None if group_sums is None else (lambda n, a=assets: group_sums.add(a, n))
         gu, net, a_sum, a_sumsq, total = block_loss_sums(ratio, value[assets], deductible[assets], limit[assets],
-                                                         bounds, on_net)
+                                                         bounds, on_net, net=net_k)
         gu_ev += gu
         net_ev += net
         asset_sum[:, :, assets] = a_sum

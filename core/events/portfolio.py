@@ -11,7 +11,9 @@ events:
    (repair cost / replacement value, non-decreasing).  Either the mean loss ratio at
    the sampled intensity is used (:func:`expected_loss_ratio`, the default) or a damage
    state and a loss ratio are sampled (:func:`sample_loss_ratio`).
-2. **Policy terms** per asset and event (:func:`apply_policy`).
+2. **Policy terms** per asset and event (:func:`apply_policy` on a sampled loss; in the
+   mean mode the expected net loss over damage states and loss ratios,
+   :func:`expected_net_loss_ratio`).
 3. **Aggregation** of the event loss table into a year loss table: the annual sum
    (basis of the aggregate exceedance probability, AEP) and the annual maximum event
    loss (basis of the occurrence exceedance probability, OEP), :func:`year_loss`.
@@ -69,12 +71,14 @@ from __future__ import annotations
 
 import numpy as np
 
-from quakefolio.core.loss import beta_parameters, check_damage_ratios
+from quakefolio.core.loss import beta_parameters, check_damage_ratios, net_loss_ratio
 from quakefolio.core.risk import lognormal_fragility
 
 __all__ = [
     "exceedance_envelope",
     "expected_loss_ratio",
+    "expected_net_loss_ratio",
+    "expected_loss_ratios",
     "sample_loss_ratio",
     "apply_policy",
     "year_loss",
@@ -200,6 +204,79 @@ def expected_loss_ratio(im, medians, betas, mean_damage_ratio):
     p, mdr, _ = _state_terms(im, medians, betas, mean_damage_ratio)
     increments = np.diff(mdr, axis=-1, prepend=0.0)
     return np.sum(increments * p, axis=-1)
+
+
+def expected_net_loss_ratio(im, medians, betas, mean_damage_ratio, cov, value, deductible, limit, pair=None):
+    r"""Expected net loss per unit of value [-] at intensity ``im``, after per-event policy terms.
+
+    Parameters
+    ----------
+    im : array_like, shape S [IM units], non-negative
+        Intensity at each asset, e.g. ``(n_events, n_assets)``.
+    medians, betas : array_like, shape F + (n_ds,)
+        Lognormal fragility parameters [IM units], [-].
+    mean_damage_ratio, cov : array_like, shape M + (n_ds,) [-]
+        Loss ratio given each state (cov 0, NaN or None: deterministic).
+    value, deductible, limit : array_like, broadcastable to broadcast(S, F, M) [currency]
+        Replacement value and per-event terms of each asset (NaN: none, as
+        :func:`apply_policy`).
+    pair : ndarray of int, shape (n_assets,), optional
+        When given, ``im`` holds intensities at shared locations along its last axis and
+        asset ``i`` takes column ``pair[i]`` (the fragility is evaluated once per
+        location); the result's last axis is then the assets'.
+
+    Returns
+    -------
+    ndarray, shape broadcast(S, F, M) [-]
+        Times ``value``: :math:`E[\mathrm{net} \mid x]` [currency].  Without terms, bit
+        for bit :func:`expected_loss_ratio`.
+
+    Notes
+    -----
+    The same model as :func:`sample_loss_ratio` followed by :func:`apply_policy`, in
+    expectation: total expectation over the damage state (enveloped fragility),
+
+    .. math:: E[\mathrm{net} \mid x] = \sum_j \big(P^*_j(x) - P^*_{j+1}(x)\big)\,n_j
+              = \sum_j (n_j - n_{j-1})\,P^*_j(x), \quad n_0 = 0,
+
+    with :math:`n_j = E[\min(\max(V X_j - D, 0), L)]` in closed form
+    (:func:`quakefolio.core.loss.net_loss_ratio`, incomplete-beta identity).  The terms are
+    applied to the loss distribution, not to the mean loss ratio (the deductible payoff
+    is convex, the limit concave: Jensen's inequality).
+    """
+    return expected_loss_ratios(im, medians, betas, mean_damage_ratio, cov, value, deductible, limit, pair)[1]
+
+
+def expected_loss_ratios(im, medians, betas, mean_damage_ratio, cov, value, deductible, limit, pair=None):
+    r"""Expected ground-up and net loss per unit of value [-], one fragility evaluation for both.
+
+    Parameters and notes as :func:`expected_net_loss_ratio`.
+
+    Returns
+    -------
+    ground_up : ndarray [-]
+        Bit for bit :func:`expected_loss_ratio` (gathered by ``pair`` when given).
+    net : ndarray [-]
+        :func:`expected_net_loss_ratio`.
+    """
+    p = exceedance_envelope(im, medians, betas)
+    mdr, c = check_damage_ratios(mean_damage_ratio, cov)
+    if mdr.shape[-1] != p.shape[-1]:
+        raise ValueError(
+            f"mean_damage_ratio has {mdr.shape[-1]} damage states but the fragility has {p.shape[-1]}"
+        )
+    ground_up = np.sum(np.diff(mdr, axis=-1, prepend=0.0) * p, axis=-1)
+    v, d, lim = (np.asarray(t, dtype=float) for t in (value, deductible, limit))
+    r = net_loss_ratio(mdr, c, v[..., None], d[..., None], lim[..., None])  # per asset, not per asset-event
+    increments = np.diff(r, axis=-1, prepend=0.0)
+    net = 0.0
+    for j in range(p.shape[-1]):  # state by state: no (events, assets, states) temporaries
+        p_j = p[..., j] if pair is None else p[..., j][..., pair]
+        net = net + increments[..., j] * p_j
+    if pair is not None:
+        ground_up = ground_up[..., pair]
+    no_terms = ((d == 0) | np.isnan(d)) & (np.isnan(lim) | (lim == np.inf))
+    return ground_up, np.where(no_terms, ground_up, net)  # equal in exact arithmetic; kept bit for bit
 
 
 def sample_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov=None):

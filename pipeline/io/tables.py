@@ -34,9 +34,13 @@ TABLES = {
                "horizon_yr": "yr", "tail_share_below": "-", "tail_share_above": "-"},
     ),
     "asset_loss": dict(
-        description="Per asset: expected annual loss (classical, exact under log-log hazard interpolation) "
-                    "and annual collapse rate and probability in the horizon.",
+        description="Per asset: expected annual loss (classical, exact under log-log hazard interpolation), "
+                    "ground-up (eal) and net of the asset's per-event deductible and limit (eal_net: the "
+                    "expected payment over the beta-distributed loss ratio of each damage state, closed form "
+                    "by the incomplete-beta identity, never the terms applied to the mean loss), and annual "
+                    "collapse rate and probability in the horizon.",
         units={"site_distance_km": "km", "replacement_value": "{currency}", "eal": "{currency}/yr",
+               "eal_net": "{currency}/yr",
                "eal_ratio": "1/yr", "annual_collapse_rate": "1/yr", "collapse_prob_in_horizon": "-",
                "horizon_yr": "yr", "max_tail_share": "-"},
     ),
@@ -125,7 +129,8 @@ TABLES.update({
                     "'all'): the pooled years of every branch combination (the weighted-mean EP), standard error "
                     "compound Poisson sqrt(sum of squared event losses) / N, classical EAL of every branch by weight "
                     "(column name kept); per-branch mode: standard error s / sqrt(N) of the year losses, classical "
-                    "EAL of the source branch.",
+                    "EAL of the source branch. The classical EAL is per basis: ground-up, and net of the per-event "
+                    "terms (sum of asset_loss.eal_net of the same model).",
         units={"aal": "{currency}/yr", "aal_standard_error": "{currency}/yr",
                "classical_eal_same_branch": "{currency}/yr", "secondary_correlation": "-"},
     ),

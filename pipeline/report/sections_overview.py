@@ -19,6 +19,9 @@ def _key_figures(run):
         keys.append((_money(total, cur), "total replacement value"))
         keys.append((_money(eal, cur + "/yr"),
                      f"expected annual loss, classical ({1000 * eal / total:.3f} ‰ of value)"))
+        if "eal_net" in loss:
+            keys.append((_money(loss.eal_net.sum(), cur + "/yr"),
+                         "expected annual loss net of deductibles and limits, classical"))
         worst = loss.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).iloc[0]
         keys.append((_prob(worst.collapse_prob_in_horizon),
                      f"highest probability of collapse in {run.horizon:g} yr (asset {worst.asset_id})"))
@@ -135,6 +138,12 @@ def _check_rows(checks, cur):
                      f"event-based {_money(p['event_based_aal'], cur + '/yr')} vs classical "
                      f"{_money(p['classical_eal'], cur + '/yr')}; z = {p['z']:+.2f} "
                      f"(1 s.e. {_money(p['standard_error'])})", "|z| ≤ 3", _verdict(p.get("passed"))])
+    n = checks.get("portfolio_net_aal_vs_classical_net_eal")
+    if n:
+        rows.append(["portfolio net AAL vs classical net EAL of the same branch",
+                     f"event-based {_money(n['event_based_aal'], cur + '/yr')} vs classical "
+                     f"{_money(n['classical_eal'], cur + '/yr')}; z = {n['z']:+.2f} "
+                     f"(1 s.e. {_money(n['standard_error'])})", "|z| ≤ 3", _verdict(n.get("passed"))])
     a = checks.get("asset_aal_vs_classical_eal")
     if a:
         share = a["share_within_3_standard_errors"]

@@ -12,7 +12,7 @@ import pandas as pd
 
 from quakefolio.core.curves import prob_in_years, return_period
 from quakefolio.core.hazard import weighted_fractiles
-from quakefolio.core.loss import expected_annual_loss, loss_exceedance_rates
+from quakefolio.core.loss import expected_annual_loss, expected_annual_net_loss, loss_exceedance_rates
 from quakefolio.pipeline.io.cache import PairStore, digest, row_digests
 from quakefolio.pipeline.io.ingest import curves_for_im
 from quakefolio.pipeline.stages.hazard import branch_weights, statistic_name
@@ -195,6 +195,7 @@ def build_tables(inputs, classes):
     n_assets = len(ex)
     damage_frames, curve_parts = [], []
     eal_ratio = np.empty(n_assets)
+    eal_net = np.empty(n_assets)
     collapse_rate = np.empty(n_assets)
     max_tail = np.empty(n_assets)
     for code in sorted(classes):
@@ -222,6 +223,11 @@ def build_tables(inputs, classes):
             "tail_share_above": above[pair].ravel(),
         }))
         eal_ratio[assets] = eal_r[pair]
+        # per asset (its value and terms), from the pair's damage-state rates; closed form per state
+        eal_net[assets] = expected_annual_net_loss(rate, dss.mean_damage_ratio, dss.cov,
+                                                   ex.replacement_value.to_numpy()[assets],
+                                                   ex.deductible.to_numpy(dtype=float)[assets],
+                                                   ex.limit.to_numpy(dtype=float)[assets])
         collapse_rate[assets] = rate[:, dss.collapse_index]
         max_tail[assets] = np.maximum(below[pair], above[pair]).max(axis=-1)
         curve_parts.append((assets, curve[pair]))
@@ -238,6 +244,7 @@ def build_tables(inputs, classes):
         "site_distance_km": inputs.site_distance_km,
         "replacement_value": value,
         "eal": eal_ratio * value,
+        "eal_net": eal_net,
         "eal_ratio": eal_ratio,
         "annual_collapse_rate": collapse_rate,
         "collapse_prob_in_horizon": prob_in_years(collapse_rate, horizon),
