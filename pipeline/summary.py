@@ -131,8 +131,9 @@ def _portfolio_lines(run, manifest, cur):
                      f"({'within' if p['passed'] else 'OUTSIDE'} 3 standard errors)")
     n = checks.get("portfolio_net_aal_vs_classical_net_eal")
     if n:
-        lines.append(f"  cross-check, net: event-based net AAL {_money(n['event_based_aal'])} vs classical net EAL of the same branch "
-                     f"{_money(n['classical_eal'])} {cur}/yr, z = {n['z']:+.2f} "
+        lines.append(f"  cross-check, net: event-based net AAL {_money(n['event_based_aal'])} vs classical net EAL of "
+                     f"{'all branches' if tree else 'the same branch'} {_money(n['classical_eal'])} {cur}/yr, "
+                     f"z = {n['z']:+.2f} "
                      f"({'within' if n['passed'] else 'OUTSIDE'} 3 standard errors)")
     if a:
         lines.append(f"  cross-check, assets: {a['within_3_standard_errors']} of {a['assets']} within 3 standard "
@@ -353,6 +354,7 @@ def people_lines(run, cur):
                                            for m in ("building_loss", "contents_loss", "interruption_loss"))
              + f" {cur}/yr); deductible and limit apply to the building coverage only"]
     if run.has("consequence_event_summary"):
+        scope = "all branches" if run.has("portfolio_branch_summary") else "same branch"
         ev = run.table("consequence_event_summary").set_index("metric")
         ep = run.table("consequence_ep")
         for metric, unit in (("casualties", "persons"), ("downtime_days", "building-days")):
@@ -360,7 +362,7 @@ def people_lines(run, cur):
             pml = ep[ep.metric == metric].dropna(subset=["aep_value"])
             at = ", ".join(f"{p.return_period_yr:g} yr {p.aep_value:,.1f}" for p in pml.itertuples())
             lines.append(f"    event-based {metric.replace('_days', '')}: {r.annual_average:.4g} {unit}/yr +- "
-                         f"{r.standard_error:.2g} (classical, same branch {r.classical_same_branch:.4g}); "
+                         f"{r.standard_error:.2g} (classical, {scope} {r.classical_same_branch:.4g}); "
                          f"annual total at {at or 'no return period within the simulated years'}")
     if run.has("whatif_people"):
         for r in run.table("whatif_people").query("scope == 'alternative'").itertuples():

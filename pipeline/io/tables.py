@@ -347,8 +347,9 @@ TABLES.update({
     ),
     "consequence_event_summary": dict(
         description="Event-based annual averages of casualties, downtime, contents and interruption losses with "
-                    "their standard errors, against the classical expectation of the same source branch and "
-                    "ground-motion weights (z-score).",
+                    "their standard errors, against the classical expectation of the same model (every logic-tree "
+                    "branch by weight; in per-branch mode the source branch with the ground-motion weights; column "
+                    "name kept) and the z-score.",
         units={"annual_average": "see column unit", "standard_error": "see column unit",
                "classical_same_branch": "see column unit", "z": "-"},
     ),

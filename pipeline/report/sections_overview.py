@@ -132,15 +132,16 @@ def _verdict(ok):
 def _check_rows(checks, cur):
     """One table row per cross-check recorded in the manifest."""
     rows = []
+    scope = "all branches" if checks.get("source_branch") == "all" else "the same branch"
     p = checks.get("portfolio_aal_vs_classical_eal")
     if p:
-        rows.append(["portfolio AAL vs classical EAL of the same branch",
+        rows.append([f"portfolio AAL vs classical EAL of {scope}",
                      f"event-based {_money(p['event_based_aal'], cur + '/yr')} vs classical "
                      f"{_money(p['classical_eal'], cur + '/yr')}; z = {p['z']:+.2f} "
                      f"(1 s.e. {_money(p['standard_error'])})", "|z| ≤ 3", _verdict(p.get("passed"))])
     n = checks.get("portfolio_net_aal_vs_classical_net_eal")
     if n:
-        rows.append(["portfolio net AAL vs classical net EAL of the same branch",
+        rows.append([f"portfolio net AAL vs classical net EAL of {scope}",
                      f"event-based {_money(n['event_based_aal'], cur + '/yr')} vs classical "
                      f"{_money(n['classical_eal'], cur + '/yr')}; z = {n['z']:+.2f} "
                      f"(1 s.e. {_money(n['standard_error'])})", "|z| ≤ 3", _verdict(n.get("passed"))])

@@ -39,8 +39,11 @@ def _section_people(run):
     if ev is not None and ep is not None:
         rows = [[r.metric.replace("_", " "), r.unit, _num(r.annual_average), _num(r.standard_error, "{:,.2g}"),
                  _num(r.classical_same_branch), _num(r.z, "{:+.2f}")] for r in ev.itertuples()]
-        out.append(_p("Event-based annual averages against the classical expectation of the same source branch."))
-        out.append(_table(["metric", "unit", "event-based#", "standard error#", "classical, same branch#", "z#"], rows))
+        tree = run.table("portfolio_branch_summary") is not None
+        out.append(_p("Event-based annual averages against the classical expectation of "
+                      f"{'every logic-tree branch by weight' if tree else 'the same source branch'}."))
+        out.append(_table(["metric", "unit", "event-based#", "standard error#",
+                           f"classical, {'all branches' if tree else 'same branch'}#", "z#"], rows))
         rows = [[r.metric.replace("_", " "), r.unit, _cell(f"{r.return_period_yr:,.0f}", r.return_period_yr),
                  _num(r.aep_value), _num(r.oep_value), _num(r.tvar_value)] for r in ep.itertuples()]
         out.append(_table(["metric", "unit", "return period [yr]#", "annual total (AEP)#", "largest event (OEP)#",
