@@ -520,6 +520,8 @@ def logic_tree_event_set(branch_rates, year_branch: ArrayLike, seed: int) -> Eve
     rupture, year = rupture[order], year[order]
     event_id = np.arange(1, rupture.size + 1, dtype=np.int64)
     return EventSet(_readonly(event_id), _readonly(year), _readonly(rupture), int(yb.size))
+
+
 def group_factor_rng(seed: int, block_index: int, group: int) -> np.random.Generator:
     """The generator of the group factors of one event block and group.
 

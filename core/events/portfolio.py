@@ -166,6 +166,20 @@ def _state_terms(im, medians, betas, mean_damage_ratio, cov=None):
     return np.broadcast_to(p, shape), np.broadcast_to(mdr, shape), np.broadcast_to(c, shape)
 
 
+def _state_draw(p, mdr, c, u):
+    """Damage state per uniform ``u`` (inverse CDF over the ordered states, :func:`sample_loss_ratio`).
+
+    Returns the state (0: none), the loss ratio where it is the state's mean (0 undamaged), the
+    state's mean and CoV, and where the loss ratio is random (damaged with a CoV above 0).
+    """
+    state = np.sum(p > u[..., None], axis=-1)
+    index = np.maximum(state - 1, 0)[..., None]
+    mu = np.take_along_axis(mdr, index, axis=-1)[..., 0]
+    cv = np.take_along_axis(c, index, axis=-1)[..., 0]
+    damaged = state > 0
+    return state, np.where(damaged, mu, 0.0), mu, cv, damaged & (cv > 0)
+
+
 def expected_loss_ratio(im, medians, betas, mean_damage_ratio):
     r"""Mean loss ratio [-] at intensity ``im`` for an ordered damage-state set.
 
@@ -321,13 +335,7 @@ def sample_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov=None):
     p, mdr, c = _state_terms(im, medians, betas, mean_damage_ratio, cov)
     out_shape = p.shape[:-1]
     u = rng.random(out_shape)
-    state = np.sum(p > u[..., None], axis=-1)
-    index = np.maximum(state - 1, 0)[..., None]
-    mu = np.take_along_axis(mdr, index, axis=-1)[..., 0]
-    cv = np.take_along_axis(c, index, axis=-1)[..., 0]
-    damaged = state > 0
-    loss_ratio = np.where(damaged, mu, 0.0)
-    random = damaged & (cv > 0)
+    state, loss_ratio, mu, cv, random = _state_draw(p, mdr, c, u)
     if np.any(random):
         a, b = beta_parameters(mu[random], cv[random])
         loss_ratio[random] = rng.beta(a, b)

@@ -78,7 +78,7 @@ import numpy as np
 from scipy import special
 
 from quakefolio.core.events.eventset import group_factor_rng
-from quakefolio.core.events.portfolio import _state_terms, aal_with_standard_error, ep_from_years, tvar
+from quakefolio.core.events.portfolio import _state_draw, _state_terms, aal_with_standard_error, ep_from_years, tvar
 from quakefolio.core.loss import beta_parameters
 from quakefolio.core.whatif import change, paired_aal_change
 
@@ -191,13 +191,7 @@ def sample_correlated_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov
     p, mdr, c = _state_terms(im, medians, betas, mean_damage_ratio, cov)
     shape = p.shape[:-1]
     u = correlated_uniform(rng.random(shape), 0.0 if rho == 0.0 else np.broadcast_to(z_damage, shape), rho)
-    state = np.sum(p > u[..., None], axis=-1)
-    index = np.maximum(state - 1, 0)[..., None]
-    mu = np.take_along_axis(mdr, index, axis=-1)[..., 0]
-    cv = np.take_along_axis(c, index, axis=-1)[..., 0]
-    damaged = state > 0
-    loss_ratio = np.where(damaged, mu, 0.0)
-    random = damaged & (cv > 0)
+    state, loss_ratio, mu, cv, random = _state_draw(p, mdr, c, u)
     if np.any(random):
         a, b = beta_parameters(mu[random], cv[random])
         if rho == 0.0:
