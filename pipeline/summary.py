@@ -84,7 +84,12 @@ def correlation_effect_lines(run, basis="ground_up"):
     eff = run.table("portfolio_correlation_effect")
     eff = eff[eff.basis == basis]
     first = eff.iloc[0]
-    pct = lambda r: "n/a" if r.relative_change != r.relative_change else f"{100 * r.relative_change:+.1f}%"
+    def pct(r):
+        if r.relative_change != r.relative_change:
+            return "n/a"
+        se = r.standard_error_of_change / r.value_independent if r.value_independent else float("nan")
+        return f"{100 * r.relative_change:+.1f}%" + ("" if se != se else f" +- {100 * se:.1f}%")
+
     parts = []
     for metric, name in (("aep_loss", "PML AEP"), ("tvar_loss", "TVaR")):
         rows = eff[eff.metric == metric]
@@ -92,7 +97,7 @@ def correlation_effect_lines(run, basis="ground_up"):
     aal = eff[eff.metric == "aal"].iloc[0]
     return [f"secondary uncertainty correlated within each {first.secondary_group.replace('_', ' ')} "
             f"(correlation {first.secondary_correlation:g}) against independent sampling on the same events and "
-            f"ground motions, {basis.replace('_', '-')}: " + "; ".join(parts) + ".",
+            f"ground motions, {basis.replace('_', '-')} (+- 1 standard error, batch means): " + "; ".join(parts) + ".",
             f"AAL {_money(aal.value_correlated)} vs {_money(aal.value_independent)} independent: change "
             f"{_money(aal.change)} +- {_money(aal.standard_error_of_change)} (paired standard error; "
             "the expected change is zero)."]

@@ -33,7 +33,7 @@ from quakefolio.core.events.eventset import STREAM_GROUP_FACTOR, group_factor_rn
 from quakefolio.core.events.losses import portfolio_event_losses
 from quakefolio.core.events.portfolio import expected_loss_ratio, sample_loss_ratio
 from quakefolio.core.events.secondary import (
-    correlated_uniform, correlation_effect, group_factors, sample_correlated_loss_ratio,
+    batch_change_standard_error, correlated_uniform, correlation_effect, group_factors, sample_correlated_loss_ratio,
 )
 from quakefolio.core.loss import beta_parameters
 
@@ -206,7 +206,41 @@ def test_correlation_effect_arithmetic():
     assert_allclose(out["value_correlated"][0], cor.mean(), rtol=1e-12)
     assert_allclose(out["change"], out["value_correlated"] - out["value_independent"], rtol=1e-12)
     assert_allclose(out["standard_error_of_change"][0], (cor - ind).std(ddof=1) / np.sqrt(5000), rtol=1e-12)
-    assert np.isnan(out["standard_error_of_change"][1:]).all()
+    se = out["standard_error_of_change"][1:]
+    assert_allclose(se, batch_change_standard_error(ind, cor, ind, cor, [10.0, 100.0]), rtol=0, atol=0)
+    assert np.isfinite(se).all() and (se > 0).all()  # 500-year batches hold both return periods
+
+
+def test_batch_standard_error_arithmetic_and_short_batches():
+    """By hand: the change in each batch of consecutive years, s_d / sqrt(K) (batch means)."""
+    rng = np.random.default_rng(3)
+    ind = rng.gamma(0.5, 1.0, 40)
+    cor = ind + rng.normal(0.0, 0.1, 40) ** 2
+    se = batch_change_standard_error(ind, cor, ind, cor, [2.0, 8.0], n_batches=4)
+    d = [np.sort(cor[10 * k:10 * k + 10])[-5] - np.sort(ind[10 * k:10 * k + 10])[-5] for k in range(4)]
+    assert_allclose(se[0], np.std(d, ddof=1) / 2.0, rtol=1e-12)  # PML(2 yr) of 10 years: 5th largest
+    assert np.isfinite(se[:2]).all() and not np.isnan(se[4])
+    assert np.isnan(batch_change_standard_error(ind, cor, ind, cor, [20.0], n_batches=4)).all()  # 10-yr batches
+    with pytest.raises(ValueError, match="n_batches"):
+        batch_change_standard_error(ind, cor, ind, cor, [2.0], n_batches=1)
+
+
+def test_batch_standard_error_matches_the_spread_of_replications():
+    """Monte Carlo of the same estimator: the batch-means standard error of a PML and TVaR change
+    agrees with the standard deviation of that change over independent replications (batch means:
+    common practice in simulation output analysis)."""
+    rng = np.random.default_rng(11)
+    reps, n = 400, 4000
+    common = rng.lognormal(0.0, 1.5, (reps, n))  # the shared ground-motion part of each year
+    ind = common * rng.lognormal(0.0, 0.3, (reps, n))
+    cor = common * rng.lognormal(0.0, 0.5, (reps, n))
+    rps = [20.0, 100.0]
+    from quakefolio.core.events.portfolio import ep_from_years, tvar
+    spread = np.concatenate([ep_from_years(cor, rps) - ep_from_years(ind, rps),
+                             tvar(cor, rps) - tvar(ind, rps)], axis=-1).std(axis=0, ddof=1)
+    estimates = np.array([batch_change_standard_error(ind[r], cor[r], ind[r], cor[r], rps) for r in range(reps)])
+    mean_se = np.concatenate([estimates[:, :2], estimates[:, 4:]], axis=-1).mean(axis=0)
+    assert_allclose(mean_se, spread, rtol=0.25)
 
 
 # --- the stage --------------------------------------------------------------------------------

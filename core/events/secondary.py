@@ -202,6 +202,57 @@ def sample_correlated_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov
     return state, loss_ratio
 
 
+#: Batches of simulated years for the standard error of the PML and TVaR changes (batch means).
+N_BATCHES = 10
+
+
+def batch_change_standard_error(year_before, year_after, max_before, max_after, return_periods_yr,
+                                n_batches=N_BATCHES):
+    r"""Standard errors [currency] of the PML (AEP, OEP) and TVaR changes between paired simulations.
+
+    Parameters
+    ----------
+    year_before, year_after : ndarray, shape (N,) [currency]
+        Annual losses of the same simulated years, before and after the change.
+    max_before, max_after : ndarray, shape (N,) [currency]
+        Largest event loss of each year, the same two ways.
+    return_periods_yr : array_like, shape (n_rp,) [yr]
+    n_batches : int
+        Number of batches :math:`K` >= 2 of consecutive years.
+
+    Returns
+    -------
+    ndarray, shape (3 n_rp,) [currency]
+        For ``aep_loss``, ``oep_loss`` and ``tvar_loss`` per return period, as
+        :func:`correlation_effect` orders them; NaN where a batch holds fewer years than the
+        return period (or fewer than :math:`K` years in all).
+
+    Notes
+    -----
+    Batch means, a standard method of simulation output analysis (common practice): the
+    :math:`N` years (independent and identically distributed) are cut into :math:`K`
+    batches of :math:`\lfloor N/K 
+floor` years (the remainder left out); the change
+    :math:`d_k` of each metric is computed within each batch, and the standard error of the
+    change over all :math:`N` years is :math:`s_d / \sqrt{K}`.  Quantile and tail estimators
+    have a variance close to proportional to :math:`1/N`, so a batch's variance is
+    :math:`K` times that of the whole; both simulations share the years, so the pairing
+    that cancels the ground-motion noise is kept within each batch.
+    """
+    rps = np.asarray(return_periods_yr, dtype=float)
+    k = int(n_batches)
+    if k < 2:
+        raise ValueError(f"n_batches must be >= 2, got {n_batches!r}")
+    n = (np.asarray(year_before).size // k) * k
+    if n < k:
+        return np.full(3 * rps.size, np.nan)
+    cut = lambda y: np.asarray(y, dtype=float)[:n].reshape(k, -1)
+    d = np.concatenate([ep_from_years(cut(year_after), rps) - ep_from_years(cut(year_before), rps),
+                        ep_from_years(cut(max_after), rps) - ep_from_years(cut(max_before), rps),
+                        tvar(cut(year_after), rps) - tvar(cut(year_before), rps)], axis=-1)
+    return np.std(d, axis=0, ddof=1) / np.sqrt(k)
+
+
 def correlation_effect(year_correlated, year_independent, max_correlated, max_independent, return_periods_yr):
     r"""Portfolio metrics with correlated secondary uncertainty against independent sampling.
 
@@ -220,8 +271,10 @@ def correlation_effect(year_correlated, year_independent, max_correlated, max_in
         ``metric`` (``aal``, then ``aep_loss``, ``oep_loss``, ``tvar_loss`` per return period),
         ``return_period_yr`` (NaN for the AAL), ``value_correlated``, ``value_independent``,
         ``change``, ``relative_change`` (:func:`quakefolio.core.whatif.change`, from independent
-        to correlated) and ``standard_error_of_change`` (AAL only: paired years,
-        :func:`quakefolio.core.whatif.paired_aal_change`; NaN otherwise).
+        to correlated) and ``standard_error_of_change`` (AAL: paired years,
+        :func:`quakefolio.core.whatif.paired_aal_change`; PML and TVaR: batch means of
+        paired years, :func:`batch_change_standard_error`, NaN where a batch is shorter than
+        the return period).
 
     Notes
     -----
@@ -244,5 +297,6 @@ def correlation_effect(year_correlated, year_independent, max_correlated, max_in
         "metric": np.array(["aal"] + ["aep_loss"] * n + ["oep_loss"] * n + ["tvar_loss"] * n, dtype=object),
         "return_period_yr": np.concatenate([[np.nan], rps, rps, rps]),
         "value_correlated": cor, "value_independent": ind, "change": delta, "relative_change": rel,
-        "standard_error_of_change": np.concatenate([[se], np.full(3 * n, np.nan)]),
+        "standard_error_of_change": np.concatenate([[se], batch_change_standard_error(
+            year_independent, year_correlated, max_independent, max_correlated, rps)]),
     }

@@ -170,12 +170,13 @@ TABLES.update({
     "portfolio_correlation_effect": dict(
         description="Sampled damage with a within-group correlation above 0: AAL, PML (AEP, OEP) and TVaR with "
                     "that correlation against independent draws on the same events and ground motions; change and "
-                    "relative change from independent to correlated; for the AAL the paired standard error of "
-                    "the change (its expectation is 0).",
+                    "relative change from independent to correlated; the standard error of the change: for the "
+                    "AAL from paired years (its expectation is 0), for PML and TVaR by batch means over 10 "
+                    "batches of paired years (NaN where a batch is shorter than the return period).",
         units={"return_period_yr": "yr", "value_correlated": "{currency} ({currency}/yr for aal)",
                "value_independent": "{currency} ({currency}/yr for aal)",
                "change": "{currency} ({currency}/yr for aal)", "relative_change": "-",
-               "standard_error_of_change": "{currency}/yr", "secondary_correlation": "-"},
+               "standard_error_of_change": "{currency} ({currency}/yr for aal)", "secondary_correlation": "-"},
     ),
 })
 
