@@ -34,8 +34,9 @@ from conftest import DEMO, REPO
 
 #: the reference code: the commit that landed the portfolio-loss work (net loss in closed form,
 #: correlated secondary uncertainty, whole logic tree in the event stage, programme terms, people
-#: and time); before it, the last commit before the pipeline redesign
-BASE_COMMIT = "e797cbcbe9e8a187a299a849aa499d17e284f4c3"
+#: and time) with the standard errors of the correlation effect; before it, the last commit before the
+#: pipeline redesign
+BASE_COMMIT = "155186f1aea9e51e84dc31b0c6c3888bcff8c626"
 BASE_SHORT = BASE_COMMIT[:7]
 YEARS = 5000
 CONFIGS = {"compute": "quakefolio.toml", "tabulated": "quakefolio_tabulated.toml"}
