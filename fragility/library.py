@@ -64,6 +64,8 @@ def read_toml(path):
     except UnicodeDecodeError as exc:
         line = raw[: exc.start].count(b"\n") + 1
         raise InputError(path, f"not valid UTF-8 text (byte 0x{raw[exc.start]:02x})", row=line) from None
+    if text.startswith("\ufeff"):  # a byte-order mark, as some editors write: accepted as for CSV
+        text = text[1:]
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

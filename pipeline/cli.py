@@ -111,7 +111,8 @@ def _parser():
     lib.add_argument("--cov", type=_non_negative_number, metavar="C", help="CoV of the state's loss ratio")
     lib.add_argument("--im", metavar="IM", help="IM of the fit, e.g. SA_1.0 (required for a new class)")
     for sp in (sch, run, hzd, chk, cmp, rep, fit):
-        sp.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+        # SUPPRESS: a --debug given before the command is not reset by the command's default
+        sp.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks on errors")
     return p
 
 

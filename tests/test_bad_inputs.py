@@ -220,3 +220,43 @@ def test_extra_non_empty_field_is_an_error():
     with pytest.raises(InputError, match=r"record has 10 fields but the header has 9") as exc:
         read_table(BROKEN / "exposure_extra_field" / "exposure.csv", EXPOSURE_COLUMNS)
     assert exc.value.row == 4
+
+
+@pytest.mark.parametrize("sep, name", [(";", "semicolon"), ("\t", "tab"), ("|", "'|'")])
+def test_other_delimiters_are_named(tmp_path, sep, name):
+    # Spreadsheets in many locales export ';'-separated "CSV": say what was seen, on the header line.
+    lines = (MINI / "exposure.csv").read_text().splitlines()
+    path = tmp_path / "exposure.csv"
+    path.write_text("\n".join(ln.replace(",", sep) for ln in lines) + "\n")
+    with pytest.raises(InputError, match=rf"the header is {re.escape(name)}-delimited \(9 fields, no comma\)") as exc:
+        read_table(path, EXPOSURE_COLUMNS)
+    assert exc.value.row == 1
+
+
+def test_spreadsheet_separator_hint_line_is_named(tmp_path):
+    path = tmp_path / "exposure.csv"
+    path.write_text("sep=,\n" + (MINI / "exposure.csv").read_text())
+    with pytest.raises(InputError, match=r"first line 'sep=,' is a spreadsheet delimiter hint") as exc:
+        read_table(path, EXPOSURE_COLUMNS)
+    assert exc.value.row == 1
+
+
+def test_byte_order_mark_in_toml_is_accepted(tmp_path):
+    # Some editors start UTF-8 files with a byte-order mark; TOML files are read as CSV files are.
+    import shutil
+
+    dst = tmp_path / "mini"
+    shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
+    for name in ("quakefolio.toml", "fragility.toml"):
+        path = dst / name
+        if path.exists():
+            path.write_bytes(b"\xef\xbb\xbf" + path.read_bytes())
+    assert main(["check", str(dst / "quakefolio.toml")]) == 0
+
+
+def test_debug_before_the_command_is_honoured():
+    from quakefolio.pipeline.cli import _parser
+
+    assert _parser().parse_args(["--debug", "check", "x.toml"]).debug is True
+    assert _parser().parse_args(["check", "x.toml", "--debug"]).debug is True
+    assert _parser().parse_args(["check", "x.toml"]).debug is False

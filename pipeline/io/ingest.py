@@ -52,6 +52,22 @@ def _read_parquet(path):
     return frame, np.arange(1, len(frame) + 1)
 
 
+def _check_delimiter(path, text):
+    """Refuse a spreadsheet ``sep=`` line and a header delimited by ``;``, tab or ``|`` (no comma)."""
+    lines = [ln for ln in text.lstrip("\ufeff").splitlines() if ln.strip()]
+    if not lines:
+        return
+    head = lines[0].strip()
+    if re.fullmatch(r"sep=.", head):
+        raise InputError(path, f"first line {head!r} is a spreadsheet delimiter hint; remove it and save the file "
+                               "as comma-separated values", row=1)
+    if "," not in head:
+        for sep, name in ((";", "semicolon"), ("\t", "tab"), ("|", "'|'")):
+            if sep in head:
+                raise InputError(path, f"the header is {name}-delimited ({head.count(sep) + 1} fields, no comma); "
+                                       "save the file as comma-separated values", row=1)
+
+
 def _read_csv(path):
     """Frame of a CSV file (all cells as text) and the file line where each record starts."""
     raw = path.read_bytes()
@@ -61,6 +77,7 @@ def _read_csv(path):
         line = raw[: exc.start].count(b"\n") + 1
         raise InputError(path, f"not valid UTF-8 text (byte 0x{raw[exc.start]:02x})", row=line,
                          column=_column_at_byte(raw, exc.start)) from None
+    _check_delimiter(path, text)
     _, starts = _csv_records(path, text)
     try:
         # index_col=False: a trailing delimiter on data rows must not turn the first column into an index;
