@@ -38,7 +38,7 @@ from scipy.special import betainc
 
 __all__ = [
     "check_damage_ratios", "beta_parameters", "expected_annual_loss", "loss_exceedance_rates",
-    "limited_mean_loss_ratio", "net_loss_ratio", "expected_annual_net_loss",
+    "limited_mean_loss_ratio", "net_loss_ratio", "expected_annual_net_loss", "check_terms",
 ]
 
 
@@ -205,18 +205,23 @@ def limited_mean_loss_ratio(mean, cov, cap):
     return out
 
 
-def _policy_terms(value, deductible, limit):
-    """Replacement value, deductible (NaN -> 0) and limit (NaN -> inf) as float arrays, checked."""
-    v = np.asarray(value, dtype=float)
+def check_terms(deductible, limit):
+    """Per-event deductible (NaN -> 0) and limit (NaN -> inf) [currency] as float arrays, checked >= 0."""
     d = np.asarray(deductible, dtype=float)
     lim = np.asarray(limit, dtype=float)
-    if np.any(~np.isfinite(v)) or np.any(v < 0):
-        raise ValueError(f"value must be non-negative and finite [currency], got {v[~(v >= 0) | ~np.isfinite(v)][:3].tolist()}")
     if np.any(d < 0):
         raise ValueError(f"deductible must be non-negative or NaN [currency], got {d[d < 0][:3].tolist()}")
     if np.any(lim < 0):
         raise ValueError(f"limit must be non-negative or NaN [currency], got {lim[lim < 0][:3].tolist()}")
-    return v, np.where(np.isnan(d), 0.0, d), np.where(np.isnan(lim), np.inf, lim)
+    return np.where(np.isnan(d), 0.0, d), np.where(np.isnan(lim), np.inf, lim)
+
+
+def _policy_terms(value, deductible, limit):
+    """Replacement value, deductible (NaN -> 0) and limit (NaN -> inf) as float arrays, checked."""
+    v = np.asarray(value, dtype=float)
+    if np.any(~np.isfinite(v)) or np.any(v < 0):
+        raise ValueError(f"value must be non-negative and finite [currency], got {v[~(v >= 0) | ~np.isfinite(v)][:3].tolist()}")
+    return (v, *check_terms(deductible, limit))
 
 
 def net_loss_ratio(mean, cov, value, deductible, limit):

@@ -71,7 +71,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from quakefolio.core.loss import beta_parameters, check_damage_ratios, net_loss_ratio
+from quakefolio.core.loss import beta_parameters, check_damage_ratios, check_terms, net_loss_ratio
 from quakefolio.core.risk import lognormal_fragility
 
 __all__ = [
@@ -370,16 +370,9 @@ def apply_policy(ground_up, deductible, limit):
     apply per event.
     """
     loss = np.asarray(ground_up, dtype=float)
-    ded = np.asarray(deductible, dtype=float)
-    lim = np.asarray(limit, dtype=float)
     if np.any(~np.isfinite(loss)) or np.any(loss < 0):
         raise ValueError(f"ground_up must be non-negative and finite [currency], got {_bad(loss, loss >= 0)}")
-    if np.any(ded < 0):
-        raise ValueError(f"deductible must be non-negative or NaN [currency], got {ded[ded < 0][:3].tolist()}")
-    if np.any(lim < 0):
-        raise ValueError(f"limit must be non-negative or NaN [currency], got {lim[lim < 0][:3].tolist()}")
-    ded = np.where(np.isnan(ded), 0.0, ded)
-    lim = np.where(np.isnan(lim), np.inf, lim)
+    ded, lim = check_terms(deductible, limit)
     return np.minimum(np.maximum(loss - ded, 0.0), lim)
 
 
