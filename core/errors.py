@@ -15,7 +15,7 @@ from __future__ import annotations
 import difflib
 import re
 
-__all__ = ["InputError", "locate_toml_line", "closest_name", "did_you_mean"]
+__all__ = ["InputError", "InputWarning", "locate_toml_line", "closest_name", "did_you_mean"]
 
 
 class InputError(ValueError):
@@ -34,6 +34,21 @@ class InputError(ValueError):
             where += f":{self.row}"
         col = f" column '{self.column}':" if self.column is not None else ""
         return f"{where}:{col} {self.message}"
+
+
+class InputWarning(str):
+    """An accepted but doubtful input, located as :class:`InputError` locates an error.
+
+    It is the warning's text (a ``str``, so it can sit in a run's list of notes and in its
+    manifest) and keeps ``path``, ``row``, ``column`` and ``message``.  The command line
+    prints it as one line ``warning: <file>[:<row>]: [column '<col>': ]<message>`` on stderr.
+    """
+
+    def __new__(cls, path, message, *, row=None, column=None):
+        text = str(InputError(path, message, row=row, column=column))
+        self = super().__new__(cls, text)
+        self.path, self.row, self.column, self.message = (str(path) if path is not None else None), row, column, message
+        return self
 
 
 def closest_name(name, valid, *, cutoff):

@@ -154,9 +154,19 @@ def _check(args):
     print(CAUTION)
     print(f"OK: {args.config}: {len(inputs.exposure)} assets, {inputs.exposure.building_class.nunique()} classes, "
           f"{len(inputs.hazard.site_id)} hazard sites, {n_pairs} unique (site, class) pairs")
-    for w in inputs.warnings:
-        print(f"note: {w}")
+    _print_notes(inputs.warnings, notes=True)
     return 0
+
+
+def _print_notes(warnings, *, notes):
+    """Located input warnings as ``warning: ...`` lines on stderr; with ``notes``, plain notes on stdout."""
+    from quakefolio.core.errors import InputWarning
+
+    for w in warnings:
+        if isinstance(w, InputWarning):
+            print(f"warning: {w}", file=sys.stderr)
+        elif notes:
+            print(f"note: {w}")
 
 
 def _run(args, stages_to_run="all"):
@@ -168,6 +178,7 @@ def _run(args, stages_to_run="all"):
     t0 = time.perf_counter()
     inputs = load_inputs(args.config)  # validate before starting any orchestration: bad input writes nothing
     backend, address = _backend(args, inputs.config)
+    _print_notes(inputs.warnings, notes=False)  # the notes come with the summary
     with StageProgress(enabled=sys.stderr.isatty() and not args.quiet):
         if backend == "dask":
             configure_prefect()
