@@ -88,7 +88,10 @@ def correlation_effect_lines(run, basis="ground_up"):
         if r.relative_change != r.relative_change:
             return "n/a"
         se = r.standard_error_of_change / r.value_independent if r.value_independent else float("nan")
-        return f"{100 * r.relative_change:+.1f}%" + ("" if se != se else f" +- {100 * se:.1f}%")
+        if se != se:
+            return f"{100 * r.relative_change:+.1f}%"
+        noise = " (within noise)" if abs(r.relative_change) < 2 * se else ""
+        return f"{100 * r.relative_change:+.1f}% +- {100 * se:.1f}%{noise}"
 
     parts = []
     for metric, name in (("aep_loss", "PML AEP"), ("tvar_loss", "TVaR")):
@@ -97,7 +100,8 @@ def correlation_effect_lines(run, basis="ground_up"):
     aal = eff[eff.metric == "aal"].iloc[0]
     return [f"secondary uncertainty correlated within each {first.secondary_group.replace('_', ' ')} "
             f"(correlation {first.secondary_correlation:g}) against independent sampling on the same events and "
-            f"ground motions, {basis.replace('_', '-')} (+- 1 standard error, batch means): " + "; ".join(parts) + ".",
+            f"ground motions, {basis.replace('_', '-')} (+- 1 standard error, batch means; within noise: under 2 "
+            f"standard errors, more simulated years resolve it): " + "; ".join(parts) + ".",
             f"AAL {_money(aal.value_correlated)} vs {_money(aal.value_independent)} independent: change "
             f"{_money(aal.change)} +- {_money(aal.standard_error_of_change)} (paired standard error; "
             "the expected change is zero)."]

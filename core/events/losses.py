@@ -43,7 +43,7 @@ __all__ = [
 
 
 def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_model, seed, blocks, class_entry,
-                     correlation=0.0, factors=None):
+                     correlation=0.0, factors=None, twin=False):
     r"""Loss ratio [-] of one class's assets in a chunk of events.
 
     Parameters
@@ -69,7 +69,10 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
         (:func:`quakefolio.core.events.secondary.sample_correlated_loss_ratio`); 0: independent.
     factors : ndarray, shape (n_events, n_assets, 2), or None [-]
         Group factors of each asset's group (:func:`quakefolio.core.events.secondary.group_factors`);
-        needed when ``correlation > 0``.
+        needed when ``correlation > 0`` (not for the twin).
+    twin : bool
+        The independent twin of the draws with ``correlation`` (common random numbers,
+        :mod:`quakefolio.core.events.secondary`).
 
     Returns
     -------
@@ -83,7 +86,7 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
         rng = damage_block_rng(seed, b, class_entry)
         f = (0.0, 0.0) if factors is None else (factors[lo:hi, :, 0], factors[lo:hi, :, 1])
         parts.append(sample_correlated_loss_ratio(rng, x[lo:hi][:, pair], medians, betas, mean_damage_ratio, cov,
-                                                  f[0], f[1], correlation)[1])
+                                                  f[0], f[1], correlation, twin=twin)[1])
     return np.concatenate(parts)
 
 
@@ -142,7 +145,7 @@ def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=No
 
 
 def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model, seed, blocks, correlation=0.0,
-                           group=None, group_sums=None):
+                           group=None, group_sums=None, twin=False):
     r"""Losses of a portfolio in a chunk of events, class by class.
 
     Parameters
@@ -162,6 +165,10 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
         Group index of each asset (needed when sampling with ``correlation > 0``).
     group_sums : quakefolio.core.events.programme.GroupSums, optional
         Receives every asset's net loss per event, summed by terms group.
+    twin : bool
+        Sampled damage with ``correlation > 0`` only: the independent twin of those draws
+        (the same own uniforms without the group factors; common random numbers,
+        :mod:`quakefolio.core.events.secondary`), to measure the correlation's effect.
 
     Returns
     -------
@@ -185,7 +192,7 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     asset_sum = np.zeros((len(bounds), 2, len(value)))
     asset_sumsq = np.zeros((len(bounds), 2, len(value)))
     class_sum = np.zeros((len(bounds), len(classes), 2))
-    shared = loss_model != "mean_damage_ratio" and correlation > 0
+    shared = loss_model != "mean_damage_ratio" and correlation > 0 and not twin
     factors = group_factors(seed, blocks, int(np.max(group)) + 1 if len(group) else 0) if shared else None
     for k, (assets, i_im, medians, betas, mdr, cov, usites, pair) in enumerate(classes):
         x = im[:, i_im, usites]
@@ -197,7 +204,7 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
         else:
             ratio = event_loss_ratio(x, medians, betas, mdr, cov, pair, loss_model=loss_model,
                                      seed=seed, blocks=blocks, class_entry=k, correlation=correlation,
-                                     factors=None if factors is None else factors[:, group[assets]])
+                                     factors=None if factors is None else factors[:, group[assets]], twin=twin)
         on_net = None if group_sums is None else (lambda n, a=assets: group_sums.add(a, n))
         gu, net, a_sum, a_sumsq, total = block_loss_sums(ratio, value[assets], deductible[assets], limit[assets],
                                                          bounds, on_net, net=net_k)

@@ -46,8 +46,8 @@ Limits
 * :math:`0 < \rho < 1`: the own uniforms are mapped to normal scores
   (:math:`\varepsilon = \Phi^{-1}(u^{own})`), and loss ratios come from the beta inverse CDF
   (``scipy.special.betaincinv``) at the correlated uniform; the loss-ratio own uniforms are
-  drawn after the damage-state uniforms, one per asset-event with a random loss ratio, in C
-  order.  The same model as :math:`\rho = 0` in distribution, not in draws.
+  drawn after the damage-state uniforms, one per asset-event (used where the drawn state has
+  a random loss ratio).  The same model as :math:`\rho = 0` in distribution, not in draws.
 * :math:`\rho = 1`: :math:`u_{ie} = \Phi(X^{D}_{g(i)e})` for every asset of the group, so
   damage states and loss-ratio quantiles are comonotonic within a group (the Frechet upper
   bound of the group's dependence).
@@ -55,6 +55,18 @@ Limits
 The correlation is a modelling assumption: the default of the configuration
 (``[portfolio] secondary_correlation``) is this project's assumption, not a published
 calibration.
+
+The independent twin
+--------------------
+The correlation's effect on PML and TVaR (:func:`correlation_effect`) is measured against
+independent draws on the same ground motions.  The twin (``twin=True`` in
+:func:`sample_correlated_loss_ratio`) takes the *same* own uniforms
+:math:`u^{own}, v^{own}` as the correlated draws and leaves the group factors out
+(:math:`\rho = 0` in the copula): the independent model exactly, in distribution, on
+common random numbers, so the paired difference holds only the group factors' effect
+and its sampling noise is far below that of two unrelated simulations (common random
+numbers, a standard variance-reduction technique: Glasserman 2003, Monte Carlo Methods in
+Financial Engineering, Springer, chapter 4 - chapter from memory).
 
 Random streams
 --------------
@@ -154,7 +166,7 @@ def group_factors(seed, blocks, n_groups):
     return out
 
 
-def sample_correlated_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov, z_damage, z_ratio, rho):
+def sample_correlated_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov, z_damage, z_ratio, rho, twin=False):
     r"""Damage state and loss ratio [-] per asset-event with group-correlated secondary uncertainty.
 
     Parameters
@@ -169,6 +181,9 @@ def sample_correlated_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov
         unused when ``rho`` is 0.
     rho : float
         Within-group correlation of the normal scores, in [0, 1].
+    twin : bool
+        True: the independent twin of the draws with ``rho`` (module notes): the same own
+        uniforms, the group factors left out.  Needs ``rho > 0``.
 
     Returns
     -------
@@ -180,25 +195,32 @@ def sample_correlated_loss_ratio(rng, im, medians, betas, mean_damage_ratio, cov
     Notes
     -----
     Module notes.  The generator is used in a fixed order: all own damage-state uniforms
-    (shape S), then, for the asset-events with a random loss ratio in C order, one beta
-    variate each (:math:`\rho = 0`, identical to
-    :func:`~quakefolio.core.events.portfolio.sample_loss_ratio`) or one own uniform each
-    (:math:`\rho > 0`).
+    (shape S), then either, for the asset-events with a random loss ratio in C order, one
+    beta variate each (:math:`\rho = 0`, identical to
+    :func:`~quakefolio.core.events.portfolio.sample_loss_ratio`), or one own loss-ratio
+    uniform per asset-event (shape S; :math:`\rho > 0` and the twin), so that the
+    correlated draws and their twin use the same uniform at every asset-event.
     """
     if not isinstance(rng, np.random.Generator):
         raise ValueError(f"rng must be a numpy.random.Generator, got {type(rng).__name__}")
     rho = check_correlation(rho)
+    if twin and rho == 0.0:
+        raise ValueError("twin=True pairs with correlated draws: it needs rho > 0")
+    shared = 0.0 if twin else rho  # the twin: the same own uniforms, no group factors
     p, mdr, c = _state_terms(im, medians, betas, mean_damage_ratio, cov)
     shape = p.shape[:-1]
-    u = correlated_uniform(rng.random(shape), 0.0 if rho == 0.0 else np.broadcast_to(z_damage, shape), rho)
+    u = correlated_uniform(rng.random(shape), 0.0 if shared == 0.0 else np.broadcast_to(z_damage, shape), shared)
     state, loss_ratio, mu, cv, random = _state_draw(p, mdr, c, u)
+    if rho == 0.0:
+        if np.any(random):
+            a, b = beta_parameters(mu[random], cv[random])
+            loss_ratio[random] = rng.beta(a, b)
+        return state, loss_ratio
+    v_own = rng.random(shape)
     if np.any(random):
         a, b = beta_parameters(mu[random], cv[random])
-        if rho == 0.0:
-            loss_ratio[random] = rng.beta(a, b)
-        else:
-            v = correlated_uniform(rng.random(a.shape), np.broadcast_to(z_ratio, shape)[random], rho)
-            loss_ratio[random] = special.betaincinv(a, b, v)
+        z = 0.0 if shared == 0.0 else np.broadcast_to(z_ratio, shape)[random]
+        loss_ratio[random] = special.betaincinv(a, b, correlated_uniform(v_own[random], z, shared))
     return state, loss_ratio
 
 

@@ -234,8 +234,10 @@ def _correlation_effect_html(run, cur):
             _p(f"The headline numbers above sample damage states and loss ratios with a correlation of "
                f"{first.secondary_correlation:g} between the buildings of one {group} in each event (one-factor "
                f"Gaussian copula on the damage-state and loss-ratio draws; the default of 0.3 is an assumption, not a "
-               f"published calibration). Below, the same events and ground motions with independent draws: the "
-               f"correlation leaves each building's mean loss, hence the AAL, unchanged in expectation and "
-               f"widens the tail."),
+               f"published calibration). Below, the same events and ground motions with independent draws (the "
+               f"same random numbers for each building, the shared group factor left out): the correlation leaves "
+               f"each building's mean loss, hence the AAL, unchanged in expectation and widens the tail. The "
+               f"standard error of each change comes from batch means of the paired simulated years; a change "
+               f"smaller than two standard errors is not distinguishable from zero at this number of years."),
             _table(["basis", "metric", "return period [yr]#", "correlated#", "independent#", "relative change#",
-                    f"paired s.e. of the change [{cur}/yr]#"], rows)]
+                    f"paired s.e. of the change [{cur}, AAL {cur}/yr]#"], rows)]

@@ -309,9 +309,9 @@ def event_chunk(em, chunk, independent=True):
         correlation=em.correlation, group=em.group, group_sums=groups)
     programme, group_sum = chunk_programme_loss(gt, groups, net_ev, [(lo, hi) for _, lo, hi in rows])
     other = None
-    if independent and _correlated(em):  # the same ground motions, independent draws: the correlation's effect
+    if independent and _correlated(em):  # the same ground motions and own draws, no group factors: the effect
         other = portfolio_event_losses(im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model,
-                                             seed=em.seed, blocks=rows)[:2]
+                                       seed=em.seed, blocks=rows, correlation=em.correlation, twin=True)[:2]
     return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts, other, programme,
                        group_sum, pp.chunk_consequences(em, im, start, stop))
 
