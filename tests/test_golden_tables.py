@@ -36,7 +36,7 @@ from conftest import DEMO, REPO
 #: correlated secondary uncertainty, whole logic tree in the event stage, programme terms, people
 #: and time) with the standard errors of the correlation effect; before it, the last commit before the
 #: pipeline redesign
-BASE_COMMIT = "155186f1aea9e51e84dc31b0c6c3888bcff8c626"
+BASE_COMMIT = "56cf06e43025357cb3c49c6bc7a2de419f135e95"
 BASE_SHORT = BASE_COMMIT[:7]
 YEARS = 5000
 CONFIGS = {"compute": "quakefolio.toml", "tabulated": "quakefolio_tabulated.toml"}
