@@ -188,7 +188,11 @@ SCHEMA = {
                               "drawn per event (per-branch mode, for sensitivity)"),
         "spatial_correlation": _key(_BOOL, True),
         "cross_im_correlation": _key(_BOOL, True),
-        "vs30_clustering": _key(_BOOL, False, help="Jayaram & Baker (2009) case with Vs30 clustering"),
+        "correlation_range": _key(_STR, "mixed_site_conditions",
+                                  choices=("mixed_site_conditions", "clustered_site_conditions"),
+                                  help="range of the spatial correlation of within-event residuals: Jayaram & "
+                                       "Baker (2009) for sites of mixed Vs30, or for sites whose Vs30 values "
+                                       "cluster in space (a longer range at short periods)"),
         "loss_model": _key(_STR, "mean_damage_ratio", choices=("mean_damage_ratio", "sampled_damage")),
         "secondary_correlation": _key(_FLOAT, 0.3, _CORRELATION,
                                       help="sampled damage: share of damage and loss-ratio uncertainty common to a "
@@ -321,7 +325,7 @@ class PortfolioSettings(_Section):
     source_branch: str  #: "" for the whole logic tree, else the one source-model branch of the event set
     spatial_correlation: bool  #: spatially correlated within-event residuals
     cross_im_correlation: bool  #: correlated residuals across IMs
-    vs30_clustering: bool  #: correlation model with Vs30 clustering
+    correlation_range: str  #: ``"mixed_site_conditions"`` or ``"clustered_site_conditions"`` (Jayaram & Baker 2009)
     loss_model: str  #: ``"mean_damage_ratio"`` or ``"sampled_damage"``
     secondary_correlation: float  #: within-group correlation of sampled damage and loss ratios [-]
     secondary_group: str  #: exposure column grouping assets that share that uncertainty
@@ -456,6 +460,11 @@ class Config:
     fragility = property(lambda self: self.settings("fragility"), doc="[fragility] as FragilitySettings")
     output = property(lambda self: self.settings("output"), doc="[output] as OutputSettings")
     execution = property(lambda self: self.settings("execution"), doc="[execution] as ExecutionSettings")
+
+
+#: keys of earlier versions: (section, old key) -> the hint that replaces "did you mean"
+RENAMED = {("portfolio", "vs30_clustering"): "; renamed: correlation_range = \"clustered_site_conditions\" "
+                                             "(true) or \"mixed_site_conditions\" (false, the default)"}
 
 
 def _suggest(name, valid):
@@ -649,7 +658,8 @@ def _check_sections(data, path, text):
             raise InputError(path, f"[{sec}] must be a table", row=locate_toml_line(text, (), sec), column=sec)
         for key in body:
             if key not in SCHEMA[sec]:
-                raise toml_place(path, text, (sec,), sec).error(f"unknown key{_suggest(key, SCHEMA[sec])}", key)
+                hint = RENAMED.get((sec, key)) or _suggest(key, SCHEMA[sec])
+                raise toml_place(path, text, (sec,), sec).error(f"unknown key{hint}", key)
 
 
 def _section_values(sec, body, path, text, base):

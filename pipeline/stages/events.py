@@ -210,7 +210,8 @@ def prepare_events(inputs):
         classes.append((code, assets, model.ims.index(dss.im), dss, usites, pair))
     sampler = FieldSampler(inputs.hazard.lon[used], inputs.hazard.lat[used], model.ims,
                            spatial_correlation=pf.spatial_correlation,
-                           cross_im_correlation=pf.cross_im_correlation, vs30_clustering=pf.vs30_clustering)
+                           cross_im_correlation=pf.cross_im_correlation,
+                           vs30_clustering=pf.correlation_range == "clustered_site_conditions")
     per_task = max(1, int(np.ceil(cfg.execution.event_block_size / EVENT_BLOCK_SIZE)))
     group_names, group = _groups(ex, pf.secondary_group)
     return EventModel(
