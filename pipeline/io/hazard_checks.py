@@ -15,7 +15,7 @@ from quakefolio.core.plausibility import (
     CURVE_TOP_ERROR_BELOW_G, CURVE_TOP_WARN_BELOW_G, LEVEL_ERROR_ABOVE_G, LEVEL_WARN_ABOVE_G, unit_advice,
 )
 
-__all__ = ["statistic_rows", "check_flat_curves", "check_levels"]
+__all__ = ["statistic_rows", "check_flat_curves", "check_levels", "zero_curve_warning"]
 
 
 def statistic_rows(path, frame, rows, site, ims, statistic):
@@ -55,8 +55,8 @@ def statistic_rows(path, frame, rows, site, ims, statistic):
     stat = frame["statistic"].astype(str).str.strip().to_numpy(dtype=object)
     keep = stat == statistic
     if not keep.any():
-        raise InputError(path, f"no curves with statistic {statistic!r}; the file has {sorted(set(stat))}", row=2,
-                         column="statistic")
+        raise InputError(path, f"no curves with statistic {statistic!r}; the file has {sorted(set(stat))}",
+                         row=int(rows[0]), column="statistic")
     for what, keys in (("site", site), ("IM", ims)):
         lacking = ~np.isin(keys, np.unique(keys[keep]))
         if lacking.any():
@@ -113,6 +113,31 @@ def _extreme(curves, rows, part, *, largest):
             a, b = np.argwhere((values == v) & (r == row))[0]
             best = (key, (im, int(a), int(b) + offset, v, row))
     return best[1]
+
+
+def zero_curve_warning(path, site_ids, curves, rows):
+    """A warning for curves that are 0 at every level (a site without hazard: accepted, its assets
+    get no damage from that IM); None if there are none.
+
+    Parameters
+    ----------
+    path : str or Path
+    site_ids : ndarray of str (n_sites,)
+    curves : Mapping IM -> (levels (n_sites, n) [g], rates (n_sites, n) [1/yr])
+    rows : Mapping IM -> ndarray of int (n_sites, n)
+
+    Returns
+    -------
+    InputWarning or None
+        At the first row (in the file) of the first such curve, column ``annual_rate``.
+    """
+    found = [(int(rows[im][i, 0]), im, i) for im, (_, rates) in curves.items() for i in np.flatnonzero(rates[:, 0] == 0)]
+    if not found:
+        return None
+    row, im, i = min(found)
+    more = "" if len(found) == 1 else f" ({len(found) - 1} more curves are 0 everywhere)"
+    return InputWarning(path, f"hazard curve of site {str(site_ids[i])!r}, {im} is 0 at every level: a site without "
+                              f"hazard, whose assets get no damage from {im}{more}", row=row, column="annual_rate")
 
 
 def _set_unit(unit):

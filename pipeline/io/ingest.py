@@ -28,7 +28,7 @@ from quakefolio.core.ims import im_period, parse_im
 from quakefolio.core.plausibility import VS30_ERROR_ABOVE_MPS, VS30_ERROR_BELOW_MPS, vs30_problem
 from quakefolio.core.validation import Interval, MaxMagnitude, Real, WholeNumber
 from quakefolio.pipeline.io.config import IM_UNITS_TO_G
-from quakefolio.pipeline.io.hazard_checks import check_flat_curves, check_levels, statistic_rows
+from quakefolio.pipeline.io.hazard_checks import check_flat_curves, check_levels, statistic_rows, zero_curve_warning
 
 __all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves", "HazardCurves", "map_assets_to_sites",
            "curves_for_im", "EXPOSURE_COLUMNS"]
@@ -448,7 +448,8 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     per site, no duplicated level within a curve, rates non-increasing with level,
     every site tabulated for every IM with the same number of levels per IM, at least
     two levels; the statistic asked for present for every site and IM; no flat curve;
-    levels within reach of real ground motion (:mod:`quakefolio.pipeline.io.hazard_checks`).
+    levels within reach of real ground motion; a warning for curves 0 at every level
+    (:mod:`quakefolio.pipeline.io.hazard_checks`).
     Levels are converted from ``im_unit`` to g.
 
     Parameters
@@ -465,8 +466,8 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     -------
     HazardCurves
         Sites sorted by id; per tabulated IM (none interpolated), levels [g] and annual
-        rates [1/yr] of shape (n_sites, n_levels), the file row of every point, and at most
-        one warning about the levels.
+        rates [1/yr] of shape (n_sites, n_levels), the file row of every point, and the
+        warnings about the levels and about curves that are 0 everywhere.
 
     Raises
     ------
@@ -536,6 +537,7 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
         curve_rows[im] = sub.row.to_numpy().reshape(-1, n)
     check_flat_curves(path, site_ids, curves, curve_rows)
     notes = check_levels(path, site_ids, curves, curve_rows, im_unit, IM_UNITS_TO_G)
+    notes += [w for w in [zero_curve_warning(path, site_ids, curves, curve_rows)] if w is not None]
     return HazardCurves(site_id=site_ids, lon=sites.lon.to_numpy(), lat=sites.lat.to_numpy(), curves=curves,
                         source=str(path), interpolated=frozenset(), rows=curve_rows, warnings=tuple(notes))
 
@@ -592,9 +594,15 @@ def curves_for_im(hazard, im, *, allow_interpolation=True):
         row = int(hazard.rows[blame][site, 0]) if blame in hazard.rows else None
         raise InputError(hazard.source, f"site {str(hazard.site_id[site])!r}: {im} cannot be interpolated between "
                                         f"{lo} and {hi}, whose curves share no range of positive rates "
-                                        f"({exc.ranges}); a site without hazard has rates of 0 at every period",
+                                        f"({exc.ranges}); {_overlap_hint(exc)}",
                          row=row, column="annual_rate") from None
 
+
+
+def _overlap_hint(exc):
+    if "0 at every level" in exc.ranges:
+        return "a site without hazard has rates of 0 at every period"
+    return "the curves of one site must overlap in rate to be interpolated between: check both"
 
 
 def map_assets_to_sites(exposure, hazard, *, max_distance_km, exposure_path):

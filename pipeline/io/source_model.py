@@ -216,6 +216,14 @@ def _pairs(src, key, width):
     return [tuple(float(v) for v in row) for row in value]
 
 
+def _check_top_magnitude(kind, spec, num):
+    """Refuse a largest magnitude above :data:`~quakefolio.core.plausibility.MAX_MAGNITUDE`."""
+    top = {"truncated_gr": "max_mag", "characteristic": "char_mag", "single": "mag"}[kind]
+    if top in spec and num(top) > MAX_MAGNITUDE:
+        raise _FieldError("mfd", f"{top} {num(top):g} is above any plausible earthquake (the largest recorded is Mw "
+                                 f"9.5; magnitudes above {MAX_MAGNITUDE:g} are refused)")
+
+
 def _mfd(src, settings, area_km2):
     spec = src["mfd"]
     if not isinstance(spec, dict):
@@ -242,10 +250,7 @@ def _mfd(src, settings, area_km2):
     given = [k for k in rate_keys if k in spec]
     if len(given) != 1:
         raise _FieldError("mfd", f"mfd of kind '{kind}' needs exactly one of {', '.join(rate_keys)}")
-    top = {"truncated_gr": "max_mag", "characteristic": "char_mag", "single": "mag"}[kind]
-    if top in spec and num(top) > MAX_MAGNITUDE:
-        raise _FieldError("mfd", f"{top} {num(top):g} is above any plausible earthquake (the largest recorded is Mw "
-                                 f"9.5; magnitudes above {MAX_MAGNITUDE:g} are refused)")
+    _check_top_magnitude(kind, spec, num)
     slip = "slip_rate_mm_per_yr" in spec
     if slip and area_km2 is None:
         raise _FieldError("mfd", "slip_rate_mm_per_yr (moment balance) is only available for faults")

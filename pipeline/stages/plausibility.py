@@ -164,10 +164,10 @@ def vs30_warning(config, exposure, gmms):
     default = config.hazard.default_vs30_mps
     if np.isnan(vs30).any() and not lo <= default <= hi:
         text = Path(config.path).read_text(encoding="utf-8-sig")
-        return InputWarning(config.path, f"Vs30 {default:g} m/s (of {int(np.isnan(vs30).sum())} assets without "
-                                         f"vs30_mps) is {tail}", row=locate_toml_line(text, ("hazard",),
-                                                                                     "default_vs30_mps"),
-                            column="hazard.default_vs30_mps")
+        n = int(np.isnan(vs30).sum())
+        return InputWarning(config.path, f"Vs30 {default:g} m/s (of the {n} asset{'s' if n > 1 else ''} without "
+                                         f"vs30_mps) is {tail}",
+                            row=locate_toml_line(text, ("hazard",), "default_vs30_mps"), column="hazard.default_vs30_mps")
     return None
 
 
