@@ -52,6 +52,7 @@ __all__ = [
     "aeqd_forward",
     "aeqd_inverse",
     "points_in_polygon",
+    "polyline_self_crossing",
     "rupture_distances",
     "pair_distances",
     "site_rupture_mask",
@@ -226,6 +227,68 @@ def points_in_polygon(x: ArrayLike, y: ArrayLike, poly_x: ArrayLike, poly_y: Arr
         crossings = straddles & (qx < x_cross)
         inside[start:start + block] = (np.count_nonzero(crossings, axis=1) % 2) == 1
     return inside
+
+
+#: Cosine of 1 degree: a neighbouring segment within 1 degree of straight back overlaps its predecessor.
+_STRAIGHT_BACK = float(np.cos(np.radians(1.0)))
+
+
+def _turn(ax, ay, bx, by, cx, cy):
+    """Sign of the cross product (b - a) x (c - a): +1 left turn, -1 right turn, 0 collinear."""
+    return float(np.sign((bx - ax) * (cy - ay) - (by - ay) * (cx - ax)))
+
+
+def _within(ax, ay, bx, by, cx, cy):
+    """Whether c, collinear with a-b, lies within the bounding box of segment a-b."""
+    return min(ax, bx) <= cx <= max(ax, bx) and min(ay, by) <= cy <= max(ay, by)
+
+
+def _segments_meet(p1, p2, p3, p4):
+    """Whether closed segments p1-p2 and p3-p4 share a point (orientation test; Cormen, Leiserson,
+    Rivest & Stein 2009, *Introduction to Algorithms*, 3rd ed., section 33.1)."""
+    d1, d2 = _turn(*p3, *p4, *p1), _turn(*p3, *p4, *p2)
+    d3, d4 = _turn(*p1, *p2, *p3), _turn(*p1, *p2, *p4)
+    if d1 * d2 < 0 and d3 * d4 < 0:
+        return True
+    return ((d1 == 0 and _within(*p3, *p4, *p1)) or (d2 == 0 and _within(*p3, *p4, *p2))
+            or (d3 == 0 and _within(*p1, *p2, *p3)) or (d4 == 0 and _within(*p1, *p2, *p4)))
+
+
+def polyline_self_crossing(lon_deg: ArrayLike, lat_deg: ArrayLike) -> tuple[int, int] | None:
+    """The first two segments of a polyline [deg] that meet, other than neighbours at their shared point.
+
+    Segment ``i`` joins points ``i`` and ``i + 1``.  The points are projected with
+    :func:`aeqd_forward` about their :func:`mean_position` (fault traces span tens to a few
+    hundred km, where the projection's distortion is far below any crossing's margin).
+    Neighbouring segments meet at their shared point by construction; they count as meeting
+    only when the second turns back along the first (within 1 degree of straight back: a
+    line of constant latitude is no straight line in the projection).
+
+    Parameters
+    ----------
+    lon_deg, lat_deg : array_like, shape (n,)
+        Points in order, ``n >= 2``.
+
+    Returns
+    -------
+    (i, j) or None
+        Indices ``i < j`` of the first pair of segments that meet, or None for a simple
+        polyline.
+    """
+    lon, lat = _check_lonlat("polyline_self_crossing", lon_deg, lat_deg)
+    x, y = aeqd_forward(lon, lat, *mean_position(lon, lat))
+    pts = list(zip(np.asarray(x, dtype=float).tolist(), np.asarray(y, dtype=float).tolist()))
+    for i in range(len(pts) - 1):
+        for j in range(i + 1, len(pts) - 1):
+            if j == i + 1:
+                a, b, c = pts[i], pts[i + 1], pts[i + 2]
+                u, v = (b[0] - a[0], b[1] - a[1]), (c[0] - b[0], c[1] - b[1])
+                norms = np.hypot(*u) * np.hypot(*v)
+                if norms > 0 and (u[0] * v[0] + u[1] * v[1]) < -_STRAIGHT_BACK * norms:
+                    return i, j
+            elif _segments_meet(pts[i], pts[i + 1], pts[j], pts[j + 1]):
+                return i, j
+    return None
 
 
 # --------------------------------------------------------------------------- #

@@ -15,6 +15,7 @@ from types import MappingProxyType
 
 from quakefolio.core.errors import InputError, did_you_mean, locate_toml_line
 from quakefolio.core.ims import parse_im
+from quakefolio.core.plausibility import vs30_problem
 from quakefolio.core.validation import (
     REQUIRED, Boolean, Constraint, Field, Integer, Interval, Invalid, ListOf, OneOf, Pattern, Real, Rule, Schema, Text,
     check_value, toml_place, validate_table,
@@ -174,7 +175,8 @@ SCHEMA = {
         "im_levels_g": _key(_FLOATS, DEFAULT_LEVELS_G, _LEVELS),
         "fractiles": _key(_FLOATS, [0.16, 0.5, 0.84], _QUANTILES),
         "site_spacing_km": _key(_FLOAT, 0.0, _NON_NEGATIVE, help="0: a site per unique asset location"),
-        "default_vs30_mps": _key(_FLOAT, 760.0, _POSITIVE),
+        "default_vs30_mps": _key(_FLOAT, 760.0, _POSITIVE, Rule(lambda v: vs30_problem(v) is None, vs30_problem,
+                                                                 show_value=False)),
         "region": _key(_STR, "global"),
         "disaggregation": _key(_BOOL, True),
         "propagate_branches": _key(_BOOL, False, help="also give damage and EAL fractiles over branches"),

@@ -42,10 +42,12 @@ from __future__ import annotations
 
 import math
 
-from quakefolio.core.errors import did_you_mean
+from quakefolio.core.errors import InputWarning, did_you_mean
+from quakefolio.core.plausibility import MAX_MAGNITUDE
 from quakefolio.core.sources.mfd import (
     characteristic_yc85, moment_balanced, moment_rate_from_slip, single_magnitude, truncated_gr,
 )
+from quakefolio.core.sources.geometry import polyline_self_crossing
 from quakefolio.core.sources.ruptures import (
     RuptureSet, area_source_ruptures, fault_plane_area_km2, planar_fault_ruptures, point_source_ruptures,
 )
@@ -72,10 +74,16 @@ _MFD_KEYS = {
 
 
 class SourceModel:
-    """A parsed source model: its ruptures, per-source summary and provenance."""
+    """A parsed source model: its ruptures, per-source summary and provenance.
 
-    def __init__(self, path, name, ruptures, sources, sha256):
+    ``magnitudes`` holds per source ``(row, column, smallest, largest magnitude [Mw])`` with
+    the line and key of its ``mfd`` (for checks against the ground-motion models), and
+    ``warnings`` the doubts found in the file (:class:`~quakefolio.core.errors.InputWarning`).
+    """
+
+    def __init__(self, path, name, ruptures, sources, sha256, magnitudes=(), warnings=()):
         self.path, self.name, self.ruptures, self.sources, self.sha256 = path, name, ruptures, sources, sha256
+        self.magnitudes, self.warnings = tuple(magnitudes), tuple(warnings)
 
 
 _TOP_SCHEMA = Schema({key: Field((), None) for key in _TOP})
@@ -103,7 +111,8 @@ def _settings(data, path, text):
 
 
 def _source(kind, i, src, settings, seen, path, text):
-    """One ``[[faults]]``, ``[[areas]]`` or ``[[points]]`` table to its ruptures and summary row."""
+    """One ``[[faults]]``, ``[[areas]]`` or ``[[points]]`` table to its ruptures, summary row, magnitude range
+    ``(row, column, min, max)`` (None without ruptures) and warnings."""
     place = toml_place(path, text, (kind,), f"{kind}[{i}]", i)
     if not isinstance(src, dict):
         raise place.error("expected a table")
@@ -118,7 +127,14 @@ def _source(kind, i, src, settings, seen, path, text):
         raise place.error(exc.msg, exc.key) from None
     except ValueError as exc:
         raise place.error(f"source {sid!r}: {exc}") from None
-    return rs, {"source_id": sid, "kind": kind[:-1], **info, "n_ruptures": len(rs), "total_rate": float(rs.rate.sum())}
+    notes = []
+    if kind == "faults" and len(src["trace"]) > 2:
+        notes.append(InputWarning(path, f"fault {sid!r}: the trace has {len(src['trace'])} points but faults are "
+                                        "planar: it is straightened to the segment from its first to its last point",
+                                  row=place.locate("trace"), column=place.column_of("trace")))
+    mags = (place.locate("mfd"), place.column_of("mfd"), float(rs.mag.min()), float(rs.mag.max())) if len(rs) else None
+    row = {"source_id": sid, "kind": kind[:-1], **info, "n_ruptures": len(rs), "total_rate": float(rs.rate.sum())}
+    return rs, row, mags, notes
 
 
 def load_source_model(path):
@@ -132,12 +148,15 @@ def load_source_model(path):
     Returns
     -------
     SourceModel
-        Ruptures of every source, a summary row per source and the file's sha256.
+        Ruptures of every source, a summary row per source, the file's sha256, each source's
+        magnitude range and the doubts found (a fault trace of more than two points, which is
+        straightened).
 
     Raises
     ------
     InputError
-        On the first problem, naming file, line and key.
+        On the first problem, naming file, line and key (among them a self-crossing fault
+        trace and a magnitude above :data:`~quakefolio.core.plausibility.MAX_MAGNITUDE`).
     """
     text, data, digest = read_toml(path)
     path = str(path)
@@ -146,18 +165,20 @@ def load_source_model(path):
     if data.get("format") != FORMAT_TAG:
         raise root.error(f"expected format = \"{FORMAT_TAG}\", got {data.get('format')!r}", "format")
     settings = _settings(data, path, text)
-    sets, summary, seen = [], [], set()
+    sets, summary, seen, magnitudes, notes = [], [], set(), [], []
     for kind in ("faults", "areas", "points"):
         entries = data.get(kind, [])
         if not isinstance(entries, list):
             raise root.error(f"'{kind}' must be an array of tables ([[{kind}]])", kind)
         for i, src in enumerate(entries):
-            rs, row = _source(kind, i, src, settings, seen, path, text)
+            rs, row, mags, doubts = _source(kind, i, src, settings, seen, path, text)
             sets.append(rs)
             summary.append(row)
+            magnitudes += [mags] if mags else []
+            notes += doubts
     if not sets:
         raise root.error("the source model defines no source ([[faults]], [[areas]] or [[points]])")
-    return SourceModel(path, str(data.get("name", "")), RuptureSet.concat(sets), summary, digest)
+    return SourceModel(path, str(data.get("name", "")), RuptureSet.concat(sets), summary, digest, magnitudes, notes)
 
 
 def _hint(key, valid):
@@ -195,6 +216,14 @@ def _pairs(src, key, width):
     return [tuple(float(v) for v in row) for row in value]
 
 
+def _check_top_magnitude(kind, spec, num):
+    """Refuse a largest magnitude above :data:`~quakefolio.core.plausibility.MAX_MAGNITUDE`."""
+    top = {"truncated_gr": "max_mag", "characteristic": "char_mag", "single": "mag"}[kind]
+    if top in spec and num(top) > MAX_MAGNITUDE:
+        raise _FieldError("mfd", f"{top} {num(top):g} is above any plausible earthquake (the largest recorded is Mw "
+                                 f"9.5; magnitudes above {MAX_MAGNITUDE:g} are refused)")
+
+
 def _mfd(src, settings, area_km2):
     spec = src["mfd"]
     if not isinstance(spec, dict):
@@ -221,6 +250,7 @@ def _mfd(src, settings, area_km2):
     given = [k for k in rate_keys if k in spec]
     if len(given) != 1:
         raise _FieldError("mfd", f"mfd of kind '{kind}' needs exactly one of {', '.join(rate_keys)}")
+    _check_top_magnitude(kind, spec, num)
     slip = "slip_rate_mm_per_yr" in spec
     if slip and area_km2 is None:
         raise _FieldError("mfd", "slip_rate_mm_per_yr (moment balance) is only available for faults")
@@ -259,6 +289,11 @@ def _build(kind, src, settings):
         trace = _pairs(src, "trace", 2)
         if len(trace) < 2:
             raise _FieldError("trace", "a fault trace needs at least two [lon, lat] points")
+        crossing = polyline_self_crossing([p[0] for p in trace], [p[1] for p in trace])
+        if crossing is not None:
+            i, j = crossing
+            raise _FieldError("trace", f"the fault trace crosses itself (segment {i + 1} meets segment {j + 1}, "
+                                       "counting from the first point); give the points in order along the fault")
         dip = _field(src, "dip_deg", positive=True)
         if dip > 90:
             raise _FieldError("dip_deg", f"dip must lie in (0, 90], got {dip:g}")

@@ -16,6 +16,7 @@ from quakefolio.pipeline.io.group_terms import group_terms_for
 from quakefolio.pipeline.io.ingest import map_assets_to_sites, read_exposure, read_hazard_curves
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 from quakefolio.pipeline.stages.hazard import prepare_compute
+from quakefolio.pipeline.stages.plausibility import input_warnings
 from quakefolio.pipeline.stages.products import RunInputs, frozen_mapping
 from quakefolio.pipeline.stages.whatif import validate as validate_alternatives
 
@@ -60,7 +61,9 @@ def load_inputs(config_or_path):
     Ingest mode reads the tabulated curves and maps assets to the nearest site; compute
     mode reads the source models and builds hazard sites from the exposure (the curves
     are computed later by :mod:`quakefolio.pipeline.stages.hazard`).  Cross-file checks
-    (class IMs available, curves do not cross, retrofit alternatives) run here, once.
+    (class IMs available, curves do not cross, retrofit alternatives) run here, once, and
+    the located warnings about doubtful inputs are gathered
+    (:func:`quakefolio.pipeline.stages.plausibility.input_warnings`).
 
     Parameters
     ----------
@@ -101,6 +104,7 @@ def load_inputs(config_or_path):
     if model is None:
         hazard = levels_of.hazard  # with the curves interpolated across periods for the classes
     warnings = [group_warning] if group_warning else []
+    warnings += input_warnings(config, library, exposure, hazard, site_index, dist, model)
     if hazard.interpolated:
         warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
                         "(log-log between neighbouring tabulated periods)")
