@@ -217,7 +217,7 @@ def test_ag16_sample_covers_every_branch(ag16_pair):
 @pytest.mark.parametrize("quantity", ["ln", "sigma"])
 def test_pzt11_matches_pygmm(pzt11_pair, quantity):
     # oracle: pygmm 0.8.0 scalar PZT11, its sigma times ln(10) (module docstring);
-    # Pezeshk, Zandieh & Tavakoli (2011) Eqs. 4-6
+    # Pezeshk, Zandieh & Tavakoli (2011) Eqs. 4-6 (equation numbers from memory)
     _, res, oracle = pzt11_pair
     ours = res.ln_median if quantity == "ln" else res.sigma
     assert np.isfinite(ours).all()
