@@ -589,6 +589,11 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     ln_median, tau, phi : ndarray, shape (n_gmms, n_ims, n_sites, n_ruptures)
         ``-inf`` median and zero tau and phi for pairs beyond the integration distance
         (the ground motion there is taken as nil).
+
+    Raises
+    ------
+    ValueError
+        If a model to evaluate gives only a total sigma (``has_tau_phi`` False).
     """
     n_im = len(ims)
     mu = np.full((len(gmms), n_im, len(site_lon), len(ruptures.mag)), -np.inf)
@@ -598,6 +603,9 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     if inp is None:
         return mu, tau, phi
     for g in (range(len(gmms)) if evaluate is None else evaluate):
+        if not gmms[g].has_tau_phi:
+            raise ValueError(f"{gmms[g].name}: the model gives only a total sigma; event ground motion needs "
+                             "its between- and within-event parts (tau, phi)")
         res = gmms[g].evaluate(inp, ims)
         mu[g][:, si, ri] = res.ln_median
         tau[g][:, si, ri] = res.tau

@@ -27,9 +27,19 @@ __all__ = [
     "mechanism_flags",
     "mean_z1p0_km",
     "mean_z2p5_km",
+    "TECTONIC_REGIONS",
 ]
 
 FloatArray = NDArray[np.float64]
+
+#: tectonic regions a ground-motion model can be for (``VectorGmm.tectonic_regions``)
+TECTONIC_REGIONS = (
+    "active_crustal",
+    "subduction_interface",
+    "subduction_intraslab",
+    "stable_continental",
+)
+
 
 # --------------------------------------------------------------------------- #
 # Intensity-measure names
@@ -132,6 +142,15 @@ class GmmInput:
         ``"global"``, ``"california"``, ``"japan"``, ``"italy"``, ``"china"``,
         ``"turkey"``, ``"taiwan"``, ``"new_zealand"``. Each model lists the
         regions it supports in ``supported_regions``.
+    rhyp_km : array_like, optional
+        Hypocentral distance [km], >= 0. Used by the subduction model for
+        intraslab events (AG16); crustal models ignore it.
+    intraslab : array_like of {0, 1}, optional
+        Subduction event type: 1 for an intraslab (in-slab) event, 0 for an
+        interface event. Required by AG16; crustal models ignore it.
+    backarc : array_like of {0, 1}, optional
+        1 for a site in the backarc of a subduction zone, 0 in the forearc or
+        unknown (``None``: 0 everywhere). Used by AG16; crustal models ignore it.
 
     Raises
     ------
@@ -154,6 +173,10 @@ class GmmInput:
     z1p0_km: ArrayLike | None = None
     z2p5_km: ArrayLike | None = None
     region: str = "global"
+    # subduction event type and path (AG16); other models ignore these fields
+    rhyp_km: ArrayLike | None = None
+    intraslab: ArrayLike | None = None
+    backarc: ArrayLike | None = None
 
     #: per field: (constraint text, predicate on the float array, NaN allowed)
     _CONSTRAINTS: ClassVar[dict] = {
@@ -170,6 +193,9 @@ class GmmInput:
         "width_km": ("finite and > 0 or NaN", lambda a: np.isfinite(a) & (a > 0), True),
         "z1p0_km": ("finite and >= 0 or NaN", lambda a: np.isfinite(a) & (a >= 0), True),
         "z2p5_km": ("finite and >= 0 or NaN", lambda a: np.isfinite(a) & (a >= 0), True),
+        "rhyp_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
+        "intraslab": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
+        "backarc": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
     }
 
     def __post_init__(self) -> None:
@@ -417,6 +443,12 @@ class VectorGmm:
     supported_regions: ClassVar[tuple[str, ...]] = ()
     #: documented applicability ranges (informative; not enforced)
     applicability: ClassVar[dict[str, object]] = {}
+    #: tectonic regions (names from :data:`TECTONIC_REGIONS`) whose earthquakes the model is for
+    tectonic_regions: ClassVar[tuple[str, ...]] = ()
+    #: False when the model publishes only the total sigma: ``tau`` and ``phi`` are then NaN
+    has_tau_phi: ClassVar[bool] = True
+    #: False when the model has no site term (its medians are for its reference rock)
+    uses_vs30: ClassVar[bool] = True
 
     @cached_property
     def coefficients(self) -> dict[str, FloatArray]:

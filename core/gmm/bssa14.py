@@ -64,6 +64,7 @@ class Bssa14(VectorGmm):
         "Boore, Stewart, Seyhan & Atkinson (2014), Earthquake Spectra 30(3), 1057-1085"
     )
     coefficient_file = "boore_stewart_seyhan_atkinson-2014.csv"
+    tectonic_regions = ("active_crustal",)
     supported_regions = (
         "global",
         "california",

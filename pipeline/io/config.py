@@ -493,12 +493,14 @@ def _source_branch(i, entry, base):
 
 
 def _gmm_branch(i, entry, base):
-    from quakefolio.core.gmm import GMM_REGISTRY
+    from quakefolio.core.gmm import GMM_REGISTRY, models_for_region
 
     weight = _branch_weight(i, entry)
     model = entry.get("model")
-    if model not in GMM_REGISTRY:
-        raise Invalid(f"branch {i + 1}: unknown ground-motion model {model!r}; valid: {', '.join(GMM_REGISTRY)}")
+    valid = models_for_region("active_crustal")  # source models hold active crustal sources only
+    if model not in valid:
+        what = "unknown" if model not in GMM_REGISTRY else "not an active-crustal"
+        raise Invalid(f"branch {i + 1}: {what} ground-motion model {model!r}; valid: {', '.join(valid)}")
     return {"model": model, "weight": weight, "id": model}
 
 
