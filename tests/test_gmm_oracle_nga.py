@@ -33,7 +33,8 @@ paper and the comparison is arranged so that it stays like-for-like:
 One reading is shared with pygmm and could not be checked against the paper's
 text here: ASK14's Vs30-class coefficients (basin slopes a43-a46, Japan terms
 a36-a42) are interpolated linearly between class centres rather than applied
-as steps (see ``quakefolio.core.gmm.ask14``).
+as steps (see ``quakefolio.core.gmm.ask14``). Equation numbers of ASK14 and
+CY14 quoted here are from memory.
 """
 
 from __future__ import annotations

@@ -101,7 +101,8 @@ class Ask14(VectorGmm):
     ----------
     Abrahamson, N.A., Silva, W.J. & Kamai, R. (2014). Summary of the ASK14 ground
     motion relation for active crustal regions. Earthquake Spectra 30(3), 1025-1055,
-    doi:10.1193/070913EQS198M.
+    doi:10.1193/070913EQS198M. Equation numbers are from memory (the paper's text
+    was not at hand when this was written); the coefficients are the authors' table.
     """
 
     name = "ASK14"

@@ -70,6 +70,8 @@ class Cy14(VectorGmm):
     Chiou, B.S.-J. & Youngs, R.R. (2014). Update of the Chiou and Youngs NGA model
     for the average horizontal component of peak ground motion and response
     spectra. Earthquake Spectra 30(3), 1117-1153, doi:10.1193/072813EQS219M.
+    Equation numbers are from memory (the paper's text was not at hand when this
+    was written); the coefficients are the authors' table (NGA-West2 spreadsheet v5.7).
     """
 
     name = "CY14"
