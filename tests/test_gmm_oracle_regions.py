@@ -364,7 +364,7 @@ def test_periods_interpolation_and_range(name):
 def test_every_model_names_its_tectonic_regions():
     for name, model in GMM_REGISTRY.items():
         assert model.tectonic_regions and set(model.tectonic_regions) <= set(TECTONIC_REGIONS), name
-    assert models_for_region("active_crustal") == ("BSSA14", "CB14")
+    assert models_for_region("active_crustal") == ("BSSA14", "CB14", "ASK14", "CY14", "I14")
     assert models_for_region("subduction_interface") == ("AG16",)
     assert models_for_region("subduction_intraslab") == ("AG16",)
     assert models_for_region("stable_continental") == ("PZT11",)
@@ -372,7 +372,7 @@ def test_every_model_names_its_tectonic_regions():
         models_for_region("oceanic")
 
 
-@pytest.mark.parametrize("name", ["BSSA14", "CB14"])
+@pytest.mark.parametrize("name", ["BSSA14", "CB14", "ASK14", "CY14", "I14"])
 def test_crustal_models_ignore_the_subduction_fields(name):
     rng = np.random.default_rng(3)
     n = 50

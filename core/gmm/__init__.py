@@ -1,4 +1,4 @@
-r"""Vectorised ground-motion models (GMMs): active crustal, subduction and stable-continental.
+r"""Vectorised ground-motion models (GMMs): active crustal (NGA-West2), subduction and stable-continental.
 
 Every model evaluates the natural-log median of an intensity measure (IM) and
 its aleatory variability for many rupture-site scenarios at once. Scenario
@@ -22,6 +22,15 @@ Models
 ``CB14``
     Campbell & Bozorgnia (2014), Earthquake Spectra 30(3), 1087-1115,
     doi:10.1193/062913EQS175M.
+``ASK14``
+    Abrahamson, Silva & Kamai (2014), Earthquake Spectra 30(3), 1025-1055,
+    doi:10.1193/070913EQS198M.
+``CY14``
+    Chiou & Youngs (2014), Earthquake Spectra 30(3), 1117-1153,
+    doi:10.1193/072813EQS219M.
+``I14``
+    Idriss (2014), Earthquake Spectra 30(3), 1155-1177,
+    doi:10.1193/070613EQS195M.
 ``AG16``
     Abrahamson, Gregor & Addo (2016), Earthquake Spectra 32(1), 23-44,
     doi:10.1193/051712EQS188MR; subduction interface and intraslab events
@@ -31,10 +40,16 @@ Models
     of America 101(4), 1859-1870, doi:10.1785/0120100144; stable continental
     regions, hard rock (no site term), total sigma only.
 
+Each crustal model needs only the scenario fields it names; the rupture geometry of the
+hazard engine (``quakefolio.core.hazard``) gives all of them (Rrup, Rjb, Rx,
+Ry0, Ztor, hypocentral depth, dip, rake, width). Basin depths and the
+measured-Vs30 flag are optional: where unknown, each model uses its own default
+(a mean depth for the site's Vs30, inferred Vs30).
+
 Tectonic regions
 ----------------
 Each model lists the tectonic regions it is for in ``tectonic_regions``
-(names from :data:`TECTONIC_REGIONS`): ``active_crustal`` (BSSA14, CB14),
+(names from :data:`TECTONIC_REGIONS`): ``active_crustal`` (BSSA14, CB14, ASK14, CY14, I14),
 ``subduction_interface`` and ``subduction_intraslab`` (AG16),
 ``stable_continental`` (PZT11); :func:`models_for_region` lists them by region.
 
@@ -49,7 +64,8 @@ periods. A period outside the tabulated range raises ``ValueError``.
 Verification
 ------------
 Every model is checked against pygmm's scalar implementations to 1e-6 in ln
-units (``tests/test_gmm_oracle.py`` for the crustal models,
+units (``tests/test_gmm_oracle.py`` for BSSA14 and CB14,
+``tests/test_gmm_oracle_nga.py`` for ASK14, CY14 and I14,
 ``tests/test_gmm_oracle_regions.py`` for AG16 and PZT11); the places where that
 package departs from the papers, and how the comparison handles them, are listed
 there.
@@ -61,18 +77,24 @@ from quakefolio.core.gmm.base import (
     TECTONIC_REGIONS, GmmInput, GmmResult, VectorGmm, im_period_s, mean_z1p0_km, mean_z2p5_km,
     mechanism_flags,
 )
+from quakefolio.core.gmm.ask14 import Ask14
 from quakefolio.core.gmm.bssa14 import Bssa14
 from quakefolio.core.gmm.cb14 import Cb14
 from quakefolio.core.gmm.pzt11 import Pzt11
+from quakefolio.core.gmm.cy14 import Cy14
+from quakefolio.core.gmm.i14 import I14
 
 __all__ = [
     "GmmInput",
     "GmmResult",
     "VectorGmm",
+    "Ask14",
     "Bssa14",
     "Cb14",
     "Ag16",
     "Pzt11",
+    "Cy14",
+    "I14",
     "GMM_REGISTRY",
     "TECTONIC_REGIONS",
     "get_gmm",
@@ -90,6 +112,9 @@ __all__ = [
 GMM_REGISTRY: dict[str, VectorGmm] = {
     "BSSA14": Bssa14(),
     "CB14": Cb14(),
+    "ASK14": Ask14(),
+    "CY14": Cy14(),
+    "I14": I14(),
     "AG16": Ag16(),
     "PZT11": Pzt11(),
 }

@@ -114,7 +114,9 @@ class GmmInput:
         to strike, positive on the hanging wall [km].
     ry0_km : array_like, optional
         Horizontal distance off the end of the rupture measured parallel to
-        strike [km], >= 0. Not used by BSSA14 or CB14; carried for other models.
+        strike [km], >= 0 (0 beside the rupture). ``None``, or NaN entries:
+        unknown; ASK14 then tapers its hanging-wall term with Rjb instead
+        (its Eq. 15). Not used by the other models.
     ztor_km : array_like, optional
         Depth to the top of rupture [km], >= 0.
     zhyp_km : array_like, optional
@@ -137,6 +139,11 @@ class GmmInput:
     z2p5_km : array_like, optional
         Depth to the 2.5 km/s shear-wave horizon [km], >= 0. ``None``, or NaN
         entries: unknown, the model's default (mean) depth is used.
+    vs30_measured : array_like, optional
+        1 where Vs30 was measured at the site, 0 where it was inferred (from
+        geology, topography or a map). ``None``: inferred everywhere. Used by
+        the within-event variability of ASK14 and CY14 (larger for inferred
+        Vs30); the other models ignore it.
     region : str
         One region for all scenarios of this input (lower case), e.g.
         ``"global"``, ``"california"``, ``"japan"``, ``"italy"``, ``"china"``,
@@ -177,6 +184,7 @@ class GmmInput:
     rhyp_km: ArrayLike | None = None
     intraslab: ArrayLike | None = None
     backarc: ArrayLike | None = None
+    vs30_measured: ArrayLike | None = None
 
     #: per field: (constraint text, predicate on the float array, NaN allowed)
     _CONSTRAINTS: ClassVar[dict] = {
@@ -185,7 +193,7 @@ class GmmInput:
         "rrup_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
         "rjb_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
         "rx_km": ("finite", np.isfinite, False),
-        "ry0_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
+        "ry0_km": ("finite and >= 0 or NaN", lambda a: np.isfinite(a) & (a >= 0), True),
         "ztor_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
         "zhyp_km": ("finite and >= 0 or NaN", lambda a: np.isfinite(a) & (a >= 0), True),
         "dip_deg": ("in (0, 90]", lambda a: (a > 0) & (a <= 90), False),
@@ -196,6 +204,7 @@ class GmmInput:
         "rhyp_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
         "intraslab": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
         "backarc": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
+        "vs30_measured": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
     }
 
     def __post_init__(self) -> None:
