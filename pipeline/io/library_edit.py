@@ -117,7 +117,7 @@ def _last_code(lines, lo, hi):
 def _set_value(lines, lo, hi, key, value, nl):
     """Replace ``key = ...`` in ``lines[lo:hi]`` keeping spacing and comment, or add it after the last key line."""
     pattern = re.compile(r"^(\s*(?:" + re.escape(key) + r"|\"" + re.escape(key) + r"\"|'" + re.escape(key)
-                         + r"')\s*=\s*)([^\s#]+|\"(?:[^\"\\]|\\.)*\")(\s*(?:#.*)?)(\r?\n?)$")
+                         + r"')[ \t]*=[ \t]*)([^\s#]+|\"(?:[^\"\\]|\\.)*\")([ \t]*(?:#[^\r\n]*)?)(\r?\n?)$")
     for i in range(lo, hi):
         m = pattern.match(lines[i])
         if m:

@@ -175,7 +175,10 @@ class RunWriter:
         try:
             self.run_id, self.partial = claim_run(self.runs, run_id)
         except OSError as exc:
-            _reraise(exc, self.runs, "cannot create a run folder")
+            out = denied(exc, self.runs, "cannot create a run folder")
+            if out is None:
+                raise
+            raise OutputError(self.runs, out.message) from None  # the folder, not the hidden claim inside it
         self.final = self.runs / self.run_id
         self.row_counts = {}
 
@@ -364,11 +367,13 @@ def read_manifest(run_dir):
     InputError
         When the manifest is not valid JSON (naming the line) or not a JSON object.
     """
-    from quakefolio.core.errors import InputError
-
     manifest_path = Path(run_dir) / "manifest.json"
     try:
         manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise InputError(manifest_path, f"cannot read file: {exc.strerror}") from None
+    except UnicodeDecodeError:
+        raise InputError(manifest_path, "not a readable run manifest (not UTF-8 text)") from None
     except json.JSONDecodeError as exc:
         raise InputError(manifest_path, f"not a readable run manifest ({exc.msg})", row=exc.lineno) from None
     if not isinstance(manifest, dict):
@@ -504,8 +509,6 @@ class RunFolder:
         InputError
             When the table is missing or unreadable (naming the file).
         """
-        from quakefolio.core.errors import InputError
-
         if name not in self._tables:
             file = self.path / f"{name}.parquet"
             if not file.exists():

@@ -237,6 +237,8 @@ def report_target(path, *, runs=()):
     for run in runs:
         if run is not None and out.is_relative_to(Path(run).resolve()):
             raise OutputError(out, f"inside run folder {run}: finished runs are never modified")
+    if not os.access(out.parent, os.W_OK | os.X_OK):
+        raise OutputError(out, f"cannot write the report: permission denied (folder {out.parent} is not writable)")
     if not os.path.lexists(out):
         return out
     if out.is_symlink():
