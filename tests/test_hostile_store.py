@@ -498,3 +498,13 @@ def test_write_library_to_a_dangling_link_is_refused(tmp_path, capsys):
     one_line(err, r"library\.toml: is a symbolic link to a missing file")
     assert_unchanged(before, tmp_path)
     assert stat.S_ISLNK((tmp_path / "library.toml").lstat().st_mode)
+
+
+def test_folder_holding_only_a_nested_output_of_ours_is_accepted(mini, capsys):
+    # another config wrote into output/other/ first: output/ holds nothing but that output folder
+    nested = mini / "other.toml"
+    nested.write_text((mini / "quakefolio.toml").read_text().replace('folder = "output"', 'folder = "output/other"'))
+    assert _run(nested, capsys)[0] == 0
+    assert sorted(p.name for p in (mini / "output").iterdir()) == ["other"]
+    code, out, err = _run(mini / "quakefolio.toml", capsys)
+    assert code == 0 and err == "" and RUN_ID.search(out.strip())

@@ -15,33 +15,8 @@ import shutil
 import tempfile
 from pathlib import Path
 
-__all__ = ["process_alive", "fsync_path", "atomic_write_bytes", "atomic_write_text", "atomic_publish_folder",
+__all__ = ["fsync_path", "atomic_write_bytes", "atomic_write_text", "atomic_publish_folder",
            "rename_folder"]
-
-
-def process_alive(pid):
-    """Whether another process with this id exists (POSIX signal 0 probe; this process: False).
-
-    Parameters
-    ----------
-    pid : int
-        Process id, e.g. the suffix of a partial run folder.
-
-    Returns
-    -------
-    bool
-        True if the process exists (also when it belongs to another user), False if it
-        does not or if ``pid`` is this process.
-    """
-    if pid == os.getpid():
-        return False  # e.g. a leftover of an earlier run that had this very process id
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 def fsync_path(path):

@@ -43,7 +43,7 @@ from quakefolio.core.errors import OutputError
 from quakefolio.pipeline.io.atomic import rename_folder
 
 __all__ = ["RUN_ID", "PARTIAL_PREFIX", "OWNER_FILE", "CLAIM_PREFIX", "TRASH_PREFIX", "this_writer", "read_owner", "owner_state",
-           "new_private_folder", "discard", "sweep", "claim_run", "process_start_ticks"]
+           "new_private_folder", "discard", "sweep", "claim_run", "process_start_ticks", "process_alive"]
 
 #: A run id of our own form: UTC time stamp, 8 hex digits of the inputs digest, optional suffix.
 RUN_ID = re.compile(r"[0-9]{8}T[0-9]{6}Z-[0-9a-f]{8}(?:-[1-9][0-9]{0,5})?")
@@ -86,6 +86,31 @@ def process_start_ticks(pid):
         return int(stat[stat.rindex(")") + 2:].split()[19])
     except (ValueError, IndexError):
         return None
+
+
+def process_alive(pid):
+    """Whether another process with this id exists (POSIX signal 0 probe; this process: False).
+
+    Parameters
+    ----------
+    pid : int
+        Process id, e.g. the suffix of a partial run folder.
+
+    Returns
+    -------
+    bool
+        True if the process exists (also when it belongs to another user), False if it
+        does not or if ``pid`` is this process.
+    """
+    if pid == os.getpid():
+        return False  # e.g. a leftover of an earlier run that had this very process id
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
 
 
 def _pid_namespace():

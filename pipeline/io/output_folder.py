@@ -7,7 +7,8 @@ written before anything else.  A run writes only into
 - a folder that does not exist yet (created), or an empty one;
 - a folder of ours: it holds the marker, or (written by an earlier version) a ``runs/``
   folder with nothing but run folders of our id form and hidden work folders, or a
-  ``cache/`` folder with nothing but our stage folders.
+  ``cache/`` folder with nothing but our stage folders, or nothing but output folders of
+  ours (another config's output nested in it, such as ``output/tabulated/``).
 
 It refuses the root folder and the home folder, any other non-empty folder, a folder
 inside a run folder or inside the ``runs/`` folder of an output folder, and a folder it
@@ -42,13 +43,16 @@ def _entries(folder):
         return None
 
 
-def is_our_output(folder):
+def is_our_output(folder, *, depth=0):
     """Whether ``folder`` is an output folder written by quakefolio (see the module notes).
 
     Parameters
     ----------
     folder : path-like
         An existing folder.
+    depth : int
+        Nesting level (a folder holding only output folders of ours is ours; two levels
+        are looked into).
 
     Returns
     -------
@@ -61,7 +65,11 @@ def is_our_output(folder):
     if runs is not None and all(n.startswith(".") or RUN_ID.fullmatch(n) for n in runs):
         return True
     cache = _entries(folder / "cache") if (folder / "cache").is_dir() else None
-    return bool(cache) and all(n in _CACHE_STAGES for n in cache)
+    if cache and all(n in _CACHE_STAGES for n in cache):
+        return True
+    inner = _entries(folder) or []  # only output folders of other configs inside (e.g. output/tabulated/)
+    return bool(inner) and depth < 2 and all((folder / n).is_dir() and not (folder / n).is_symlink()
+                                              and is_our_output(folder / n, depth=depth + 1) for n in inner)
 
 
 def _inside_a_run(folder):

@@ -40,9 +40,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from quakefolio.core.errors import InputError, OutputError
-from quakefolio.pipeline.io.atomic import (atomic_publish_folder, atomic_write_bytes, atomic_write_text, fsync_path,
-                                           process_alive)
-from quakefolio.pipeline.io.claims import OWNER_FILE, PARTIAL_PREFIX, RUN_ID, claim_run, discard
+from quakefolio.pipeline.io.atomic import atomic_publish_folder, atomic_write_bytes, atomic_write_text, fsync_path
+from quakefolio.pipeline.io.claims import OWNER_FILE, PARTIAL_PREFIX, RUN_ID, claim_run, discard, process_alive
 from quakefolio.pipeline.io.output_folder import prepare_output_folder
 
 __all__ = ["RunWriter", "RunFolder", "latest_run", "read_table", "table_metadata", "atomic_write_bytes",
