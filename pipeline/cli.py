@@ -261,24 +261,12 @@ def _compare(args):
 
 
 def _report(args):
-    from quakefolio.core.errors import InputError
     from quakefolio.pipeline.compare import resolve_run
-    from quakefolio.pipeline.report import write_report
+    from quakefolio.pipeline.report import default_report_file, report_target, write_report
 
     run = resolve_run(args.run)
     previous = resolve_run(args.previous) if args.previous else None
-    if args.out:
-        out = Path(args.out).resolve()
-        if not out.parent.is_dir():
-            raise InputError(out.parent, "folder does not exist")
-    else:
-        out = run.parent.parent / "reports" / f"{run.name}.html"
-    for folder in (run, previous):
-        if folder is not None and out.is_relative_to(folder):
-            raise InputError(out, f"inside run folder {folder}: finished runs are never modified")
-    if out.is_dir():
-        raise InputError(out, "is a folder; give a file name")
-    out.parent.mkdir(parents=True, exist_ok=True)
+    out = report_target(args.out or default_report_file(run), runs=(run, previous))  # new, or an earlier report
     print(write_report(run, out, previous_run=previous))
     return 0
 

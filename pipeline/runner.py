@@ -19,6 +19,7 @@ from quakefolio.pipeline import progress
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.cache import digest, fragility_class_digests
 from quakefolio.pipeline.io.run_inputs import run_input_frames
+from quakefolio.pipeline.io.output_folder import prepare_output_folder
 from quakefolio.pipeline.io.store import RunWriter, new_run_id
 from quakefolio.pipeline.io.tables import TABLES, units_for
 from quakefolio.pipeline.stages import blocks, whatif
@@ -328,6 +329,7 @@ def execute(inputs, executor, *, stages_to_run="all"):
         The run folder.
     """
     executor.config_path = str(inputs.config.path)
+    prepare_output_folder(inputs.config.output.folder)  # checked again, created and marked before any write
     clock, counts = _Clock(), CacheCounts()
     damage = events = extra = None
     ref = blocks.register(inputs)
@@ -427,10 +429,10 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         frames.update(extra.tables)
     frames.update(run_input_frames(inputs.exposure, inputs.library))  # the run stores the inputs it used
     output = cfg.output.folder
-    run_id = new_run_id(output, inputs.inputs_sha256)
+    writer = RunWriter(output, new_run_id(output, inputs.inputs_sha256))  # claims a free run id
+    run_id = writer.run_id
     provenance = {"run_id": run_id, "inputs_sha256": inputs.inputs_sha256,
                   "quakefolio_version": package_versions()["quakefolio"], "currency": currency, "caution": CAUTION}
-    writer = RunWriter(output, run_id)
     try:
         for name, frame in frames.items():
             writer.write_table(name, frame, units=units_for(name, currency), description=TABLES[name]["description"],

@@ -143,6 +143,11 @@ def read_table(path, columns):
         raise InputError(path, "file not found")
     if not path.is_file():
         raise InputError(path, "not a regular file")
+    try:
+        with open(path, "rb"):
+            pass
+    except OSError as exc:
+        raise InputError(path, f"cannot read file: {exc.strerror}") from None
     if path.stat().st_size == 0:
         raise InputError(path, "file is empty")
     suffix = path.suffix.lower()

@@ -14,6 +14,7 @@ from quakefolio.pipeline.io.cache import StageCache
 from quakefolio.pipeline.io.config import load_config, sha256_file
 from quakefolio.pipeline.io.group_terms import group_terms_for
 from quakefolio.pipeline.io.ingest import map_assets_to_sites, read_exposure, read_hazard_curves
+from quakefolio.pipeline.io.output_folder import check_output_folder
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 from quakefolio.pipeline.stages.hazard import prepare_compute
 from quakefolio.pipeline.stages.plausibility import input_warnings
@@ -74,6 +75,7 @@ def load_inputs(config_or_path):
     RunInputs
     """
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
+    folder_warnings = check_output_folder(config)  # where the run may write; nothing is written here
     hz, ex, fr = config.hazard, config.exposure, config.fragility
     library = load_library(fr.library)
     exposure = read_exposure(ex.file, library, config.portfolio.secondary_group)
@@ -105,6 +107,7 @@ def load_inputs(config_or_path):
         hazard = levels_of.hazard  # with the curves interpolated across periods for the classes
     warnings = [group_warning] if group_warning else []
     warnings += input_warnings(config, library, exposure, hazard, site_index, dist, model)
+    warnings += folder_warnings
     if hazard.interpolated:
         warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
                         "(log-log between neighbouring tabulated periods)")
