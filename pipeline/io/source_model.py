@@ -334,7 +334,7 @@ def _check_bins(kind, spec, num, tally):
     top = num("max_mag") if kind == "truncated_gr" else num("char_mag") + 0.25
     n = magnitude_bin_count(top - num("min_mag"), width)
     if n > tally.room():
-        tally.take(n, "mfd", f"bin_width {width:g} gives {n:,} magnitude bins, each at least one rupture")
+        tally.take(n, "mfd", f"bin_width {width:g} gives {n:,} magnitude bins (each at least one rupture)")
 
 
 def _fault_width(src, dip, upper, lower):

@@ -268,8 +268,8 @@ def rupture_limit(config, n_ims, budget):
     per = RUPTURE_BUILD_BYTES + tasks * _pair_bytes(n_ims)
     n = int(budget.bytes // per)
     at_once = f" in each of {tasks} tasks at once" if tasks > 1 else ""
-    return RuptureLimit(n, f"at most {n:,} ruptures fit {budget.short} (about {per:,} bytes each: built, and their "
-                           f"ground motion at one site{at_once}); {budget.text}")
+    return RuptureLimit(n, f"at most {n:,} ruptures fit (about {per:,} bytes each: built, and their ground motion "
+                           f"at one site{at_once}); {budget.text}")
 
 
 # ----------------------------------------------------------------------------- estimate
@@ -289,8 +289,8 @@ class Term:
     what : str
         The arrays, e.g. "year-loss and EP-curve tables".
     value : float or None
-        The key's value when the term grows in proportion to it (then the largest value
-        that fits is named).
+        The key's value in effect (e.g. the sites of a block, at most the sites there are)
+        when the term grows in proportion to it: then the largest value that fits is named.
     floor : float
         Smallest useful value of the key.
     otherwise : str
@@ -305,13 +305,27 @@ class Term:
     floor: float = 1
     otherwise: str = ""
 
-    def advice(self, room):
-        """What to change, given ``room`` [bytes] left for this term."""
-        if self.value is not None and room > 0:
-            fits = math.floor(self.value * room / self.bytes) if self.bytes else self.value
-            if fits >= self.floor:
-                return f"at most {self.key.split('.')[-1]} = {fits:,} would fit"
-        return self.otherwise
+    def fits(self, room):
+        """Largest value of the key whose term fits in ``room``.
+
+        Parameters
+        ----------
+        room : float
+            Memory left for this term [bytes].
+
+        Returns
+        -------
+        int or None
+            Rounded down to two significant digits; None when no value fits or the term does
+            not grow in proportion to the key.
+        """
+        if self.value is None or room <= 0 or self.bytes <= 0:
+            return None
+        n = math.floor(self.value * room / self.bytes)
+        if n >= 100:  # two significant digits, rounded down: the estimate is not exact to the unit
+            scale = 10 ** (len(str(n)) - 2)
+            n = n // scale * scale
+        return n if n >= self.floor else None
 
 
 @dataclass(frozen=True)
@@ -455,7 +469,7 @@ def _hazard_stage(config, d):
     at_once = f", {d.tasks} tasks at once" if d.tasks > 1 else ""
     task = Term(per_block, "execution.site_block_size",
                 f"site_block_size = {ex.site_block_size:,} ({block:,} sites x {r_max:,} ruptures per task{at_once})",
-                "the (site, rupture) pairs of the hazard tasks", value=ex.site_block_size,
+                "the (site, rupture) pairs of the hazard tasks", value=block,
                 otherwise="one site with every rupture of the largest source model does not fit either: use fewer "
                           "ruptures (a larger rupture_step_km or spacing_km in the source models)")
     return StageSize("hazard stage", (_ruptures_term(d), _curves_term(config, d), task))
@@ -482,7 +496,7 @@ def check_hazard_work(config, n_ruptures, n_sites, n_ims, budget):
         Naming the key of the stage's largest term (usually ``[execution] site_block_size``).
     """
     d = _Dims(0, n_sites, 0, n_ims, len(config.hazard.im_levels_g), _parallel_tasks(config), tuple(n_ruptures), ())
-    _refuse_stage(config, _hazard_stage(config, d), budget)
+    _refuse_stages(config, (_hazard_stage(config, d),), budget)
 
 
 def _damage_stage(inputs, d):
@@ -497,7 +511,7 @@ def _damage_stage(inputs, d):
     per_block = d.tasks * block * (d.levels + ratios) * states * 8 * 4 * branches
     task = Term(per_block, "execution.block_size", f"block_size = {cfg.execution.block_size:,} "
                 f"({block:,} (site, class) pairs per task)", "the damage-state rates of a block of pairs",
-                value=cfg.execution.block_size)
+                value=block)
     assets = Term(d.assets * (ratios + 4) * ASSET_BYTES, "exposure.file", f"{d.assets:,} assets",
                   "the asset damage, loss and loss-curve tables", otherwise="split the portfolio into several runs")
     terms = (task, assets, _curves_term(cfg, d))
@@ -555,7 +569,7 @@ def _task_term(inputs, d, shares, events):
     return Term(d.tasks * per_task, "execution.event_block_size",
                 f"event_block_size = {cfg.execution.event_block_size:,} ({ev_task:,.0f} events x {d.sites:,} sites "
                 f"per task{at_once})", "the ground motions and losses of a chunk of events",
-                value=cfg.execution.event_block_size, floor=EVENT_BLOCK_SIZE,
+                value=ev_task, floor=EVENT_BLOCK_SIZE,
                 otherwise="fewer hazard sites (a larger [hazard] site_spacing_km) or assets")
 
 
@@ -647,16 +661,21 @@ def check_work(inputs, work):
         (<arrays>: <Y>); <budget>; <what would fit>``.
     """
     _check_field_sites(inputs)
-    for stage in work.stages:
-        _refuse_stage(inputs.config, stage, work.budget)
+    _refuse_stages(inputs.config, work.stages, work.budget)
 
 
-def _refuse_stage(config, stage, budget):
-    """InputError naming the key of the largest term of a stage over the budget."""
-    if budget.bytes is None or stage.bytes <= budget.bytes:
+def _refuse_stages(config, stages, budget):
+    """InputError for the largest stage over the budget, naming the key of its largest term; the
+    advice (the largest value of that key that fits) holds for every stage over the budget."""
+    if budget.bytes is None:
         return
+    over = sorted((s for s in stages if s.bytes > budget.bytes), key=lambda s: -s.bytes)
+    if not over:
+        return
+    stage = over[0]
     term = stage.largest()
-    advice = term.advice(budget.bytes - (stage.bytes - term.bytes))
+    fits = [t.fits(budget.bytes - (s.bytes - t.bytes)) for s in over for t in s.terms if t.key == term.key]
+    advice = term.otherwise if None in fits else f"at most {term.key.split('.')[-1]} = {min(fits):,} would fit"
     raise _refuse(config, term.key,
                   f"{term.subject} need about {format_bytes(stage.bytes)} for the {stage.name} ({term.what}: "
                   f"{format_bytes(term.bytes)}); {budget.text}" + (f"; {advice}" if advice else ""))
