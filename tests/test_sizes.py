@@ -201,7 +201,7 @@ def test_event_tables_peak(tmp_path):
     # years dominate: the run's peak is the event-based tables and their storage
     from quakefolio.pipeline.runner import run_pure
 
-    cfg = _mini_compute(tmp_path, portfolio="years = 100000", hazard="disaggregation = false",
+    cfg = _mini_compute(tmp_path, portfolio="years = 50000", hazard="disaggregation = false",
                         execution="max_workers = 1\ncache = false")
     inputs = load_inputs(cfg)
     work = inputs.work
@@ -248,3 +248,18 @@ def test_refusal_names_the_key_and_what_would_fit(tmp_path, monkeypatch):
     fits = int(str(exc.value).rsplit("= ", 1)[1].split()[0].replace(",", ""))
     cfg.write_text(cfg.read_text().replace("years = 1000000", f"years = {fits}"))
     assert load_inputs(cfg).work.peak.bytes <= 0.05 * (1 << 30)
+
+
+def test_more_sites_than_the_correlated_fields_accept_is_refused(tmp_path):
+    from types import SimpleNamespace
+
+    from quakefolio.core.events.gmf import EIGEN_MAX_SITES
+
+    cfg = _mini_compute(tmp_path)
+    config = load_inputs(cfg).config
+    n = EIGEN_MAX_SITES + 1
+    hazard = SimpleNamespace(lon=10.0 + np.arange(n) * 1e-3, lat=np.full(n, 20.0))
+    inputs = SimpleNamespace(config=config, hazard_model=object(), hazard=hazard)
+    with pytest.raises(InputError, match=r"20,001 hazard sites exceed the 20,000 the spatially correlated") as exc:
+        sizes._check_field_sites(inputs)
+    assert exc.value.column == "hazard.site_spacing_km"

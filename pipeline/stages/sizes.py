@@ -17,9 +17,11 @@ rate of source branch :math:`b`) or :math:`N \Lambda_b` (one branch).
 
 Peak memory
 -----------
-Each stage's peak is the sum of the arrays it holds at its largest moment, counted from
-the code in bytes per unit (the constants below, each with the arrays it stands for) and
-checked against ``tracemalloc`` peaks in ``tests/test_sizes.py`` (within a factor of 2):
+Each stage's peak is the sum of the arrays it holds at its largest moment, in bytes per
+unit (the constants below, each with the arrays it stands for; the per-unit sizes were set
+from the ``tracemalloc`` peaks of those stages on the mini inputs scaled up in one dimension
+at a time, and ``tests/test_sizes.py`` holds the estimates within a factor of 2 of measured
+peaks):
 
 * hazard: the ruptures; per task (``site_block_size`` sites, ``max_workers`` tasks at
   once) every (site, rupture) pair of the largest source model with its distances,
@@ -35,6 +37,9 @@ checked against ``tracemalloc`` peaks in ``tests/test_sizes.py`` (within a facto
 * event-based tables: per simulated year (:data:`YEAR_BYTES`) and per event
   (:data:`EVENT_BYTES`) the event set, year losses, EP curves and their Parquet
   conversion, and the per-block asset sums of every chunk.
+
+The screening and what-if stage re-runs the same event chunks one at a time and is not
+estimated apart. A run of the ``hazard`` command alone is checked against the whole run.
 
 Memory available
 ----------------
