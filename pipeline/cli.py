@@ -147,13 +147,14 @@ def _non_negative_number(text):
 
 def _check(args):
     from quakefolio.pipeline.caution import CAUTION
-    from quakefolio.pipeline.stages import load_inputs, unique_pairs
+    from quakefolio.pipeline.stages import load_inputs
 
     inputs = load_inputs(args.config)
-    n_pairs = unique_pairs(inputs)
+    n_pairs = inputs.work.n_pairs
     print(CAUTION)
     print(f"OK: {args.config}: {len(inputs.exposure)} assets, {inputs.exposure.building_class.nunique()} classes, "
           f"{len(inputs.hazard.site_id)} hazard sites, {n_pairs} unique (site, class) pairs")
+    print(inputs.work.summary())
     _print_notes(inputs.warnings, notes=True)
     return 0
 

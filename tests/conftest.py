@@ -7,6 +7,9 @@ import pytest
 
 _STATE = Path(tempfile.mkdtemp(prefix="quakefolio-test-state-"))
 os.environ.setdefault("QUAKEFOLIO_STATE", str(_STATE))
+# the memory budget of the size checks (pipeline.stages.sizes), pinned so that what the tests
+# expect to be refused does not depend on the machine's free memory
+os.environ["QUAKEFOLIO_MEMORY_GIB"] = "8"
 if os.environ.get("PYTEST_XDIST_WORKER"):
     # parallel test processes (``pytest -n``): one Prefect state folder (database, server) each
     _WORKER_STATE = Path(os.environ["QUAKEFOLIO_STATE"]) / f"test-{os.environ['PYTEST_XDIST_WORKER']}"

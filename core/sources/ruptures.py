@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, fields
-from typing import Sequence
+from typing import NamedTuple, Sequence
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -49,6 +49,11 @@ __all__ = [
     "wc94_dimensions",
     "rupture_corners",
     "polygon_grid",
+    "polygon_frame",
+    "PolygonFrame",
+    "fault_frame",
+    "FaultFrame",
+    "fault_rupture_dimensions",
     "planar_fault_ruptures",
     "point_source_ruptures",
     "area_source_ruptures",
@@ -541,6 +546,81 @@ def _weights(name: str, items, width: int) -> np.ndarray:
     return arr
 
 
+def _step(rupture_step_km) -> float:
+    step = float(rupture_step_km)
+    if not (math.isfinite(step) and step > 0.0):
+        raise ValueError(f"rupture_step_km must be > 0; got {rupture_step_km!r}")
+    return step
+
+
+class FaultFrame(NamedTuple):
+    """The plane of a planar fault in its local projection (see :func:`fault_frame`)."""
+
+    ref_lon: float  #: projection centre [deg]
+    ref_lat: float  #: [deg]
+    x_km: FloatArray  #: east of the first and last trace points [km]
+    y_km: FloatArray  #: north of the first and last trace points [km]
+    length_km: float  #: fault length along strike [km]
+    width_km: float  #: fault width down dip [km]
+    strike_deg: float  #: strike of the trace [deg]
+
+
+def fault_frame(source_id, trace, dip_deg, upper_depth_km, lower_depth_km) -> FaultFrame:
+    r"""Length, width and strike of the planar fault of :func:`planar_fault_ruptures`.
+
+    Parameters
+    ----------
+    source_id : str
+        Named in errors.
+    trace : sequence of (lon, lat) [deg]
+        At least two points; only the first and last are used.
+    dip_deg : float [deg]
+        Dip in (0, 90].
+    upper_depth_km, lower_depth_km : float [km]
+        Seismogenic depths, ``0 <= upper < lower``.
+
+    Returns
+    -------
+    FaultFrame
+        :math:`L_f` the distance between the end points in the azimuthal equidistant
+        projection about their mean position, :math:`W_f = (z_{low} - z_{up}) / \sin\delta`.
+    """
+    pts = np.asarray(trace, dtype=np.float64)
+    if pts.ndim != 2 or pts.shape[1] != 2 or pts.shape[0] < 2 or not np.all(np.isfinite(pts)):
+        raise ValueError(f"fault {source_id!r}: trace must be a list of at least two (lon, lat) points")
+    ref_lon, ref_lat = mean_position(pts[[0, -1], 0], pts[[0, -1], 1])
+    xs, ys = aeqd_forward(pts[[0, -1], 0], pts[[0, -1], 1], ref_lon, ref_lat)
+    length = float(np.hypot(xs[1] - xs[0], ys[1] - ys[0]))
+    if length < 1e-3:
+        raise ValueError(f"fault {source_id!r}: first and last trace points coincide")
+    strike = float(_azimuth(math.degrees(math.atan2(xs[1] - xs[0], ys[1] - ys[0]))))
+    width = (lower_depth_km - upper_depth_km) / math.sin(math.radians(dip_deg))
+    return FaultFrame(ref_lon, ref_lat, xs, ys, length, width, strike)
+
+
+def fault_rupture_dimensions(frame, mags, rake_deg, *, min_aspect_ratio=1.0, relation="width", slip_type=None):
+    """Length and width [km] of each magnitude's rupture on a planar fault.
+
+    :func:`wc94_dimensions` with the width limited to the fault width (excess area to
+    length), then the length clipped to the fault length (see :func:`planar_fault_ruptures`).
+
+    Parameters
+    ----------
+    frame : FaultFrame
+    mags : ndarray [Mw]
+    rake_deg : float [deg]
+    min_aspect_ratio, relation, slip_type
+        Passed to :func:`wc94_dimensions`.
+
+    Returns
+    -------
+    lengths_km, widths_km : ndarray [km], shape of ``mags``
+    """
+    lengths, widths = wc94_dimensions(mags, rake_deg, max_width_km=frame.width_km, min_aspect_ratio=min_aspect_ratio,
+                                      relation=relation, slip_type=slip_type)
+    return np.minimum(lengths, frame.length_km), np.minimum(widths, frame.width_km)
+
+
 def _floating_offsets(room_km: float, step_km: float) -> FloatArray:
     """Evenly spaced offsets from 0 to ``room_km`` with spacing at most ``step_km``."""
     if room_km <= 1e-9:
@@ -619,38 +699,23 @@ def planar_fault_ruptures(
     its midpoint; ``zhyp_km`` the depth of the centre of the rupture plane.
     """
     sid = _source_id(source_id)
-    pts = np.asarray(trace, dtype=np.float64)
-    if pts.ndim != 2 or pts.shape[1] != 2 or pts.shape[0] < 2 or not np.all(np.isfinite(pts)):
-        raise ValueError(f"fault {sid!r}: trace must be a list of at least two (lon, lat) points")
     dip = _dip("dip_deg", dip_deg)
     rake = _rake("rake_deg", rake_deg)
     usd, lsd = _layer(upper_depth_km, lower_depth_km)
     mags, rates = _mfd(mfd)
-    step = float(rupture_step_km)
-    if not (math.isfinite(step) and step > 0.0):
-        raise ValueError(f"rupture_step_km must be > 0; got {rupture_step_km!r}")
-
-    ref_lon, ref_lat = mean_position(pts[[0, -1], 0], pts[[0, -1], 1])
-    xs, ys = aeqd_forward(pts[[0, -1], 0], pts[[0, -1], 1], ref_lon, ref_lat)
-    fault_length = float(np.hypot(xs[1] - xs[0], ys[1] - ys[0]))
-    if fault_length < 1e-3:
-        raise ValueError(f"fault {sid!r}: first and last trace points coincide")
-    strike = float(_azimuth(math.degrees(math.atan2(xs[1] - xs[0], ys[1] - ys[0]))))
+    step = _step(rupture_step_km)
+    frame = fault_frame(sid, trace, dip, usd, lsd)
+    ref_lon, ref_lat, xs, ys = frame.ref_lon, frame.ref_lat, frame.x_km, frame.y_km
+    fault_length, fault_width, strike = frame.length_km, frame.width_km, frame.strike_deg
     th, dl = math.radians(strike), math.radians(dip)
     sind = math.sin(dl)
     cosd = 0.0 if dip == 90.0 else math.cos(dl)
     s_vec = np.array([math.sin(th), math.cos(th), 0.0])
     d_vec = np.array([cosd * math.cos(th), -cosd * math.sin(th), sind])
-    fault_width = (lsd - usd) / sind
     # top-start corner of the fault plane: trace start moved down dip to the upper depth
     origin = np.array([xs[0], ys[0], 0.0]) + (usd / sind) * d_vec
-
-    lengths, widths = wc94_dimensions(
-        mags, rake, max_width_km=fault_width, min_aspect_ratio=min_aspect_ratio,
-        relation=relation, slip_type=slip_type,
-    )
-    lengths = np.minimum(lengths, fault_length)
-    widths = np.minimum(widths, fault_width)
+    lengths, widths = fault_rupture_dimensions(frame, mags, rake, min_aspect_ratio=min_aspect_ratio,
+                                               relation=relation, slip_type=slip_type)
 
     cols = {name: [] for name in ("mag", "rate", "ztor_km", "width_km", "length_km")}
     xyz = []
@@ -867,6 +932,45 @@ def polygon_grid(polygon: Sequence[Sequence[float]], spacing_km: float) -> tuple
     it, and points inside are kept by ray casting
     (:func:`quakefolio.core.sources.geometry.points_in_polygon`).
     """
+    frame = polygon_frame(polygon, spacing_km)
+    gx, gy = np.meshgrid(frame.axis(0), frame.axis(1), indexing="xy")
+    gx, gy = gx.ravel(), gy.ravel()
+    inside = points_in_polygon(gx, gy, frame.vx, frame.vy)
+    if not np.any(inside):
+        raise ValueError(f"no grid point at spacing {frame.step_km:g} km falls inside the polygon; "
+                         "use a smaller spacing_km")
+    return aeqd_inverse(gx[inside], gy[inside], frame.ref_lon, frame.ref_lat)
+
+
+class PolygonFrame(NamedTuple):
+    """A polygon in its local projection and the square grid laid over it (see :func:`polygon_grid`)."""
+
+    ref_lon: float  #: projection centre [deg]
+    ref_lat: float  #: [deg]
+    vx: FloatArray  #: vertices east [km]
+    vy: FloatArray  #: vertices north [km]
+    step_km: float  #: grid spacing [km]
+    n: tuple  #: grid points along x and y (the bounding box holds n[0] * n[1])
+
+    def axis(self, k: int) -> FloatArray:
+        """Grid coordinates [km] along x (``k = 0``) or y (``k = 1``), centred on the bounding box."""
+        v = self.vx if k == 0 else self.vy
+        lo, hi, n = v.min(), v.max(), self.n[k]
+        return 0.5 * (lo + hi) + self.step_km * (np.arange(n) - 0.5 * (n - 1))
+
+
+def polygon_frame(polygon, spacing_km) -> PolygonFrame:
+    """Projected vertices and grid size of :func:`polygon_grid` (no grid point built).
+
+    Parameters
+    ----------
+    polygon : sequence of (lon, lat) [deg]
+    spacing_km : float [km], > 0
+
+    Returns
+    -------
+    PolygonFrame
+    """
     pts = np.asarray(polygon, dtype=np.float64)
     if pts.ndim != 2 or pts.shape[1] != 2 or not np.all(np.isfinite(pts)):
         raise ValueError("polygon must be a list of (lon, lat) vertices")
@@ -879,17 +983,8 @@ def polygon_grid(polygon: Sequence[Sequence[float]], spacing_km: float) -> tuple
         raise ValueError(f"spacing_km must be > 0; got {spacing_km!r}")
     ref_lon, ref_lat = mean_position(pts[:, 0], pts[:, 1])
     vx, vy = aeqd_forward(pts[:, 0], pts[:, 1], ref_lon, ref_lat)
-
-    def axis(lo, hi):
-        n = int(math.floor((hi - lo) / step + 1e-9)) + 1
-        return 0.5 * (lo + hi) + step * (np.arange(n) - 0.5 * (n - 1))
-
-    gx, gy = np.meshgrid(axis(vx.min(), vx.max()), axis(vy.min(), vy.max()), indexing="xy")
-    gx, gy = gx.ravel(), gy.ravel()
-    inside = points_in_polygon(gx, gy, vx, vy)
-    if not np.any(inside):
-        raise ValueError(f"no grid point at spacing {step:g} km falls inside the polygon; use a smaller spacing_km")
-    return aeqd_inverse(gx[inside], gy[inside], ref_lon, ref_lat)
+    n = tuple(int(math.floor((v.max() - v.min()) / step + 1e-9)) + 1 for v in (vx, vy))
+    return PolygonFrame(ref_lon, ref_lat, np.asarray(vx), np.asarray(vy), step, n)
 
 
 def area_source_ruptures(

@@ -42,8 +42,13 @@ from __future__ import annotations
 
 import math
 
+from typing import NamedTuple
+
 from quakefolio.core.errors import InputWarning, did_you_mean
 from quakefolio.core.plausibility import MAX_MAGNITUDE
+from quakefolio.core.sources.counts import (
+    fault_rupture_count, magnitude_bin_count, point_rupture_count, polygon_point_count,
+)
 from quakefolio.core.sources.mfd import (
     characteristic_yc85, moment_balanced, moment_rate_from_slip, single_magnitude, truncated_gr,
 )
@@ -54,11 +59,15 @@ from quakefolio.core.sources.ruptures import (
 from quakefolio.core.validation import Field, Interval, Real, Schema, check_value, toml_place, validate_table
 from quakefolio.fragility.library import read_toml
 
-__all__ = ["SourceModel", "load_source_model", "FORMAT_TAG"]
+__all__ = ["SourceModel", "load_source_model", "count_source_model", "FORMAT_TAG", "RuptureLimit", "MAX_FAULT_WIDTH_KM"]
 
 FORMAT_TAG = "quakefolio-sources-1"
 _TOP = ("format", "name", "settings", "faults", "areas", "points")
 _SETTINGS = {"shear_modulus_pa": 3.0e10, "moment_constant": 9.05, "rupture_step_km": 2.0, "min_aspect_ratio": 1.0}
+#: Widest fault plane accepted down dip [km]: ``(lower_depth_km - upper_depth_km) / sin(dip)``.
+#: The widest subduction interfaces are a few hundred km down dip (from memory); a plane
+#: wider than this is a typing error (a dip of 0.001 deg makes a 15 km layer 860,000 km wide).
+MAX_FAULT_WIDTH_KM = 1000.0
 _COMMON = ("id", "upper_depth_km", "lower_depth_km", "mfd")
 _KEYS = {
     "faults": _COMMON + ("trace", "dip_deg", "rake_deg"),
@@ -71,6 +80,31 @@ _MFD_KEYS = {
     "characteristic": ("kind", "b_value", "min_mag", "char_mag", "bin_width", "total_rate", "slip_rate_mm_per_yr"),
     "single": ("kind", "mag", "rate", "slip_rate_mm_per_yr"),
 }
+
+
+class RuptureLimit(NamedTuple):
+    """Most ruptures a source-model file may have, and why (the end of the refusal message)."""
+
+    max_ruptures: int
+    why: str
+
+
+class _Tally:
+    """Ruptures counted so far in one file, against the limit (None: no limit)."""
+
+    def __init__(self, limit, build):
+        self.limit, self.used, self.build = limit, 0, build  # build: False to count only
+
+    def room(self):
+        return None if self.limit is None else self.limit.max_ruptures - self.used
+
+    def take(self, n, key, what, *, table=None):
+        """Count ``n`` more ruptures; refuse (naming ``key``) when they exceed the limit."""
+        room = self.room()
+        if room is not None and n > room:
+            before = f" besides the {self.used:,} of the sources above" if self.used else ""
+            raise _FieldError(key, f"{what}{before}; {self.limit.why}", table=table)
+        self.used += n
 
 
 class SourceModel:
@@ -110,9 +144,9 @@ def _settings(data, path, text):
     return settings
 
 
-def _source(kind, i, src, settings, seen, path, text):
+def _source(kind, i, src, settings, seen, path, text, tally):
     """One ``[[faults]]``, ``[[areas]]`` or ``[[points]]`` table to its ruptures, summary row, magnitude range
-    ``(row, column, min, max)`` (None without ruptures) and warnings."""
+    ``(row, column, min, max)`` (None without ruptures) and warnings; (None, None, None, []) when only counted."""
     place = toml_place(path, text, (kind,), f"{kind}[{i}]", i)
     if not isinstance(src, dict):
         raise place.error("expected a table")
@@ -122,11 +156,15 @@ def _source(kind, i, src, settings, seen, path, text):
         raise place.error(f"source id must be a unique non-empty string, got {sid!r}", "id")
     seen.add(sid)
     try:
-        rs, info = _build(kind, src, settings)
+        rs, info = _build(kind, src, settings, tally)
     except _FieldError as exc:
+        if exc.table is not None:
+            raise toml_place(path, text, (exc.table,), exc.table).error(f"source {sid!r}: {exc.msg}", exc.key) from None
         raise place.error(exc.msg, exc.key) from None
     except ValueError as exc:
         raise place.error(f"source {sid!r}: {exc}") from None
+    if rs is None:  # counted only
+        return None, None, None, []
     notes = []
     if kind == "faults" and len(src["trace"]) > 2:
         notes.append(InputWarning(path, f"fault {sid!r}: the trace has {len(src['trace'])} points but faults are "
@@ -137,13 +175,20 @@ def _source(kind, i, src, settings, seen, path, text):
     return rs, row, mags, notes
 
 
-def load_source_model(path):
+def load_source_model(path, limit=None):
     """Read and validate a source-model file.
+
+    Each source's ruptures are counted before they are built
+    (:mod:`quakefolio.core.sources.counts`), so a file whose rupture count exceeds
+    ``limit`` is refused before any rupture array is allocated, naming the key that makes
+    the count explode (rupture step, magnitude bin width, area grid spacing, trace).
 
     Parameters
     ----------
     path : str or Path
         The source-model TOML file.
+    limit : RuptureLimit, optional
+        Most ruptures the file may have (default: no limit).
 
     Returns
     -------
@@ -158,6 +203,38 @@ def load_source_model(path):
         On the first problem, naming file, line and key (among them a self-crossing fault
         trace and a magnitude above :data:`~quakefolio.core.plausibility.MAX_MAGNITUDE`).
     """
+    sets, summary, name, digest, magnitudes, notes = _read(path, _Tally(limit, build=True))
+    return SourceModel(str(path), name, RuptureSet.concat(sets), summary, digest, magnitudes, notes)
+
+
+def count_source_model(path, limit=None):
+    """Number of ruptures a source-model file gives, counted without building any.
+
+    Parameters
+    ----------
+    path : str or Path
+        The source-model TOML file.
+    limit : RuptureLimit, optional
+        Most ruptures the file may have (default: no limit).
+
+    Returns
+    -------
+    int
+        ``len(load_source_model(path).ruptures)``.
+
+    Raises
+    ------
+    InputError
+        As :func:`load_source_model`, for every problem found before the ruptures are built.
+    """
+    tally = _Tally(limit, build=False)
+    _read(path, tally)
+    return tally.used
+
+
+def _read(path, tally):
+    """Every source of a file in order: (rupture sets, summary rows, model name, sha256, magnitude ranges,
+    warnings)."""
     text, data, digest = read_toml(path)
     path = str(path)
     root = toml_place(path, text, (), "")
@@ -171,14 +248,14 @@ def load_source_model(path):
         if not isinstance(entries, list):
             raise root.error(f"'{kind}' must be an array of tables ([[{kind}]])", kind)
         for i, src in enumerate(entries):
-            rs, row, mags, doubts = _source(kind, i, src, settings, seen, path, text)
+            rs, row, mags, doubts = _source(kind, i, src, settings, seen, path, text, tally)
             sets.append(rs)
             summary.append(row)
             magnitudes += [mags] if mags else []
             notes += doubts
     if not sets:
         raise root.error("the source model defines no source ([[faults]], [[areas]] or [[points]])")
-    return SourceModel(path, str(data.get("name", "")), RuptureSet.concat(sets), summary, digest, magnitudes, notes)
+    return sets, summary, str(data.get("name", "")), digest, magnitudes, notes
 
 
 def _hint(key, valid):
@@ -186,8 +263,8 @@ def _hint(key, valid):
 
 
 class _FieldError(Exception):
-    def __init__(self, key, msg):
-        self.key, self.msg = key, msg
+    def __init__(self, key, msg, table=None):
+        self.key, self.msg, self.table = key, msg, table  # table: the key's table when not the source's
 
 
 def _num(value, fail, *, positive=False, non_negative=False):
@@ -224,7 +301,7 @@ def _check_top_magnitude(kind, spec, num):
                                  f"9.5; magnitudes above {MAX_MAGNITUDE:g} are refused)")
 
 
-def _mfd(src, settings, area_km2):
+def _mfd(src, settings, area_km2, tally):
     spec = src["mfd"]
     if not isinstance(spec, dict):
         raise _FieldError("mfd", "expected an inline table, e.g. { kind = \"truncated_gr\", ... }")
@@ -255,6 +332,7 @@ def _mfd(src, settings, area_km2):
     if slip and area_km2 is None:
         raise _FieldError("mfd", "slip_rate_mm_per_yr (moment balance) is only available for faults")
     mc = settings["moment_constant"]
+    _check_bins(kind, spec, num, tally)
     if kind == "truncated_gr":
         kw = dict(b_value=num("b_value", positive=True), mmin=num("min_mag"), mmax=num("max_mag"),
                   bin_width=num("bin_width", positive=True) if "bin_width" in spec else 0.1)
@@ -279,7 +357,55 @@ def _mfd(src, settings, area_km2):
     return bins, info
 
 
-def _build(kind, src, settings):
+def _check_bins(kind, spec, num, tally):
+    """Refuse a bin width giving more magnitude bins than ruptures may be built (before binning)."""
+    if kind == "single" or tally.room() is None:
+        return
+    width = num("bin_width", positive=True) if "bin_width" in spec else (0.1 if kind == "truncated_gr" else 0.05)
+    top = num("max_mag") if kind == "truncated_gr" else num("char_mag") + 0.25
+    n = magnitude_bin_count(top - num("min_mag"), width)
+    if n > tally.room():
+        tally.take(n, "mfd", f"bin_width {width:g} gives {n:,} magnitude bins (each at least one rupture)")
+
+
+def _fault_width(src, dip, upper, lower):
+    """Refuse a fault plane wider down dip than :data:`MAX_FAULT_WIDTH_KM` (dip or depths mistyped)."""
+    width = (lower - upper) / math.sin(math.radians(dip))
+    if width > MAX_FAULT_WIDTH_KM:
+        key = "lower_depth_km" if lower - upper > MAX_FAULT_WIDTH_KM / 2 else "dip_deg"
+        raise _FieldError(key, f"dip_deg = {dip:g} with depths {upper:g}-{lower:g} km makes the fault plane "
+                               f"{width:,.0f} km wide down dip ((lower_depth_km - upper_depth_km) / sin(dip)); "
+                               f"no fault plane is wider than {MAX_FAULT_WIDTH_KM:,.0f} km")
+
+
+def _count_fault(src, trace, dip, common, bins, settings, tally):
+    """Count a fault's ruptures before building them; name the key that makes the count explode."""
+    step = settings["rupture_step_km"]
+    c = fault_rupture_count(src["id"], trace, dip_deg=dip, upper_depth_km=common["upper_depth_km"],
+                            lower_depth_km=common["lower_depth_km"], rake_deg=_field(src, "rake_deg"), mags=bins.mag,
+                            rupture_step_km=step, min_aspect_ratio=common["min_aspect_ratio"])
+    what = (f"{c.n_ruptures:,} ruptures ({c.n_magnitudes:,} magnitudes x up to {c.max_down:,} positions down dip "
+            f"x {c.max_along:,} along strike at rupture_step_km = {step:g})")
+    if step < _SETTINGS["rupture_step_km"]:
+        tally.take(c.n_ruptures, "rupture_step_km", what, table="settings")
+    tally.take(c.n_ruptures, "mfd" if c.max_along * c.max_down < c.n_magnitudes else "trace", what)
+
+
+def _count_points(kind, src, n_mags, depths, mechs, tally):
+    """Count an area's or a point's ruptures before building them (area: grid points inside the polygon)."""
+    per_point = point_rupture_count(n_mags, len(depths), len(mechs))
+    if kind == "points":
+        tally.take(per_point, "mfd", f"{per_point:,} ruptures ({n_mags:,} magnitudes x {len(depths)} depths "
+                                     f"x {len(mechs)} mechanisms)")
+        return
+    grid = polygon_point_count(src["polygon"], _field(src, "spacing_km", positive=True))
+    n = grid.n_points * per_point
+    about = "" if grid.exact else "about "
+    tally.take(n, "spacing_km", f"{about}{n:,} ruptures ({about}{grid.n_points:,} grid points at spacing_km = "
+                                f"{grid.spacing_km:g} x {per_point:,} per point)")
+
+
+def _build(kind, src, settings, tally):
     upper = _field(src, "upper_depth_km", non_negative=True)
     lower = _field(src, "lower_depth_km", positive=True)
     if not lower > upper:
@@ -297,18 +423,26 @@ def _build(kind, src, settings):
         dip = _field(src, "dip_deg", positive=True)
         if dip > 90:
             raise _FieldError("dip_deg", f"dip must lie in (0, 90], got {dip:g}")
+        _fault_width(src, dip, upper, lower)
         area = fault_plane_area_km2(trace, dip, upper, lower)
-        bins, info = _mfd(src, settings, area)
+        bins, info = _mfd(src, settings, area, tally)
+        _count_fault(src, trace, dip, common, bins, settings, tally)
+        if not tally.build:
+            return None, info
         rs = planar_fault_ruptures(src["id"], trace, dip_deg=dip, rake_deg=_field(src, "rake_deg"), mfd=bins,
                                    rupture_step_km=settings["rupture_step_km"], **common)
         return rs, info
-    bins, info = _mfd(src, settings, None)
+    bins, info = _mfd(src, settings, None, tally)
     depths = _pairs(src, "hypo_depths", 2)
     mechs = _pairs(src, "mechanisms", 4)
     if kind == "areas":
         polygon = _pairs(src, "polygon", 2)
         if len(polygon) < 3:
             raise _FieldError("polygon", "an area polygon needs at least three [lon, lat] vertices")
+    _count_points(kind, src, len(bins.mag), depths, mechs, tally)
+    if not tally.build:
+        return None, info
+    if kind == "areas":
         rs = area_source_ruptures(src["id"], polygon, spacing_km=_field(src, "spacing_km", positive=True), mfd=bins,
                                   hypo_depths=depths, mechanisms=mechs, **common)
     else:

@@ -19,6 +19,7 @@ from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, che
 from quakefolio.pipeline.stages.hazard import prepare_compute
 from quakefolio.pipeline.stages.plausibility import input_warnings
 from quakefolio.pipeline.stages.products import RunInputs, frozen_mapping
+from quakefolio.pipeline.stages.sizes import check_work, estimate_work, memory_budget
 from quakefolio.pipeline.stages.whatif import validate as validate_alternatives
 
 __all__ = ["RunInputs", "load_inputs", "inputs_digest", "stage_cache", "with_hazard", "unique_pairs"]
@@ -59,6 +60,10 @@ def stage_cache(inputs):
 def load_inputs(config_or_path):
     """Read and validate every input of a run; raise InputError at the first problem.
 
+    The size of the work is estimated before any stage runs and a run that cannot fit the
+    memory budget is refused, naming the key (:mod:`quakefolio.pipeline.stages.sizes`); the
+    estimate is kept as ``work``.
+
     Ingest mode reads the tabulated curves and maps assets to the nearest site; compute
     mode reads the source models and builds hazard sites from the exposure (the curves
     are computed later by :mod:`quakefolio.pipeline.stages.hazard`).  Cross-file checks
@@ -76,6 +81,7 @@ def load_inputs(config_or_path):
     """
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
     folder_warnings = check_output_folder(config)  # where the run may write; nothing is written here
+    budget = memory_budget()
     hz, ex, fr = config.hazard, config.exposure, config.fragility
     library = load_library(fr.library)
     exposure = read_exposure(ex.file, library, config.portfolio.secondary_group)
@@ -97,7 +103,7 @@ def load_inputs(config_or_path):
                                                exposure_path=ex.file)
         levels_of = TabulatedLevels(hazard, hz.period_interpolation)
     else:
-        model, hazard, site_index, dist = prepare_compute(config, exposure, library, lines)
+        model, hazard, site_index, dist = prepare_compute(config, exposure, library, lines, budget)
         for bid, _, src in model.source_branches:
             hashes[f"source_model:{bid}"] = {"path": src.path, "sha256": src.sha256}
         levels_of = computed_levels(model, config.path)
@@ -117,8 +123,10 @@ def load_inputs(config_or_path):
     if model is None:  # the new classes' IMs, interpolated as the checks did
         for alt in alternatives:
             hazard = hazard.with_im(alt.dss.im, allow_interpolation=hz.period_interpolation)
+    work = estimate_work(draft, unique_pairs(draft), budget)
+    check_work(draft, work)  # before any stage: what cannot fit is refused here, naming the key
     return replace(draft, hazard=hazard, input_hashes=frozen_mapping(hashes),
-                   inputs_sha256=inputs_digest(hashes, config), group_terms=group_terms)
+                   inputs_sha256=inputs_digest(hashes, config), group_terms=group_terms, work=work)
 
 
 def with_hazard(inputs, model, hazard):
