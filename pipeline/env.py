@@ -32,9 +32,9 @@ def state_folder():
 def configure_prefect(log_to=None):
     """Set Prefect's environment for embedded runs (values already set are kept).
 
-    Sets ``PREFECT_HOME`` to ``<state folder>/prefect`` (created), telemetry off, the
-    console log level to WARNING, the embedded server's start-up timeout to 90 s and its
-    log level to ERROR.  Has no effect once ``prefect`` is imported (Prefect reads its
+    Sets ``PREFECT_HOME`` to ``<state folder>/prefect`` (created), telemetry off (server
+    and client, ``DO_NOT_TRACK``), the console log level to WARNING, the embedded server's
+    start-up timeout to 90 s and its log level to ERROR.  Has no effect once ``prefect`` is imported (Prefect reads its
     settings at import), so the CLI calls it first.
 
     With ``log_to``, Prefect's log records of this process and of the processes it starts
@@ -60,6 +60,7 @@ def configure_prefect(log_to=None):
     defaults = {
         "PREFECT_HOME": str(home),
         "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+        "DO_NOT_TRACK": "1",  # the client's usage data too (and its first-run notice on the terminal)
         "PREFECT_LOGGING_HANDLERS_CONSOLE_LEVEL": "WARNING",
         "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "90",
         "PREFECT_SERVER_LOGGING_LEVEL": "ERROR",
