@@ -21,6 +21,20 @@ from quakefolio.pipeline.env import configure_prefect  # noqa: E402
 configure_prefect()
 
 REPO = Path(__file__).resolve().parents[1]
+
+#: ``CI`` set (``.ci/run`` sets ``CI=1``): a test that needs a missing tool fails instead of skipping
+IN_CI = os.environ.get("CI", "").strip().lower() not in ("", "0", "false", "no")
+
+
+def missing_tool(reason):
+    """Skip the calling test for a missing tool, or fail it loudly in CI (``CI`` set).
+
+    A test that needs a program outside Python (a headless browser) must never pass CI by
+    skipping: ``.ci/run`` installs the tool, and if that did not work the suite fails here.
+    """
+    if IN_CI:
+        pytest.fail(f"{reason}; CI is set, so a missing tool fails the test (.ci/run installs it)", pytrace=False)
+    pytest.skip(reason)
 MINI = REPO / "tests" / "data" / "mini"
 DEMO = REPO / "demo_portfolio"
 

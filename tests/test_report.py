@@ -14,7 +14,7 @@ from quakefolio.pipeline.report import SECTIONS, build_report, write_report
 from quakefolio.pipeline.runner import run_pure
 from quakefolio.pipeline.io.store import PARTIAL_PREFIX, read_table
 
-from conftest import MINI
+from conftest import MINI, missing_tool
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -241,13 +241,13 @@ def _browser(binary, tmp_path, *extra):
         return subprocess.run(cmd, capture_output=True, text=True, timeout=180,
                               env=dict(os.environ, HOME=str(tmp_path)))
     except subprocess.TimeoutExpired:
-        pytest.skip("Chromium did not finish within 180 s")
+        missing_tool("Chromium did not finish within 180 s")
 
 
 def test_report_renders_in_headless_chromium(runs, report_b, tmp_path):
     binary = _chromium()
     if binary is None:
-        pytest.skip("no Chromium binary (chromium, chromium-browser, google-chrome) on PATH")
+        missing_tool("no Chromium binary (chromium, chromium-browser, google-chrome) on PATH")
     # Click the EAL header of the riskiest-assets table once the page has loaded (ascending sort),
     # and record the first asset: proves the inline sorting script runs.
     probe = ("<script>(function(){var t=document.querySelector('#riskiest table.sortable');"
@@ -258,7 +258,7 @@ def test_report_renders_in_headless_chromium(runs, report_b, tmp_path):
     page.write_text(report_b.replace("</body>", probe + "</body>"), encoding="utf-8")
     done = _browser(binary, tmp_path, "--dump-dom", page.as_uri())
     if done.returncode != 0 and not done.stdout.strip():
-        pytest.skip(f"Chromium did not run: {done.stderr.strip().splitlines()[-1:]}")
+        missing_tool(f"Chromium did not run: {done.stderr.strip().splitlines()[-1:]}")
     dom = _parse(done.stdout)
     assert dom.sections == [sid for sid, _ in SECTIONS]
     images = dom.images()

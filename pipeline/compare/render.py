@@ -17,6 +17,7 @@ from quakefolio.pipeline.compare.diff import CAUSES
 from quakefolio.pipeline.io.claims import OWNER_FILE, new_private_folder, sweep
 from quakefolio.pipeline.io.store import PARTIAL_PREFIX, atomic_publish_folder, to_arrow
 from quakefolio.pipeline.io.tables import TABLES, units_for
+from quakefolio.pipeline.terminal import one_line
 
 __all__ = ["write_change_report", "change_summary_text"]
 
@@ -245,4 +246,4 @@ def change_summary_text(result, report_folder=None, *, top_n=10):
     if report_folder is not None:
         lines.append("")
         lines.append(f"  change report: {report_folder}")
-    return "\n".join(lines)
+    return "\n".join(one_line(line) for line in lines)  # a name's control characters shown escaped
