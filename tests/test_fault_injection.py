@@ -199,21 +199,34 @@ def test_successful_flow_run_prints_nothing_on_stderr_and_logs_to_a_file(setup, 
 
 
 def test_unwritable_output_folder_is_one_line(setup, previous):
+    # Unwritable before the run starts: refused by the input checks, located at the config key,
+    # before Prefect starts (nothing to log).
     if setup.mounted:
-        fault, make, undo = None, lambda: _remount(setup.disk, "ro"), lambda: _remount(setup.disk, "rw")
+        make, undo = lambda: _remount(setup.disk, "ro"), lambda: _remount(setup.disk, "rw")
     elif os.geteuid() != 0:
-        fault, make, undo = None, lambda: _chmod_tree(setup.output, 0o555), lambda: _chmod_tree(setup.output, 0o755)
+        make, undo = lambda: _chmod_tree(setup.output, 0o555), lambda: _chmod_tree(setup.output, 0o755)
     else:
-        fault, make, undo = "EACCES", lambda: None, lambda: None
+        pytest.skip("root without a tmpfs: the injected case below covers the write failure")
     with _intact(setup):
         make()
         try:
-            done = setup.run(fault=fault)
+            done = setup.run()
         finally:
             undo()
         assert done.returncode == 2, done.stderr[-3000:]
-        line = one_line(done.stderr, r"^error: stage '[\w-]+' failed: \w*Error: \[Errno \d+\] "
-                                     r"(Read-only file system|Permission denied)", out=done.stdout)
+        line = one_line(done.stderr, r"^error: .*quakefolio\.toml:\d+: column 'output\.folder': output folder .* is not "
+                                     r"writable", out=done.stdout)
+        assert str(setup.output) in line
+        assert done.stdout == ""
+
+
+def test_write_refused_during_the_run_is_one_line(setup, previous):
+    # Unwritable once the stages run (the checks passed): the failing stage, the cause and the Prefect log.
+    with _intact(setup):
+        done = setup.run(fault="EACCES")
+        assert done.returncode == 2, done.stderr[-3000:]
+        line = one_line(done.stderr, r"^error: stage '[\w-]+' failed: \w*Error: \[Errno \d+\] Permission denied",
+                        out=done.stdout)
         assert str(setup.output) in line and str(setup.config) in line
         _prefect_log(line)
         assert done.stdout == ""
