@@ -28,6 +28,8 @@ import sys
 import time
 from pathlib import Path
 
+from quakefolio.pipeline.io.atomic import atomic_write_text
+
 __all__ = ["LOG_ENV", "choose_log_file", "current_log", "settings_file", "RunLogHandler"]
 
 #: Environment variable naming the log file of this run (inherited by child processes).
@@ -210,7 +212,5 @@ def settings_file(folder):
     except OSError:
         pass
     folder.mkdir(parents=True, exist_ok=True)
-    tmp = folder / f".logging.json.{os.getpid()}.tmp"
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
+    atomic_write_text(path, text)
     return path

@@ -306,7 +306,7 @@ def test_sigterm_stops_the_run_and_the_embedded_server(setup, previous):
         try:
             children = _wait_for_children(proc)
             proc.send_signal(signal.SIGTERM)
-            out, err = proc.communicate(timeout=60)
+            out, err = proc.communicate(timeout=240)  # generous: the machine may be loaded
         finally:
             if proc.poll() is None:
                 proc.kill()
