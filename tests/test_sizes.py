@@ -222,7 +222,7 @@ def test_check_prints_the_size_of_the_work(capsys):
 
     assert main(["check", str(MINI / "quakefolio_compute.toml")]) == 0
     out = capsys.readouterr().out
-    assert "size: 698 ruptures in 2 source models; 5 sites x 350 ruptures = 1,750 (site, rupture) pairs per " \
+    assert "size: 1,052 ruptures in 2 source models; 5 sites x 527 ruptures = 2,635 (site, rupture) pairs per " \
            "model; 5 (site, class) pairs; 10,000 years, about 7" in out
     assert "peak memory about " in out and "of 8.0 GiB" in out
 
