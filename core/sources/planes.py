@@ -179,7 +179,9 @@ def generalized_coordinates(t_km, u_km, length_km, offset_km, starts):
 
     Notes
     -----
-    Spudich & Chiou (2015) weight each segment by the integral of :math:`1/r^2` along it,
+    Spudich & Chiou (2015) weight each segment by the integral of :math:`1/r^2` along it (their
+    definitions as recalled here from memory; the closed form below is derived here and checked
+    against numerical quadrature in ``tests/test_faults.py``),
 
     .. math::
 
@@ -197,7 +199,10 @@ def generalized_coordinates(t_km, u_km, length_km, offset_km, starts):
     A site on a segment (:math:`|t_i| \le` :data:`ON_TRACE_KM`, :math:`u_i` within the segment)
     has an infinite weight there: :math:`T = 0`, :math:`U = u_i + s_i`.  For a trace of one
     segment :math:`T = t_1`, :math:`U = u_1`.  The segment offsets :math:`s_i` are the lengths
-    of the trace before each segment, the single-trace form of their coordinate system.
+    of the trace before each segment: their coordinate system for one trace whose segments follow
+    one another (from memory; their further rules for several separate traces are not needed
+    here). For the pieces of a rupture below the surface the top edges at a bend do not quite
+    meet (see :mod:`quakefolio.core.sources.faults`); the offsets stay the along-trace lengths.
 
     References
     ----------

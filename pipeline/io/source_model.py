@@ -478,8 +478,8 @@ def _build_fault(src, settings, tally, common):
     bins, info = _mfd(src, settings, fault_plane_area_km2(trace, dip, upper, lower), tally)
     fit = rupture_fit(frame, bins.mag, rake, min_aspect_ratio=common["min_aspect_ratio"])
     info = {**info, "fault_length_km": fit.fault_length_km, "fault_width_km": fit.fault_width_km,
-            "mags_capped": [float(m) for m in fit.mag[fit.capped]],
-            "mags_area_above_fault": [float(m) for m in fit.mag[fit.area_above_fault]]}
+            "mags_capped": [round(float(m), 6) for m in fit.mag[fit.capped]],
+            "mags_area_above_fault": [round(float(m), 6) for m in fit.mag[fit.area_above_fault]]}
     _count_fault(src, trace, dip, common, bins, settings, tally)
     if not tally.build:
         return None, info, []
