@@ -9,7 +9,7 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
 from quakefolio.core.curves import NoCommonRates, interpolate_period
-from quakefolio.core.errors import InputError, InputWarning
+from quakefolio.core.errors import InputError
 from quakefolio.core.gmm import get_gmm
 from quakefolio.core.plausibility import (
     likely_acceleration_unit, median_problem, unit_advice, vs30_problem,

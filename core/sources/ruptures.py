@@ -9,7 +9,8 @@ Source types
 ------------
 :func:`planar_fault_ruptures`
     A planar fault (straight trace, dip, seismogenic depths) on which ruptures of each
-    magnitude float along strike and down dip.
+    magnitude float along strike and down dip (a trace of more points is a bent fault:
+    :func:`quakefolio.core.sources.faults.fault_ruptures`).
 :func:`point_source_ruptures`
     A point with distributions of hypocentral depth and mechanism; each rupture is a
     finite plane about the hypocentre.
@@ -88,7 +89,7 @@ class RuptureSet:
     ztor_km, zbot_km : ndarray, shape (n,) [km]
         Depth of the top and bottom edges, ``0 <= ztor <= zbot``.
     width_km, length_km : ndarray, shape (n,) [km]
-        Down-dip width and along-strike length, > 0.
+        Down-dip width and along-strike length (along the trace on a bent fault), > 0.
     zhyp_km : ndarray, shape (n,) [km]
         Hypocentral depth (the centre of the plane unless a source says otherwise).
     corners : ndarray, shape (n, 4, 3)
@@ -675,7 +676,7 @@ def _bent_frame(source_id, pts, width) -> FaultFrame:
 
 
 def fault_rupture_dimensions(frame, mags, rake_deg, *, min_aspect_ratio=1.0, relation="width", slip_type=None):
-    """Length and width [km] of each magnitude's rupture on a planar fault.
+    """Length and width [km] of each magnitude's rupture on a fault (planar or bent).
 
     :func:`wc94_dimensions` with the width limited to the fault width (excess area to
     length), then the length clipped to the fault length (see :func:`planar_fault_ruptures`).
