@@ -9,7 +9,7 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
 from quakefolio.core.curves import NoCommonRates, interpolate_period
-from quakefolio.core.errors import InputError, InputWarning
+from quakefolio.core.errors import InputError
 from quakefolio.core.gmm import get_gmm
 from quakefolio.core.plausibility import (
     likely_acceleration_unit, median_problem, unit_advice, vs30_problem,
@@ -118,9 +118,9 @@ def test_polyline_self_crossing(lon, lat, expected):
     assert polyline_self_crossing(lon, lat) == expected
 
 
-def test_source_model_keeps_magnitude_ranges_and_trace_warnings(tmp_path):
+def test_source_model_keeps_magnitude_ranges_and_a_bent_trace_is_accepted(tmp_path):
     text = (MINI / "sources.toml").read_text().replace(
-        "trace = [[9.90, 19.95], [10.10, 19.97]]", "trace = [[9.90, 19.95], [10.00, 19.965], [10.10, 19.97]]")
+        "trace = [[9.86, 19.95], [10.14, 19.97]]", "trace = [[9.86, 19.95], [10.00, 19.965], [10.14, 19.97]]")
     path = tmp_path / "sources.toml"
     path.write_text(text)
     model = load_source_model(path)
@@ -128,8 +128,8 @@ def test_source_model_keeps_magnitude_ranges_and_trace_warnings(tmp_path):
     assert (col_f, col_p) == ("faults[0].mfd", "points[0].mfd")
     assert_allclose([lo_f, hi_f, lo_p, hi_p], [5.1, 6.7, 4.55, 6.45])
     assert text.splitlines()[row_f - 1].startswith("mfd =")
-    [w] = model.warnings
-    assert isinstance(w, InputWarning) and w.column == "faults[0].trace" and "straightened" in w.message
+    assert model.warnings == ()  # a three-point trace is a bent fault, no longer straightened
+    assert model.ruptures.piece_rupture.size > 0
 
 
 # ---- fragility library -------------------------------------------------------------------------

@@ -17,6 +17,7 @@ from quakefolio.core.errors import InputError
 from quakefolio.core.sources import counts
 from quakefolio.core.sources.counts import fault_rupture_count, point_rupture_count, polygon_point_count
 from quakefolio.core.sources.mfd import truncated_gr
+from quakefolio.core.sources.faults import fault_ruptures
 from quakefolio.core.sources.ruptures import area_source_ruptures, planar_fault_ruptures, polygon_grid
 from quakefolio.pipeline.io.source_model import RuptureLimit, count_source_model, load_source_model
 from quakefolio.pipeline.stages import load_inputs
@@ -45,6 +46,49 @@ def test_fault_count_equals_ruptures_built(seed):
         count = fault_rupture_count("f", trace, mags=mfd.mag, rupture_step_km=step, **kw)
         assert count.n_ruptures == len(built)
         assert count.n_magnitudes == len(mfd.mag)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_bent_fault_count_equals_ruptures_built(seed):
+    # ruptures float along the whole trace: the count of the planar fault over the trace length
+    rng = np.random.default_rng(100 + seed)
+    for _ in range(10):
+        mfd = truncated_gr(b_value=1.0, mmin=5.0, mmax=float(rng.choice([6.5, 7.5])), bin_width=0.1,
+                           rate_above_mmin=0.1)
+        kw = dict(dip_deg=rng.uniform(20, 90), upper_depth_km=rng.uniform(0, 3), lower_depth_km=rng.uniform(8, 20),
+                  rake_deg=rng.uniform(-180, 180))
+        n = int(rng.integers(3, 6))
+        trace = np.c_[10.0 + np.cumsum(rng.uniform(0.05, 0.2, n)), 20.0 + np.cumsum(rng.uniform(-0.1, 0.1, n))]
+        step = rng.uniform(0.5, 4.0)
+        built = fault_ruptures("f", trace, mfd=mfd, rupture_step_km=step, **kw)
+        count = fault_rupture_count("f", trace, mags=mfd.mag, rupture_step_km=step, **kw)
+        assert count.n_ruptures == len(built) and built.piece_rupture.size > 0
+
+
+def test_count_of_bent_faults_and_strike_distributions_equals_the_ruptures(tmp_path):
+    text = (MINI / "sources.toml").read_text()
+    text = text.replace("trace = [[9.86, 19.95], [10.14, 19.97]]",
+                        "trace = [[9.86, 19.95], [9.95, 19.97], [10.05, 19.96], [10.14, 19.97]]")
+    text = text.replace("mechanisms = [[0.0, 90.0, 0.0, 1.0]]",
+                        "mechanisms = [[90.0, 0.0, 0.5], [45.0, 90.0, 0.5]]\nuniform_strikes = 6")
+    text += """
+[[areas]]
+id = "zone"
+polygon = [[9.9, 19.9], [10.1, 19.9], [10.1, 20.1], [9.9, 20.1]]
+spacing_km = 5.0
+upper_depth_km = 0.0
+lower_depth_km = 15.0
+hypo_depths = [[5.0, 0.5], [10.0, 0.5]]
+mechanisms = [[60.0, -90.0, 1.0]]
+strikes = [[0.0, 0.2], [45.0, 0.3], [90.0, 0.5]]
+mfd = { kind = "truncated_gr", b_value = 1.0, min_mag = 4.5, max_mag = 6.0, bin_width = 0.1, rate_above_min = 0.1 }
+"""
+    path = tmp_path / "sources.toml"
+    path.write_text(text)
+    model = load_source_model(path)
+    assert count_source_model(path) == len(model.ruptures)
+    assert model.ruptures.piece_rupture.size > 0 and set(model.ruptures.strike_deg[model.ruptures.source_index == 2]) \
+        == {0.0, 60.0, 120.0, 180.0, 240.0, 300.0}
 
 
 @pytest.mark.parametrize("seed", range(4))
@@ -222,7 +266,7 @@ def test_check_prints_the_size_of_the_work(capsys):
 
     assert main(["check", str(MINI / "quakefolio_compute.toml")]) == 0
     out = capsys.readouterr().out
-    assert "size: 698 ruptures in 2 source models; 5 sites x 350 ruptures = 1,750 (site, rupture) pairs per " \
+    assert "size: 1,052 ruptures in 2 source models; 5 sites x 527 ruptures = 2,635 (site, rupture) pairs per " \
            "model; 5 (site, class) pairs; 10,000 years, about 7" in out
     assert "peak memory about " in out and "of 8.0 GiB" in out
 

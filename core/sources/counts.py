@@ -5,11 +5,12 @@ step, with the same floating-point operations, so it equals ``len()`` of the
 :class:`~quakefolio.core.sources.ruptures.RuptureSet` the builder would return (tested), at
 a cost independent of that number:
 
-* planar fault (:func:`fault_rupture_count`): per magnitude bin, ``n_along x n_down``
+* fault, planar or bent (:func:`fault_rupture_count`): per magnitude bin, ``n_along x n_down``
   floating positions, ``n = ceil(room / step) + 1`` along each direction
   (:func:`floating_position_counts`), the room being what the rupture leaves of the fault
-  (:func:`~quakefolio.core.sources.ruptures.fault_rupture_dimensions`);
-* point source (:func:`point_rupture_count`): one rupture per (mechanism, magnitude,
+  (:func:`~quakefolio.core.sources.ruptures.fault_rupture_dimensions`; on a bent fault
+  along the whole trace, a rupture across a joint being one rupture of several pieces);
+* point source (:func:`point_rupture_count`): one rupture per (mechanism, strike, magnitude,
   hypocentral depth);
 * area source: the point-source count times the grid points inside the polygon
   (:func:`polygon_point_count`), counted row by row of the grid.
@@ -76,19 +77,19 @@ def floating_position_counts(room_km: ArrayLike, step_km: float) -> np.ndarray:
 
 
 class FaultCount(NamedTuple):
-    """Ruptures of a planar fault and the factors of that number."""
+    """Ruptures of a fault and the factors of that number."""
 
     n_ruptures: int  #: total over magnitude bins
     n_magnitudes: int  #: magnitude bins
     max_along: int  #: most positions along strike of one magnitude
     max_down: int  #: most positions down dip of one magnitude
-    length_km: float  #: fault length [km]
+    length_km: float  #: fault length along the trace [km]
     width_km: float  #: fault width down dip [km]
 
 
 def fault_rupture_count(source_id, trace, *, dip_deg, upper_depth_km, lower_depth_km, rake_deg, mags,
                         rupture_step_km, min_aspect_ratio=1.0, relation="width", slip_type=None) -> FaultCount:
-    """Number of ruptures :func:`~quakefolio.core.sources.ruptures.planar_fault_ruptures` builds.
+    """Number of ruptures :func:`~quakefolio.core.sources.faults.fault_ruptures` builds.
 
     Parameters
     ----------
@@ -128,18 +129,22 @@ def fault_rupture_count(source_id, trace, *, dip_deg, upper_depth_km, lower_dept
                       frame.length_km, frame.width_km)
 
 
-def point_rupture_count(n_magnitudes: int, n_depths: int, n_mechanisms: int) -> int:
-    """Ruptures of one point source location: one per (mechanism, magnitude, depth).
+def point_rupture_count(n_magnitudes: int, n_depths: int, n_mechanisms: int, n_strikes: int = 1) -> int:
+    """Ruptures of one point source location: one per (mechanism, strike, magnitude, depth).
 
     Parameters
     ----------
     n_magnitudes, n_depths, n_mechanisms : int
+    n_strikes : int, optional
+        Strikes each mechanism is crossed with
+        (:func:`~quakefolio.core.sources.strikes.mechanisms_with_strikes`); 1 when the
+        mechanisms carry their own strike.
 
     Returns
     -------
     int
     """
-    return int(n_magnitudes) * int(n_depths) * int(n_mechanisms)
+    return int(n_magnitudes) * int(n_depths) * int(n_mechanisms) * int(n_strikes)
 
 
 class PolygonCount(NamedTuple):

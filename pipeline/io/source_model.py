@@ -13,7 +13,9 @@ Layout::
 
     [[faults]]
     id = "north_fault"
-    trace = [[lon, lat], [lon, lat]]     # planar: first to last point, dipping to the right
+    trace = [[lon, lat], [lon, lat]]     # two points: planar; more: bent (one plane per segment),
+                                         # dipping to the right of each segment, ruptures floating
+                                         # along the whole trace
     dip_deg = 60.0
     rake_deg = 90.0
     upper_depth_km = 0.0
@@ -32,6 +34,16 @@ Layout::
     mfd = { kind = "truncated_gr", ... }
 
     [[points]]                           # as areas, with lon and lat instead of polygon
+    id = "p"
+    ...
+    mechanisms = [[90.0, 0.0, 1.0]]      # (dip, rake deg, weight): no strike, with one of
+    strikes = [[0.0, 0.5], [90.0, 0.5]]  # (strike deg, weight): rates split by both weights
+    uniform_strikes = 12                 # or: 12 strikes 30 deg apart, equal weights
+
+A fault's rupture longer than the fault (Wells & Coppersmith 1994 dimensions, width limited to
+the fault's) is capped at the fault length and keeps its rate; one warning per fault names those
+magnitudes, and the source's summary lists them (``mags_capped``) and those whose scaling area
+alone exceeds the fault area (``mags_area_above_fault``, beside the moment balance).
 
 MFD kinds: ``truncated_gr`` (b_value, min_mag, max_mag, bin_width, one of
 rate_above_min / a_value / slip_rate_mm_per_yr), ``characteristic`` (b_value, min_mag,
@@ -52,10 +64,12 @@ from quakefolio.core.sources.counts import (
 from quakefolio.core.sources.mfd import (
     characteristic_yc85, moment_balanced, moment_rate_from_slip, single_magnitude, truncated_gr,
 )
+from quakefolio.core.sources.faults import fault_ruptures, rupture_fit
 from quakefolio.core.sources.geometry import polyline_self_crossing
 from quakefolio.core.sources.ruptures import (
-    RuptureSet, area_source_ruptures, fault_plane_area_km2, planar_fault_ruptures, point_source_ruptures,
+    RuptureSet, area_source_ruptures, fault_frame, fault_plane_area_km2, point_source_ruptures,
 )
+from quakefolio.core.sources.strikes import mechanisms_with_strikes, strike_distribution, uniform_strikes
 from quakefolio.core.validation import Field, Interval, Real, Schema, check_value, toml_place, validate_table
 from quakefolio.fragility.library import read_toml
 
@@ -74,6 +88,9 @@ _KEYS = {
     "areas": _COMMON + ("polygon", "spacing_km", "hypo_depths", "mechanisms"),
     "points": _COMMON + ("lon", "lat", "hypo_depths", "mechanisms"),
 }
+#: Optional keys of point and area sources: a strike distribution crossed with mechanisms given without strike.
+_STRIKE_KEYS = ("strikes", "uniform_strikes")
+_OPTIONAL = {"faults": (), "areas": _STRIKE_KEYS, "points": _STRIKE_KEYS}
 _MFD_KEYS = {
     "truncated_gr": ("kind", "b_value", "min_mag", "max_mag", "bin_width", "rate_above_min", "a_value",
                      "slip_rate_mm_per_yr"),
@@ -125,7 +142,8 @@ _NUMBER = (Real(finite=True),)
 _POSITIVE_NUMBER = _NUMBER + (Interval(0, None, closed="neither"),)
 _NON_NEGATIVE_NUMBER = _NUMBER + (Interval(0, None),)
 #: Kind -> schema of one source table: every key required, a missing one reported at the table.
-_SOURCE_SCHEMAS = {kind: Schema({key: Field(()) for key in keys}, missing_names_key=False, missing_first=True)
+_SOURCE_SCHEMAS = {kind: Schema({**{key: Field(()) for key in keys}, **{key: Field((), None) for key in _OPTIONAL[kind]}},
+                          missing_names_key=False, missing_first=True)
                    for kind, keys in _KEYS.items()}
 
 
@@ -156,7 +174,7 @@ def _source(kind, i, src, settings, seen, path, text, tally):
         raise place.error(f"source id must be a unique non-empty string, got {sid!r}", "id")
     seen.add(sid)
     try:
-        rs, info = _build(kind, src, settings, tally)
+        rs, info, doubts = _build(kind, src, settings, tally)
     except _FieldError as exc:
         if exc.table is not None:
             raise toml_place(path, text, (exc.table,), exc.table).error(f"source {sid!r}: {exc.msg}", exc.key) from None
@@ -165,11 +183,8 @@ def _source(kind, i, src, settings, seen, path, text, tally):
         raise place.error(f"source {sid!r}: {exc}") from None
     if rs is None:  # counted only
         return None, None, None, []
-    notes = []
-    if kind == "faults" and len(src["trace"]) > 2:
-        notes.append(InputWarning(path, f"fault {sid!r}: the trace has {len(src['trace'])} points but faults are "
-                                        "planar: it is straightened to the segment from its first to its last point",
-                                  row=place.locate("trace"), column=place.column_of("trace")))
+    notes = [InputWarning(path, f"{kind[:-1]} {sid!r}: {msg}", row=place.locate(key), column=place.column_of(key))
+             for key, msg in doubts]
     mags = (place.locate("mfd"), place.column_of("mfd"), float(rs.mag.min()), float(rs.mag.max())) if len(rs) else None
     row = {"source_id": sid, "kind": kind[:-1], **info, "n_ruptures": len(rs), "total_rate": float(rs.rate.sum())}
     return rs, row, mags, notes
@@ -193,9 +208,10 @@ def load_source_model(path, limit=None):
     Returns
     -------
     SourceModel
-        Ruptures of every source, a summary row per source, the file's sha256, each source's
-        magnitude range and the doubts found (a fault trace of more than two points, which is
-        straightened).
+        Ruptures of every source, a summary row per source (for a fault: its length along the
+        trace, width and area, and the magnitudes whose rupture is capped at it,
+        :func:`~quakefolio.core.sources.faults.rupture_fit`), the file's sha256, each source's
+        magnitude range and the doubts found (a fault whose largest ruptures do not fit on it).
 
     Raises
     ------
@@ -391,12 +407,13 @@ def _count_fault(src, trace, dip, common, bins, settings, tally):
     tally.take(c.n_ruptures, "mfd" if c.max_along * c.max_down < c.n_magnitudes else "trace", what)
 
 
-def _count_points(kind, src, n_mags, depths, mechs, tally):
+def _count_points(kind, src, n_mags, depths, n_mechs, n_strikes, tally):
     """Count an area's or a point's ruptures before building them (area: grid points inside the polygon)."""
-    per_point = point_rupture_count(n_mags, len(depths), len(mechs))
+    per_point = point_rupture_count(n_mags, len(depths), n_mechs, n_strikes)
+    factors = f"{n_mags:,} magnitudes x {len(depths)} depths x {n_mechs} mechanisms" + (
+        f" x {n_strikes} strikes" if n_strikes > 1 else "")
     if kind == "points":
-        tally.take(per_point, "mfd", f"{per_point:,} ruptures ({n_mags:,} magnitudes x {len(depths)} depths "
-                                     f"x {len(mechs)} mechanisms)")
+        tally.take(per_point, "mfd", f"{per_point:,} ruptures ({factors})")
         return
     grid = polygon_point_count(src["polygon"], _field(src, "spacing_km", positive=True))
     n = grid.n_points * per_point
@@ -406,46 +423,114 @@ def _count_points(kind, src, n_mags, depths, mechs, tally):
 
 
 def _build(kind, src, settings, tally):
+    """One source's ruptures (None when only counted), its summary values and its doubts as (key, message)."""
     upper = _field(src, "upper_depth_km", non_negative=True)
     lower = _field(src, "lower_depth_km", positive=True)
     if not lower > upper:
         raise _FieldError("lower_depth_km", f"lower_depth_km ({lower:g}) must exceed upper_depth_km ({upper:g})")
     common = dict(upper_depth_km=upper, lower_depth_km=lower, min_aspect_ratio=settings["min_aspect_ratio"])
     if kind == "faults":
-        trace = _pairs(src, "trace", 2)
-        if len(trace) < 2:
-            raise _FieldError("trace", "a fault trace needs at least two [lon, lat] points")
-        crossing = polyline_self_crossing([p[0] for p in trace], [p[1] for p in trace])
-        if crossing is not None:
-            i, j = crossing
-            raise _FieldError("trace", f"the fault trace crosses itself (segment {i + 1} meets segment {j + 1}, "
-                                       "counting from the first point); give the points in order along the fault")
-        dip = _field(src, "dip_deg", positive=True)
-        if dip > 90:
-            raise _FieldError("dip_deg", f"dip must lie in (0, 90], got {dip:g}")
-        _fault_width(src, dip, upper, lower)
-        area = fault_plane_area_km2(trace, dip, upper, lower)
-        bins, info = _mfd(src, settings, area, tally)
-        _count_fault(src, trace, dip, common, bins, settings, tally)
-        if not tally.build:
-            return None, info
-        rs = planar_fault_ruptures(src["id"], trace, dip_deg=dip, rake_deg=_field(src, "rake_deg"), mfd=bins,
-                                   rupture_step_km=settings["rupture_step_km"], **common)
-        return rs, info
+        return _build_fault(src, settings, tally, common)
     bins, info = _mfd(src, settings, None, tally)
     depths = _pairs(src, "hypo_depths", 2)
-    mechs = _pairs(src, "mechanisms", 4)
+    mechs, n_mechs, n_strikes = _mechanisms(src)
     if kind == "areas":
         polygon = _pairs(src, "polygon", 2)
         if len(polygon) < 3:
             raise _FieldError("polygon", "an area polygon needs at least three [lon, lat] vertices")
-    _count_points(kind, src, len(bins.mag), depths, mechs, tally)
+    _count_points(kind, src, len(bins.mag), depths, n_mechs, n_strikes, tally)
     if not tally.build:
-        return None, info
+        return None, info, []
     if kind == "areas":
         rs = area_source_ruptures(src["id"], polygon, spacing_km=_field(src, "spacing_km", positive=True), mfd=bins,
                                   hypo_depths=depths, mechanisms=mechs, **common)
     else:
         rs = point_source_ruptures(src["id"], _field(src, "lon"), _field(src, "lat"), mfd=bins, hypo_depths=depths,
                                    mechanisms=mechs, **common)
-    return rs, info
+    return rs, info, []
+
+
+def _trace(src):
+    trace = _pairs(src, "trace", 2)
+    if len(trace) < 2:
+        raise _FieldError("trace", "a fault trace needs at least two [lon, lat] points")
+    crossing = polyline_self_crossing([p[0] for p in trace], [p[1] for p in trace])
+    if crossing is not None:
+        i, j = crossing
+        raise _FieldError("trace", f"the fault trace crosses itself (segment {i + 1} meets segment {j + 1}, "
+                                   "counting from the first point); give the points in order along the fault")
+    return trace
+
+
+def _build_fault(src, settings, tally, common):
+    """A fault's ruptures (planar for two trace points, bent for more), summary values and doubts."""
+    trace = _trace(src)
+    dip = _field(src, "dip_deg", positive=True)
+    if dip > 90:
+        raise _FieldError("dip_deg", f"dip must lie in (0, 90], got {dip:g}")
+    rake = _field(src, "rake_deg")
+    upper, lower = common["upper_depth_km"], common["lower_depth_km"]
+    _fault_width(src, dip, upper, lower)
+    try:
+        frame = fault_frame(src["id"], trace, dip, upper, lower)
+    except ValueError as exc:
+        raise _FieldError("trace", str(exc)) from None
+    bins, info = _mfd(src, settings, fault_plane_area_km2(trace, dip, upper, lower), tally)
+    fit = rupture_fit(frame, bins.mag, rake, min_aspect_ratio=common["min_aspect_ratio"])
+    info = {**info, "fault_length_km": fit.fault_length_km, "fault_width_km": fit.fault_width_km,
+            "mags_capped": [round(float(m), 6) for m in fit.mag[fit.capped]],
+            "mags_area_above_fault": [round(float(m), 6) for m in fit.mag[fit.area_above_fault]]}
+    _count_fault(src, trace, dip, common, bins, settings, tally)
+    if not tally.build:
+        return None, info, []
+    rs = fault_ruptures(src["id"], trace, dip_deg=dip, rake_deg=rake, mfd=bins,
+                        rupture_step_km=settings["rupture_step_km"], **common)
+    return rs, info, _fit_doubts(fit)
+
+
+def _magnitude_list(mags):
+    """'M 6.7', 'M 6.5 and 6.7', 'M 6.3, 6.5 and 6.7', or 'M 6.1 to 7.1 (11 magnitudes)' beyond six."""
+    text = [f"{m:g}" for m in mags]
+    if len(text) > 6:
+        return f"M {text[0]} to {text[-1]} ({len(text)} magnitudes)"
+    return "M " + (text[0] if len(text) == 1 else f"{', '.join(text[:-1])} and {text[-1]}")
+
+
+def _fit_doubts(fit):
+    """The warning of a fault whose largest ruptures are capped at it, as (key, message); none when all fit."""
+    capped = fit.capped
+    if not capped.any():
+        return []
+    area = fit.area_km2[capped]
+    return [("mfd", f"the ruptures of {_magnitude_list(fit.mag[capped])} do not fit on the fault "
+                    f"({fit.fault_length_km:.1f} km along the trace x {fit.fault_width_km:.1f} km down dip = "
+                    f"{fit.fault_area_km2:.0f} km2; Wells & Coppersmith 1994: up to {fit.length_km[capped].max():.1f} "
+                    f"km long, {area.max():.0f} km2): each is capped at the fault length and keeps its rate")]
+
+
+def _mechanisms(src):
+    """``(strike, dip, rake, weight)`` mechanisms of a point or area source, the number of mechanisms and of
+    strikes: ``mechanisms`` with their strikes, or without, crossed with ``strikes`` or ``uniform_strikes``."""
+    given = [key for key in _STRIKE_KEYS if key in src]
+    if len(given) > 1:
+        raise _FieldError(given[1], "give either 'strikes' or 'uniform_strikes', not both")
+    if not given:
+        try:
+            mechs = _pairs(src, "mechanisms", 4)
+        except _FieldError as exc:
+            raise _FieldError("mechanisms", f"{exc.msg} ([strike_deg, dip_deg, rake_deg, weight]; or [dip_deg, "
+                                            "rake_deg, weight] with 'strikes' or 'uniform_strikes')") from None
+        return mechs, len(mechs), 1
+    try:
+        mechs = _pairs(src, "mechanisms", 3)
+    except _FieldError as exc:
+        raise _FieldError("mechanisms", f"{exc.msg}: with '{given[0]}' each mechanism is [dip_deg, rake_deg, weight], "
+                                        f"its strike taken from '{given[0]}'") from None
+    try:
+        if given[0] == "strikes":
+            strikes = strike_distribution(_pairs(src, "strikes", 2))
+        else:
+            strikes = uniform_strikes(src["uniform_strikes"])
+    except ValueError as exc:
+        raise _FieldError(given[0], str(exc)) from None
+    return mechanisms_with_strikes(mechs, strikes), len(mechs), len(strikes)

@@ -23,7 +23,7 @@ from the ``tracemalloc`` peaks of those stages on the mini inputs scaled up in o
 at a time, and ``tests/test_sizes.py`` holds the estimates within a factor of 2 of measured
 peaks):
 
-* hazard: the ruptures; per task (``site_block_size`` sites, ``max_workers`` tasks at
+* hazard: the ruptures (with the pieces of those on bent faults); per task (``site_block_size`` sites, ``max_workers`` tasks at
   once) every (site, rupture) pair of the largest source model with its distances,
   ground-motion inputs and results (:data:`PAIR_BYTES` + :data:`PAIR_IM_BYTES` per IM),
   an upper bound since pairs beyond the integration distance are dropped; the branch
@@ -80,6 +80,9 @@ _GIB = float(1 << 30)
 
 #: One rupture of a RuptureSet: ten float64 fields, the int64 source index, 4 x 3 float64 corners.
 RUPTURE_BYTES = 184
+#: One piece of a rupture on a bent fault (one per segment it spans): 4 x 3 float64 corners, the
+#: int64 index of its rupture.
+PIECE_BYTES = 104
 #: Peak per rupture while a source model is built: the set itself, the per-magnitude corner
 #: offsets and positions, the projected corners and the copies of the final checks.
 RUPTURE_BUILD_BYTES = 640
@@ -429,6 +432,7 @@ class _Dims:
     tasks: int
     ruptures: tuple  # per source branch
     rates: tuple  # total rupture rate per source branch [1/yr]
+    pieces: tuple = ()  # pieces of the ruptures on bent faults, per source branch
 
 
 def _dims(inputs, n_pairs):
@@ -441,12 +445,13 @@ def _dims(inputs, n_pairs):
         levels, ims = len(model.levels_g), len(model.ims)
         ruptures = tuple(len(src.ruptures) for _, _, src in model.source_branches)
         rates = tuple(src.ruptures.total_rate for _, _, src in model.source_branches)
+        pieces = tuple(src.ruptures.piece_rupture.size for _, _, src in model.source_branches)
     return _Dims(len(inputs.exposure), len(inputs.hazard.site_id), n_pairs, ims, levels, _parallel_tasks(cfg),
-                 ruptures, rates)
+                 ruptures, rates, pieces if model is not None else ())
 
 
 def _ruptures_term(d, copies=1):
-    return Term(copies * sum(d.ruptures) * RUPTURE_BYTES, "hazard.source_models",
+    return Term(copies * (sum(d.ruptures) * RUPTURE_BYTES + sum(d.pieces) * PIECE_BYTES), "hazard.source_models",
                 f"{sum(d.ruptures):,} ruptures", "the rupture sets",
                 otherwise="use fewer ruptures (a larger rupture_step_km or spacing_km in the source models)")
 
