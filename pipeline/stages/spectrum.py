@@ -54,7 +54,7 @@ def check_spectrum_settings(config):
     gmms = [(b["id"], b["weight"], get_gmm(b["model"])) for b in config.hazard.gmm_branches or ()]
     for i, im in enumerate(ims):
         if im in ims[:i]:
-            raise _key_error(config, f"{im} is listed twice")
+            raise _key_error(config, f"{im} is listed twice (IM names are compared by their period)")
         t = im_period(im)  # PGA counts as 0.01 s in the correlation model
         if not CMS_MIN_PERIOD_S <= t <= CMS_MAX_PERIOD_S:
             raise _key_error(config, f"{im}: expected PGA or SA_<T> with T from {CMS_MIN_PERIOD_S:g} to "
