@@ -181,15 +181,19 @@ def cms_config(tmp_path):
     shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
     cfg = dst / "quakefolio_compute.toml"
     text = cfg.read_text().replace("return_periods_yr = [100, 475, 2475]", "return_periods_yr = [100, 475, 2475]\n"
-                                   'cms_conditioning_ims = ["SA_1.0", "PGA"]\ncms_return_periods_yr = [475, 2475]')
+                                   'cms_conditioning_ims = ["SA_1.0", "PGA"]\ncms_return_periods_yr = [475, 2475, 2e6]')
     cfg.write_text(text)
     return cfg
 
 
 def test_stage_on_the_mini_portfolio(cms_config):
     run = run_pure(cms_config, stages_to_run="hazard")
-    t = read_table(run, "conditional_mean_spectrum")
-    assert (t.flag == "ok").all() and len(t) == 5 * 2 * 2 * 22  # sites x IMs x return periods x periods
+    everything = read_table(run, "conditional_mean_spectrum")
+    assert len(everything) == 5 * 2 * 3 * 22  # sites x IMs x return periods x periods
+    floor = everything[everything.return_period_yr == 2e6]  # rate 5e-7/yr: below the default floor 1e-6/yr
+    assert (floor.flag == "below_rate_floor").all() and floor.cms_g.isna().all() and floor.target_g.isna().all()
+    t = everything[everything.return_period_yr < 2e6].reset_index(drop=True)
+    assert (t.flag == "ok").all()
     at = t[t.im == t.conditioning_im]
     assert_allclose(at.cms_g, at.target_g, rtol=1e-12)  # through the uniform-hazard value at T*
     assert (at.conditional_sigma == 0).all() and (at.correlation == 1).all()
@@ -211,4 +215,4 @@ def test_stage_on_the_mini_portfolio(cms_config):
     again = run_pure(cms_config, stages_to_run="hazard")
     manifest = json.loads((again / "manifest.json").read_text())
     assert manifest["cache"]["spectrum_sites"] == {"from_cache": 5, "computed": 0}
-    pd.testing.assert_frame_equal(read_table(again, "conditional_mean_spectrum"), t)
+    pd.testing.assert_frame_equal(read_table(again, "conditional_mean_spectrum"), everything)
