@@ -22,7 +22,7 @@ from quakefolio.pipeline.io.run_inputs import run_input_frames
 from quakefolio.pipeline.io.output_folder import prepare_output_folder
 from quakefolio.pipeline.io.store import RunWriter, new_run_id
 from quakefolio.pipeline.io.tables import TABLES, units_for
-from quakefolio.pipeline.stages import blocks, whatif
+from quakefolio.pipeline.stages import blocks, spectrum, whatif
 from quakefolio.pipeline.stages import events as ps
 from quakefolio.pipeline.stages import hazard as hs
 from quakefolio.pipeline.stages.damage import combine_damage, plan_blocks
@@ -172,7 +172,7 @@ def _site_counts(stage, parts):
 
 
 def run_hazard(inputs, ref, executor, work, clock):
-    """Compute-mode hazard: curves per site block, logic-tree statistics, disaggregation.
+    """Compute-mode hazard: curves per site block, logic-tree statistics, disaggregation, conditional spectrum.
 
     Parameters
     ----------
@@ -204,6 +204,14 @@ def run_hazard(inputs, ref, executor, work, clock):
         blocks.register(inputs, ref)
         counts = counts + _site_counts("disaggregation_sites", parts)
         clock("disaggregation_s", t)
+    if spectrum.conditioning_ims(inputs.config):
+        t = time.perf_counter()
+        parts = executor.many("conditional-spectrum-block", blocks.spectrum_task, ref, site_blocks)
+        model = executor.one("conditional-spectrum-combine", spectrum.combine_spectrum, model, hazard, parts)
+        inputs = with_hazard(inputs, model, hazard)
+        blocks.register(inputs, ref)
+        counts = counts + _site_counts("spectrum_sites", parts)
+        clock("conditional_spectrum_s", t)
     return inputs, ref, counts
 
 
@@ -356,6 +364,8 @@ def _hazard_frames(inputs):
     if model is not None and model.disagg is not None:
         frames["disaggregation"], frames["disaggregation_summary"] = hs.disaggregation_frames(
             model, inputs.hazard, inputs.config.hazard.return_periods_yr)
+    if model is not None and model.spectrum_sums is not None:
+        frames["conditional_mean_spectrum"] = spectrum.spectrum_frame(model, inputs.hazard, inputs.config)
     return frames
 
 

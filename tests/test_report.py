@@ -67,12 +67,14 @@ def _section(text, sid):
 
 @pytest.fixture(scope="module")
 def runs(tmp_path_factory):
-    """Run A and run B (compute mode with the event-based stage; B after an exposure change)
-    and an ingest-mode run, all in one copy of the mini inputs."""
+    """Run A and run B (compute mode with the event-based stage and a conditional mean spectrum; B after an
+    exposure change) and an ingest-mode run, all in one copy of the mini inputs."""
     dst = tmp_path_factory.mktemp("report") / "mini"
     shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
     cfg = dst / "quakefolio_compute.toml"
-    cfg.write_text(cfg.read_text() + "\n[portfolio]\nyears = 2000\n")
+    text = cfg.read_text().replace("return_periods_yr = [100, 475, 2475]", "return_periods_yr = [100, 475, 2475]\n"
+                                   'cms_conditioning_ims = ["SA_1.0"]\ncms_return_periods_yr = [475, 2475]')
+    cfg.write_text(text + "\n[portfolio]\nyears = 2000\n")
     run_a = run_pure(cfg)
     exposure = dst / "exposure.csv"
     exposure.write_text(exposure.read_text().replace("B2,10.029,20.002,TST-A,2500000",
@@ -137,7 +139,8 @@ def test_event_based_sections_hold_results(runs, report_b):
     portfolio = _section(report_b, "portfolio")
     assert "Average annual loss" in portfolio and "TVaR" in portfolio and "<img" in portfolio
     hazard = _section(report_b, "hazard")
-    assert hazard.count("<img") == 3  # curves, uniform-hazard spectra, disaggregation
+    assert hazard.count("<img") == 4  # curves, uniform-hazard spectra, conditional mean spectra, disaggregation
+    assert 'alt="conditional mean spectra"' in hazard and "scenario epsilon" in hazard
     assert "not for design use" in hazard
     checks = _section(report_b, "checks")
     assert "portfolio AAL vs classical EAL" in checks and "Hazard logic tree" in checks
@@ -165,6 +168,7 @@ def test_change_report_names_assets_and_causes(report_b):
 
 def test_ingest_run_has_notes_instead_of_event_and_disaggregation(report_ingest):
     assert "No disaggregation in this run" in _section(report_ingest, "hazard")
+    assert "Conditional mean spectrum" not in _section(report_ingest, "hazard")
     assert "No event-based tables in this run" in _section(report_ingest, "portfolio")
     assert "No cross-checks" in _section(report_ingest, "checks")
     assert "No previous run was given" in _section(report_ingest, "changes")

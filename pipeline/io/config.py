@@ -169,6 +169,9 @@ SCHEMA = {
                                                                  show_value=False)),
         "region": _key(_STR, "global"),
         "disaggregation": _key(_BOOL, True),
+        "cms_conditioning_ims": _key((_IMNames(),), [], help="conditional mean spectrum: IMs it is conditioned on "
+                                     "(checked by pipeline.stages.spectrum); [] (default): none"),
+        "cms_return_periods_yr": _key(_FLOATS, [475.0, 2475.0], *_RETURN_PERIODS),
         "propagate_branches": _key(_BOOL, False, help="also give damage and EAL fractiles over branches"),
     },
     "portfolio": {
@@ -304,6 +307,8 @@ class HazardSettings(_Section):
     default_vs30_mps: float  #: Vs30 of assets without one [m/s]
     region: str  #: ground-motion model region
     disaggregation: bool  #: compute the disaggregation table
+    cms_conditioning_ims: tuple  #: IMs the conditional mean spectrum is conditioned on (empty: none)
+    cms_return_periods_yr: tuple  #: return periods of the conditional mean spectrum [yr]
     propagate_branches: bool  #: also give damage and EAL fractiles over branches
 
 

@@ -57,7 +57,8 @@ class HazardModel:
     source_branches : tuple of (id, weight, SourceModel)
     gmm_branches : tuple of (id, weight, ground-motion model)
     ims : list of str
-        IMs computed (configured ones and those the fragility classes need), by period.
+        IMs computed (configured ones, those the fragility classes need and the conditioning IMs
+        of the conditional mean spectrum), by period.
     levels_g : ndarray (n_levels,) [g]
         IM levels of every curve.
     truncation_sigma : float or None
@@ -82,6 +83,10 @@ class HazardModel:
     disagg_moments : ndarray (n_im, n_sites, n_rp, 5) or None
         Exact rate-weighted sums over (site, rupture) pairs for the mean magnitude,
         distance and epsilon (:data:`quakefolio.core.hazard.DISAGG_MOMENTS`), once computed.
+    spectrum_sums, spectrum_moments : ndarray or None
+        Conditional mean spectrum: weighted sums (n_cond, n_sites, n_rp, 2, n_periods) and
+        disaggregation moments (n_cond, n_sites, n_rp, 5) at each target, once computed
+        (:mod:`quakefolio.pipeline.stages.spectrum`).
     bins : DisaggBins
     digest : str
         Content digest of everything a site's hazard depends on except the site.
@@ -104,6 +109,8 @@ class HazardModel:
     bins: DisaggBins = field(default_factory=DisaggBins.default)
     digest: str = ""
     disagg_moments: np.ndarray | None = None
+    spectrum_sums: np.ndarray | None = None
+    spectrum_moments: np.ndarray | None = None
 
 
 def build_sites(exposure, spacing_km, default_vs30):
@@ -154,7 +161,8 @@ def prepare_compute(config, exposure, library, lines=None, budget=None):
     """Validate the compute-mode inputs and build the sites (no hazard computed yet).
 
     Reads every source-model branch, resolves the ground-motion model branches, adds the
-    IMs the exposure's fragility classes need to the configured ones (sorted by period),
+    IMs the exposure's fragility classes need and the conditioning IMs of the conditional mean
+    spectrum to the configured ones (sorted by period),
     checks that every ground-motion model covers those periods and builds the sites
     (:func:`build_sites`).  The class check is
     :func:`quakefolio.pipeline.stages.checks.check_class_hazard`.
@@ -193,7 +201,7 @@ def prepare_compute(config, exposure, library, lines=None, budget=None):
     hz = config.hazard
     used = sorted(set(exposure.building_class))
     needed = {library[c].im for c in used}
-    ims = sorted(set(hz.ims) | needed, key=im_period)
+    ims = sorted(set(hz.ims) | needed | set(hz.cms_conditioning_ims), key=im_period)
     ids, lon, lat, vs30, site_index, dist, ref = build_sites(exposure, hz.site_spacing_km, hz.default_vs30_mps)
     if budget is not None:  # count first: what cannot fit is refused before any rupture is built
         limit = rupture_limit(config, len(ims), budget)

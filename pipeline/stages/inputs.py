@@ -19,6 +19,7 @@ from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, che
 from quakefolio.pipeline.stages.hazard import prepare_compute
 from quakefolio.pipeline.stages.plausibility import input_warnings
 from quakefolio.pipeline.stages.products import RunInputs, frozen_mapping
+from quakefolio.pipeline.stages.spectrum import check_spectrum_settings
 from quakefolio.pipeline.stages.sizes import check_work, estimate_work, memory_budget
 from quakefolio.pipeline.stages.whatif import validate as validate_alternatives
 
@@ -103,6 +104,7 @@ def load_inputs(config_or_path):
                                                exposure_path=ex.file)
         levels_of = TabulatedLevels(hazard, hz.period_interpolation)
     else:
+        check_spectrum_settings(config)
         model, hazard, site_index, dist = prepare_compute(config, exposure, library, lines, budget)
         for bid, _, src in model.source_branches:
             hashes[f"source_model:{bid}"] = {"path": src.path, "sha256": src.sha256}

@@ -21,7 +21,7 @@ __all__ = ["INGEST_ONLY_KEYS", "COMPUTE_ONLY_KEYS", "input_warnings", "model_ran
 INGEST_ONLY_KEYS = ("curves_file", "im_unit", "statistic", "max_site_distance_km", "period_interpolation")
 COMPUTE_ONLY_KEYS = ("source_models", "gmm_branches", "truncation_sigma", "integration_distance_km", "ims",
                      "im_levels_g", "fractiles", "site_spacing_km", "default_vs30_mps", "region", "disaggregation",
-                     "propagate_branches")
+                     "cms_conditioning_ims", "cms_return_periods_yr", "propagate_branches")
 
 
 def _more(n):
