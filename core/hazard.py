@@ -42,14 +42,16 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.special import ndtr
+from scipy.special import ndtr, ndtri
 
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.events.gmf import ln_im
 
 __all__ = [
     "exceedance_probability",
+    "truncation_window",
     "pair_index",
+    "site_chunks",
     "hazard_from_pairs",
     "weighted_mean",
     "weighted_sum",
@@ -68,7 +70,7 @@ __all__ = [
 ]
 
 
-def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
+def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *, out=None):
     r"""P(IM > x) [-] for lognormal residuals, optionally truncated at ``truncation_sigma``.
 
     Parameters
@@ -79,6 +81,9 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     truncation_sigma : float or None
         Symmetric truncation :math:`n > 0` of the standard normal residual; None
         for no truncation.
+    out : ndarray or None
+        Float array of the output's shape to write into (a work buffer reused by the
+        engine).
 
     Returns
     -------
@@ -88,7 +93,10 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     -----
     Module notes: :math:`[\Phi(-\varepsilon) - \Phi(-n)]/[1 - 2\Phi(-n)]`, clipped to
     [0, 1]; a zero sigma gives the step :math:`\mathbf{1}[\ln x < \mu]`.  Computed in
-    place on one array of the output's size (this is the hot loop of the engine).
+    place on one array of the output's size (this is the hot loop of the engine).  With
+    truncation, :math:`\Phi` is evaluated only inside the window where the result is
+    not exactly 0 or 1 (:func:`truncation_window`); outside it the clipped value is
+    written directly, so every value is bit for bit the one of the full evaluation.
     """
     mu = np.asarray(ln_median, dtype=float)[..., None]
     sd = np.asarray(sigma, dtype=float)[..., None]
@@ -100,17 +108,64 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     zero = sd == 0
     any_zero = bool(zero.any())
     with np.errstate(divide="ignore", invalid="ignore"):
-        p = np.subtract(mu, lnx)  # -epsilon_x * sigma
+        p = np.subtract(mu, lnx, out=out)  # -epsilon_x * sigma
         p *= 1.0 / sd
     if any_zero:
-        p = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
-    ndtr(p, out=p)
-    if truncation_sigma is not None:
-        pn = ndtr(-truncation_sigma)
-        p -= pn
-        p *= 1.0 / (1.0 - 2.0 * pn)
-        np.clip(p, 0.0, 1.0, out=p)
+        p[...] = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
+    if truncation_sigma is None:
+        ndtr(p, out=p)
+        return p
+    pn = ndtr(-truncation_sigma)
+    lo, hi = truncation_window(truncation_sigma)
+    above = p > hi
+    outside = p < lo
+    outside |= above  # NaN stays inside (evaluated, stays NaN)
+    if not outside.any():
+        return _truncated(p, pn)
+    inside = ~outside
+    values = _truncated(p[inside], pn)  # (scipy's ufuncs are not called with where=: wrong values)
+    np.copyto(p, above)  # exactly 1 above the window, 0 below it
+    p[inside] = values
     return p
+
+
+def _truncated(z, pn):
+    """In place: clip((Phi(z) - pn) / (1 - 2 pn), 0, 1), the truncated exceedance."""
+    ndtr(z, out=z)
+    z -= pn
+    z *= 1.0 / (1.0 - 2.0 * pn)
+    np.clip(z, 0.0, 1.0, out=z)
+    return z
+
+
+def truncation_window(truncation_sigma):
+    r"""Standardised bounds [-] outside which the truncated exceedance is exactly 0 or 1.
+
+    Parameters
+    ----------
+    truncation_sigma : float
+        Truncation :math:`n > 0`.
+
+    Returns
+    -------
+    lo, hi : float
+        For :math:`z < lo`, :math:`\Phi(z) < \Phi(-n)(1 - 10^{-6})`, so
+        :math:`\Phi(z) - \Phi(-n)` is negative whatever the round-off (relative
+        accuracy of :math:`\Phi` near 1e-15) and the clipped value is 0; for
+        :math:`z > hi`, :math:`\Phi(z) - \Phi(-n) > 1 - 2\Phi(-n) + 10^{-9}`, so the
+        clipped value is 1.  ``lo`` is :math:`-\infty` where :math:`\Phi(-n)` underflows,
+        ``hi`` is :math:`+\infty` where :math:`\Phi(-n) \le 2 \cdot 10^{-9}` (no upper
+        shortcut: the excess over 1 would be below the round-off).
+
+    Notes
+    -----
+    Bounds from the normal quantile function (``scipy.special.ndtri``) with margins
+    far above the round-off, so evaluating only inside the window changes no bit.
+    """
+    pn = float(ndtr(-truncation_sigma))
+    lo = float(ndtri(pn * (1.0 - 1e-6))) if pn > 0 else -np.inf
+    hi = float(-ndtri(pn - 1e-9)) if pn > 2e-9 else np.inf
+    return lo, hi
 
 
 def pair_index(mask):
@@ -129,6 +184,11 @@ def pair_index(mask):
         The sites the segments belong to.
     """
     site, rup = np.nonzero(mask)  # row-major: already sorted by site
+    return _pair_segments(site, rup)
+
+
+def _pair_segments(site, rup):
+    """Pairs sorted by site with the first pair and the owner of each site's segment."""
     if site.size == 0:
         return site, rup, np.zeros(0, dtype=np.intp), np.zeros(0, dtype=np.intp)
     change = np.flatnonzero(np.diff(site)) + 1
@@ -136,8 +196,39 @@ def pair_index(mask):
     return site, rup, starts, site[starts]
 
 
+#: Target (pair x level) values per pass of :func:`hazard_from_pairs`: the pass's work
+#: arrays (about 2 MB) stay in one core's L2 cache; a site with more pairs is one pass.
+CHUNK_VALUES = 1 << 16
+
+
+def site_chunks(starts, n_pairs, chunk):
+    """Passes of whole sites with at most ``chunk`` pairs each (one site per pass if larger).
+
+    Parameters
+    ----------
+    starts : ndarray of int
+        First pair of each site (:func:`pair_index`).
+    n_pairs : int
+    chunk : int
+        Pairs per pass.
+
+    Returns
+    -------
+    list of (lo, hi, first, last)
+        Sites ``lo:hi`` (indices into ``starts``) and their pairs ``first:last``.
+    """
+    seg_end = np.append(starts[1:], n_pairs)
+    out, lo = [], 0
+    while lo < len(starts):
+        first = int(starts[lo])
+        hi = max(int(np.searchsorted(seg_end, first + chunk, side="right")), lo + 1)
+        out.append((lo, hi, first, int(seg_end[hi - 1])))
+        lo = hi
+    return out
+
+
 def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with_pairs, n_sites,
-                      truncation_sigma=None, chunk=200_000):
+                      truncation_sigma=None, chunk=None):
     r"""Hazard curves [1/yr] of ``n_sites`` sites from per-pair ground-motion parameters.
 
     Parameters
@@ -151,8 +242,9 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
         Segments from :func:`pair_index`.
     n_sites : int
     truncation_sigma : float or None
-    chunk : int
-        Pairs evaluated per vectorised pass (bounds memory to chunk x n_levels).
+    chunk : int or None
+        Pairs evaluated per vectorised pass (whole sites; default :data:`CHUNK_VALUES`
+        values per pass).  Results do not depend on it.
 
     Returns
     -------
@@ -167,22 +259,18 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
     n_pairs = len(ln_median)
     if n_pairs == 0:
         return out
-    seg_end = np.append(starts[1:], n_pairs)
-    # process whole sites per chunk so each site's sum is complete; the rate-weighted sum
-    # over each site's pairs is one sparse (sites x pairs) product, a single pass in C
-    lo = 0
-    while lo < len(starts):
-        first = starts[lo]
-        hi = np.searchsorted(seg_end, first + chunk, side="right")
-        hi = max(hi, lo + 1)
-        last = seg_end[hi - 1]
-        p = exceedance_probability(ln_levels, ln_median[first:last], sigma[first:last], truncation_sigma)
-        lengths = seg_end[lo:hi] - starts[lo:hi]
-        rows = np.repeat(np.arange(hi - lo), lengths)
-        weights = sp.csr_matrix((pair_rate[first:last], (rows, np.arange(last - first))),
+    chunk = max(1, CHUNK_VALUES // n_lev) if chunk is None else chunk
+    passes = site_chunks(starts, n_pairs, chunk)
+    work = np.empty((max(last - first for _, _, first, last in passes), n_lev))
+    bounds = np.append(starts, n_pairs)
+    # whole sites per pass so each site's sum is complete; the rate-weighted sum over each
+    # site's pairs is one sparse (sites x pairs) product, a single pass in C
+    for lo, hi, first, last in passes:
+        p = exceedance_probability(ln_levels, ln_median[first:last], sigma[first:last], truncation_sigma,
+                                   out=work[:last - first])
+        weights = sp.csr_matrix((pair_rate[first:last], np.arange(last - first), bounds[lo:hi + 1] - first),
                                 shape=(hi - lo, last - first))
         out[sites_with_pairs[lo:hi]] = weights @ p
-        lo = hi
     return out
 
 
@@ -434,12 +522,20 @@ def _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, 
     from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
     from quakefolio.core.gmm import GmmInput
 
-    mask = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb", exact=True,
+    # candidates of the bounding-circle test, then the exact cut-off on their distances,
+    # computed once (the same pairs and values as site_rupture_mask(exact=True))
+    mask = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb", exact=False,
                              ref_lon=ref[0], ref_lat=ref[1])
-    site, rup, starts, owners = pair_index(mask)
+    site, rup = np.nonzero(mask)  # row-major: sorted by site
+    if site.size:
+        d = pair_distances(site_lon, site_lat, ruptures, site, rup, ref_lon=ref[0], ref_lat=ref[1])
+        near = ~(d["rjb_km"] > max_distance_km)
+        if not near.all():
+            site, rup = site[near], rup[near]
+            d = {key: value[near] for key, value in d.items()}
+    site, rup, starts, owners = _pair_segments(site, rup)
     if site.size == 0:
         return site, rup, starts, owners, None, None
-    d = pair_distances(site_lon, site_lat, ruptures, site, rup, ref_lon=ref[0], ref_lat=ref[1])
     inp = GmmInput(
         mag=ruptures.mag[rup], vs30_mps=site_vs30[site], rrup_km=d["rrup_km"], rjb_km=d["rjb_km"],
         rx_km=d["rx_km"], ry0_km=d["ry0_km"], ztor_km=ruptures.ztor_km[rup], zhyp_km=ruptures.zhyp_km[rup],

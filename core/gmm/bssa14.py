@@ -127,9 +127,12 @@ class Bssa14(VectorGmm):
 
         # PGA on the 760 m/s reference condition (Eq. 7 definition of PGA_r).
         pga_row = np.array([self._pga_row], dtype=np.intp)
-        pga_r = np.exp(self._reference_terms(inp, pga_row, mag, rjb, flags))
+        pga_terms = self._reference_terms(inp, pga_row, mag, rjb, flags)
+        pga_r = np.exp(pga_terms)
 
-        ln_y = self._reference_terms(inp, rows, mag, rjb, flags)
+        # the same terms for the requested rows (computed once when only PGA is asked)
+        only_pga = np.array_equal(rows, pga_row)
+        ln_y = pga_terms if only_pga else self._reference_terms(inp, rows, mag, rjb, flags)
 
         # Linear site term, Eq. 6.
         ln_flin = c("c") * np.log(np.minimum(vs30, c("V_c")) / c("V_ref"))
