@@ -46,6 +46,7 @@ from scipy.special import ndtr, ndtri
 
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.events.gmf import ln_im
+from quakefolio.core.pairs import block_pairs, pair_blocks, pair_segments, pair_values
 
 __all__ = [
     "exceedance_probability",
@@ -184,16 +185,7 @@ def pair_index(mask):
         The sites the segments belong to.
     """
     site, rup = np.nonzero(mask)  # row-major: already sorted by site
-    return _pair_segments(site, rup)
-
-
-def _pair_segments(site, rup):
-    """Pairs sorted by site with the first pair and the owner of each site's segment."""
-    if site.size == 0:
-        return site, rup, np.zeros(0, dtype=np.intp), np.zeros(0, dtype=np.intp)
-    change = np.flatnonzero(np.diff(site)) + 1
-    starts = np.concatenate([[0], change])
-    return site, rup, starts, site[starts]
+    return pair_segments(site, rup)
 
 
 #: Target (pair x level) values per pass of :func:`hazard_from_pairs`: the pass's work
@@ -516,54 +508,6 @@ def uniform_hazard_targets(levels, curves, return_periods_yr):
 
 # --- engine driver: sources + ground-motion models -> curves --------------------------------
 
-def _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region, z1p0_km=None,
-                 z2p5_km=None):
-    """Surviving (site, rupture) pairs of a block of sites and their GMM input."""
-    from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
-    from quakefolio.core.gmm import GmmInput
-
-    # candidates of the bounding-circle test, then the exact cut-off on their distances,
-    # computed once (the same pairs and values as site_rupture_mask(exact=True))
-    mask = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb", exact=False,
-                             ref_lon=ref[0], ref_lat=ref[1])
-    site, rup = np.nonzero(mask)  # row-major: sorted by site
-    if site.size:
-        d = pair_distances(site_lon, site_lat, ruptures, site, rup, ref_lon=ref[0], ref_lat=ref[1])
-        near = ~(d["rjb_km"] > max_distance_km)
-        if not near.all():
-            site, rup = site[near], rup[near]
-            d = {key: value[near] for key, value in d.items()}
-    site, rup, starts, owners = _pair_segments(site, rup)
-    if site.size == 0:
-        return site, rup, starts, owners, None, None
-    inp = GmmInput(
-        mag=ruptures.mag[rup], vs30_mps=site_vs30[site], rrup_km=d["rrup_km"], rjb_km=d["rjb_km"],
-        rx_km=d["rx_km"], ry0_km=d["ry0_km"], ztor_km=ruptures.ztor_km[rup], zhyp_km=ruptures.zhyp_km[rup],
-        dip_deg=ruptures.dip_deg[rup], rake_deg=ruptures.rake_deg[rup], width_km=ruptures.width_km[rup],
-        z1p0_km=None if z1p0_km is None else z1p0_km[site], z2p5_km=None if z2p5_km is None else z2p5_km[site],
-        region=region,
-    )
-    return site, rup, starts, owners, inp, d
-
-
-def _pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
-    """Blocks of sites with their surviving pairs: (slice, site, rupture, starts, owners, GMM input,
-    distances, pair rate); blocks without any pair are skipped.  ``ref`` defaults to the mean site
-    position, fixed for all blocks so results do not depend on the blocking."""
-    from quakefolio.core.sources.geometry import mean_position
-
-    lon = np.asarray(site_lon, dtype=float)
-    lat = np.asarray(site_lat, dtype=float)
-    vs30 = np.asarray(site_vs30, dtype=float)
-    ref = ref if ref is not None else mean_position(lon, lat)
-    for lo in range(0, len(lon), site_block):
-        blk = slice(lo, min(len(lon), lo + site_block))
-        site, rup, starts, owners, inp, d = _block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km,
-                                                         ref, region)
-        if inp is not None:
-            yield blk, site, rup, starts, owners, inp, d, ruptures.rate[rup]
-
-
 def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, levels_g, *, truncation_sigma=None,
                         max_distance_km=200.0, region="global", site_block=64, ref=None):
     r"""Hazard curves [1/yr] from a rupture set and ground-motion models.
@@ -601,13 +545,13 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     if np.any(np.diff(lnx) <= 0):
         raise ValueError("levels_g must be strictly increasing")
     out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
-    for blk, site, rup, starts, owners, inp, _, rate in _pair_blocks(
+    for blk, site, rup, starts, owners, inp, cells, _, rate in pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for g, gmm in enumerate(gmms):
-            res = gmm.evaluate(inp, list(ims))
+            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
             for i in range(len(ims)):
-                out[g, i, blk] = hazard_from_pairs(lnx, res.ln_median[i], res.sigma[i], rate, starts, owners, n_blk,
+                out[g, i, blk] = hazard_from_pairs(lnx, ln_median[i], sigma[i], rate, starts, owners, n_blk,
                                                    truncation_sigma)
     return out
 
@@ -639,14 +583,14 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
     n_t = ln_targets.shape[-1]
     out = np.zeros((len(ims), len(site_lon), n_t) + bins.shape)
     mom = np.zeros((len(ims), len(site_lon), n_t, len(DISAGG_MOMENTS)))
-    for blk, site, rup, starts, owners, inp, d, rate in _pair_blocks(
+    for blk, site, rup, starts, owners, inp, cells, d, rate in pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for gmm, w in zip(gmms, gmm_weights):
-            res = gmm.evaluate(inp, list(ims))
+            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
             for i in range(len(ims)):
                 c, m = disaggregation_from_pairs(
-                    ln_targets[i, blk], res.ln_median[i], res.sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
+                    ln_targets[i, blk], ln_median[i], sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
                     bins, n_blk, truncation_sigma, moments=True)
                 out[i, blk] += w * c
                 mom[i, blk] += w * m
@@ -660,7 +604,7 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     r"""Ln median [ln g], tau and phi [ln units] of every (model, IM, site, rupture).
 
     The (site, rupture) pairs within the integration distance and their ground-motion
-    model inputs are those of the classical engine (:func:`_block_pairs`, as used by
+    model inputs are those of the classical engine (:func:`quakefolio.core.pairs.block_pairs`, as used by
     :func:`compute_site_hazard`), for all sites at once.
 
     Parameters
@@ -690,7 +634,7 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     mu = np.full((len(gmms), n_im, len(site_lon), len(ruptures.mag)), -np.inf)
     tau = np.zeros_like(mu)
     phi = np.zeros_like(mu)
-    si, ri, _, _, inp, _ = _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
+    si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
     if inp is None:
         return mu, tau, phi
     for g in (range(len(gmms)) if evaluate is None else evaluate):
