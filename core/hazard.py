@@ -71,7 +71,7 @@ __all__ = [
 ]
 
 
-def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *, out=None):
+def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *, out=None, scratch=None):
     r"""P(IM > x) [-] for lognormal residuals, optionally truncated at ``truncation_sigma``.
 
     Parameters
@@ -85,6 +85,10 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *
     out : ndarray or None
         Float array of the output's shape to write into (a work buffer reused by the
         engine).
+    scratch : ndarray or None
+        Float array of at least (n_levels, n) for a 1-D ``ln_median`` of length n: the
+        standardised values are computed level by level there (long contiguous loops),
+        then copied; the same values.
 
     Returns
     -------
@@ -109,8 +113,15 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *
     zero = sd == 0
     any_zero = bool(zero.any())
     with np.errstate(divide="ignore", invalid="ignore"):
-        p = np.subtract(mu, lnx, out=out)  # -epsilon_x * sigma
-        p *= 1.0 / sd
+        if scratch is not None and mu.ndim == 2:
+            zt = scratch[:len(lnx), :mu.shape[0]]
+            np.subtract(mu[:, 0], lnx[:, None], out=zt)  # -epsilon_x * sigma, level by level
+            zt *= 1.0 / sd[:, 0]
+            p = np.empty(mu.shape[:1] + lnx.shape) if out is None else out
+            np.copyto(p, zt.T)
+        else:
+            p = np.subtract(mu, lnx, out=out)  # -epsilon_x * sigma
+            p *= 1.0 / sd
     if any_zero:
         p[...] = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
     if truncation_sigma is None:
@@ -254,12 +265,13 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
     chunk = max(1, CHUNK_VALUES // n_lev) if chunk is None else chunk
     passes = site_chunks(starts, n_pairs, chunk)
     work = np.empty((max(last - first for _, _, first, last in passes), n_lev))
+    scratch = np.empty(work.shape[::-1])
     bounds = np.append(starts, n_pairs)
     # whole sites per pass so each site's sum is complete; the rate-weighted sum over each
     # site's pairs is one sparse (sites x pairs) product, a single pass in C
     for lo, hi, first, last in passes:
         p = exceedance_probability(ln_levels, ln_median[first:last], sigma[first:last], truncation_sigma,
-                                   out=work[:last - first])
+                                   out=work[:last - first], scratch=scratch)
         weights = sp.csr_matrix((pair_rate[first:last], np.arange(last - first), bounds[lo:hi + 1] - first),
                                 shape=(hi - lo, last - first))
         out[sites_with_pairs[lo:hi]] = weights @ p

@@ -51,6 +51,18 @@ def pair_segments(site, rup):
 DENSE_SHARE = 0.5
 
 
+class _GridPairs(dict):
+    """Per-pair distances [km] read from the block grid on first use (row-major: the pairs' order)."""
+
+    def __init__(self, grid, cells):
+        super().__init__()
+        self._grid, self._cells = grid, cells
+
+    def __missing__(self, key):
+        value = self[key] = self._grid[key][self._cells]
+        return value
+
+
 def _surviving_pairs(site_lon, site_lat, ruptures, max_distance_km, ref):
     """Pairs within the cut-off, sorted by site: (site, rupture, starts, owners, distances, grid).
 
@@ -61,21 +73,22 @@ def _surviving_pairs(site_lon, site_lat, ruptures, max_distance_km, ref):
     """
     mask = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb", exact=False,
                              ref_lon=ref[0], ref_lat=ref[1])
-    site, rup = np.nonzero(mask)  # row-major: sorted by site
+    n_candidates = int(np.count_nonzero(mask))
     d = grid = None
-    if site.size:
-        if site.size >= DENSE_SHARE * mask.size:  # most of the grid: broadcast, no per-pair gathers
-            grid = rupture_distances(site_lon, site_lat, ruptures, ref_lon=ref[0], ref_lat=ref[1])
-            d = {key: value[mask] for key, value in grid.items()}
-        else:
+    if n_candidates >= DENSE_SHARE * mask.size and n_candidates:  # most of the grid: broadcast, no gathers
+        grid = rupture_distances(site_lon, site_lat, ruptures, ref_lon=ref[0], ref_lat=ref[1])
+        mask &= ~(grid["rjb_km"] > max_distance_km)
+        grid["pairs"] = mask
+        site, rup = np.nonzero(mask)  # row-major: sorted by site
+        d = _GridPairs(grid, mask)
+    else:
+        site, rup = np.nonzero(mask)
+        if site.size:
             d = pair_distances(site_lon, site_lat, ruptures, site, rup, ref_lon=ref[0], ref_lat=ref[1])
-        near = ~(d["rjb_km"] > max_distance_km)
-        if not near.all():
-            mask[site[~near], rup[~near]] = False
-            site, rup = site[near], rup[near]
-            d = {key: value[near] for key, value in d.items()}
-        if grid is not None:
-            grid["pairs"] = mask
+            near = ~(d["rjb_km"] > max_distance_km)
+            if not near.all():
+                site, rup = site[near], rup[near]
+                d = {key: value[near] for key, value in d.items()}
     site, rup, starts, owners = pair_segments(site, rup)
     return site, rup, starts, owners, d, grid
 
