@@ -66,8 +66,10 @@ import scipy.sparse as sp
 
 from quakefolio.core.events.gmf import cross_im_correlation_matrix
 from quakefolio.core.hazard import (
-    DISAGG_MOMENTS, DisaggBins, _pair_blocks, disaggregation_from_pairs, disaggregation_means, exceedance_probability,
+    DISAGG_MOMENTS, DisaggBins, disaggregation_from_pairs, disaggregation_means, exceedance_probability,
 )
+from quakefolio.core.pairs import block_pairs
+from quakefolio.core.sources.geometry import mean_position
 from quakefolio.core.ims import model_period, parse_im
 
 __all__ = [
@@ -168,6 +170,25 @@ def conditional_mean_spectrum(ln_target, ln_median, sigma, rho, conditioning):
     ln_cms = mu + r * eps[..., None] * sd
     conditional_sigma = sd * np.sqrt(1.0 - r * r)
     return eps, ln_cms, conditional_sigma
+
+
+def _per_pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
+    """Blocks of sites with their surviving (site, rupture) pairs and one GMM scenario per pair.
+
+    The pairs and inputs of the classical engine (:func:`quakefolio.core.pairs.block_pairs`),
+    with the projection's reference point fixed for all blocks (default: the mean site
+    position), so results do not depend on the blocking.  Yields
+    ``(slice, site, rupture, inp, distances, pair_rate)``; blocks without pairs are skipped.
+    """
+    lon = np.asarray(site_lon, dtype=float)
+    lat = np.asarray(site_lat, dtype=float)
+    vs30 = np.asarray(site_vs30, dtype=float)
+    ref = ref if ref is not None else mean_position(lon, lat)
+    for lo in range(0, len(lon), site_block):
+        blk = slice(lo, min(len(lon), lo + site_block))
+        site, rup, _, _, inp, d = block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km, ref, region)
+        if site.size:
+            yield blk, site, rup, inp, d, ruptures.rate[rup]
 
 
 def spectrum_sums_from_pairs(ln_targets, ln_median_cond, sigma_cond, pair_rate, pair_site, mag, dist_km, ln_median,
@@ -300,7 +321,7 @@ def compute_spectrum_sums(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_wei
     moments = np.zeros((len(cond), len(site_lon), n_t, len(DISAGG_MOMENTS)))
     sums = np.zeros((len(cond), len(site_lon), n_t, len(SPECTRUM_SUMS), len(ims)))
     chunk = max(1, _CHUNK_VALUES // max(1, len(ims)))
-    for blk, site, rup, _, _, inp, d, rate in _pair_blocks(
+    for blk, site, rup, inp, d, rate in _per_pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         targets = ln_targets[:, blk]

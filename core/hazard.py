@@ -42,14 +42,17 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.special import ndtr
+from scipy.special import ndtr, ndtri
 
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.events.gmf import ln_im
+from quakefolio.core.pairs import block_pairs, pair_blocks, pair_segments, pair_values
 
 __all__ = [
     "exceedance_probability",
+    "truncation_window",
     "pair_index",
+    "site_chunks",
     "hazard_from_pairs",
     "weighted_mean",
     "weighted_sum",
@@ -68,7 +71,7 @@ __all__ = [
 ]
 
 
-def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
+def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *, out=None, scratch=None):
     r"""P(IM > x) [-] for lognormal residuals, optionally truncated at ``truncation_sigma``.
 
     Parameters
@@ -79,6 +82,13 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     truncation_sigma : float or None
         Symmetric truncation :math:`n > 0` of the standard normal residual; None
         for no truncation.
+    out : ndarray or None
+        Float array of the output's shape to write into (a work buffer reused by the
+        engine).
+    scratch : ndarray or None
+        Float array of at least (n_levels, n) for a 1-D ``ln_median`` of length n: the
+        standardised values are computed level by level there (long contiguous loops),
+        then copied; the same values.
 
     Returns
     -------
@@ -88,7 +98,10 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     -----
     Module notes: :math:`[\Phi(-\varepsilon) - \Phi(-n)]/[1 - 2\Phi(-n)]`, clipped to
     [0, 1]; a zero sigma gives the step :math:`\mathbf{1}[\ln x < \mu]`.  Computed in
-    place on one array of the output's size (this is the hot loop of the engine).
+    place on one array of the output's size (this is the hot loop of the engine).  With
+    truncation, :math:`\Phi` is evaluated only inside the window where the result is
+    not exactly 0 or 1 (:func:`truncation_window`); outside it the clipped value is
+    written directly, so every value is bit for bit the one of the full evaluation.
     """
     mu = np.asarray(ln_median, dtype=float)[..., None]
     sd = np.asarray(sigma, dtype=float)[..., None]
@@ -100,17 +113,71 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     zero = sd == 0
     any_zero = bool(zero.any())
     with np.errstate(divide="ignore", invalid="ignore"):
-        p = np.subtract(mu, lnx)  # -epsilon_x * sigma
-        p *= 1.0 / sd
+        if scratch is not None and mu.ndim == 2:
+            zt = scratch[:len(lnx), :mu.shape[0]]
+            np.subtract(mu[:, 0], lnx[:, None], out=zt)  # -epsilon_x * sigma, level by level
+            zt *= 1.0 / sd[:, 0]
+            p = np.empty(mu.shape[:1] + lnx.shape) if out is None else out
+            np.copyto(p, zt.T)
+        else:
+            p = np.subtract(mu, lnx, out=out)  # -epsilon_x * sigma
+            p *= 1.0 / sd
     if any_zero:
-        p = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
-    ndtr(p, out=p)
-    if truncation_sigma is not None:
-        pn = ndtr(-truncation_sigma)
-        p -= pn
-        p *= 1.0 / (1.0 - 2.0 * pn)
-        np.clip(p, 0.0, 1.0, out=p)
+        p[...] = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
+    if truncation_sigma is None:
+        ndtr(p, out=p)
+        return p
+    pn = ndtr(-truncation_sigma)
+    lo, hi = truncation_window(truncation_sigma)
+    above = p > hi
+    outside = p < lo
+    outside |= above  # NaN stays inside (evaluated, stays NaN)
+    if not outside.any():
+        return _truncated(p, pn)
+    inside = ~outside
+    values = _truncated(p[inside], pn)  # (scipy's ufuncs are not called with where=: wrong values)
+    np.copyto(p, above)  # exactly 1 above the window, 0 below it
+    p[inside] = values
     return p
+
+
+def _truncated(z, pn):
+    """In place: clip((Phi(z) - pn) / (1 - 2 pn), 0, 1), the truncated exceedance."""
+    ndtr(z, out=z)
+    z -= pn
+    z *= 1.0 / (1.0 - 2.0 * pn)
+    np.clip(z, 0.0, 1.0, out=z)
+    return z
+
+
+def truncation_window(truncation_sigma):
+    r"""Standardised bounds [-] outside which the truncated exceedance is exactly 0 or 1.
+
+    Parameters
+    ----------
+    truncation_sigma : float
+        Truncation :math:`n > 0`.
+
+    Returns
+    -------
+    lo, hi : float
+        For :math:`z < lo`, :math:`\Phi(z) < \Phi(-n)(1 - 10^{-6})`, so
+        :math:`\Phi(z) - \Phi(-n)` is negative whatever the round-off (relative
+        accuracy of :math:`\Phi` near 1e-15) and the clipped value is 0; for
+        :math:`z > hi`, :math:`\Phi(z) - \Phi(-n) > 1 - 2\Phi(-n) + 10^{-9}`, so the
+        clipped value is 1.  ``lo`` is :math:`-\infty` where :math:`\Phi(-n)` underflows,
+        ``hi`` is :math:`+\infty` where :math:`\Phi(-n) \le 2 \cdot 10^{-9}` (no upper
+        shortcut: the excess over 1 would be below the round-off).
+
+    Notes
+    -----
+    Bounds from the normal quantile function (``scipy.special.ndtri``) with margins
+    far above the round-off, so evaluating only inside the window changes no bit.
+    """
+    pn = float(ndtr(-truncation_sigma))
+    lo = float(ndtri(pn * (1.0 - 1e-6))) if pn > 0 else -np.inf
+    hi = float(-ndtri(pn - 1e-9)) if pn > 2e-9 else np.inf
+    return lo, hi
 
 
 def pair_index(mask):
@@ -129,15 +196,42 @@ def pair_index(mask):
         The sites the segments belong to.
     """
     site, rup = np.nonzero(mask)  # row-major: already sorted by site
-    if site.size == 0:
-        return site, rup, np.zeros(0, dtype=np.intp), np.zeros(0, dtype=np.intp)
-    change = np.flatnonzero(np.diff(site)) + 1
-    starts = np.concatenate([[0], change])
-    return site, rup, starts, site[starts]
+    return pair_segments(site, rup)
+
+
+#: Target (pair x level) values per pass of :func:`hazard_from_pairs`: the pass's work
+#: arrays (about 2 MB) stay in one core's L2 cache; a site with more pairs is one pass.
+CHUNK_VALUES = 1 << 16
+
+
+def site_chunks(starts, n_pairs, chunk):
+    """Passes of whole sites with at most ``chunk`` pairs each (one site per pass if larger).
+
+    Parameters
+    ----------
+    starts : ndarray of int
+        First pair of each site (:func:`pair_index`).
+    n_pairs : int
+    chunk : int
+        Pairs per pass.
+
+    Returns
+    -------
+    list of (lo, hi, first, last)
+        Sites ``lo:hi`` (indices into ``starts``) and their pairs ``first:last``.
+    """
+    seg_end = np.append(starts[1:], n_pairs)
+    out, lo = [], 0
+    while lo < len(starts):
+        first = int(starts[lo])
+        hi = max(int(np.searchsorted(seg_end, first + chunk, side="right")), lo + 1)
+        out.append((lo, hi, first, int(seg_end[hi - 1])))
+        lo = hi
+    return out
 
 
 def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with_pairs, n_sites,
-                      truncation_sigma=None, chunk=200_000):
+                      truncation_sigma=None, chunk=None):
     r"""Hazard curves [1/yr] of ``n_sites`` sites from per-pair ground-motion parameters.
 
     Parameters
@@ -151,8 +245,9 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
         Segments from :func:`pair_index`.
     n_sites : int
     truncation_sigma : float or None
-    chunk : int
-        Pairs evaluated per vectorised pass (bounds memory to chunk x n_levels).
+    chunk : int or None
+        Pairs evaluated per vectorised pass (whole sites; default :data:`CHUNK_VALUES`
+        values per pass).  Results do not depend on it.
 
     Returns
     -------
@@ -167,22 +262,19 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
     n_pairs = len(ln_median)
     if n_pairs == 0:
         return out
-    seg_end = np.append(starts[1:], n_pairs)
-    # process whole sites per chunk so each site's sum is complete; the rate-weighted sum
-    # over each site's pairs is one sparse (sites x pairs) product, a single pass in C
-    lo = 0
-    while lo < len(starts):
-        first = starts[lo]
-        hi = np.searchsorted(seg_end, first + chunk, side="right")
-        hi = max(hi, lo + 1)
-        last = seg_end[hi - 1]
-        p = exceedance_probability(ln_levels, ln_median[first:last], sigma[first:last], truncation_sigma)
-        lengths = seg_end[lo:hi] - starts[lo:hi]
-        rows = np.repeat(np.arange(hi - lo), lengths)
-        weights = sp.csr_matrix((pair_rate[first:last], (rows, np.arange(last - first))),
+    chunk = max(1, CHUNK_VALUES // n_lev) if chunk is None else chunk
+    passes = site_chunks(starts, n_pairs, chunk)
+    work = np.empty((max(last - first for _, _, first, last in passes), n_lev))
+    scratch = np.empty(work.shape[::-1])
+    bounds = np.append(starts, n_pairs)
+    # whole sites per pass so each site's sum is complete; the rate-weighted sum over each
+    # site's pairs is one sparse (sites x pairs) product, a single pass in C
+    for lo, hi, first, last in passes:
+        p = exceedance_probability(ln_levels, ln_median[first:last], sigma[first:last], truncation_sigma,
+                                   out=work[:last - first], scratch=scratch)
+        weights = sp.csr_matrix((pair_rate[first:last], np.arange(last - first), bounds[lo:hi + 1] - first),
                                 shape=(hi - lo, last - first))
         out[sites_with_pairs[lo:hi]] = weights @ p
-        lo = hi
     return out
 
 
@@ -428,46 +520,6 @@ def uniform_hazard_targets(levels, curves, return_periods_yr):
 
 # --- engine driver: sources + ground-motion models -> curves --------------------------------
 
-def _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region, z1p0_km=None,
-                 z2p5_km=None):
-    """Surviving (site, rupture) pairs of a block of sites and their GMM input."""
-    from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
-    from quakefolio.core.gmm import GmmInput
-
-    mask = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb", exact=True,
-                             ref_lon=ref[0], ref_lat=ref[1])
-    site, rup, starts, owners = pair_index(mask)
-    if site.size == 0:
-        return site, rup, starts, owners, None, None
-    d = pair_distances(site_lon, site_lat, ruptures, site, rup, ref_lon=ref[0], ref_lat=ref[1])
-    inp = GmmInput(
-        mag=ruptures.mag[rup], vs30_mps=site_vs30[site], rrup_km=d["rrup_km"], rjb_km=d["rjb_km"],
-        rx_km=d["rx_km"], ry0_km=d["ry0_km"], ztor_km=ruptures.ztor_km[rup], zhyp_km=ruptures.zhyp_km[rup],
-        dip_deg=ruptures.dip_deg[rup], rake_deg=ruptures.rake_deg[rup], width_km=ruptures.width_km[rup],
-        z1p0_km=None if z1p0_km is None else z1p0_km[site], z2p5_km=None if z2p5_km is None else z2p5_km[site],
-        region=region,
-    )
-    return site, rup, starts, owners, inp, d
-
-
-def _pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
-    """Blocks of sites with their surviving pairs: (slice, site, rupture, starts, owners, GMM input,
-    distances, pair rate); blocks without any pair are skipped.  ``ref`` defaults to the mean site
-    position, fixed for all blocks so results do not depend on the blocking."""
-    from quakefolio.core.sources.geometry import mean_position
-
-    lon = np.asarray(site_lon, dtype=float)
-    lat = np.asarray(site_lat, dtype=float)
-    vs30 = np.asarray(site_vs30, dtype=float)
-    ref = ref if ref is not None else mean_position(lon, lat)
-    for lo in range(0, len(lon), site_block):
-        blk = slice(lo, min(len(lon), lo + site_block))
-        site, rup, starts, owners, inp, d = _block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km,
-                                                         ref, region)
-        if inp is not None:
-            yield blk, site, rup, starts, owners, inp, d, ruptures.rate[rup]
-
-
 def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, levels_g, *, truncation_sigma=None,
                         max_distance_km=200.0, region="global", site_block=64, ref=None):
     r"""Hazard curves [1/yr] from a rupture set and ground-motion models.
@@ -505,13 +557,13 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     if np.any(np.diff(lnx) <= 0):
         raise ValueError("levels_g must be strictly increasing")
     out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
-    for blk, site, rup, starts, owners, inp, _, rate in _pair_blocks(
+    for blk, site, rup, starts, owners, inp, cells, _, rate in pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for g, gmm in enumerate(gmms):
-            res = gmm.evaluate(inp, list(ims))
+            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
             for i in range(len(ims)):
-                out[g, i, blk] = hazard_from_pairs(lnx, res.ln_median[i], res.sigma[i], rate, starts, owners, n_blk,
+                out[g, i, blk] = hazard_from_pairs(lnx, ln_median[i], sigma[i], rate, starts, owners, n_blk,
                                                    truncation_sigma)
     return out
 
@@ -543,14 +595,14 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
     n_t = ln_targets.shape[-1]
     out = np.zeros((len(ims), len(site_lon), n_t) + bins.shape)
     mom = np.zeros((len(ims), len(site_lon), n_t, len(DISAGG_MOMENTS)))
-    for blk, site, rup, starts, owners, inp, d, rate in _pair_blocks(
+    for blk, site, rup, starts, owners, inp, cells, d, rate in pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for gmm, w in zip(gmms, gmm_weights):
-            res = gmm.evaluate(inp, list(ims))
+            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
             for i in range(len(ims)):
                 c, m = disaggregation_from_pairs(
-                    ln_targets[i, blk], res.ln_median[i], res.sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
+                    ln_targets[i, blk], ln_median[i], sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
                     bins, n_blk, truncation_sigma, moments=True)
                 out[i, blk] += w * c
                 mom[i, blk] += w * m
@@ -564,7 +616,7 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     r"""Ln median [ln g], tau and phi [ln units] of every (model, IM, site, rupture).
 
     The (site, rupture) pairs within the integration distance and their ground-motion
-    model inputs are those of the classical engine (:func:`_block_pairs`, as used by
+    model inputs are those of the classical engine (:func:`quakefolio.core.pairs.block_pairs`, as used by
     :func:`compute_site_hazard`), for all sites at once.
 
     Parameters
@@ -599,7 +651,7 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     mu = np.full((len(gmms), n_im, len(site_lon), len(ruptures.mag)), -np.inf)
     tau = np.zeros_like(mu)
     phi = np.zeros_like(mu)
-    si, ri, _, _, inp, _ = _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
+    si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
     if inp is None:
         return mu, tau, phi
     for g in (range(len(gmms)) if evaluate is None else evaluate):

@@ -79,6 +79,15 @@ def _as_float_array(name: str, value: ArrayLike) -> FloatArray:
     return arr
 
 
+def _within(arr: FloatArray, bounds: tuple) -> bool:
+    """True if every value lies within ``bounds`` (False for any NaN: min and max propagate it)."""
+    if arr.size == 0:
+        return True
+    low, low_in, high, high_in = bounds
+    lo, hi = arr.min(), arr.max()
+    return bool((lo >= low if low_in else lo > low) and (hi <= high if high_in else hi < high))
+
+
 def _require(name: str, arr: FloatArray, ok: NDArray[np.bool_], constraint: str) -> None:
     if not np.all(ok):
         bad = np.argwhere(~ok)[0]
@@ -207,6 +216,26 @@ class GmmInput:
         "vs30_measured": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
     }
 
+    #: per field: open or closed bounds (low, low included, high, high included) that
+    #: every value meets when the field has no NaN: the predicate's set without NaN, checked
+    #: with two reductions; the predicate itself runs only when this quick test fails
+    _BOUNDS: ClassVar[dict] = {
+        "mag": (-np.inf, False, np.inf, False),
+        "vs30_mps": (0.0, False, np.inf, False),
+        "rrup_km": (0.0, True, np.inf, False),
+        "rjb_km": (0.0, True, np.inf, False),
+        "rx_km": (-np.inf, False, np.inf, False),
+        "ry0_km": (0.0, True, np.inf, False),
+        "ztor_km": (0.0, True, np.inf, False),
+        "zhyp_km": (0.0, True, np.inf, False),
+        "dip_deg": (0.0, False, 90.0, True),
+        "rake_deg": (-180.0, True, 180.0, True),
+        "width_km": (0.0, False, np.inf, False),
+        "z1p0_km": (0.0, True, np.inf, False),
+        "z2p5_km": (0.0, True, np.inf, False),
+        "rhyp_km": (0.0, True, np.inf, False),
+    }
+
     def __post_init__(self) -> None:
         shapes = []
         for f in fields(self):
@@ -216,11 +245,13 @@ class GmmInput:
             if value is None:
                 continue
             arr = _as_float_array(f.name, value)
-            text, predicate, nan_ok = self._CONSTRAINTS[f.name]
-            ok = predicate(arr)
-            if nan_ok:
-                ok = ok | np.isnan(arr)
-            _require(f.name, arr, np.asarray(ok), text)
+            bounds = self._BOUNDS.get(f.name)  # None: a set that is no interval (0 or 1): always the full check
+            if bounds is None or not _within(arr, bounds):  # a NaN or a value out of bounds: the full check
+                text, predicate, nan_ok = self._CONSTRAINTS[f.name]
+                ok = predicate(arr)
+                if nan_ok:
+                    ok = ok | np.isnan(arr)
+                _require(f.name, arr, np.asarray(ok), text)
             arr.setflags(write=False)
             object.__setattr__(self, f.name, arr)
             shapes.append(arr.shape)
@@ -254,6 +285,25 @@ class GmmInput:
         if value is None:
             raise ValueError(f"{model} requires GmmInput.{name}; it is None")
         return np.broadcast_to(value, self.shape)
+
+    def compact_field(self, name: str, model: str) -> FloatArray:
+        """Field ``name`` as given, with :attr:`shape`'s number of axes but not broadcast.
+
+        A field that varies along some axes only (e.g. per rupture on a (site, rupture)
+        grid) keeps length 1 on the others, so terms that depend on it alone are computed
+        once per distinct value; element by element the values are those of :meth:`field`.
+
+        Parameters
+        ----------
+        name : str
+            Field name, e.g. ``"mag"``.
+        model : str
+            Name of the model asking (used in the error message).
+        """
+        value = getattr(self, name)
+        if value is None:
+            raise ValueError(f"{model} requires GmmInput.{name}; it is None")
+        return value.reshape((1,) * (len(self.shape) - value.ndim) + value.shape)
 
     def optional_field(self, name: str) -> FloatArray | None:
         """Field ``name`` broadcast to :attr:`shape`, or ``None`` if not given."""
@@ -569,7 +619,11 @@ class VectorGmm:
         hi_idx = np.array([position[hi] for _, hi, _ in plan], dtype=np.intp)
         weight = np.array([w for _, _, w in plan]).reshape((len(plan),) + (1,) * len(inp.shape))
 
+        exact = np.array_equal(lo_idx, hi_idx)  # tabulated periods only: every weight is 0
+
         def interp(values: FloatArray) -> FloatArray:
+            if exact and not np.isinf(values).any():
+                return values[lo_idx]  # (1 - 0) v + 0 v is v itself for finite v (and NaN)
             return (1.0 - weight) * values[lo_idx] + weight * values[hi_idx]
 
         return GmmResult(
