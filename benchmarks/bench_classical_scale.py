@@ -5,7 +5,9 @@ Run: ``python benchmarks/bench_classical_scale.py [--assets N] [--repeat K] [--f
 The case (invented): the demo's tabulated hazard curves (81 sites, 3 IMs, 40 levels), its
 fragility library (7 classes in use) and its tabulated-hazard config, with the demo's
 480 buildings repeated to ``N`` (default 10^6) rows: ids ``B0000001`` ..., positions moved
-by up to about 200 m (seeded), every other column copied.  The run is the CLI's
+by up to about 200 m and its money columns (value, deductible, limit, contents, interruption) scaled
+by a lognormal factor of 20% per row (seeded, so no two buildings repeat the same work), every
+other column copied.  The run is the CLI's
 ``quakefolio run CONFIG --no-flow --quiet`` (``--flow``: the Prefect flow path instead),
 report included, each repetition in a fresh output folder (nothing cached), in a
 subprocess under ``/usr/bin/time -v``.  Printed: the wall time and maximum resident set
@@ -49,15 +51,22 @@ def build_case(folder, n_assets):
     rng = np.random.default_rng(SEED)
     lon = np.array([float(r["lon"]) for r in demo])[pick] + rng.uniform(-JITTER_DEG, JITTER_DEG, n_assets)
     lat = np.array([float(r["lat"]) for r in demo])[pick] + rng.uniform(-JITTER_DEG, JITTER_DEG, n_assets)
-    rest = [c for c in columns if c not in ("asset_id", "lon", "lat")]
+    # every building its own value: the demo's money columns scaled by one factor per row (invented)
+    scale = np.exp(0.2 * rng.standard_normal(n_assets))
+    money = [c for c in ("replacement_value", "deductible", "limit", "contents_value", "interruption_value_per_day")
+             if c in columns]
+    rest = [c for c in columns if c not in ("asset_id", "lon", "lat", *money)]
     tails = [",".join(r[c] for c in rest) for r in demo]
+    amounts = {c: np.array([float(r[c]) if r[c] else np.nan for r in demo]) for c in money}
     with open(folder / "exposure.csv", "w", encoding="utf-8") as fh:
-        fh.write(",".join(["asset_id", "lon", "lat", *rest]) + "\n")
+        fh.write(",".join(["asset_id", "lon", "lat", *money, *rest]) + "\n")
         step = 100_000
         for start in range(0, n_assets, step):
-            stop = min(start + step, n_assets)
-            fh.write("".join(f"B{i + 1:07d},{lon[i]:.5f},{lat[i]:.5f},{tails[pick[i]]}\n"
-                             for i in range(start, stop)))
+            rows = range(start, min(start + step, n_assets))
+            cols = {c: np.round(amounts[c][pick[start:rows.stop]] * scale[start:rows.stop]) for c in money}
+            text = {c: np.where(np.isnan(v), "", np.char.mod("%.0f", np.nan_to_num(v))) for c, v in cols.items()}
+            fh.write("".join(f"B{i + 1:07d},{lon[i]:.5f},{lat[i]:.5f},"
+                             + ",".join(text[c][i - start] for c in money) + f",{tails[pick[i]]}\n" for i in rows))
     return folder / "quakefolio_tabulated.toml"
 
 

@@ -97,17 +97,19 @@ def _regular_lines(raw):
     """
     if not raw or raw.startswith(_BOM) or b'"' in raw:
         return None
-    n_nl, n_cr = raw.count(b"\n"), raw.count(b"\r")
-    if n_cr != raw.count(b"\r\n"):
-        return None  # a lone carriage return ends a line for some parsers and not others
     buf = np.frombuffer(raw, dtype=np.uint8)
-    if int(np.count_nonzero(buf < 32)) != n_nl + n_cr + raw.count(b"\t"):
+    where = np.flatnonzero(buf < 32)  # line ends, tabs and any other control byte
+    ctrl = buf[where]
+    if not np.all((ctrl == _NL) | (ctrl == _CR) | (ctrl == _TAB)):
         return None  # NUL or another control character: the general reader decides
-    ends = np.flatnonzero(buf == _NL)
+    cr = where[ctrl == _CR]
+    if len(cr) and (cr[-1] + 1 >= len(buf) or not np.all(buf[cr + 1] == _NL)):
+        return None  # a lone carriage return ends a line for some parsers and not others
+    ends = where[ctrl == _NL]
     starts = np.concatenate(([0], ends + 1))
     stops = np.concatenate((ends, [len(buf)]))
     length = stops - starts
-    if n_cr:
+    if len(cr):
         length = length - (buf[np.maximum(stops - 1, 0)] == _CR) * (length > 0)
     if length[0] == 0:
         return None  # blank lines before the header: the general reader decides
