@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import platform
+import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
 from importlib import metadata
@@ -401,8 +402,9 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     """Assemble every table, write the run folder atomically, return its path.
 
     The manifest's ``timings_s`` holds the wall time [s] of every stage: ``ingest_s``
-    (reading and checking the inputs), the computing stages, ``store_s`` (tables and
-    manifest), ``report_s`` and ``total_s`` (ingest to the committed folder).
+    (reading and checking the inputs), the computing stages, ``store_s`` (the tables),
+    ``report_s`` (drawn from the tables in memory while they are written, so it overlaps
+    ``store_s``) and ``total_s`` (ingest to the committed folder).
 
     Parameters
     ----------
@@ -443,22 +445,57 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     provenance = {"run_id": run_id, "inputs_sha256": inputs.inputs_sha256,
                   "quakefolio_version": package_versions()["quakefolio"], "currency": currency, "caution": CAUTION}
     try:
-        _write_tables(writer, frames, currency, provenance, cfg.execution.max_workers)
-        timings = dict(timings or {}, store_s=time.perf_counter() - t0)
+        timings = dict(timings or {})
         manifest = _manifest(inputs, run_id, "hazard" if damage is None else "all", events, counts, timings, writer,
                              frames, warnings)
+        report = None
+        if cfg.output.report:  # drawn from the tables in memory while they are written (the manifest it shows
+            _write_manifest(writer, manifest, timings, started)  # lacks the row counts and the store's time)
+            report = _ReportThread(writer.partial, frames)
+            report.start()
+        try:
+            _write_tables(writer, frames, currency, provenance, cfg.execution.max_workers)
+        finally:
+            if report is not None:
+                report.join()
+        timings["store_s"] = time.perf_counter() - t0
+        if report is not None:
+            report.result()
+            timings["report_s"] = report.seconds
+        manifest["row_counts"] = dict(writer.row_counts)
         _write_manifest(writer, manifest, timings, started)
-        if cfg.output.report:
-            from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
-
-            t1 = time.perf_counter()
-            write_report(writer.partial, writer.partial / "report.html", tables=frames)  # tables just written
-            timings["report_s"] = time.perf_counter() - t1
-            _write_manifest(writer, manifest, timings, started)  # again, with the report's time
         return writer.commit()
     except BaseException:
         writer.abort()
         raise
+
+
+class _ReportThread(threading.Thread):
+    """Writes the report of a partial run folder from the tables in memory, in its own thread.
+
+    Parquet encoding (in the store's threads) runs outside the GIL while the report's figures
+    are drawn; :meth:`result` raises what the report raised.
+    """
+
+    def __init__(self, folder, frames):
+        super().__init__(name="quakefolio-report", daemon=True)
+        self.folder, self.frames = folder, frames
+        self.error, self.seconds = None, 0.0
+
+    def run(self):
+        from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
+
+        t = time.perf_counter()
+        try:
+            write_report(self.folder, self.folder / "report.html", tables=self.frames)
+        except BaseException as exc:  # noqa: BLE001 - handed to the writing thread by result()
+            self.error = exc
+        self.seconds = time.perf_counter() - t
+
+    def result(self):
+        """Raise the report's error, if any."""
+        if self.error is not None:
+            raise self.error
 
 
 def _write_tables(writer, frames, currency, provenance, workers):

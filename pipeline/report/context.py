@@ -56,6 +56,20 @@ class ReportRun(RunFolder):
         super().__init__(path)
         self._memory = dict(tables or {})
 
+    def has(self, name):
+        """Whether the run holds the table (in memory or in the folder).
+
+        Parameters
+        ----------
+        name : str
+            Table name without ``.parquet``.
+
+        Returns
+        -------
+        bool
+        """
+        return name in self._memory or super().has(name)
+
     def table(self, name, columns=None):
         """The table (or some of its columns) as a DataFrame, or None when the run has no such table.
 
