@@ -11,7 +11,9 @@ from __future__ import annotations
 
 import json
 import platform
+import threading
 import time
+from concurrent.futures import ThreadPoolExecutor
 from importlib import metadata
 
 from quakefolio.core.errors import InputError
@@ -336,9 +338,11 @@ def execute(inputs, executor, *, stages_to_run="all"):
     Path
         The run folder.
     """
+    started = time.perf_counter()
     executor.config_path = str(inputs.config.path)
     prepare_output_folder(inputs.config.output.folder)  # checked again, created and marked before any write
     clock, counts = _Clock(), CacheCounts()
+    clock.timings.update(getattr(inputs, "timings", None) or {})  # ingest_s: reading and checking the inputs
     damage = events = extra = None
     ref = blocks.register(inputs)
     with blocks.work_folder(inputs) as work:
@@ -352,7 +356,7 @@ def execute(inputs, executor, *, stages_to_run="all"):
             counts += c
             extra, c = run_whatif(inputs, damage, events, em, executor, clock)
             counts += c
-        return executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts)
+        return executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts, started)
 
 
 def _hazard_frames(inputs):
@@ -404,8 +408,13 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
     return manifest
 
 
-def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None):
+def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None, started=None):
     """Assemble every table, write the run folder atomically, return its path.
+
+    The manifest's ``timings_s`` holds the wall time [s] of every stage: ``ingest_s``
+    (reading and checking the inputs), the computing stages, ``store_s`` (the tables),
+    ``report_s`` (drawn from the tables in memory while they are written, so it overlaps
+    ``store_s``) and ``total_s`` (ingest to the committed folder).
 
     Parameters
     ----------
@@ -419,6 +428,8 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         Screening and what-if tables.
     timings : dict stage -> seconds
     counts : CacheCounts or None
+    started : float or None
+        ``time.perf_counter()`` when the run's stages started (for ``total_s``).
 
     Returns
     -------
@@ -444,21 +455,91 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     provenance = {"run_id": run_id, "inputs_sha256": inputs.inputs_sha256,
                   "quakefolio_version": package_versions()["quakefolio"], "currency": currency, "caution": CAUTION}
     try:
-        for name, frame in frames.items():
-            writer.write_table(name, frame, units=units_for(name, currency), description=TABLES[name]["description"],
-                               provenance=provenance)
-        timings = dict(timings or {}, store_s=time.perf_counter() - t0)
+        timings = dict(timings or {})
         manifest = _manifest(inputs, run_id, "hazard" if damage is None else "all", events, counts, timings, writer,
                              frames, warnings)
-        writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
-        if cfg.output.report:
-            from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
-
-            write_report(writer.partial, writer.partial / "report.html")
+        report = None
+        if cfg.output.report:  # drawn from the tables in memory while they are written (the manifest it shows
+            _write_manifest(writer, manifest, timings, started)  # lacks the row counts and the store's time)
+            report = _ReportThread(writer.partial, frames)
+            report.start()
+        try:
+            _write_tables(writer, frames, currency, provenance, cfg.execution.max_workers)
+        finally:
+            if report is not None:
+                report.join()
+        timings["store_s"] = time.perf_counter() - t0
+        if report is not None:
+            report.result()
+            timings["report_s"] = report.seconds
+        manifest["row_counts"] = dict(writer.row_counts)
+        _write_manifest(writer, manifest, timings, started)
         return writer.commit()
     except BaseException:
         writer.abort()
         raise
+
+
+class _ReportThread(threading.Thread):
+    """Writes the report of a partial run folder from the tables in memory, in its own thread.
+
+    Parquet encoding (in the store's threads) runs outside the GIL while the report's figures
+    are drawn; :meth:`result` raises what the report raised.
+    """
+
+    def __init__(self, folder, frames):
+        super().__init__(name="quakefolio-report", daemon=True)
+        self.folder, self.frames = folder, frames
+        self.error, self.seconds = None, 0.0
+
+    def run(self):
+        from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
+
+        t = time.perf_counter()
+        try:
+            write_report(self.folder, self.folder / "report.html", tables=self.frames)
+        except BaseException as exc:  # noqa: BLE001 - handed to the writing thread by result()
+            self.error = exc
+        self.seconds = time.perf_counter() - t
+
+    def result(self):
+        """Raise the report's error, if any."""
+        if self.error is not None:
+            raise self.error
+
+
+def _write_tables(writer, frames, currency, provenance, workers):
+    """Write every table, ``workers`` at a time (Parquet encoding and compression run outside the GIL).
+
+    Every file is written whole by one thread; an error is raised once every write has
+    ended (the caller then removes the partial folder).
+    """
+    def write(name, frame):
+        writer.write_table(name, frame, units=units_for(name, currency, _column_names(frame)),
+                           description=TABLES[name]["description"], provenance=provenance)
+
+    with ThreadPoolExecutor(max_workers=max(1, int(workers)), thread_name_prefix="quakefolio-store") as pool:
+        futures = [pool.submit(write, name, frame) for name, frame in frames.items()]
+        for future in futures:
+            future.result()
+
+
+def _column_names(frame):
+    """Column names of a DataFrame, Arrow table or ChunkedTable."""
+    if hasattr(frame, "column_names"):
+        return list(frame.column_names)
+    if hasattr(frame, "schema"):
+        return list(frame.schema.names)
+    return [str(c) for c in frame.columns]
+
+
+def _write_manifest(writer, manifest, timings, started):
+    """Write ``manifest.json`` with ``timings_s`` rounded to 0.1 ms (and ``total_s`` when ``started`` is known)."""
+    timings = dict(timings)
+    if started is not None:
+        timings["total_s"] = timings.get("ingest_s", 0.0) + time.perf_counter() - started
+    manifest["timings_s"] = {k: round(v, 4) for k, v in timings.items()}
+    writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
 
 
 def run_pure(config_path, stages_to_run="all"):

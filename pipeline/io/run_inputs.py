@@ -34,10 +34,10 @@ FRAGILITY_COLUMNS = ("building_class", "description", "im", "damage_state", "dam
 
 def _asset_frame(exposure):
     """The exposure contract's columns of a validated exposure frame (missing optional ones as NaN)."""
-    out = pd.DataFrame({"asset_id": exposure["asset_id"].astype(str).to_numpy(dtype=object)})
+    out = pd.DataFrame({"asset_id": exposure["asset_id"].astype(str).array})  # text stays in Arrow
     for col in ASSET_COLUMNS[1:]:
         if col == "building_class":
-            out[col] = exposure[col].astype(str).to_numpy(dtype=object)
+            out[col] = exposure[col].astype(str).array
         elif col in exposure.columns:
             out[col] = exposure[col].to_numpy(dtype=float)
         else:
@@ -90,7 +90,7 @@ def run_input_frames(exposure, library, classes=None):
         (float64), so :func:`library_from_frame` restores the classes exactly.
     """
     if classes is None:
-        classes = sorted(set(exposure["building_class"].astype(str)))
+        classes = sorted(set(exposure["building_class"].astype(str).unique()))
     return {"run_assets": _asset_frame(exposure), "run_fragility": _fragility_frame(library, list(classes))}
 
 

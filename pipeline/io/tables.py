@@ -69,9 +69,11 @@ TABLES = {
         units={"eal": "{currency}/yr", "eal_ratio": "1/yr"},
     ),
     "asset_loss_curve": dict(
-        description="Per asset: annual rate at which the loss exceeds each loss ratio (beta-distributed "
-                    "loss ratio per damage state).",
-        units={"loss_ratio": "-", "loss": "{currency}", "annual_rate_exceed": "1/yr"},
+        description="Per asset (one row each, exposure order): its replacement value and the annual rate at which "
+                    "its loss ratio exceeds each configured loss ratio ([output] loss_curve_ratios), one column "
+                    "annual_rate_exceed_lr_<ratio> per ratio (beta-distributed loss ratio per damage state); the loss "
+                    "at a ratio is ratio x replacement_value.",
+        units={"replacement_value": "{currency}", "annual_rate_exceed_lr_*": "1/yr"},
     ),
     "change_assets": dict(
         description="Change report, per asset of the union of two runs (A, B): status (added, removed, kept), "
@@ -396,8 +398,12 @@ TABLES.update({
 TABLES["whatif_benefit_cost"]["description"] += (" benefits_counted: this ratio counts building repair cost only "
                                                  "(whatif_people adds contents, interruption and life safety).")
 
-def units_for(name, currency):
+def units_for(name, currency, columns=None):
     """Column units of a run table, with ``{currency}`` replaced by the run's currency.
+
+    A unit key ending in ``*`` stands for every column whose name starts with the rest
+    (the per-ratio columns of ``asset_loss_curve``); given the table's ``columns``, it is
+    expanded to them.
 
     Parameters
     ----------
@@ -405,10 +411,19 @@ def units_for(name, currency):
         A table name of :data:`TABLES`.
     currency : str
         Currency code of the run (e.g. ``"EUR"``).
+    columns : list of str, optional
+        The table's columns (expands the ``*`` keys).
 
     Returns
     -------
     dict of str -> str
         Column name -> unit.
     """
-    return {k: v.replace("{currency}", currency) for k, v in TABLES[name]["units"].items()}
+    units = {}
+    for key, unit in TABLES[name]["units"].items():
+        unit = unit.replace("{currency}", currency)
+        if key.endswith("*") and columns is not None:
+            units.update({c: unit for c in columns if c.startswith(key[:-1])})
+        else:
+            units[key] = unit
+    return units

@@ -51,7 +51,7 @@ def _safe(builder, *args):
         return _note(f"This section could not be drawn: {type(exc).__name__}: {exc}")
 
 
-def build_report(run_dir, *, previous_run=None):
+def build_report(run_dir, *, previous_run=None, tables=None):
     """The HTML report of one run, as a string (one self-contained document).
 
     Parameters
@@ -62,6 +62,10 @@ def build_report(run_dir, *, previous_run=None):
     previous_run : path-like, optional
         A finished run (or an output folder, for its ``LATEST`` run) to compare with;
         adds the change report (:func:`quakefolio.pipeline.compare.compare_runs`).
+    tables : Mapping name -> DataFrame, pyarrow.Table or ChunkedTable, optional
+        The run's tables still in memory (the run writing its own report), read instead of
+        the folder's files (same content; see :class:`ReportRun`).  The report's cost then
+        does not grow with re-reading them.
 
     Returns
     -------
@@ -76,7 +80,7 @@ def build_report(run_dir, *, previous_run=None):
     """
     import matplotlib
 
-    run = ReportRun(run_dir)
+    run = ReportRun(run_dir, tables)
     builders = {
         "inputs": (_section_inputs, run), "hazard": (_section_hazard, run), "fragility": (_section_fragility, run),
         "damage": (_section_damage, run), "riskiest": (_section_riskiest, run),
@@ -108,7 +112,7 @@ def build_report(run_dir, *, previous_run=None):
     )
 
 
-def write_report(run_dir, out_path, *, previous_run=None):
+def write_report(run_dir, out_path, *, previous_run=None, tables=None):
     """Build the report of ``run_dir`` and write it to ``out_path`` atomically; return the path.
 
     Parameters
@@ -120,6 +124,8 @@ def write_report(run_dir, out_path, *, previous_run=None):
         its folder must exist.
     previous_run : path-like, optional
         A run to compare with (see :func:`build_report`).
+    tables : Mapping, optional
+        The run's tables still in memory (see :func:`build_report`).
 
     Returns
     -------
@@ -140,7 +146,7 @@ def write_report(run_dir, out_path, *, previous_run=None):
     never a half-written one.
     """
     out = report_target(out_path)
-    text = build_report(run_dir, previous_run=previous_run)
+    text = build_report(run_dir, previous_run=previous_run, tables=tables)
     out = report_target(out)  # again: the file may have appeared while the report was built
     try:
         return atomic_write_text(out, text)

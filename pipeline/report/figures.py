@@ -321,6 +321,61 @@ def _scale_bar(ax, lat0):
     return bar_km
 
 
+#: Above this many assets the map draws grid cells (value-weighted centres, summed values) instead of assets.
+MAP_MAX_MARKERS = 5000
+#: Cells along the longer side of the map's extent when it is aggregated.
+MAP_CELLS_ACROSS = 80
+
+
+def map_cells(d, cells_across=MAP_CELLS_ACROSS):
+    """Assets aggregated on a square grid of equal ground distance, for the map of a large portfolio.
+
+    Parameters
+    ----------
+    d : pandas.DataFrame
+        ``lon``, ``lat`` [deg], ``replacement_value`` [currency], ``eal_ratio`` [1/yr].
+    cells_across : int
+        Cells along the longer side of the assets' extent (the cell size is rounded to a
+        1-2-5 number of km).
+
+    Returns
+    -------
+    cells : pandas.DataFrame
+        One row per occupied cell: ``lon``, ``lat`` [deg] (value-weighted mean position of
+        its assets), ``replacement_value`` [currency] (sum), ``eal_ratio`` [1/yr] (sum of
+        EAL / sum of value: the cell's own EAL ratio) and ``n_assets``.
+    cell_km : float
+        Side of a cell [km].
+
+    Notes
+    -----
+    Positions are projected with an equirectangular approximation about the mean latitude
+    (x = lon cos(lat0) 111.32 km/deg, y = lat 111.32 km/deg; common practice for a city-size
+    extent), so cells are squares on the ground as the map's axes are.
+    """
+    import pandas as pd
+
+    lat0 = math.radians(float(d.lat.mean()))
+    x = d.lon.to_numpy(float) * 111.32 * math.cos(lat0)
+    y = d.lat.to_numpy(float) * 111.32
+    extent = max(float(np.ptp(x)), float(np.ptp(y)), 1e-3)
+    cell_km = _nice(extent / cells_across)
+    ix = np.floor((x - x.min()) / cell_km).astype(np.int64)
+    iy = np.floor((y - y.min()) / cell_km).astype(np.int64)
+    keys, cell = np.unique(iy * (int(ix.max()) + 1) + ix, return_inverse=True)
+    value = d.replacement_value.to_numpy(float)
+    total = np.bincount(cell, weights=value, minlength=len(keys))
+    weight = np.where(total > 0, total, 1.0)
+    cells = pd.DataFrame({
+        "lon": np.bincount(cell, weights=value * d.lon.to_numpy(float), minlength=len(keys)) / weight,
+        "lat": np.bincount(cell, weights=value * d.lat.to_numpy(float), minlength=len(keys)) / weight,
+        "replacement_value": total,
+        "eal_ratio": np.bincount(cell, weights=value * d.eal_ratio.to_numpy(float), minlength=len(keys)) / weight,
+        "n_assets": np.bincount(cell, minlength=len(keys)),
+    })
+    return cells, cell_km
+
+
 def _map_figure(d, cur):
     """Assets at their positions: marker area by replacement value, colour by EAL ratio.
 

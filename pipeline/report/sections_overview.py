@@ -1,7 +1,7 @@
 """Report sections about the run itself: key figures, inputs and provenance, cross-checks and logic tree."""
 from __future__ import annotations
 
-from quakefolio.pipeline.report.context import _created
+from quakefolio.pipeline.report.context import _created, top_rows
 from quakefolio.pipeline.report.html import (
     _cell, _esc, _facts, _finite, _g, _html, _money, _note, _p, _pct, _prob, _table,
 )
@@ -22,7 +22,7 @@ def _key_figures(run):
         if "eal_net" in loss:
             keys.append((_money(loss.eal_net.sum(), cur + "/yr"),
                          "expected annual loss net of deductibles and limits, classical"))
-        worst = loss.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).iloc[0]
+        worst = top_rows(loss, "collapse_prob_in_horizon", 1).iloc[0]
         keys.append((_prob(worst.collapse_prob_in_horizon),
                      f"highest probability of collapse in {run.horizon:g} yr (asset {worst.asset_id})"))
     summ = run.table("portfolio_summary")

@@ -34,6 +34,7 @@ from quakefolio.core.economics import benefit_cost_ratio, present_value
 from quakefolio.core.events.eventset import STREAM_OCCUPANCY, stream_rng
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
 from quakefolio.core.whatif import change, paired_aal_change
+from quakefolio.pipeline.io.arrow_columns import index_of
 
 __all__ = ["PeopleModel", "profile", "consequence_tables", "prepare_people", "chunk_consequences",
            "event_consequence_tables", "people_cache_key", "moved_people", "whatif_people_tables", "add_benefits",
@@ -83,7 +84,7 @@ def consequence_tables(inputs, classes, asset_loss):
     inputs : RunInputs
     classes : dict code -> ClassDamage
         Per-pair damage-state rates of each class.
-    asset_loss : DataFrame
+    asset_loss : DataFrame or pyarrow.Table
         The damage stage's ``asset_loss`` (building EAL per asset).
 
     Returns
@@ -92,11 +93,12 @@ def consequence_tables(inputs, classes, asset_loss):
     """
     ex = inputs.exposure
     n = len(ex)
-    codes = ex.building_class.to_numpy()
+    order = sorted(classes)
+    cls = index_of(ex.building_class, order)
     cas_unit, down, contents_ratio = np.full(n, np.nan), np.full(n, np.nan), np.full(n, np.nan)
-    for code in sorted(classes):
+    for k, code in enumerate(order):
         cd, dss = classes[code], inputs.library[code]
-        assets = np.flatnonzero(codes == code)
+        assets = np.flatnonzero(cls == k)
         ds = cd.ds_rates[np.searchsorted(cd.sites, inputs.site_index[assets])]
         cas_unit[assets] = expected_annual_consequence(ds, dss.casualty_rate)
         down[assets] = expected_annual_consequence(ds, dss.downtime_days)
@@ -109,9 +111,9 @@ def consequence_tables(inputs, classes, asset_loss):
                                                                                               np.nan, 0.0))
     bi_eal = np.where(np.nan_to_num(per_day) > 0, interruption_loss(down, per_day), np.where(np.isnan(per_day),
                                                                                               np.nan, 0.0))
-    building = asset_loss["eal"].to_numpy()
+    building = np.asarray(asset_loss["eal"].to_numpy(), dtype=float)
     assets_table = pd.DataFrame({
-        "asset_id": ex.asset_id.to_numpy(), "building_class": codes, "occupants": occupants,
+        "asset_id": ex.asset_id.array, "building_class": ex.building_class.array, "occupants": occupants,
         "mean_present_fraction": f_bar, "expected_annual_casualties": casualties,
         "expected_annual_downtime_days": down, "building_eal": building, "contents_value": contents,
         "contents_eal": contents_eal, "interruption_value_per_day": per_day, "interruption_eal": bi_eal,
@@ -318,7 +320,7 @@ def people_cache_key(inputs):
         The occupancy profile and the consequences per state of every class used.
     """
     lib = inputs.library
-    used = sorted(set(inputs.exposure.building_class))
+    used = sorted(set(inputs.exposure.building_class.unique()))
     return {"occupancy_periods": [dict(p) for p in (inputs.config.exposure.occupancy_periods or ())],
             "classes": {c: [lib[c].casualty_rate.tolist(), lib[c].downtime_days.tolist(),
                             lib[c].contents_damage_ratio.tolist()] for c in used}}

@@ -95,6 +95,8 @@ class RunInputs:
         ``[programme] group_terms_file`` with the exposure's ``terms_group`` column.
     work : quakefolio.pipeline.stages.sizes.WorkSize or None
         The estimated size of the run's work (counts and peak memory per stage).
+    timings : Mapping
+        Wall time [s] of reading and checking the inputs (``ingest_s``), for the manifest.
     """
 
     config: object
@@ -109,6 +111,7 @@ class RunInputs:
     hazard_model: object = None
     group_terms: object = None  # quakefolio.core.events.programme.GroupTerms or None
     work: object = None  # quakefolio.pipeline.stages.sizes.WorkSize or None
+    timings: Mapping = field(default_factory=lambda: frozen_mapping({}))
 
 
 @dataclass(frozen=True)

@@ -511,7 +511,7 @@ def check_hazard_work(config, n_ruptures, n_sites, n_ims, budget):
 
 def _damage_stage(inputs, d):
     cfg = inputs.config
-    codes = set(inputs.exposure.building_class)
+    codes = set(inputs.exposure.building_class.unique())
     states = max(len(inputs.library[c].medians) for c in codes)
     ratios = len(cfg.output.loss_curve_ratios)
     model = inputs.hazard_model

@@ -56,6 +56,7 @@ from quakefolio.core.events.portfolio import ep_from_years, tvar, year_loss
 from quakefolio.core.risk import risk_targeted_im
 from quakefolio.core.whatif import alternative_change, change, paired_aal_change, rerun_asset_aal
 from quakefolio.fragility import load_library
+from quakefolio.pipeline.io.arrow_columns import index_of, take_text, text_array, text_series
 from quakefolio.pipeline.io.ingest import curves_for_im
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 from quakefolio.pipeline.stages.people import add_benefits, moved_people, whatif_people_tables, year_totals
@@ -216,11 +217,12 @@ def _run_asset_rates(inputs, results):
     for code, (sites, rows) in (getattr(inputs, "cached_pairs", None) or {}).items():
         if len(sites):
             parts.setdefault(code, []).append((sites, rows["ds"], rows["eal"]))
-    classes = inputs.exposure.building_class.to_numpy()
+    codes = sorted(set(inputs.exposure.building_class.unique()))
+    cls = index_of(inputs.exposure.building_class, codes)
     out = {}
-    for code in sorted(set(classes)):
+    for k, code in enumerate(codes):
         dss = inputs.library[code]
-        assets = np.flatnonzero(classes == code)
+        assets = np.flatnonzero(cls == k)
         need = np.unique(inputs.site_index[assets])
         got = parts.get(code, [])
         sites = np.concatenate([np.asarray(s) for s, _, _ in got] + [np.zeros(0, dtype=need.dtype)])
@@ -292,8 +294,9 @@ def screening_tables(inputs, collapse_rate):
     ex = inputs.exposure
     prob = prob_in_years(collapse_rate, target_t)
     assets = pd.DataFrame({
-        "asset_id": ex.asset_id.to_numpy(), "building_class": ex.building_class.to_numpy(),
-        "site_id": inputs.hazard.site_id[inputs.site_index], "annual_collapse_rate": collapse_rate,
+        "asset_id": ex.asset_id.array, "building_class": ex.building_class.array,
+        "site_id": text_series(take_text(text_array(inputs.hazard.site_id), inputs.site_index)).array,
+        "annual_collapse_rate": collapse_rate,
         "collapse_prob_in_target_years": prob, "target_prob": target_p, "target_years": target_t,
         "exceeds_target": prob > target_p, "ratio_to_target": prob / target_p,
     })
