@@ -93,8 +93,9 @@ PAIR_BYTES = 400
 #: two models' results alive at once.
 PAIR_IM_BYTES = 130
 #: Per simulated year: branch of the year, year losses (two bases, aggregate and largest),
-#: the year table, four full EP curves sorted into tables, and their Arrow copies when stored.
-YEAR_BYTES = 700
+#: the year table, four full EP curves sorted into tables, and their Arrow copies when stored
+#: (string columns go to Arrow without Python objects since the tables are built for Arrow).
+YEAR_BYTES = 450
 #: Per event: the event set and its sort, the model of each event, the event-loss table
 #: (eight columns, two of strings) and its Arrow copy, ground-up and net losses.
 EVENT_BYTES = 420
