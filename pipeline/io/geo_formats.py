@@ -14,8 +14,8 @@ the table's size).
   defines as OGC:CRS84 (WGS84, longitude first), the coordinates' system.
 - **GeoJSON** (RFC 7946): one FeatureCollection, one Feature per row with a Point
   geometry ``[lon, lat]`` (WGS84, the only system the RFC allows) and every other column
-  as a property; NaN, which JSON cannot hold, is written as null; a row without position
-  has a null geometry.
+  as a property; NaN and infinities (an open bin edge), which JSON cannot hold, are
+  written as null; a row without position has a null geometry.
 - **CSV**: every column, header first (RFC 4180 quoting by pyarrow).
 """
 from __future__ import annotations
