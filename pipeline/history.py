@@ -215,7 +215,7 @@ def _pct(v):
 
 
 def history_text(frame, currency, path):
-    """The history as printed lines: one block per run, figures with their change in percent.
+    """The history as printed lines: an aligned table, figures with their change in percent.
 
     Parameters
     ----------
@@ -230,21 +230,24 @@ def history_text(frame, currency, path):
     str
     """
     pml = [c for c in frame.columns if c.startswith("pml_aep_") and not c.endswith("_change_pct")]
-    head = ["run", "created (UTC)", f"EAL {currency}/yr", f"AAL {currency}/yr",
-            *(f"PML {c.removeprefix('pml_aep_')}" for c in pml), "collapses in horizon"]
-    lines = ["  ".join(head)]
+    head = ["run", f"EAL [{currency}/yr]", f"AAL [{currency}/yr]",
+            *(f"PML {c.removeprefix('pml_aep_')} [{currency}]" for c in pml), "collapses in horizon"]
+    rows, notes = [], {}
     for i, row in enumerate(frame.to_dict("records")):
-        cells = [row["run_id"], row["created_utc"],
-                 _money(row["classical_eal"], "") + _pct(row["classical_eal_change_pct"]),
-                 _money(row["event_aal"], "") + _pct(row["event_aal_change_pct"]),
-                 *(_money(row[c], "") + _pct(row[f"{c}_change_pct"]) for c in pml),
-                 ("n/a" if not math.isfinite(row["expected_collapses_in_horizon"])
-                  else f"{row['expected_collapses_in_horizon']:.3g}")
-                 + _pct(row["expected_collapses_in_horizon_change_pct"])]
-        lines.append("  ".join(cells))
-        if row["changed_inputs"]:
-            lines.append(f"    changed inputs: {row['changed_inputs']}")
-        elif i:
-            lines.append("    no input file changed")
-    lines.append(f"{len(frame)} runs, oldest first; table written to {path}")
+        collapses = row["expected_collapses_in_horizon"]
+        rows.append([row["run_id"],
+                     _money(row["classical_eal"], "") + _pct(row["classical_eal_change_pct"]),
+                     _money(row["event_aal"], "") + _pct(row["event_aal_change_pct"]),
+                     *(_money(row[c], "") + _pct(row[f"{c}_change_pct"]) for c in pml),
+                     ("n/a" if not math.isfinite(collapses) else f"{collapses:.3g}")
+                     + _pct(row["expected_collapses_in_horizon_change_pct"])])
+        if i:
+            notes[i] = f"changed inputs: {row['changed_inputs']}" if row["changed_inputs"] else "no input file changed"
+    widths = [max(len(r[j]) for r in [head, *rows]) for j in range(len(head))]
+    lines = ["  ".join(h.ljust(w) if j == 0 else h.rjust(w) for j, (h, w) in enumerate(zip(head, widths)))]
+    for i, cells in enumerate(rows):
+        lines.append("  ".join(c.ljust(w) if j == 0 else c.rjust(w) for j, (c, w) in enumerate(zip(cells, widths))))
+        if i in notes:
+            lines.append(f"    {notes[i]}")
+    lines.append(f"{len(frame)} run(s), oldest first; changes in % of the run before; table written to {path}")
     return "\n".join(lines)
