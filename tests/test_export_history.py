@@ -224,7 +224,8 @@ def test_history_lists_three_runs_their_figures_and_what_changed(tmp_path, capsy
     cfg = _mini_compute(tmp_path / "mini")
     runs = [run_pure(cfg)]
     exposure = cfg.parent / "exposure.csv"
-    exposure.write_text(exposure.read_text().replace("B2,10.029,20.002,TST-A,2500000", "B2,10.029,20.002,TST-A,5000000"))
+    exposure.write_text(exposure.read_text().replace("B2,10.029,20.002,TST-A,2500000",
+                                                     "B2,10.029,20.002,TST-A,5000000"))
     runs.append(run_pure(cfg))
     library = cfg.parent / "fragility.toml"
     library.write_text(library.read_text().replace("median = 0.6", "median = 0.5", 1))
@@ -262,3 +263,72 @@ def test_history_lists_three_runs_their_figures_and_what_changed(tmp_path, capsy
     assert main(["history", str(output)]) == 2
     assert (output / "history.parquet").read_text() == "not ours"
     assert "is not a quakefolio run history" in capsys.readouterr().err
+
+
+# --- the pieces, on small inputs --------------------------------------------------------------------------
+
+def test_point_wkb_is_the_simple_features_layout():
+    # OGC 06-103r4, 8.2: POINT(1 2) little endian = 01, uint32 1, double 1.0, double 2.0 (IEEE 754:
+    # 1.0 = 0x3FF0000000000000, 2.0 = 0x4000000000000000, written low byte first)
+    from quakefolio.pipeline.io.geo_formats import point_wkb
+
+    got = point_wkb([1.0, np.nan, -140.63362], [2.0, 5.0, -35.12408])
+    assert got[0].as_py().hex() == "0101000000" + "000000000000f03f" + "0000000000000040"
+    assert got[1].as_py() is None and got.null_count == 1  # no position: null geometry
+    assert _wkb_point(got[2].as_py()) == (-140.63362, -35.12408)
+
+
+def test_positions_per_chunk_equal_positions_of_the_whole_table():
+    from quakefolio.pipeline.io.chunked import ChunkedTable
+    from quakefolio.pipeline.io.coordinates import Positions, with_coordinates
+
+    ids = pa.array([f"A{i}" for i in range(7)])
+    lon, lat = np.arange(7) * 0.5 - 1.0, np.arange(7) * -0.25
+
+    def build(assets):  # three rows per asset, as a damage table with three states
+        rows = np.repeat(assets, 3)
+        return pa.table({"asset_id": ids.take(pa.array(rows, type=pa.int64())),
+                         "state": np.tile([1, 2, 3], len(assets))})
+
+    assets = Positions.of(ids, lon, lat)
+    sites = Positions.of(["S1"], [0.0], [0.0])
+    chunked = with_coordinates(ChunkedTable(7, build, 21, ids, chunk=2), assets, sites)
+    whole = chunked.to_table()  # written in chunks of 2 assets
+    assert whole.column_names == ["asset_id", "state", "lon", "lat"]
+    assert whole["lon"].to_pylist() == np.repeat(lon, 3).tolist()
+    assert whole["lat"].to_pylist() == np.repeat(lat, 3).tolist()
+    assert chunked.rows_of(["A5", "A1"])["lon"].to_pylist() == [lon[1]] * 3 + [lon[5]] * 3
+    # a row naming no asset (a whole alternative's total row) has no position; a table with positions is kept
+    frame = with_coordinates(pa.table({"asset_id": pa.array(["A3", None]), "x": [1.0, 2.0]}), assets, sites)
+    assert frame["lon"].to_pylist()[0] == lon[3] and np.isnan(frame["lon"].to_pylist()[1])
+    stored = pa.table({"asset_id": ["A1"], "lon": [9.0], "lat": [9.0]})
+    assert with_coordinates(stored, assets, sites) is stored
+
+
+def test_relative_paths_inside_and_outside_the_config_folder(tmp_path):
+    from quakefolio.pipeline.io.relpaths import relative_paths
+
+    base = tmp_path / "project"
+    manifest = {"inputs": {"exposure": {"path": str(base / "exposure.csv")},
+                           "sources": {"path": str(tmp_path / "shared" / "sources.toml")}},
+                "config": {"output": {"folder": str(base / "output")}, "scenario": {"currency": "USD"}},
+                "warnings": [f"{base / 'sources.toml'}:29: column 'faults[1].mfd': capped"],
+                "units": {"asset_loss": {"eal": "USD/yr"}}, "seed": 7}
+    got = relative_paths(manifest, base)
+    assert got["inputs"] == {"exposure": {"path": "exposure.csv"}, "sources": {"path": "../shared/sources.toml"}}
+    assert got["config"] == {"output": {"folder": "output"}, "scenario": {"currency": "USD"}}
+    assert got["warnings"] == ["sources.toml:29: column 'faults[1].mfd': capped"]
+    assert got["units"] == manifest["units"] and got["seed"] == 7
+
+
+def test_site_table_in_ingest_mode_holds_positions_and_assets():
+    from quakefolio.pipeline.stages import load_inputs
+    from quakefolio.pipeline.stages.sites import hazard_sites_table
+
+    inputs = load_inputs(MINI / "quakefolio.toml")  # reads only; writes nothing
+    sites = hazard_sites_table(inputs)
+    assert list(sites.columns) == ["site_id", "lon", "lat", "n_assets", "max_asset_distance_km"]
+    assert sites.site_id.tolist() == list(inputs.hazard.site_id) and sites.n_assets.sum() == len(inputs.exposure)
+    for s in range(len(sites)):  # the farthest asset mapped to each site
+        d = inputs.site_distance_km[inputs.site_index == s]
+        assert sites.max_asset_distance_km[s] == (d.max() if len(d) else 0.0)
