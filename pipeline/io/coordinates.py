@@ -74,6 +74,8 @@ class Positions:
         (ndarray, ndarray) of shape (m,) [deg]
         """
         ids = text_array(ids)
+        if among is None and len(ids) == len(self.ids) and ids.equals(self.ids):  # one row per place, in order
+            return self.lon.copy(), self.lat.copy()
         index = np.arange(len(self.ids), dtype=np.int64) if among is None else np.asarray(among, dtype=np.int64)
         choices = self.ids if among is None else self.ids.take(pa.array(index))
         pos = pc.index_in(ids, value_set=choices)
