@@ -15,11 +15,14 @@ import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
 from importlib import metadata
+from pathlib import Path
 
 from quakefolio.core.errors import InputError
 from quakefolio.pipeline import progress
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.cache import digest, fragility_class_digests
+from quakefolio.pipeline.io.coordinates import Positions, with_coordinates
+from quakefolio.pipeline.io.relpaths import relative_paths
 from quakefolio.pipeline.io.run_inputs import run_input_frames
 from quakefolio.pipeline.io.output_folder import prepare_output_folder
 from quakefolio.pipeline.io.store import RunWriter, new_run_id
@@ -30,6 +33,7 @@ from quakefolio.pipeline.stages import hazard as hs
 from quakefolio.pipeline.stages.damage import combine_damage, plan_blocks
 from quakefolio.pipeline.stages.inputs import load_inputs, stage_cache, with_hazard
 from quakefolio.pipeline.stages.products import CacheCounts, EventProduct, RunInputs, WhatIfProduct
+from quakefolio.pipeline.stages.sites import hazard_sites_table
 
 __all__ = ["execute", "SequentialExecutor", "write_run", "run_pure", "inputs_digest", "package_versions",
            "StageError", "stage_guard"]
@@ -361,6 +365,7 @@ def execute(inputs, executor, *, stages_to_run="all"):
 
 def _hazard_frames(inputs):
     frames = {
+        "hazard_sites": hazard_sites_table(inputs),
         "site_hazard": hs.site_hazard_table(inputs),
         "hazard_at_return_periods": hs.hazard_at_return_periods_table(inputs),
     }
@@ -392,7 +397,7 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
         "cache": (counts or CacheCounts()).as_dict(),
         "timings_s": {k: round(v, 4) for k, v in timings.items()},
         "row_counts": dict(writer.row_counts),
-        "units": {name: units_for(name, currency) for name in frames},
+        "units": {name: units_for(name, currency, _column_names(frame)) for name, frame in frames.items()},
         "hazard_ims_interpolated": sorted(inputs.hazard.interpolated),
         "fragility_classes": fragility_class_digests(inputs.library),
         "hazard_sites": len(inputs.hazard.site_id),
@@ -405,7 +410,7 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
             "gmm_branches": [{"id": i, "weight": w} for i, w, _ in model.gmm_branches],
             "ims": model.ims,
         }
-    return manifest
+    return relative_paths(manifest, Path(cfg.path).parent)  # no local folder of this machine in the outputs
 
 
 def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None, started=None):
@@ -449,6 +454,7 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     if extra is not None:
         frames.update(extra.tables)
     frames.update(run_input_frames(inputs.exposure, inputs.library))  # the run stores the inputs it used
+    frames = _located(inputs, frames)
     output = cfg.output.folder
     writer = RunWriter(output, new_run_id(output, inputs.inputs_sha256))  # claims a free run id
     run_id = writer.run_id
@@ -478,6 +484,14 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     except BaseException:
         writer.abort()
         raise
+
+
+def _located(inputs, frames):
+    """Every table with ``lon`` and ``lat`` [deg] of its asset or hazard site appended (io.coordinates)."""
+    ex, hz = inputs.exposure, inputs.hazard
+    assets = Positions.of(ex.asset_id, ex.lon.to_numpy(dtype=float), ex.lat.to_numpy(dtype=float))
+    sites = Positions.of(hz.site_id, hz.lon, hz.lat)
+    return {name: with_coordinates(frame, assets, sites) for name, frame in frames.items()}
 
 
 class _ReportThread(threading.Thread):

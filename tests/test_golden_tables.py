@@ -45,7 +45,10 @@ YEARS = 5000
 CONFIGS = {"compute": "quakefolio.toml", "tabulated": "quakefolio_tabulated.toml"}
 PACKAGES = ("core", "fragility", "pipeline")
 #: Columns added to existing tables since the base commit (compared without them); new tables are additions.
-ADDED_COLUMNS = {}
+ADDED_COLUMNS = {f"{name}.parquet": ("lon", "lat") for name in (  # positions of the asset or hazard site
+    "asset_consequences", "asset_damage", "asset_event_loss", "asset_loss", "asset_loss_curve", "collapse_screening",
+    "conditional_mean_spectrum", "disaggregation", "disaggregation_summary", "hazard_at_return_periods", "site_hazard",
+    "site_risk_targeted_im", "whatif_asset_damage", "whatif_assets", "whatif_benefit_cost", "whatif_people")}
 #: Demo inputs the base commit's code does not know, removed from its copy: (file, regex).
 NEW_INPUTS = (("quakefolio.toml", r"(?m)^cms_\w+ = .*\n"),)  # the conditional mean spectrum (a new table)
 

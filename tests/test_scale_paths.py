@@ -73,7 +73,7 @@ def test_loss_curve_is_one_row_per_asset_with_a_column_per_ratio(mini, damage):
     curve = read_table(run, "asset_loss_curve")
     ratios = inputs.config.output.loss_curve_ratios
     names = loss_curve_columns(ratios)
-    assert list(curve.columns) == ["asset_id", "replacement_value", *names]
+    assert list(curve.columns) == ["asset_id", "replacement_value", *names, "lon", "lat"]  # lon, lat appended
     assert names[0] == "annual_rate_exceed_lr_0.001" and len(set(names)) == len(ratios)
     assert [float(n.removeprefix("annual_rate_exceed_lr_")) for n in names] == list(ratios)
     assert curve.asset_id.tolist() == inputs.exposure.asset_id.tolist()

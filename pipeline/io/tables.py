@@ -1,6 +1,15 @@
 """Units and descriptions of the run-store tables (written into each file's schema metadata)."""
 
 TABLES = {
+    "hazard_sites": dict(
+        description="One row per hazard site: position (WGS84), in compute mode the site condition the "
+                    "ground-motion models used (vs30_mps: the asset's own Vs30, or the geometric mean of the Vs30 of "
+                    "the assets snapped to a grid node; [hazard] default_vs30_mps for assets without one, counted in "
+                    "n_assets_default_vs30), the assets mapped to the site and the farthest one's distance (0 for "
+                    "a site without assets).",
+        units={"lon": "deg", "lat": "deg", "vs30_mps": "m/s", "n_assets_default_vs30": "-", "n_assets": "-",
+               "max_asset_distance_km": "km"},
+    ),
     "site_hazard": dict(
         description="Tabulated site hazard curves used by the run (long form).",
         units={"im_level": "g", "annual_rate": "1/yr"},
@@ -420,6 +429,8 @@ def units_for(name, currency, columns=None):
         Column name -> unit.
     """
     units = {}
+    if columns is not None:  # positions appended to per-asset and per-site tables (io.coordinates)
+        units.update({c: "deg" for c in ("lon", "lat") if c in columns})
     for key, unit in TABLES[name]["units"].items():
         unit = unit.replace("{currency}", currency)
         if key.endswith("*") and columns is not None:
