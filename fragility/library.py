@@ -189,8 +189,13 @@ def _collapse_warning(code, rows, collapse, place):
                         row=place.locate("collapse_state"), column=place.column_of("collapse_state"))
 
 
-def _vulnerability(code, body, text, path, place):
-    """A ``[[classes.<code>.vulnerability]]`` table to its :class:`VulnerabilityFunction`, row by row."""
+#: A first row's mean loss ratio above this is doubtful: the loss ratio is 0 below the first level.
+FIRST_MEAN_WARN_ABOVE = 0.1
+
+
+def _vulnerability(code, body, text, path, place, warnings):
+    """A ``[[classes.<code>.vulnerability]]`` table to its :class:`VulnerabilityFunction`, row by row
+    (a doubt is appended to ``warnings``)."""
     if body.get("collapse_state") is not None:
         raise place.error("a class given by a vulnerability table has no damage states: collapse_state has no "
                           "meaning here", "collapse_state")
@@ -211,6 +216,14 @@ def _vulnerability(code, body, text, path, place):
             check_vulnerability_row(*(np.array(columns[k], dtype=float) for k in columns), i)
         except VulnerabilityTableError as exc:
             raise here.error(str(exc), exc.key, row_key=exc.key if exc.key in row else None) from None
+    first = columns["mean_loss_ratio"][0]
+    if first > FIRST_MEAN_WARN_ABOVE:  # the function jumps from 0 to ``first`` at the first level
+        here = toml_place(path, text, ("classes", code, "vulnerability"), f"classes.{code}.vulnerability[0]", 0)
+        warnings.append(InputWarning(path, f"the first row's mean_loss_ratio {first:g} is above "
+                                           f"{FIRST_MEAN_WARN_ABOVE:g}: the loss ratio is 0 below the first im_level "
+                                           f"({columns['im_level'][0]:g} g) and jumps there; start the table where "
+                                           "loss begins", row=here.locate("mean_loss_ratio"),
+                                     column=here.column_of("mean_loss_ratio")))
     return VulnerabilityFunction(class_code=code, im=body["im"], levels=np.array(columns["im_level"]),
                                  mean_loss_ratio=np.array(columns["mean_loss_ratio"]), cov=np.array(columns["cov"]),
                                  description=str(body.get("description", "")))
@@ -230,7 +243,7 @@ def _parse_class(code, body, text, path, warnings):
         if states is not None:
             raise place.error("give either damage states or a vulnerability table, not both", "vulnerability")
         try:
-            return _vulnerability(code, body, text, path, place)
+            return _vulnerability(code, body, text, path, place, warnings)
         except ValueError as exc:  # the IM name
             if isinstance(exc, InputError):
                 raise
