@@ -330,7 +330,9 @@ def people_cache_key(inputs):
     lib = inputs.library
     used = sorted(set(inputs.exposure.building_class.unique()))
     return {"occupancy_periods": [dict(p) for p in (inputs.config.exposure.occupancy_periods or ())],
-            "classes": {c: _class_per_state(lib[c])[:, :3].tolist() for c in used}}
+            "classes": {c: [lib[c].casualty_rate.tolist(), lib[c].downtime_days.tolist(),
+                            lib[c].contents_damage_ratio.tolist()] if lib[c].has_damage_states else "vulnerability"
+                        for c in used}}
 
 
 # --- what-if --------------------------------------------------------------------------------------

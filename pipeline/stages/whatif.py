@@ -92,8 +92,9 @@ def _suggestion(name, valid, what):
     return did_you_mean(name, names, cutoff=0.6, otherwise=f"; {what}: {shown}", quote="repr")
 
 
-def _need_damage_states(fail, new, selected_classes, library):
-    """An alternative compares damage states and collapse before and after: no vulnerability class on either side."""
+def _need_damage_states(fail, new, selected_classes, library, by_class):
+    """An alternative compares damage states and collapse before and after: no vulnerability class on either side
+    (``by_class``: the class the alternative selects by, or None)."""
     if not new.has_damage_states:
         fail(f"new_class {new.class_code!r} is given by a vulnerability table: a retrofit alternative compares "
              "damage states and collapse, so its new class needs damage states", "new_class")
@@ -101,7 +102,7 @@ def _need_damage_states(fail, new, selected_classes, library):
         if not library[code].has_damage_states:
             fail(f"the alternative selects assets of class {code!r}, given by a vulnerability table: a retrofit "
                  "alternative compares damage states and collapse, so the assets it selects need them",
-                 "assets" if code else "building_class")
+                 "building_class" if code == by_class else "assets")
 
 
 def _same_fragility(a, b):
@@ -187,7 +188,7 @@ def validate(inputs, hashes=None, lines=None):
             fail(f"unknown building class {new_class!r}" + _suggestion(new_class, library.classes,
                                                                        f"{library_path} defines"), "new_class")
         dss = library[new_class]
-        _need_damage_states(fail, dss, classes[selected], inputs.library)
+        _need_damage_states(fail, dss, classes[selected], inputs.library, entry["building_class"])
         # the hazard must provide the new class's IM, and its curves must not cross (as for the run's classes)
         check_class_hazard(dss, levels_of, library_path, lines, reject_crossing=cfg.fragility.crossing == "reject",
                            alternative=aid)
