@@ -417,7 +417,9 @@ def build_tables(inputs, classes):
     if n_tail:
         warnings.append(
             f"{n_tail} assets draw more than {threshold:.0%} of a damage-state rate from beyond the tabulated "
-            f"hazard range (tail policy '{cfg.fragility.tail}'; see tail_share_* in asset_damage)")
+            f"hazard range (tail policy '{cfg.fragility.tail}'; see tail_share_* in asset_damage"
+            + ("; for a class given by a vulnerability table: of its EAL, max_tail_share in asset_loss)"
+               if any(not inputs.library[c].has_damage_states for c in codes) else ")"))
     return {"asset_damage": ChunkedTable(n, damage, int(damage.n_states[cls].sum()), ids),
             "asset_loss": asset_loss, "asset_loss_curve": ChunkedTable(n, curve, n, ids)}, warnings
 
