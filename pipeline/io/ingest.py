@@ -409,12 +409,16 @@ def read_exposure(path, library, group_column="building_class"):
     if "terms_group" in frame.columns:
         out["terms_group"] = _identifiers(frame, rows, path, "terms_group", series=True)
     for col, key in _NEEDS_CONSEQUENCE.items():
-        lacking = [c for c in library.classes if not np.isfinite(getattr(library[c], key)).all()]
+        lacking = [c for c in library.classes
+                   if not library[c].has_damage_states or not np.isfinite(getattr(library[c], key)).all()]
         bad = (out[col].to_numpy() > 0) & classes.isin(lacking).to_numpy(dtype=bool)
         if bad.any():
             i = int(np.argmax(bad))
-            raise InputError(path, f"{col} is given but class {str(classes.iloc[i])!r} has no {key} in the fragility "
-                                   "library", row=int(rows[i]), column=col)
+            code = str(classes.iloc[i])
+            why = (" (it is given by a vulnerability table, without damage states)"
+                   if not library[code].has_damage_states else "")
+            raise InputError(path, f"{col} is given but class {code!r} has no {key} in the fragility "
+                                   f"library{why}", row=int(rows[i]), column=col)
     out["row"] = rows
     return out
 

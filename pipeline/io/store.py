@@ -605,10 +605,10 @@ class RunFolder:
         Returns
         -------
         quakefolio.fragility.FragilityLibrary or None
-            Rebuilt from ``run_fragility``
-            (:func:`quakefolio.pipeline.io.run_inputs.library_from_frame`).
+            Rebuilt from ``run_fragility`` and, when the run used a vulnerability class,
+            ``run_vulnerability`` (:func:`quakefolio.pipeline.io.run_inputs.library_from_frame`).
         """
         from quakefolio.pipeline.io.run_inputs import library_from_frame
 
         frame = self.optional_table("run_fragility")
-        return None if frame is None else library_from_frame(frame)
+        return None if frame is None else library_from_frame(frame, self.optional_table("run_vulnerability"))

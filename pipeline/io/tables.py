@@ -53,7 +53,8 @@ TABLES = {
     ),
     "asset_damage": dict(
         description="Per asset and damage state: annual rate of reaching or exceeding the state and its "
-                    "probability in the horizon (Poisson); extrapolated tail shares as diagnostics.",
+                    "probability in the horizon (Poisson); extrapolated tail shares as diagnostics. Assets of a "
+                    "class given by a vulnerability table (run_vulnerability) have no damage states, hence no rows.",
         units={"annual_rate_exceed": "1/yr", "return_period_yr": "yr", "prob_exceed_in_horizon": "-",
                "horizon_yr": "yr", "tail_share_below": "-", "tail_share_above": "-"},
     ),
@@ -62,7 +63,9 @@ TABLES = {
                     "ground-up (eal) and net of the asset's per-event deductible and limit (eal_net: the "
                     "expected payment over the beta-distributed loss ratio of each damage state, closed form "
                     "by the incomplete-beta identity, never the terms applied to the mean loss), and annual "
-                    "collapse rate and probability in the horizon.",
+                    "collapse rate and probability in the horizon. For a class given by a vulnerability table "
+                    "the expectations run over its beta loss ratio at each IM, and the collapse figures are NaN "
+                    "(no damage states: no collapse figure, not zero).",
         units={"site_distance_km": "km", "replacement_value": "{currency}", "eal": "{currency}/yr",
                "eal_net": "{currency}/yr",
                "eal_ratio": "1/yr", "annual_collapse_rate": "1/yr", "collapse_prob_in_horizon": "-",
@@ -339,6 +342,15 @@ TABLES.update({
 # People and time (pipeline/stages/people.py): casualties, downtime, contents and interruption losses.
 TABLES["run_assets"]["units"].update({"contents_value": "{currency}", "interruption_value_per_day": "{currency}/day"})
 TABLES["run_fragility"]["units"].update({"contents_damage_ratio": "-"})
+TABLES["run_vulnerability"] = dict(
+    description="The vulnerability tables of the building classes this run used that are given without damage "
+                "states (written only when there is such a class): one row per class and IM level in increasing "
+                "order (row_index from 0); mean loss ratio (repair cost / replacement value) and its CoV at the "
+                "level; between levels both are linear in ln IM, 0 below the first level, held above the last; "
+                "the loss ratio at an IM is beta-distributed with that mean and CoV. Such classes have no rows in "
+                "run_fragility or asset_damage and NaN collapse figures in asset_loss.",
+    units={"im_level": "g", "mean_loss_ratio": "-", "cov": "-", "row_index": "-"},
+)
 _PEOPLE_UNITS = {"casualties": "persons", "downtime_days": "building-days", "contents_loss": "{currency}",
                  "interruption_loss": "{currency}", "present_fraction": "-"}
 TABLES.update({

@@ -293,6 +293,57 @@ def _fragility_figure(lib, codes, counts):
     return fig
 
 
+def _vulnerability_figure(lib, codes, counts):
+    """Mean loss ratio against IM of classes given by a vulnerability table, one panel per class.
+
+    Parameters
+    ----------
+    lib : FragilityLibrary
+        The classes the run used.
+    codes : list of str
+        Classes given by a vulnerability table.
+    counts : pandas.Series
+        Number of assets per class.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        The mean (interpolation rule of :mod:`quakefolio.core.vulnerability`: linear in ln IM, 0
+        below the first level, held above the last), the band mean x (1 +- CoV) clipped to
+        [0, 1] and the table's rows as points.
+    """
+    from matplotlib.ticker import FuncFormatter
+
+    from quakefolio.core.vulnerability import cov_at
+
+    ncols = min(4, len(codes))
+    nrows = math.ceil(len(codes) / ncols)
+    fig = _new_figure(2.45 * ncols + 0.4, 2.2 * nrows + 0.5)
+    axes = fig.subplots(nrows, ncols, squeeze=False).ravel()
+    for ax in axes[len(codes):]:
+        ax.set_visible(False)
+    for ax, code in zip(axes, codes):
+        vf = lib[code]
+        xmin, xmax = float(vf.levels[0]) / 2.0, float(vf.levels[-1]) * 1.5
+        x = np.geomspace(xmin, xmax, 300)
+        mu = vf.mean_at(x)
+        sd = mu * cov_at(x, vf.levels, vf.mean_loss_ratio, vf.cov)
+        ax.fill_between(x, np.clip(mu - sd, 0, 1), np.clip(mu + sd, 0, 1), color=_TEAL, alpha=0.2, lw=0,
+                        label="mean ± 1 standard deviation")
+        ax.plot(x, mu, color=_TEAL, label="mean loss ratio")
+        ax.plot(vf.levels, vf.mean_loss_ratio, "o", color=_TEAL, ms=3, label="table rows")
+        ax.set_xscale("log")
+        ax.set_xlim(xmin, xmax)
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+        ax.set_ylim(0, 1.0)
+        ax.set_title(f"{code}  ({counts.get(code, 0)} assets)")
+        ax.set_xlabel(f"{vf.im} [g]")
+        if ax.get_subplotspec().is_first_col():
+            ax.set_ylabel("loss ratio [-]")
+    axes[0].legend(loc="upper left", fontsize=6.5, handlelength=1.4)
+    return fig
+
+
 # --- map ---------------------------------------------------------------------------------------------
 
 def _nice(x):

@@ -4,7 +4,9 @@ from __future__ import annotations
 import pandas as pd
 
 from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, PREDATES_NOTE, TOP_ASSETS, state_catalogue, top_rows
-from quakefolio.pipeline.report.figures import MAP_MAX_MARKERS, _figure_html, _fragility_figure, _map_figure, map_cells
+from quakefolio.pipeline.report.figures import (
+    MAP_MAX_MARKERS, _figure_html, _fragility_figure, _map_figure, _vulnerability_figure, map_cells,
+)
 from quakefolio.pipeline.report.html import _cell, _esc, _g, _money, _note, _p, _pct, _prob, _rate, _table
 
 
@@ -41,21 +43,47 @@ def _section_fragility(run):
         return _note(PREDATES_NOTE.format(what="fragility curves"))
     loss = run.table("asset_loss", columns=["building_class"])
     used = sorted(set(loss.building_class.unique())) if loss is not None and len(loss) else sorted(lib.classes)
-    codes = [c for c in used if c in lib.classes]
-    if not codes:
+    every = [c for c in used if c in lib.classes]
+    if not every:
         return _note("No building class of the run can be drawn.")
+    codes = [c for c in every if lib[c].has_damage_states]
     counts = loss.building_class.value_counts() if loss is not None else pd.Series(dtype=int)
-    out = [_figure_html(_fragility_figure(lib, codes, counts), "fragility curves per building class",
-                        "Figure: lognormal fragility functions, probability of reaching or exceeding each "
-                        "damage state [-] against the class's intensity measure [g] on a log axis (from the "
-                        "first state's median / exp(2.5 beta) to the last state's median x exp(2.5 beta))."),
-           "<h3>Parameters</h3>",
-           _table(["class", "IM", "damage state", "median [g]#", "beta [-]#", "mean damage ratio [-]#",
-                   "loss-ratio CoV [-]#"], _fragility_rows(lib, codes))]
+    out = [] if not codes else [
+        _figure_html(_fragility_figure(lib, codes, counts), "fragility curves per building class",
+                     "Figure: lognormal fragility functions, probability of reaching or exceeding each "
+                     "damage state [-] against the class's intensity measure [g] on a log axis (from the "
+                     "first state's median / exp(2.5 beta) to the last state's median x exp(2.5 beta))."),
+        "<h3>Parameters</h3>",
+        _table(["class", "IM", "damage state", "median [g]#", "beta [-]#", "mean damage ratio [-]#",
+                "loss-ratio CoV [-]#"], _fragility_rows(lib, codes))]
+    out += _vulnerability_part(lib, [c for c in every if not lib[c].has_damage_states], counts)
+    codes = every
     descr = [(c, lib[c].description) for c in codes if getattr(lib[c], "description", "")]
     if descr:
         out.append("<p>" + "; ".join(f"<b>{_esc(c)}</b>: {_esc(d)}" for c, d in descr) + ".</p>")
     return "".join(out)
+
+
+def _vulnerability_part(lib, codes, counts):
+    """Figure, table and note of the classes given by a vulnerability table (none: nothing)."""
+    if not codes:
+        return []
+    rows = [[code if i == 0 else "", lib[code].im if i == 0 else "", _cell(f"{x:g}", x), _cell(f"{m:.3f}", m),
+             _cell(_g(c, 2), c)]
+            for code in codes for i, (x, m, c) in enumerate(zip(lib[code].levels, lib[code].mean_loss_ratio,
+                                                                  lib[code].cov))]
+    return [
+        "<h3>Classes given by a vulnerability table</h3>",
+        _figure_html(_vulnerability_figure(lib, codes, counts), "vulnerability functions per building class",
+                     "Figure: mean loss ratio (repair cost / replacement value) [-] against the class's intensity "
+                     "measure [g] on a log axis, linear in ln IM between the table's rows (points), 0 below the "
+                     "first row and held above the last; the band is the mean ± one standard deviation of the "
+                     "beta-distributed loss ratio."),
+        _table(["class", "IM", "IM level [g]#", "mean loss ratio [-]#", "loss-ratio CoV [-]#"], rows),
+        _note("These classes have no damage states: their assets have no damage-state rates (no rows in the "
+              "damage table and asset_damage), no collapse figures (n/a, NaN in asset_loss) and are not "
+              "screened for collapse; their EAL, loss curves and event losses come from the table."),
+    ]
 
 
 # --- damage table ------------------------------------------------------------------------------------

@@ -129,13 +129,17 @@ def _section_screening(run):
         return _note("This run holds no screening table (hazard stage only).")
     target_p, target_t = float(scr.target_prob.iloc[0]), float(scr.target_years.iloc[0])
     flagged = scr[scr.exceeds_target]
+    unscreened = int(scr.collapse_prob_in_target_years.isna().sum())  # classes without damage states
     out = [_p(f"Each asset's annual collapse rate from this run, as a probability of collapse in {target_t:g} years "
               f"(Poisson), against the target of {_pct(target_p)} in {target_t:g} years (the risk target of "
-              f"ASCE/SEI 7-16 Chapter 21). {len(flagged)} of {len(scr)} assets exceed it.")]
+              f"ASCE/SEI 7-16 Chapter 21). {len(flagged)} of {len(scr) - unscreened} assets exceed it."
+              + (f" {unscreened} assets of classes given by a vulnerability table have no damage states and are "
+                 "not screened." if unscreened else ""))]
     by_class = scr.groupby("building_class").agg(n=("asset_id", "size"), over=("exceeds_target", "sum"),
                                                  worst=("ratio_to_target", "max")).sort_values("worst", ascending=False)
     out.append(_table(["class", "assets", "above the target", "largest ratio to target"],
-                      [[c, int(r.n), int(r.over), f"{r.worst:.2f}"] for c, r in by_class.iterrows()],
+                      [[c, int(r.n), int(r.over), "not screened" if r.worst != r.worst else f"{r.worst:.2f}"]
+                       for c, r in by_class.iterrows()],
                       caption="Buildings above the collapse-risk target, by class"))
     shown = top_rows(flagged, "ratio_to_target", SCREENING_ROWS)
     rows = [[r.asset_id, r.building_class, r.site_id, _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),

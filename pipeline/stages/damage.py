@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from types import SimpleNamespace
 
 import numpy as np
 import pandas as pd
@@ -36,6 +37,9 @@ def _damage_group_key(inputs, code):
     """Everything a class's per-pair results depend on besides the pair's hazard curve."""
     cfg = inputs.config
     dss = inputs.library[code]
+    if not dss.has_damage_states:
+        return digest("damage-vulnerability", code, dss.im, dss.levels, dss.mean_loss_ratio, dss.cov,
+                      cfg.fragility.tail, list(cfg.output.loss_curve_ratios))
     return digest("damage", code, dss.im, list(dss.names), dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov,
                   dss.collapse_index, cfg.fragility.tail, cfg.fragility.crossing,
                   list(cfg.output.loss_curve_ratios))
@@ -103,23 +107,26 @@ def compute_block(inputs, block):
     dss = inputs.library[block.class_code]
     levels, rates = curves_for_im(inputs.hazard, dss.im)
     x, lam = levels[block.sites], rates[block.sites]
-    ds, below, above = dss.annual_rates(x, lam, tail=cfg.fragility.tail,
-                                        envelope=cfg.fragility.crossing == "envelope", diagnostics=True)
-    eal_ratio = expected_annual_loss(ds, dss.mean_damage_ratio)
-    curve = loss_exceedance_rates(ds, dss.mean_damage_ratio, np.asarray(cfg.output.loss_curve_ratios),
-                                  dss.cov)
+    envelope = cfg.fragility.crossing == "envelope"
+    ds, mdr, cov, below, above = dss.loss_states(x, lam, tail=cfg.fragility.tail, envelope=envelope,
+                                                 diagnostics=True)
+    eal_ratio = expected_annual_loss(ds, mdr)
+    curve = loss_exceedance_rates(ds, mdr, np.asarray(cfg.output.loss_curve_ratios), cov)
+    if not dss.has_damage_states:  # no damage-state rates: the bins of the integral are not kept
+        ds = np.zeros((len(block.sites), 0))
     model = inputs.hazard_model
     if not (model is not None and cfg.hazard.propagate_branches):
         return BlockResult(block, ds, below, above, eal_ratio, curve)
     # every logic-tree branch through the same kernels, then weighted fractiles over branches
     i = model.ims.index(dss.im)
     branch = model.branch_curves[:, :, i][:, :, block.sites].reshape((-1, len(block.sites), x.shape[-1]))
-    ds_b = dss.annual_rates(x, branch, tail=cfg.fragility.tail, envelope=cfg.fragility.crossing == "envelope")
+    ds_b, mdr_b, _ = dss.loss_states(x, branch, tail=cfg.fragility.tail, envelope=envelope)
     w = branch_weights(model)
+    eal_fractiles = weighted_fractiles(expected_annual_loss(ds_b, mdr_b), w, model.fractiles)
+    if not dss.has_damage_states:
+        ds_b = np.zeros(ds_b.shape[:-1] + (0,))
     return BlockResult(block, ds, below, above, eal_ratio, curve,
-                       ds_fractiles=weighted_fractiles(ds_b, w, model.fractiles),
-                       eal_fractiles=weighted_fractiles(expected_annual_loss(ds_b, dss.mean_damage_ratio), w,
-                                                        model.fractiles))
+                       ds_fractiles=weighted_fractiles(ds_b, w, model.fractiles), eal_fractiles=eal_fractiles)
 
 
 def _class_damage(inputs, plan, results):
@@ -201,29 +208,48 @@ def _asset_pairs(inputs, classes, codes, cls):
         cd, dss = classes[code], inputs.library[code]
         assets = np.flatnonzero(cls == k)
         pair = np.searchsorted(cd.sites, inputs.site_index[assets])
-        rate = cd.ds_rates[pair]  # (a, n_ds)
+        rate, mdr, cov = _pair_loss_states(inputs, cd, dss)
         out["pair"][assets] = pair
         out["eal_ratio"][assets] = cd.eal_ratio[pair]
         # per asset (its value and terms), from the pair's damage-state rates; closed form per state
-        out["eal_net"][assets] = _net_loss(rate, dss, value[assets], deductible[assets], limit[assets],
-                                           inputs.config.execution.max_workers)
-        out["collapse_rate"][assets] = rate[:, dss.collapse_index]
+        out["eal_net"][assets] = _net_loss(rate[pair], mdr if mdr.ndim == 1 else mdr[pair],
+                                           cov if cov.ndim == 1 else cov[pair], value[assets], deductible[assets],
+                                           limit[assets], inputs.config.execution.max_workers)
+        # a vulnerability class has no damage states, hence no collapse figure (NaN)
+        out["collapse_rate"][assets] = rate[pair, dss.collapse_index] if dss.has_damage_states else np.nan
         out["max_tail"][assets] = np.maximum(cd.share_below, cd.share_above).max(axis=-1)[pair]
     return out
 
 
-def _net_loss(rate, dss, value, deductible, limit, workers, min_rows=65536):
+def _pair_loss_states(inputs, cd, dss):
+    """Per pair of a class: rates [1/yr], mean loss ratios and CoVs [-] for the loss kernels.
+
+    The damage-state rates of the stage with the class's consequence model, or for a
+    vulnerability class the bins of its integral, recomputed from the pairs' curves (cheap;
+    they are not kept in the stage's product or cache).
+    """
+    if dss.has_damage_states:
+        return cd.ds_rates, dss.mean_damage_ratio, dss.cov
+    levels, rates = curves_for_im(inputs.hazard, dss.im)
+    return dss.loss_states(levels[cd.sites], rates[cd.sites], tail=inputs.config.fragility.tail)
+
+
+def _net_loss(rate, mdr, cov, value, deductible, limit, workers, min_rows=65536):
     """:func:`quakefolio.core.loss.expected_annual_net_loss` of many assets, in ``workers`` threads.
 
-    Each asset's value depends on its own row only, so cutting the rows into parts gives
-    the same numbers; the incomplete-beta evaluations run outside the GIL.
+    ``mdr`` and ``cov`` are the class's (one row) or one row per asset.  Each asset's value
+    depends on its own row only, so cutting the rows into parts gives the same numbers; the
+    incomplete-beta evaluations run outside the GIL.
     """
     parts = min(max(1, int(workers)), max(1, len(rate) // min_rows))
     if parts == 1:
-        return expected_annual_net_loss(rate, dss.mean_damage_ratio, dss.cov, value, deductible, limit)
+        return expected_annual_net_loss(rate, mdr, cov, value, deductible, limit)
+
+    def rows(a, lo, hi):
+        return a if a.ndim == 1 else a[lo:hi]
     bounds = np.linspace(0, len(rate), parts + 1).astype(np.int64)
     with ThreadPoolExecutor(max_workers=parts, thread_name_prefix="quakefolio-net-loss") as pool:
-        pieces = pool.map(lambda lo, hi: expected_annual_net_loss(rate[lo:hi], dss.mean_damage_ratio, dss.cov,
+        pieces = pool.map(lambda lo, hi: expected_annual_net_loss(rate[lo:hi], rows(mdr, lo, hi), rows(cov, lo, hi),
                                                                   value[lo:hi], deductible[lo:hi], limit[lo:hi]),
                           bounds[:-1], bounds[1:])
         return np.concatenate(list(pieces))
@@ -302,10 +328,11 @@ def _damage_rows(inputs, classes, codes, cls, pair, ids):
     sets = [inputs.library[c] for c in codes]
     n_states = np.array([d.n_states for d in sets], dtype=np.int64)
     rates = np.concatenate([classes[c].ds_rates.ravel() for c in codes])
+    # a vulnerability class has no damage states: no rows (its per-pair tail shares are left out)
+    shares = {k: np.concatenate([getattr(classes[c], f"share_{k}").ravel() for c, d in zip(codes, sets)
+                                 if d.has_damage_states] + [np.zeros(0)]) for k in ("below", "above")}
     values = {"rate": rates, "return_period": return_period(rates),
-              "prob": prob_in_years(rates, inputs.config.scenario.horizon_yr),
-              "below": np.concatenate([classes[c].share_below.ravel() for c in codes]),
-              "above": np.concatenate([classes[c].share_above.ravel() for c in codes])}
+              "prob": prob_in_years(rates, inputs.config.scenario.horizon_yr), **shares}
     return DamageRows(
         asset_id=ids, site_id=text_array(inputs.hazard.site_id), class_code=text_array(codes),
         class_im=text_array([d.im for d in sets]), state_names=text_array([n for d in sets for n in d.names]),
@@ -314,6 +341,11 @@ def _damage_rows(inputs, classes, codes, cls, pair, ids):
         pair_base=np.concatenate(([0], np.cumsum([classes[c].ds_rates.size for c in codes])))[:-1],
         cls=cls, pair=pair, site_index=np.asarray(inputs.site_index, dtype=np.int64), values=values,
         horizon=inputs.config.scenario.horizon_yr)
+
+
+def _prob_or_nan(rate, years):
+    """:func:`quakefolio.core.curves.prob_in_years`, NaN kept (no figure: a vulnerability class's collapse)."""
+    return np.where(np.isnan(rate), np.nan, prob_in_years(np.nan_to_num(rate, nan=0.0), years))
 
 
 def loss_curve_columns(ratios):
@@ -370,7 +402,7 @@ def build_tables(inputs, classes):
         "eal_net": per["eal_net"],
         "eal_ratio": per["eal_ratio"],
         "annual_collapse_rate": per["collapse_rate"],
-        "collapse_prob_in_horizon": prob_in_years(per["collapse_rate"], horizon),
+        "collapse_prob_in_horizon": _prob_or_nan(per["collapse_rate"], horizon),
         "horizon_yr": np.full(n, horizon),
         "max_tail_share": per["max_tail"],
     })
@@ -385,9 +417,15 @@ def build_tables(inputs, classes):
     if n_tail:
         warnings.append(
             f"{n_tail} assets draw more than {threshold:.0%} of a damage-state rate from beyond the tabulated "
-            f"hazard range (tail policy '{cfg.fragility.tail}'; see tail_share_* in asset_damage)")
+            f"hazard range (tail policy '{cfg.fragility.tail}'; see tail_share_* in asset_damage"
+            + ("; for a class given by a vulnerability table: of its EAL, max_tail_share in asset_loss)"
+               if any(not inputs.library[c].has_damage_states for c in codes) else ")"))
     return {"asset_damage": ChunkedTable(n, damage, int(damage.n_states[cls].sum()), ids),
             "asset_loss": asset_loss, "asset_loss_curve": ChunkedTable(n, curve, n, ids)}, warnings
+
+
+#: The damage states of a vulnerability class in the fractile rows: none.
+_NO_STATES = SimpleNamespace(names=(), n_states=0)
 
 
 def _fractile_tables(inputs, results):
@@ -401,6 +439,8 @@ def _fractile_tables(inputs, results):
     for res in sorted(results, key=lambda r: r.block.block_id):
         code = res.block.class_code
         dss = inputs.library[code]
+        if not dss.has_damage_states:
+            dss = _NO_STATES
         assets = np.flatnonzero((classes == code) & np.isin(inputs.site_index, res.block.sites))
         pair = np.searchsorted(res.block.sites, inputs.site_index[assets])
         for q, name in enumerate(names):

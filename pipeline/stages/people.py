@@ -98,6 +98,8 @@ def consequence_tables(inputs, classes, asset_loss):
     cas_unit, down, contents_ratio = np.full(n, np.nan), np.full(n, np.nan), np.full(n, np.nan)
     for k, code in enumerate(order):
         cd, dss = classes[code], inputs.library[code]
+        if not dss.has_damage_states:  # a vulnerability class gives no consequence per state: NaN, left out
+            continue
         assets = np.flatnonzero(cls == k)
         ds = cd.ds_rates[np.searchsorted(cd.sites, inputs.site_index[assets])]
         cas_unit[assets] = expected_annual_consequence(ds, dss.casualty_rate)
@@ -161,6 +163,10 @@ class PeopleModel:
 
 
 def _class_per_state(dss):
+    """Casualty rate, downtime, contents ratio and downtime per state, shape (n_ds, 4); NaN where not
+    given (a vulnerability class: one row of NaN, none given)."""
+    if not dss.has_damage_states:
+        return np.full((1, 4), np.nan)
     table = np.stack([dss.casualty_rate, dss.downtime_days, dss.contents_damage_ratio, dss.downtime_days], axis=1)
     return table
 
@@ -299,6 +305,8 @@ def _classical_same_branch(em, inputs, curves):
     f_bar = _present_fraction(inputs.config)
     total = np.zeros(len(QUANTITIES))
     for code, assets, i_im, dss, usites, pair in em.classes:
+        if not dss.has_damage_states:  # no consequences given (weights 0)
+            continue
         ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)
         per_pair = np.stack([expected_annual_consequence(ds, people.per_state[code][:, k])
                              for k in range(len(QUANTITIES))], axis=1)
@@ -323,7 +331,8 @@ def people_cache_key(inputs):
     used = sorted(set(inputs.exposure.building_class.unique()))
     return {"occupancy_periods": [dict(p) for p in (inputs.config.exposure.occupancy_periods or ())],
             "classes": {c: [lib[c].casualty_rate.tolist(), lib[c].downtime_days.tolist(),
-                            lib[c].contents_damage_ratio.tolist()] for c in used}}
+                            lib[c].contents_damage_ratio.tolist()] if lib[c].has_damage_states else "vulnerability"
+                        for c in used}}
 
 
 # --- what-if --------------------------------------------------------------------------------------

@@ -66,6 +66,7 @@ from quakefolio.core.errors import InputError, locate_toml_line
 from quakefolio.core.events.eventset import EVENT_BLOCK_SIZE
 from quakefolio.core.events.gmf import EIGEN_MAX_SITES
 from quakefolio.core.hazard import DisaggBins
+from quakefolio.core.vulnerability import SUB_BINS
 from quakefolio.fragility.library import read_toml
 from quakefolio.pipeline.io.source_model import RuptureLimit
 
@@ -513,7 +514,9 @@ def check_hazard_work(config, n_ruptures, n_sites, n_ims, budget):
 def _damage_stage(inputs, d):
     cfg = inputs.config
     codes = set(inputs.exposure.building_class.unique())
-    states = max(len(inputs.library[c].medians) for c in codes)
+    # a vulnerability class: the bins of its integral (about SUB_BINS per hazard and table level)
+    states = max(len(inputs.library[c].medians) if inputs.library[c].has_damage_states
+                 else SUB_BINS * (len(inputs.library[c].levels) + d.levels) for c in codes)
     ratios = len(cfg.output.loss_curve_ratios)
     model = inputs.hazard_model
     branches = 1 + (len(model.source_branches) * len(model.gmm_branches)
