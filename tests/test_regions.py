@@ -1,0 +1,116 @@
+"""Tectonic regions of sources: source-model key, rupture storage, config branches, pipeline hazard, site inputs."""
+import shutil
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from quakefolio.core.gmm import TECTONIC_REGIONS, get_gmm
+from quakefolio.core.hazard import compute_site_hazard, rupture_ground_motion
+from quakefolio.core.sources.mfd import single_magnitude
+from quakefolio.core.sources.ruptures import RuptureSet, point_source_ruptures
+from quakefolio.pipeline import stages
+from quakefolio.pipeline.io.gmm_regions import parse_region_branches
+from quakefolio.pipeline.io.source_model import load_source_model
+from quakefolio.pipeline.stages import hazard as hazard_stage
+
+from conftest import MINI
+
+BROKEN = MINI.parent / "broken"
+#: The mini source model plus an invented intraslab point source (tests/data/broken/...).
+SLAB_SOURCES = BROKEN / "config_region_without_branches" / "sources.toml"
+
+
+def _point(sid, depth=10.0, layer=(0.0, 20.0)):
+    return point_source_ruptures(sid, 10.0, 20.0, mfd=single_magnitude(6.0, 0.01), hypo_depths=[(depth, 1.0)],
+                                 mechanisms=[(0.0, 90.0, 0.0, 1.0)], upper_depth_km=layer[0],
+                                 lower_depth_km=layer[1])
+
+
+def test_ruptures_are_active_crustal_by_default_and_keep_their_region():
+    a = _point("a")
+    assert a.regions == ("active_crustal",) and a.region_code.dtype == np.int8 and not a.region_code.any()
+    b = _point("b", 60.0, (40.0, 80.0)).with_region("subduction_interface")
+    both = RuptureSet.concat([a, b])
+    assert [TECTONIC_REGIONS[c] for c in both.region_code] == ["active_crustal", "subduction_interface"]
+    assert both.subset([1]).regions == ("subduction_interface",)
+    assert RuptureSet.empty().region_code.size == 0
+    with pytest.raises(ValueError, match="unknown tectonic region"):
+        a.with_region("ocean")
+
+
+def test_source_model_region_key():
+    sm = load_source_model(SLAB_SOURCES)
+    rows = {r["source_id"]: r for r in sm.sources}
+    assert rows["test_fault"]["region"] == "active_crustal" and rows["test_slab"]["region"] == "subduction_intraslab"
+    slab = sm.ruptures.source_index == sm.ruptures.source_ids.index("test_slab")
+    assert (sm.ruptures.region_code[slab] == TECTONIC_REGIONS.index("subduction_intraslab")).all()
+    assert not sm.ruptures.region_code[~slab].any()
+    # the mini model has no region key: every rupture stays active crustal (bit for bit the same set)
+    assert not load_source_model(MINI / "sources.toml").ruptures.region_code.any()
+
+
+def test_region_branches_parse():
+    got = parse_region_branches({"subduction_interface": [{"model": "AG16", "weight": 1.0}],
+                                 "stable_continental": [{"model": "PZT11", "weight": 1}]})
+    assert got == {"subduction_interface": [{"model": "AG16", "weight": 1.0, "id": "AG16"}],
+                   "stable_continental": [{"model": "PZT11", "weight": 1.0, "id": "PZT11"}]}
+    for bad, msg in [({"active_crustal": []}, "gmm_branches"), ({"subduction_inslab": []}, "did you mean"),
+                     ({"subduction_intraslab": [{"model": "AG16", "weight": 0.5}]}, "sum to 1")]:
+        with pytest.raises(Exception, match=msg):
+            parse_region_branches(bad)
+
+
+def test_event_ground_motion_refuses_other_regions():
+    slab = _point("s", 60.0, (40.0, 80.0)).with_region("subduction_intraslab")
+    with pytest.raises(ValueError, match="active-crustal ruptures only"):
+        rupture_ground_motion(np.array([10.0]), np.array([20.0]), np.array([400.0]), slab, [get_gmm("AG16")],
+                              ["PGA"], ref=(10.0, 20.0))
+
+
+@pytest.fixture()
+def slab_config(tmp_path):
+    dst = tmp_path / "mini"
+    shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
+    shutil.copy(SLAB_SOURCES, dst / "sources_slab.toml")
+    text = (dst / "quakefolio_compute.toml").read_text()
+    text = text.replace('{ file = "sources.toml", weight = 0.6 }', '{ file = "sources_slab.toml", weight = 0.6 }')
+    text = text.replace('truncation_sigma = 3.0', 'truncation_sigma = 3.0\nregion_gmm_branches = '
+                        '{ subduction_intraslab = [{ model = "AG16", weight = 1.0 }] }\nsite_backarc = true')
+    text += "\n[portfolio]\nevent_based = false\n"
+    (dst / "quakefolio_compute.toml").write_text(text)
+    exposure = (dst / "exposure.csv").read_text().splitlines()
+    extra = [",z1p0_km,backarc", ",0.4,0", ",,", ",,", ",,", ",,"]
+    (dst / "exposure.csv").write_text("\n".join(line + e for line, e in zip(exposure, extra)) + "\n")
+    return dst / "quakefolio_compute.toml"
+
+
+def test_pipeline_hazard_sums_the_regions(slab_config):
+    # Mean curve = sum over regions of each region's weighted-mean curve (linearity of the
+    # hazard sum, Cornell 1968): recomputed here per region with the core engine.
+    inputs = stages.load_inputs(slab_config)
+    model, haz = inputs.hazard_model, inputs.hazard
+    assert set(model.region_branches) == {"subduction_intraslab"}
+    first = inputs.site_index[0]  # the first asset says forearc, the others take site_backarc = true
+    backarc = model.site_fields["backarc"]
+    assert backarc[first] == 0.0 and (np.delete(backarc, first) == 1.0).all()
+    z1 = model.site_fields["z1p0_km"]
+    assert z1[first] == 0.4 and np.isnan(np.delete(z1, first)).all()
+    parts = [hazard_stage.hazard_block(model, haz, b) for b in hazard_stage.site_blocks(len(haz.site_id), 2)]
+    model, _ = hazard_stage.combine_hazard(model, haz, parts)
+    kw = dict(truncation_sigma=3.0, max_distance_km=150.0, ref=model.ref)
+    crust = [get_gmm("BSSA14"), get_gmm("CB14")]
+    expected = 0.0
+    for (_, ws, src) in model.source_branches:
+        rs = src.ruptures
+        codes = rs.region_code
+        c = compute_site_hazard(haz.lon, haz.lat, model.site_vs30, rs.subset(codes == 0), crust, model.ims,
+                                model.levels_g, site_fields=dict(model.site_fields), **kw)
+        expected = expected + ws * 0.5 * (c[0] + c[1])
+        if codes.any():
+            s = compute_site_hazard(haz.lon, haz.lat, model.site_vs30, rs.subset(codes > 0), crust[:1], model.ims,
+                                    model.levels_g, site_fields=dict(model.site_fields),
+                                    region_branches={"subduction_intraslab": [(1.0, get_gmm("AG16"))]}, **kw)[0]
+            assert s.max() > 0
+            expected = expected + ws * s
+    assert_allclose(model.statistics["mean"], expected, rtol=1e-12)
