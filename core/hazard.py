@@ -46,7 +46,7 @@ from scipy.special import ndtr, ndtri
 
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.events.gmf import ln_im
-from quakefolio.core.pairs import block_pairs, pair_blocks, pair_segments, pair_values, region_parts
+from quakefolio.core.pairs import block_pairs, model_input, pair_blocks, pair_segments, pair_values, region_parts
 
 __all__ = [
     "exceedance_probability",
@@ -529,6 +529,7 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     ----------
     site_lon, site_lat : array_like, shape (n_sites,) [deg]
     site_vs30 : array_like, shape (n_sites,) [m/s]
+        Each model takes it clamped to its own range (:func:`quakefolio.core.pairs.model_input`).
     ruptures : quakefolio.core.sources.ruptures.RuptureSet
     gmms : sequence of ground-motion models (``quakefolio.core.gmm``)
         The branches of the active-crustal ruptures, evaluated on the same pairs
@@ -593,7 +594,7 @@ def _part_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, lnx, trunca
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref, site_fields):
         n_blk = blk.stop - blk.start
         for g, gmm in enumerate(gmms):
-            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
+            ln_median, sigma = pair_values(gmm.evaluate(model_input(inp, gmm), list(ims)), cells)
             for i in range(len(ims)):
                 out[g, i, blk] = hazard_from_pairs(lnx, ln_median[i], sigma[i], rate, starts, owners, n_blk,
                                                    truncation_sigma)
@@ -637,7 +638,7 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
                 site_lon, site_lat, site_vs30, part, max_distance_km, region, site_block, ref, site_fields):
             n_blk = blk.stop - blk.start
             for gmm, w in weighted:
-                ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
+                ln_median, sigma = pair_values(gmm.evaluate(model_input(inp, gmm), list(ims)), cells)
                 for i in range(len(ims)):
                     c, m = disaggregation_from_pairs(
                         ln_targets[i, blk], ln_median[i], sigma[i], rate, site, part.mag[rup], d["rrup_km"],
@@ -650,7 +651,7 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
 # --- event-based ground motion: the same pairs and GMM inputs as the classical engine ----------
 
 def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *, max_distance_km=200.0,
-                          region="global", ref, evaluate=None):
+                          region="global", ref, evaluate=None, site_fields=None):
     r"""Ln median [ln g], tau and phi [ln units] of every (model, IM, site, rupture).
 
     The (site, rupture) pairs within the integration distance and their ground-motion
@@ -662,7 +663,7 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     site_lon, site_lat : ndarray, shape (n_sites,) [deg]
     site_vs30 : ndarray, shape (n_sites,) [m/s]
     ruptures : quakefolio.core.sources.ruptures.RuptureSet
-        ``n_ruptures`` ruptures.
+        ``n_ruptures`` ruptures, of any tectonic regions.
     gmms : sequence of ground-motion models
     ims : sequence of str
     max_distance_km : float
@@ -670,9 +671,13 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     region : str
     ref : (lon, lat) [deg]
         Reference point of the local projection.
-    evaluate : array_like of int or None
-        Indices of the models to evaluate (default: all); the others keep the values of
-        pairs beyond the integration distance.
+    evaluate : array_like of int, mapping of int to array_like of int, or None
+        Indices of the models to evaluate (default: all), for every rupture or, as a
+        mapping, per tectonic region code of the ruptures (a code not in it: none); the
+        others keep the values of pairs beyond the integration distance.
+    site_fields : dict of str to ndarray, shape (n_sites,), or None
+        Per-site ``z1p0_km``, ``z2p5_km`` [km] (NaN: the model's own Vs30 relation) and
+        ``backarc`` (0 or 1), as :func:`compute_site_hazard`.
 
     Returns
     -------
@@ -683,32 +688,47 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     Raises
     ------
     ValueError
-        If a model to evaluate gives only a total sigma (``has_tau_phi`` False), or a
-        rupture is not active crustal.
+        If a model to evaluate gives only a total sigma (``has_tau_phi`` False), or is
+        not made for the tectonic region of a rupture it is to evaluate.
     """
-    if ruptures.region_code.any():
-        raise ValueError("event ground motion takes active-crustal ruptures only (the tectonic regions' own "
-                         "models are not wired into the event set yet)")
+    from quakefolio.core.gmm import TECTONIC_REGIONS
+
     n_im = len(ims)
     mu = np.full((len(gmms), n_im, len(site_lon), len(ruptures.mag)), -np.inf)
     tau = np.zeros_like(mu)
     phi = np.zeros_like(mu)
-    si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
-    if inp is None:
-        return mu, tau, phi
-    for g in (range(len(gmms)) if evaluate is None else evaluate):
-        if not gmms[g].has_tau_phi:
-            raise ValueError(f"{gmms[g].name}: the model gives only a total sigma; event ground motion needs "
-                             "its between- and within-event parts (tau, phi)")
-        res = gmms[g].evaluate(inp, ims)
-        mu[g][:, si, ri] = res.ln_median
-        tau[g][:, si, ri] = res.tau
-        phi[g][:, si, ri] = res.phi
+    fields = {k: np.asarray(v, dtype=float) for k, v in (site_fields or {}).items() if v is not None}
+    codes = ruptures.region_code
+    for code in np.unique(codes):
+        wanted = range(len(gmms)) if evaluate is None else (
+            evaluate.get(int(code), ()) if isinstance(evaluate, dict) else evaluate)
+        wanted = [int(g) for g in wanted]
+        if not wanted:
+            continue
+        name = TECTONIC_REGIONS[code]
+        for g in wanted:
+            if not gmms[g].has_tau_phi:
+                raise ValueError(f"{gmms[g].name}: the model gives only a total sigma; event ground motion needs "
+                                 "its between- and within-event parts (tau, phi)")
+            if name not in getattr(gmms[g], "tectonic_regions", TECTONIC_REGIONS[:1]):
+                raise ValueError(f"{gmms[g].name} is not a model of the {name} region of the ruptures it is to "
+                                 "evaluate")
+        idx = np.flatnonzero(codes == code)
+        part = ruptures if idx.size == codes.size else ruptures.subset(idx)
+        si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, part, max_distance_km, ref, region,
+                                           **fields)
+        if inp is None:
+            continue
+        for g in wanted:
+            res = gmms[g].evaluate(model_input(inp, gmms[g]), ims)
+            mu[g][:, si, idx[ri]] = res.ln_median
+            tau[g][:, si, idx[ri]] = res.tau
+            phi[g][:, si, idx[ri]] = res.phi
     return mu, tau, phi
 
 
 def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, event_gmm, gmms, ims, *,
-                        max_distance_km=200.0, region="global", ref):
+                        max_distance_km=200.0, region="global", ref, site_fields=None):
     r"""Ln median [ln g], tau and phi [ln units] of each event's ground motion at each site.
 
     Parameters
@@ -718,10 +738,11 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     event_rupture : ndarray of int, shape (n_events,)
         Rupture of each event (index into ``ruptures``).
     event_gmm : ndarray of int, shape (n_events,)
-        Ground-motion model of each event (index into ``gmms``).
+        Ground-motion model of each event (index into ``gmms``; a model of the tectonic
+        region of the event's rupture).
     gmms : sequence of ground-motion models
     ims : sequence of str
-    max_distance_km, region, ref
+    max_distance_km, region, ref, site_fields
         As :func:`rupture_ground_motion`.
 
     Returns
@@ -732,16 +753,19 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     Notes
     -----
     Each distinct rupture of the events is evaluated once, with only the models the
-    events use (:func:`rupture_ground_motion`); the event field is then
-    :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
+    events of its tectonic region use (:func:`rupture_ground_motion`); the event field is
+    then :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
     :func:`quakefolio.core.events.gmf.ln_im`).
     """
     ev_rup = np.asarray(event_rupture)
     g_ev = np.asarray(event_gmm)
     uniq, inv = np.unique(ev_rup, return_inverse=True)
-    mu, tau, phi = rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures.subset(uniq), gmms, list(ims),
+    subset = ruptures.subset(uniq)
+    code = subset.region_code[inv]
+    evaluate = {int(c): np.unique(g_ev[code == c]) for c in np.unique(code)}
+    mu, tau, phi = rupture_ground_motion(site_lon, site_lat, site_vs30, subset, gmms, list(ims),
                                          max_distance_km=max_distance_km, region=region, ref=ref,
-                                         evaluate=np.unique(g_ev))
+                                         evaluate=evaluate, site_fields=site_fields)
     # (n_ev, n_im, n_sites): gather each event's model and rupture
     return mu[g_ev, :, :, inv], tau[g_ev, :, :, inv], phi[g_ev, :, :, inv]
 

@@ -12,13 +12,15 @@ ground motion).
 """
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
 from quakefolio.core.gmm import TECTONIC_REGIONS, GmmInput
 from quakefolio.core.sources.geometry import aeqd_forward, mean_position, pair_distances, rupture_distances, site_rupture_mask
 
 __all__ = ["DENSE_SHARE", "pair_segments", "block_pairs", "pair_blocks", "pair_values", "hypocentres_km",
-           "extra_fields", "region_parts"]
+           "extra_fields", "region_parts", "model_input"]
 
 #: Index of the intraslab region in :data:`quakefolio.core.gmm.TECTONIC_REGIONS`.
 _INTRASLAB = TECTONIC_REGIONS.index("subduction_intraslab")
@@ -339,3 +341,34 @@ def region_parts(ruptures, region_branches):
             raise ValueError(f"{name} branch weights must be non-negative and sum to 1, got {weights.tolist()}")
         parts.append((ruptures.subset(codes == code), list(branches)))
     return parts
+
+
+def model_input(inp, gmm):
+    """The ground-motion input as model ``gmm`` takes it: Vs30 clamped to the model's range.
+
+    The stated rule of the engine for a Vs30 outside a model's range of applicability
+    (``gmm.applicability["vs30_mps"]``, [m/s], from the model's paper): each model takes
+    the nearest end of its own range (other models of the run see the site's own Vs30),
+    rather than extrapolating its site term; the run warns about such sites
+    (:mod:`quakefolio.pipeline.stages.plausibility`) and records the rule in its manifest.
+
+    Parameters
+    ----------
+    inp : GmmInput
+    gmm : ground-motion model
+        With ``applicability`` (a model without a Vs30 range takes ``inp`` as it is).
+
+    Returns
+    -------
+    GmmInput
+        ``inp`` itself when every Vs30 lies within the range, else a copy with
+        ``vs30_mps`` clipped to it.
+    """
+    span = getattr(gmm, "applicability", {}).get("vs30_mps")
+    if span is None or inp.vs30_mps is None:
+        return inp
+    vs30 = np.asarray(inp.vs30_mps, dtype=float)
+    lo, hi = float(span[0]), float(span[1])
+    if vs30.min(initial=lo) >= lo and vs30.max(initial=hi) <= hi:
+        return inp
+    return replace(inp, vs30_mps=np.clip(vs30, lo, hi))

@@ -7,6 +7,7 @@ from numpy.testing import assert_allclose
 
 from quakefolio.core.gmm import TECTONIC_REGIONS, get_gmm
 from quakefolio.core.hazard import compute_site_hazard, rupture_ground_motion
+from quakefolio.core.pairs import block_pairs
 from quakefolio.core.sources.mfd import single_magnitude
 from quakefolio.core.sources.ruptures import RuptureSet, point_source_ruptures
 from quakefolio.pipeline import stages
@@ -61,11 +62,36 @@ def test_region_branches_parse():
             parse_region_branches(bad)
 
 
-def test_event_ground_motion_refuses_other_regions():
+def test_event_ground_motion_takes_each_region_with_its_own_models():
+    # An intraslab rupture evaluated with AG16 gives the model's own values at the pair's inputs
+    # (hypocentral distance, intraslab, backarc), the same as the classical engine's pairs
+    # (compute_site_hazard's closed form, Cornell 1968, in tests/test_gmm_oracle_regions.py).
+    from quakefolio.core.gmm import GmmInput
+    from quakefolio.core.hazard import event_ground_motion
+
+    crust = _point("c")
     slab = _point("s", 60.0, (40.0, 80.0)).with_region("subduction_intraslab")
-    with pytest.raises(ValueError, match="active-crustal ruptures only"):
-        rupture_ground_motion(np.array([10.0]), np.array([20.0]), np.array([400.0]), slab, [get_gmm("AG16")],
-                              ["PGA"], ref=(10.0, 20.0))
+    both = RuptureSet.concat([crust, slab])
+    lon, lat, vs30 = np.array([10.0, 10.5]), np.array([20.0, 20.0]), np.array([400.0, 760.0])
+    models = [get_gmm("BSSA14"), get_gmm("AG16")]
+    fields = {"backarc": np.array([0.0, 1.0])}
+    mu, tau, phi = event_ground_motion(lon, lat, vs30, both, np.array([1, 0, 1]), np.array([1, 0, 1]), models,
+                                       ["PGA"], max_distance_km=300.0, ref=(10.0, 20.0), site_fields=fields)
+    _, _, _, _, inp, _ = block_pairs(lon, lat, vs30, slab, 300.0, (10.0, 20.0), "global", backarc=fields["backarc"])
+    # 0.5 deg of longitude at 20 N on a sphere of radius 6371 km: 52.24 km (spherical arc, common practice)
+    assert_allclose(inp.rhyp_km, np.hypot([0.0, 0.5 * np.pi / 180 * 6371.0 * np.cos(np.radians(20.0))], 60.0),
+                    rtol=1e-3)
+    want = get_gmm("AG16").evaluate(GmmInput(mag=6.0, vs30_mps=vs30, rhyp_km=inp.rhyp_km, zhyp_km=60.0, intraslab=1,
+                                             backarc=fields["backarc"]), ["PGA"])
+    assert_allclose(mu[0, 0], want.ln_median[0], rtol=1e-12)
+    assert_allclose(mu[2], mu[0], rtol=0)
+    assert_allclose(tau[0, 0], want.tau[0], rtol=1e-12)
+    assert np.isfinite(mu[1]).all()  # the crustal event with BSSA14
+    with pytest.raises(ValueError, match="not a model of the subduction_intraslab region"):
+        rupture_ground_motion(lon, lat, vs30, slab, [get_gmm("BSSA14")], ["PGA"], ref=(10.0, 20.0))
+    with pytest.raises(ValueError, match="PZT11: the model gives only a total sigma"):
+        rupture_ground_motion(lon, lat, vs30, crust.with_region("stable_continental"), [get_gmm("PZT11")], ["PGA"],
+                              ref=(10.0, 20.0))
 
 
 @pytest.fixture()
@@ -114,3 +140,30 @@ def test_pipeline_hazard_sums_the_regions(slab_config):
             assert s.max() > 0
             expected = expected + ws * s
     assert_allclose(model.statistics["mean"], expected, rtol=1e-12)
+
+
+@pytest.fixture()
+def slab_events_config(slab_config):
+    text = slab_config.read_text().replace("event_based = false", "event_based = true\nyears = 4000\nseed = 7")
+    slab_config.write_text(text)
+    return slab_config
+
+
+def test_event_stage_draws_each_regions_models(slab_events_config):
+    from quakefolio.pipeline.stages.events import event_chunk, event_chunks, prepare_events
+
+    inputs = stages.load_inputs(slab_events_config)
+    em = prepare_events(inputs)
+    assert em.gmm_ids == ["BSSA14", "CB14", "AG16"]
+    code = em.ruptures.region_code[em.events.rupture]
+    ids = np.array(em.gmm_ids)[em.gmm_of_event]
+    assert (ids[code > 0] == "AG16").all() and set(ids[code == 0]) == {"BSSA14", "CB14"}
+    # intraslab events: Poisson count of the slab's 0.01/yr in the 0.6 of the years of its source branch
+    # (whole logic tree); mean = variance = 24, within 5 standard deviations (common practice)
+    expected = 0.01 * 0.6 * 4000
+    assert abs(int((code > 0).sum()) - expected) < 5 * np.sqrt(expected)
+    assert set(em.site_fields) == {"backarc", "z1p0_km"}
+    again = prepare_events(stages.load_inputs(slab_events_config))
+    assert np.array_equal(again.gmm_of_event, em.gmm_of_event)
+    part = event_chunk(em, event_chunks(em)[0])
+    assert np.isfinite(part.ground_up).all() and part.ground_up.max() > 0

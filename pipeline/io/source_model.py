@@ -130,8 +130,9 @@ class _Tally:
 class SourceModel:
     """A parsed source model: its ruptures, per-source summary and provenance.
 
-    ``magnitudes`` holds per source ``(row, column, smallest, largest magnitude [Mw])`` with
-    the line and key of its ``mfd`` (for checks against the ground-motion models), and
+    ``magnitudes`` holds per source ``(row, column, smallest, largest magnitude [Mw], tectonic
+    region)`` with the line and key of its ``mfd`` (for checks against the region's
+    ground-motion models), and
     ``warnings`` the doubts found in the file (:class:`~quakefolio.core.errors.InputWarning`).
     """
 
@@ -194,7 +195,8 @@ def _source(kind, i, src, settings, seen, path, text, tally):
         rs = rs.with_region(region)
     notes = [InputWarning(path, f"{kind[:-1]} {sid!r}: {msg}", row=place.locate(key), column=place.column_of(key))
              for key, msg in doubts]
-    mags = (place.locate("mfd"), place.column_of("mfd"), float(rs.mag.min()), float(rs.mag.max())) if len(rs) else None
+    mags = (place.locate("mfd"), place.column_of("mfd"), float(rs.mag.min()), float(rs.mag.max()),
+            region) if len(rs) else None
     row = {"source_id": sid, "kind": kind[:-1], "region": region, **info, "n_ruptures": len(rs), "total_rate": float(rs.rate.sum())}
     return rs, row, mags, notes
 

@@ -23,7 +23,8 @@ from quakefolio.core.errors import InputError, locate_toml_line
 from quakefolio.core.gmm import get_gmm
 from quakefolio.pipeline.io.gmm_regions import missing_regions
 
-__all__ = ["region_model_branches", "check_source_regions", "site_inputs", "SITE_INPUT_COLUMNS"]
+__all__ = ["region_model_branches", "check_source_regions", "site_inputs", "event_region_models", "site_input_record",
+           "SITE_INPUT_COLUMNS"]
 
 #: Optional exposure columns that become per-site ground-motion inputs.
 SITE_INPUT_COLUMNS = ("z1p0_km", "z2p5_km", "backarc")
@@ -50,7 +51,7 @@ def _error(config, message, section, key):
 
 
 def check_source_regions(config, sources):
-    """Every source region has branches, and the stages that take active-crustal sources only see no other.
+    """Every source region has branches, and with the event-based portfolio models with tau and phi.
 
     Parameters
     ----------
@@ -65,8 +66,8 @@ def check_source_regions(config, sources):
     Raises
     ------
     InputError
-        Naming the config key: a region without ``region_gmm_branches``; sources of
-        another region with the event-based portfolio or the conditional mean spectrum on.
+        Naming the config key: a region without ``region_gmm_branches``; with the
+        event-based portfolio, a region model that gives only a total sigma.
     """
     from quakefolio.core.gmm import TECTONIC_REGIONS
 
@@ -78,13 +79,13 @@ def check_source_regions(config, sources):
         if missing:
             raise _error(config, f"source model {bid!r} has {missing[0]} sources but region_gmm_branches gives "
                                  f"no ground-motion branches for {missing[0]}", "hazard", "source_models")
-    others = sorted(present - {"active_crustal"})
-    if others and config.portfolio.event_based:
-        raise _error(config, f"the event-based portfolio takes active-crustal sources only so far; the source models "
-                             f"have {', '.join(others)} sources: set event_based = false", "portfolio", "event_based")
-    if others and config.hazard.cms_conditioning_ims:
-        raise _error(config, f"the conditional mean spectrum takes active-crustal sources only so far; the source "
-                             f"models have {', '.join(others)} sources", "hazard", "cms_conditioning_ims")
+    if config.portfolio.event_based:
+        for region in sorted(present - {"active_crustal"}):
+            for b in config.hazard.region_gmm_branches[region]:
+                if not get_gmm(b["model"]).has_tau_phi:
+                    raise _error(config, f"{region} model {b['model']} gives only a total sigma; the event-based "
+                                         "portfolio needs its between- and within-event parts (tau, phi)",
+                                 "hazard", "region_gmm_branches")
     return tuple(r for r in TECTONIC_REGIONS if r in present)
 
 
@@ -121,3 +122,90 @@ def site_inputs(exposure, site_index, n_sites, default_backarc):
     flag = np.where(np.isfinite(flag), flag, 1.0 if default_backarc else 0.0)
     out["backarc"] = (np.bincount(idx, weights=flag, minlength=n_sites) > 0).astype(float)
     return out
+
+
+def event_region_models(model, ruptures, gmm_of_event, event_rupture, seed):
+    """Ground-motion model of every event, the other regions' events drawing from their region's branches.
+
+    Events of active-crustal ruptures keep their model (``gmm_of_event``, an index into
+    ``model.gmm_branches``); an event of another region's rupture takes one of its
+    region's models, drawn by branch weight from the uniform number of the event in the
+    stream :data:`~quakefolio.core.events.eventset.STREAM_REGION_GMM_CHOICE` (one draw per
+    event of the whole set, so independent of chunking).  Over many events each region's
+    models enter with their weights: the event set's mean hazard is the classical mean
+    (:func:`quakefolio.core.hazard.compute_site_hazard`, regions are independent parts of
+    the sum).
+
+    Parameters
+    ----------
+    model : quakefolio.pipeline.stages.hazard.HazardModel
+    ruptures : quakefolio.core.sources.ruptures.RuptureSet
+        The event set's ruptures.
+    gmm_of_event : ndarray of int, shape (n_events,)
+    event_rupture : ndarray of int, shape (n_events,)
+        Rupture of each event (index into ``ruptures``).
+    seed : int
+
+    Returns
+    -------
+    gmm_of_event : ndarray of int64, shape (n_events,)
+        Index into ``models``.
+    models : list of ground-motion models
+        The active-crustal branches' models, then each other region's distinct models.
+    ids : list of str
+        Their ids (branch ids; a region model by its name).
+    """
+    from quakefolio.core.events.eventset import STREAM_REGION_GMM_CHOICE, stream_rng
+    from quakefolio.core.gmm import TECTONIC_REGIONS
+
+    models = [g for _, _, g in model.gmm_branches]
+    ids = [i for i, _, _ in model.gmm_branches]
+    code = ruptures.region_code[np.asarray(event_rupture, dtype=np.int64)]
+    if not code.any():
+        return np.asarray(gmm_of_event, dtype=np.int64), models, ids
+    out = np.array(gmm_of_event, dtype=np.int64)
+    u = stream_rng(seed, STREAM_REGION_GMM_CHOICE).random(len(out))
+    for c in np.unique(code[code > 0]):
+        rows = model.region_branches[TECTONIC_REGIONS[c]]
+        index = []
+        for _, _, g in rows:
+            if g.name not in ids[len(model.gmm_branches):]:
+                models.append(g)
+                ids.append(g.name)
+            index.append(len(model.gmm_branches) + ids[len(model.gmm_branches):].index(g.name))
+        cum = np.cumsum([w for _, w, _ in rows])
+        ev = np.flatnonzero(code == c)
+        pick = np.minimum(np.searchsorted(cum / cum[-1], u[ev], side="right"), len(rows) - 1)
+        out[ev] = np.asarray(index, dtype=np.int64)[pick]
+    return out, models, ids
+
+
+def site_input_record(model):
+    """What the run's models took as site inputs, for the run's manifest.
+
+    Parameters
+    ----------
+    model : quakefolio.pipeline.stages.hazard.HazardModel
+
+    Returns
+    -------
+    dict
+        ``vs30_rule`` (the stated rule, :func:`quakefolio.core.pairs.model_input`),
+        ``vs30_clamped_sites`` (per model, the hazard sites whose Vs30 it takes clamped),
+        ``basin_depth_sites`` (per column, the sites with a given depth, of ``hazard_sites``),
+        ``basin_depth_rules`` (per model with a basin term: the depth it takes and its rule
+        where a site gives none; the others have no basin term) and ``backarc_sites``.
+    """
+    every = list(model.gmm_branches) + [b for rows in model.region_branches.values() for b in rows]
+    vs30 = np.asarray(model.site_vs30, dtype=float)
+    clamped, rules = {}, {}
+    for gid, _, gmm in every:
+        span = gmm.applicability.get("vs30_mps")
+        clamped[gid] = 0 if span is None else int(((vs30 < span[0]) | (vs30 > span[1])).sum())
+        rules[gid] = "no basin term" if gmm.basin_input is None else f"{gmm.basin_input[0]}; {gmm.basin_input[1]}"
+    given = {col: int(np.isfinite(model.site_fields[col]).sum()) if col in model.site_fields else 0
+             for col in ("z1p0_km", "z2p5_km")}
+    backarc = model.site_fields.get("backarc")
+    return {"vs30_rule": "each ground-motion model takes Vs30 clamped to its range of applicability",
+            "vs30_clamped_sites": clamped, "basin_depth_sites": given, "basin_depth_rules": rules,
+            "hazard_sites": int(vs30.size), "backarc_sites": 0 if backarc is None else int(np.sum(backarc))}
