@@ -530,6 +530,56 @@ def test_intraslab_point_source_through_the_engine_matches_closed_form():
     assert got[0, 0, :, 0].min() > 0.99 * nu and got[0, 0, 0, -1] < 1e-2 * nu
 
 
+def test_interface_fault_through_the_engine_matches_closed_form():
+    r"""compute_site_hazard on one interface rupture: nu (1 - Phi(eps)) with AG16 at Rrup (Cornell 1968).
+
+    Invented source: a planar interface fault, trace due north along 140 E from 10.45 S to
+    9.55 S (100 km), dipping 20 degrees east between 10 and 30 km depth, M 8.5 at 1e-3 per
+    year; the magnitude's rupture is larger than the fault, so its one rupture is the whole
+    plane. Sites due east of the trace's midpoint at 0 to 250 km (exact in the engine's
+    projection about it), one of them in the backarc. Rrup closed form: in the vertical
+    section through the sites the plane is the segment s (cos d, sin d), s from 10/sin d
+    to 30/sin d, so a site at x has Rrup = |(x, 0) - t (cos d, sin d)| with
+    t = clip(x cos d) (the segment's nearest point; the sites face the middle of the
+    100 km length). The hazard takes the model's median and sigma at that Rrup and, as an
+    independent oracle, pygmm's scalar AG16 (interface, dist_rup).
+    """
+    from quakefolio.core.sources.mfd import single_magnitude
+    from quakefolio.core.sources.ruptures import planar_fault_ruptures
+
+    nu, mag, dip = 1e-3, 8.5, np.radians(20.0)
+    rs = planar_fault_ruptures("interface", [[140.0, -10.45], [140.0, -9.55]], dip_deg=20.0, upper_depth_km=10.0,
+                               lower_depth_km=30.0, rake_deg=90.0, mfd=single_magnitude(mag, nu))
+    rs = rs.with_region("subduction_interface")
+    assert len(rs) == 1 and rs.ztor_km[0] == 10.0 and rs.zbot_km[0] == 30.0
+    x = np.array([0.0, 30.0, 60.0, 100.0, 150.0, 250.0])
+    lon, lat = _sites_east(x)
+    t = np.clip(x * np.cos(dip), 10.0 / np.sin(dip), 30.0 / np.sin(dip))
+    rrup = np.hypot(x - t * np.cos(dip), t * np.sin(dip))
+    vs30 = np.array([300.0, 450.0, 760.0, 250.0, 600.0, 900.0])
+    backarc = np.array([0.0, 0.0, 0.0, 0.0, 0.0, 1.0])
+    ims = ["PGA", "SA_0.2", "SA_1.0", "SA_3.0"]
+    levels = np.geomspace(1e-4, 3.0, 40)
+    model = get_gmm("AG16")
+    got = compute_site_hazard(lon, lat, vs30, rs, [get_gmm("CB14")], ims, levels, max_distance_km=300.0,
+                              ref=(140.0, -10.0), region_branches={"subduction_interface": [(1.0, model)]},
+                              site_fields={"backarc": backarc})[0]
+    res = model.evaluate(GmmInput(mag=mag, vs30_mps=vs30, rrup_km=rrup, intraslab=0, backarc=backarc), ims)
+    with _quiet():
+        oracle = [pygmm.AbrahamsonGregorAddo2016(pygmm.Scenario(
+            mag=mag, v_s30=float(v), dist_rup=float(r), event_type="interface",
+            tectonic_region="backarc" if b else "forearc")) for v, r, b in zip(vs30, rrup, backarc)]
+    mu_o = np.array([_interp_rows(m, m._ln_resp, ims) for m in oracle]).T
+    sd_o = np.array([_interp_rows(m, m._ln_std, ims) for m in oracle]).T
+    lnx = np.log(levels)
+    for i in range(len(ims)):
+        eps = (lnx[None, :] - res.ln_median[i][:, None]) / res.sigma[i][:, None]
+        assert_allclose(got[i], nu * norm.sf(eps), rtol=1e-7, atol=1e-300)
+        eps_o = (lnx[None, :] - mu_o[i][:, None]) / sd_o[i][:, None]
+        assert_allclose(got[i], nu * norm.sf(eps_o), rtol=1e-5, atol=1e-300)
+    assert got[0, :, 0].min() > 0.99 * nu and got[0, 0, -1] < 1e-2 * nu
+
+
 def test_regions_sum_and_branch_weights_give_the_combination_mean():
     # A crustal rupture and an intraslab one: branch g is crustal(g) + sum_k w_k slab(k), so the
     # weighted mean over g equals the mean over all (crustal, slab) combinations with product
