@@ -167,3 +167,63 @@ def test_event_stage_draws_each_regions_models(slab_events_config):
     assert np.array_equal(again.gmm_of_event, em.gmm_of_event)
     part = event_chunk(em, event_chunks(em)[0])
     assert np.isfinite(part.ground_up).all() and part.ground_up.max() > 0
+
+
+def test_each_model_takes_vs30_clamped_to_its_own_range():
+    # Stated rule (core.pairs.model_input): I14 (450-1200 m/s, Idriss 2014) at Vs30 300 gives exactly
+    # its curve at 450; BSSA14 (150-1500 m/s) keeps 300; both in one call.
+    from quakefolio.core.gmm import GmmInput
+    from quakefolio.core.pairs import model_input
+
+    rs = _point("c")
+    lon, lat = np.array([10.1]), np.array([20.0])
+    levels = np.geomspace(1e-3, 2.0, 12)
+    i14, bssa = get_gmm("I14"), get_gmm("BSSA14")
+    kw = dict(ref=(10.0, 20.0), max_distance_km=100.0)
+    low = compute_site_hazard(lon, lat, [300.0], rs, [i14, bssa], ["PGA"], levels, **kw)
+    at_450 = compute_site_hazard(lon, lat, [450.0], rs, [i14], ["PGA"], levels, **kw)[0]
+    alone = compute_site_hazard(lon, lat, [300.0], rs, [bssa], ["PGA"], levels, **kw)[0]
+    assert_allclose(low[0], at_450, rtol=0, atol=0)
+    assert_allclose(low[1], alone, rtol=0, atol=0)
+    assert not np.allclose(low[1], compute_site_hazard(lon, lat, [450.0], rs, [bssa], ["PGA"], levels, **kw)[0])
+    inp = GmmInput(mag=6.0, vs30_mps=np.array([100.0, 760.0, 2000.0]), rjb_km=10.0)
+    assert model_input(inp, bssa).vs30_mps.tolist() == [150.0, 760.0, 1500.0]
+    inside = GmmInput(mag=6.0, vs30_mps=np.array([500.0]), rjb_km=10.0)
+    assert model_input(inside, i14) is inside and model_input(inside, get_gmm("PZT11")) is inside
+
+
+def test_spectrum_sums_add_the_regions_with_their_weights():
+    # The spectrum's sums are linear in the pairs (Bazzurro & Cornell 1999 weights): with an intraslab
+    # rupture they are the crustal sums plus the slab's with weight sum(gmm_weights) x its branch weight.
+    from quakefolio.core.cms import compute_spectrum_sums
+
+    crust = _point("c")
+    slab = _point("s", 60.0, (40.0, 80.0)).with_region("subduction_intraslab")
+    both = RuptureSet.concat([crust, slab])
+    lon, lat, vs30 = np.array([10.05, 10.3]), np.array([20.0, 20.1]), np.array([400.0, 760.0])
+    ims, cond = ["PGA", "SA_0.2", "SA_1.0"], ["SA_0.2"]
+    targets = np.log(np.array([[[0.05, 0.2], [0.02, 0.1]]]))
+    crustal, weights = [get_gmm("BSSA14"), get_gmm("CB14")], [0.3, 0.2]
+    ag = get_gmm("AG16")
+    fields = {"backarc": np.array([0.0, 1.0])}
+    kw = dict(truncation_sigma=3.0, max_distance_km=200.0, ref=(10.0, 20.0), site_fields=fields)
+    m, s = compute_spectrum_sums(lon, lat, vs30, both, crustal, weights, cond, ims, targets,
+                                 region_branches={"subduction_intraslab": [(1.0, ag)]}, **kw)
+    mc, sc = compute_spectrum_sums(lon, lat, vs30, crust, crustal, weights, cond, ims, targets, **kw)
+    ms, ss = compute_spectrum_sums(lon, lat, vs30, slab, crustal[:1], [0.5], cond, ims, targets,
+                                   region_branches={"subduction_intraslab": [(0.4, ag), (0.6, ag)]}, **kw)
+    assert ms.any() and mc.any()
+    assert_allclose(m, mc + ms, rtol=1e-12)
+    assert_allclose(s, sc + ss, rtol=1e-12)
+
+
+def test_manifest_records_the_site_inputs(slab_config):
+    from quakefolio.pipeline.stages.regions import site_input_record
+
+    inputs = stages.load_inputs(slab_config)
+    rec = site_input_record(inputs.hazard_model)
+    n = len(inputs.hazard.site_id)
+    assert rec["hazard_sites"] == n and rec["basin_depth_sites"] == {"z1p0_km": 1, "z2p5_km": 0}
+    assert rec["backarc_sites"] == n - 1
+    assert set(rec["vs30_clamped_sites"]) == {"BSSA14", "CB14", "AG16"} and not any(rec["vs30_clamped_sites"].values())
+    assert rec["basin_depth_rules"]["AG16"] == "no basin term" and rec["basin_depth_rules"]["CB14"].startswith("z2p5_km")
