@@ -500,10 +500,14 @@ class VectorGmm:
     coefficient_file: ClassVar[str] = ""
     #: regions accepted in ``GmmInput.region``
     supported_regions: ClassVar[tuple[str, ...]] = ()
-    #: documented applicability ranges (informative; not enforced)
+    #: documented applicability ranges (informative, except Vs30: the hazard engine gives each
+    #: model a Vs30 clamped to its range, :func:`quakefolio.core.pairs.model_input`)
     applicability: ClassVar[dict[str, object]] = {}
     #: tectonic regions (names from :data:`TECTONIC_REGIONS`) whose earthquakes the model is for
     tectonic_regions: ClassVar[tuple[str, ...]] = ()
+    #: The basin depth the model takes (``"z1p0_km"`` or ``"z2p5_km"``) and its rule where a
+    #: site gives none, or None for a model without a basin term.
+    basin_input: ClassVar[tuple[str, str] | None] = None
     #: False when the model publishes only the total sigma: ``tau`` and ``phi`` are then NaN
     has_tau_phi: ClassVar[bool] = True
     #: False when the model has no site term (its medians are for its reference rock)
