@@ -63,6 +63,7 @@ __all__ = [
     "compute_site_hazard",
     "compute_disaggregation",
     "rupture_ground_motion",
+    "EVENT_PAIR_BLOCK",
     "event_ground_motion",
     "event_ln_im",
 ]
@@ -605,8 +606,15 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     return mu, tau, phi
 
 
+#: Most (site, rupture) pairs per ground-motion model call of :func:`event_ground_motion`:
+#: the model's temporaries of one call (a few dozen arrays of this length) then stay
+#: near the processor caches; calls of 2 million pairs were measured 2-2.8 times slower
+#: per pair than calls of 250,000 (benchmarks/bench_portfolio.py).
+EVENT_PAIR_BLOCK = 250_000
+
+
 def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, event_gmm, gmms, ims, *,
-                        max_distance_km=200.0, region="global", ref):
+                        max_distance_km=200.0, region="global", ref, pair_block=EVENT_PAIR_BLOCK):
     r"""Ln median [ln g], tau and phi [ln units] of each event's ground motion at each site.
 
     Parameters
@@ -621,6 +629,9 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     ims : sequence of str
     max_distance_km, region, ref
         As :func:`rupture_ground_motion`.
+    pair_block : int
+        Most (site, rupture) pairs per model call (:data:`EVENT_PAIR_BLOCK`); the values
+        do not depend on it.
 
     Returns
     -------
@@ -629,19 +640,45 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
 
     Notes
     -----
-    Each distinct rupture of the events is evaluated once, with only the models the
-    events use (:func:`rupture_ground_motion`); the event field is then
+    The (site, rupture) pairs within the integration distance and their model inputs
+    are those of the classical engine (:func:`_block_pairs`) for the distinct ruptures
+    of the events.  Each model is then evaluated only on the pairs of the ruptures of
+    the events that drew it (each distinct (model, rupture) once), in calls of at most
+    ``pair_block`` pairs; the models are elementwise, so every value is the one the
+    model gives that pair in any other grouping.  The event field is then
     :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
     :func:`quakefolio.core.events.gmf.ln_im`).
     """
     ev_rup = np.asarray(event_rupture)
     g_ev = np.asarray(event_gmm)
+    ims = list(ims)
+    shape = (ev_rup.size, len(ims), len(site_lon))
+    mu, tau, phi = np.full(shape, -np.inf), np.zeros(shape), np.zeros(shape)
     uniq, inv = np.unique(ev_rup, return_inverse=True)
-    mu, tau, phi = rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures.subset(uniq), gmms, list(ims),
-                                         max_distance_km=max_distance_km, region=region, ref=ref,
-                                         evaluate=np.unique(g_ev))
-    # (n_ev, n_im, n_sites): gather each event's model and rupture
-    return mu[g_ev, :, :, inv], tau[g_ev, :, :, inv], phi[g_ev, :, :, inv]
+    inv = inv.ravel()
+    si, ri, _, _, inp, _ = _block_pairs(site_lon, site_lat, site_vs30, ruptures.subset(uniq), max_distance_km,
+                                        ref, region)
+    if inp is None:
+        return mu, tau, phi
+    step = max(1, int(pair_block))
+    for g in np.unique(g_ev):
+        events = np.flatnonzero(g_ev == g)
+        drawn = np.zeros(uniq.size, dtype=bool)
+        drawn[inv[events]] = True
+        slot = np.cumsum(drawn) - 1  # each drawn rupture's row of the model's tables
+        pairs = np.flatnonzero(drawn[ri])
+        table = [np.full((int(drawn.sum()),) + shape[1:], -np.inf), np.zeros((int(drawn.sum()),) + shape[1:]),
+                 np.zeros((int(drawn.sum()),) + shape[1:])]
+        for lo in range(0, pairs.size, step):
+            p = pairs[lo:lo + step]
+            res = gmms[g].evaluate(inp.take(p), ims)
+            rows, cols = slot[ri[p]], si[p]
+            for t, values in zip(table, (res.ln_median, res.tau, res.phi)):
+                t[rows, :, cols] = values.T
+        rows = slot[inv[events]]
+        for out, t in zip((mu, tau, phi), table):
+            out[events] = t[rows]
+    return mu, tau, phi
 
 
 def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):

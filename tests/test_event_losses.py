@@ -169,7 +169,11 @@ def test_portfolio_event_losses_equal_the_previous_stage_loop(seed, loss_model):
     got = portfolio_event_losses(im, classes, value, ded, lim, loss_model=loss_model, seed=seed, blocks=blocks)
     want = _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks)
     for g, w in zip(got, want):
-        _same(g, w)
+        if loss_model == "sampled_damage":
+            _same(g, w)
+        else:  # mean mode: sums per (site, class) pair, another order of addition (pair_mean_losses)
+            assert g.shape == w.shape
+            np.testing.assert_allclose(g, w, rtol=1e-12, atol=0)
     gu, net, asset_sum, _, class_sum = got
     assert (net <= gu + 1e-6).all()
     np.testing.assert_allclose(asset_sum.sum(axis=2), class_sum.sum(axis=1), rtol=1e-12)
