@@ -25,14 +25,16 @@ import numpy as np
 
 from quakefolio.core.events.eventset import damage_block_rng
 from quakefolio.core.events.portfolio import (
-    aal_with_standard_error, apply_policy, exceedance_envelope, expected_loss_ratio, has_policy_terms,
+    aal_with_standard_error, apply_policy, expected_loss_ratio, has_policy_terms,
 )
 from quakefolio.core.loss import check_damage_ratios, net_loss_ratio
+from quakefolio.core.risk import lognormal_fragility
 from quakefolio.core.events.secondary import group_factors, sample_correlated_loss_ratio
 
 __all__ = [
     "event_loss_ratio",
     "block_loss_sums",
+    "state_exceedance",
     "pair_mean_losses",
     "portfolio_event_losses",
     "exceedance_counts",
@@ -169,6 +171,33 @@ def _net_of(gu, deductible, limit, terms):
     return net
 
 
+def state_exceedance(x, medians, betas):
+    r"""Probability [-] of reaching or exceeding each damage state, one 2-D array per state.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n_events, n_pairs) [IM units], non-negative
+    medians, betas : ndarray, shape (n_ds,)
+        Lognormal fragility of the ordered damage states.
+
+    Returns
+    -------
+    list of ndarray, each shape (n_events, n_pairs) [-]
+        :math:`P^*_j(x) = \max_{l \ge j} \Phi(\ln(x/\theta_l)/\beta_l)`: the values of
+        :func:`quakefolio.core.events.portfolio.exceedance_envelope` (bit for bit), state by
+        state (no (events, pairs, states) array).
+    """
+    x = np.asarray(x, dtype=float)
+    bad = np.isnan(x) | (x < 0)
+    if np.any(bad):
+        raise ValueError(f"x must be non-negative and not NaN [IM units], got {x[bad][:3].tolist()}")
+    theta, b = np.asarray(medians, dtype=float), np.asarray(betas, dtype=float)
+    p = [lognormal_fragility(x, theta[j], b[j]) for j in range(theta.size)]
+    for j in range(theta.size - 2, -1, -1):  # upper envelope over the higher states
+        np.maximum(p[j + 1], p[j], out=p[j])
+    return p
+
+
 def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, deductible, limit, bounds,
                      group_sums=None, assets=None):
     r"""Mean-mode losses [currency] of one class's assets, summed per (site, class) pair where no terms apply.
@@ -197,9 +226,11 @@ def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, ded
     Notes
     -----
     In the mean mode the ground-up loss of asset :math:`i` in event :math:`e` is
-    :math:`V_i\,r_{e,p(i)}` with :math:`r` the mean loss ratio at its pair's intensity
-    (:func:`quakefolio.core.events.portfolio.expected_loss_ratio`, bit for bit), so
-    the sums over assets and over events factor through the pairs:
+    :math:`V_i\,r_{e,p(i)}` with :math:`r_{e,p} = \sum_j (\mu_j - \mu_{j-1}) P^*_j(x_{e,p})`
+    the mean loss ratio at its pair's intensity
+    (:func:`quakefolio.core.events.portfolio.expected_loss_ratio`; added state by state
+    in order, which is numpy's order for fewer than 8 states), so the sums over assets
+    and over events factor through the pairs:
 
     .. math:: \sum_i V_i r_{e,p(i)} = \sum_p r_{e,p} \sum_{i \in p} V_i, \qquad
               \sum_{e \in b} V_i r_{e,p(i)} = V_i \sum_{e \in b} r_{e,p(i)}, \qquad
@@ -208,45 +239,51 @@ def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, ded
     at a cost per pair instead of per asset.  Assets without terms
     (:func:`quakefolio.core.events.portfolio.has_policy_terms`) have net = ground-up, so
     they enter the net sums the same way; the expected net loss given the intensity
-    (closed form, :func:`quakefolio.core.events.portfolio.expected_loss_ratios`) is
-    evaluated per asset and event only for the assets with terms, each value bit for bit
-    that of the per-asset evaluation.  The sums are the same sums in another order of
-    addition: equal to those of :func:`block_loss_sums` on the per-asset losses to
-    round-off (non-negative terms: relative difference below (number of terms) x 2^-53,
-    about 1e-13 here; tested to 1e-12).
+    (closed form, as :func:`quakefolio.core.events.portfolio.expected_loss_ratios`) is
+    evaluated per asset and event only for the assets with terms.  The sums are the same
+    sums in another order of addition: equal to those of :func:`block_loss_sums` on the
+    per-asset losses to round-off (non-negative terms: relative difference below the
+    number of terms times 2^-53, about 1e-13 here; tested to 1e-12).
     """
-    p = exceedance_envelope(x, medians, betas)
     mdr, c = check_damage_ratios(mean_damage_ratio, cov)
-    ratio = np.sum(np.diff(mdr, axis=-1, prepend=0.0) * p, axis=-1)  # expected_loss_ratio, (n_events, n_pairs)
+    inc = np.diff(mdr, axis=-1, prepend=0.0)
     terms = has_policy_terms(deductible, limit)
     t = np.flatnonzero(terms)
+    if t.size:  # per asset, not per asset-event
+        inc_net = np.diff(net_loss_ratio(mdr, c, value[t, None], deductible[t, None], limit[t, None]), axis=-1,
+                          prepend=0.0)
     n_pairs = x.shape[1]
-    # sums along each event's row (not a BLAS product): an event's sum does not depend on its chunk
-    gu_ev = (ratio * np.bincount(pair, weights=value, minlength=n_pairs)).sum(axis=1)
-    net_ev = (ratio * np.bincount(pair[~terms], weights=value[~terms], minlength=n_pairs)).sum(axis=1)
-    if group_sums is not None:
-        group_sums.add_pairs(assets[~terms], pair[~terms], value[~terms], ratio)
-    if t.size:
-        inc = np.diff(net_loss_ratio(mdr, c, value[t, None], deductible[t, None], limit[t, None]), axis=-1,
-                      prepend=0.0)
+    v_all = np.bincount(pair, weights=value, minlength=n_pairs)
+    v_free = np.bincount(pair[~terms], weights=value[~terms], minlength=n_pairs) if t.size else v_all
+    ratio = np.empty(x.shape)
+    gu_ev, net_ev = np.empty(x.shape[0]), np.empty(x.shape[0])
     asset_sum = np.zeros((len(bounds), 2, len(value)))
     asset_sumsq = np.zeros((len(bounds), 2, len(value)))
     total = np.zeros((len(bounds), 2))
-    for j, (lo, hi) in enumerate(bounds):
+    for j, (lo, hi) in enumerate(bounds):  # one random-number block at a time: bounded temporaries
+        p = state_exceedance(x[lo:hi], medians, betas)
         r = ratio[lo:hi]
+        np.multiply(inc[0], p[0], out=r)
+        for k in range(1, len(p)):
+            r += inc[k] * p[k]
+        # sums along each event's row (not a BLAS product): an event's sum does not depend on its chunk
+        gu_ev[lo:hi] = (r * v_all).sum(axis=1)
+        net_ev[lo:hi] = (r * v_free).sum(axis=1) if t.size else gu_ev[lo:hi]
         asset_sum[j, 0] = value * r.sum(axis=0)[pair]
         asset_sumsq[j, 0] = value * value * (r * r).sum(axis=0)[pair]
         asset_sum[j, 1], asset_sumsq[j, 1] = asset_sum[j, 0], asset_sumsq[j, 0]
-        if t.size:  # expected net loss of the assets with terms, block by block
+        if t.size:  # expected net loss of the assets with terms
             net = 0.0
-            for k in range(inc.shape[-1]):
-                net = net + inc[:, k] * p[lo:hi, :, k][:, pair[t]]
+            for k in range(len(p)):
+                net = net + inc_net[:, k] * p[k][:, pair[t]]
             net = value[t] * net
             net_ev[lo:hi] += net.sum(axis=1)
             asset_sum[j, 1, t], asset_sumsq[j, 1, t] = net.sum(axis=0), (net * net).sum(axis=0)
             if group_sums is not None:
                 group_sums.add(assets[t], net, rows=slice(lo, hi))
         total[j] = gu_ev[lo:hi].sum(), net_ev[lo:hi].sum()
+    if group_sums is not None:
+        group_sums.add_pairs(assets[~terms], pair[~terms], value[~terms], ratio)
     return gu_ev, net_ev, asset_sum, asset_sumsq, total
 
 
