@@ -29,6 +29,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as sla
 from scipy.special import ndtr, ndtri
+from threadpoolctl import threadpool_limits
 
 from quakefolio.core.events.eventset import EVENT_BLOCK_SIZE, block_rng, branch_years, logic_tree_event_set
 from quakefolio.core.events.gmf import cross_im_correlation_matrix, jb09_range_km
@@ -97,9 +98,11 @@ def ground_motion(model, ruptures, sites, rup, gmm):
         for lo in range(0, slots.size, per):
             s = slots[lo:lo + per]
             sub = ruptures.subset(keys[s] % len(ruptures))
-            si, ri = np.nonzero(site_rupture_mask(lon, lat, sub, model.max_distance_km, exact=True,
-                                                  ref_lon=model.ref[0], ref_lat=model.ref[1]))
+            si, ri = np.nonzero(site_rupture_mask(lon, lat, sub, model.max_distance_km, ref_lon=model.ref[0],
+                                                  ref_lat=model.ref[1]))  # candidates (bounding circles)
             d = pair_distances(lon, lat, sub, si, ri, ref_lon=model.ref[0], ref_lat=model.ref[1])
+            near = d["rjb_km"] <= model.max_distance_km  # the integration distance on Rjb
+            si, ri, d = si[near], ri[near], {k: v[near] for k, v in d.items()}
             res = gmm_model.evaluate(GmmInput(
                 mag=sub.mag[ri], vs30_mps=vs30[si], rrup_km=d["rrup_km"], rjb_km=d["rjb_km"], rx_km=d["rx_km"],
                 ry0_km=d["ry0_km"], ztor_km=sub.ztor_km[ri], zhyp_km=sub.zhyp_km[ri], dip_deg=sub.dip_deg[ri],
@@ -176,6 +179,11 @@ def reference_event_losses(inputs):
         ``asset_sumsq`` (2, n_assets) over all events; ``exceed_counts`` (n_ims, n_sites, n_levels);
         ``aep``, ``oep`` at 100, 250, 475 and 2475 years (ground-up).
     """
+    with threadpool_limits(limits=1, user_api="blas"):  # as the stage (bitwise the same on any executor)
+        return _reference(inputs)
+
+
+def _reference(inputs):
     model, pf = inputs.hazard_model, inputs.config.portfolio
     assert pf.loss_model == "mean_damage_ratio" and not pf.source_branch and pf.spatial_correlation
     ruptures, events, gmm_of_event = event_set(model, pf.years, pf.seed)

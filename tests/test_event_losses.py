@@ -18,7 +18,8 @@ from quakefolio.core.events.eventset import (
     block_rng, class_block_index, damage_block_rng, stream_rng,
 )
 from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
-from quakefolio.core.gmm import GmmInput, get_gmm
+from quakefolio.core.gmm import GMM_REGISTRY, GmmInput, get_gmm
+from quakefolio.core.events.programme import GroupSums
 from quakefolio.core.hazard import event_ground_motion
 from quakefolio.core.sources.mfd import truncated_gr
 from quakefolio.core.events.portfolio import (
@@ -94,18 +95,45 @@ def test_event_ground_motion_equals_the_previous_stage_code(seed):
     ev_rup = np.sort(rng.integers(0, len(rs), n_ev))
     g_ev = rng.integers(0, 1 + seed % 2, n_ev)  # seed 0, 2: one model only
     args = (lon, lat, vs30, rs, ev_rup, g_ev, gmms, ims)
-    got = event_ground_motion(*args, max_distance_km=60.0, region="california", ref=(10.3, 20.0))
     want = _reference_ground_motion(*args, 60.0, "california", (10.3, 20.0))
-    for g, w in zip(got, want):
-        _same(g, w)
+    # each model only on the ruptures of its events, in passes of a few ruptures: the same values
+    for pair_block in (1, 37, 100_000):
+        got = event_ground_motion(*args, max_distance_km=60.0, region="california", ref=(10.3, 20.0),
+                                  pair_block=pair_block)
+        for g, w in zip(got, want):
+            _same(g, w)
     assert np.isinf(got[0]).any() and np.isfinite(got[0]).any()  # both sides of the integration distance
+
+
+@pytest.mark.parametrize("name", sorted(GMM_REGISTRY))
+def test_models_are_elementwise_on_subsets_of_scenarios(name):
+    # event_ground_motion evaluates each model on subsets of the pairs (GmmInput.take): every
+    # value must be the one the model gives that scenario among all the others
+    rng = np.random.default_rng(4)
+    n = 400
+    mag = rng.uniform(4.5, 7.8, n)
+    width = rng.uniform(3.0, 20.0, n)
+    inp = GmmInput(mag=mag, vs30_mps=rng.uniform(180, 1200, n), rrup_km=rng.uniform(1.0, 200.0, n),
+                   rjb_km=rng.uniform(0.0, 199.0, n), rx_km=rng.uniform(-50, 50, n), ry0_km=rng.uniform(0, 30, n),
+                   ztor_km=rng.uniform(0, 5, n), zhyp_km=rng.uniform(5, 15, n), dip_deg=rng.uniform(30, 90, n),
+                   rake_deg=rng.uniform(-180, 180, n), width_km=width, region="california")
+    model = get_gmm(name)
+    ims = list(model.supported_ims[:1]) + ["SA_0.3", "SA_1.0"]
+    whole = model.evaluate(inp, ims)
+    for idx in (np.arange(0, n, 7), np.sort(rng.choice(n, 60, replace=False)), np.array([5])):
+        sub = inp.take(idx)
+        assert sub.shape == (idx.size,)
+        part = model.evaluate(sub, ims)
+        for field in ("ln_median", "tau", "phi", "sigma"):
+            _same(getattr(part, field), getattr(whole, field)[:, idx])
 
 
 # --- event losses -----------------------------------------------------------------------------
 
-def _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks):
+def _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks, per_asset=None):
     """The previous stage loop (event_chunk), with the mean mode's net loss now the expected net loss
-    given the intensity (expected_net_loss_ratio, checked against Monte Carlo in test_net_loss.py)."""
+    given the intensity (expected_net_loss_ratio, checked against Monte Carlo in test_net_loss.py).
+    ``per_asset``: an (n_events, n_assets) array that receives every asset's net loss."""
     n_ev, n_assets = im.shape[0], len(value)
     gu_ev, net_ev = np.zeros(n_ev), np.zeros(n_ev)
     bounds = [(lo, hi) for _, lo, hi in blocks]
@@ -129,6 +157,8 @@ def _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks):
                                                           lim[assets])
         gu_ev += gu.sum(axis=1)
         net_ev += net.sum(axis=1)
+        if per_asset is not None:
+            per_asset[:, assets] = net
         for j, (lo, hi) in enumerate(bounds):
             g, n = gu[lo:hi], net[lo:hi]
             asset_sum[j, 0, assets], asset_sum[j, 1, assets] = g.sum(axis=0), n.sum(axis=0)
@@ -177,6 +207,21 @@ def test_portfolio_event_losses_equal_the_previous_stage_loop(seed, loss_model):
     gu, net, asset_sum, _, class_sum = got
     assert (net <= gu + 1e-6).all()
     np.testing.assert_allclose(asset_sum.sum(axis=2), class_sum.sum(axis=1), rtol=1e-12)
+
+
+@pytest.mark.parametrize("loss_model", ["mean_damage_ratio", "sampled_damage"])
+def test_group_sums_of_event_losses(loss_model):
+    # terms groups (programme): per event, the net losses of each group's assets; in the mean mode
+    # the assets without terms enter per (site, class) pair (GroupSums.add_pairs)
+    im, classes, value, ded, lim, blocks = _random_portfolio(np.random.default_rng(7))
+    group = np.random.default_rng(8).integers(0, 4, len(value))
+    sums = GroupSums(group, 4, im.shape[0])
+    portfolio_event_losses(im, classes, value, ded, lim, loss_model=loss_model, seed=3, blocks=blocks,
+                           group_sums=sums)
+    net = np.zeros((im.shape[0], len(value)))
+    _reference_losses(im, classes, value, ded, lim, loss_model, 3, blocks, per_asset=net)
+    want = np.stack([net[:, group == g].sum(axis=1) for g in range(4)], axis=1)
+    np.testing.assert_allclose(sums.total, want, rtol=1e-12, atol=1e-9)
 
 
 def test_exceedance_counts_and_group_sums():

@@ -12,7 +12,12 @@ tables, vectorised over events and assets:
    expected net loss over damage states and loss ratios
    (:func:`quakefolio.core.events.portfolio.expected_loss_ratios`, closed form).
 2. **Sums per random-number block** (per event, per asset, per class), so that totals do
-   not depend on how blocks are grouped into tasks.
+   not depend on how blocks are grouped into tasks.  In the mean mode the ground-up loss is
+   a function of the (site, class) pair's intensity, so the sums are formed per pair and
+   the per-asset work is left to the assets with policy terms (:func:`pair_mean_losses`;
+   the same sums in another order of addition, equal to 1e-12 relative); sampled damage
+   draws per asset and event, and applies the terms only to the assets that have them
+   (:func:`block_loss_sums`, bit for bit).
 3. **Statistics of the simulation**: per-asset AAL with its compound-Poisson standard
    error, per-group averages, event-based exceedance rates.
 4. **Cross-checks** against the classical results of the same model: z-scores of the
