@@ -45,7 +45,7 @@ import scipy.sparse as sp
 from scipy.special import ndtr
 
 from quakefolio.core.curves import im_at_rate
-from quakefolio.core.events.gmf import ln_im
+from quakefolio.core.events.gmf import check_standard_deviations, residual_term
 
 __all__ = [
     "exceedance_probability",
@@ -755,6 +755,18 @@ def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):
     ndarray, shape (n_events, n_ims, n_sites) [ln g]
         :func:`quakefolio.core.events.gmf.ln_im` where the median is finite, ``-inf`` elsewhere.
     """
-    with np.errstate(invalid="ignore"):
-        out = ln_im(np.where(np.isfinite(ln_median), ln_median, 0.0), tau, phi, eta, eps, truncation_sigma)
-    return np.where(np.isfinite(ln_median), out, -np.inf)
+    ln_median = np.asarray(ln_median, dtype=np.float64)
+    tau, phi, eta, eps = (np.asarray(a, dtype=np.float64) for a in (tau, phi, eta, eps))
+    if eta.ndim != 2 or eps.ndim != 3 or eps.shape[:2] != eta.shape:
+        raise ValueError(
+            "eta must have shape (n_events, n_ims) and eps (n_events, n_ims, n_sites) with the same first two "
+            f"axes; got {eta.shape} and {eps.shape}"
+        )
+    check_standard_deviations(tau, phi)
+    # the arithmetic of ln_im with the median 0 beyond the distance (tau = phi = 0 there: a residual of 0)
+    out = residual_term(tau, phi, eta, eps, truncation_sigma)
+    out += ln_median
+    finite = np.isfinite(ln_median)
+    if not finite.all():
+        out[~finite] = -np.inf
+    return out

@@ -271,9 +271,9 @@ def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, ded
         np.multiply(inc[0], p[0], out=r)
         for k in range(1, len(p)):
             r += inc[k] * p[k]
-        # sums along each event's row (not a BLAS product): an event's sum does not depend on its chunk
-        gu_ev[lo:hi] = (r * v_all).sum(axis=1)
-        net_ev[lo:hi] = (r * v_free).sum(axis=1) if t.size else gu_ev[lo:hi]
+        # along each event's row (einsum's own loop, not BLAS): an event's sum does not depend on its chunk
+        gu_ev[lo:hi] = np.einsum("ep,p->e", r, v_all)
+        net_ev[lo:hi] = np.einsum("ep,p->e", r, v_free) if t.size else gu_ev[lo:hi]
         asset_sum[j, 0] = value * r.sum(axis=0)[pair]
         asset_sumsq[j, 0] = value * value * (r * r).sum(axis=0)[pair]
         asset_sum[j, 1], asset_sumsq[j, 1] = asset_sum[j, 0], asset_sumsq[j, 0]
@@ -393,7 +393,11 @@ def exceedance_counts(ln_im, levels_g):
         Divided by the simulated years, the event-based hazard curve (common practice).
     """
     ln_levels = np.log(levels_g)
-    return np.stack([(ln_im[:, i, :, None] > ln_levels).sum(axis=0) for i in range(ln_im.shape[1])])
+    out = np.empty((ln_im.shape[1], ln_im.shape[2], ln_levels.size), dtype=np.int64)
+    for i in range(ln_im.shape[1]):
+        for k, level in enumerate(ln_levels):  # 2-D comparisons: no (events, sites, levels) array
+            out[i, :, k] = np.count_nonzero(ln_im[:, i, :] > level, axis=0)
+    return out
 
 
 def sum_over_blocks(parts):

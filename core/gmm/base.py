@@ -560,7 +560,11 @@ class VectorGmm:
         hi_idx = np.array([position[hi] for _, hi, _ in plan], dtype=np.intp)
         weight = np.array([w for _, _, w in plan]).reshape((len(plan),) + (1,) * len(inp.shape))
 
+        tabulated = bool(np.all(lo_idx == hi_idx))
+
         def interp(values: FloatArray) -> FloatArray:
+            if tabulated:  # every weight 0: (1 - 0) v + 0 v is v itself for finite v
+                return values[lo_idx]
             return (1.0 - weight) * values[lo_idx] + weight * values[hi_idx]
 
         return GmmResult(
