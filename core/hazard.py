@@ -738,7 +738,7 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     return mu, tau, phi
 
 
-def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):
+def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None, out=None):
     r"""ln IM [ln g] of sampled events; ``-inf`` (no ground motion) beyond the integration distance.
 
     Parameters
@@ -749,12 +749,23 @@ def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):
     eps : ndarray, shape (n_events, n_ims, n_sites) [-]
         Standard-normal residuals (:class:`quakefolio.core.events.gmf.FieldSampler`).
     truncation_sigma : float or None
+    out : ndarray, shape (n_events, n_ims, n_sites), optional
+        Where to write the result; may be ``ln_median`` itself.
 
     Returns
     -------
     ndarray, shape (n_events, n_ims, n_sites) [ln g]
         :func:`quakefolio.core.events.gmf.ln_im` where the median is finite, ``-inf`` elsewhere.
+
+    Notes
+    -----
+    The operations of :func:`~quakefolio.core.events.gmf.ln_im`
+    (:func:`~quakefolio.core.events.gmf.residual_term`), a few events at a time
+    (:data:`quakefolio.core.events.losses.PASS_VALUES` values per pass, so that the
+    temporaries stay in cache; elementwise, so the values do not depend on it).
     """
+    from quakefolio.core.events.losses import PASS_VALUES
+
     ln_median = np.asarray(ln_median, dtype=np.float64)
     tau, phi, eta, eps = (np.asarray(a, dtype=np.float64) for a in (tau, phi, eta, eps))
     if eta.ndim != 2 or eps.ndim != 3 or eps.shape[:2] != eta.shape:
@@ -763,10 +774,13 @@ def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):
             f"axes; got {eta.shape} and {eps.shape}"
         )
     check_standard_deviations(tau, phi)
-    # the arithmetic of ln_im with the median 0 beyond the distance (tau = phi = 0 there: a residual of 0)
-    out = residual_term(tau, phi, eta, eps, truncation_sigma)
-    out += ln_median
-    finite = np.isfinite(ln_median)
-    if not finite.all():
-        out[~finite] = -np.inf
+    out = np.empty(ln_median.shape) if out is None else out
+    step = max(1, PASS_VALUES // max(1, int(np.prod(ln_median.shape[1:]))))
+    for lo in range(0, ln_median.shape[0], step):
+        rows = slice(lo, lo + step)
+        # the arithmetic of ln_im with the median 0 beyond the distance (tau = phi = 0 there: a residual of 0)
+        part = residual_term(tau[rows], phi[rows], eta[rows], eps[rows], truncation_sigma)
+        part += ln_median[rows]
+        part[~np.isfinite(ln_median[rows])] = -np.inf
+        out[rows] = part
     return out

@@ -267,17 +267,13 @@ def _correlated(em):
 def _ground_motion(em, start, stop, b0, b1):
     """ln IM [ln g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites).
 
-    Combined one random-number block of events at a time (elementwise, so the same values
-    as all at once) into the median's array: the chunk holds one copy of each field less.
+    Written into the median's array: the chunk holds one copy of each field less.
     """
     mu, tau, phi = event_ground_motion(em.site_lon, em.site_lat, em.site_vs30, em.ruptures,
                                        em.events.rupture[start:stop], em.gmm_of_event[start:stop], em.gmms, em.ims,
                                        max_distance_km=em.max_distance_km, region=em.region, ref=em.ref)
     res = em.sampler.sample_event_blocks(em.seed, em.events.n_events, np.arange(b0, b1))
-    for lo in range(0, stop - start, EVENT_BLOCK_SIZE):
-        rows = slice(lo, lo + EVENT_BLOCK_SIZE)
-        mu[rows] = event_ln_im(mu[rows], tau[rows], phi[rows], res.eta[rows], res.eps[rows], em.truncation_sigma)
-    return mu
+    return event_ln_im(mu, tau, phi, res.eta, res.eps, em.truncation_sigma, out=mu)
 
 
 def event_chunk(em, chunk, independent=True):
