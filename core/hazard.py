@@ -46,6 +46,7 @@ from scipy.special import ndtr
 
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.events.gmf import check_standard_deviations, residual_term
+from quakefolio.core.events.losses import PASS_VALUES
 
 __all__ = [
     "exceedance_probability",
@@ -764,8 +765,6 @@ def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None, out=None):
     (:data:`quakefolio.core.events.losses.PASS_VALUES` values per pass, so that the
     temporaries stay in cache; elementwise, so the values do not depend on it).
     """
-    from quakefolio.core.events.losses import PASS_VALUES
-
     ln_median = np.asarray(ln_median, dtype=np.float64)
     tau, phi, eta, eps = (np.asarray(a, dtype=np.float64) for a in (tau, phi, eta, eps))
     if eta.ndim != 2 or eps.ndim != 3 or eps.shape[:2] != eta.shape:
