@@ -3,16 +3,22 @@
 Run: ``python benchmarks/bench_risk.py``.
 
 A synthetic portfolio (invented numbers) of up to 10**6 assets on 2,000 hazard sites with
-7 building classes of 4 damage states each, hazard curves of 40 levels. The path timed
-is the production one: unique (site, class) pairs, exact damage-state rates per pair
-(:func:`quakefolio.core.risk.damage_state_rates`), EAL per pair, broadcast to assets.
-The reference is bare ``scipy.special.ndtr`` over the same number of evaluations
-(pairs x damage states x levels).  Prints sizes, times, the ratio, and the fitted
-exponent of time vs number of pairs (linear growth: about 1).
+7 building classes of 4 damage states each, hazard curves of 40 levels.  Timed side by
+side in one process, interleaved, median of the per-round ratios (``timing.py``):
+
+* kernel: exact damage-state rates of every unique pair
+  (:func:`quakefolio.core.risk.damage_state_rates`, one call per class);
+* reference: the same integral in tight plain numpy (``reference_risk.py``);
+* production path: unique (site, class) pairs, the kernel, EAL per pair, broadcast to
+  assets;
+* baseline: bare ``scipy.special.ndtr`` (into a preallocated array) on as many
+  standard-normal values as pairs x damage states x levels.
+
+Rows: kernel / baseline (target <= 2), reference / baseline, kernel / reference,
+production path / baseline; the agreement of kernel and reference; the fitted exponent of
+kernel time vs number of pairs (linear growth: about 1).
 """
 from __future__ import annotations
-
-import time
 
 import numpy as np
 from scipy.special import ndtr
@@ -20,8 +26,12 @@ from scipy.special import ndtr
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.risk import damage_state_rates
 
+from reference_risk import damage_state_rates_reference
+from timing import interleaved, ratio, row
+
 N_LEVELS, N_DS, N_CLASSES = 40, 4, 7
 SEED = 2026
+TARGET = 2.0
 
 
 def synthetic(n_sites, n_assets, rng):
@@ -38,43 +48,68 @@ def synthetic(n_sites, n_assets, rng):
     return levels, rates, medians, betas, mdr, asset_site, asset_class
 
 
-def run(n_sites, n_assets, rng):
-    levels, rates, medians, betas, mdr, a_site, a_class = synthetic(n_sites, n_assets, rng)
-    t0 = time.perf_counter()
+def unique_pairs(a_site, a_class, n_sites):
+    """Unique (site, class) pairs of the assets: class, site, and each asset's pair."""
     key = a_class.astype(np.int64) * n_sites + a_site
     uniq, inverse = np.unique(key, return_inverse=True)
-    p_class, p_site = uniq // n_sites, uniq % n_sites
-    ds = np.empty((len(uniq), N_DS))
-    for c in range(N_CLASSES):  # the small axis; pairs of one class in one vectorised call
+    return uniq // n_sites, uniq % n_sites, inverse
+
+
+def per_class(fn, levels, rates, medians, betas, p_class, p_site):
+    """Damage-state rates of every pair, one call per class (the small axis)."""
+    ds = np.empty((len(p_class), N_DS))
+    for c in range(N_CLASSES):
         sel = p_class == c
-        ds[sel] = damage_state_rates(levels, rates[p_site[sel]], medians[c], betas[c])
-    eal_ratio = expected_annual_loss(ds, mdr)
-    asset_eal = eal_ratio[inverse]  # broadcast to assets
-    elapsed = time.perf_counter() - t0
-    z = np.random.default_rng(1).standard_normal((len(uniq), N_DS, N_LEVELS))
-    t1 = time.perf_counter()
-    ndtr(z)
-    bare = time.perf_counter() - t1
-    assert asset_eal.shape == (n_assets,)
-    return len(uniq), elapsed, bare
+        ds[sel] = fn(levels, rates[p_site[sel]], medians[c], betas[c])
+    return ds
+
+
+def production(levels, rates, medians, betas, mdr, a_site, a_class, n_sites):
+    p_class, p_site, inverse = unique_pairs(a_site, a_class, n_sites)
+    ds = per_class(damage_state_rates, levels, rates, medians, betas, p_class, p_site)
+    return expected_annual_loss(ds, mdr)[inverse]  # broadcast to assets
+
+
+def measure(n_sites, n_assets, rng):
+    levels, rates, medians, betas, mdr, a_site, a_class = synthetic(n_sites, n_assets, rng)
+    p_class, p_site, _ = unique_pairs(a_site, a_class, n_sites)
+    z = np.random.default_rng(1).standard_normal((len(p_class), N_DS, N_LEVELS))
+    out = np.empty_like(z)
+    args = (levels, rates, medians, betas, p_class, p_site)
+    kernel = per_class(damage_state_rates, *args)
+    reference = per_class(damage_state_rates_reference, *args)
+    agreement = float(np.max(np.abs(kernel - reference) / reference))
+    times = interleaved({
+        "ndtr": lambda: ndtr(z, out=out),
+        "kernel": lambda: per_class(damage_state_rates, *args),
+        "reference": lambda: per_class(damage_state_rates_reference, *args),
+        "production": lambda: production(levels, rates, medians, betas, mdr, a_site, a_class, n_sites),
+    })
+    return len(p_class), times, agreement
 
 
 def main():
     rng = np.random.default_rng(SEED)
     print("fragility convolution benchmark (synthetic, invented inputs)")
-    print(f"{'assets':>9} {'sites':>6} {'pairs':>7} {'evaluations':>12} {'time s':>8} {'ndtr s':>8} {'ratio':>6}")
+    print(f"{'assets':>9} {'pairs':>7} {'evaluations':>12} {'ndtr s':>8} {'kernel':>7} {'ref':>7} "
+          f"{'k/ref':>6} {'prod':>7}  (ratios: medians of interleaved rounds)")
     sizes = [(500, 250_000), (1000, 500_000), (2000, 1_000_000)]
-    pairs, times = [], []
+    pairs, kernel_s = [], []
     for n_sites, n_assets in sizes:
-        n_pairs, t, bare = run(n_sites, n_assets, rng)
-        n_eval = n_pairs * N_DS * N_LEVELS
-        print(f"{n_assets:>9} {n_sites:>6} {n_pairs:>7} {n_eval:>12} {t:>8.3f} {bare:>8.4f} {t / bare:>6.1f}")
+        n_pairs, times, agreement = measure(n_sites, n_assets, rng)
+        k, r = ratio(times, "kernel", "ndtr"), ratio(times, "reference", "ndtr")
+        kr, p = ratio(times, "kernel", "reference"), ratio(times, "production", "ndtr")
+        print(f"{n_assets:>9} {n_pairs:>7} {n_pairs * N_DS * N_LEVELS:>12} {np.median(times['ndtr']):>8.4f} "
+              f"{k[0]:>7.2f} {r[0]:>7.2f} {kr[0]:>6.2f} {p[0]:>7.2f}")
         pairs.append(n_pairs)
-        times.append(t)
-    slope = np.polyfit(np.log(pairs), np.log(times), 1)[0]
-    print(f"fitted exponent of time vs pairs: {slope:.2f} (linear = 1)")
-    print("ratio = time of the production path (unique pairs, exact integral, EAL, broadcast) / bare ndtr "
-          "over pairs x damage states x levels")
+        kernel_s.append(np.median(times["kernel"]))
+    print(f"kernel vs reference, largest size: max relative difference {agreement:.1e}")
+    slope = np.polyfit(np.log(pairs), np.log(kernel_s), 1)[0]
+    print(f"fitted exponent of kernel time vs pairs: {slope:.2f} (linear = 1)")
+    row("damage convolution kernel / bare ndtr, N pairs x 4 states x 40 levels", k, TARGET)
+    row("tight numpy reference of the same integral / bare ndtr", r)
+    row("damage convolution kernel / tight numpy reference", kr)
+    row("production path (unique pairs, kernel, EAL, broadcast) / bare ndtr", p)
 
 
 if __name__ == "__main__":

@@ -39,7 +39,7 @@ from quakefolio.core.loss import net_loss_ratio
 from quakefolio.core.sources.geometry import aeqd_forward, mean_position, pair_distances, site_rupture_mask
 from quakefolio.core.sources.ruptures import RuptureSet
 
-#: Pairs per ground-motion model call, as the stage (quakefolio.core.hazard.EVENT_PAIR_BLOCK).
+#: Pairs per ground-motion model call, as the stage (quakefolio.core.events.motion.EVENT_PAIR_BLOCK).
 PAIRS = 32_768
 
 
@@ -191,7 +191,7 @@ def _reference(inputs):
     local = np.searchsorted(used, inputs.site_index)
     lon, lat = inputs.hazard.lon[used], inputs.hazard.lat[used]
     sites = (lon, lat, model.site_vs30[used])
-    factors, cross = site_factors(lon, lat, model.ims, pf.vs30_clustering)
+    factors, cross = site_factors(lon, lat, model.ims, pf.correlation_range == "clustered_site_conditions")
     classes = class_table(inputs, local)
     ex = inputs.exposure
     value, ded, lim = (ex[c].to_numpy(dtype=float) for c in ("replacement_value", "deductible", "limit"))

@@ -32,7 +32,26 @@ __all__ = [
     "return_period",
     "segment_exponents",
     "interpolate_period",
+    "NoCommonRates",
 ]
+
+
+class NoCommonRates(ValueError):
+    """Neighbouring curves of one site share no range of positive rates (period interpolation).
+
+    Attributes
+    ----------
+    index : tuple of int
+        Batch index of the first such site (``()`` for a single curve).
+    neighbour : int
+        1 or 2: the neighbouring curve to blame (the one whose rates are all zero, else 2).
+    ranges : str
+        The two curves' ranges of positive rates, in words.
+    """
+
+    def __init__(self, index, neighbour, ranges):
+        super().__init__(f"neighbouring curves share no common range of positive rates ({ranges})")
+        self.index, self.neighbour, self.ranges = index, neighbour, ranges
 
 
 def validate_curve(im_levels, rates, *, name="hazard curve"):
@@ -303,6 +322,10 @@ def interpolate_period(period_target_s, period_1_s, levels_1, rates_1, period_2_
 
     (common practice for spectral ordinates between tabulated periods).
 
+    A site whose neighbouring curves are both zero at every level (no hazard) gets a zero
+    curve, its levels log-spaced between the end levels of the neighbours interpolated in
+    the same way.
+
     Parameters
     ----------
     period_target_s, period_1_s, period_2_s : float [s]
@@ -315,6 +338,12 @@ def interpolate_period(period_target_s, period_1_s, levels_1, rates_1, period_2_
     Returns
     -------
     levels, rates : ndarray, shape C + (n_points,)
+
+    Raises
+    ------
+    NoCommonRates
+        At the first site whose two curves share no range of positive rates (one of them
+        zero everywhere, or their rate ranges disjoint or touching at one point).
     """
     t, t1, t2 = float(period_target_s), float(period_1_s), float(period_2_s)
     if not (0 < t1 < t < t2):
@@ -326,10 +355,20 @@ def interpolate_period(period_target_s, period_1_s, levels_1, rates_1, period_2_
     def positive_min(lam):
         return np.min(np.where(lam > 0, lam, np.inf), axis=-1)
 
+    quiet = (l1[..., 0] == 0) & (l2[..., 0] == 0)  # no hazard at either period
     r_hi = np.minimum(l1[..., 0], l2[..., 0])
     r_lo = np.maximum(positive_min(l1), positive_min(l2))
-    if np.any(~(r_hi > r_lo)):
-        raise ValueError("neighbouring curves share no common range of positive rates")
+    bad = ~(r_hi > r_lo) & ~quiet
+    if np.any(bad):
+        i = tuple(int(k) for k in np.argwhere(bad)[0])
+        span = [(float(l[i][0]), float(np.min(np.where(l[i] > 0, l[i], np.inf)))) for l in (l1, l2)]
+        blame = 1 if l1[i][0] == 0 else 2
+        raise NoCommonRates(i, blame, f"{_rate_span(*span[0])} and {_rate_span(*span[1])}")
+    if np.any(quiet):  # placeholder curves for the quiet sites; their results are replaced below
+        dummy = quiet[..., None]
+        x1, l1 = np.where(dummy, x1[..., :1] * np.arange(1, x1.shape[-1] + 1), x1), np.where(dummy, 1.0, l1)
+        x2, l2 = np.where(dummy, x2[..., :1] * np.arange(1, x2.shape[-1] + 1), x2), np.where(dummy, 1.0, l2)
+        r_hi, r_lo = np.where(quiet, 1.0, r_hi), np.where(quiet, 0.5, r_lo)
     u = np.linspace(0.0, 1.0, n)
     r = np.exp(np.log(r_hi)[..., None] + u * (np.log(r_lo) - np.log(r_hi))[..., None])  # decreasing
     r[..., 0], r[..., -1] = r_hi, r_lo  # exact end points: no round-off outside the range
@@ -337,4 +376,22 @@ def interpolate_period(period_target_s, period_1_s, levels_1, rates_1, period_2_
     ln_x2 = np.log(im_at_rate(r, x2, l2))
     w = (np.log(t) - np.log(t1)) / (np.log(t2) - np.log(t1))
     ln_x = ln_x1 + w * (ln_x2 - ln_x1)
-    return np.exp(ln_x), r
+    if not np.any(quiet):
+        return np.exp(ln_x), r
+    return _with_quiet_sites(np.exp(ln_x), r, quiet, levels_1, levels_2, w, u)
+
+
+def _rate_span(hi, lo):
+    if hi == 0:
+        return "0 at every level"
+    return f"{lo:.3g} to {hi:.3g} /yr"
+
+
+def _with_quiet_sites(levels, rates, quiet, levels_1, levels_2, w, u):
+    """Zero curves at the ``quiet`` sites, levels log-spaced between the interpolated end levels."""
+    x1 = np.broadcast_to(np.asarray(levels_1, dtype=float), quiet.shape + (np.shape(levels_1)[-1],))
+    x2 = np.broadcast_to(np.asarray(levels_2, dtype=float), quiet.shape + (np.shape(levels_2)[-1],))
+    ln_lo = np.log(x1[..., 0]) + w * (np.log(x2[..., 0]) - np.log(x1[..., 0]))
+    ln_hi = np.log(x1[..., -1]) + w * (np.log(x2[..., -1]) - np.log(x1[..., -1]))
+    grid = np.exp(ln_lo[..., None] + u * (ln_hi - ln_lo)[..., None])
+    return np.where(quiet[..., None], grid, levels), np.where(quiet[..., None], 0.0, rates)

@@ -15,7 +15,7 @@ from __future__ import annotations
 import difflib
 import re
 
-__all__ = ["InputError", "InputWarning", "locate_toml_line", "closest_name", "did_you_mean"]
+__all__ = ["InputError", "OutputError", "InputWarning", "locate_toml_line", "closest_name", "did_you_mean"]
 
 
 class InputError(ValueError):
@@ -34,6 +34,16 @@ class InputError(ValueError):
             where += f":{self.row}"
         col = f" column '{self.column}':" if self.column is not None else ""
         return f"{where}:{col} {self.message}"
+
+
+class OutputError(InputError):
+    """A place the user asked us to write to that we cannot or must not write to.
+
+    Names the path and what was attempted, e.g. ``/data/out: cannot create the output
+    folder: permission denied``.  A user problem like :class:`InputError` (the command
+    line prints it as one line and exits 2), kept as a subclass so every handler of input
+    errors also handles it.
+    """
 
 
 class InputWarning(str):

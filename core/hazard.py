@@ -42,15 +42,16 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.special import ndtr
+from scipy.special import ndtr, ndtri
 
 from quakefolio.core.curves import im_at_rate
-from quakefolio.core.events.gmf import check_standard_deviations, residual_term
-from quakefolio.core.events.losses import PASS_VALUES
+from quakefolio.core.pairs import block_pairs, pair_blocks, pair_segments, pair_values
 
 __all__ = [
     "exceedance_probability",
+    "truncation_window",
     "pair_index",
+    "site_chunks",
     "hazard_from_pairs",
     "weighted_mean",
     "weighted_sum",
@@ -64,13 +65,10 @@ __all__ = [
     "compute_site_hazard",
     "compute_disaggregation",
     "rupture_ground_motion",
-    "EVENT_PAIR_BLOCK",
-    "event_ground_motion",
-    "event_ln_im",
 ]
 
 
-def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
+def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *, out=None, scratch=None):
     r"""P(IM > x) [-] for lognormal residuals, optionally truncated at ``truncation_sigma``.
 
     Parameters
@@ -81,6 +79,13 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     truncation_sigma : float or None
         Symmetric truncation :math:`n > 0` of the standard normal residual; None
         for no truncation.
+    out : ndarray or None
+        Float array of the output's shape to write into (a work buffer reused by the
+        engine).
+    scratch : ndarray or None
+        Float array of at least (n_levels, n) for a 1-D ``ln_median`` of length n: the
+        standardised values are computed level by level there (long contiguous loops),
+        then copied; the same values.
 
     Returns
     -------
@@ -90,7 +95,10 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     -----
     Module notes: :math:`[\Phi(-\varepsilon) - \Phi(-n)]/[1 - 2\Phi(-n)]`, clipped to
     [0, 1]; a zero sigma gives the step :math:`\mathbf{1}[\ln x < \mu]`.  Computed in
-    place on one array of the output's size (this is the hot loop of the engine).
+    place on one array of the output's size (this is the hot loop of the engine).  With
+    truncation, :math:`\Phi` is evaluated only inside the window where the result is
+    not exactly 0 or 1 (:func:`truncation_window`); outside it the clipped value is
+    written directly, so every value is bit for bit the one of the full evaluation.
     """
     mu = np.asarray(ln_median, dtype=float)[..., None]
     sd = np.asarray(sigma, dtype=float)[..., None]
@@ -102,17 +110,71 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None):
     zero = sd == 0
     any_zero = bool(zero.any())
     with np.errstate(divide="ignore", invalid="ignore"):
-        p = np.subtract(mu, lnx)  # -epsilon_x * sigma
-        p *= 1.0 / sd
+        if scratch is not None and mu.ndim == 2:
+            zt = scratch[:len(lnx), :mu.shape[0]]
+            np.subtract(mu[:, 0], lnx[:, None], out=zt)  # -epsilon_x * sigma, level by level
+            zt *= 1.0 / sd[:, 0]
+            p = np.empty(mu.shape[:1] + lnx.shape) if out is None else out
+            np.copyto(p, zt.T)
+        else:
+            p = np.subtract(mu, lnx, out=out)  # -epsilon_x * sigma
+            p *= 1.0 / sd
     if any_zero:
-        p = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
-    ndtr(p, out=p)
-    if truncation_sigma is not None:
-        pn = ndtr(-truncation_sigma)
-        p -= pn
-        p *= 1.0 / (1.0 - 2.0 * pn)
-        np.clip(p, 0.0, 1.0, out=p)
+        p[...] = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
+    if truncation_sigma is None:
+        ndtr(p, out=p)
+        return p
+    pn = ndtr(-truncation_sigma)
+    lo, hi = truncation_window(truncation_sigma)
+    above = p > hi
+    outside = p < lo
+    outside |= above  # NaN stays inside (evaluated, stays NaN)
+    if not outside.any():
+        return _truncated(p, pn)
+    inside = ~outside
+    values = _truncated(p[inside], pn)  # (scipy's ufuncs are not called with where=: wrong values)
+    np.copyto(p, above)  # exactly 1 above the window, 0 below it
+    p[inside] = values
     return p
+
+
+def _truncated(z, pn):
+    """In place: clip((Phi(z) - pn) / (1 - 2 pn), 0, 1), the truncated exceedance."""
+    ndtr(z, out=z)
+    z -= pn
+    z *= 1.0 / (1.0 - 2.0 * pn)
+    np.clip(z, 0.0, 1.0, out=z)
+    return z
+
+
+def truncation_window(truncation_sigma):
+    r"""Standardised bounds [-] outside which the truncated exceedance is exactly 0 or 1.
+
+    Parameters
+    ----------
+    truncation_sigma : float
+        Truncation :math:`n > 0`.
+
+    Returns
+    -------
+    lo, hi : float
+        For :math:`z < lo`, :math:`\Phi(z) < \Phi(-n)(1 - 10^{-6})`, so
+        :math:`\Phi(z) - \Phi(-n)` is negative whatever the round-off (relative
+        accuracy of :math:`\Phi` near 1e-15) and the clipped value is 0; for
+        :math:`z > hi`, :math:`\Phi(z) - \Phi(-n) > 1 - 2\Phi(-n) + 10^{-9}`, so the
+        clipped value is 1.  ``lo`` is :math:`-\infty` where :math:`\Phi(-n)` underflows,
+        ``hi`` is :math:`+\infty` where :math:`\Phi(-n) \le 2 \cdot 10^{-9}` (no upper
+        shortcut: the excess over 1 would be below the round-off).
+
+    Notes
+    -----
+    Bounds from the normal quantile function (``scipy.special.ndtri``) with margins
+    far above the round-off, so evaluating only inside the window changes no bit.
+    """
+    pn = float(ndtr(-truncation_sigma))
+    lo = float(ndtri(pn * (1.0 - 1e-6))) if pn > 0 else -np.inf
+    hi = float(-ndtri(pn - 1e-9)) if pn > 2e-9 else np.inf
+    return lo, hi
 
 
 def pair_index(mask):
@@ -131,15 +193,42 @@ def pair_index(mask):
         The sites the segments belong to.
     """
     site, rup = np.nonzero(mask)  # row-major: already sorted by site
-    if site.size == 0:
-        return site, rup, np.zeros(0, dtype=np.intp), np.zeros(0, dtype=np.intp)
-    change = np.flatnonzero(np.diff(site)) + 1
-    starts = np.concatenate([[0], change])
-    return site, rup, starts, site[starts]
+    return pair_segments(site, rup)
+
+
+#: Target (pair x level) values per pass of :func:`hazard_from_pairs`: the pass's work
+#: arrays (about 2 MB) stay in one core's L2 cache; a site with more pairs is one pass.
+CHUNK_VALUES = 1 << 16
+
+
+def site_chunks(starts, n_pairs, chunk):
+    """Passes of whole sites with at most ``chunk`` pairs each (one site per pass if larger).
+
+    Parameters
+    ----------
+    starts : ndarray of int
+        First pair of each site (:func:`pair_index`).
+    n_pairs : int
+    chunk : int
+        Pairs per pass.
+
+    Returns
+    -------
+    list of (lo, hi, first, last)
+        Sites ``lo:hi`` (indices into ``starts``) and their pairs ``first:last``.
+    """
+    seg_end = np.append(starts[1:], n_pairs)
+    out, lo = [], 0
+    while lo < len(starts):
+        first = int(starts[lo])
+        hi = max(int(np.searchsorted(seg_end, first + chunk, side="right")), lo + 1)
+        out.append((lo, hi, first, int(seg_end[hi - 1])))
+        lo = hi
+    return out
 
 
 def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with_pairs, n_sites,
-                      truncation_sigma=None, chunk=200_000):
+                      truncation_sigma=None, chunk=None):
     r"""Hazard curves [1/yr] of ``n_sites`` sites from per-pair ground-motion parameters.
 
     Parameters
@@ -153,8 +242,9 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
         Segments from :func:`pair_index`.
     n_sites : int
     truncation_sigma : float or None
-    chunk : int
-        Pairs evaluated per vectorised pass (bounds memory to chunk x n_levels).
+    chunk : int or None
+        Pairs evaluated per vectorised pass (whole sites; default :data:`CHUNK_VALUES`
+        values per pass).  Results do not depend on it.
 
     Returns
     -------
@@ -169,22 +259,19 @@ def hazard_from_pairs(ln_levels, ln_median, sigma, pair_rate, starts, sites_with
     n_pairs = len(ln_median)
     if n_pairs == 0:
         return out
-    seg_end = np.append(starts[1:], n_pairs)
-    # process whole sites per chunk so each site's sum is complete; the rate-weighted sum
-    # over each site's pairs is one sparse (sites x pairs) product, a single pass in C
-    lo = 0
-    while lo < len(starts):
-        first = starts[lo]
-        hi = np.searchsorted(seg_end, first + chunk, side="right")
-        hi = max(hi, lo + 1)
-        last = seg_end[hi - 1]
-        p = exceedance_probability(ln_levels, ln_median[first:last], sigma[first:last], truncation_sigma)
-        lengths = seg_end[lo:hi] - starts[lo:hi]
-        rows = np.repeat(np.arange(hi - lo), lengths)
-        weights = sp.csr_matrix((pair_rate[first:last], (rows, np.arange(last - first))),
+    chunk = max(1, CHUNK_VALUES // n_lev) if chunk is None else chunk
+    passes = site_chunks(starts, n_pairs, chunk)
+    work = np.empty((max(last - first for _, _, first, last in passes), n_lev))
+    scratch = np.empty(work.shape[::-1])
+    bounds = np.append(starts, n_pairs)
+    # whole sites per pass so each site's sum is complete; the rate-weighted sum over each
+    # site's pairs is one sparse (sites x pairs) product, a single pass in C
+    for lo, hi, first, last in passes:
+        p = exceedance_probability(ln_levels, ln_median[first:last], sigma[first:last], truncation_sigma,
+                                   out=work[:last - first], scratch=scratch)
+        weights = sp.csr_matrix((pair_rate[first:last], np.arange(last - first), bounds[lo:hi + 1] - first),
                                 shape=(hi - lo, last - first))
         out[sites_with_pairs[lo:hi]] = weights @ p
-        lo = hi
     return out
 
 
@@ -430,46 +517,6 @@ def uniform_hazard_targets(levels, curves, return_periods_yr):
 
 # --- engine driver: sources + ground-motion models -> curves --------------------------------
 
-def _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region, z1p0_km=None,
-                 z2p5_km=None):
-    """Surviving (site, rupture) pairs of a block of sites and their GMM input."""
-    from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
-    from quakefolio.core.gmm import GmmInput
-
-    mask = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb", exact=True,
-                             ref_lon=ref[0], ref_lat=ref[1])
-    site, rup, starts, owners = pair_index(mask)
-    if site.size == 0:
-        return site, rup, starts, owners, None, None
-    d = pair_distances(site_lon, site_lat, ruptures, site, rup, ref_lon=ref[0], ref_lat=ref[1])
-    inp = GmmInput(
-        mag=ruptures.mag[rup], vs30_mps=site_vs30[site], rrup_km=d["rrup_km"], rjb_km=d["rjb_km"],
-        rx_km=d["rx_km"], ry0_km=d["ry0_km"], ztor_km=ruptures.ztor_km[rup], zhyp_km=ruptures.zhyp_km[rup],
-        dip_deg=ruptures.dip_deg[rup], rake_deg=ruptures.rake_deg[rup], width_km=ruptures.width_km[rup],
-        z1p0_km=None if z1p0_km is None else z1p0_km[site], z2p5_km=None if z2p5_km is None else z2p5_km[site],
-        region=region,
-    )
-    return site, rup, starts, owners, inp, d
-
-
-def _pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
-    """Blocks of sites with their surviving pairs: (slice, site, rupture, starts, owners, GMM input,
-    distances, pair rate); blocks without any pair are skipped.  ``ref`` defaults to the mean site
-    position, fixed for all blocks so results do not depend on the blocking."""
-    from quakefolio.core.sources.geometry import mean_position
-
-    lon = np.asarray(site_lon, dtype=float)
-    lat = np.asarray(site_lat, dtype=float)
-    vs30 = np.asarray(site_vs30, dtype=float)
-    ref = ref if ref is not None else mean_position(lon, lat)
-    for lo in range(0, len(lon), site_block):
-        blk = slice(lo, min(len(lon), lo + site_block))
-        site, rup, starts, owners, inp, d = _block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km,
-                                                         ref, region)
-        if inp is not None:
-            yield blk, site, rup, starts, owners, inp, d, ruptures.rate[rup]
-
-
 def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, levels_g, *, truncation_sigma=None,
                         max_distance_km=200.0, region="global", site_block=64, ref=None):
     r"""Hazard curves [1/yr] from a rupture set and ground-motion models.
@@ -507,13 +554,13 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     if np.any(np.diff(lnx) <= 0):
         raise ValueError("levels_g must be strictly increasing")
     out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
-    for blk, site, rup, starts, owners, inp, _, rate in _pair_blocks(
+    for blk, site, rup, starts, owners, inp, cells, _, rate in pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for g, gmm in enumerate(gmms):
-            res = gmm.evaluate(inp, list(ims))
+            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
             for i in range(len(ims)):
-                out[g, i, blk] = hazard_from_pairs(lnx, res.ln_median[i], res.sigma[i], rate, starts, owners, n_blk,
+                out[g, i, blk] = hazard_from_pairs(lnx, ln_median[i], sigma[i], rate, starts, owners, n_blk,
                                                    truncation_sigma)
     return out
 
@@ -545,14 +592,14 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
     n_t = ln_targets.shape[-1]
     out = np.zeros((len(ims), len(site_lon), n_t) + bins.shape)
     mom = np.zeros((len(ims), len(site_lon), n_t, len(DISAGG_MOMENTS)))
-    for blk, site, rup, starts, owners, inp, d, rate in _pair_blocks(
+    for blk, site, rup, starts, owners, inp, cells, d, rate in pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
         n_blk = blk.stop - blk.start
         for gmm, w in zip(gmms, gmm_weights):
-            res = gmm.evaluate(inp, list(ims))
+            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
             for i in range(len(ims)):
                 c, m = disaggregation_from_pairs(
-                    ln_targets[i, blk], res.ln_median[i], res.sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
+                    ln_targets[i, blk], ln_median[i], sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
                     bins, n_blk, truncation_sigma, moments=True)
                 out[i, blk] += w * c
                 mom[i, blk] += w * m
@@ -566,7 +613,7 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     r"""Ln median [ln g], tau and phi [ln units] of every (model, IM, site, rupture).
 
     The (site, rupture) pairs within the integration distance and their ground-motion
-    model inputs are those of the classical engine (:func:`_block_pairs`, as used by
+    model inputs are those of the classical engine (:func:`quakefolio.core.pairs.block_pairs`, as used by
     :func:`compute_site_hazard`), for all sites at once.
 
     Parameters
@@ -591,195 +638,25 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     ln_median, tau, phi : ndarray, shape (n_gmms, n_ims, n_sites, n_ruptures)
         ``-inf`` median and zero tau and phi for pairs beyond the integration distance
         (the ground motion there is taken as nil).
+
+    Raises
+    ------
+    ValueError
+        If a model to evaluate gives only a total sigma (``has_tau_phi`` False).
     """
     n_im = len(ims)
     mu = np.full((len(gmms), n_im, len(site_lon), len(ruptures.mag)), -np.inf)
     tau = np.zeros_like(mu)
     phi = np.zeros_like(mu)
-    si, ri, _, _, inp, _ = _block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
+    si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
     if inp is None:
         return mu, tau, phi
     for g in (range(len(gmms)) if evaluate is None else evaluate):
+        if not gmms[g].has_tau_phi:
+            raise ValueError(f"{gmms[g].name}: the model gives only a total sigma; event ground motion needs "
+                             "its between- and within-event parts (tau, phi)")
         res = gmms[g].evaluate(inp, ims)
         mu[g][:, si, ri] = res.ln_median
         tau[g][:, si, ri] = res.tau
         phi[g][:, si, ri] = res.phi
     return mu, tau, phi
-
-
-#: Most (site, rupture) pairs per ground-motion model call of :func:`event_ground_motion`
-#: (and per pass of distances): a model's temporaries of one call (a few dozen arrays of
-#: this length) then stay near the processor caches.  Measured on the development machine
-#: (2 MB of L2 per core; 1,024 events on 2,000 sites, two models): 1.9 s of CPU per chunk
-#: with 32,768 pairs per pass, 2.4 s with 262,144, 2.2 s with 8,000.
-EVENT_PAIR_BLOCK = 32_768
-
-
-def _slot_events(keys_of_event):
-    """Distinct keys, and for each the events holding it: (keys, order, first) with the events
-    of key k at ``order[first[k]:first[k + 1]]`` (CSR layout)."""
-    keys, slot = np.unique(keys_of_event, return_inverse=True)
-    slot = slot.ravel()
-    order = np.argsort(slot, kind="stable")
-    first = np.concatenate([[0], np.cumsum(np.bincount(slot, minlength=keys.size))])
-    return keys, order, first
-
-
-def _event_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region):
-    """The pairs and model input of :func:`_block_pairs` (the same values), each distance computed once.
-
-    The exact cut-off of :func:`~quakefolio.core.sources.geometry.site_rupture_mask` computes the
-    distances of the candidate pairs and drops those beyond the cut-off; here those
-    distances are kept for the model input instead of being computed a second time.
-    """
-    from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
-    from quakefolio.core.gmm import GmmInput
-
-    candidate = site_rupture_mask(site_lon, site_lat, ruptures, max_distance_km, metric="rjb",
-                                  ref_lon=ref[0], ref_lat=ref[1])
-    site, rup = np.nonzero(candidate)  # sorted by site, as pair_index
-    d = pair_distances(site_lon, site_lat, ruptures, site, rup, ref_lon=ref[0], ref_lat=ref[1])
-    keep = np.flatnonzero(~(d["rjb_km"] > max_distance_km))
-    if keep.size == 0:
-        return site[keep], rup[keep], None
-    site, rup = site[keep], rup[keep]
-    d = {k: v[keep] for k, v in d.items()}
-    inp = GmmInput(
-        mag=ruptures.mag[rup], vs30_mps=site_vs30[site], rrup_km=d["rrup_km"], rjb_km=d["rjb_km"],
-        rx_km=d["rx_km"], ry0_km=d["ry0_km"], ztor_km=ruptures.ztor_km[rup], zhyp_km=ruptures.zhyp_km[rup],
-        dip_deg=ruptures.dip_deg[rup], rake_deg=ruptures.rake_deg[rup], width_km=ruptures.width_km[rup],
-        region=region,
-    )
-    return site, rup, inp
-
-
-def _scatter(out, values, events, sites):
-    """``out[events[j], i, sites[j]] = values[i, j]`` for ``out`` C-contiguous (n_events, n_ims, n_sites)."""
-    n_ims, n_sites = out.shape[1:]
-    flat = out.reshape(-1)
-    at = events * (n_ims * n_sites) + sites
-    for i in range(n_ims):
-        flat[at + i * n_sites] = values[i]
-
-
-def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, event_gmm, gmms, ims, *,
-                        max_distance_km=200.0, region="global", ref, pair_block=EVENT_PAIR_BLOCK):
-    r"""Ln median [ln g], tau and phi [ln units] of each event's ground motion at each site.
-
-    Parameters
-    ----------
-    site_lon, site_lat, site_vs30 : ndarray, shape (n_sites,) [deg], [deg], [m/s]
-    ruptures : quakefolio.core.sources.ruptures.RuptureSet
-    event_rupture : ndarray of int, shape (n_events,)
-        Rupture of each event (index into ``ruptures``).
-    event_gmm : ndarray of int, shape (n_events,)
-        Ground-motion model of each event (index into ``gmms``).
-    gmms : sequence of ground-motion models
-    ims : sequence of str
-    max_distance_km, region, ref
-        As :func:`rupture_ground_motion`.
-    pair_block : int
-        About the most (site, rupture) pairs per pass (:data:`EVENT_PAIR_BLOCK`); the
-        values do not depend on it.
-
-    Returns
-    -------
-    ln_median, tau, phi : ndarray, shape (n_events, n_ims, n_sites)
-        ``-inf`` median and zero tau, phi beyond the integration distance.
-
-    Notes
-    -----
-    The (site, rupture) pairs within the integration distance and their model inputs
-    are those of the classical engine (:func:`_block_pairs`; :func:`_event_pairs`),
-    computed once per distinct rupture of the events, a group of ruptures at a time
-    (about ``pair_block`` pairs).
-    Each model is evaluated only on the pairs of the ruptures of the events that drew it,
-    once per distinct (model, rupture), and its values are written to those events.
-    Distances and models are elementwise, so every value is the one of any other
-    grouping (and of :func:`rupture_ground_motion`).  The event field is then
-    :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
-    :func:`quakefolio.core.events.gmf.ln_im`).
-    """
-    ev_rup = np.asarray(event_rupture, dtype=np.int64).ravel()
-    g_ev = np.asarray(event_gmm, dtype=np.int64).ravel()
-    ims = list(ims)
-    shape = (ev_rup.size, len(ims), len(site_lon))
-    mu, tau, phi = np.full(shape, -np.inf), np.zeros(shape), np.zeros(shape)
-    if ev_rup.size == 0:
-        return mu, tau, phi
-    keys, order, first = _slot_events(g_ev * len(ruptures) + ev_rup)  # distinct (model, rupture)
-    slot_g, slot_r = np.divmod(keys, len(ruptures))
-    uniq, slot_u = np.unique(slot_r, return_inverse=True)
-    drawn = np.zeros((len(gmms), uniq.size), dtype=bool)
-    drawn[slot_g, slot_u] = True
-    by_models = np.lexsort(drawn)  # ruptures drawn by the same models side by side: fuller calls
-    rank = np.empty_like(by_models)
-    rank[by_models] = np.arange(by_models.size)
-    per_group = max(1, int(pair_block) // max(1, len(site_lon)))
-    for lo in range(0, uniq.size, per_group):
-        group = by_models[lo:lo + per_group]
-        si, ri, inp = _event_pairs(site_lon, site_lat, site_vs30, ruptures.subset(uniq[group]), max_distance_km,
-                                   ref, region)
-        if inp is None:
-            continue
-        slots = np.flatnonzero((rank[slot_u] >= lo) & (rank[slot_u] < lo + per_group))
-        for g in np.unique(slot_g[slots]):
-            mine = slots[slot_g[slots] == g]
-            slot_of = np.full(group.size, -1)
-            slot_of[rank[slot_u[mine]] - lo] = mine  # the model's slot of each rupture of the group
-            p = np.flatnonzero(slot_of[ri] >= 0)
-            res = gmms[g].evaluate(inp.take(p), ims)
-            k = slot_of[ri[p]]
-            n_ev = first[k + 1] - first[k]
-            col = np.repeat(np.arange(p.size), n_ev)  # one column per (pair, event of its slot)
-            events = order[np.repeat(first[k], n_ev) + np.arange(col.size) - np.repeat(np.cumsum(n_ev) - n_ev, n_ev)]
-            sites = si[p][col]
-            for out, values in ((mu, res.ln_median), (tau, res.tau), (phi, res.phi)):
-                _scatter(out, values if col.size == p.size else values[:, col], events, sites)
-    return mu, tau, phi
-
-
-def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None, out=None):
-    r"""ln IM [ln g] of sampled events; ``-inf`` (no ground motion) beyond the integration distance.
-
-    Parameters
-    ----------
-    ln_median, tau, phi : ndarray, shape (n_events, n_ims, n_sites)
-        From :func:`event_ground_motion` (``-inf`` median beyond the integration distance).
-    eta : ndarray, shape (n_events, n_ims) [-]
-    eps : ndarray, shape (n_events, n_ims, n_sites) [-]
-        Standard-normal residuals (:class:`quakefolio.core.events.gmf.FieldSampler`).
-    truncation_sigma : float or None
-    out : ndarray, shape (n_events, n_ims, n_sites), optional
-        Where to write the result; may be ``ln_median`` itself.
-
-    Returns
-    -------
-    ndarray, shape (n_events, n_ims, n_sites) [ln g]
-        :func:`quakefolio.core.events.gmf.ln_im` where the median is finite, ``-inf`` elsewhere.
-
-    Notes
-    -----
-    The operations of :func:`~quakefolio.core.events.gmf.ln_im`
-    (:func:`~quakefolio.core.events.gmf.residual_term`), a few events at a time
-    (:data:`quakefolio.core.events.losses.PASS_VALUES` values per pass, so that the
-    temporaries stay in cache; elementwise, so the values do not depend on it).
-    """
-    ln_median = np.asarray(ln_median, dtype=np.float64)
-    tau, phi, eta, eps = (np.asarray(a, dtype=np.float64) for a in (tau, phi, eta, eps))
-    if eta.ndim != 2 or eps.ndim != 3 or eps.shape[:2] != eta.shape:
-        raise ValueError(
-            "eta must have shape (n_events, n_ims) and eps (n_events, n_ims, n_sites) with the same first two "
-            f"axes; got {eta.shape} and {eps.shape}"
-        )
-    check_standard_deviations(tau, phi)
-    out = np.empty(ln_median.shape) if out is None else out
-    step = max(1, PASS_VALUES // max(1, int(np.prod(ln_median.shape[1:]))))
-    for lo in range(0, ln_median.shape[0], step):
-        rows = slice(lo, lo + step)
-        # the arithmetic of ln_im with the median 0 beyond the distance (tau = phi = 0 there: a residual of 0)
-        part = residual_term(tau[rows], phi[rows], eta[rows], eps[rows], truncation_sigma)
-        part += ln_median[rows]
-        part[~np.isfinite(ln_median[rows])] = -np.inf
-        out[rows] = part
-    return out

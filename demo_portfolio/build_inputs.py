@@ -309,7 +309,7 @@ STATE_NAMES = ("cosmetic", "repairable", "irreparable", "collapse")
 #: Invented contents damage ratio per state (contents loss / contents value), every class.
 CONTENTS_DAMAGE_RATIO = (0.01, 0.08, 0.35, 0.8)
 #: Invented contents value as a share of the replacement value, per class.
-CONTENTS_SHARE = {"TMB": 0.2, "MAS-UR": 0.25, "MAS-CF": 0.25, "RCF-LO": 0.3, "RCF-MID": 0.35, "RCW": 0.35,
+CONTENTS_SHARE = {"TMB": 0.2, "MAS-UR": 0.25, "MAS-TIE": 0.25, "RCF-LO": 0.3, "RCF-MID": 0.35, "RCW": 0.35,
                   "STL-BR": 0.5}
 #: Invented value of one day of business interruption as a share of the replacement value [1/day].
 INTERRUPTION_SHARE_PER_DAY = 0.0003
@@ -343,8 +343,8 @@ FRAGILITY = {
         "mdr": (0.03, 0.18, 0.65, 1.0), "cov": (0.8, 0.55, 0.3, None),
         "downtime_days": (5, 60, 300, 540), "casualty_rate": (0.0, 0.0005, 0.012, 0.15),
     },
-    "MAS-CF": {
-        "description": "Confined masonry, 1-4 storeys",
+    "MAS-TIE": {
+        "description": "Masonry with reinforced-concrete tie columns and bond beams, 1-4 storeys",
         "im": "SA_0.3",
         "median": (0.21, 0.46, 0.92, 1.55), "beta": (0.62, 0.64, 0.67, 0.70),
         "mdr": (0.025, 0.15, 0.60, 1.0), "cov": (0.85, 0.55, 0.3, None),
@@ -440,22 +440,22 @@ def fragility_toml(fragility):
 # name: centre (x, y) [km], spread (sx, sy) [km], number of assets, class shares
 DISTRICTS = (
     ("Saltgrave Quay", (5.0, -7.8), (1.1, 0.8), 100,
-     {"MAS-UR": 0.35, "MAS-CF": 0.20, "TMB": 0.25, "RCF-LO": 0.20}),
+     {"MAS-UR": 0.35, "MAS-TIE": 0.20, "TMB": 0.25, "RCF-LO": 0.20}),
     ("Lanternhill", (0.0, -3.0), (1.3, 1.3), 100,
      {"RCF-MID": 0.35, "RCW": 0.30, "STL-BR": 0.20, "RCF-LO": 0.15}),
     ("Corvell Flats", (-6.0, -11.0), (1.8, 0.9), 70,
-     {"STL-BR": 0.40, "RCF-LO": 0.35, "MAS-CF": 0.15, "RCW": 0.10}),
+     {"STL-BR": 0.40, "RCF-LO": 0.35, "MAS-TIE": 0.15, "RCW": 0.10}),
     ("Thistlerow", (5.0, 4.0), (1.6, 1.6), 110,
-     {"TMB": 0.45, "MAS-CF": 0.25, "RCF-LO": 0.20, "MAS-UR": 0.10}),
+     {"TMB": 0.45, "MAS-TIE": 0.25, "RCF-LO": 0.20, "MAS-UR": 0.10}),
     ("Harnmere Rise", (-6.0, 5.5), (1.4, 1.4), 100,
-     {"TMB": 0.50, "RCF-LO": 0.25, "MAS-CF": 0.15, "RCW": 0.10}),
+     {"TMB": 0.50, "RCF-LO": 0.25, "MAS-TIE": 0.15, "RCW": 0.10}),
 )
 
 # class: median value [USD], log-sd, (min, max) [USD], value per occupant [USD/person]
 VALUE_MODEL = {
     "TMB":     (0.9e6, 0.45, (0.4e6, 3.0e6), 250e3),
     "MAS-UR":  (1.6e6, 0.60, (0.4e6, 8.0e6), 120e3),
-    "MAS-CF":  (2.2e6, 0.60, (0.5e6, 12.0e6), 150e3),
+    "MAS-TIE":  (2.2e6, 0.60, (0.5e6, 12.0e6), 150e3),
     "RCF-LO":  (3.5e6, 0.60, (0.8e6, 18.0e6), 120e3),
     "RCF-MID": (16.0e6, 0.50, (5.0e6, 60.0e6), 100e3),
     "RCW":     (20.0e6, 0.50, (6.0e6, 60.0e6), 110e3),

@@ -24,7 +24,11 @@ only some of its states has no figure for that consequence (its assets are left 
 totals and counted; contents or interruption values in the exposure are then an error).
 
 Every problem is raised as :class:`quakefolio.core.errors.InputError` naming the file,
-the line and the key.  The file is data only: parsed with :mod:`tomllib`, never executed.
+the line and the key; a median far from any real ground motion (bounds in
+:mod:`quakefolio.core.plausibility`) is such a problem.  Doubtful but usable content (a
+``collapse_state`` naming the least severe of several states) is kept as an
+:class:`~quakefolio.core.errors.InputWarning` in the library's ``warnings``.  The file is
+data only: parsed with :mod:`tomllib`, never executed.
 """
 from __future__ import annotations
 
@@ -36,8 +40,9 @@ from pathlib import Path
 
 import numpy as np
 
-from quakefolio.core.errors import InputError
+from quakefolio.core.errors import InputError, InputWarning
 from quakefolio.core.loss import check_damage_ratios
+from quakefolio.core.plausibility import median_problem
 from quakefolio.core.validation import Field, Interval, Pattern, Real, Schema, Text, toml_place, validate_table
 from quakefolio.fragility.models import DamageStateSet, FragilityLibrary
 
@@ -142,6 +147,9 @@ def _state_rows(code, states, text, path):
         if not isinstance(st, dict):
             raise place.error("expected a table")
         values = validate_table(st, _STATE_SCHEMA, place)
+        problem = median_problem(values["median"])
+        if problem is not None:
+            raise place.error(f"{problem}", "median")
         for key, value in values.items():
             rows[key].append(value)
         try:  # the loss-ratio distribution of this state must exist; locate the problem at its cov
@@ -153,8 +161,18 @@ def _state_rows(code, states, text, path):
     return rows
 
 
-def _parse_class(code, body, text, path):
-    """One ``[classes.<code>]`` table to its :class:`DamageStateSet`."""
+def _collapse_warning(code, rows, collapse, place):
+    """A warning when ``collapse_state`` names the least severe of several states, else None."""
+    if collapse != rows["name"][0] or len(rows["name"]) < 2:
+        return None
+    return InputWarning(place.path, f"collapse_state {collapse!r} is the least severe of {len(rows['name'])} damage "
+                                    "states: every building reaching it counts as collapsed in the collapse-risk "
+                                    "screening; name the most severe state meant by collapse",
+                        row=place.locate("collapse_state"), column=place.column_of("collapse_state"))
+
+
+def _parse_class(code, body, text, path, warnings):
+    """One ``[classes.<code>]`` table to its :class:`DamageStateSet` (a doubt is appended to ``warnings``)."""
     place = toml_place(path, text, ("classes", code), f"classes.{code}")
     if not _CLASS_CODE.holds(code):
         raise place.error(_CLASS_CODE.failure(code, code))
@@ -168,6 +186,9 @@ def _parse_class(code, body, text, path):
     collapse = body.get("collapse_state", rows["name"][-1])
     if collapse not in rows["name"]:
         raise place.error(f"collapse_state {collapse!r} is not one of the states {rows['name']}", "collapse_state")
+    doubt = _collapse_warning(code, rows, collapse, place)
+    if doubt is not None:
+        warnings.append(doubt)
     try:
         return DamageStateSet(
             class_code=code,
@@ -203,7 +224,7 @@ def parse_library(data, *, text="", path="<fragility library>"):
     Returns
     -------
     FragilityLibrary
-        One :class:`DamageStateSet` per class code.
+        One :class:`DamageStateSet` per class code; ``warnings`` holds the doubts found.
 
     Raises
     ------
@@ -211,5 +232,6 @@ def parse_library(data, *, text="", path="<fragility library>"):
         On the first problem, naming file, line and key.
     """
     classes = _check_top(data, text, path)
-    out = {code: _parse_class(code, body, text, path) for code, body in classes.items()}
-    return FragilityLibrary(classes=out, path=path)
+    warnings = []
+    out = {code: _parse_class(code, body, text, path, warnings) for code, body in classes.items()}
+    return FragilityLibrary(classes=out, path=path, warnings=tuple(warnings))

@@ -146,12 +146,14 @@ class DamageStateSet:
 
 @dataclass
 class FragilityLibrary:
-    """Damage-state sets by class code, with the file they came from."""
+    """Damage-state sets by class code, with the file they came from and the doubts about it
+    (``warnings``: located :class:`~quakefolio.core.errors.InputWarning` objects)."""
 
     classes: dict
     path: str | None = None
     sha256: str | None = None
     extra: dict = field(default_factory=dict)
+    warnings: tuple = ()
 
     def __getitem__(self, code):
         try:

@@ -4,20 +4,42 @@
 User errors (bad input files or config) exit with status 2 and one line naming file,
 row and column; no traceback unless ``--debug``.  ``check`` and ``--help`` never start
 Prefect.
+
+Exit statuses (:func:`main`): 0 done; 1 a stage failed for an internal reason (one line
+naming the stage and the cause); 2 a problem the user can fix: bad input, an output
+folder that cannot be written (permission denied, read-only file system) or a full disk
+(the line names the stage and the path), or a Dask scheduler address that does not answer
+as a Dask scheduler; 130 Ctrl-C; 143 SIGTERM (handled as Ctrl-C: the run stops, nothing
+half-written is kept, a Prefect server this command started is stopped).  In the Prefect
+path, Prefect's own log records go to the run's log file
+(:mod:`quakefolio.pipeline.runlog`), named on the error line, never to the terminal.
+Everything printed shows control characters escaped (:mod:`quakefolio.pipeline.terminal`).
 """
 from __future__ import annotations
 
 import argparse
+import errno
+import signal
 import sys
 import time
 from pathlib import Path
 
 from quakefolio.pipeline.env import configure_prefect
 
+# Names from user files may carry terminal escape sequences: every line this module prints
+# goes through the one sanitising printer (control characters shown as \x1b, \r ...).
+from quakefolio.pipeline.terminal import echo as print  # noqa: A004
+from quakefolio.pipeline.terminal import one_line
+
 __all__ = ["main"]
 
 EXIT_USER_ERROR = 2
 EXIT_INTERNAL = 1
+EXIT_INTERRUPTED = 130
+EXIT_TERMINATED = 143  # 128 + SIGTERM
+
+#: errno values of an OSError the user can fix (a folder not writable, a full disk): exit 2
+_USER_ERRNOS = {errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOSPC, errno.EDQUOT}
 
 
 def _count(text):
@@ -36,6 +58,7 @@ def _parser():
         description="Earthquake damage and loss for building portfolios (screening level).",
     )
     p.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+    p.add_argument("--version", action="version", version=f"quakefolio {_version()}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
     run = sub.add_parser("run", help="run the full pipeline for CONFIG and store a new run")
     run.add_argument("config", help="run config file (quakefolio.toml)")
@@ -116,6 +139,21 @@ def _parser():
     return p
 
 
+def _version():
+    from importlib import metadata
+
+    try:
+        return metadata.version("quakefolio")
+    except metadata.PackageNotFoundError:  # a source tree that is not installed
+        import tomllib
+
+        try:
+            with open(Path(__file__).resolve().parents[1] / "pyproject.toml", "rb") as fh:
+                return tomllib.load(fh)["project"]["version"]
+        except (OSError, KeyError, ValueError):
+            return "unknown"
+
+
 def _dask_address(text):
     from quakefolio.pipeline.io.config import _dask_address as problem_with
 
@@ -147,13 +185,14 @@ def _non_negative_number(text):
 
 def _check(args):
     from quakefolio.pipeline.caution import CAUTION
-    from quakefolio.pipeline.stages import load_inputs, unique_pairs
+    from quakefolio.pipeline.stages import load_inputs
 
     inputs = load_inputs(args.config)
-    n_pairs = unique_pairs(inputs)
+    n_pairs = inputs.work.n_pairs
     print(CAUTION)
     print(f"OK: {args.config}: {len(inputs.exposure)} assets, {inputs.exposure.building_class.nunique()} classes, "
           f"{len(inputs.hazard.site_id)} hazard sites, {n_pairs} unique (site, class) pairs")
+    print(inputs.work.summary())
     _print_notes(inputs.warnings, notes=True)
     return 0
 
@@ -164,9 +203,9 @@ def _print_notes(warnings, *, notes):
 
     for w in warnings:
         if isinstance(w, InputWarning):
-            print(f"warning: {w}", file=sys.stderr)
+            print(f"warning: {one_line(w)}", file=sys.stderr)
         elif notes:
-            print(f"note: {w}")
+            print(f"note: {one_line(w)}")
 
 
 def _run(args, stages_to_run="all"):
@@ -181,7 +220,7 @@ def _run(args, stages_to_run="all"):
     _print_notes(inputs.warnings, notes=False)  # the notes come with the summary
     with StageProgress(enabled=sys.stderr.isatty() and not args.quiet):
         if backend == "dask":
-            configure_prefect()
+            configure_prefect(log_to=inputs.config.output.folder)  # Prefect's records to the run's log file
             from quakefolio.pipeline.orchestration import run_on_dask
 
             run_dir = run_on_dask(Path(args.config).resolve(), address, stages_to_run=stages_to_run)
@@ -190,7 +229,7 @@ def _run(args, stages_to_run="all"):
 
             run_dir = run_pure(inputs, stages_to_run=stages_to_run)
         else:
-            configure_prefect()
+            configure_prefect(log_to=inputs.config.output.folder)
             from quakefolio.pipeline.flow import run_flow
 
             run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config.execution.max_workers,
@@ -261,24 +300,12 @@ def _compare(args):
 
 
 def _report(args):
-    from quakefolio.core.errors import InputError
     from quakefolio.pipeline.compare import resolve_run
-    from quakefolio.pipeline.report import write_report
+    from quakefolio.pipeline.report import default_report_file, report_target, write_report
 
     run = resolve_run(args.run)
     previous = resolve_run(args.previous) if args.previous else None
-    if args.out:
-        out = Path(args.out).resolve()
-        if not out.parent.is_dir():
-            raise InputError(out.parent, "folder does not exist")
-    else:
-        out = run.parent.parent / "reports" / f"{run.name}.html"
-    for folder in (run, previous):
-        if folder is not None and out.is_relative_to(folder):
-            raise InputError(out, f"inside run folder {folder}: finished runs are never modified")
-    if out.is_dir():
-        raise InputError(out, "is a folder; give a file name")
-    out.parent.mkdir(parents=True, exist_ok=True)
+    out = report_target(args.out or default_report_file(run), runs=(run, previous))  # new, or an earlier report
     print(write_report(run, out, previous_run=previous))
     return 0
 
@@ -322,12 +349,67 @@ def _fit_fragility(args):
     return 0
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised in the main thread so that the command unwinds as on Ctrl-C.
+
+    A subclass of ``KeyboardInterrupt``: every stage, the run writer and Prefect treat it as
+    an interruption (nothing half-written is kept; the embedded Prefect server is stopped
+    when the process exits).
+    """
+
+
+def _raise_terminated(signum, frame):
+    raise Terminated()
+
+
+def _set_sigterm(handler):
+    """Install ``handler`` for SIGTERM; the handler before, or None outside the main thread."""
+    try:
+        return signal.signal(signal.SIGTERM, handler)
+    except ValueError:  # signals can only be set from the main thread
+        return None
+
+
+def _user_os_error(exc):
+    """The OSError behind ``exc`` (itself or a failed stage's cause) when the user can fix it, else None."""
+    cause = getattr(exc, "cause", exc)
+    return cause if isinstance(cause, OSError) and cause.errno in _USER_ERRNOS else None
+
+
+def _failure(exc):
+    """(exit status, one line) for the exception that ends a command."""
+    from quakefolio.core.errors import InputError
+    from quakefolio.pipeline.runlog import current_log
+    from quakefolio.pipeline.runner import StageError
+
+    if isinstance(exc, Terminated):
+        return EXIT_TERMINATED, "terminated (SIGTERM)"
+    if isinstance(exc, KeyboardInterrupt):
+        return EXIT_INTERRUPTED, "interrupted"
+    if isinstance(exc, InputError):
+        return EXIT_USER_ERROR, f"error: {exc}"
+    os_error = _user_os_error(exc)
+    if isinstance(exc, StageError):
+        status, line = (EXIT_USER_ERROR if os_error else EXIT_INTERNAL), f"error: {exc}"
+    elif os_error is not None:
+        where = f"{os_error.filename}: " if os_error.filename else ""
+        status, line = EXIT_USER_ERROR, f"error: {where}{os_error.strerror or os_error}"
+    else:
+        status, line = EXIT_INTERNAL, (f"internal error: {type(exc).__name__}: {exc} "
+                                       f"(rerun with --debug for a traceback)")
+    log = current_log()
+    return status, line + (f"; Prefect log: {log}" if log is not None else "")
+
+
 def main(argv=None):
     """The ``quakefolio`` command: parse ``argv``, run the subcommand, map errors to exit codes.
 
     A user-input error prints ``error: <message>`` (file, row and column) on stderr and
-    returns 2; a failed stage or any other error prints one line and returns 1; Ctrl-C
-    returns 130.  With ``--debug`` the exception is raised instead (a traceback).
+    returns 2, and so does a stage that could not write (permission denied, read-only file
+    system, disk full: the line names the stage and the path); any other failure prints one
+    line naming the stage and the cause and returns 1; Ctrl-C returns 130 and SIGTERM 143
+    (both stop the run as an interruption).  Every line is printed with control characters
+    escaped.  With ``--debug`` the exception is raised instead (a traceback).
 
     Parameters
     ----------
@@ -337,35 +419,26 @@ def main(argv=None):
     Returns
     -------
     int
-        Exit status: 0 on success, 2 (:data:`EXIT_USER_ERROR`), 1 (:data:`EXIT_INTERNAL`)
-        or 130.
+        Exit status: 0 on success, 2 (:data:`EXIT_USER_ERROR`), 1 (:data:`EXIT_INTERNAL`),
+        130 (:data:`EXIT_INTERRUPTED`) or 143 (:data:`EXIT_TERMINATED`).
     """
     args = _parser().parse_args(argv)
-    from quakefolio.core.errors import InputError
-    from quakefolio.pipeline.runner import StageError
-
+    handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "report": _report,
+                "fit-fragility": _fit_fragility, "schedule": _schedule}
+    before = _set_sigterm(_raise_terminated)
     try:
-        handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "report": _report,
-                    "fit-fragility": _fit_fragility, "schedule": _schedule}
         return handlers[args.command](args)
-    except InputError as exc:
+    except Exception as exc:  # noqa: BLE001 - the command's last line of defence: one line, no traceback
         if args.debug:
             raise
-        print(f"error: {exc}", file=sys.stderr)
-        return EXIT_USER_ERROR
-    except KeyboardInterrupt:
-        print("interrupted", file=sys.stderr)
-        return 130
-    except StageError as exc:
-        if args.debug:
-            raise
-        print(f"error: {exc}", file=sys.stderr)
-        return EXIT_INTERNAL
-    except Exception as exc:  # noqa: BLE001 - last line of defence for the CLI
-        if args.debug:
-            raise
-        print(f"internal error: {type(exc).__name__}: {exc} (rerun with --debug for a traceback)", file=sys.stderr)
-        return EXIT_INTERNAL
+        status, line = _failure(exc)
+    except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (Terminated)
+        status, line = _failure(exc)
+    finally:
+        if before is not None:
+            _set_sigterm(before)
+    print(one_line(line), file=sys.stderr)
+    return status
 
 
 if __name__ == "__main__":

@@ -4,6 +4,10 @@ Prefect reads its settings when it is imported, so these variables are set first
 state in a project-local folder, telemetry off, a quiet console (warnings and above;
 logs are still stored), a generous start-up timeout for the embedded server, and a
 quiet embedded server.  Values already set by the user are kept.
+
+For a run of the command line, Prefect's log records go to the run's log file instead of
+the terminal (:mod:`quakefolio.pipeline.runlog`): the terminal keeps the progress, the
+summary and one ``error:`` line.
 """
 from __future__ import annotations
 
@@ -25,13 +29,24 @@ def state_folder():
     return Path(os.environ.get("QUAKEFOLIO_STATE", ".quakefolio")).resolve()
 
 
-def configure_prefect():
+def configure_prefect(log_to=None):
     """Set Prefect's environment for embedded runs (values already set are kept).
 
-    Sets ``PREFECT_HOME`` to ``<state folder>/prefect`` (created), telemetry off, the
-    console log level to WARNING, the embedded server's start-up timeout to 90 s and its
-    log level to ERROR.  Has no effect once ``prefect`` is imported (Prefect reads its
+    Sets ``PREFECT_HOME`` to ``<state folder>/prefect`` (created), telemetry off (server
+    and client, ``DO_NOT_TRACK``), the console log level to WARNING, the embedded server's
+    start-up timeout to 90 s and its log level to ERROR.  Has no effect once ``prefect`` is imported (Prefect reads its
     settings at import), so the CLI calls it first.
+
+    With ``log_to``, Prefect's log records of this process and of the processes it starts
+    (embedded server, Dask workers) go to a new log file instead of the terminal
+    (:func:`quakefolio.pipeline.runlog.choose_log_file`), and so do Python warnings; a
+    logging configuration the user set (``PREFECT_LOGGING_CONFIG_PATH``) is kept.
+
+    Parameters
+    ----------
+    log_to : path-like, optional
+        The run's output folder (its ``logs`` folder holds the log file when the folder
+        already holds runs; otherwise ``<state folder>/logs``).
 
     Returns
     -------
@@ -45,10 +60,32 @@ def configure_prefect():
     defaults = {
         "PREFECT_HOME": str(home),
         "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+        "DO_NOT_TRACK": "1",  # the client's usage data too (and its first-run notice on the terminal)
         "PREFECT_LOGGING_HANDLERS_CONSOLE_LEVEL": "WARNING",
         "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "90",
         "PREFECT_SERVER_LOGGING_LEVEL": "ERROR",
     }
     for key, value in defaults.items():
         os.environ.setdefault(key, value)
+    if log_to is not None and not _user_logging_config():
+        _log_to_file(log_to, home)
     return home
+
+
+def _user_logging_config():
+    return any(os.environ.get(k) for k in ("PREFECT_LOGGING_CONFIG_PATH", "PREFECT_LOGGING_SETTINGS_PATH"))
+
+
+def _log_to_file(output_folder, home):
+    import logging
+
+    from quakefolio.pipeline import runlog
+
+    path = runlog.choose_log_file(output_folder, state_folder())
+    try:
+        settings = runlog.settings_file(home)
+    except OSError:
+        return
+    os.environ[runlog.LOG_ENV] = str(path)
+    os.environ["PREFECT_LOGGING_CONFIG_PATH"] = str(settings)
+    logging.captureWarnings(True)  # Python warnings become log records (to the same file)

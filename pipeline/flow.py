@@ -12,6 +12,8 @@ plain library path, so both give identical tables.
 """
 from __future__ import annotations
 
+import errno
+
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
@@ -29,16 +31,20 @@ _TASK = dict(cache_policy=NO_CACHE, persist_result=False)
 _IO_STAGES = {"ingest": 2, "store-run": 2}
 
 
+#: errno values that a retry one second later does not cure (permissions, read-only or full disk)
+_LASTING_ERRNOS = {errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOSPC, errno.EDQUOT}
+
+
 def _retry_on_os_error(task, task_run, state):
-    """Retry condition: only transient I/O errors (never a user-input error)."""
+    """Retry condition: only transient I/O errors (never a user-input error, a full or read-only disk)."""
     from quakefolio.core.errors import InputError
 
     try:
         state.result()
     except InputError:
         return False
-    except OSError:
-        return True
+    except OSError as exc:
+        return exc.errno not in _LASTING_ERRNOS
     except Exception:  # noqa: BLE001 - anything else is not transient
         return False
     return False

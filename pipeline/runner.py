@@ -19,9 +19,10 @@ from quakefolio.pipeline import progress
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.cache import digest, fragility_class_digests
 from quakefolio.pipeline.io.run_inputs import run_input_frames
+from quakefolio.pipeline.io.output_folder import prepare_output_folder
 from quakefolio.pipeline.io.store import RunWriter, new_run_id
 from quakefolio.pipeline.io.tables import TABLES, units_for
-from quakefolio.pipeline.stages import blocks, whatif
+from quakefolio.pipeline.stages import blocks, spectrum, whatif
 from quakefolio.pipeline.stages import events as ps
 from quakefolio.pipeline.stages import hazard as hs
 from quakefolio.pipeline.stages.damage import combine_damage, plan_blocks
@@ -171,7 +172,7 @@ def _site_counts(stage, parts):
 
 
 def run_hazard(inputs, ref, executor, work, clock):
-    """Compute-mode hazard: curves per site block, logic-tree statistics, disaggregation.
+    """Compute-mode hazard: curves per site block, logic-tree statistics, disaggregation, conditional spectrum.
 
     Parameters
     ----------
@@ -203,6 +204,14 @@ def run_hazard(inputs, ref, executor, work, clock):
         blocks.register(inputs, ref)
         counts = counts + _site_counts("disaggregation_sites", parts)
         clock("disaggregation_s", t)
+    if spectrum.conditioning_ims(inputs.config):
+        t = time.perf_counter()
+        parts = executor.many("conditional-spectrum-block", blocks.spectrum_task, ref, site_blocks)
+        model = executor.one("conditional-spectrum-combine", spectrum.combine_spectrum, model, hazard, parts)
+        inputs = with_hazard(inputs, model, hazard)
+        blocks.register(inputs, ref)
+        counts = counts + _site_counts("spectrum_sites", parts)
+        clock("conditional_spectrum_s", t)
     return inputs, ref, counts
 
 
@@ -328,6 +337,7 @@ def execute(inputs, executor, *, stages_to_run="all"):
         The run folder.
     """
     executor.config_path = str(inputs.config.path)
+    prepare_output_folder(inputs.config.output.folder)  # checked again, created and marked before any write
     clock, counts = _Clock(), CacheCounts()
     damage = events = extra = None
     ref = blocks.register(inputs)
@@ -354,6 +364,8 @@ def _hazard_frames(inputs):
     if model is not None and model.disagg is not None:
         frames["disaggregation"], frames["disaggregation_summary"] = hs.disaggregation_frames(
             model, inputs.hazard, inputs.config.hazard.return_periods_yr)
+    if model is not None and model.spectrum_sums is not None:
+        frames["conditional_mean_spectrum"] = spectrum.spectrum_frame(model, inputs.hazard, inputs.config)
     return frames
 
 
@@ -427,10 +439,10 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         frames.update(extra.tables)
     frames.update(run_input_frames(inputs.exposure, inputs.library))  # the run stores the inputs it used
     output = cfg.output.folder
-    run_id = new_run_id(output, inputs.inputs_sha256)
+    writer = RunWriter(output, new_run_id(output, inputs.inputs_sha256))  # claims a free run id
+    run_id = writer.run_id
     provenance = {"run_id": run_id, "inputs_sha256": inputs.inputs_sha256,
                   "quakefolio_version": package_versions()["quakefolio"], "currency": currency, "caution": CAUTION}
-    writer = RunWriter(output, run_id)
     try:
         for name, frame in frames.items():
             writer.write_table(name, frame, units=units_for(name, currency), description=TABLES[name]["description"],

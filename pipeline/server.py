@@ -222,7 +222,7 @@ def start_server(timeout_s=START_TIMEOUT_S):
     Raises
     ------
     ServerError
-        With the end of the server log, if it exits or does not answer within
+        Naming the server log and its last line, if it exits or does not answer within
         ``timeout_s``.
     """
     folder = server_folder()
@@ -242,13 +242,13 @@ def start_server(timeout_s=START_TIMEOUT_S):
     while True:
         if proc.poll() is not None:
             raise ServerError(f"the Prefect server exited with status {proc.returncode}; "
-                              f"end of {log_path}:\n{_tail(log_path)}")
+                              f"its log {log_path} ends: {_tail(log_path)}")
         if is_healthy(url):
             break
         if time.monotonic() > deadline:
             server.stop()
             raise ServerError(f"the Prefect server did not answer at {url} within {timeout_s:g} s; "
-                              f"end of {log_path}:\n{_tail(log_path)}")
+                              f"its log {log_path} ends: {_tail(log_path)}")
         time.sleep(0.25)
     info = {"url": url, "host": LOOPBACK, "port": port, "pid": proc.pid, "database": str(database),
             "log": str(log_path)}
@@ -256,11 +256,13 @@ def start_server(timeout_s=START_TIMEOUT_S):
     return server
 
 
-def _tail(path, n=20):
+def _tail(path):
+    """The last non-empty line of ``path`` (the error line is printed as one line)."""
     try:
-        return "\n".join(Path(path).read_text(encoding="utf-8", errors="replace").splitlines()[-n:])
+        lines = [ln for ln in Path(path).read_text(encoding="utf-8", errors="replace").splitlines() if ln.strip()]
     except OSError:
         return "(no log)"
+    return lines[-1].strip() if lines else "(empty)"
 
 
 def ensure_server(timeout_s=START_TIMEOUT_S):

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.store import RunFolder
+from quakefolio.pipeline.terminal import one_line
 
 __all__ = ["summary_text", "loss_model_label", "correlation_effect_lines", "people_lines"]
 
@@ -303,7 +304,7 @@ def summary_text(run_dir, *, elapsed_s=None):
     hazard = _hazard_lines(run, manifest)
     timing = f" in {elapsed_s:.1f} s" if elapsed_s is not None else ""
     if manifest.get("stages") == "hazard":
-        return "\n".join(head + hazard + ["", f"  run folder (hazard stage only){timing}: {run_dir}"])
+        return _text(head + hazard + ["", f"  run folder (hazard stage only){timing}: {run_dir}"])
     loss = run.table("asset_loss")
     total_value = loss.replacement_value.sum()
     eal = loss.eal.sum()
@@ -334,7 +335,12 @@ def summary_text(run_dir, *, elapsed_s=None):
     lines += _cache_lines(manifest)
     lines.append("")
     lines.append(f"  run folder{timing}: {run_dir}")
-    return "\n".join(lines)
+    return _text(lines)
+
+
+def _text(lines):
+    """The lines joined; a control character inside a line (from a name in the inputs) is shown escaped."""
+    return "\n".join(one_line(line) for line in lines)
 
 
 def people_lines(run, cur):

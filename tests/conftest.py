@@ -7,6 +7,9 @@ import pytest
 
 _STATE = Path(tempfile.mkdtemp(prefix="quakefolio-test-state-"))
 os.environ.setdefault("QUAKEFOLIO_STATE", str(_STATE))
+# the memory budget of the size checks (pipeline.stages.sizes), pinned so that what the tests
+# expect to be refused does not depend on the machine's free memory
+os.environ["QUAKEFOLIO_MEMORY_GIB"] = "8"
 if os.environ.get("PYTEST_XDIST_WORKER"):
     # parallel test processes (``pytest -n``): one Prefect state folder (database, server) each
     _WORKER_STATE = Path(os.environ["QUAKEFOLIO_STATE"]) / f"test-{os.environ['PYTEST_XDIST_WORKER']}"
@@ -18,6 +21,20 @@ from quakefolio.pipeline.env import configure_prefect  # noqa: E402
 configure_prefect()
 
 REPO = Path(__file__).resolve().parents[1]
+
+#: ``CI`` set (``.ci/run`` sets ``CI=1``): a test that needs a missing tool fails instead of skipping
+IN_CI = os.environ.get("CI", "").strip().lower() not in ("", "0", "false", "no")
+
+
+def missing_tool(reason):
+    """Skip the calling test for a missing tool, or fail it loudly in CI (``CI`` set).
+
+    A test that needs a program outside Python (a headless browser) must never pass CI by
+    skipping: ``.ci/run`` installs the tool, and if that did not work the suite fails here.
+    """
+    if IN_CI:
+        pytest.fail(f"{reason}; CI is set, so a missing tool fails the test (.ci/run installs it)", pytrace=False)
+    pytest.skip(reason)
 MINI = REPO / "tests" / "data" / "mini"
 DEMO = REPO / "demo_portfolio"
 

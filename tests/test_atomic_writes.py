@@ -54,11 +54,12 @@ def test_write_bytes_keeps_a_given_mode(tmp_path):
     assert [p.name for p in tmp_path.iterdir()] == ["f.bin"]
 
 
-def test_only_the_run_store_renames_over_a_target():
+def test_only_the_atomic_writes_rename_over_a_target():
+    # the run store's atomic writes (io.atomic): every rename of the pipeline goes through them
     callers = []
     for path in sorted((REPO / "pipeline").rglob("*.py")):
         for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
             if isinstance(node, ast.Attribute) and node.attr in ("replace", "rename") \
                     and getattr(node.value, "id", None) == "os":
                 callers.append(path.relative_to(REPO).as_posix())
-    assert set(callers) == {"pipeline/io/store.py"}
+    assert set(callers) == {"pipeline/io/atomic.py"}

@@ -66,7 +66,9 @@ def _tree(root):
 
 
 def _outside_output(tree, case):
-    return {p: t for p, t in tree.items() if p.parts[:3] != ("broken", case, "output")}
+    # the case folder's own time stamp moves when a run creates and the test removes output/;
+    # its content is still compared entry by entry
+    return {p: t for p, t in tree.items() if p.parts[:3] != ("broken", case, "output") and p.parts != ("broken", case)}
 
 
 def test_corpus_is_complete():

@@ -167,3 +167,91 @@ def test_table_entry_round_trip_and_checks_are_verified(tmp_path):
     pd.testing.assert_frame_equal(cache.get_tables("whatif", "cd" * 32)[0]["t"], frame.iloc[:2], check_exact=True)
     assert sorted(p.name for p in (cache.root / "whatif").iterdir()) == ["cd" * 32]  # no leftovers
     assert StageCache(tmp_path, enabled=False).get_tables("whatif", "cd" * 32) is None
+
+
+# --- edited and broken entries (hostile cases): never trusted, always replaced ----------------------------
+
+def test_valid_damage_entry_with_eal_times_ten_is_not_trusted(folder):
+    # a well-formed archive with its own key and stored digest, but the EAL ratios edited: a miss
+    a = run_pure(folder / "quakefolio.toml")
+    entries = sorted((folder / "output" / "cache" / "damage").rglob("*.npz"))
+    assert entries
+    for path in entries:
+        with np.load(path) as data:
+            stored = {k: data[k] for k in data.files}
+        stored["eal"] = stored["eal"] * 10.0
+        np.savez(path, **stored)
+    b = run_pure(folder / "quakefolio.toml")
+    assert stats(b)["damage_pairs"] == {"computed": 5, "from_cache": 0}
+    for name in TABLES:
+        pd.testing.assert_frame_equal(read_table(a, name), read_table(b, name), check_exact=True)
+    assert stats(run_pure(folder / "quakefolio.toml"))["damage_pairs"] == {"computed": 0, "from_cache": 5}
+
+
+def test_valid_event_entry_with_aal_times_ten_is_not_trusted(folder):
+    cfg = _events_config(folder)
+    a = run_pure(cfg)
+    entry = next((folder / "output" / "cache" / "events").iterdir())
+    frame = pd.read_parquet(entry / "portfolio_summary.parquet")
+    frame["aal"] = frame["aal"] * 10.0
+    frame.to_parquet(entry / "portfolio_summary.parquet", index=False)
+    b = run_pure(cfg)
+    assert stats(b)["event_stage"] == {"computed": 1, "from_cache": 0}
+    pd.testing.assert_frame_equal(read_table(a, "portfolio_summary"), read_table(b, "portfolio_summary"),
+                                  check_exact=True)
+
+
+def _whatif_entry(folder):
+    entries = [p for p in (folder / "output" / "cache" / "whatif").iterdir() if not p.name.startswith(".")]
+    assert len(entries) == 1
+    return entries[0]
+
+
+def _break(entry, how, tmp_path):
+    if how == "missing checks":
+        (entry / "checks.json").unlink()
+    elif how == "truncated table":
+        table = next(entry.glob("*.parquet"))
+        table.write_bytes(table.read_bytes()[:100])
+    else:
+        shutil.rmtree(entry)
+        if how == "a file":
+            entry.write_text("not an entry")
+        elif how == "a dangling link":
+            entry.symlink_to(tmp_path / "gone")
+        elif how == "a link to a folder elsewhere":
+            (tmp_path / "elsewhere").mkdir()
+            (tmp_path / "elsewhere" / "keep.txt").write_text("not the cache's")
+            entry.symlink_to(tmp_path / "elsewhere")
+
+
+@pytest.mark.parametrize("how", ["missing checks", "truncated table", "a file", "a dangling link",
+                                 "a link to a folder elsewhere"])
+def test_broken_whatif_entry_is_replaced(folder, tmp_path, how):
+    cfg = folder / "quakefolio.toml"
+    a = run_pure(cfg)
+    entry = _whatif_entry(folder)
+    _break(entry, how, tmp_path)
+    b = run_pure(cfg)
+    assert stats(b)["screening_and_what_if"] == {"computed": 1, "from_cache": 0}
+    assert entry.is_dir() and not entry.is_symlink() and (entry / "checks.json").is_file()
+    assert [p.name for p in entry.parent.iterdir()] == [entry.name]  # nothing moved aside or half-written left
+    if how == "a link to a folder elsewhere":
+        assert [p.name for p in (tmp_path / "elsewhere").iterdir()] == ["keep.txt"]  # never followed
+    c = run_pure(cfg)
+    assert stats(c)["screening_and_what_if"] == {"computed": 0, "from_cache": 1}
+    for name in ("collapse_screening",):
+        pd.testing.assert_frame_equal(read_table(a, name), read_table(c, name), check_exact=True)
+
+
+def test_folder_in_place_of_an_array_entry_is_replaced(folder):
+    a = run_pure(folder / "quakefolio.toml")
+    entries = sorted((folder / "output" / "cache" / "damage").rglob("*.npz"))
+    for path in entries:
+        path.unlink()
+        path.mkdir()
+        (path / "x").write_text("not an archive")
+    b = run_pure(folder / "quakefolio.toml")
+    assert stats(b)["damage_pairs"] == {"computed": 5, "from_cache": 0}
+    assert all(p.is_file() for p in entries)
+    pd.testing.assert_frame_equal(read_table(a, "asset_loss"), read_table(b, "asset_loss"), check_exact=True)

@@ -21,7 +21,7 @@ from quakefolio.core.events.eventset import (
 from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
 from quakefolio.core.gmm import GMM_REGISTRY, GmmInput, get_gmm
 from quakefolio.core.events.programme import GroupSums
-from quakefolio.core.hazard import event_ground_motion
+from quakefolio.core.events.motion import event_ground_motion
 from quakefolio.core.sources.mfd import truncated_gr
 from quakefolio.core.events.portfolio import (
     aal_with_standard_error, apply_policy, expected_loss_ratio, expected_net_loss_ratio, sample_loss_ratio,
@@ -112,13 +112,16 @@ def test_models_are_elementwise_on_subsets_of_scenarios(name):
     # value must be the one the model gives that scenario among all the others
     rng = np.random.default_rng(4)
     n = 400
+    model = get_gmm(name)
+    region = "california" if "california" in model.supported_regions else model.supported_regions[0]
     mag = rng.uniform(4.5, 7.8, n)
     width = rng.uniform(3.0, 20.0, n)
     inp = GmmInput(mag=mag, vs30_mps=rng.uniform(180, 1200, n), rrup_km=rng.uniform(1.0, 200.0, n),
                    rjb_km=rng.uniform(0.0, 199.0, n), rx_km=rng.uniform(-50, 50, n), ry0_km=rng.uniform(0, 30, n),
                    ztor_km=rng.uniform(0, 5, n), zhyp_km=rng.uniform(5, 15, n), dip_deg=rng.uniform(30, 90, n),
-                   rake_deg=rng.uniform(-180, 180, n), width_km=width, region="california")
-    model = get_gmm(name)
+                   rake_deg=rng.uniform(-180, 180, n), width_km=width, rhyp_km=rng.uniform(10.0, 250.0, n),
+                   intraslab=rng.uniform(size=n) < 0.5, backarc=rng.uniform(size=n) < 0.5,
+                   vs30_measured=rng.uniform(size=n) < 0.5, region=region)
     ims = list(model.supported_ims[:1]) + ["SA_0.3", "SA_1.0"]
     whole = model.evaluate(inp, ims)
     for idx in (np.arange(0, n, 7), np.sort(rng.choice(n, 60, replace=False)), np.array([5])):

@@ -34,7 +34,6 @@ import pytest
 from numpy.testing import assert_allclose
 
 from quakefolio.core.gmm import (
-    GMM_REGISTRY,
     Bssa14,
     Cb14,
     GmmInput,
@@ -42,6 +41,7 @@ from quakefolio.core.gmm import (
     im_period_s,
     mean_z1p0_km,
     mean_z2p5_km,
+    models_for_region,
 )
 
 pygmm = pytest.importorskip("pygmm")
@@ -388,8 +388,10 @@ def test_mean_basin_depths_match_pygmm_relations():
 
 
 # --------------------------------------------------------------------------- #
-# Invariants over every registered model
+# Invariants over every active-crustal model (the other regions' models have their
+# own in tests/test_gmm_oracle_regions.py)
 # --------------------------------------------------------------------------- #
+CRUSTAL = models_for_region("active_crustal")
 PROPERTY_IMS = ["PGA", "SA_0.1", "SA_0.2", "SA_1.0", "SA_3.0", "SA_1.25"]
 
 
@@ -419,7 +421,7 @@ def _vertical_strike_slip(mag, dist_km, vs30) -> GmmInput:
 INVARIANT_VS30 = np.array([360.0, 560.0, 760.0, 1300.0])
 
 
-@pytest.mark.parametrize("name", sorted(GMM_REGISTRY))
+@pytest.mark.parametrize("name", CRUSTAL)
 def test_median_non_increasing_with_distance(name):
     mag = np.array([4.5, 5.0, 6.0, 7.0, 7.8])[:, None, None]
     vs30 = INVARIANT_VS30[None, :, None]
@@ -429,7 +431,7 @@ def test_median_non_increasing_with_distance(name):
     assert np.diff(res.ln_median, axis=-1).max() <= 1e-12
 
 
-@pytest.mark.parametrize("name", sorted(GMM_REGISTRY))
+@pytest.mark.parametrize("name", CRUSTAL)
 def test_median_non_decreasing_with_magnitude(name):
     # Valid range M 5.5-8.0 for strike-slip: below 5.5, CB14's dip term
     # c19 * dip * (5.5 - M) (Eq. 24) legitimately lowers large-dip medians with M.
@@ -440,7 +442,7 @@ def test_median_non_decreasing_with_magnitude(name):
     assert np.diff(res.ln_median, axis=-1).min() >= -1e-12
 
 
-@pytest.mark.parametrize("name", sorted(GMM_REGISTRY))
+@pytest.mark.parametrize("name", CRUSTAL)
 def test_standard_deviations_positive_and_finite(name):
     rng = np.random.default_rng(7)
     n = 200
@@ -456,7 +458,7 @@ def test_standard_deviations_positive_and_finite(name):
     )
 
 
-@pytest.mark.parametrize("name", sorted(GMM_REGISTRY))
+@pytest.mark.parametrize("name", CRUSTAL)
 def test_interpolated_period_lies_between_neighbours(name):
     # ln-period interpolation: at T = sqrt(T_lo * T_hi) the value is the mean.
     model = get_gmm(name)
@@ -470,7 +472,7 @@ def test_interpolated_period_lies_between_neighbours(name):
         assert_allclose(values[1], 0.5 * (values[0] + values[2]), rtol=0.0, atol=1e-12)
 
 
-@pytest.mark.parametrize("name", sorted(GMM_REGISTRY))
+@pytest.mark.parametrize("name", CRUSTAL)
 def test_out_of_range_period_raises(name):
     model = get_gmm(name)
     lo, hi = model.period_range_s
@@ -482,7 +484,7 @@ def test_out_of_range_period_raises(name):
         model.evaluate(inp, ["PGV"])
 
 
-@pytest.mark.parametrize("name", sorted(GMM_REGISTRY))
+@pytest.mark.parametrize("name", CRUSTAL)
 def test_supported_ims_evaluate(name):
     model = get_gmm(name)
     assert model.supported_ims[0] == "PGA"

@@ -105,7 +105,7 @@ def test_failed_write_leaves_earlier_runs_and_latest_intact(mini_config, monkeyp
 
 
 def test_writer_refuses_paths_outside_the_run(tmp_path):
-    w = RunWriter(tmp_path, "r1")
+    w = RunWriter(tmp_path, "20260101T000000Z-0000abcd")
     with pytest.raises(ValueError, match="outside the run folder"):
         w.write_text("../escape.txt", "x")
     w.abort()
@@ -113,13 +113,22 @@ def test_writer_refuses_paths_outside_the_run(tmp_path):
 
 
 def test_stale_partial_is_removed_and_never_visible(tmp_path):
-    (tmp_path / "runs" / ".partial-old").mkdir(parents=True)
-    w = RunWriter(tmp_path, "r2")
-    assert not (tmp_path / "runs" / ".partial-old").exists()
+    # a partial folder of this machine whose writer is dead (its pid now belongs to a process that
+    # started later) is removed; one without an owner record is left alone
+    from quakefolio.pipeline.io.claims import OWNER_FILE, this_writer
+
+    dead = tmp_path / "runs" / ".partial-20250101T000000Z-0000abcd"
+    dead.mkdir(parents=True)
+    record = dict(this_writer(), start_ticks=this_writer()["start_ticks"] - 1)
+    (dead / OWNER_FILE).write_text(json.dumps(record))
+    (tmp_path / "runs" / ".partial-old").mkdir()
+    w = RunWriter(tmp_path, "20260101T000000Z-0000abcd")
+    assert not dead.exists()
     w.write_text("manifest.json", "{}")
     w.commit()
-    assert (tmp_path / "LATEST").read_text().strip() == "r2"
-    assert os.listdir(tmp_path / "runs") == ["r2"]
+    assert (tmp_path / "LATEST").read_text().strip() == "20260101T000000Z-0000abcd"
+    assert sorted(os.listdir(tmp_path / "runs")) == [".partial-old", "20260101T000000Z-0000abcd"]
+    assert os.listdir(tmp_path / "runs" / "20260101T000000Z-0000abcd") == ["manifest.json"]  # no owner record
 
 
 def test_parquet_and_csv_hazard_curves_agree():

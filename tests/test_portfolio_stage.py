@@ -139,3 +139,20 @@ def test_net_loss_mean_mode_agrees_with_sampled_mode_and_classical(event_config)
     assert no_terms.any() and (~no_terms).any()
     assert (loss.eal_net[no_terms] == loss.eal[no_terms]).all()
     assert (loss.eal_net[~no_terms] < loss.eal[~no_terms]).all()
+
+
+@pytest.mark.parametrize("choice, clustered", [(None, False), ("mixed_site_conditions", False),
+                                               ("clustered_site_conditions", True)])
+def test_correlation_range_choice_reaches_the_field_sampler(event_config, choice, clustered):
+    # Jayaram & Baker (2009): range b = 8.5 + 17.2 T km for mixed Vs30, 40.7 - 15.0 T km (T < 1 s)
+    # where Vs30 clusters in space.
+    from quakefolio.core.events.gmf import jb09_range_km
+    from quakefolio.pipeline.stages import load_inputs
+    from quakefolio.pipeline.stages.events import prepare_events
+
+    if choice:
+        _with(event_config, "seed = 7", f'seed = 7\ncorrelation_range = "{choice}"')
+    inputs = load_inputs(event_config)
+    em = prepare_events(inputs)
+    periods = [0.0 if im == "PGA" else float(im.split("_")[1]) for im in em.ims]
+    np.testing.assert_allclose(em.sampler.range_km, jb09_range_km(periods, clustered), rtol=1e-12)

@@ -14,7 +14,7 @@ from quakefolio.pipeline.report import SECTIONS, build_report, write_report
 from quakefolio.pipeline.runner import run_pure
 from quakefolio.pipeline.io.store import PARTIAL_PREFIX, read_table
 
-from conftest import MINI
+from conftest import MINI, missing_tool
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -67,12 +67,14 @@ def _section(text, sid):
 
 @pytest.fixture(scope="module")
 def runs(tmp_path_factory):
-    """Run A and run B (compute mode with the event-based stage; B after an exposure change)
-    and an ingest-mode run, all in one copy of the mini inputs."""
+    """Run A and run B (compute mode with the event-based stage and a conditional mean spectrum; B after an
+    exposure change) and an ingest-mode run, all in one copy of the mini inputs."""
     dst = tmp_path_factory.mktemp("report") / "mini"
     shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
     cfg = dst / "quakefolio_compute.toml"
-    cfg.write_text(cfg.read_text() + "\n[portfolio]\nyears = 2000\n")
+    text = cfg.read_text().replace("return_periods_yr = [100, 475, 2475]", "return_periods_yr = [100, 475, 2475]\n"
+                                   'cms_conditioning_ims = ["SA_1.0"]\ncms_return_periods_yr = [475, 2475]')
+    cfg.write_text(text + "\n[portfolio]\nyears = 2000\n")
     run_a = run_pure(cfg)
     exposure = dst / "exposure.csv"
     exposure.write_text(exposure.read_text().replace("B2,10.029,20.002,TST-A,2500000",
@@ -137,7 +139,8 @@ def test_event_based_sections_hold_results(runs, report_b):
     portfolio = _section(report_b, "portfolio")
     assert "Average annual loss" in portfolio and "TVaR" in portfolio and "<img" in portfolio
     hazard = _section(report_b, "hazard")
-    assert hazard.count("<img") == 3  # curves, uniform-hazard spectra, disaggregation
+    assert hazard.count("<img") == 4  # curves, uniform-hazard spectra, conditional mean spectra, disaggregation
+    assert 'alt="conditional mean spectra"' in hazard and "scenario epsilon" in hazard
     assert "not for design use" in hazard
     checks = _section(report_b, "checks")
     assert "portfolio AAL vs classical EAL" in checks and "Hazard logic tree" in checks
@@ -165,6 +168,7 @@ def test_change_report_names_assets_and_causes(report_b):
 
 def test_ingest_run_has_notes_instead_of_event_and_disaggregation(report_ingest):
     assert "No disaggregation in this run" in _section(report_ingest, "hazard")
+    assert "Conditional mean spectrum" not in _section(report_ingest, "hazard")
     assert "No event-based tables in this run" in _section(report_ingest, "portfolio")
     assert "No cross-checks" in _section(report_ingest, "checks")
     assert "No previous run was given" in _section(report_ingest, "changes")
@@ -241,13 +245,13 @@ def _browser(binary, tmp_path, *extra):
         return subprocess.run(cmd, capture_output=True, text=True, timeout=180,
                               env=dict(os.environ, HOME=str(tmp_path)))
     except subprocess.TimeoutExpired:
-        pytest.skip("Chromium did not finish within 180 s")
+        missing_tool("Chromium did not finish within 180 s")
 
 
 def test_report_renders_in_headless_chromium(runs, report_b, tmp_path):
     binary = _chromium()
     if binary is None:
-        pytest.skip("no Chromium binary (chromium, chromium-browser, google-chrome) on PATH")
+        missing_tool("no Chromium binary (chromium, chromium-browser, google-chrome) on PATH")
     # Click the EAL header of the riskiest-assets table once the page has loaded (ascending sort),
     # and record the first asset: proves the inline sorting script runs.
     probe = ("<script>(function(){var t=document.querySelector('#riskiest table.sortable');"
@@ -258,7 +262,7 @@ def test_report_renders_in_headless_chromium(runs, report_b, tmp_path):
     page.write_text(report_b.replace("</body>", probe + "</body>"), encoding="utf-8")
     done = _browser(binary, tmp_path, "--dump-dom", page.as_uri())
     if done.returncode != 0 and not done.stdout.strip():
-        pytest.skip(f"Chromium did not run: {done.stderr.strip().splitlines()[-1:]}")
+        missing_tool(f"Chromium did not run: {done.stderr.strip().splitlines()[-1:]}")
     dom = _parse(done.stdout)
     assert dom.sections == [sid for sid, _ in SECTIONS]
     images = dom.images()

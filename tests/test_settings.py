@@ -59,3 +59,19 @@ def test_settings_are_frozen_and_mapping_access_is_unchanged(path):
     assert cfg.base == cfg.path.parent
     assert cfg.resolved()["execution"]["block_size"] == cfg.execution.block_size
     assert isinstance(cfg.raw, dict) and len(cfg.sha256) == 64
+
+
+def test_readme_config_table_names_every_section_and_key():
+    # The README's configuration table is the user's reference: every key of every section.
+    import re
+
+    from quakefolio.pipeline.io.config import SCHEMA
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    rows = {}
+    for line in readme.splitlines():
+        m = re.match(r"^\| `\[(\w+)\]`", line)
+        if m:
+            rows[m.group(1)] = rows.get(m.group(1), "") + line
+    missing = {sec: [k for k in keys if f"`{k}`" not in rows.get(sec, "")] for sec, keys in SCHEMA.items()}
+    assert not {s: m for s, m in missing.items() if m}, missing

@@ -179,7 +179,7 @@ def _net_of(gu, deductible, limit, terms):
 
 
 #: Values per pass of the elementwise arithmetic of the mean mode (and of the event fields,
-#: :func:`quakefolio.core.hazard.event_ln_im`): a pass's arrays of 256 KB stay in the
+#: :func:`quakefolio.core.events.motion.event_ln_im`): a pass's arrays of 256 KB stay in the
 #: processor's L2 cache instead of streaming through memory.
 PASS_VALUES = 32_768
 

@@ -27,9 +27,19 @@ __all__ = [
     "mechanism_flags",
     "mean_z1p0_km",
     "mean_z2p5_km",
+    "TECTONIC_REGIONS",
 ]
 
 FloatArray = NDArray[np.float64]
+
+#: tectonic regions a ground-motion model can be for (``VectorGmm.tectonic_regions``)
+TECTONIC_REGIONS = (
+    "active_crustal",
+    "subduction_interface",
+    "subduction_intraslab",
+    "stable_continental",
+)
+
 
 # --------------------------------------------------------------------------- #
 # Intensity-measure names
@@ -69,6 +79,15 @@ def _as_float_array(name: str, value: ArrayLike) -> FloatArray:
     return arr
 
 
+def _within(arr: FloatArray, bounds: tuple) -> bool:
+    """True if every value lies within ``bounds`` (False for any NaN: min and max propagate it)."""
+    if arr.size == 0:
+        return True
+    low, low_in, high, high_in = bounds
+    lo, hi = arr.min(), arr.max()
+    return bool((lo >= low if low_in else lo > low) and (hi <= high if high_in else hi < high))
+
+
 def _require(name: str, arr: FloatArray, ok: NDArray[np.bool_], constraint: str) -> None:
     if not np.all(ok):
         bad = np.argwhere(~ok)[0]
@@ -104,7 +123,9 @@ class GmmInput:
         to strike, positive on the hanging wall [km].
     ry0_km : array_like, optional
         Horizontal distance off the end of the rupture measured parallel to
-        strike [km], >= 0. Not used by BSSA14 or CB14; carried for other models.
+        strike [km], >= 0 (0 beside the rupture). ``None``, or NaN entries:
+        unknown; ASK14 then tapers its hanging-wall term with Rjb instead
+        (its Eq. 15). Not used by the other models.
     ztor_km : array_like, optional
         Depth to the top of rupture [km], >= 0.
     zhyp_km : array_like, optional
@@ -127,11 +148,25 @@ class GmmInput:
     z2p5_km : array_like, optional
         Depth to the 2.5 km/s shear-wave horizon [km], >= 0. ``None``, or NaN
         entries: unknown, the model's default (mean) depth is used.
+    vs30_measured : array_like, optional
+        1 where Vs30 was measured at the site, 0 where it was inferred (from
+        geology, topography or a map). ``None``: inferred everywhere. Used by
+        the within-event variability of ASK14 and CY14 (larger for inferred
+        Vs30); the other models ignore it.
     region : str
         One region for all scenarios of this input (lower case), e.g.
         ``"global"``, ``"california"``, ``"japan"``, ``"italy"``, ``"china"``,
         ``"turkey"``, ``"taiwan"``, ``"new_zealand"``. Each model lists the
         regions it supports in ``supported_regions``.
+    rhyp_km : array_like, optional
+        Hypocentral distance [km], >= 0. Used by the subduction model for
+        intraslab events (AG16); crustal models ignore it.
+    intraslab : array_like of {0, 1}, optional
+        Subduction event type: 1 for an intraslab (in-slab) event, 0 for an
+        interface event. Required by AG16; crustal models ignore it.
+    backarc : array_like of {0, 1}, optional
+        1 for a site in the backarc of a subduction zone, 0 in the forearc or
+        unknown (``None``: 0 everywhere). Used by AG16; crustal models ignore it.
 
     Raises
     ------
@@ -154,6 +189,11 @@ class GmmInput:
     z1p0_km: ArrayLike | None = None
     z2p5_km: ArrayLike | None = None
     region: str = "global"
+    # subduction event type and path (AG16); other models ignore these fields
+    rhyp_km: ArrayLike | None = None
+    intraslab: ArrayLike | None = None
+    backarc: ArrayLike | None = None
+    vs30_measured: ArrayLike | None = None
 
     #: per field: (constraint text, predicate on the float array, NaN allowed)
     _CONSTRAINTS: ClassVar[dict] = {
@@ -162,7 +202,7 @@ class GmmInput:
         "rrup_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
         "rjb_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
         "rx_km": ("finite", np.isfinite, False),
-        "ry0_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
+        "ry0_km": ("finite and >= 0 or NaN", lambda a: np.isfinite(a) & (a >= 0), True),
         "ztor_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
         "zhyp_km": ("finite and >= 0 or NaN", lambda a: np.isfinite(a) & (a >= 0), True),
         "dip_deg": ("in (0, 90]", lambda a: (a > 0) & (a <= 90), False),
@@ -170,6 +210,30 @@ class GmmInput:
         "width_km": ("finite and > 0 or NaN", lambda a: np.isfinite(a) & (a > 0), True),
         "z1p0_km": ("finite and >= 0 or NaN", lambda a: np.isfinite(a) & (a >= 0), True),
         "z2p5_km": ("finite and >= 0 or NaN", lambda a: np.isfinite(a) & (a >= 0), True),
+        "rhyp_km": ("finite and >= 0", lambda a: np.isfinite(a) & (a >= 0), False),
+        "intraslab": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
+        "backarc": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
+        "vs30_measured": ("0 or 1", lambda a: (a == 0) | (a == 1), False),
+    }
+
+    #: per field: open or closed bounds (low, low included, high, high included) that
+    #: every value meets when the field has no NaN: the predicate's set without NaN, checked
+    #: with two reductions; the predicate itself runs only when this quick test fails
+    _BOUNDS: ClassVar[dict] = {
+        "mag": (-np.inf, False, np.inf, False),
+        "vs30_mps": (0.0, False, np.inf, False),
+        "rrup_km": (0.0, True, np.inf, False),
+        "rjb_km": (0.0, True, np.inf, False),
+        "rx_km": (-np.inf, False, np.inf, False),
+        "ry0_km": (0.0, True, np.inf, False),
+        "ztor_km": (0.0, True, np.inf, False),
+        "zhyp_km": (0.0, True, np.inf, False),
+        "dip_deg": (0.0, False, 90.0, True),
+        "rake_deg": (-180.0, True, 180.0, True),
+        "width_km": (0.0, False, np.inf, False),
+        "z1p0_km": (0.0, True, np.inf, False),
+        "z2p5_km": (0.0, True, np.inf, False),
+        "rhyp_km": (0.0, True, np.inf, False),
     }
 
     def __post_init__(self) -> None:
@@ -181,11 +245,13 @@ class GmmInput:
             if value is None:
                 continue
             arr = _as_float_array(f.name, value)
-            text, predicate, nan_ok = self._CONSTRAINTS[f.name]
-            ok = predicate(arr)
-            if nan_ok:
-                ok = ok | np.isnan(arr)
-            _require(f.name, arr, np.asarray(ok), text)
+            bounds = self._BOUNDS.get(f.name)  # None: a set that is no interval (0 or 1): always the full check
+            if bounds is None or not _within(arr, bounds):  # a NaN or a value out of bounds: the full check
+                text, predicate, nan_ok = self._CONSTRAINTS[f.name]
+                ok = predicate(arr)
+                if nan_ok:
+                    ok = ok | np.isnan(arr)
+                _require(f.name, arr, np.asarray(ok), text)
             arr.setflags(write=False)
             object.__setattr__(self, f.name, arr)
             shapes.append(arr.shape)
@@ -219,6 +285,25 @@ class GmmInput:
         if value is None:
             raise ValueError(f"{model} requires GmmInput.{name}; it is None")
         return np.broadcast_to(value, self.shape)
+
+    def compact_field(self, name: str, model: str) -> FloatArray:
+        """Field ``name`` as given, with :attr:`shape`'s number of axes but not broadcast.
+
+        A field that varies along some axes only (e.g. per rupture on a (site, rupture)
+        grid) keeps length 1 on the others, so terms that depend on it alone are computed
+        once per distinct value; element by element the values are those of :meth:`field`.
+
+        Parameters
+        ----------
+        name : str
+            Field name, e.g. ``"mag"``.
+        model : str
+            Name of the model asking (used in the error message).
+        """
+        value = getattr(self, name)
+        if value is None:
+            raise ValueError(f"{model} requires GmmInput.{name}; it is None")
+        return value.reshape((1,) * (len(self.shape) - value.ndim) + value.shape)
 
     def optional_field(self, name: str) -> FloatArray | None:
         """Field ``name`` broadcast to :attr:`shape`, or ``None`` if not given."""
@@ -449,6 +534,12 @@ class VectorGmm:
     supported_regions: ClassVar[tuple[str, ...]] = ()
     #: documented applicability ranges (informative; not enforced)
     applicability: ClassVar[dict[str, object]] = {}
+    #: tectonic regions (names from :data:`TECTONIC_REGIONS`) whose earthquakes the model is for
+    tectonic_regions: ClassVar[tuple[str, ...]] = ()
+    #: False when the model publishes only the total sigma: ``tau`` and ``phi`` are then NaN
+    has_tau_phi: ClassVar[bool] = True
+    #: False when the model has no site term (its medians are for its reference rock)
+    uses_vs30: ClassVar[bool] = True
 
     @cached_property
     def coefficients(self) -> dict[str, FloatArray]:
@@ -560,11 +651,11 @@ class VectorGmm:
         hi_idx = np.array([position[hi] for _, hi, _ in plan], dtype=np.intp)
         weight = np.array([w for _, _, w in plan]).reshape((len(plan),) + (1,) * len(inp.shape))
 
-        tabulated = bool(np.all(lo_idx == hi_idx))
+        exact = np.array_equal(lo_idx, hi_idx)  # tabulated periods only: every weight is 0
 
         def interp(values: FloatArray) -> FloatArray:
-            if tabulated:  # every weight 0: (1 - 0) v + 0 v is v itself for finite v
-                return values[lo_idx]
+            if exact and not np.isinf(values).any():
+                return values[lo_idx]  # (1 - 0) v + 0 v is v itself for finite v (and NaN)
             return (1.0 - weight) * values[lo_idx] + weight * values[hi_idx]
 
         return GmmResult(

@@ -64,6 +64,7 @@ class Bssa14(VectorGmm):
         "Boore, Stewart, Seyhan & Atkinson (2014), Earthquake Spectra 30(3), 1057-1085"
     )
     coefficient_file = "boore_stewart_seyhan_atkinson-2014.csv"
+    tectonic_regions = ("active_crustal",)
     supported_regions = (
         "global",
         "california",
@@ -115,21 +116,26 @@ class Bssa14(VectorGmm):
         return event + path
 
     def _evaluate_rows(self, inp, rows):
-        mag = inp.field("mag", self.name)[None]
-        rjb = inp.field("rjb_km", self.name)[None]
-        vs30 = inp.field("vs30_mps", self.name)[None]
-        rake = inp.optional_field("rake_deg")
+        # fields as given (not broadcast): terms of the rupture alone are computed once per
+        # rupture, of the site alone once per site, where the input is a (site, rupture) grid
+        mag = inp.compact_field("mag", self.name)[None]
+        rjb = inp.compact_field("rjb_km", self.name)[None]
+        vs30 = inp.compact_field("vs30_mps", self.name)[None]
+        rake = None if inp.rake_deg is None else inp.compact_field("rake_deg", self.name)
         if rake is None:  # no rake given: unspecified mechanism (e_0 term of Eq. 2)
-            rake = np.full(inp.shape, np.nan)
+            rake = np.full((1,) * len(inp.shape), np.nan)
         flags = mechanism_flags(rake[None])
         nd = len(inp.shape)
         c = lambda name: self._coeff(name, rows, nd)  # noqa: E731
 
         # PGA on the 760 m/s reference condition (Eq. 7 definition of PGA_r).
         pga_row = np.array([self._pga_row], dtype=np.intp)
-        pga_r = np.exp(self._reference_terms(inp, pga_row, mag, rjb, flags))
+        pga_terms = self._reference_terms(inp, pga_row, mag, rjb, flags)
+        pga_r = np.exp(pga_terms)
 
-        ln_y = self._reference_terms(inp, rows, mag, rjb, flags)
+        # the same terms for the requested rows (computed once when only PGA is asked)
+        only_pga = np.array_equal(rows, pga_row)
+        ln_y = pga_terms if only_pga else self._reference_terms(inp, rows, mag, rjb, flags)
 
         # Linear site term, Eq. 6.
         ln_flin = c("c") * np.log(np.minimum(vs30, c("V_c")) / c("V_ref"))
@@ -142,7 +148,7 @@ class Bssa14(VectorGmm):
         ln_y = ln_y + ln_flin + ln_fnl
 
         # Basin-depth term, Eqs. 9-12.
-        z1 = inp.optional_field("z1p0_km")
+        z1 = None if inp.z1p0_km is None else inp.compact_field("z1p0_km", self.name)
         if z1 is not None:
             mu_z1 = mean_z1p0_km(vs30, inp.region)
             dz1 = np.where(np.isnan(z1[None]), 0.0, z1[None] - mu_z1)
@@ -161,10 +167,6 @@ class Bssa14(VectorGmm):
         phi = phi - c("dphi_V") * np.clip(v_weight, 0.0, 1.0)
         sigma = np.sqrt(phi**2 + tau**2)
 
-        shape = ln_y.shape
-        return (
-            ln_y,
-            np.broadcast_to(tau, shape).copy(),
-            np.broadcast_to(phi, shape).copy(),
-            np.broadcast_to(sigma, shape).copy(),
-        )
+        shape = (len(rows),) + inp.shape
+        full = lambda a: a if a.shape == shape else np.broadcast_to(a, shape).copy()  # noqa: E731
+        return full(ln_y), full(tau), full(phi), full(sigma)

@@ -80,6 +80,7 @@ class Cb14(VectorGmm):
     name = "CB14"
     reference = "Campbell & Bozorgnia (2014), Earthquake Spectra 30(3), 1087-1115"
     coefficient_file = "campbell_bozorgnia_2014.csv"
+    tectonic_regions = ("active_crustal",)
     supported_regions = ("global", "california", "japan", "italy", "china")
     applicability = {
         "mag": {"strike_slip": (3.3, 8.5), "reverse": (3.3, 8.0), "normal": (3.3, 7.5)},

@@ -20,7 +20,16 @@ A rupture is the plane rectangle whose top edge joins the projected top-start an
 top-end corners at depth ``ztor_km`` and which extends ``width_km`` down dip at
 ``dip_deg`` to the right of the strike direction (Aki & Richards convention). All
 distances are then exact for that rectangle (no meshing): the site is expressed in the
-rectangle's own frame (along strike, down dip, normal) and clamped to it.
+rectangle's own frame (along strike, down dip, normal) and clamped to it (the kernel lives in
+:mod:`quakefolio.core.sources.planes`).
+
+Ruptures on bent faults
+-----------------------
+A rupture with pieces (``RuptureSet.piece_corners``: one rectangle per fault segment it spans)
+is the union of its pieces: Rrup and Rjb are the minima over the pieces, Rx and Ry0 come from
+the generalized coordinates of Spudich & Chiou (2015) over the pieces' top edges
+(:func:`quakefolio.core.sources.planes.surface_distances`); for one piece they are the
+rectangle's own values.
 
 Distance definitions
 --------------------
@@ -41,6 +50,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from quakefolio.core.geo import EARTH_RADIUS_KM
+from quakefolio.core.sources.planes import Frames, kernel, rectangle_frames, surface_distances, take
 
 if TYPE_CHECKING:  # pragma: no cover
     from quakefolio.core.sources.ruptures import RuptureSet
@@ -52,6 +62,7 @@ __all__ = [
     "aeqd_forward",
     "aeqd_inverse",
     "points_in_polygon",
+    "polyline_self_crossing",
     "rupture_distances",
     "pair_distances",
     "site_rupture_mask",
@@ -228,98 +239,147 @@ def points_in_polygon(x: ArrayLike, y: ArrayLike, poly_x: ArrayLike, poly_y: Arr
     return inside
 
 
+#: Cosine of 1 degree: a neighbouring segment within 1 degree of straight back overlaps its predecessor.
+_STRAIGHT_BACK = float(np.cos(np.radians(1.0)))
+
+
+def _turn(ax, ay, bx, by, cx, cy):
+    """Sign of the cross product (b - a) x (c - a): +1 left turn, -1 right turn, 0 collinear."""
+    return float(np.sign((bx - ax) * (cy - ay) - (by - ay) * (cx - ax)))
+
+
+def _within(ax, ay, bx, by, cx, cy):
+    """Whether c, collinear with a-b, lies within the bounding box of segment a-b."""
+    return min(ax, bx) <= cx <= max(ax, bx) and min(ay, by) <= cy <= max(ay, by)
+
+
+def _segments_meet(p1, p2, p3, p4):
+    """Whether closed segments p1-p2 and p3-p4 share a point (orientation test; Cormen, Leiserson,
+    Rivest & Stein 2009, *Introduction to Algorithms*, 3rd ed., section 33.1)."""
+    d1, d2 = _turn(*p3, *p4, *p1), _turn(*p3, *p4, *p2)
+    d3, d4 = _turn(*p1, *p2, *p3), _turn(*p1, *p2, *p4)
+    if d1 * d2 < 0 and d3 * d4 < 0:
+        return True
+    return ((d1 == 0 and _within(*p3, *p4, *p1)) or (d2 == 0 and _within(*p3, *p4, *p2))
+            or (d3 == 0 and _within(*p1, *p2, *p3)) or (d4 == 0 and _within(*p1, *p2, *p4)))
+
+
+def polyline_self_crossing(lon_deg: ArrayLike, lat_deg: ArrayLike) -> tuple[int, int] | None:
+    """The first two segments of a polyline [deg] that meet, other than neighbours at their shared point.
+
+    Segment ``i`` joins points ``i`` and ``i + 1``.  The points are projected with
+    :func:`aeqd_forward` about their :func:`mean_position` (fault traces span tens to a few
+    hundred km, where the projection's distortion is far below any crossing's margin).
+    Neighbouring segments meet at their shared point by construction; they count as meeting
+    only when the second turns back along the first (within 1 degree of straight back: a
+    line of constant latitude is no straight line in the projection).
+
+    Parameters
+    ----------
+    lon_deg, lat_deg : array_like, shape (n,)
+        Points in order, ``n >= 2``.
+
+    Returns
+    -------
+    (i, j) or None
+        Indices ``i < j`` of the first pair of segments that meet, or None for a simple
+        polyline.
+    """
+    lon, lat = _check_lonlat("polyline_self_crossing", lon_deg, lat_deg)
+    x, y = aeqd_forward(lon, lat, *mean_position(lon, lat))
+    pts = list(zip(np.asarray(x, dtype=float).tolist(), np.asarray(y, dtype=float).tolist()))
+    for i in range(len(pts) - 1):
+        for j in range(i + 1, len(pts) - 1):
+            if j == i + 1:
+                a, b, c = pts[i], pts[i + 1], pts[i + 2]
+                u, v = (b[0] - a[0], b[1] - a[1]), (c[0] - b[0], c[1] - b[1])
+                norms = np.hypot(*u) * np.hypot(*v)
+                if norms > 0 and (u[0] * v[0] + u[1] * v[1]) < -_STRAIGHT_BACK * norms:
+                    return i, j
+            elif _segments_meet(pts[i], pts[i + 1], pts[j], pts[j + 1]):
+                return i, j
+    return None
+
+
 # --------------------------------------------------------------------------- #
 # rupture frames
 # --------------------------------------------------------------------------- #
-class _Frames(NamedTuple):
-    """Per-rupture rectangle in the local projection (all shape (n_ruptures,))."""
-
-    x0: FloatArray  # top-start corner, east [km]
-    y0: FloatArray  # top-start corner, north [km]
-    ux: FloatArray  # unit strike vector, east component
-    uy: FloatArray  # unit strike vector, north component
-    length: FloatArray  # along-strike length of the projected top edge [km]
-    width: FloatArray  # down-dip width [km]
-    width_h: FloatArray  # horizontal width of the surface projection, W cos(dip) [km]
-    cosd: FloatArray
-    sind: FloatArray
-    ztor_sind: FloatArray  # ztor sin(dip) [km]
-    ztor_cosd: FloatArray  # ztor cos(dip) [km]
-    ztor: FloatArray
-
-
-def _frames(ruptures: "RuptureSet", ref_lon: float, ref_lat: float) -> _Frames:
+def _frames(ruptures: "RuptureSet", ref_lon: float, ref_lat: float) -> Frames:
     corners = np.asarray(ruptures.corners, dtype=np.float64)
     x0, y0 = aeqd_forward(corners[:, 0, 0], corners[:, 0, 1], ref_lon, ref_lat)
     x1, y1 = aeqd_forward(corners[:, 1, 0], corners[:, 1, 1], ref_lon, ref_lat)
-    length = np.hypot(x1 - x0, y1 - y0)
-    if np.any(length <= 0.0):
-        raise ValueError("ruptures: a rupture has a top edge of zero length")
-    ux = (x1 - x0) / length
-    uy = (y1 - y0) / length
-    dip = np.radians(np.asarray(ruptures.dip_deg, dtype=np.float64))
-    cosd = np.cos(dip)
-    cosd[np.asarray(ruptures.dip_deg) == 90.0] = 0.0  # exact zero for vertical planes
-    sind = np.sin(dip)
-    width = np.asarray(ruptures.width_km, dtype=np.float64)
-    ztor = np.asarray(ruptures.ztor_km, dtype=np.float64)
-    return _Frames(x0, y0, ux, uy, length, width, width * cosd, cosd, sind, ztor * sind, ztor * cosd, ztor)
+    return rectangle_frames(x0, y0, x1, y1, ruptures.dip_deg, ruptures.width_km, ruptures.ztor_km)
 
 
-def _take(frames: _Frames, index) -> _Frames:
-    return _Frames(*(f[index] for f in frames))
+class _Surfaces(NamedTuple):
+    """The ruptures made of several pieces (bent faults), projected (see :mod:`.planes`)."""
+
+    index: NDArray[np.intp]  # rupture index of each surface
+    first: NDArray[np.intp]  # index of its first piece in ``frames``
+    count: NDArray[np.intp]  # its number of pieces
+    frames: Frames  # every piece, those of one surface contiguous and in order
+    offset: FloatArray  # top-edge length of the surface before each piece [km]
+    total: FloatArray  # top-edge length of each surface [km]
+    x: FloatArray  # projected corners of each piece, east (n_pieces, 4) [km]
+    y: FloatArray  # north (n_pieces, 4) [km]
 
 
-def _kernel(sx, sy, f: _Frames, out, scratch) -> None:
-    """Exact distances for broadcastable site coordinates and rupture frames.
+def _surfaces(ruptures: "RuptureSet", ref_lon: float, ref_lat: float) -> _Surfaces | None:
+    owner = np.asarray(ruptures.piece_rupture, dtype=np.intp)
+    if owner.size == 0:
+        return None
+    corners = np.asarray(ruptures.piece_corners, dtype=np.float64)
+    x, y = aeqd_forward(corners[:, :, 0], corners[:, :, 1], ref_lon, ref_lat)
+    frames = rectangle_frames(x[:, 0], y[:, 0], x[:, 1], y[:, 1], ruptures.dip_deg[owner],
+                              ruptures.width_km[owner], ruptures.ztor_km[owner])
+    index, first, count = np.unique(owner, return_index=True, return_counts=True)
+    before = np.cumsum(frames.length) - frames.length
+    offset = before - np.repeat(before[first], count)
+    total = np.add.reduceat(frames.length, first)
+    return _Surfaces(index, first, count, frames, offset, total, x, y)
 
-    Writes Rrup, Rjb, Rx, Ry0 into the four arrays of ``out`` (the broadcast shape);
-    ``scratch`` holds three work arrays of that shape. Every step is an in-place ufunc, so
-    a block costs no allocation.
-    """
-    rrup, rjb, rx, ry0 = out
-    s1, s2, s3 = scratch
-    np.subtract(sx, f.x0, out=s1)  # east offset from the top-start corner
-    np.subtract(sy, f.y0, out=s2)  # north offset
-    # Rx: perpendicular to strike, positive toward the dip direction (right of strike)
-    np.multiply(s1, f.uy, out=rx)
-    np.multiply(s2, f.ux, out=s3)
-    rx -= s3
-    # along strike from the top-start corner
-    np.multiply(s1, f.ux, out=s3)
-    np.multiply(s2, f.uy, out=s1)
-    s3 += s1
-    # Ry0 = distance of `along` outside [0, L]
-    np.subtract(s3, f.length, out=ry0)
-    np.negative(s3, out=s1)
-    np.maximum(ry0, s1, out=ry0)
-    np.maximum(ry0, 0.0, out=ry0)
-    # Rjb: also the distance of Rx outside [0, W cos(dip)]; sqrt(x*x + y*y), not np.hypot
-    # (~20x faster here, no overflow risk at km scale)
-    np.subtract(rx, f.width_h, out=s1)
-    np.negative(rx, out=s2)
-    np.maximum(s1, s2, out=s1)
-    np.maximum(s1, 0.0, out=s1)
-    np.multiply(ry0, ry0, out=rjb)
-    s1 *= s1
-    rjb += s1
-    np.sqrt(rjb, out=rjb)
-    # Rrup: site at (along, Rx, -ztor) in (strike, dip direction, down) from the corner;
-    # down-dip coordinate clamped to [0, W], normal coordinate as is
-    np.multiply(rx, f.cosd, out=s1)
-    s1 -= f.ztor_sind
-    np.subtract(s1, f.width, out=s2)
-    np.negative(s1, out=s3)
-    np.maximum(s2, s3, out=s2)
-    np.maximum(s2, 0.0, out=s2)
-    np.multiply(rx, f.sind, out=s1)
-    s1 += f.ztor_cosd
-    np.multiply(ry0, ry0, out=rrup)
-    s2 *= s2
-    rrup += s2
-    s1 *= s1
-    rrup += s1
-    np.sqrt(rrup, out=rrup)
+
+def _dense_surfaces(sx, sy, surf: _Surfaces, results) -> None:
+    """Overwrite the columns of the multi-piece ruptures with their surface distances."""
+    block = max(1, _BLOCK_PAIRS // surf.offset.size)
+    for start in range(0, sx.size, block):
+        rows = slice(start, start + block)
+        values = surface_distances(sx[rows, None], sy[rows, None], surf.frames, surf.first, surf.offset, surf.total)
+        for r, v in zip(results, values):
+            r[rows, surf.index] = v
+
+
+def _pair_surfaces(sx, sy, si, ri, n_rup, surf: _Surfaces, results) -> None:
+    """Overwrite the pairs of multi-piece ruptures: one row per (pair, piece), reduced per pair."""
+    which = np.full(n_rup, -1, dtype=np.intp)
+    which[surf.index] = np.arange(surf.index.size)
+    k = which[ri]
+    pairs = np.nonzero(k >= 0)[0]
+    step = max(1, _BLOCK_PAIRS // int(surf.count.max()))
+    for start in range(0, pairs.size, step):
+        p = pairs[start:start + step]
+        s = k[p]
+        counts = surf.count[s]
+        row_start = np.cumsum(counts) - counts
+        piece = np.repeat(surf.first[s] - row_start, counts) + np.arange(int(counts.sum()))
+        site = np.repeat(si[p], counts)
+        values = surface_distances(sx[site], sy[site], take(surf.frames, piece), row_start, surf.offset[piece],
+                                   surf.total[s])
+        for r, v in zip(results, values):
+            r[p] = v
+
+
+def _surface_bounds(surf: _Surfaces, cx, cy, radius):
+    """Bounding circles of the multi-piece ruptures: about the mean of their pieces' projected corners,
+    through the farthest corner (each piece's projection is the parallelogram of its corners)."""
+    n = 4.0 * surf.count
+    mx = np.add.reduceat(surf.x.sum(axis=1), surf.first) / n
+    my = np.add.reduceat(surf.y.sum(axis=1), surf.first) / n
+    far = np.hypot(surf.x - np.repeat(mx, surf.count)[:, None], surf.y - np.repeat(my, surf.count)[:, None])
+    cx, cy, radius = np.array(cx, dtype=np.float64), np.array(cy, dtype=np.float64), np.array(radius, dtype=np.float64)
+    cx[surf.index], cy[surf.index] = mx, my
+    radius[surf.index] = np.maximum.reduceat(far.max(axis=1), surf.first) + 1e-9
+    return cx, cy, radius
 
 
 def _reference(site_lon, site_lat, ref_lon, ref_lat) -> tuple[float, float]:
@@ -360,7 +420,8 @@ def rupture_distances(
     site_lon, site_lat : array_like, shape (n_sites,) [deg]
         Sites at the ground surface (depth 0).
     ruptures : RuptureSet
-        Uses ``corners`` (top-start and top-end), ``ztor_km``, ``dip_deg``, ``width_km``.
+        Uses ``corners`` (top-start and top-end), ``ztor_km``, ``dip_deg``, ``width_km``,
+        and the pieces of ruptures made of several (``piece_rupture``, ``piece_corners``).
     ref_lon, ref_lat : float [deg], optional
         Centre of the local projection; default the mean position of the sites (see the
         module notes for the resulting error).
@@ -390,6 +451,11 @@ def rupture_distances(
     the last being the exact distance from a point to a rectangle: the point's
     coordinates down dip and normal to the plane, the in-plane part clamped to the
     rectangle. Definitions after Ancheta et al. (2014) and Kaklamanos et al. (2011).
+    A rupture made of several pieces (a bent fault) gets the distances of the union of its
+    pieces (module notes): Rrup and Rjb the minima over the pieces; :math:`R_x = T` and
+    :math:`R_{y0} = \max(-U, U - L, 0)` from the generalized coordinates :math:`(T, U)` of
+    Spudich & Chiou (2015) on the pieces' top edges, :math:`L` their summed length, which
+    reduce to the expressions above for a single rectangle.
     Work is done in blocks of whole site rows (about 65 000 pairs each) with three
     reused work arrays and in-place arithmetic; memory is the four output arrays
     (4 x 8 bytes per pair: 160 MB for 500 sites x 1e4 ruptures) plus 1.5 MB.
@@ -401,6 +467,9 @@ def rupture_distances(
     Kaklamanos, J., Baise, L. G. & Boore, D. M. (2011). Estimating unknown input
     parameters when implementing the NGA ground-motion prediction equations in
     engineering practice. Earthquake Spectra 27(4), 1219-1235.
+    Spudich, P. & Chiou, B. S.-J. (2015). Strike-parallel and strike-normal coordinate
+    system around geometrically complicated rupture traces: use by NGA-West2 and further
+    improvements. U.S. Geological Survey Open-File Report 2015-1028.
     """
     lon, lat = _sites(site_lon, site_lat)
     n_sites, n_rup = lon.size, len(ruptures)
@@ -416,8 +485,11 @@ def rupture_distances(
     for start in range(0, n_sites, block):
         stop = min(start + block, n_sites)
         k = stop - start
-        _kernel(sx[start:stop, None], sy[start:stop, None], frames,
-                [r[start:stop] for r in results], work[:, :k])
+        kernel(sx[start:stop, None], sy[start:stop, None], frames,
+               [r[start:stop] for r in results], work[:, :k])
+    surfaces = _surfaces(ruptures, rlon, rlat)
+    if surfaces is not None:
+        _dense_surfaces(sx, sy, surfaces, results)
     return out
 
 
@@ -465,7 +537,10 @@ def pair_distances(
     for start in range(0, si.size, _BLOCK_PAIRS):
         sl = slice(start, start + _BLOCK_PAIRS)
         k = si[sl].size
-        _kernel(sx[si[sl]], sy[si[sl]], _take(frames, ri[sl]), [r[sl] for r in results], work[:, :k])
+        kernel(sx[si[sl]], sy[si[sl]], take(frames, ri[sl]), [r[sl] for r in results], work[:, :k])
+    surfaces = _surfaces(ruptures, rlon, rlat)
+    if surfaces is not None:
+        _pair_surfaces(sx, sy, si, ri, len(ruptures), surfaces, results)
     return out
 
 
@@ -509,7 +584,10 @@ def site_rupture_mask(
     horizontal distance :math:`d` from that centre :math:`R_{JB} \ge \max(d - r, 0)`
     (triangle inequality) and :math:`R_{rup} \ge \sqrt{\max(d-r,0)^2 + z_{tor}^2}`.
     A pair is dropped only when this lower bound exceeds the cut-off, so no pair within
-    the distance is ever lost. Cost: one subtraction and ``hypot`` per pair.
+    the distance is ever lost. For a rupture made of pieces the circle is centred on the
+    mean of the pieces' projected corners and passes through the farthest of them (each
+    piece's surface projection is the parallelogram of its corners). Cost: one subtraction
+    and ``hypot`` per pair.
     """
     if metric not in ("rjb", "rrup"):
         raise ValueError(f"metric must be 'rjb' or 'rrup'; got {metric!r}")
@@ -531,6 +609,9 @@ def site_rupture_mask(
     cx = f.x0 + 0.5 * f.length * f.ux + 0.5 * f.width_h * f.uy
     cy = f.y0 + 0.5 * f.length * f.uy - 0.5 * f.width_h * f.ux
     radius = 0.5 * np.hypot(f.length, f.width_h) + 1e-9  # slack for round-off
+    surfaces = _surfaces(ruptures, rlon, rlat)
+    if surfaces is not None:
+        cx, cy, radius = _surface_bounds(surfaces, cx, cy, radius)
     block = max(1, _BLOCK_PAIRS // n_rup)
     for start in range(0, n_sites, block):
         stop = min(start + block, n_sites)

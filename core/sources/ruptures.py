@@ -9,7 +9,8 @@ Source types
 ------------
 :func:`planar_fault_ruptures`
     A planar fault (straight trace, dip, seismogenic depths) on which ruptures of each
-    magnitude float along strike and down dip.
+    magnitude float along strike and down dip (a trace of more points is a bent fault:
+    :func:`quakefolio.core.sources.faults.fault_ruptures`).
 :func:`point_source_ruptures`
     A point with distributions of hypocentral depth and mechanism; each rupture is a
     finite plane about the hypocentre.
@@ -31,8 +32,8 @@ back to lon/lat.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
-from typing import Sequence
+from dataclasses import dataclass, field, fields
+from typing import NamedTuple, Sequence
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -49,6 +50,11 @@ __all__ = [
     "wc94_dimensions",
     "rupture_corners",
     "polygon_grid",
+    "polygon_frame",
+    "PolygonFrame",
+    "fault_frame",
+    "FaultFrame",
+    "fault_rupture_dimensions",
     "planar_fault_ruptures",
     "point_source_ruptures",
     "area_source_ruptures",
@@ -83,7 +89,7 @@ class RuptureSet:
     ztor_km, zbot_km : ndarray, shape (n,) [km]
         Depth of the top and bottom edges, ``0 <= ztor <= zbot``.
     width_km, length_km : ndarray, shape (n,) [km]
-        Down-dip width and along-strike length, > 0.
+        Down-dip width and along-strike length (along the trace on a bent fault), > 0.
     zhyp_km : ndarray, shape (n,) [km]
         Hypocentral depth (the centre of the plane unless a source says otherwise).
     corners : ndarray, shape (n, 4, 3)
@@ -93,6 +99,17 @@ class RuptureSet:
         corners with ``ztor_km``, ``dip_deg`` and ``width_km``; the bottom corners are for
         display and checks. Construction checks the corner depths against
         ``ztor_km``/``zbot_km`` and ``zbot_km = ztor_km + width_km sin(dip)`` (1e-6 km).
+        For a rupture made of several pieces (below) they are the outline: top-start and
+        bottom-start of its first piece, top-end and bottom-end of its last.
+    piece_rupture : ndarray of int, shape (m,)
+        Ruptures on a bent fault are the union of rectangles ("pieces"), one per fault
+        segment they span: the rupture each piece belongs to, non-decreasing, each listed
+        rupture with at least two pieces. A rupture without pieces is the one rectangle of
+        its ``corners``. Default: no pieces.
+    piece_corners : ndarray, shape (m, 4, 3)
+        Corners of each piece as ``corners`` orders them, the pieces of a rupture in order
+        along the fault, each at its rupture's ``ztor_km``/``zbot_km``, ``dip_deg`` and
+        ``width_km``; the distance code uses their top edges.
 
     Raises
     ------
@@ -113,6 +130,8 @@ class RuptureSet:
     length_km: FloatArray
     zhyp_km: FloatArray
     corners: FloatArray
+    piece_rupture: NDArray[np.int64] = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    piece_corners: FloatArray = field(default_factory=lambda: np.zeros((0, 4, 3)))
 
     def __post_init__(self) -> None:
         ids = tuple(self.source_ids)
@@ -143,7 +162,24 @@ class RuptureSet:
             raise ValueError("RuptureSet: 'corners' must be finite")
         corners.setflags(write=False)
         object.__setattr__(self, "corners", corners)
+        self._set_pieces(n)
         self._check_constraints()
+
+    def _set_pieces(self, n: int) -> None:
+        owner = np.array(self.piece_rupture, dtype=np.int64).reshape(-1)
+        pieces = np.array(self.piece_corners, dtype=np.float64).reshape(-1, 4, 3)
+        if pieces.shape[0] != owner.size:
+            raise ValueError(f"RuptureSet: 'piece_corners' must have shape ({owner.size}, 4, 3); got {pieces.shape}")
+        if not np.all(np.isfinite(pieces)):
+            raise ValueError("RuptureSet: 'piece_corners' must be finite")
+        if owner.size:
+            if owner.min() < 0 or owner.max() >= n or np.any(np.diff(owner) < 0):
+                raise ValueError("RuptureSet: 'piece_rupture' must be non-decreasing rupture indices")
+            if np.any(np.unique(owner, return_counts=True)[1] < 2):
+                raise ValueError("RuptureSet: a rupture with pieces needs at least two")
+        for name, arr in (("piece_rupture", owner), ("piece_corners", pieces)):
+            arr.setflags(write=False)
+            object.__setattr__(self, name, arr)
 
     def _check_constraints(self) -> None:
         def need(name, ok, text):
@@ -167,6 +203,18 @@ class RuptureSet:
         need("corners", (np.abs(depth[:, :2] - self.ztor_km[:, None]) <= tol).all(axis=1)
              & (np.abs(depth[:, 2:] - self.zbot_km[:, None]) <= tol).all(axis=1),
              "at depths (ztor, ztor, zbot, zbot)")
+        if self.piece_rupture.size:
+            owner, depth = self.piece_rupture, self.piece_corners[:, :, 2]
+            ok = ((np.abs(depth[:, :2] - self.ztor_km[owner, None]) <= tol).all(axis=1)
+                  & (np.abs(depth[:, 2:] - self.zbot_km[owner, None]) <= tol).all(axis=1))
+            if not np.all(ok):
+                raise ValueError(f"RuptureSet: piece {int(np.argmin(ok))} is not at its rupture's depths "
+                                 "(ztor, ztor, zbot, zbot)")
+
+    @property
+    def n_pieces(self) -> NDArray[np.int64]:
+        """Pieces of each rupture, shape (n,): 0 for a single rectangle, else at least 2."""
+        return np.bincount(self.piece_rupture, minlength=len(self)).astype(np.int64)
 
     def __len__(self) -> int:
         return int(self.mag.size)
@@ -195,17 +243,21 @@ class RuptureSet:
         if not sets:
             return cls.empty()
         position: dict[str, int] = {}
-        index = []
+        index, owners, first = [], [], 0
         for s in sets:
             if not isinstance(s, RuptureSet):
                 raise ValueError(f"RuptureSet.concat: expected RuptureSet items; got {type(s).__name__}")
             remap = np.array([position.setdefault(sid, len(position)) for sid in s.source_ids], dtype=np.int64)
             index.append(remap[s.source_index] if remap.size else s.source_index)
+            owners.append(s.piece_rupture + first)
+            first += len(s)
         return cls(
             np.concatenate(index),
             tuple(position),
             *(np.concatenate([getattr(s, name) for s in sets]) for name in _FLOAT_FIELDS),
             np.concatenate([s.corners for s in sets]),
+            np.concatenate(owners),
+            np.concatenate([s.piece_corners for s in sets]),
         )
 
     def subset(self, mask: ArrayLike) -> "RuptureSet":
@@ -219,10 +271,17 @@ class RuptureSet:
                 raise ValueError(f"RuptureSet.subset: boolean mask must have shape ({len(self)},); got {sel.shape}")
         elif not np.issubdtype(sel.dtype, np.integer):
             raise ValueError("RuptureSet.subset: mask must be boolean or integer indices")
-        values = {f.name: getattr(self, f.name) for f in fields(self)}
-        return RuptureSet(**{
-            name: (value if name == "source_ids" else value[sel]) for name, value in values.items()
-        })
+        values = {f.name: getattr(self, f.name) for f in fields(self) if not f.name.startswith("piece_")}
+        out = {name: (value if name == "source_ids" else value[sel]) for name, value in values.items()}
+        if self.piece_rupture.size:
+            chosen = np.arange(len(self))[sel]  # rupture of each row of the subset
+            counts = self.n_pieces[chosen]
+            first = np.searchsorted(self.piece_rupture, chosen)
+            row_start = np.cumsum(counts) - counts
+            piece = np.repeat(first - row_start, counts) + np.arange(int(counts.sum()))
+            out["piece_rupture"] = np.repeat(np.arange(chosen.size), counts)
+            out["piece_corners"] = self.piece_corners[piece]
+        return RuptureSet(**out)
 
 
 # --------------------------------------------------------------------------- #
@@ -541,6 +600,104 @@ def _weights(name: str, items, width: int) -> np.ndarray:
     return arr
 
 
+def _step(rupture_step_km) -> float:
+    step = float(rupture_step_km)
+    if not (math.isfinite(step) and step > 0.0):
+        raise ValueError(f"rupture_step_km must be > 0; got {rupture_step_km!r}")
+    return step
+
+
+class FaultFrame(NamedTuple):
+    """The plane of a planar fault in its local projection (see :func:`fault_frame`)."""
+
+    ref_lon: float  #: projection centre [deg]
+    ref_lat: float  #: [deg]
+    x_km: FloatArray  #: east of the trace points [km] (a bent trace: every point kept)
+    y_km: FloatArray  #: north of the trace points [km]
+    length_km: float  #: fault length along the trace [km]
+    width_km: float  #: fault width down dip [km]
+    strike_deg: float  #: strike of the trace, first to last point [deg]
+
+
+def fault_frame(source_id, trace, dip_deg, upper_depth_km, lower_depth_km) -> FaultFrame:
+    r"""Length, width and strike of a fault: planar (two trace points) or bent (more).
+
+    Parameters
+    ----------
+    source_id : str
+        Named in errors.
+    trace : sequence of (lon, lat) [deg]
+        At least two points, in order along the fault.
+    dip_deg : float [deg]
+        Dip in (0, 90].
+    upper_depth_km, lower_depth_km : float [km]
+        Seismogenic depths, ``0 <= upper < lower``.
+
+    Returns
+    -------
+    FaultFrame
+        Two points: :math:`L_f` the distance between them in the azimuthal equidistant
+        projection about their mean position. More points: the projection about the mean
+        position of all of them, points repeating the one before (segments shorter than
+        :data:`MIN_SEGMENT_KM`) dropped, :math:`L_f` the summed length of the segments, the
+        strike that of the first -> last point. Always
+        :math:`W_f = (z_{low} - z_{up}) / \sin\delta`.
+    """
+    pts = np.asarray(trace, dtype=np.float64)
+    if pts.ndim != 2 or pts.shape[1] != 2 or pts.shape[0] < 2 or not np.all(np.isfinite(pts)):
+        raise ValueError(f"fault {source_id!r}: trace must be a list of at least two (lon, lat) points")
+    width = (lower_depth_km - upper_depth_km) / math.sin(math.radians(dip_deg))
+    if pts.shape[0] > 2:
+        return _bent_frame(source_id, pts, width)
+    ref_lon, ref_lat = mean_position(pts[[0, -1], 0], pts[[0, -1], 1])
+    xs, ys = aeqd_forward(pts[[0, -1], 0], pts[[0, -1], 1], ref_lon, ref_lat)
+    length = float(np.hypot(xs[1] - xs[0], ys[1] - ys[0]))
+    if length < 1e-3:
+        raise ValueError(f"fault {source_id!r}: first and last trace points coincide")
+    strike = float(_azimuth(math.degrees(math.atan2(xs[1] - xs[0], ys[1] - ys[0]))))
+    return FaultFrame(ref_lon, ref_lat, xs, ys, length, width, strike)
+
+
+#: Shortest segment of a bent fault trace [km]: a point closer than this to the one before
+#: repeats it and is dropped.
+MIN_SEGMENT_KM = 1e-6
+
+
+def _bent_frame(source_id, pts, width) -> FaultFrame:
+    ref_lon, ref_lat = mean_position(pts[:, 0], pts[:, 1])
+    xs, ys = aeqd_forward(pts[:, 0], pts[:, 1], ref_lon, ref_lat)
+    keep = np.concatenate([[True], np.hypot(np.diff(xs), np.diff(ys)) >= MIN_SEGMENT_KM])
+    xs, ys = np.asarray(xs)[keep], np.asarray(ys)[keep]
+    length = float(np.sum(np.hypot(np.diff(xs), np.diff(ys))))
+    if xs.size < 2 or length < 1e-3:
+        raise ValueError(f"fault {source_id!r}: the trace points coincide")
+    strike = float(_azimuth(math.degrees(math.atan2(xs[-1] - xs[0], ys[-1] - ys[0]))))
+    return FaultFrame(ref_lon, ref_lat, xs, ys, length, width, strike)
+
+
+def fault_rupture_dimensions(frame, mags, rake_deg, *, min_aspect_ratio=1.0, relation="width", slip_type=None):
+    """Length and width [km] of each magnitude's rupture on a fault (planar or bent).
+
+    :func:`wc94_dimensions` with the width limited to the fault width (excess area to
+    length), then the length clipped to the fault length (see :func:`planar_fault_ruptures`).
+
+    Parameters
+    ----------
+    frame : FaultFrame
+    mags : ndarray [Mw]
+    rake_deg : float [deg]
+    min_aspect_ratio, relation, slip_type
+        Passed to :func:`wc94_dimensions`.
+
+    Returns
+    -------
+    lengths_km, widths_km : ndarray [km], shape of ``mags``
+    """
+    lengths, widths = wc94_dimensions(mags, rake_deg, max_width_km=frame.width_km, min_aspect_ratio=min_aspect_ratio,
+                                      relation=relation, slip_type=slip_type)
+    return np.minimum(lengths, frame.length_km), np.minimum(widths, frame.width_km)
+
+
 def _floating_offsets(room_km: float, step_km: float) -> FloatArray:
     """Evenly spaced offsets from 0 to ``room_km`` with spacing at most ``step_km``."""
     if room_km <= 1e-9:
@@ -572,7 +729,8 @@ def planar_fault_ruptures(
     ----------
     source_id : str
     trace : sequence of (lon, lat) [deg]
-        Fault trace, at least two points; only the first and last are used (below).
+        Fault trace, at least two points; only the first and last are used (below; a bent
+        fault is :func:`quakefolio.core.sources.faults.fault_ruptures`).
     dip_deg : float [deg]
         Dip in (0, 90], to the right of the direction first -> last trace point.
     upper_depth_km, lower_depth_km : float [km]
@@ -619,38 +777,24 @@ def planar_fault_ruptures(
     its midpoint; ``zhyp_km`` the depth of the centre of the rupture plane.
     """
     sid = _source_id(source_id)
-    pts = np.asarray(trace, dtype=np.float64)
-    if pts.ndim != 2 or pts.shape[1] != 2 or pts.shape[0] < 2 or not np.all(np.isfinite(pts)):
-        raise ValueError(f"fault {sid!r}: trace must be a list of at least two (lon, lat) points")
     dip = _dip("dip_deg", dip_deg)
     rake = _rake("rake_deg", rake_deg)
     usd, lsd = _layer(upper_depth_km, lower_depth_km)
     mags, rates = _mfd(mfd)
-    step = float(rupture_step_km)
-    if not (math.isfinite(step) and step > 0.0):
-        raise ValueError(f"rupture_step_km must be > 0; got {rupture_step_km!r}")
-
-    ref_lon, ref_lat = mean_position(pts[[0, -1], 0], pts[[0, -1], 1])
-    xs, ys = aeqd_forward(pts[[0, -1], 0], pts[[0, -1], 1], ref_lon, ref_lat)
-    fault_length = float(np.hypot(xs[1] - xs[0], ys[1] - ys[0]))
-    if fault_length < 1e-3:
-        raise ValueError(f"fault {sid!r}: first and last trace points coincide")
-    strike = float(_azimuth(math.degrees(math.atan2(xs[1] - xs[0], ys[1] - ys[0]))))
+    step = _step(rupture_step_km)
+    ends = np.asarray(trace, dtype=np.float64)
+    frame = fault_frame(sid, ends[[0, -1]] if ends.ndim == 2 and ends.shape[0] > 2 else trace, dip, usd, lsd)
+    ref_lon, ref_lat, xs, ys = frame.ref_lon, frame.ref_lat, frame.x_km, frame.y_km
+    fault_length, fault_width, strike = frame.length_km, frame.width_km, frame.strike_deg
     th, dl = math.radians(strike), math.radians(dip)
     sind = math.sin(dl)
     cosd = 0.0 if dip == 90.0 else math.cos(dl)
     s_vec = np.array([math.sin(th), math.cos(th), 0.0])
     d_vec = np.array([cosd * math.cos(th), -cosd * math.sin(th), sind])
-    fault_width = (lsd - usd) / sind
     # top-start corner of the fault plane: trace start moved down dip to the upper depth
     origin = np.array([xs[0], ys[0], 0.0]) + (usd / sind) * d_vec
-
-    lengths, widths = wc94_dimensions(
-        mags, rake, max_width_km=fault_width, min_aspect_ratio=min_aspect_ratio,
-        relation=relation, slip_type=slip_type,
-    )
-    lengths = np.minimum(lengths, fault_length)
-    widths = np.minimum(widths, fault_width)
+    lengths, widths = fault_rupture_dimensions(frame, mags, rake, min_aspect_ratio=min_aspect_ratio,
+                                               relation=relation, slip_type=slip_type)
 
     cols = {name: [] for name in ("mag", "rate", "ztor_km", "width_km", "length_km")}
     xyz = []
@@ -867,6 +1011,45 @@ def polygon_grid(polygon: Sequence[Sequence[float]], spacing_km: float) -> tuple
     it, and points inside are kept by ray casting
     (:func:`quakefolio.core.sources.geometry.points_in_polygon`).
     """
+    frame = polygon_frame(polygon, spacing_km)
+    gx, gy = np.meshgrid(frame.axis(0), frame.axis(1), indexing="xy")
+    gx, gy = gx.ravel(), gy.ravel()
+    inside = points_in_polygon(gx, gy, frame.vx, frame.vy)
+    if not np.any(inside):
+        raise ValueError(f"no grid point at spacing {frame.step_km:g} km falls inside the polygon; "
+                         "use a smaller spacing_km")
+    return aeqd_inverse(gx[inside], gy[inside], frame.ref_lon, frame.ref_lat)
+
+
+class PolygonFrame(NamedTuple):
+    """A polygon in its local projection and the square grid laid over it (see :func:`polygon_grid`)."""
+
+    ref_lon: float  #: projection centre [deg]
+    ref_lat: float  #: [deg]
+    vx: FloatArray  #: vertices east [km]
+    vy: FloatArray  #: vertices north [km]
+    step_km: float  #: grid spacing [km]
+    n: tuple  #: grid points along x and y (the bounding box holds n[0] * n[1])
+
+    def axis(self, k: int) -> FloatArray:
+        """Grid coordinates [km] along x (``k = 0``) or y (``k = 1``), centred on the bounding box."""
+        v = self.vx if k == 0 else self.vy
+        lo, hi, n = v.min(), v.max(), self.n[k]
+        return 0.5 * (lo + hi) + self.step_km * (np.arange(n) - 0.5 * (n - 1))
+
+
+def polygon_frame(polygon, spacing_km) -> PolygonFrame:
+    """Projected vertices and grid size of :func:`polygon_grid` (no grid point built).
+
+    Parameters
+    ----------
+    polygon : sequence of (lon, lat) [deg]
+    spacing_km : float [km], > 0
+
+    Returns
+    -------
+    PolygonFrame
+    """
     pts = np.asarray(polygon, dtype=np.float64)
     if pts.ndim != 2 or pts.shape[1] != 2 or not np.all(np.isfinite(pts)):
         raise ValueError("polygon must be a list of (lon, lat) vertices")
@@ -879,17 +1062,8 @@ def polygon_grid(polygon: Sequence[Sequence[float]], spacing_km: float) -> tuple
         raise ValueError(f"spacing_km must be > 0; got {spacing_km!r}")
     ref_lon, ref_lat = mean_position(pts[:, 0], pts[:, 1])
     vx, vy = aeqd_forward(pts[:, 0], pts[:, 1], ref_lon, ref_lat)
-
-    def axis(lo, hi):
-        n = int(math.floor((hi - lo) / step + 1e-9)) + 1
-        return 0.5 * (lo + hi) + step * (np.arange(n) - 0.5 * (n - 1))
-
-    gx, gy = np.meshgrid(axis(vx.min(), vx.max()), axis(vy.min(), vy.max()), indexing="xy")
-    gx, gy = gx.ravel(), gy.ravel()
-    inside = points_in_polygon(gx, gy, vx, vy)
-    if not np.any(inside):
-        raise ValueError(f"no grid point at spacing {step:g} km falls inside the polygon; use a smaller spacing_km")
-    return aeqd_inverse(gx[inside], gy[inside], ref_lon, ref_lat)
+    n = tuple(int(math.floor((v.max() - v.min()) / step + 1e-9)) + 1 for v in (vx, vy))
+    return PolygonFrame(ref_lon, ref_lat, np.asarray(vx), np.asarray(vy), step, n)
 
 
 def area_source_ruptures(
@@ -938,14 +1112,17 @@ def fault_plane_area_km2(trace, dip_deg, upper_depth_km, lower_depth_km):
     r"""Area [km^2] of the planar fault used by :func:`planar_fault_ruptures`.
 
     :math:`A = L\,(z_{low} - z_{up})/\sin\delta` with :math:`L` the great-circle length
-    [km] between the first and last trace points (the planar-trace convention of this
-    module) and :math:`\delta` the dip.
+    [km] of the trace (two points: between them; more: summed over its segments, the fault
+    of :func:`quakefolio.core.sources.faults.fault_ruptures`) and :math:`\delta` the dip.
     """
     from quakefolio.core.geo import great_circle_km
 
     pts = np.asarray(trace, dtype=float)
     if pts.ndim != 2 or pts.shape[0] < 2 or pts.shape[1] != 2:
         raise ValueError(f"trace must be at least two (lon, lat) points, got shape {pts.shape}")
-    length = float(great_circle_km(pts[0, 0], pts[0, 1], pts[-1, 0], pts[-1, 1]))
+    if pts.shape[0] == 2:
+        length = float(great_circle_km(pts[0, 0], pts[0, 1], pts[-1, 0], pts[-1, 1]))
+    else:
+        length = float(np.sum(great_circle_km(pts[:-1, 0], pts[:-1, 1], pts[1:, 0], pts[1:, 1])))
     top, bottom = _layer(upper_depth_km, lower_depth_km)
     return length * (bottom - top) / math.sin(math.radians(_dip("dip_deg", dip_deg)))

@@ -10,12 +10,14 @@ from pathlib import Path
 import numpy as np
 import pyarrow.parquet as pq
 
-from quakefolio.core.errors import InputError
+from quakefolio.core.errors import OutputError
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.compare.attribution import compare_runs
 from quakefolio.pipeline.compare.diff import CAUSES
+from quakefolio.pipeline.io.claims import OWNER_FILE, new_private_folder, sweep
 from quakefolio.pipeline.io.store import PARTIAL_PREFIX, atomic_publish_folder, to_arrow
 from quakefolio.pipeline.io.tables import TABLES, units_for
+from quakefolio.pipeline.terminal import one_line
 
 __all__ = ["write_change_report", "change_summary_text"]
 
@@ -56,24 +58,25 @@ def write_change_report(run_a, run_b, out_dir=None, *, result=None):
 
     Raises
     ------
-    InputError
-        When the report would be written inside one of the run folders.
+    OutputError
+        When the report would be written inside one of the run folders, ``out_dir`` is an
+        existing file or cannot be written to, or ``<run_a_id>__<run_b_id>`` exists there
+        and is not a change report (it is never replaced).
     """
     if result is None:
         result = compare_runs(run_a, run_b)
     causes = result["change_causes"]
     path_a, path_b = Path(causes["run_a"]["path"]), Path(causes["run_b"]["path"])
+    if out_dir is None and path_b.parent.name != "runs":
+        raise OutputError(path_b, "is not in the runs/ folder of an output folder; name the folder for the change "
+                                  "report with --out")
     parent = (Path(out_dir) if out_dir is not None else path_b.parent.parent / "comparisons").resolve()
     for run in (path_a, path_b):
         if _inside(parent, run):
-            raise InputError(parent, f"the report would be written inside run folder {run}; runs are never modified")
+            raise OutputError(parent, f"the report would be written inside run folder {run}; runs are never modified")
     name = f"{causes['run_a']['run_id']}__{causes['run_b']['run_id']}"
-    parent.mkdir(parents=True, exist_ok=True)
-    for stale in parent.glob(f"{PARTIAL_PREFIX}{name}-*"):
-        shutil.rmtree(stale, ignore_errors=True)
-    partial = parent / f"{PARTIAL_PREFIX}{name}-{os.getpid()}"
-    final = parent / name
-    partial.mkdir()
+    final = _report_folder(parent, name, given=out_dir)
+    partial = new_private_folder(parent, f"{PARTIAL_PREFIX}{name}-")
     try:
         currency = causes["run_b"]["currency"] if causes["run_a"]["currency"] == causes["run_b"]["currency"] \
             else f"{causes['run_a']['currency']} (A) / {causes['run_b']['currency']} (B)"
@@ -90,10 +93,36 @@ def write_change_report(run_a, run_b, out_dir=None, *, result=None):
         text = json.dumps(dict(causes, created_utc=provenance["created_utc"]), indent=2, sort_keys=True) + "\n"
         with open(partial / "change_causes.json", "w", encoding="utf-8") as fh:
             fh.write(text)
+        (partial / OWNER_FILE).unlink()
         atomic_publish_folder(partial, final, replace=True)
     except BaseException:
         shutil.rmtree(partial, ignore_errors=True)
         raise
+    return final
+
+
+def _report_folder(parent, name, *, given):
+    """The report folder ``<parent>/<name>`` after checking ``parent`` (created) and an earlier report there.
+
+    Dead partial report folders of this machine are removed (:func:`quakefolio.pipeline.io.claims.sweep`);
+    an existing ``<name>`` is replaced only if it is an earlier change report (it holds
+    ``change_causes.json``).
+    """
+    what = "--out" if given is not None else "the comparisons folder"
+    if os.path.lexists(parent) and not parent.is_dir():
+        raise OutputError(parent, f"{what} names an existing file; give the folder that holds change reports "
+                                  "(each report is a folder <run_a_id>__<run_b_id>/ in it)")
+    try:
+        parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(parent, f"cannot create the folder for change reports: {(exc.strerror or '').lower()}") \
+            from None
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise OutputError(parent, "cannot write change reports here: permission denied")
+    sweep(parent, (f"{PARTIAL_PREFIX}{name}-",))
+    final = parent / name
+    if os.path.lexists(final) and (final.is_symlink() or not (final / "change_causes.json").is_file()):
+        raise OutputError(final, "exists and is not a change report; it is never replaced (give another --out)")
     return final
 
 
@@ -217,4 +246,4 @@ def change_summary_text(result, report_folder=None, *, top_n=10):
     if report_folder is not None:
         lines.append("")
         lines.append(f"  change report: {report_folder}")
-    return "\n".join(lines)
+    return "\n".join(one_line(line) for line in lines)  # a name's control characters shown escaped

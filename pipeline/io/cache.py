@@ -38,7 +38,8 @@ from pathlib import Path
 
 import numpy as np
 
-from quakefolio.pipeline.io.store import atomic_publish_folder, atomic_write_bytes
+from quakefolio.pipeline.io.atomic import atomic_publish_folder, atomic_write_bytes
+from quakefolio.pipeline.io.store import denied
 
 __all__ = ["code_version", "digest", "content_digest", "fragility_class_digests", "StageCache", "PairStore",
            "row_digests"]
@@ -152,6 +153,26 @@ class _Untrusted(Exception):
     """A cache entry that exists but is not what was written for its key."""
 
 
+def _remove(path):
+    """Remove whatever sits at a cache entry's path (file, link or folder); best effort."""
+    try:
+        if path.is_dir() and not path.is_symlink():
+            shutil.rmtree(path, ignore_errors=True)
+        else:
+            path.unlink(missing_ok=True)
+    except OSError:
+        pass
+
+
+def _raise_denied(exc, path):
+    """An access error writing the cache as one OutputError naming the entry; other errors as they are."""
+    out = denied(exc, path, "cannot write the cache entry (delete the cache folder or switch the cache off with "
+                            "[execution] cache = false)")
+    if out is not None:
+        raise out from None
+    raise exc
+
+
 class StageCache:
     """The content cache of one output folder: arrays (``.npz``) and tables (Parquet folders).
 
@@ -205,8 +226,8 @@ class StageCache:
                 raise _Untrusted("content does not match its digest")
         except FileNotFoundError:
             return None
-        except Exception:  # corrupt, foreign or edited file: never trusted, removed
-            path.unlink(missing_ok=True)
+        except Exception:  # corrupt, foreign or edited file (or a folder in its place): never trusted, removed
+            _remove(path)
             return None
         return out
 
@@ -225,10 +246,15 @@ class StageCache:
         if not self.enabled:
             return
         path = self._path(stage, key)
-        path.parent.mkdir(parents=True, exist_ok=True)
         buffer = io.BytesIO()
         np.savez(buffer, __key__=np.array(key), __sha256__=np.array(content_digest(arrays)), **arrays)
-        atomic_write_bytes(path, buffer.getvalue())
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            if path.is_dir() and not path.is_symlink():
+                _remove(path)  # a broken entry: a folder where the archive belongs
+            atomic_write_bytes(path, buffer.getvalue())
+        except OSError as exc:
+            _raise_denied(exc, path)
 
     def get_tables(self, stage, key):
         """The tables and checks stored under ``key``, or None (missing, or not trusted: then removed).
@@ -251,6 +277,9 @@ class StageCache:
         if not self.enabled:
             return None
         folder = self.root / stage / key
+        if folder.is_symlink() or (os.path.lexists(folder) and not folder.is_dir()):
+            _remove(folder)  # a broken entry: never followed, never trusted
+            return None
         if not folder.is_dir():
             return None
         try:
@@ -293,7 +322,10 @@ class StageCache:
         parent = self.root / stage
         tmp = parent / f".{key}.{os.getpid()}.{threading.get_ident()}.tmp"
         shutil.rmtree(tmp, ignore_errors=True)
-        tmp.mkdir(parents=True)
+        try:
+            tmp.mkdir(parents=True)
+        except OSError as exc:
+            _raise_denied(exc, tmp)
         try:
             files = {}
             for name, frame in tables.items():
@@ -305,8 +337,11 @@ class StageCache:
             meta = {"key": key, "tables": list(tables), "checks": checks,
                     "sha256": _tables_digest(files, json.dumps(checks, sort_keys=True))}
             (tmp / "checks.json").write_text(json.dumps(meta), encoding="utf-8")
+            final = parent / key
+            if final.is_symlink() or (os.path.lexists(final) and not final.is_dir()):
+                _remove(final)  # a broken entry that is not a folder: removed, then replaced
             try:
-                atomic_publish_folder(tmp, parent / key, replace=True)
+                atomic_publish_folder(tmp, final, replace=True)
             except OSError as exc:
                 if exc.errno not in (errno.ENOTEMPTY, errno.EEXIST):
                     raise

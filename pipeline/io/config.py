@@ -15,11 +15,13 @@ from types import MappingProxyType
 
 from quakefolio.core.errors import InputError, did_you_mean, locate_toml_line
 from quakefolio.core.ims import parse_im
+from quakefolio.core.plausibility import vs30_problem
 from quakefolio.core.validation import (
     REQUIRED, Boolean, Constraint, Field, Integer, Interval, Invalid, ListOf, OneOf, Pattern, Real, Rule, Schema, Text,
     check_value, toml_place, validate_table,
 )
 from quakefolio.fragility.library import read_toml
+from quakefolio.pipeline.io.alternatives import ALTERNATIVE_KEYS, _resolve, _ResolvedPath, parse_alternatives  # noqa: F401
 from quakefolio.pipeline.io.layers import Layers as _Layers
 from quakefolio.pipeline.io.occupancy import OccupancyPeriods as _OccupancyPeriods
 
@@ -64,21 +66,6 @@ class _IMNames(Rule):
         return out
 
 
-def _resolve(value, base):
-    p = Path(value)
-    return (p if p.is_absolute() else base / p).resolve()
-
-
-class _ResolvedPath(Rule):
-    """A path without NUL bytes, resolved against the config file's folder (``context["base"]``)."""
-
-    def __init__(self, message="path contains a NUL byte", test=lambda v: "\x00" not in v, show_value=False):
-        super().__init__(test, message, show_value=show_value)
-
-    def convert(self, value, context):
-        return _resolve(value, context["base"])
-
-
 class _Branches(Constraint):
     """Logic-tree branches (``"source_branches"`` or ``"gmm_branches"``), checked by :func:`_branches`."""
 
@@ -103,6 +90,10 @@ _PATH = (Text("expected a file path string", non_empty=True), _ResolvedPath())
 _POSITIVE = Interval(0, None, closed="neither")
 _NON_NEGATIVE = Interval(0, None)
 _POSITIVE_INT = Interval(1, None, message="expected an integer >= 1")
+#: Simulated years: beyond 1e8 only memory grows (1e8 years put the 1-in-10,000-year loss within ~1 %,
+#: pipeline.stages.sizes.MAX_YEARS).
+_YEARS = Interval(1, 100_000_000, message="expected an integer from 1 to 100,000,000: the exceedance probability "
+                  "of the 1-in-10,000-year loss has a standard error of 1 % of itself at 1e8 years")
 _PROBABILITY = Interval(0, 1, closed="neither", message="expected a probability in (0, 1)")
 _CORRELATION = Interval(0, 1, message="expected a correlation coefficient in [0, 1]")
 _DISCOUNT_RATE = Interval(0, 1, closed="left", message="expected a discount rate in [0, 1)")
@@ -174,21 +165,29 @@ SCHEMA = {
         "im_levels_g": _key(_FLOATS, DEFAULT_LEVELS_G, _LEVELS),
         "fractiles": _key(_FLOATS, [0.16, 0.5, 0.84], _QUANTILES),
         "site_spacing_km": _key(_FLOAT, 0.0, _NON_NEGATIVE, help="0: a site per unique asset location"),
-        "default_vs30_mps": _key(_FLOAT, 760.0, _POSITIVE),
+        "default_vs30_mps": _key(_FLOAT, 760.0, _POSITIVE, Rule(lambda v: vs30_problem(v) is None, vs30_problem,
+                                                                 show_value=False)),
         "region": _key(_STR, "global"),
         "disaggregation": _key(_BOOL, True),
+        "cms_conditioning_ims": _key((_IMNames(),), [], help="conditional mean spectrum: IMs it is conditioned on "
+                                     "(checked by pipeline.stages.spectrum); [] (default): none"),
+        "cms_return_periods_yr": _key(_FLOATS, [475.0, 2475.0], *_RETURN_PERIODS),
         "propagate_branches": _key(_BOOL, False, help="also give damage and EAL fractiles over branches"),
     },
     "portfolio": {
         "event_based": _key(_BOOL, None, help="event-based portfolio loss (default: on in compute mode)"),
-        "years": _key(_INT, 10000, _POSITIVE_INT, help="simulated years"),
+        "years": _key(_INT, 10000, _YEARS, help="simulated years (at most 1e8)"),
         "seed": _key(_INT, 20261201, _NON_NEGATIVE, help="seed of every random draw"),
         "source_branch": _key(_STR, "", help="\"\" (default): every source-model and GMM branch by weight, one "
                               "branch combination per simulated year; a source branch id: that branch only, GMM "
                               "drawn per event (per-branch mode, for sensitivity)"),
         "spatial_correlation": _key(_BOOL, True),
         "cross_im_correlation": _key(_BOOL, True),
-        "vs30_clustering": _key(_BOOL, False, help="Jayaram & Baker (2009) case with Vs30 clustering"),
+        "correlation_range": _key(_STR, "mixed_site_conditions",
+                                  choices=("mixed_site_conditions", "clustered_site_conditions"),
+                                  help="range of the spatial correlation of within-event residuals: Jayaram & "
+                                       "Baker (2009) for sites of mixed Vs30, or for sites whose Vs30 values "
+                                       "cluster in space (a longer range at short periods)"),
         "loss_model": _key(_STR, "mean_damage_ratio", choices=("mean_damage_ratio", "sampled_damage")),
         "secondary_correlation": _key(_FLOAT, 0.3, _CORRELATION,
                                       help="sampled damage: share of damage and loss-ratio uncertainty common to a "
@@ -308,6 +307,8 @@ class HazardSettings(_Section):
     default_vs30_mps: float  #: Vs30 of assets without one [m/s]
     region: str  #: ground-motion model region
     disaggregation: bool  #: compute the disaggregation table
+    cms_conditioning_ims: tuple  #: IMs the conditional mean spectrum is conditioned on (empty: none)
+    cms_return_periods_yr: tuple  #: return periods of the conditional mean spectrum [yr]
     propagate_branches: bool  #: also give damage and EAL fractiles over branches
 
 
@@ -321,7 +322,7 @@ class PortfolioSettings(_Section):
     source_branch: str  #: "" for the whole logic tree, else the one source-model branch of the event set
     spatial_correlation: bool  #: spatially correlated within-event residuals
     cross_im_correlation: bool  #: correlated residuals across IMs
-    vs30_clustering: bool  #: correlation model with Vs30 clustering
+    correlation_range: str  #: ``"mixed_site_conditions"`` or ``"clustered_site_conditions"`` (Jayaram & Baker 2009)
     loss_model: str  #: ``"mean_damage_ratio"`` or ``"sampled_damage"``
     secondary_correlation: float  #: within-group correlation of sampled damage and loss ratios [-]
     secondary_group: str  #: exposure column grouping assets that share that uncertainty
@@ -458,6 +459,11 @@ class Config:
     execution = property(lambda self: self.settings("execution"), doc="[execution] as ExecutionSettings")
 
 
+#: keys of earlier versions: (section, old key) -> the hint that replaces "did you mean"
+RENAMED = {("portfolio", "vs30_clustering"): "; renamed: correlation_range = \"clustered_site_conditions\" "
+                                             "(true) or \"mixed_site_conditions\" (false, the default)"}
+
+
 def _suggest(name, valid):
     return did_you_mean(name, valid, cutoff=0.5, otherwise=f"; valid: {', '.join(valid)}")
 
@@ -482,12 +488,14 @@ def _source_branch(i, entry, base):
 
 
 def _gmm_branch(i, entry, base):
-    from quakefolio.core.gmm import GMM_REGISTRY
+    from quakefolio.core.gmm import GMM_REGISTRY, models_for_region
 
     weight = _branch_weight(i, entry)
     model = entry.get("model")
-    if model not in GMM_REGISTRY:
-        raise Invalid(f"branch {i + 1}: unknown ground-motion model {model!r}; valid: {', '.join(GMM_REGISTRY)}")
+    valid = models_for_region("active_crustal")  # source models hold active crustal sources only
+    if model not in valid:
+        what = "unknown" if model not in GMM_REGISTRY else "not an active-crustal"
+        raise Invalid(f"branch {i + 1}: {what} ground-motion model {model!r}; valid: {', '.join(valid)}")
     return {"model": model, "weight": weight, "id": model}
 
 
@@ -536,109 +544,6 @@ def _branches(kind, value, base):
 
 
 #: Keys of one ``[[scenario.alternatives]]`` table (retrofit what-if).
-ALTERNATIVE_KEYS = ("id", "description", "assets", "building_class", "new_class", "fragility_library",
-                    "retrofit_cost", "retrofit_cost_ratio")
-_ALTERNATIVE_ID = Pattern(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}$")
-_NAME = (Text(non_empty=True),)
-_OPTIONAL = Field((), None)
-#: Presence and type of the two names every alternative needs; the other keys are checked by
-#: :data:`_ALTERNATIVE_VALUES` once the id is known to be new.
-_ALTERNATIVE_SCHEMA = Schema({k: Field(_NAME) if k in ("id", "new_class") else _OPTIONAL for k in ALTERNATIVE_KEYS},
-                             cutoff=0.5, valid_label="valid")
-def _listed_twice(assets):
-    return f"asset id {sorted({a for a in assets if assets.count(a) > 1})[0]!r} listed more than once"
-
-
-#: Key -> (default, rules) of the optional keys of an alternative, in checking order.
-_ALTERNATIVE_VALUES = {
-    "description": ("", (Text(),)),
-    "assets": ([], (ListOf(Text(non_empty=True), "expected a list of asset ids (strings)"),
-                    ListOf(message="expected at least one asset id", min_len=1, show_value=False),
-                    Rule(lambda a: len(set(a)) == len(a), _listed_twice, show_value=False))),
-    "building_class": (None, (Text("expected a building class code", non_empty=True),)),
-}
-_LIBRARY_PATH = (_ResolvedPath("expected a file path string",
-                               lambda v: isinstance(v, str) and bool(v.strip()) and "\x00" not in v, True),)
-_COSTS = ("retrofit_cost", "retrofit_cost_ratio")
-_POSITIVE_COST = (Real(finite=True, message="expected a positive number"), _POSITIVE)
-
-
-def _alternative_values(entry, place, base):
-    """The optional values of one alternative after their declared checks (defaults filled in)."""
-    out = {}
-    for key, (default, rules) in _ALTERNATIVE_VALUES.items():
-        if key not in entry:
-            out[key] = default
-            continue
-        out[key], msg = check_value(rules, entry[key])
-        if msg is not None:
-            raise place.error(msg, key)
-    if not out["assets"] and out["building_class"] is None:
-        raise place.error("select assets with 'assets' (a list of asset ids) and/or 'building_class'")
-    if "fragility_library" in entry:
-        out["fragility_library"], msg = check_value(_LIBRARY_PATH, entry["fragility_library"], {"base": base})
-        if msg is not None:
-            raise place.error(msg, "fragility_library")
-    else:
-        out["fragility_library"] = None
-    return out
-
-
-def _alternative_cost(entry, place):
-    """``(retrofit_cost, retrofit_cost_ratio)`` of one alternative: exactly one is given, positive."""
-    costs = [k for k in _COSTS if k in entry]
-    if len(costs) != 1:
-        raise place.error("give exactly one of 'retrofit_cost' (per asset) and 'retrofit_cost_ratio' (of "
-                          f"replacement value), got {len(costs)}", costs[1] if len(costs) == 2 else None)
-    cost, msg = check_value(_POSITIVE_COST, entry[costs[0]])
-    if msg is not None:
-        raise place.error(msg, costs[0])
-    return (cost, None) if costs[0] == "retrofit_cost" else (None, cost)
-
-
-def _alternatives(entries, path, text, base):
-    """Validate the ``[[scenario.alternatives]]`` tables; every error names its line and key.
-
-    Only the file-local checks live here (types, required keys, one cost form); asset
-    ids and class codes are checked against the exposure and the fragility libraries by
-    :func:`quakefolio.pipeline.stages.whatif.validate`.
-
-    Parameters
-    ----------
-    entries : list of dict
-        The parsed tables.
-    path : Path
-        The config file.
-    text : str
-        Its TOML text (to locate lines).
-    base : Path
-        Folder relative file names are resolved against.
-
-    Returns
-    -------
-    list of dict
-        One dict per alternative with every key of :data:`ALTERNATIVE_KEYS` (costs as
-        float or None, ``fragility_library`` as a resolved path or None).
-    """
-    out, ids = [], set()
-    for i, entry in enumerate(entries):
-        place = toml_place(path, text, ("scenario", "alternatives"), f"scenario.alternatives[{i}]", i)
-        validate_table(entry, _ALTERNATIVE_SCHEMA, place)
-        aid = entry["id"]
-        if not _ALTERNATIVE_ID.holds(aid):
-            raise place.error(f"id {aid!r} must be 1-64 letters, digits, '-', '_' or '.'", "id")
-        if aid in ids:
-            raise place.error(f"duplicate alternative id {aid!r}", "id")
-        ids.add(aid)
-        values = _alternative_values(entry, place, base)
-        cost, ratio = _alternative_cost(entry, place)
-        out.append({"id": aid, "description": values["description"], "assets": list(values["assets"]),
-                    "building_class": values["building_class"], "new_class": entry["new_class"],
-                    "fragility_library": values["fragility_library"], "retrofit_cost": cost,
-                    "retrofit_cost_ratio": ratio})
-    return out
-
-
 def _check_sections(data, path, text):
     """Unknown sections and keys (with a hint) and sections that are not tables, in file order."""
     for sec, body in data.items():
@@ -649,7 +554,8 @@ def _check_sections(data, path, text):
             raise InputError(path, f"[{sec}] must be a table", row=locate_toml_line(text, (), sec), column=sec)
         for key in body:
             if key not in SCHEMA[sec]:
-                raise toml_place(path, text, (sec,), sec).error(f"unknown key{_suggest(key, SCHEMA[sec])}", key)
+                hint = RENAMED.get((sec, key)) or _suggest(key, SCHEMA[sec])
+                raise toml_place(path, text, (sec,), sec).error(f"unknown key{hint}", key)
 
 
 def _section_values(sec, body, path, text, base):
@@ -723,7 +629,7 @@ def load_config(path):
     base = path.parent
     _check_sections(data, path, text)
     sections = {sec: _section_values(sec, data.get(sec, {}), path, text, base) for sec in SCHEMA}
-    sections["scenario"]["alternatives"] = _alternatives(sections["scenario"]["alternatives"], path, text, base)
+    sections["scenario"]["alternatives"] = parse_alternatives(sections["scenario"]["alternatives"], path, text, base)
     _cross_checks(sections, path, text)
     return Config(path=path, sections=sections, sha256=digest, raw=data)
 

@@ -8,21 +8,26 @@ with ``im_max`` for records that did not fail, i.e. truncated IDA).  Every probl
 
 :func:`write_fitted_state` adds or replaces one damage state of a fragility library
 file: the updated library is validated before the file is replaced atomically, and a
-library that is already invalid is never rewritten.
+library that is already invalid is never rewritten.  An existing file is edited in place
+(:mod:`quakefolio.pipeline.io.library_edit`): its comments, key order and spacing are
+kept, or the update is refused when they cannot be.  A symbolic link is written through:
+its target is replaced atomically (in the target's folder) and the link stays.
 """
 from __future__ import annotations
 
+import os
 import stat
 import tomllib
 from pathlib import Path
 
 import numpy as np
 
-from quakefolio.core.errors import InputError
+from quakefolio.core.errors import InputError, OutputError
 from quakefolio.fragility.fitting import library_to_toml, set_damage_state
 from quakefolio.fragility.library import FORMAT_TAG, load_library, parse_library, read_toml
 from quakefolio.pipeline.io.ingest import NON_NEGATIVE, POSITIVE, WHOLE, _numbers, read_table
-from quakefolio.pipeline.io.store import atomic_write_text
+from quakefolio.pipeline.io.library_edit import LayoutError, update_library_text
+from quakefolio.pipeline.io.store import atomic_write_text, denied
 
 __all__ = ["read_fit_data", "write_fitted_state", "FIT_COLUMNS"]
 
@@ -139,14 +144,17 @@ def read_fit_data(path, method=None, im_max=None):
 
 
 def _existing_library(path):
-    """Text and parsed data of the library to update (a new, empty one if the file does not exist)."""
+    """Text and parsed data of the library to update (None, and a new empty library, if the file does not exist)."""
+    if os.path.lexists(path) and not path.exists():
+        raise InputError(path, f"is a symbolic link to a missing file ({os.readlink(path)!r}); name the library file "
+                               "itself")
     if path.exists():
         text, data, _ = read_toml(path)
         parse_library(data, text=text, path=str(path))  # never rewrite a library that is already invalid
         return text, data
     if not path.parent.is_dir():
         raise InputError(path, f"folder {str(path.parent)!r} does not exist")
-    return "# quakefolio fragility library\n", {"format": FORMAT_TAG, "classes": {}}
+    return None, {"format": FORMAT_TAG, "classes": {}}
 
 
 def _header(text, tag, note):
@@ -166,15 +174,39 @@ def _header(text, tag, note):
 def _replace_file(path, text):
     """Write ``text`` to ``path`` atomically, keeping the permissions of an existing file.
 
+    A symbolic link is followed: its target is replaced (the temporary file goes to the
+    target's folder) and the link itself stays.
+
     Parameters
     ----------
     path : pathlib.Path
         The library file (its folder must exist).
     text : str
         The whole new content (UTF-8, newlines as given).
+
+    Returns
+    -------
+    pathlib.Path
+        The file written (the link's target for a link).
+
+    Raises
+    ------
+    OutputError
+        When the system refuses the write (naming the file or folder).
     """
-    mode = stat.S_IMODE(path.stat().st_mode) if path.exists() else None
-    atomic_write_text(path, text, mode=mode)
+    target = Path(os.path.realpath(path))
+    if target.exists() and not target.is_file():
+        raise OutputError(target, "is not a regular file; the library is written only to a regular file")
+    mode = stat.S_IMODE(target.stat().st_mode) if target.exists() else None
+    try:
+        atomic_write_text(target, text, mode=mode)
+    except OSError as exc:
+        out = denied(exc, target.parent, "cannot write the library (it is replaced through a temporary file in "
+                                         "its folder)")
+        if out is None:
+            raise
+        raise out from None
+    return target
 
 
 def write_fitted_state(library_path, class_code, state, fit, *, data_path, mean_damage_ratio=None, cov=None,
@@ -206,7 +238,10 @@ def write_fitted_state(library_path, class_code, state, fit, *, data_path, mean_
     Raises
     ------
     InputError
-        When the library is invalid before or would be after the update.
+        When the library is invalid before or would be after the update, or the update
+        cannot keep the file's comments and layout.
+    OutputError
+        When the file cannot be written (naming it and what was attempted).
     """
     path = Path(library_path)
     text, data = _existing_library(path)
@@ -217,14 +252,24 @@ def write_fitted_state(library_path, class_code, state, fit, *, data_path, mean_
         raise InputError(path, str(exc), column=f"classes.{class_code}") from None
     tag = f"# fit-fragility: classes.{class_code} state {state!r}"
     note = f"{tag} fitted to {Path(data_path).name!r} ({fit.method}, n = {fit.n}; beta is beta_total)"
-    new_text = library_to_toml(new, header=_header(text, tag, note))
+    if text is None:  # a new file
+        new_text = library_to_toml(new, header=_header("# quakefolio fragility library\n", tag, note))
+    else:
+        try:
+            new_text = update_library_text(text, data, new, class_code, state, tag=tag, note=note)
+        except LayoutError as exc:
+            raise InputError(path, f"refused: cannot update the file in place and keep its comments and layout "
+                                   f"({exc}); nothing written. Write the state as a [[classes.{class_code}.states]] "
+                                   "table, one key per line, or edit the file by hand", column=f"classes.{class_code}") \
+                from None
     try:  # validate before replacing anything; line numbers of the unwritten text would mislead, so none are given
         parse_library(tomllib.loads(new_text), text=new_text, path=str(path))
     except InputError as exc:
         raise InputError(path, f"refused, the updated library would be invalid: {exc.message}",
                          column=exc.column) from None
-    _replace_file(path, new_text)
+    written_to = _replace_file(path, new_text)
     load_library(path)  # the file as written loads in our format
     written = next(s for s in new["classes"][class_code]["states"] if s["name"] == state)
-    return [f"wrote {path}: class {class_code!r}, state {state!r}: median {written['median']:g} g, "
+    where = f"{path} (link to {written_to})" if path.is_symlink() else str(path)
+    return [f"wrote {where}: class {class_code!r}, state {state!r}: median {written['median']:g} g, "
             f"beta {written['beta']:g} (beta_total)"] + [f"note: {n}" for n in notes]

@@ -11,7 +11,7 @@ import csv
 import io
 import re
 import warnings
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from types import MappingProxyType
 from typing import Mapping
@@ -21,12 +21,14 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from quakefolio.core.curves import interpolate_period
+from quakefolio.core.curves import NoCommonRates, interpolate_period
 from quakefolio.core.errors import InputError, did_you_mean
 from quakefolio.core.geo import nearest_site
 from quakefolio.core.ims import im_period, parse_im
+from quakefolio.core.plausibility import VS30_ERROR_ABOVE_MPS, VS30_ERROR_BELOW_MPS, vs30_problem
 from quakefolio.core.validation import Interval, MaxMagnitude, Real, WholeNumber
 from quakefolio.pipeline.io.config import IM_UNITS_TO_G
+from quakefolio.pipeline.io.hazard_checks import check_flat_curves, check_levels, statistic_rows, zero_curve_warning
 
 __all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves", "HazardCurves", "map_assets_to_sites",
            "curves_for_im", "EXPOSURE_COLUMNS"]
@@ -141,6 +143,11 @@ def read_table(path, columns):
         raise InputError(path, "file not found")
     if not path.is_file():
         raise InputError(path, "not a regular file")
+    try:
+        with open(path, "rb"):
+            pass
+    except OSError as exc:
+        raise InputError(path, f"cannot read file: {exc.strerror}") from None
     if path.stat().st_size == 0:
         raise InputError(path, "file is empty")
     suffix = path.suffix.lower()
@@ -294,7 +301,8 @@ def read_exposure(path, library, group_column="building_class"):
     """Validated exposure as a DataFrame with columns of :data:`EXPOSURE_COLUMNS` and ``row``.
 
     Checks: unique ids, WGS84 ranges, known building classes (against ``library``),
-    positive replacement values, optional columns non-negative, deductible below limit.
+    positive replacement values, optional columns non-negative, Vs30 of real ground
+    (:func:`quakefolio.core.plausibility.vs30_problem`), deductible below limit.
 
     Parameters
     ----------
@@ -340,6 +348,11 @@ def read_exposure(path, library, group_column="building_class"):
     out["replacement_value"] = _numbers(frame, rows, path, "replacement_value", (POSITIVE,))
     for col, rules in _OPTIONAL_EXPOSURE.items():
         out[col] = _numbers(frame, rows, path, col, rules, required=False) if col in frame.columns else np.nan
+    vs30 = out["vs30_mps"].to_numpy(dtype=float)
+    bad = (vs30 < VS30_ERROR_BELOW_MPS) | (vs30 > VS30_ERROR_ABOVE_MPS)
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise InputError(path, vs30_problem(vs30[i]), row=int(rows[i]), column="vs30_mps")
     bad = (out["deductible"] >= out["limit"]).to_numpy()
     if bad.any():
         i = int(np.argmax(bad))
@@ -383,6 +396,11 @@ class HazardCurves:
     source : str
         File the curves came from.
     interpolated : frozenset of IM names built by period interpolation
+    rows : Mapping IM name -> ndarray of int (n_sites, n_levels)
+        File row of every tabulated point (read-only; empty for computed curves), to locate
+        problems found after reading.
+    warnings : tuple of quakefolio.core.errors.InputWarning
+        Doubts about the file found while reading it (e.g. IM levels above recorded motion).
     """
 
     site_id: np.ndarray
@@ -391,10 +409,14 @@ class HazardCurves:
     curves: Mapping
     source: str
     interpolated: frozenset = frozenset()
+    rows: Mapping = field(default_factory=dict)
+    warnings: tuple = ()
 
     def __post_init__(self):
         object.__setattr__(self, "curves", MappingProxyType(dict(self.curves)))
         object.__setattr__(self, "interpolated", frozenset(self.interpolated))
+        object.__setattr__(self, "rows", MappingProxyType(dict(self.rows)))
+        object.__setattr__(self, "warnings", tuple(self.warnings))
 
     def with_im(self, im, *, allow_interpolation=True):
         """These curves with ``im`` available: ``self`` if it is there, else a new object with its
@@ -430,7 +452,10 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     Checks: known IM names, positive levels, non-negative rates, one coordinate pair
     per site, no duplicated level within a curve, rates non-increasing with level,
     every site tabulated for every IM with the same number of levels per IM, at least
-    two levels.  Levels are converted from ``im_unit`` to g.
+    two levels; the statistic asked for present for every site and IM; no flat curve;
+    levels within reach of real ground motion; a warning for curves 0 at every level
+    (:mod:`quakefolio.pipeline.io.hazard_checks`).
+    Levels are converted from ``im_unit`` to g.
 
     Parameters
     ----------
@@ -439,14 +464,15 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     im_unit : {"g", "m/s2", "cm/s2"}
         Unit of the ``im_level`` column.
     statistic : str
-        Rows of this ``statistic`` are kept (e.g. ``"mean"``); ignored when the file has
-        no ``statistic`` column.
+        Rows of this ``statistic`` are kept (e.g. ``"mean"``); a file without a
+        ``statistic`` column holds unlabelled curves, read for ``"mean"`` only.
 
     Returns
     -------
     HazardCurves
         Sites sorted by id; per tabulated IM (none interpolated), levels [g] and annual
-        rates [1/yr] of shape (n_sites, n_levels).
+        rates [1/yr] of shape (n_sites, n_levels), the file row of every point, and the
+        warnings about the levels and about curves that are 0 everywhere.
 
     Raises
     ------
@@ -468,15 +494,7 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
     ims = np.array([canon[v] for v in ims], dtype=object)
     level = _numbers(frame, rows, path, "im_level", (POSITIVE,)) * IM_UNITS_TO_G[im_unit]
     rate = _numbers(frame, rows, path, "annual_rate", (NON_NEGATIVE,))
-    if "statistic" in frame.columns:
-        stat = frame["statistic"].astype(str).str.strip().to_numpy(dtype=object)
-        keep = stat == statistic
-        if not keep.any():
-            found = sorted(set(stat))
-            raise InputError(path, f"no curves with statistic {statistic!r}; the file has {found}", row=2,
-                             column="statistic")
-    else:
-        keep = np.ones(len(frame), dtype=bool)
+    keep = statistic_rows(path, frame, rows, site, ims, statistic)
     df = pd.DataFrame({"site_id": site, "lon": lon, "lat": lat, "im": ims, "level": level, "rate": rate,
                        "row": rows})[keep]
     # one coordinate pair per site
@@ -502,7 +520,7 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
                                "non-increasing", row=int(r), column="annual_rate")
     sites = df.drop_duplicates("site_id").sort_values("site_id", kind="stable")
     site_ids = sites.site_id.to_numpy().astype(str)
-    curves = {}
+    curves, curve_rows = {}, {}
     for im, sub in df.groupby("im", sort=True):
         counts = sub.groupby("site_id").size().reindex(site_ids)
         if counts.isna().any():
@@ -521,8 +539,12 @@ def read_hazard_curves(path, *, im_unit="g", statistic="mean"):
                              column="im_level")
         sub = sub.set_index("site_id").loc[site_ids]
         curves[im] = (sub.level.to_numpy().reshape(-1, n), sub.rate.to_numpy().reshape(-1, n))
+        curve_rows[im] = sub.row.to_numpy().reshape(-1, n)
+    check_flat_curves(path, site_ids, curves, curve_rows)
+    notes = check_levels(path, site_ids, curves, curve_rows, im_unit, IM_UNITS_TO_G)
+    notes += [w for w in [zero_curve_warning(path, site_ids, curves, curve_rows)] if w is not None]
     return HazardCurves(site_id=site_ids, lon=sites.lon.to_numpy(), lat=sites.lat.to_numpy(), curves=curves,
-                        source=str(path), interpolated=frozenset())
+                        source=str(path), interpolated=frozenset(), rows=curve_rows, warnings=tuple(notes))
 
 
 def curves_for_im(hazard, im, *, allow_interpolation=True):
@@ -551,6 +573,9 @@ def curves_for_im(hazard, im, *, allow_interpolation=True):
     UnavailableIM
         When the IM is not tabulated and cannot be interpolated (no neighbour on one
         side, or interpolation disabled).
+    InputError
+        When a site's neighbouring curves share no range of positive rates (naming the
+        file, the site and the first row of the curve to blame).
     """
     if im in hazard.curves:
         return hazard.curves[im]
@@ -566,7 +591,23 @@ def curves_for_im(hazard, im, *, allow_interpolation=True):
                          "it can be interpolated between periods, not extrapolated")
     lo, hi = below[-1], above[0]
     (x1, l1), (x2, l2) = hazard.curves[lo], hazard.curves[hi]
-    return interpolate_period(t, im_period(lo), x1, l1, im_period(hi), x2, l2)
+    try:
+        return interpolate_period(t, im_period(lo), x1, l1, im_period(hi), x2, l2)
+    except NoCommonRates as exc:
+        site = exc.index[0] if exc.index else 0
+        blame = (lo, hi)[exc.neighbour - 1]
+        row = int(hazard.rows[blame][site, 0]) if blame in hazard.rows else None
+        raise InputError(hazard.source, f"site {str(hazard.site_id[site])!r}: {im} cannot be interpolated between "
+                                        f"{lo} and {hi}, whose curves share no range of positive rates "
+                                        f"({exc.ranges}); {_overlap_hint(exc)}",
+                         row=row, column="annual_rate") from None
+
+
+
+def _overlap_hint(exc):
+    if "0 at every level" in exc.ranges:
+        return "a site without hazard has rates of 0 at every period"
+    return "the curves of one site must overlap in rate to be interpolated between: check both"
 
 
 def map_assets_to_sites(exposure, hazard, *, max_distance_km, exposure_path):

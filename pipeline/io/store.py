@@ -2,192 +2,78 @@
 
 Layout::
 
-    <output>/runs/<run_id>/          complete runs, never modified afterwards
-    <output>/runs/.partial-<run_id>.<pid>/ a run being written (invisible to readers)
-    <output>/LATEST                  the id of the newest complete run
+    <output>/.quakefolio-output        marks the folder as ours (io.output_folder)
+    <output>/runs/<run_id>/            complete runs, never modified afterwards
+    <output>/runs/.partial-<run_id>/   a run being written (invisible to readers), holding
+                                       its writer's owner record (io.claims)
+    <output>/LATEST                    the id of the newest complete run
 
-A run is written under its ``.partial-`` name and renamed into place only when every
-table and the manifest are on disk (``os.replace`` of a folder within one file system
-is atomic); ``LATEST`` is then replaced atomically by :func:`atomic_write_text`.  A crash at any point leaves earlier runs and ``LATEST`` intact; a stale
-partial folder (its process gone) is removed by the next run.  Every Parquet file carries units and
-provenance in its schema metadata under the key ``quakefolio``.
+A run claims its id when it starts writing: the partial folder, created with its owner
+record (host, boot id, process id and start time), is renamed to ``.partial-<run_id>``,
+which fails if another writer holds that id; a taken id, or one that names a finished run,
+gets the next suffix (``-2``, ``-3``, ...), so two identical runs started in the same
+second get two run folders (:func:`quakefolio.pipeline.io.claims.claim_run`).  The partial
+folder is renamed into place only when every table and the manifest are on disk
+(``os.replace`` of a folder within one file system is atomic), never over an existing
+run; ``LATEST`` is then replaced atomically by :func:`atomic_write_text`.  A crash at any
+point leaves earlier runs and ``LATEST`` intact.  A partial folder whose writer is proven
+dead (same host and boot, process gone) is removed by the next run; partial folders of
+other hosts, boots or containers, and those without an owner record, are never removed.
 
-Every file the pipeline replaces in place (the ``LATEST`` pointer, a report) goes through
-:func:`atomic_write_bytes` or :func:`atomic_write_text`: a temporary file in the target
-folder, flushed and fsynced, then renamed over the target.  Finished runs are read through
+``LATEST`` is read as a run id of our own form (:data:`RUN_ID`) naming a folder in
+``runs/``, never as a path.  Every Parquet file carries units and provenance in its schema
+metadata under the key ``quakefolio``.  Atomic file and folder writes live in
+:mod:`quakefolio.pipeline.io.atomic` (re-exported here).  Finished runs are read through
 :class:`RunFolder` (manifest, tables, table metadata, and the assets and fragility classes
 the run used).
 """
 from __future__ import annotations
 
 import datetime as _dt
+import errno
 import json
 import os
-import shutil
-import tempfile
 from pathlib import Path
 
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from quakefolio.core.errors import InputError, OutputError
+from quakefolio.pipeline.io.atomic import atomic_publish_folder, atomic_write_bytes, atomic_write_text, fsync_path
+from quakefolio.pipeline.io.claims import OWNER_FILE, PARTIAL_PREFIX, RUN_ID, claim_run, discard, process_alive
+from quakefolio.pipeline.io.output_folder import prepare_output_folder
+
 __all__ = ["RunWriter", "RunFolder", "latest_run", "read_table", "table_metadata", "atomic_write_bytes",
-           "atomic_write_text", "atomic_publish_folder", "PARTIAL_PREFIX"]
+           "atomic_write_text", "atomic_publish_folder", "fsync_path", "process_alive", "PARTIAL_PREFIX", "RUN_ID",
+           "denied"]
 
-PARTIAL_PREFIX = ".partial-"
 METADATA_KEY = b"quakefolio"
+_DENIED = (errno.EACCES, errno.EPERM, errno.EROFS)
 
 
-def process_alive(pid):
-    """Whether another process with this id exists (POSIX signal 0 probe; this process: False).
-
-    Parameters
-    ----------
-    pid : int
-        Process id, e.g. the suffix of a partial run folder.
-
-    Returns
-    -------
-    bool
-        True if the process exists (also when it belongs to another user), False if it
-        does not or if ``pid`` is this process.
-    """
-    if pid == os.getpid():
-        return False  # e.g. a leftover of an earlier run that had this very process id
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
-def fsync_path(path):
-    """fsync a file or folder by path (best effort: ignored where the OS refuses).
+def denied(exc, path, attempted):
+    """``exc`` as an :class:`OutputError` when the system refused access, else None.
 
     Parameters
     ----------
+    exc : OSError
+        The error raised while writing.
     path : path-like
-        File or folder whose data and metadata are flushed to disk.
-    """
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
-def atomic_write_bytes(path, data, *, mode=None):
-    """Write ``data`` to ``path`` atomically: readers see the old file or the new one, never a part.
-
-    The bytes go to a temporary file in the target folder (``.<name>.<random>.tmp``), are
-    flushed and fsynced, then the file is renamed over ``path`` (``os.replace``) and the
-    folder is fsynced.  The temporary file is removed if anything fails.
-
-    Parameters
-    ----------
-    path : path-like
-        The target file; its folder must exist.
-    data : bytes
-        The whole new content.
-    mode : int, optional
-        Permission bits of the new file; default ``0o666`` less the process umask (as for
-        a file created with ``open``).
+        Where the write was attempted (named when ``exc`` names no file).
+    attempted : str
+        What was attempted, e.g. ``"cannot write the run folder"``.
 
     Returns
     -------
-    pathlib.Path
-        ``path``.
+    OutputError or None
+        An OutputError naming the path, what was attempted and the reason (permission
+        denied, read-only file system); None for other errors (raise those as they are).
     """
-    path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        if mode is None:
-            mask = os.umask(0)
-            os.umask(mask)
-            mode = 0o666 & ~mask
-        os.chmod(tmp, mode)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-    fsync_path(folder)
-    return path
-
-
-def atomic_write_text(path, text, *, mode=None):
-    """Write ``text`` (UTF-8, newlines as given) to ``path`` atomically; see :func:`atomic_write_bytes`.
-
-    Parameters
-    ----------
-    path : path-like
-        The target file; its folder must exist.
-    text : str
-        The whole new content.
-    mode : int, optional
-        Permission bits of the new file (default: ``0o666`` less the umask).
-
-    Returns
-    -------
-    pathlib.Path
-        ``path``.
-    """
-    return atomic_write_bytes(path, text.encode("utf-8"), mode=mode)
-
-
-def atomic_publish_folder(partial, final, *, replace=False):
-    """Rename a completely written folder into place: readers see no folder, the old one or the new one.
-
-    Every file of ``partial`` and the folder itself are fsynced, then ``partial`` is renamed
-    to ``final`` (``os.replace`` of a folder within one file system is atomic) and the
-    parent folder is fsynced.  ``os.replace`` cannot rename over a non-empty folder: with
-    ``replace=True`` an existing ``final`` is first moved aside (``.replaced-<name>-<pid>``
-    beside it), put back if the rename fails, and removed once the new folder is in place.
-
-    Parameters
-    ----------
-    partial : path-like
-        The written folder (same parent file system as ``final``).
-    final : path-like
-        Its name once complete.
-    replace : bool, default False
-        Whether an existing ``final`` is replaced; without it an existing non-empty
-        ``final`` makes the rename fail (``OSError``) and nothing changes.
-
-    Returns
-    -------
-    pathlib.Path
-        ``final``.
-    """
-    partial, final = Path(partial), Path(final)
-    for f in partial.iterdir():
-        fsync_path(f)
-    fsync_path(partial)
-    old = None
-    if replace and final.exists():
-        old = final.with_name(f".replaced-{final.name}-{os.getpid()}")
-        os.replace(final, old)
-    try:
-        os.replace(partial, final)
-    except BaseException:
-        if old is not None:
-            os.replace(old, final)
-        raise
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
-    fsync_path(final.parent)
-    return final
+    if isinstance(exc, OSError) and exc.errno in _DENIED:
+        where = exc.filename if exc.filename else path
+        return OutputError(where, f"{attempted}: {(exc.strerror or 'permission denied').lower()}")
+    return None
 
 
 def _arrow_type(series):
@@ -241,29 +127,59 @@ def to_arrow(frame, *, name, units, description, provenance):
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
+def _reraise(exc, path, attempted):
+    """Raise :func:`denied` of ``exc`` if it is an access error, else ``exc`` itself."""
+    out = denied(exc, path, attempted)
+    if out is not None:
+        raise out from None
+    raise exc
+
+
 class RunWriter:
-    """Writes one run under a partial name, then commits it atomically."""
+    """Writes one run under a partial name, then commits it atomically.
+
+    Parameters
+    ----------
+    output_folder : path-like
+        The output folder (checked, created and marked as ours:
+        :func:`quakefolio.pipeline.io.output_folder.prepare_output_folder`).
+    run_id : str
+        The preferred run id (:data:`RUN_ID` form); when it is taken the next free suffix
+        is used, so read the id actually claimed from :attr:`run_id`.
+
+    Attributes
+    ----------
+    run_id : str
+        The claimed run id.
+    partial : pathlib.Path
+        The partial folder being written.
+    final : pathlib.Path
+        The run folder once committed.
+    left_alone : list of pathlib.Path
+        Partial folders of other hosts, boots or versions found (never removed).
+
+    Raises
+    ------
+    OutputError
+        When the output folder must not or cannot be written into.
+    ValueError
+        When ``run_id`` is not of the :data:`RUN_ID` form.
+    """
 
     def __init__(self, output_folder, run_id):
-        self.output = Path(output_folder).resolve()
+        if not RUN_ID.fullmatch(str(run_id)):
+            raise ValueError(f"run id {run_id!r} is not of the form YYYYmmddTHHMMSSZ-<8 hex digits>[-n]")
+        self.output, self.left_alone = prepare_output_folder(output_folder)
         self.runs = self.output / "runs"
-        self.runs.mkdir(parents=True, exist_ok=True)
-        self._clean_stale_partials()
-        self.run_id = run_id
-        self.final = self.runs / run_id
-        if self.final.exists():
-            raise FileExistsError(f"run folder {self.final} already exists")
-        self.partial = self.runs / f"{PARTIAL_PREFIX}{run_id}.{os.getpid()}"
-        self.partial.mkdir()
+        try:
+            self.run_id, self.partial = claim_run(self.runs, run_id)
+        except OSError as exc:
+            out = denied(exc, self.runs, "cannot create a run folder")
+            if out is None:
+                raise
+            raise OutputError(self.runs, out.message) from None  # the folder, not the hidden claim inside it
+        self.final = self.runs / self.run_id
         self.row_counts = {}
-
-    def _clean_stale_partials(self):
-        """Remove partial folders left by runs that died (their process no longer exists)."""
-        for p in self.runs.glob(f"{PARTIAL_PREFIX}*"):
-            pid = p.name.rsplit(".", 1)[-1]
-            if pid.isdigit() and process_alive(int(pid)):
-                continue  # another run writing into the same output folder right now
-            shutil.rmtree(p, ignore_errors=True)
 
     def _inside(self, name):
         target = (self.partial / name).resolve()
@@ -291,10 +207,18 @@ class RunWriter:
         -------
         pathlib.Path
             The written file inside the partial folder (zstd-compressed Parquet).
+
+        Raises
+        ------
+        OutputError
+            When the system refuses the write (permission denied, read-only file system).
         """
         table = to_arrow(frame, name=name, units=units, description=description, provenance=provenance)
         path = self._inside(f"{name}.parquet")
-        pq.write_table(table, path, compression="zstd")
+        try:
+            pq.write_table(table, path, compression="zstd")
+        except OSError as exc:
+            _reraise(exc, path, "cannot write the run table")
         self.row_counts[name] = table.num_rows
         return path
 
@@ -312,45 +236,69 @@ class RunWriter:
         -------
         pathlib.Path
             The written file inside the partial folder.
+
+        Raises
+        ------
+        OutputError
+            When the system refuses the write (permission denied, read-only file system).
         """
         path = self._inside(name)
-        with open(path, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
+        try:
+            with open(path, "w", encoding="utf-8") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
+        except OSError as exc:
+            _reraise(exc, path, "cannot write the run file")
         return path
 
     def commit(self):
         """Rename the partial folder into place, then point ``LATEST`` at it.
 
         Every file and the folder are fsynced and the rename is atomic within one file
-        system (:func:`atomic_publish_folder`); ``LATEST`` is replaced by
-        :func:`atomic_write_text`.
+        system (:func:`atomic_publish_folder`); an existing run folder of the same id is
+        never replaced.  The owner record is removed from the published folder and
+        ``LATEST`` is replaced by :func:`atomic_write_text`.
 
         Returns
         -------
         pathlib.Path
             The final run folder ``<output>/runs/<run_id>``.
+
+        Raises
+        ------
+        OutputError
+            When a run folder of this id appeared meanwhile (written by something that
+            does not claim its ids), or the system refuses the rename or the pointer.
         """
-        atomic_publish_folder(self.partial, self.final)
-        atomic_write_text(self.output / "LATEST", self.run_id + "\n")
+        if os.path.lexists(self.final):
+            raise OutputError(self.final, "exists already (not written by this run); a finished run is never "
+                                          "replaced")
+        try:
+            atomic_publish_folder(self.partial, self.final)
+            (self.final / OWNER_FILE).unlink(missing_ok=True)
+            fsync_path(self.final)
+            atomic_write_text(self.output / "LATEST", self.run_id + "\n")
+        except OSError as exc:
+            _reraise(exc, self.output, "cannot publish the run")
         return self.final
 
     def abort(self):
         """Remove the partial folder (the run leaves nothing behind)."""
-        shutil.rmtree(self.partial, ignore_errors=True)
+        if self.partial.exists():
+            discard(self.partial)
 
 
 def new_run_id(output_folder, digest):
-    """``YYYYmmddTHHMMSSZ-<8 hex of the inputs digest>``, suffixed if already taken.
+    """``YYYYmmddTHHMMSSZ-<8 hex of the inputs digest>``: the preferred id of a new run.
 
-    The time stamp is UTC; an id that exists as a run folder or a partial folder gets the
-    suffix ``-2``, ``-3``, ... until it is free.
+    The time stamp is UTC.  The id is only a wish: :class:`RunWriter` claims it, or the
+    next free suffix ``-2``, ``-3``, ... when another run holds it or a finished run has it.
 
     Parameters
     ----------
     output_folder : path-like
-        The output folder holding ``runs/``.
+        The output folder holding ``runs/`` (not read: the claim decides).
     digest : str
         Hex digest of the run's inputs (its first 8 characters are used).
 
@@ -359,17 +307,14 @@ def new_run_id(output_folder, digest):
     str
     """
     stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
-    base = f"{stamp}-{digest[:8]}"
-    runs = Path(output_folder) / "runs"
-    run_id, n = base, 1
-    while (runs / run_id).exists() or any(runs.glob(f"{PARTIAL_PREFIX}{run_id}.*")):
-        n += 1
-        run_id = f"{base}-{n}"
-    return run_id
+    return f"{stamp}-{digest[:8]}"
 
 
 def latest_run(output_folder):
     """Path of the run ``LATEST`` points to, or None.
+
+    ``LATEST`` must hold one run id of the :data:`RUN_ID` form: it is never read as a
+    path (``..``, slashes and anything else are refused).
 
     Parameters
     ----------
@@ -380,13 +325,28 @@ def latest_run(output_folder):
     -------
     pathlib.Path or None
         None when there is no pointer or the run folder it names does not exist.
+
+    Raises
+    ------
+    InputError
+        When ``LATEST`` is unreadable or does not hold a run id of our form (naming the
+        file and line 1).
     """
     pointer = Path(output_folder) / "LATEST"
     if not pointer.exists():
         return None
-    run_id = pointer.read_text(encoding="utf-8").strip()
+    try:
+        text = pointer.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        reason = exc.strerror if isinstance(exc, OSError) else "not UTF-8 text"
+        raise InputError(pointer, f"unreadable run pointer: {reason}") from None
+    run_id = text.strip()
+    if not RUN_ID.fullmatch(run_id):
+        shown = run_id if len(run_id) <= 60 else run_id[:57] + "..."
+        raise InputError(pointer, f"expected one run id such as 20260101T120000Z-0123abcd, got {shown!r}; the "
+                                  "pointer names a run in runs/, never a path", row=1)
     path = Path(output_folder) / "runs" / run_id
-    return path if path.is_dir() else None
+    return path if path.is_dir() and not path.is_symlink() else None
 
 
 def read_manifest(run_dir):
@@ -406,11 +366,13 @@ def read_manifest(run_dir):
     InputError
         When the manifest is not valid JSON (naming the line) or not a JSON object.
     """
-    from quakefolio.core.errors import InputError
-
     manifest_path = Path(run_dir) / "manifest.json"
     try:
         manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise InputError(manifest_path, f"cannot read file: {exc.strerror}") from None
+    except UnicodeDecodeError:
+        raise InputError(manifest_path, "not a readable run manifest (not UTF-8 text)") from None
     except json.JSONDecodeError as exc:
         raise InputError(manifest_path, f"not a readable run manifest ({exc.msg})", row=exc.lineno) from None
     if not isinstance(manifest, dict):
@@ -546,8 +508,6 @@ class RunFolder:
         InputError
             When the table is missing or unreadable (naming the file).
         """
-        from quakefolio.core.errors import InputError
-
         if name not in self._tables:
             file = self.path / f"{name}.parquet"
             if not file.exists():

@@ -27,6 +27,21 @@ TABLES = {
         units={"return_period_yr": "yr", "im_level": "g", "mean_mag": "Mw", "mean_dist_km": "km", "mean_eps": "-",
                "mode_mag": "Mw", "mode_dist_km": "km", "mode_eps": "-"},
     ),
+    "conditional_mean_spectrum": dict(
+        description="Conditional mean spectrum (Baker 2011) per site, conditioning IM and return period T: target_g "
+                    "is the mean hazard curve's IM at rate 1/T; mean_mag, mean_dist_km (Rrup) and mean_eps are the "
+                    "exact disaggregation means at the target (as in disaggregation_summary). The scenario's ln "
+                    "median and sigma at each period are the same rate-weighted means (weight: logic-tree weight x "
+                    "rupture rate x P(IM > target)) of the ground-motion models' values for every (rupture, site) "
+                    "pair and branch; scenario_eps = (ln target_g - scenario ln median) / scenario_sigma at the "
+                    "conditioning IM; cms_g = exp(ln scenario_median_g + correlation x scenario_eps x "
+                    "scenario_sigma), conditional_sigma = scenario_sigma x sqrt(1 - correlation^2), correlation from "
+                    "Baker & Jayaram (2008). Periods: those every ground-motion branch tabulates within 0.01-10 s, "
+                    "and the conditioning IM (period_s 0 for PGA). NaN unless flag is ok.",
+        units={"return_period_yr": "yr", "target_g": "g", "mean_mag": "Mw", "mean_dist_km": "km", "mean_eps": "-",
+               "scenario_eps": "-", "period_s": "s", "correlation": "-", "scenario_median_g": "g",
+               "scenario_sigma": "ln units", "cms_g": "g", "conditional_sigma": "ln units"},
+    ),
     "asset_damage": dict(
         description="Per asset and damage state: annual rate of reaching or exceeding the state and its "
                     "probability in the horizon (Poisson); extrapolated tail shares as diagnostics.",

@@ -15,7 +15,9 @@ still present, holding a note that says why.  A section that fails to draw holds
 with the error instead of breaking the whole report.
 
 :func:`write_report` writes it atomically
-(:func:`quakefolio.pipeline.io.store.atomic_write_text`).
+(:func:`quakefolio.pipeline.io.store.atomic_write_text`), and only to a new file or over an
+earlier report of ours (:func:`report_target`: a report carries :data:`REPORT_MARKER` in
+its head); a symbolic link, a folder, a device or any other file is refused.
 
 The report reads the run folder only (:class:`quakefolio.pipeline.io.store.RunFolder`): the
 assets and fragility classes come from the run's ``run_assets`` and ``run_fragility``
@@ -30,6 +32,8 @@ Layout: :mod:`~quakefolio.pipeline.report.document` (the document, writing),
 from __future__ import annotations
 
 from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, TOP_ASSETS
-from quakefolio.pipeline.report.document import SECTIONS, build_report, write_report
+from quakefolio.pipeline.report.document import (REPORT_MARKER, SECTIONS, build_report, default_report_file,
+                                                 is_our_report, report_target, write_report)
 
-__all__ = ["build_report", "write_report", "SECTIONS", "MAX_TABLE_ROWS", "TOP_ASSETS"]
+__all__ = ["build_report", "write_report", "report_target", "default_report_file", "is_our_report", "REPORT_MARKER",
+           "SECTIONS", "MAX_TABLE_ROWS", "TOP_ASSETS"]

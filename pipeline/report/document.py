@@ -1,9 +1,11 @@
 """The report as one HTML document: sections in order, header, key figures, atomic writing."""
 from __future__ import annotations
 
+import errno
+import os
 from pathlib import Path
 
-from quakefolio.core.errors import InputError
+from quakefolio.core.errors import OutputError
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.report.context import ReportRun, _created
 from quakefolio.pipeline.report.figures import _RC
@@ -17,7 +19,12 @@ from quakefolio.pipeline.report.sections_portfolio import _section_portfolio, _s
 from quakefolio.pipeline.report.sections_people import _section_people
 from quakefolio.pipeline.io.store import atomic_write_text
 
-__all__ = ["build_report", "write_report", "SECTIONS"]
+__all__ = ["build_report", "write_report", "SECTIONS", "REPORT_MARKER", "is_our_report", "report_target",
+           "default_report_file"]
+
+#: In the head of every report: how an earlier report of ours is recognised before it is replaced.
+REPORT_MARKER = '<meta name="generator" content="quakefolio report">'
+_HEAD = '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
 
 #: Section ids and headings, in report order.
 SECTIONS = (
@@ -86,7 +93,7 @@ def build_report(run_dir, *, previous_run=None):
     sections = "".join(f'<section id="{sid}"><h2>{_esc(title)}</h2>{bodies[sid]}</section>' for sid, title in SECTIONS)
     version = (run.manifest.get("packages") or {}).get("quakefolio") or ""
     return (
-        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+        f"{_HEAD}{REPORT_MARKER}"
         "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
         f"<title>quakefolio report: {_esc(scenario)} ({_esc(run.run_id)})</title>"
         f"<style>{_CSS}</style></head><body>"
@@ -109,19 +116,22 @@ def write_report(run_dir, out_path, *, previous_run=None):
     run_dir : path-like
         The run folder (finished, or partial while being written).
     out_path : path-like
-        The HTML file to write; its folder must exist.
+        The HTML file to write: a new file or an earlier report (:func:`report_target`);
+        its folder must exist.
     previous_run : path-like, optional
         A run to compare with (see :func:`build_report`).
 
     Returns
     -------
     pathlib.Path
-        ``out_path``.
+        The file written (absolute, its folder resolved).
 
     Raises
     ------
+    OutputError
+        When the target is refused (:func:`report_target`) or cannot be written.
     InputError
-        When the target folder does not exist, or ``run_dir`` is not a readable run.
+        When ``run_dir`` is not a readable run.
 
     Notes
     -----
@@ -129,9 +139,116 @@ def write_report(run_dir, out_path, *, previous_run=None):
     the target folder, fsync, ``os.replace``): readers see the old file or the new one,
     never a half-written one.
     """
+    out = report_target(out_path)
     text = build_report(run_dir, previous_run=previous_run)
-    out = Path(out_path)
-    folder = out.parent if str(out.parent) else Path(".")
-    if not folder.is_dir():
-        raise InputError(folder, "folder does not exist")
-    return atomic_write_text(out, text)
+    out = report_target(out)  # again: the file may have appeared while the report was built
+    try:
+        return atomic_write_text(out, text)
+    except OSError as exc:
+        if exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+            raise OutputError(out, f"cannot write the report: {exc.strerror.lower()}") from None
+        raise
+
+
+def is_our_report(path):
+    """Whether ``path`` is a regular file holding a report written by quakefolio.
+
+    A report carries :data:`REPORT_MARKER` in its head; reports written before the marker
+    are recognised by their first line and their quakefolio footer.
+
+    Parameters
+    ----------
+    path : path-like
+        An existing file.
+
+    Returns
+    -------
+    bool
+    """
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(4096).decode("utf-8", "replace")
+            if REPORT_MARKER in head:
+                return True
+            if not head.startswith(_HEAD):
+                return False
+            return b"<footer>quakefolio " in head.encode() + fh.read(64 << 20)
+    except OSError:
+        return False
+
+
+def default_report_file(run):
+    """``<output folder>/reports/<run_id>.html`` for a run in an output folder's ``runs/``; the folder is created.
+
+    Parameters
+    ----------
+    run : path-like
+        A finished run folder.
+
+    Returns
+    -------
+    pathlib.Path
+
+    Raises
+    ------
+    OutputError
+        When the run is not in a ``runs/`` folder (the report has no default place: name
+        it) or the ``reports`` folder cannot be created.
+    """
+    run = Path(run)
+    if run.parent.name != "runs":
+        raise OutputError(run, "is not in the runs/ folder of an output folder; name the report file with --out")
+    folder = run.parent.parent / "reports"
+    try:
+        folder.mkdir(exist_ok=True)
+    except OSError as exc:
+        raise OutputError(folder, f"cannot create the reports folder: {(exc.strerror or 'exists').lower()}") from None
+    return folder / f"{run.name}.html"
+
+
+def report_target(path, *, runs=()):
+    """Where a report may be written: a new file, or an earlier report of ours.
+
+    The folder must exist (its symbolic links are followed); the file itself is judged
+    without following a link: a symbolic link, a folder, a device, a pipe and any file that
+    is not one of our reports are refused, so nothing but our own reports is ever replaced.
+
+    Parameters
+    ----------
+    path : path-like
+        The report file the user named (or the default one).
+    runs : iterable of path-like or None
+        Run folders the report must not be written into.
+
+    Returns
+    -------
+    pathlib.Path
+        The file to write (absolute; its folder resolved).
+
+    Raises
+    ------
+    OutputError
+        Naming the path and why it is refused.
+    """
+    given = Path(path)
+    out = Path(os.path.realpath(given.parent if str(given.parent) else ".")) / given.name
+    if not out.parent.is_dir():
+        raise OutputError(out.parent, "folder does not exist")
+    for run in runs:
+        if run is not None and out.is_relative_to(Path(run).resolve()):
+            raise OutputError(out, f"inside run folder {run}: finished runs are never modified")
+    if not os.access(out.parent, os.W_OK | os.X_OK):
+        raise OutputError(out, f"cannot write the report: permission denied (folder {out.parent} is not writable)")
+    if not os.path.lexists(out):
+        return out
+    if out.is_symlink():
+        why = "is a symbolic link"
+    elif out.is_dir():
+        why = "is a folder"
+    elif not out.is_file():
+        why = "is not a regular file (a device, pipe or socket)"
+    elif not is_our_report(out):
+        why = "exists and is not a quakefolio report"
+    else:
+        return out
+    raise OutputError(out, f"{why}; a report is written only to a new file or over an earlier report")

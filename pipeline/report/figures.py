@@ -426,3 +426,47 @@ def _ep_curve_figure(curve, rps, n_years, cur):
     _money_axis(ax, "y", cur)
     ax.legend(loc="upper left")
     return fig
+
+
+def _cms_figure(cms, uhs_of, site):
+    """Conditional mean spectra of one site beside its uniform-hazard spectra, one panel per return period.
+
+    Parameters
+    ----------
+    cms : pandas.DataFrame
+        ``conditional_mean_spectrum`` rows of the site with flag ``ok``.
+    uhs_of : callable(return_period_yr) -> (periods [s], values [g])
+        The site's mean uniform-hazard spectrum at a return period (PGA at 0.01 s).
+    site : str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.ticker import FuncFormatter
+
+    rps = sorted(set(cms.return_period_yr))
+    conds = sorted(set(cms.conditioning_im), key=_period_key)
+    fig = _new_figure(min(4.2 * len(rps) + 0.6, 10.2), 3.3)
+    axes = fig.subplots(1, len(rps), squeeze=False).ravel()  # own scale per return period
+    for ax, rp in zip(axes, rps):
+        t, u = uhs_of(rp)
+        ax.plot(t, u, color=_INK, marker="o", markersize=3, linewidth=1.2, label="uniform-hazard spectrum")
+        for k, im in enumerate(conds):
+            c = cms[(cms.return_period_yr == rp) & (cms.conditioning_im == im)].copy()
+            c["period"] = c.im.map(_period_key)
+            c = c.sort_values("period")
+            colour = _SERIES[k % len(_SERIES)]
+            mid = c.cms_g.to_numpy(float)
+            spread = np.exp(c.conditional_sigma.to_numpy(float))
+            ax.fill_between(c.period, mid / spread, mid * spread, color=colour, alpha=0.15, linewidth=0)
+            ax.plot(c.period, mid, color=colour, label=f"CMS | {im}")
+            ax.plot([_period_key(im)], [c.target_g.iloc[0]], marker="D", markersize=5, color=colour, linestyle="none")
+        ax.set_xscale("log")
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+        ax.set_xlabel("oscillator period [s] (PGA at 0.01 s)")
+        ax.set_title(f"{site}, {rp:,.0f} yr")
+        ax.set_ylim(bottom=0)
+    axes[0].set_ylabel("spectral acceleration [g]")
+    axes[-1].legend()
+    return fig

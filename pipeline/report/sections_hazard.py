@@ -1,5 +1,5 @@
 """Report section on the seismic hazard: curves at representative sites, uniform-hazard spectra,
-disaggregation."""
+conditional mean spectra, disaggregation."""
 from __future__ import annotations
 
 import numpy as np
@@ -9,6 +9,7 @@ from quakefolio.core.curves import rate_at_im
 from quakefolio.pipeline.report.context import _fractile_stats, _period_key
 from quakefolio.pipeline.report.figures import _disagg_figure, _figure_html, _hazard_curves_figure, _uhs_figure
 from quakefolio.pipeline.report.html import _cell, _finite, _note, _p, _table
+from quakefolio.pipeline.report.sections_spectrum import _cms_part
 
 
 def _ranking_im(run, ims):
@@ -195,7 +196,8 @@ def _disagg_part(run, chosen, rank_im):
 
 
 def _section_hazard(run):
-    """Section 2: hazard curves at the highest-, median- and lowest-hazard sites, spectra, disaggregation.
+    """Section 2: hazard curves at the highest-, median- and lowest-hazard sites, spectra (uniform-hazard and
+    conditional mean), disaggregation.
 
     Parameters
     ----------
@@ -234,5 +236,6 @@ def _section_hazard(run):
         f"Dotted lines: configured return periods T at 1/T. Grey region: rates below the rate floor "
         f"{floor:.0e}/yr, not reported as design values (not for design use)."))
     out += _uhs_part(run, stat, chosen, ims)
+    out += _cms_part(run, curves, chosen)
     out += _disagg_part(run, chosen, rank_im)
     return "".join(out)

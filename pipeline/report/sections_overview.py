@@ -186,9 +186,14 @@ def _logic_tree(run, tree):
             rows.append([br["id"] if k == 0 else "", _cell(f"{br['weight']:.3g}", br["weight"]) if k == 0 else "",
                          _cell(f"{br['ruptures']:,}", br["ruptures"]) if k == 0 else "", s.get("source_id", ""),
                          s.get("kind", ""), _cell(f"{s.get('n_ruptures', 0):,}", s.get("n_ruptures")),
-                         _cell(_g(s.get("total_rate"), 4), s.get("total_rate"))])
+                         _cell(_g(s.get("total_rate"), 4), s.get("total_rate")),
+                         ", ".join(f"{m:g}" for m in s.get("mags_capped", []))])
     out = [_table(["source-model branch", "weight#", "ruptures#", "source", "kind", "ruptures#",
-                   "total rate [1/yr]#"], rows)]
+                   "total rate [1/yr]#", "ruptures capped at the fault (M)"], rows)]
+    if any(s.get("mags_capped") for br in tree.get("source_branches", []) for s in br.get("sources", [])):
+        out.append(_p("Ruptures capped at the fault: the Wells & Coppersmith (1994) rupture of these magnitudes is "
+                      "longer than the fault; it is cut to the fault length and keeps its rate, so the fault releases "
+                      "the magnitude over less area than the scaling relation gives."))
     rows = [[g["id"], _cell(f"{g['weight']:.3g}", g["weight"])] for g in tree.get("gmm_branches", [])]
     out.append(_table(["ground-motion branch", "weight#"], rows))
     trunc = hz.get("truncation_sigma")

@@ -34,12 +34,13 @@ import numpy as np
 from quakefolio.pipeline.io.store import atomic_write_bytes
 from quakefolio.pipeline.stages import events as ps
 from quakefolio.pipeline.stages import hazard as hs
+from quakefolio.pipeline.stages import spectrum
 from quakefolio.pipeline.stages.damage import compute_block
 from quakefolio.pipeline.stages.inputs import load_inputs, stage_cache, with_hazard
 from quakefolio.pipeline.stages.products import RunRef
 
 __all__ = ["register", "register_events", "resolve", "publish_hazard", "work_folder", "hazard_task",
-           "disagg_task", "damage_task", "event_task", "clear", "resolved_runs"]
+           "disagg_task", "spectrum_task", "damage_task", "event_task", "clear", "resolved_runs"]
 
 #: Runs whose products one process keeps at once.
 KEEP_RUNS = 2
@@ -260,6 +261,27 @@ def disagg_task(ref, block):
     inputs = resolve(ref)
     return hs.disagg_block(inputs.hazard_model, inputs.hazard, inputs.config.hazard.return_periods_yr, block,
                            stage_cache(inputs))
+
+
+def spectrum_task(ref, block):
+    """:func:`quakefolio.pipeline.stages.spectrum.spectrum_block` for one site slice (needs the computed hazard).
+
+    Parameters
+    ----------
+    ref : RunRef
+        The run, with ``hazard_file`` set in other processes (:func:`publish_hazard`).
+    block : tuple (lo, hi)
+        Site slice [lo, hi) of the hazard sites.
+
+    Returns
+    -------
+    SiteBlockResult
+        Spectral sums ``(n_cond, n_block_sites, n_rp, 2, n_periods)`` and disaggregation moments.
+    """
+    inputs = resolve(ref)
+    hz = inputs.config.hazard
+    return spectrum.spectrum_block(inputs.hazard_model, inputs.hazard, spectrum.conditioning_ims(inputs.config),
+                                   hz.cms_return_periods_yr, hz.rate_floor, block, stage_cache(inputs))
 
 
 def damage_task(ref, block):

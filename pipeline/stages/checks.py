@@ -165,7 +165,7 @@ def check_class_hazard(dss, levels_of, library_path, lines, *, reject_crossing, 
     ------
     InputError
         Naming the library file, the class's ``im`` line or the upper crossing state's
-        ``beta`` line.
+        ``beta`` line; or the hazard file where its curves cannot give the class's IM.
     """
     code = dss.class_code
     of_alternative = "" if alternative is None else f" (new_class of alternative {alternative!r})"
@@ -174,6 +174,9 @@ def check_class_hazard(dss, levels_of, library_path, lines, *, reject_crossing, 
     except UnavailableIM as exc:
         raise InputError(library_path, f"class {code!r}{of_alternative}: {exc}",
                          row=lines.row(library_path, ("classes", code), "im"), column=f"classes.{code}.im") from None
+    except InputError as exc:  # located in the hazard file: say which class needed the IM
+        raise InputError(exc.path, f"{exc.message} (needed by class {code!r}{of_alternative})", row=exc.row,
+                         column=exc.column) from None
     if reject_crossing and levels is not None:
         try:
             dss.check_crossing(float(np.min(levels)), float(np.max(levels)))

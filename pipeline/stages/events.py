@@ -33,7 +33,8 @@ from quakefolio.core.events.losses import (
 from quakefolio.core.events.gmf import FieldSampler
 from quakefolio.core.events.programme import GroupSums, chunk_programme_loss
 from quakefolio.core.events.secondary import correlation_effect
-from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
+from quakefolio.core.events.motion import event_ground_motion, event_ln_im
+from quakefolio.core.hazard import weighted_sum
 from quakefolio.core.loss import expected_annual_loss, expected_annual_net_loss
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
 from quakefolio.pipeline.stages import event_branches as eb
@@ -210,7 +211,8 @@ def prepare_events(inputs):
         classes.append((code, assets, model.ims.index(dss.im), dss, usites, pair))
     sampler = FieldSampler(inputs.hazard.lon[used], inputs.hazard.lat[used], model.ims,
                            spatial_correlation=pf.spatial_correlation,
-                           cross_im_correlation=pf.cross_im_correlation, vs30_clustering=pf.vs30_clustering)
+                           cross_im_correlation=pf.cross_im_correlation,
+                           vs30_clustering=pf.correlation_range == "clustered_site_conditions")
     per_task = max(1, int(np.ceil(cfg.execution.event_block_size / EVENT_BLOCK_SIZE)))
     group_names, group = _groups(ex, pf.secondary_group)
     return EventModel(

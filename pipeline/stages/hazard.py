@@ -24,7 +24,8 @@ from quakefolio.pipeline.io.cache import digest
 from quakefolio.pipeline.io.ingest import HazardCurves
 from quakefolio.pipeline.stages.checks import LibraryLines, check_class_hazard, model_periods
 from quakefolio.pipeline.stages.products import SiteBlockResult, frozen_mapping
-from quakefolio.pipeline.io.source_model import load_source_model
+from quakefolio.pipeline.io.source_model import count_source_model, load_source_model
+from quakefolio.pipeline.stages.sizes import check_hazard_work, rupture_limit
 
 __all__ = ["HazardModel", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "with_branch_curves",
            "disagg_block", "combine_disaggregation", "statistic_name", "branch_weights",
@@ -56,7 +57,8 @@ class HazardModel:
     source_branches : tuple of (id, weight, SourceModel)
     gmm_branches : tuple of (id, weight, ground-motion model)
     ims : list of str
-        IMs computed (configured ones and those the fragility classes need), by period.
+        IMs computed (configured ones, those the fragility classes need and the conditioning IMs
+        of the conditional mean spectrum), by period.
     levels_g : ndarray (n_levels,) [g]
         IM levels of every curve.
     truncation_sigma : float or None
@@ -81,6 +83,10 @@ class HazardModel:
     disagg_moments : ndarray (n_im, n_sites, n_rp, 5) or None
         Exact rate-weighted sums over (site, rupture) pairs for the mean magnitude,
         distance and epsilon (:data:`quakefolio.core.hazard.DISAGG_MOMENTS`), once computed.
+    spectrum_sums, spectrum_moments : ndarray or None
+        Conditional mean spectrum: weighted sums (n_cond, n_sites, n_rp, 2, n_periods) and
+        disaggregation moments (n_cond, n_sites, n_rp, 5) at each target, once computed
+        (:mod:`quakefolio.pipeline.stages.spectrum`).
     bins : DisaggBins
     digest : str
         Content digest of everything a site's hazard depends on except the site.
@@ -103,6 +109,8 @@ class HazardModel:
     bins: DisaggBins = field(default_factory=DisaggBins.default)
     digest: str = ""
     disagg_moments: np.ndarray | None = None
+    spectrum_sums: np.ndarray | None = None
+    spectrum_moments: np.ndarray | None = None
 
 
 def build_sites(exposure, spacing_km, default_vs30):
@@ -149,11 +157,12 @@ def build_sites(exposure, spacing_km, default_vs30):
     return ids, site_lon, site_lat, site_vs30, site_index, dist, ref
 
 
-def prepare_compute(config, exposure, library, lines=None):
+def prepare_compute(config, exposure, library, lines=None, budget=None):
     """Validate the compute-mode inputs and build the sites (no hazard computed yet).
 
     Reads every source-model branch, resolves the ground-motion model branches, adds the
-    IMs the exposure's fragility classes need to the configured ones (sorted by period),
+    IMs the exposure's fragility classes need and the conditioning IMs of the conditional mean
+    spectrum to the configured ones (sorted by period),
     checks that every ground-motion model covers those periods and builds the sites
     (:func:`build_sites`).  The class check is
     :func:`quakefolio.pipeline.stages.checks.check_class_hazard`.
@@ -168,6 +177,9 @@ def prepare_compute(config, exposure, library, lines=None):
         The fragility classes.
     lines : quakefolio.pipeline.stages.checks.LibraryLines, optional
         Line locator of the library files (a new one if not given).
+    budget : quakefolio.pipeline.stages.sizes.Budget, optional
+        Memory budget: a source model whose rupture count cannot fit it is refused before
+        its ruptures are built (:func:`quakefolio.pipeline.stages.sizes.rupture_limit`).
 
     Returns
     -------
@@ -187,17 +199,21 @@ def prepare_compute(config, exposure, library, lines=None):
         library file and the class), or a source model is invalid.
     """
     hz = config.hazard
+    used = sorted(set(exposure.building_class))
+    needed = {library[c].im for c in used}
+    ims = sorted(set(hz.ims) | needed | set(hz.cms_conditioning_ims), key=im_period)
+    ids, lon, lat, vs30, site_index, dist, ref = build_sites(exposure, hz.site_spacing_km, hz.default_vs30_mps)
+    if budget is not None:  # count first: what cannot fit is refused before any rupture is built
+        limit = rupture_limit(config, len(ims), budget)
+        counts = [count_source_model(branch["file"], limit) for branch in hz.source_models]
+        check_hazard_work(config, counts, len(ids), len(ims), budget)
     sources = []
     for branch in hz.source_models:
         sources.append((branch["id"], branch["weight"], load_source_model(branch["file"])))
     gmms = [(b["id"], b["weight"], get_gmm(b["model"])) for b in hz.gmm_branches]
-    used = sorted(set(exposure.building_class))
-    needed = {library[c].im for c in used}
-    ims = sorted(set(hz.ims) | needed, key=im_period)
     lines = lines or LibraryLines()
     for code in used:
         check_class_hazard(library[code], model_periods(gmms), config.fragility.library, lines, reject_crossing=False)
-    ids, lon, lat, vs30, site_index, dist, ref = build_sites(exposure, hz.site_spacing_km, hz.default_vs30_mps)
     levels = np.asarray(hz.im_levels_g, dtype=float)
     model_digest = digest(
         "hazard-model", [(bid, w, src.sha256) for bid, w, src in sources], [(g, w) for g, w, _ in gmms], ims,

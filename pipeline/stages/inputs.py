@@ -14,9 +14,13 @@ from quakefolio.pipeline.io.cache import StageCache
 from quakefolio.pipeline.io.config import load_config, sha256_file
 from quakefolio.pipeline.io.group_terms import group_terms_for
 from quakefolio.pipeline.io.ingest import map_assets_to_sites, read_exposure, read_hazard_curves
+from quakefolio.pipeline.io.output_folder import check_output_folder
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 from quakefolio.pipeline.stages.hazard import prepare_compute
+from quakefolio.pipeline.stages.plausibility import input_warnings
 from quakefolio.pipeline.stages.products import RunInputs, frozen_mapping
+from quakefolio.pipeline.stages.spectrum import check_spectrum_settings
+from quakefolio.pipeline.stages.sizes import check_work, estimate_work, memory_budget
 from quakefolio.pipeline.stages.whatif import validate as validate_alternatives
 
 __all__ = ["RunInputs", "load_inputs", "inputs_digest", "stage_cache", "with_hazard", "unique_pairs"]
@@ -57,10 +61,16 @@ def stage_cache(inputs):
 def load_inputs(config_or_path):
     """Read and validate every input of a run; raise InputError at the first problem.
 
+    The size of the work is estimated before any stage runs and a run that cannot fit the
+    memory budget is refused, naming the key (:mod:`quakefolio.pipeline.stages.sizes`); the
+    estimate is kept as ``work``.
+
     Ingest mode reads the tabulated curves and maps assets to the nearest site; compute
     mode reads the source models and builds hazard sites from the exposure (the curves
     are computed later by :mod:`quakefolio.pipeline.stages.hazard`).  Cross-file checks
-    (class IMs available, curves do not cross, retrofit alternatives) run here, once.
+    (class IMs available, curves do not cross, retrofit alternatives) run here, once, and
+    the located warnings about doubtful inputs are gathered
+    (:func:`quakefolio.pipeline.stages.plausibility.input_warnings`).
 
     Parameters
     ----------
@@ -71,6 +81,8 @@ def load_inputs(config_or_path):
     RunInputs
     """
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
+    folder_warnings = check_output_folder(config)  # where the run may write; nothing is written here
+    budget = memory_budget()
     hz, ex, fr = config.hazard, config.exposure, config.fragility
     library = load_library(fr.library)
     exposure = read_exposure(ex.file, library, config.portfolio.secondary_group)
@@ -92,7 +104,8 @@ def load_inputs(config_or_path):
                                                exposure_path=ex.file)
         levels_of = TabulatedLevels(hazard, hz.period_interpolation)
     else:
-        model, hazard, site_index, dist = prepare_compute(config, exposure, library, lines)
+        check_spectrum_settings(config)
+        model, hazard, site_index, dist = prepare_compute(config, exposure, library, lines, budget)
         for bid, _, src in model.source_branches:
             hashes[f"source_model:{bid}"] = {"path": src.path, "sha256": src.sha256}
         levels_of = computed_levels(model, config.path)
@@ -101,6 +114,8 @@ def load_inputs(config_or_path):
     if model is None:
         hazard = levels_of.hazard  # with the curves interpolated across periods for the classes
     warnings = [group_warning] if group_warning else []
+    warnings += input_warnings(config, library, exposure, hazard, site_index, dist, model)
+    warnings += folder_warnings
     if hazard.interpolated:
         warnings.append(f"hazard interpolated across periods for {', '.join(sorted(hazard.interpolated))} "
                         "(log-log between neighbouring tabulated periods)")
@@ -110,8 +125,10 @@ def load_inputs(config_or_path):
     if model is None:  # the new classes' IMs, interpolated as the checks did
         for alt in alternatives:
             hazard = hazard.with_im(alt.dss.im, allow_interpolation=hz.period_interpolation)
+    work = estimate_work(draft, unique_pairs(draft), budget)
+    check_work(draft, work)  # before any stage: what cannot fit is refused here, naming the key
     return replace(draft, hazard=hazard, input_hashes=frozen_mapping(hashes),
-                   inputs_sha256=inputs_digest(hashes, config), group_terms=group_terms)
+                   inputs_sha256=inputs_digest(hashes, config), group_terms=group_terms, work=work)
 
 
 def with_hazard(inputs, model, hazard):

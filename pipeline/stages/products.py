@@ -93,6 +93,8 @@ class RunInputs:
         hazard stage) branch curves, statistics and disaggregation.
     group_terms : quakefolio.core.events.programme.GroupTerms or None
         ``[programme] group_terms_file`` with the exposure's ``terms_group`` column.
+    work : quakefolio.pipeline.stages.sizes.WorkSize or None
+        The estimated size of the run's work (counts and peak memory per stage).
     """
 
     config: object
@@ -106,6 +108,7 @@ class RunInputs:
     warnings: tuple = ()
     hazard_model: object = None
     group_terms: object = None  # quakefolio.core.events.programme.GroupTerms or None
+    work: object = None  # quakefolio.pipeline.stages.sizes.WorkSize or None
 
 
 @dataclass(frozen=True)

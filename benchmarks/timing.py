@@ -1,0 +1,61 @@
+"""Shared timing for the ratio benchmarks: interleaved runs in one process, medians of ratios.
+
+The machine the benchmarks run on is shared and noisy, so absolute times mean little; what
+counts is the ratio of a computation to its baseline measured side by side.  Every repeat
+runs each candidate once, in the same order, right after one another; the ratio of each
+repeat is taken, and the median over repeats is reported (with the spread).  Times are the
+process's CPU time (``time.process_time``): time spent waiting for a core while other jobs
+run is not counted (every candidate timed here runs on one thread).
+
+A result row is printed as ``row: <name>: <ratio>x (target <= <t>x) ok|MISSED``;
+``run_all.py`` collects these lines into the summary at the end of ``make bench``.
+"""
+from __future__ import annotations
+
+import os
+import time
+
+import numpy as np
+
+#: repeats per measurement (``BENCH_REPEATS`` overrides; at least 3)
+REPEATS = max(3, int(os.environ.get("BENCH_REPEATS", "5")))
+
+
+def interleaved(candidates, repeats=REPEATS):
+    """CPU times [s] of each candidate over ``repeats`` interleaved rounds.
+
+    Parameters
+    ----------
+    candidates : dict of str to callable
+        Called without arguments, in dict order, once per round.
+    repeats : int
+
+    Returns
+    -------
+    dict of str to ndarray, shape (repeats,)
+    """
+    times = {name: np.empty(repeats) for name in candidates}
+    for r in range(repeats):
+        for name, fn in candidates.items():
+            t0 = time.process_time()
+            fn()
+            times[name][r] = time.process_time() - t0
+    return times
+
+
+def ratio(times, name, base):
+    """Median and range over rounds of ``times[name] / times[base]``."""
+    r = times[name] / times[base]
+    return float(np.median(r)), float(r.min()), float(r.max())
+
+
+def row(label, stats, target=None, above=False):
+    """Print one result row; ``target`` is an upper bound (a lower one if ``above``)."""
+    med, lo, hi = stats
+    spread = f"[{lo:.2f}-{hi:.2f} over {REPEATS} rounds]"
+    if target is None:
+        print(f"row: {label}: {med:.2f}x {spread}", flush=True)
+        return
+    ok = med >= target if above else med <= target
+    sign = ">=" if above else "<="
+    print(f"row: {label}: {med:.2f}x (target {sign} {target:g}x) {'ok' if ok else 'MISSED'} {spread}", flush=True)

@@ -1,0 +1,98 @@
+"""The numerical kernels' shortcuts change no bit, and the benchmark's reference agrees with the kernel.
+
+* Risk convolution (:mod:`quakefolio.core.risk`): results do not depend on the row
+  blocking, bit for bit.
+* Hazard engine (:mod:`quakefolio.core.hazard`): evaluating the truncated exceedance only
+  inside :func:`truncation_window` gives exactly the full formula; the curves do not depend
+  on the pass size, bit for bit.
+* ``benchmarks/reference_risk.py`` (the tight plain-numpy version of the same integral,
+  telescoped closed form, Cornell et al. 2002 Eq. 11 per piece) agrees with
+  :func:`damage_state_rates` to 1e-12 relative.
+No timing here: speed is measured by ``benchmarks/`` only.
+"""
+import importlib.util
+
+import numpy as np
+import pytest
+from scipy.special import ndtr
+
+from conftest import REPO
+from quakefolio.core.hazard import exceedance_probability, hazard_from_pairs, truncation_window
+from quakefolio.core.risk import _convolve, damage_state_rates, risk_disaggregation
+
+
+def _reference_module():
+    spec = importlib.util.spec_from_file_location("reference_risk", REPO / "benchmarks" / "reference_risk.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def _curves(rng, n, m=40, zero_tail=False):
+    """Curved hazard curves on a shared level grid (invented), optionally ending at zero rates."""
+    levels = np.geomspace(5e-4, 4.0, m)
+    lnx = np.log(levels / rng.uniform(0.3, 3.0, (n, 1)))
+    rates = np.minimum.accumulate(np.minimum(np.exp(-4.6 - 1.6 * lnx - 0.12 * lnx ** 2), 0.5), axis=1)
+    if zero_tail:
+        rates[np.arange(m) >= rng.integers(2, m + 1, n)[:, None]] = 0.0
+    return levels, rates
+
+
+def test_reference_agrees_with_the_kernel():
+    # Two evaluations of the exact integral: per segment with log-space power terms
+    # (kernel) and telescoped into positive terms only (reference); only round-off differs.
+    rng = np.random.default_rng(7)
+    levels, rates = _curves(rng, 60)
+    ref = _reference_module()
+    for medians, betas in [([0.1, 0.3, 0.9, 2.5], [0.6] * 4), ([0.05, 0.4, 1.5, 4.0], [0.3, 0.5, 0.8, 1.2])]:
+        got = damage_state_rates(levels, rates, np.array(medians), np.array(betas))
+        expected = ref.damage_state_rates_reference(levels, rates, np.array(medians), np.array(betas))
+        np.testing.assert_allclose(got, expected, rtol=1e-12, atol=0)
+
+
+@pytest.mark.parametrize("zero_tail", [False, True])
+def test_risk_results_do_not_depend_on_blocking(zero_tail):
+    rng = np.random.default_rng(11)
+    levels, rates = _curves(rng, 37, m=23, zero_tail=zero_tail)
+    lnx = np.log(np.broadcast_to(levels, rates.shape))
+    ln_theta, beta = np.log([0.08, 0.3, 1.1]), np.array([0.35, 0.6, 0.9])
+    whole = _convolve(lnx, rates, ln_theta, beta, segments=True)
+    for block in (1, 70, 500):
+        parts = _convolve(lnx, rates, ln_theta, beta, segments=True, block_values=block)
+        for a, b in zip(whole, parts):
+            assert np.array_equal(a, b)
+    # the sum over segments is the sum of the same per-segment values
+    shares = risk_disaggregation(levels, rates, np.exp(ln_theta), beta)
+    assert shares.shape == (37, 3, 24)
+
+
+@pytest.mark.parametrize("n", [0.5, 1.0, 2.0, 3.0, 4.5, 6.0, 8.0, 40.0])
+def test_truncation_window_changes_no_bit(n):
+    # Outside the window the clipped value is exactly 0 or 1; inside, Phi is evaluated as
+    # in the full formula clip((Phi(z) - Phi(-n)) / (1 - 2 Phi(-n)), 0, 1).
+    lo, hi = truncation_window(n)
+    edges = [e for e in (lo, hi, -n, n) if np.isfinite(e)]
+    z = np.concatenate([e + np.linspace(-1e-5, 1e-5, 4001) for e in edges] + [np.linspace(-60, 60, 4001)])
+    mu, sd = z * 0.7, np.full(z.size, 0.7)
+    full = ndtr((mu[:, None] - np.zeros(1)) * (1.0 / sd[:, None]))
+    pn = ndtr(-n)
+    full -= pn
+    full *= 1.0 / (1.0 - 2.0 * pn)
+    np.clip(full, 0.0, 1.0, out=full)
+    got = exceedance_probability(np.zeros(1), mu, sd, n)
+    assert np.array_equal(got, full)
+
+
+def test_hazard_curves_do_not_depend_on_the_pass_size():
+    rng = np.random.default_rng(3)
+    counts = rng.integers(1, 400, 25)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    n_pairs = int(counts.sum())
+    mu, sd = rng.uniform(-7, 0, n_pairs), rng.uniform(0.0, 0.8, n_pairs)
+    rate = rng.uniform(1e-5, 1e-3, n_pairs)
+    lnx = np.log(np.geomspace(1e-3, 3.0, 30))
+    owners = np.arange(25) * 2
+    for trunc in (None, 3.0):
+        whole = hazard_from_pairs(lnx, mu, sd, rate, starts, owners, 50, trunc, chunk=n_pairs)
+        for chunk in (1, 150, 1000):
+            assert np.array_equal(hazard_from_pairs(lnx, mu, sd, rate, starts, owners, 50, trunc, chunk=chunk), whole)
