@@ -93,8 +93,9 @@ def test_event_ground_motion_equals_the_previous_stage_code(seed):
     gmms = [get_gmm("BSSA14"), get_gmm("CB14")]
     ims = ["PGA", "SA_0.3", "SA_1.0"]
     n_ev = int(rng.integers(1, 200))
-    ev_rup = np.sort(rng.integers(0, len(rs), n_ev))
+    ev_rup = rng.integers(0, len(rs), n_ev)  # in no order, as the events of a chunk
     g_ev = rng.integers(0, 1 + seed % 2, n_ev)  # seed 0, 2: one model only
+    ev_rup[-1], g_ev[-1] = ev_rup[0], g_ev[0]  # at least one (model, rupture) drawn twice: rows copied
     args = (lon, lat, vs30, rs, ev_rup, g_ev, gmms, ims)
     want = _reference_ground_motion(*args, 60.0, "california", (10.3, 20.0))
     # each model only on the ruptures of its events, in passes of a few ruptures: the same values

@@ -50,6 +50,18 @@ def _scatter(out, values, events, sites):
         flat[at + i * n_sites] = values[i]
 
 
+def _copy_rows(order, first, arrays, rows_per_pass=256):
+    """Each event's rows copied from the first event of its slot (``order``, ``first`` of
+    :func:`_slot_events`), a few rows at a time (bounded temporaries)."""
+    lead = np.empty_like(order)
+    lead[order] = np.repeat(order[first[:-1]], np.diff(first))
+    later = np.flatnonzero(lead != np.arange(lead.size))
+    for lo in range(0, later.size, rows_per_pass):
+        rows = later[lo:lo + rows_per_pass]
+        for out in arrays:
+            out[rows] = out[lead[rows]]
+
+
 def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, event_gmm, gmms, ims, *,
                         max_distance_km=200.0, region="global", ref, pair_block=EVENT_PAIR_BLOCK):
     r"""Ln median [ln g], tau and phi [ln units] of each event's ground motion at each site.
@@ -87,7 +99,8 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     computed once per distinct rupture of the events, a group of ruptures at a time
     (about ``pair_block`` pairs).
     Each model is evaluated only on the pairs of the ruptures of the events that drew it,
-    once per distinct (model, rupture), and its values are written to those events.
+    once per distinct (model, rupture); its values are written to the first event of that
+    (model, rupture) and copied, a whole row at a time, to the others.
     Distances and models are elementwise, so every value is the one of any other
     grouping (and of :func:`quakefolio.core.hazard.rupture_ground_motion`).  The event field is then
     :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
@@ -125,14 +138,11 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
             slot_of = np.full(group.size, -1)
             slot_of[rank[slot_u[mine]] - lo] = mine  # the model's slot of each rupture of the group
             p = np.flatnonzero(slot_of[ri] >= 0)
-            res = gmms[g].evaluate(inp.take(p), ims)
-            k = slot_of[ri[p]]
-            n_ev = first[k + 1] - first[k]
-            col = np.repeat(np.arange(p.size), n_ev)  # one column per (pair, event of its slot)
-            events = order[np.repeat(first[k], n_ev) + np.arange(col.size) - np.repeat(np.cumsum(n_ev) - n_ev, n_ev)]
-            sites = si[p][col]
+            res = gmms[g].evaluate(inp if p.size == ri.size else inp.take(p), ims)
+            events, sites = order[first[slot_of[ri[p]]]], si[p]  # the first event of each pair's slot
             for out, values in ((mu, res.ln_median), (tau, res.tau), (phi, res.phi)):
-                _scatter(out, values if col.size == p.size else values[:, col], events, sites)
+                _scatter(out, values, events, sites)
+    _copy_rows(order, first, (mu, tau, phi))
     return mu, tau, phi
 
 
