@@ -45,8 +45,9 @@ import scipy.sparse as sp
 from scipy.special import ndtr, ndtri
 
 from quakefolio.core.curves import im_at_rate
-from quakefolio.core.events.gmf import ln_im
-from quakefolio.core.pairs import block_pairs, model_input, pair_blocks, pair_segments, pair_values, region_parts
+from quakefolio.core.pairs import (
+    block_pairs, check_event_model, model_input, pair_blocks, pair_segments, pair_values, region_parts,
+)
 
 __all__ = [
     "exceedance_probability",
@@ -66,8 +67,6 @@ __all__ = [
     "compute_site_hazard",
     "compute_disaggregation",
     "rupture_ground_motion",
-    "event_ground_motion",
-    "event_ln_im",
 ]
 
 
@@ -705,14 +704,8 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
         wanted = [int(g) for g in wanted]
         if not wanted:
             continue
-        name = TECTONIC_REGIONS[code]
         for g in wanted:
-            if not gmms[g].has_tau_phi:
-                raise ValueError(f"{gmms[g].name}: the model gives only a total sigma; event ground motion needs "
-                                 "its between- and within-event parts (tau, phi)")
-            if name not in getattr(gmms[g], "tectonic_regions", TECTONIC_REGIONS[:1]):
-                raise ValueError(f"{gmms[g].name} is not a model of the {name} region of the ruptures it is to "
-                                 "evaluate")
+            check_event_model(gmms[g], TECTONIC_REGIONS[code])
         idx = np.flatnonzero(codes == code)
         part = ruptures if idx.size == codes.size else ruptures.subset(idx)
         si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, part, max_distance_km, ref, region,
@@ -725,68 +718,3 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
             tau[g][:, si, idx[ri]] = res.tau
             phi[g][:, si, idx[ri]] = res.phi
     return mu, tau, phi
-
-
-def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, event_gmm, gmms, ims, *,
-                        max_distance_km=200.0, region="global", ref, site_fields=None):
-    r"""Ln median [ln g], tau and phi [ln units] of each event's ground motion at each site.
-
-    Parameters
-    ----------
-    site_lon, site_lat, site_vs30 : ndarray, shape (n_sites,) [deg], [deg], [m/s]
-    ruptures : quakefolio.core.sources.ruptures.RuptureSet
-    event_rupture : ndarray of int, shape (n_events,)
-        Rupture of each event (index into ``ruptures``).
-    event_gmm : ndarray of int, shape (n_events,)
-        Ground-motion model of each event (index into ``gmms``; a model of the tectonic
-        region of the event's rupture).
-    gmms : sequence of ground-motion models
-    ims : sequence of str
-    max_distance_km, region, ref, site_fields
-        As :func:`rupture_ground_motion`.
-
-    Returns
-    -------
-    ln_median, tau, phi : ndarray, shape (n_events, n_ims, n_sites)
-        ``-inf`` median and zero tau, phi beyond the integration distance.
-
-    Notes
-    -----
-    Each distinct rupture of the events is evaluated once, with only the models the
-    events of its tectonic region use (:func:`rupture_ground_motion`); the event field is
-    then :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
-    :func:`quakefolio.core.events.gmf.ln_im`).
-    """
-    ev_rup = np.asarray(event_rupture)
-    g_ev = np.asarray(event_gmm)
-    uniq, inv = np.unique(ev_rup, return_inverse=True)
-    subset = ruptures.subset(uniq)
-    code = subset.region_code[inv]
-    evaluate = {int(c): np.unique(g_ev[code == c]) for c in np.unique(code)}
-    mu, tau, phi = rupture_ground_motion(site_lon, site_lat, site_vs30, subset, gmms, list(ims),
-                                         max_distance_km=max_distance_km, region=region, ref=ref,
-                                         evaluate=evaluate, site_fields=site_fields)
-    # (n_ev, n_im, n_sites): gather each event's model and rupture
-    return mu[g_ev, :, :, inv], tau[g_ev, :, :, inv], phi[g_ev, :, :, inv]
-
-
-def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):
-    r"""ln IM [ln g] of sampled events; ``-inf`` (no ground motion) beyond the integration distance.
-
-    Parameters
-    ----------
-    ln_median, tau, phi : ndarray, shape (n_events, n_ims, n_sites)
-        From :func:`event_ground_motion` (``-inf`` median beyond the integration distance).
-    eta : ndarray, shape (n_events, n_ims) [-]
-    eps : ndarray, shape (n_events, n_ims, n_sites) [-]
-        Standard-normal residuals (:class:`quakefolio.core.events.gmf.FieldSampler`).
-    truncation_sigma : float or None
-
-    Returns
-    -------
-    ndarray, shape (n_events, n_ims, n_sites) [ln g]
-        :func:`quakefolio.core.events.gmf.ln_im` where the median is finite, ``-inf`` elsewhere.
-    """
-    with np.errstate(invalid="ignore"):
-        out = ln_im(np.where(np.isfinite(ln_median), ln_median, 0.0), tau, phi, eta, eps, truncation_sigma)
-    return np.where(np.isfinite(ln_median), out, -np.inf)

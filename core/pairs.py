@@ -20,7 +20,7 @@ from quakefolio.core.gmm import TECTONIC_REGIONS, GmmInput
 from quakefolio.core.sources.geometry import aeqd_forward, mean_position, pair_distances, rupture_distances, site_rupture_mask
 
 __all__ = ["DENSE_SHARE", "pair_segments", "block_pairs", "pair_blocks", "pair_values", "hypocentres_km",
-           "extra_fields", "region_parts", "model_input"]
+           "extra_fields", "region_parts", "model_input", "check_event_model"]
 
 #: Index of the intraslab region in :data:`quakefolio.core.gmm.TECTONIC_REGIONS`.
 _INTRASLAB = TECTONIC_REGIONS.index("subduction_intraslab")
@@ -372,3 +372,26 @@ def model_input(inp, gmm):
     if vs30.min(initial=lo) >= lo and vs30.max(initial=hi) <= hi:
         return inp
     return replace(inp, vs30_mps=np.clip(vs30, lo, hi))
+
+
+def check_event_model(gmm, region_name):
+    """Refuse a model for the event ground motion of ruptures of the tectonic region ``region_name``.
+
+    Parameters
+    ----------
+    gmm : ground-motion model
+    region_name : str
+        A name of :data:`quakefolio.core.gmm.TECTONIC_REGIONS`.
+
+    Raises
+    ------
+    ValueError
+        If the model gives only a total sigma (``has_tau_phi`` False: the fields need its
+        between- and within-event parts), or is not made for the region
+        (``tectonic_regions``; a model without it is an active-crustal one).
+    """
+    if not gmm.has_tau_phi:
+        raise ValueError(f"{gmm.name}: the model gives only a total sigma; event ground motion needs "
+                         "its between- and within-event parts (tau, phi)")
+    if region_name not in getattr(gmm, "tectonic_regions", TECTONIC_REGIONS[:1]):
+        raise ValueError(f"{gmm.name} is not a model of the {region_name} region of the ruptures it is to evaluate")

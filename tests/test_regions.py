@@ -67,7 +67,7 @@ def test_event_ground_motion_takes_each_region_with_its_own_models():
     # (hypocentral distance, intraslab, backarc), the same as the classical engine's pairs
     # (compute_site_hazard's closed form, Cornell 1968, in tests/test_gmm_oracle_regions.py).
     from quakefolio.core.gmm import GmmInput
-    from quakefolio.core.hazard import event_ground_motion
+    from quakefolio.core.events.motion import event_ground_motion
 
     crust = _point("c")
     slab = _point("s", 60.0, (40.0, 80.0)).with_region("subduction_intraslab")
@@ -227,3 +227,55 @@ def test_manifest_records_the_site_inputs(slab_config):
     assert rec["backarc_sites"] == n - 1
     assert set(rec["vs30_clamped_sites"]) == {"BSSA14", "CB14", "AG16"} and not any(rec["vs30_clamped_sites"].values())
     assert rec["basin_depth_rules"]["AG16"] == "no basin term" and rec["basin_depth_rules"]["CB14"].startswith("z2p5_km")
+
+
+def _reference_event_motion(lon, lat, vs30, rs, ev_rup, g_ev, models, ims, fields):
+    """The event ground motion of the code before the per-model pass (every distinct rupture
+    evaluated with every model its region's events drew, then gathered per event)."""
+    uniq, inv = np.unique(ev_rup, return_inverse=True)
+    subset = rs.subset(uniq)
+    code = subset.region_code[inv]
+    evaluate = {int(c): np.unique(g_ev[code == c]) for c in np.unique(code)}
+    mu, tau, phi = rupture_ground_motion(lon, lat, vs30, subset, models, ims, max_distance_km=300.0,
+                                         ref=(10.0, 20.0), evaluate=evaluate, site_fields=fields)
+    return mu[g_ev, :, :, inv], tau[g_ev, :, :, inv], phi[g_ev, :, :, inv]
+
+
+def test_event_ground_motion_of_regions_equals_the_whole_rupture_evaluation():
+    # Crustal, interface and intraslab ruptures in one chunk, site fields (basin depths with NaN,
+    # backarc) and Vs30 outside the models' ranges (clamped per model): the per-model passes give
+    # every value bit for bit as the evaluation of every rupture with its region's drawn models.
+    from quakefolio.core.events.motion import event_ground_motion
+
+    rng = np.random.default_rng(11)
+    crust = [point_source_ruptures(f"c{i}", 10.0 + 0.3 * i, 20.0 - 0.2 * i, mfd=single_magnitude(5.5 + 0.4 * i, 0.01),
+                                   hypo_depths=[(8.0, 1.0)], mechanisms=[(30.0 * i, 60.0, -90.0 + 90 * i, 1.0)],
+                                   upper_depth_km=0.0, lower_depth_km=20.0) for i in range(3)]
+    inter = _point("i", 30.0, (20.0, 45.0)).with_region("subduction_interface")
+    slab = _point("s", 70.0, (50.0, 90.0)).with_region("subduction_intraslab")
+    rs = RuptureSet.concat(crust + [inter, slab])
+    n_sites = 9
+    lon, lat = rng.uniform(9.5, 11.0, n_sites), rng.uniform(19.5, 20.5, n_sites)
+    vs30 = np.array([100.0, 180.0, 300.0, 400.0, 760.0, 1200.0, 2500.0, 500.0, 250.0])
+    fields = {"z1p0_km": np.where(rng.uniform(size=n_sites) < 0.3, np.nan, rng.uniform(0.01, 0.6, n_sites)),
+              "z2p5_km": rng.uniform(0.5, 4.0, n_sites), "backarc": (rng.uniform(size=n_sites) < 0.5).astype(float)}
+    models = [get_gmm("BSSA14"), get_gmm("CB14"), get_gmm("AG16")]
+    ims = ["PGA", "SA_0.3", "SA_1.0"]
+    n_ev = 60
+    ev_rup = rng.integers(0, len(rs), n_ev)
+    sub = rs.region_code[ev_rup] > 0
+    g_ev = np.where(sub, 2, rng.integers(0, 2, n_ev))
+    want = _reference_event_motion(lon, lat, vs30, rs, ev_rup, g_ev, models, ims, fields)
+    assert np.isfinite(want[0][sub]).any() and np.isfinite(want[0][~sub]).any()
+    for pair_block in (1, 20, 1_000_000):
+        got = event_ground_motion(lon, lat, vs30, rs, ev_rup, g_ev, models, ims, max_distance_km=300.0,
+                                  ref=(10.0, 20.0), site_fields=fields, pair_block=pair_block)
+        for g, w in zip(got, want):
+            np.testing.assert_array_equal(g, w)
+    # each event's model must be one of its rupture's region, with tau and phi
+    crustal_event = np.flatnonzero(~sub)[:1]
+    with pytest.raises(ValueError, match="AG16 is not a model of the active_crustal region"):
+        event_ground_motion(lon, lat, vs30, rs, ev_rup[crustal_event], np.array([2]), models, ims, ref=(10.0, 20.0))
+    with pytest.raises(ValueError, match="PZT11: the model gives only a total sigma"):
+        event_ground_motion(lon, lat, vs30, crust[0].with_region("stable_continental"), np.array([0]), np.array([0]),
+                            [get_gmm("PZT11")], ["PGA"], ref=(10.0, 20.0))

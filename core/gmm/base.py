@@ -310,6 +310,38 @@ class GmmInput:
         value = getattr(self, name)
         return None if value is None else np.broadcast_to(value, self.shape)
 
+    def take(self, index: ArrayLike) -> "GmmInput":
+        """The scenarios at ``index`` of a one-dimensional input, as a new input.
+
+        Every value of the subset passed this input's checks already, so they are not
+        repeated (a model evaluated on the subset gives the values it gives those
+        scenarios in the whole input: the models are elementwise).
+
+        Parameters
+        ----------
+        index : array_like of int or bool
+            Positions along the (single) scenario axis.
+
+        Returns
+        -------
+        GmmInput
+            Shape ``(len(selection),)``; scalar fields stay scalar.
+        """
+        if len(self.shape) != 1:
+            raise ValueError(f"GmmInput.take needs a one-dimensional input; shape is {self.shape}")
+        idx = np.asarray(index)
+        sub = object.__new__(GmmInput)
+        n = None
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if f.name != "region" and value is not None and value.ndim:
+                value = value[idx]
+                value.setflags(write=False)
+                n = value.shape
+            object.__setattr__(sub, f.name, value)
+        object.__setattr__(sub, "_shape", n if n is not None else np.zeros(self.shape)[idx].shape)
+        return sub
+
 
 @dataclass(frozen=True, eq=False)
 class GmmResult:

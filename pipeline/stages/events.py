@@ -33,7 +33,8 @@ from quakefolio.core.events.losses import (
 from quakefolio.core.events.gmf import FieldSampler
 from quakefolio.core.events.programme import GroupSums, chunk_programme_loss
 from quakefolio.core.events.secondary import correlation_effect
-from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
+from quakefolio.core.events.motion import event_ground_motion, event_ln_im
+from quakefolio.core.hazard import weighted_sum
 from quakefolio.core.loss import expected_annual_loss, expected_annual_net_loss
 from quakefolio.core.vulnerability import VulnerabilityTable
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
@@ -273,13 +274,16 @@ def _correlated(em):
 
 
 def _ground_motion(em, start, stop, b0, b1):
-    """ln IM [ln g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites)."""
+    """ln IM [ln g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites).
+
+    Written into the median's array: the chunk holds one copy of each field less.
+    """
     mu, tau, phi = event_ground_motion(em.site_lon, em.site_lat, em.site_vs30, em.ruptures,
                                        em.events.rupture[start:stop], em.gmm_of_event[start:stop], em.gmms, em.ims,
                                        max_distance_km=em.max_distance_km, region=em.region, ref=em.ref,
                                        site_fields=em.site_fields)
     res = em.sampler.sample_event_blocks(em.seed, em.events.n_events, np.arange(b0, b1))
-    return event_ln_im(mu, tau, phi, res.eta, res.eps, em.truncation_sigma)
+    return event_ln_im(mu, tau, phi, res.eta, res.eps, em.truncation_sigma, out=mu)
 
 
 def event_chunk(em, chunk, independent=True):
@@ -305,9 +309,9 @@ def event_chunk(em, chunk, independent=True):
     b0, b1 = chunk
     blocks = event_blocks(em.events.n_events, EVENT_BLOCK_SIZE)
     start, stop = int(blocks[b0, 0]), int(blocks[b1 - 1, 1])
-    lnim = _ground_motion(em, start, stop, b0, b1)
-    im = np.exp(lnim)  # (n_ev, n_im, n_sites); 0 beyond the integration distance
-    counts = exceedance_counts(lnim, em.levels_g)
+    im = _ground_motion(em, start, stop, b0, b1)
+    counts = exceedance_counts(im, em.levels_g)
+    np.exp(im, out=im)  # (n_ev, n_im, n_sites) [g]; 0 beyond the integration distance
     rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
     classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
                if dss.has_damage_states else
