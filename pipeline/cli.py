@@ -10,7 +10,9 @@ naming the stage and the cause); 2 a problem the user can fix: bad input, an out
 folder that cannot be written (permission denied, read-only file system) or a full disk
 (the line names the stage and the path), or a Dask scheduler address that does not answer
 as a Dask scheduler; 130 Ctrl-C; 143 SIGTERM (handled as Ctrl-C: the run stops, nothing
-half-written is kept, a Prefect server this command started is stopped).  In the Prefect
+half-written is kept; a Prefect server this command was still starting is stopped, one
+already running is left for the next command).  ``quakefolio server status|stop`` shows or
+stops the shared local Prefect server.  In the Prefect
 path, Prefect's own log records go to the run's log file
 (:mod:`quakefolio.pipeline.runlog`), named on the error line, never to the terminal.
 Everything printed shows control characters escaped (:mod:`quakefolio.pipeline.terminal`).
@@ -133,7 +135,13 @@ def _parser():
                      help="mean damage ratio of the state (required for a new state)")
     lib.add_argument("--cov", type=_non_negative_number, metavar="C", help="CoV of the state's loss ratio")
     lib.add_argument("--im", metavar="IM", help="IM of the fit, e.g. SA_1.0 (required for a new class)")
-    for sp in (sch, run, hzd, chk, cmp, rep, fit):
+    srv = sub.add_parser(
+        "server", help="status or stop of the local Prefect server shared by commands",
+        description="The local Prefect server (127.0.0.1, database in the state folder) is started by the first "
+                    "command that needs it and reused by later ones; it stops after QUAKEFOLIO_SERVER_IDLE_S "
+                    "seconds unused (default 1800) or with 'server stop'.")
+    srv.add_argument("action", choices=("status", "stop"), help="status: print where it runs; stop: stop it now")
+    for sp in (sch, run, hzd, chk, cmp, rep, fit, srv):
         # SUPPRESS: a --debug given before the command is not reset by the command's default
         sp.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks on errors")
     return p
@@ -223,22 +231,46 @@ def _run(args, stages_to_run="all"):
             configure_prefect(log_to=inputs.config.output.folder)  # Prefect's records to the run's log file
             from quakefolio.pipeline.orchestration import run_on_dask
 
-            run_dir = run_on_dask(Path(args.config).resolve(), address, stages_to_run=stages_to_run)
+            run_dir = run_on_dask(Path(args.config).resolve(), address, stages_to_run=stages_to_run, inputs=inputs)
         elif args.no_flow:
             from quakefolio.pipeline.runner import run_pure
 
             run_dir = run_pure(inputs, stages_to_run=stages_to_run)
         else:
-            configure_prefect(log_to=inputs.config.output.folder)
-            from quakefolio.pipeline.flow import run_flow
-
-            run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config.execution.max_workers,
-                               stages_to_run=stages_to_run)
+            run_dir = _run_flow_shared(args.config, inputs, stages_to_run)
     elapsed = time.perf_counter() - t0
     if args.quiet:
         print(run_dir)
     else:
         print(summary_text(run_dir, elapsed_s=elapsed))
+    return 0
+
+
+def _run_flow_shared(config, inputs, stages_to_run):
+    """The flow in this process, reporting to the shared local Prefect server (found running or started)."""
+    configure_prefect(log_to=inputs.config.output.folder)
+    from quakefolio.pipeline.server import use_server
+
+    with use_server() as server:
+        from quakefolio.pipeline.flow import run_flow
+        from quakefolio.pipeline.orchestration import using_api
+
+        with using_api(server.url):
+            return run_flow(Path(config).resolve(), max_workers=inputs.config.execution.max_workers,
+                            stages_to_run=stages_to_run, inputs=inputs)
+
+
+def _server(args):
+    from quakefolio.pipeline.server import ServerError, server_status, stop_recorded
+
+    if args.action == "status":
+        print(server_status())
+        return 0
+    try:
+        print(stop_recorded())
+    except ServerError as exc:
+        print(f"error: server stop: {exc}", file=sys.stderr)
+        return EXIT_INTERNAL
     return 0
 
 
@@ -264,22 +296,18 @@ def _schedule(args):
     load_inputs(args.config)  # validate before starting a server: a bad input starts nothing
     configure_prefect()
     from quakefolio.pipeline.scheduling import check_cron, serve_schedule
-    from quakefolio.pipeline.server import connect_or_start
+    from quakefolio.pipeline.server import use_server
 
     problem = check_cron(args.cron, args.timezone)
     if problem:
         print(f"error: schedule: --cron {args.cron!r} --timezone {args.timezone!r}: {problem}", file=sys.stderr)
         return EXIT_USER_ERROR
     print(CAUTION)
-    server = connect_or_start()
-    try:
+    with use_server() as server:  # left running for later commands; stopped when idle or by 'server stop'
         where = f"{server.url}" + (f" (database {server.database})" if server.database else "")
-        print(f"started a Prefect server at {where}" if server.owned else f"using the Prefect server at {where}",
-              flush=True)
+        print(f"using the Prefect server at {where}", flush=True)
         out = serve_schedule(Path(args.config).resolve(), args.cron, api_url=server.url, timezone=args.timezone,
                              run_once=args.run_once)
-    finally:
-        server.stop()  # only if this command started it
     if not args.run_once:
         return 0
     print(f"deployment {out['deployment']}: run {out['flow_run_id']} finished {out['state']}")
@@ -424,7 +452,7 @@ def main(argv=None):
     """
     args = _parser().parse_args(argv)
     handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "report": _report,
-                "fit-fragility": _fit_fragility, "schedule": _schedule}
+                "fit-fragility": _fit_fragility, "schedule": _schedule, "server": _server}
     before = _set_sigterm(_raise_terminated)
     try:
         return handlers[args.command](args)
