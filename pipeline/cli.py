@@ -72,6 +72,10 @@ def _parser():
     hzd.add_argument("--quiet", action="store_true", help="print only the run folder")
     hzd.add_argument("--no-flow", action="store_true", help="run without Prefect orchestration")
     for sp in (run, hzd):
+        sp.add_argument("--always-flow", action="store_true",
+                        help="run the Prefect flow even when every stage's result is in the cache (by default "
+                             "such a run is written without a flow run)")
+    for sp in (run, hzd):
         scale = sp.add_argument_group("scale-out (overrides [execution] backend and address)")
         scale.add_argument("--executor", choices=("local", "dask"),
                            help="local: threads of this process; dask: block tasks on a Dask cluster")
@@ -237,7 +241,7 @@ def _run(args, stages_to_run="all"):
 
             run_dir = run_pure(inputs, stages_to_run=stages_to_run)
         else:
-            run_dir = _run_flow_shared(args.config, inputs, stages_to_run)
+            run_dir = _run_flow_shared(args.config, inputs, stages_to_run, always=args.always_flow)
     elapsed = time.perf_counter() - t0
     if args.quiet:
         print(run_dir)
@@ -246,8 +250,18 @@ def _run(args, stages_to_run="all"):
     return 0
 
 
-def _run_flow_shared(config, inputs, stages_to_run):
-    """The flow in this process, reporting to the shared local Prefect server (found running or started)."""
+def _run_flow_shared(config, inputs, stages_to_run, always=False):
+    """The flow in this process, reporting to the shared local Prefect server (found running or started).
+
+    When a run of the same inputs and code completed before (every stage's result is in the
+    content cache), the run is written without a flow run and without Prefect: nothing is
+    computed, so there is nothing to orchestrate; the manifest says so.  ``always``
+    (``--always-flow``) runs the flow all the same.
+    """
+    from quakefolio.pipeline.runner import FROM_CACHE, every_stage_cached, run_pure
+
+    if not always and every_stage_cached(inputs, stages_to_run):
+        return run_pure(inputs, stages_to_run=stages_to_run, orchestration=FROM_CACHE)
     configure_prefect(log_to=inputs.config.output.folder)
     from quakefolio.pipeline.server import use_server
 
@@ -281,6 +295,8 @@ def _backend(args, config):
 
     if args.executor == "local" and args.address:
         raise InputError("--address", "applies to --executor dask, not --executor local")
+    if args.no_flow and args.always_flow:
+        raise InputError("--always-flow", "runs the Prefect flow; it cannot be combined with --no-flow")
     if args.no_flow and (args.executor == "dask" or args.address):
         raise InputError("--no-flow", "runs without Prefect in this process; it cannot be combined with "
                                       "--executor dask or --address")

@@ -59,6 +59,8 @@ class PrefectExecutor:
     """
 
     config_path = None
+    #: what the manifest's ``orchestration`` says
+    orchestration = "Prefect flow portfolio-risk"
 
     def __init__(self):
         self._tasks = {}

@@ -14,7 +14,9 @@ import platform
 import time
 from importlib import metadata
 
-from quakefolio.core.errors import InputError
+import numpy as np
+
+from quakefolio.core.errors import InputError, OutputError
 from quakefolio.pipeline import progress
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.cache import digest, fragility_class_digests
@@ -30,7 +32,10 @@ from quakefolio.pipeline.stages.inputs import load_inputs, stage_cache, with_haz
 from quakefolio.pipeline.stages.products import CacheCounts, EventProduct, RunInputs, WhatIfProduct
 
 __all__ = ["execute", "SequentialExecutor", "write_run", "run_pure", "inputs_digest", "package_versions",
-           "StageError", "stage_guard"]
+           "StageError", "stage_guard", "every_stage_cached", "FROM_CACHE"]
+
+#: The manifest's ``orchestration`` of a run that needed no flow: every stage's result was in the cache.
+FROM_CACHE = "none: every stage's result was in the content cache (no Prefect flow run)"
 
 _PACKAGES = ("quakefolio", "numpy", "scipy", "pandas", "pyarrow", "prefect")
 
@@ -110,6 +115,8 @@ class SequentialExecutor:
     """
 
     config_path = None
+    #: what the manifest's ``orchestration`` says
+    orchestration = "plain: stages in this process, no Prefect"
 
     def one(self, name, fn, *args):
         """Run a stage once, in this thread.
@@ -339,6 +346,7 @@ def execute(inputs, executor, *, stages_to_run="all"):
     executor.config_path = str(inputs.config.path)
     prepare_output_folder(inputs.config.output.folder)  # checked again, created and marked before any write
     clock, counts = _Clock(), CacheCounts()
+    clock.timings["ingest_s"] = inputs.read_s  # read once, before the stages (by the caller or the ingest task)
     damage = events = extra = None
     ref = blocks.register(inputs)
     with blocks.work_folder(inputs) as work:
@@ -352,7 +360,38 @@ def execute(inputs, executor, *, stages_to_run="all"):
             counts += c
             extra, c = run_whatif(inputs, damage, events, em, executor, clock)
             counts += c
-        return executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts)
+        run = executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts,
+                           getattr(executor, "orchestration", None))
+    try:  # marks that every stage's result is now in the cache (see every_stage_cached)
+        stage_cache(inputs).put("complete-runs", _complete_key(inputs, stages_to_run), {"done": np.ones(1, np.int8)})
+    except (OSError, OutputError):
+        pass  # the run is written; a later run of the same inputs goes through the flow again
+    return run
+
+
+def _complete_key(inputs, stages_to_run):
+    return digest("complete-run", inputs.inputs_sha256, stages_to_run)  # and the code version
+
+
+def every_stage_cached(inputs, stages_to_run="all"):
+    """True if a run of these inputs (same files, settings and code) completed and the cache is on.
+
+    Every stage's result of such a run is in the content cache (a stage stores its result
+    before the run is written), so a new run computes nothing; the CLI then writes it
+    without a Prefect flow run (:data:`FROM_CACHE`).  A cache entry that has gone since (or
+    fails its digest check) is simply computed again, in this process.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        As read by :func:`quakefolio.pipeline.stages.load_inputs`.
+    stages_to_run : {"all", "hazard"}
+
+    Returns
+    -------
+    bool
+    """
+    return stage_cache(inputs).get("complete-runs", _complete_key(inputs, stages_to_run)) is not None
 
 
 def _hazard_frames(inputs):
@@ -369,7 +408,7 @@ def _hazard_frames(inputs):
     return frames
 
 
-def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, frames, warnings):
+def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, frames, warnings, orchestration):
     cfg = inputs.config
     currency = cfg.scenario.currency
     model = inputs.hazard_model
@@ -387,6 +426,7 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
         "cross_checks": None if events is None else events.checks,
         "cache": (counts or CacheCounts()).as_dict(),
         "timings_s": {k: round(v, 4) for k, v in timings.items()},
+        "orchestration": orchestration,
         "row_counts": dict(writer.row_counts),
         "units": {name: units_for(name, currency) for name in frames},
         "hazard_ims_interpolated": sorted(inputs.hazard.interpolated),
@@ -404,7 +444,7 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
     return manifest
 
 
-def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None):
+def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None, orchestration=None):
     """Assemble every table, write the run folder atomically, return its path.
 
     Parameters
@@ -419,6 +459,8 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         Screening and what-if tables.
     timings : dict stage -> seconds
     counts : CacheCounts or None
+    orchestration : str or None
+        How the stages ran (the manifest's ``orchestration``).
 
     Returns
     -------
@@ -449,25 +491,31 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
                                provenance=provenance)
         timings = dict(timings or {}, store_s=time.perf_counter() - t0)
         manifest = _manifest(inputs, run_id, "hazard" if damage is None else "all", events, counts, timings, writer,
-                             frames, warnings)
+                             frames, warnings, orchestration)
         writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
         if cfg.output.report:
             from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
 
-            write_report(writer.partial, writer.partial / "report.html")
+            t1 = time.perf_counter()
+            write_report(writer.partial, writer.partial / "report.html", cache=stage_cache(inputs))
+            # the report reads the manifest, so its own time is added afterwards (the report shows the others)
+            manifest["timings_s"]["report_s"] = round(time.perf_counter() - t1, 4)
+            writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
         return writer.commit()
     except BaseException:
         writer.abort()
         raise
 
 
-def run_pure(config_path, stages_to_run="all"):
+def run_pure(config_path, stages_to_run="all", orchestration=None):
     """The whole run without Prefect (same stage functions, sequential).
 
     Parameters
     ----------
     config_path : str, Path or RunInputs
     stages_to_run : {"all", "hazard"}
+    orchestration : str, optional
+        What the manifest says about how the stages ran (default: the plain path's).
 
     Returns
     -------
@@ -475,4 +523,7 @@ def run_pure(config_path, stages_to_run="all"):
         The run folder.
     """
     inputs = config_path if isinstance(config_path, RunInputs) else load_inputs(config_path)
-    return execute(inputs, SequentialExecutor(), stages_to_run=stages_to_run)
+    executor = SequentialExecutor()
+    if orchestration:
+        executor.orchestration = orchestration
+    return execute(inputs, executor, stages_to_run=stages_to_run)

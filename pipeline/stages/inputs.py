@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import time
 from dataclasses import replace
 
 import numpy as np
@@ -79,7 +80,9 @@ def load_inputs(config_or_path):
     Returns
     -------
     RunInputs
+        With ``read_s``, the wall time of this call [s].
     """
+    t0 = time.perf_counter()
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
     folder_warnings = check_output_folder(config)  # where the run may write; nothing is written here
     budget = memory_budget()
@@ -128,7 +131,8 @@ def load_inputs(config_or_path):
     work = estimate_work(draft, unique_pairs(draft), budget)
     check_work(draft, work)  # before any stage: what cannot fit is refused here, naming the key
     return replace(draft, hazard=hazard, input_hashes=frozen_mapping(hashes),
-                   inputs_sha256=inputs_digest(hashes, config), group_terms=group_terms, work=work)
+                   inputs_sha256=inputs_digest(hashes, config), group_terms=group_terms, work=work,
+                   read_s=time.perf_counter() - t0)
 
 
 def with_hazard(inputs, model, hazard):
