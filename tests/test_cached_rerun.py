@@ -50,7 +50,7 @@ def test_unchanged_rerun_is_written_without_a_flow_and_equals_the_first(mini_con
 
 
 def test_report_from_cached_sections_is_the_same_document(mini_config, tmp_path):
-    run = run_pure(_with_report(mini_config))
+    run = run_pure(mini_config)  # no report written by the run: drawn here only
     cache = StageCache(tmp_path / "cache-home")
     drawn = build_report(run)
     stored = build_report(run, cache=cache)  # draws and stores the table sections
