@@ -36,7 +36,8 @@ TIME_V = Path("/usr/bin/time")
 
 
 def _env(tmp):
-    env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
+    # PYTHONDONTWRITEBYTECODE off: an installed quakefolio has its byte code cached, as every run here after the first
+    env = {k: v for k, v in os.environ.items() if k not in ("PREFECT_API_URL", "PYTHONDONTWRITEBYTECODE")}
     env.update(QUAKEFOLIO_STATE=str(tmp / "state"), QUAKEFOLIO_SERVER_IDLE_S="900")
     return env
 

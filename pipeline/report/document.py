@@ -96,7 +96,7 @@ def _bodies(builders, run, cache):
             bodies[sid] = found["html"].tobytes().decode("utf-8")
         else:
             todo[sid] = (key, fn, args)
-    with _figure_style(bool(todo)):
+    with _figure_style(any(sid in CACHED_SECTIONS for sid in todo)):  # the others draw no figure
         for sid, (key, fn, args) in todo.items():
             try:
                 bodies[sid] = fn(*args)
