@@ -70,6 +70,9 @@ LOOPBACK = "127.0.0.1"
 #: Seconds to wait for a new server to answer (it needs about 10-15 s on 2 cores).
 START_TIMEOUT_S = 90.0
 
+#: Seconds to wait for a recorded server of ours (its process running) to answer before another is started.
+RECORDED_PATIENCE_S = 20.0
+
 
 class ServerError(RuntimeError):
     """A Prefect server could not be started or does not answer."""
@@ -259,10 +262,24 @@ def find_server():
         Not owned by this process (:meth:`LocalServer.stop` leaves it running).
     """
     info = recorded_server()
-    if info is None or not is_healthy(info.get("url", "")):
+    if info is None or not _answers(info.get("url", ""), info["pid"]):
         return None
     return LocalServer(url=info["url"], host=info["host"], port=info["port"], pid=info["pid"], owned=False,
                        database=Path(info["database"]), log=Path(info["log"]), keeper_pid=info.get("keeper_pid"))
+
+
+def _answers(url, pid, patience_s=RECORDED_PATIENCE_S):
+    """True once the recorded server ``pid`` answers at ``url``; False if it stops or stays silent ``patience_s``.
+
+    The record's process is ours (token checked), so a slow answer on a busy machine is waited
+    for: giving up at once would start a second server and retire this one.
+    """
+    deadline = time.monotonic() + patience_s
+    while not is_healthy(url):
+        if time.monotonic() > deadline or not _running(pid):
+            return False
+        time.sleep(0.2)
+    return True
 
 
 def _free_port():
@@ -523,17 +540,15 @@ def _keep(pid, idle_s):
         if not _running(pid):
             _forget(pid)
             return 0
-        if info is None or info.get("pid") != pid:  # replaced or forgotten: nobody will use it again
-            _terminate(pid, None, token, 20.0)
-            return 0
-        if time.time() - _last_use(folder) < idle_s:
+        replaced = info is None or info.get("pid") != pid  # replaced or forgotten: no new command will use it
+        if not replaced and time.time() - _last_use(folder) < idle_s:
             continue
         with open(folder / "use.lock", "a") as fh:
             try:
                 fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
             except BlockingIOError:
-                continue  # a command is using it
-            if time.time() - _last_use(folder) < idle_s:
+                continue  # a command is using it (even a replaced server: a command may still talk to it)
+            if not replaced and time.time() - _last_use(folder) < idle_s:
                 continue
             _terminate(pid, None, token, 20.0)
         return 0
