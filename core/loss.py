@@ -197,7 +197,7 @@ def limited_mean_loss_ratio(mean, cov, cap):
         raise ValueError(f"cap must be non-negative, got {u[~(u >= 0)][:3].tolist()}")
     mu, c, u = np.broadcast_arrays(mu, c, u)
     out = np.array(np.minimum(mu, u), dtype=float)  # deterministic ratio, and every ratio at u = 0
-    random = (c > 0) & (mu > 0) & (mu < 1) & (u > 0)
+    random = (c > 0) & (mu > 0) & (mu < 1) & (u > 0) & (u < 1)  # u >= 1: E[min(X, u)] = mu, as set above
     if np.any(random):
         a, b = beta_parameters(mu[random], c[random])
         uc = np.minimum(u[random], 1.0)

@@ -19,6 +19,17 @@ Layout::
     casualty_rate = 0.0            # optional, fraction of occupants present
     contents_damage_ratio = 0.05   # optional, contents loss / contents value
 
+A class may instead give a vulnerability table (no damage states; interpolation and
+distribution in :mod:`quakefolio.core.vulnerability`)::
+
+    [classes.WD-VF]
+    im = "SA_0.3"
+
+    [[classes.WD-VF.vulnerability]]
+    im_level = 0.1                 # IM units (g), increasing from row to row
+    mean_loss_ratio = 0.01         # in [0, 1], non-decreasing
+    cov = 1.0                      # optional, CoV of the loss ratio at this level (default 0)
+
 A class that gives ``downtime_days``, ``casualty_rate`` or ``contents_damage_ratio`` for
 only some of its states has no figure for that consequence (its assets are left out of the
 totals and counted; contents or interruption values in the exposure are then an error).
@@ -44,7 +55,8 @@ from quakefolio.core.errors import InputError, InputWarning
 from quakefolio.core.loss import check_damage_ratios
 from quakefolio.core.plausibility import median_problem
 from quakefolio.core.validation import Field, Interval, Pattern, Real, Schema, Text, toml_place, validate_table
-from quakefolio.fragility.models import DamageStateSet, FragilityLibrary
+from quakefolio.core.vulnerability import VulnerabilityTableError, check_vulnerability_row
+from quakefolio.fragility.models import DamageStateSet, FragilityLibrary, VulnerabilityFunction
 
 __all__ = ["load_library", "parse_library", "FORMAT_TAG"]
 
@@ -94,7 +106,13 @@ _POSITIVE = _NUMBER + (Interval(0, None, closed="neither"),)
 _NON_NEGATIVE = Interval(0, None)
 _TOP_SCHEMA = Schema({"format": Field((), None), "classes": Field((), None)})
 _CLASS_SCHEMA = Schema({"description": Field((), ""), "im": Field(()), "collapse_state": Field((), None),
-                        "states": Field((), None)})
+                        "states": Field((), None), "vulnerability": Field((), None)})
+#: One ``[[classes.<code>.vulnerability]]`` row of a vulnerability table.
+_VULNERABILITY_SCHEMA = Schema({
+    "im_level": Field(_POSITIVE, help="intensity level [IM units, g]"),
+    "mean_loss_ratio": Field(_NUMBER + (Interval(0, 1),), help="mean repair cost / replacement value [-]"),
+    "cov": Field(_NUMBER + (_NON_NEGATIVE,), 0.0, help="coefficient of variation of the loss ratio [-]"),
+}, missing_first=True)
 #: One ``[[classes.<code>.states]]`` table: every key with its constraints and default.
 _STATE_SCHEMA = Schema({
     "name": Field((Text("expected a non-empty name", non_empty=True),), help="damage-state name"),
@@ -171,8 +189,49 @@ def _collapse_warning(code, rows, collapse, place):
                         row=place.locate("collapse_state"), column=place.column_of("collapse_state"))
 
 
+#: A first row's mean loss ratio above this is doubtful: the loss ratio is 0 below the first level.
+FIRST_MEAN_WARN_ABOVE = 0.1
+
+
+def _vulnerability(code, body, text, path, place, warnings):
+    """A ``[[classes.<code>.vulnerability]]`` table to its :class:`VulnerabilityFunction`, row by row
+    (a doubt is appended to ``warnings``)."""
+    if body.get("collapse_state") is not None:
+        raise place.error("a class given by a vulnerability table has no damage states: collapse_state has no "
+                          "meaning here", "collapse_state")
+    rows = body["vulnerability"]
+    if not isinstance(rows, list) or len(rows) < 2 or not all(isinstance(r, dict) for r in rows):
+        raise place.error("a vulnerability table needs at least 2 [[classes.<code>.vulnerability]] rows",
+                          "vulnerability")
+    columns = {k: [] for k in _VULNERABILITY_SCHEMA.fields}
+    for i, row in enumerate(rows):
+        here = toml_place(path, text, ("classes", code, "vulnerability"), f"classes.{code}.vulnerability[{i}]", i)
+        values = validate_table(row, _VULNERABILITY_SCHEMA, here)
+        problem = median_problem(values["im_level"])
+        if problem is not None:
+            raise here.error(problem.replace("median", "im_level").replace("medians", "im levels"), "im_level")
+        for key, value in values.items():
+            columns[key].append(value)
+        try:
+            check_vulnerability_row(*(np.array(columns[k], dtype=float) for k in columns), i)
+        except VulnerabilityTableError as exc:
+            raise here.error(str(exc), exc.key, row_key=exc.key if exc.key in row else None) from None
+    first = columns["mean_loss_ratio"][0]
+    if first > FIRST_MEAN_WARN_ABOVE:  # the function jumps from 0 to ``first`` at the first level
+        here = toml_place(path, text, ("classes", code, "vulnerability"), f"classes.{code}.vulnerability[0]", 0)
+        warnings.append(InputWarning(path, f"the first row's mean_loss_ratio {first:g} is above "
+                                           f"{FIRST_MEAN_WARN_ABOVE:g}: the loss ratio is 0 below the first im_level "
+                                           f"({columns['im_level'][0]:g} g) and jumps there; start the table where "
+                                           "loss begins", row=here.locate("mean_loss_ratio"),
+                                     column=here.column_of("mean_loss_ratio")))
+    return VulnerabilityFunction(class_code=code, im=body["im"], levels=np.array(columns["im_level"]),
+                                 mean_loss_ratio=np.array(columns["mean_loss_ratio"]), cov=np.array(columns["cov"]),
+                                 description=str(body.get("description", "")))
+
+
 def _parse_class(code, body, text, path, warnings):
-    """One ``[classes.<code>]`` table to its :class:`DamageStateSet` (a doubt is appended to ``warnings``)."""
+    """One ``[classes.<code>]`` table to its :class:`DamageStateSet` or :class:`VulnerabilityFunction`
+    (a doubt is appended to ``warnings``)."""
     place = toml_place(path, text, ("classes", code), f"classes.{code}")
     if not _CLASS_CODE.holds(code):
         raise place.error(_CLASS_CODE.failure(code, code))
@@ -180,8 +239,18 @@ def _parse_class(code, body, text, path, warnings):
         raise place.error("expected a table")
     validate_table(body, _CLASS_SCHEMA, place)
     states = body.get("states")
+    if "vulnerability" in body:
+        if states is not None:
+            raise place.error("give either damage states or a vulnerability table, not both", "vulnerability")
+        try:
+            return _vulnerability(code, body, text, path, place, warnings)
+        except ValueError as exc:  # the IM name
+            if isinstance(exc, InputError):
+                raise
+            raise place.error(str(exc), "im") from None
     if not isinstance(states, list) or not states:
-        raise place.error("needs at least one [[classes.<code>.states]] entry", None, column=f"classes.{code}.states")
+        raise place.error("needs at least one [[classes.<code>.states]] entry, or a vulnerability table "
+                          "([[classes.<code>.vulnerability]] rows)", None, column=f"classes.{code}.states")
     rows = _state_rows(code, states, text, path)
     collapse = body.get("collapse_state", rows["name"][-1])
     if collapse not in rows["name"]:

@@ -15,8 +15,9 @@ import numpy as np
 from quakefolio.core.ims import parse_im
 from quakefolio.core.loss import check_damage_ratios
 from quakefolio.core.risk import damage_state_rates, lognormal_crossing_im, lognormal_fragility
+from quakefolio.core.vulnerability import check_vulnerability, mean_loss_ratio_at, vulnerability_states
 
-__all__ = ["DamageStateSet", "FragilityLibrary", "CrossingError"]
+__all__ = ["DamageStateSet", "VulnerabilityFunction", "FragilityLibrary", "CrossingError"]
 
 
 class CrossingError(ValueError):
@@ -142,6 +143,84 @@ class DamageStateSet:
         """Damage-state rates [1/yr] for hazard curves of this class's IM (core.risk)."""
         return damage_state_rates(im_levels, rates, self.medians, self.betas, tail=tail,
                                   envelope=envelope, diagnostics=diagnostics)
+
+    #: A class given by damage states (:class:`VulnerabilityFunction` gives none).
+    has_damage_states = True
+
+    def loss_states(self, im_levels, rates, tail="extrapolate", envelope=False, diagnostics=False):
+        """Rates [1/yr], mean loss ratios and CoVs [-] for the loss kernels of :mod:`quakefolio.core.loss`.
+
+        For damage states: the damage-state rates with the class's own consequence model
+        (``(rates, mean_damage_ratio, cov)``, then the tail shares if ``diagnostics``).
+        """
+        out = self.annual_rates(im_levels, rates, tail=tail, envelope=envelope, diagnostics=diagnostics)
+        if not diagnostics:
+            return out, self.mean_damage_ratio, self.cov
+        return out[0], self.mean_damage_ratio, self.cov, out[1], out[2]
+
+
+@dataclass(frozen=True)
+class VulnerabilityFunction:
+    """Loss ratio given intensity of one building class, without damage states.
+
+    Attributes
+    ----------
+    class_code : str
+    im : str
+        Canonical IM name.
+    levels : ndarray (m,) [IM units, g]
+        Increasing intensity levels of the table.
+    mean_loss_ratio : ndarray (m,) [-]
+        Mean repair cost / replacement value at each level, in [0, 1], non-decreasing.
+    cov : ndarray (m,) [-]
+        Coefficient of variation of the loss ratio at each level (0: deterministic).
+    description : str
+
+    Notes
+    -----
+    Interpolation, distribution and classical integral: :mod:`quakefolio.core.vulnerability`.
+    Such a class has no damage states: no damage-state rates, no collapse, no consequences
+    given per damage state (casualties, downtime, contents).
+    """
+
+    class_code: str
+    im: str
+    levels: np.ndarray
+    mean_loss_ratio: np.ndarray
+    cov: np.ndarray
+    description: str = ""
+
+    has_damage_states = False
+    names = ()
+    n_states = 0
+    collapse_index = None
+
+    def __post_init__(self):
+        object.__setattr__(self, "im", parse_im(self.im))
+        try:
+            arrays = check_vulnerability(self.levels, self.mean_loss_ratio, self.cov)
+        except ValueError as exc:
+            raise ValueError(f"class {self.class_code!r}: {exc}") from None
+        for attr, arr in zip(("levels", "mean_loss_ratio", "cov"), arrays):
+            arr = np.array(arr, dtype=float)
+            arr.setflags(write=False)
+            object.__setattr__(self, attr, arr)
+
+    def mean_at(self, im):
+        """Mean loss ratio [-] at intensity ``im`` [g] (:func:`quakefolio.core.vulnerability.mean_loss_ratio_at`)."""
+        return mean_loss_ratio_at(im, self.levels, self.mean_loss_ratio)
+
+    def loss_states(self, im_levels, rates, tail="extrapolate", envelope=False, diagnostics=False):
+        """Bins of the classical integral as pseudo damage states (:func:`quakefolio.core.vulnerability.vulnerability_states`).
+
+        Returns ``(rates, mean, cov)`` [1/yr], [-], [-], each of shape ``C + (n_bins,)``, then the
+        tail shares of the EAL, shape ``C + (1,)``, if ``diagnostics``; ``envelope`` has no meaning here.
+        """
+        out = vulnerability_states(im_levels, rates, self.levels, self.mean_loss_ratio, self.cov, tail=tail,
+                                   diagnostics=diagnostics)
+        if not diagnostics:
+            return out
+        return out[0], out[1], out[2], out[3][..., None], out[4][..., None]
 
 
 @dataclass

@@ -1,5 +1,5 @@
-"""Command line: ``quakefolio run|hazard|check CONFIG``, ``quakefolio compare RUN_A RUN_B`` and
-``quakefolio report RUN``.
+"""Command line: ``quakefolio run|hazard|check CONFIG``, ``quakefolio compare RUN_A RUN_B``,
+``quakefolio report|export RUN`` and ``quakefolio history OUTPUT``.
 
 User errors (bad input files or config) exit with status 2 and one line naming file,
 row and column; no traceback unless ``--debug``.  ``check`` and ``--help`` never start
@@ -117,6 +117,24 @@ def _parser():
     rep.add_argument("run", metavar="RUN", help="the run to report (run folder or output folder)")
     rep.add_argument("--previous", metavar="RUN", help="an earlier run to compare with (adds the change report)")
     rep.add_argument("--out", metavar="FILE", help="write the report to FILE instead")
+    exp = sub.add_parser(
+        "export", help="write the per-asset and per-site tables of a run as GeoParquet, GeoJSON or CSV",
+        description="Export every table of RUN that places its rows (per asset or per hazard site, with lon and lat "
+                    "in WGS84 degrees) to one file per table: GeoParquet (point geometry as WKB, GeoParquet 1.0 "
+                    "metadata), GeoJSON (RFC 7946) or CSV. RUN is a run folder or an output folder, which stands for "
+                    "its LATEST run. The files go to a new folder, <output folder>/exports/<run_id>-<format>/ unless "
+                    "--out names another; nothing existing is overwritten and the run is not modified.")
+    exp.add_argument("run", metavar="RUN", help="the run to export (run folder or output folder)")
+    exp.add_argument("--format", dest="export_format", choices=("geoparquet", "geojson", "csv"), default="geoparquet",
+                     help="file format (default geoparquet)")
+    exp.add_argument("--out", metavar="DIR", help="write the files into DIR, a new or empty folder")
+    his = sub.add_parser(
+        "history", help="list the finished runs of an output folder with headline figures and what changed",
+        description="List the finished runs of OUTPUT (oldest first) with the classical EAL, the event-based AAL, "
+                    "the PML at each configured return period and the expected number of collapses, the input files "
+                    "that changed since the run before and the change of each figure in percent. The table is also "
+                    "written to OUTPUT/history.parquet (replacing an earlier one).")
+    his.add_argument("output", metavar="OUTPUT", help="an output folder (holding runs/)")
     fit = sub.add_parser(
         "fit-fragility", help="fit a lognormal fragility function to structural-analysis results",
         description="Fit median and beta of a lognormal fragility function to multiple-stripe analysis results "
@@ -145,7 +163,7 @@ def _parser():
                     "command that needs it and reused by later ones; it stops after QUAKEFOLIO_SERVER_IDLE_S "
                     "seconds unused (default 1800) or with 'server stop'.")
     srv.add_argument("action", choices=("status", "stop"), help="status: print where it runs; stop: stop it now")
-    for sp in (sch, run, hzd, chk, cmp, rep, fit, srv):
+    for sp in (sch, run, hzd, chk, cmp, rep, exp, his, fit, srv):
         # SUPPRESS: a --debug given before the command is not reset by the command's default
         sp.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks on errors")
     return p
@@ -354,6 +372,29 @@ def _report(args):
     return 0
 
 
+def _export(args):
+    from quakefolio.pipeline.export import export_run
+
+    folder, written, left = export_run(args.run, args.export_format, args.out)
+    for name, rows in written:
+        print(f"{folder / name}  ({rows} rows)")
+    if left:
+        print(f"note: left out (the run stores no positions for their rows): {', '.join(left)}")
+    print(f"{len(written)} files written to {folder}")
+    return 0
+
+
+def _history(args):
+    from quakefolio.pipeline.caution import CAUTION
+    from quakefolio.pipeline.history import history_text, run_history, write_history
+
+    frame, currency = run_history(args.output)
+    path = write_history(args.output, frame, currency)
+    print(CAUTION)
+    print(history_text(frame, currency, path))
+    return 0
+
+
 def _fit_fragility(args):
     import json
 
@@ -468,7 +509,8 @@ def main(argv=None):
     """
     args = _parser().parse_args(argv)
     handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "report": _report,
-                "fit-fragility": _fit_fragility, "schedule": _schedule, "server": _server}
+                "fit-fragility": _fit_fragility, "schedule": _schedule, "export": _export, "history": _history,
+                "server": _server}
     before = _set_sigterm(_raise_terminated)
     try:
         return handlers[args.command](args)

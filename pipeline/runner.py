@@ -11,8 +11,11 @@ from __future__ import annotations
 
 import json
 import platform
+import threading
 import time
+from concurrent.futures import ThreadPoolExecutor
 from importlib import metadata
+from pathlib import Path
 
 import numpy as np
 
@@ -20,6 +23,8 @@ from quakefolio.core.errors import InputError, OutputError
 from quakefolio.pipeline import progress
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.cache import digest, fragility_class_digests
+from quakefolio.pipeline.io.coordinates import Positions, with_coordinates
+from quakefolio.pipeline.io.relpaths import relative_paths
 from quakefolio.pipeline.io.run_inputs import run_input_frames
 from quakefolio.pipeline.io.output_folder import prepare_output_folder
 from quakefolio.pipeline.io.store import RunWriter, new_run_id
@@ -30,12 +35,14 @@ from quakefolio.pipeline.stages import hazard as hs
 from quakefolio.pipeline.stages.damage import combine_damage, plan_blocks
 from quakefolio.pipeline.stages.inputs import load_inputs, stage_cache, with_hazard
 from quakefolio.pipeline.stages.products import CacheCounts, EventProduct, RunInputs, WhatIfProduct
-
-__all__ = ["execute", "SequentialExecutor", "write_run", "run_pure", "inputs_digest", "package_versions",
-           "StageError", "stage_guard", "every_stage_cached", "FROM_CACHE"]
+from quakefolio.pipeline.stages.sites import hazard_sites_table
 
 #: The manifest's ``orchestration`` of a run that needed no flow: every stage's result was in the cache.
 FROM_CACHE = "none: every stage's result was in the content cache (no Prefect flow run)"
+
+__all__ = ["every_stage_cached", "FROM_CACHE", "execute", "SequentialExecutor", "write_run", "run_pure",
+           "inputs_digest", "package_versions",
+           "StageError", "stage_guard"]
 
 _PACKAGES = ("quakefolio", "numpy", "scipy", "pandas", "pyarrow", "prefect")
 
@@ -343,10 +350,11 @@ def execute(inputs, executor, *, stages_to_run="all"):
     Path
         The run folder.
     """
+    started = time.perf_counter()
     executor.config_path = str(inputs.config.path)
     prepare_output_folder(inputs.config.output.folder)  # checked again, created and marked before any write
     clock, counts = _Clock(), CacheCounts()
-    clock.timings["ingest_s"] = inputs.read_s  # read once, before the stages (by the caller or the ingest task)
+    clock.timings.update(getattr(inputs, "timings", None) or {})  # ingest_s: reading and checking the inputs
     damage = events = extra = None
     ref = blocks.register(inputs)
     with blocks.work_folder(inputs) as work:
@@ -360,7 +368,7 @@ def execute(inputs, executor, *, stages_to_run="all"):
             counts += c
             extra, c = run_whatif(inputs, damage, events, em, executor, clock)
             counts += c
-        run = executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts,
+        run = executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts, started,
                            getattr(executor, "orchestration", None))
     try:  # marks that every stage's result is now in the cache (see every_stage_cached)
         stage_cache(inputs).put("complete-runs", _complete_key(inputs, stages_to_run), {"done": np.ones(1, np.int8)})
@@ -396,6 +404,7 @@ def every_stage_cached(inputs, stages_to_run="all"):
 
 def _hazard_frames(inputs):
     frames = {
+        "hazard_sites": hazard_sites_table(inputs),
         "site_hazard": hs.site_hazard_table(inputs),
         "hazard_at_return_periods": hs.hazard_at_return_periods_table(inputs),
     }
@@ -428,7 +437,7 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
         "timings_s": {k: round(v, 4) for k, v in timings.items()},
         "orchestration": orchestration,
         "row_counts": dict(writer.row_counts),
-        "units": {name: units_for(name, currency) for name in frames},
+        "units": {name: units_for(name, currency, _column_names(frame)) for name, frame in frames.items()},
         "hazard_ims_interpolated": sorted(inputs.hazard.interpolated),
         "fragility_classes": fragility_class_digests(inputs.library),
         "hazard_sites": len(inputs.hazard.site_id),
@@ -441,11 +450,17 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
             "gmm_branches": [{"id": i, "weight": w} for i, w, _ in model.gmm_branches],
             "ims": model.ims,
         }
-    return manifest
+    return relative_paths(manifest, Path(cfg.path).parent)  # no local folder of this machine in the outputs
 
 
-def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None, orchestration=None):
+def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None, started=None,
+              orchestration=None):
     """Assemble every table, write the run folder atomically, return its path.
+
+    The manifest's ``timings_s`` holds the wall time [s] of every stage: ``ingest_s``
+    (reading and checking the inputs), the computing stages, ``store_s`` (the tables),
+    ``report_s`` (drawn from the tables in memory while they are written, so it overlaps
+    ``store_s``) and ``total_s`` (ingest to the committed folder).
 
     Parameters
     ----------
@@ -459,6 +474,8 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         Screening and what-if tables.
     timings : dict stage -> seconds
     counts : CacheCounts or None
+    started : float or None
+        ``time.perf_counter()`` when the run's stages started (for ``total_s``).
     orchestration : str or None
         How the stages ran (the manifest's ``orchestration``).
 
@@ -480,31 +497,106 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     if extra is not None:
         frames.update(extra.tables)
     frames.update(run_input_frames(inputs.exposure, inputs.library))  # the run stores the inputs it used
+    frames = _located(inputs, frames)
     output = cfg.output.folder
     writer = RunWriter(output, new_run_id(output, inputs.inputs_sha256))  # claims a free run id
     run_id = writer.run_id
     provenance = {"run_id": run_id, "inputs_sha256": inputs.inputs_sha256,
                   "quakefolio_version": package_versions()["quakefolio"], "currency": currency, "caution": CAUTION}
     try:
-        for name, frame in frames.items():
-            writer.write_table(name, frame, units=units_for(name, currency), description=TABLES[name]["description"],
-                               provenance=provenance)
-        timings = dict(timings or {}, store_s=time.perf_counter() - t0)
+        timings = dict(timings or {})
         manifest = _manifest(inputs, run_id, "hazard" if damage is None else "all", events, counts, timings, writer,
                              frames, warnings, orchestration)
-        writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
-        if cfg.output.report:
-            from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
-
-            t1 = time.perf_counter()
-            write_report(writer.partial, writer.partial / "report.html", cache=stage_cache(inputs))
-            # the report reads the manifest, so its own time is added afterwards (the report shows the others)
-            manifest["timings_s"]["report_s"] = round(time.perf_counter() - t1, 4)
-            writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
+        report = None
+        if cfg.output.report:  # drawn from the tables in memory while they are written (the manifest it shows
+            _write_manifest(writer, manifest, timings, started)  # lacks the row counts and the store's time)
+            report = _ReportThread(writer.partial, frames, stage_cache(inputs))
+            report.start()
+        try:
+            _write_tables(writer, frames, currency, provenance, cfg.execution.max_workers)
+        finally:
+            if report is not None:
+                report.join()
+        timings["store_s"] = time.perf_counter() - t0
+        if report is not None:
+            report.result()
+            timings["report_s"] = report.seconds
+        manifest["row_counts"] = dict(writer.row_counts)
+        _write_manifest(writer, manifest, timings, started)
         return writer.commit()
     except BaseException:
         writer.abort()
         raise
+
+
+def _located(inputs, frames):
+    """Every table with ``lon`` and ``lat`` [deg] of its asset or hazard site appended (io.coordinates)."""
+    ex, hz = inputs.exposure, inputs.hazard
+    assets = Positions.of(ex.asset_id, ex.lon.to_numpy(dtype=float), ex.lat.to_numpy(dtype=float))
+    sites = Positions.of(hz.site_id, hz.lon, hz.lat)
+    return {name: with_coordinates(frame, assets, sites) for name, frame in frames.items()}
+
+
+class _ReportThread(threading.Thread):
+    """Writes the report of a partial run folder from the tables in memory, in its own thread.
+
+    Parquet encoding (in the store's threads) runs outside the GIL while the report's figures
+    are drawn; :meth:`result` raises what the report raised.
+    """
+
+    def __init__(self, folder, frames, cache=None):
+        super().__init__(name="quakefolio-report", daemon=True)
+        self.folder, self.frames, self.cache = folder, frames, cache
+        self.error, self.seconds = None, 0.0
+
+    def run(self):
+        from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
+
+        t = time.perf_counter()
+        try:
+            write_report(self.folder, self.folder / "report.html", tables=self.frames, cache=self.cache)
+        except BaseException as exc:  # noqa: BLE001 - handed to the writing thread by result()
+            self.error = exc
+        self.seconds = time.perf_counter() - t
+
+    def result(self):
+        """Raise the report's error, if any."""
+        if self.error is not None:
+            raise self.error
+
+
+def _write_tables(writer, frames, currency, provenance, workers):
+    """Write every table, ``workers`` at a time (Parquet encoding and compression run outside the GIL).
+
+    Every file is written whole by one thread; an error is raised once every write has
+    ended (the caller then removes the partial folder).
+    """
+    def write(name, frame):
+        writer.write_table(name, frame, units=units_for(name, currency, _column_names(frame)),
+                           description=TABLES[name]["description"], provenance=provenance)
+
+    with ThreadPoolExecutor(max_workers=max(1, int(workers)), thread_name_prefix="quakefolio-store") as pool:
+        futures = [pool.submit(write, name, frame) for name, frame in frames.items()]
+        for future in futures:
+            future.result()
+
+
+def _column_names(frame):
+    """Column names of a DataFrame, Arrow table or ChunkedTable."""
+    if hasattr(frame, "column_names"):
+        return list(frame.column_names)
+    if hasattr(frame, "schema"):
+        return list(frame.schema.names)
+    return [str(c) for c in frame.columns]
+
+
+def _write_manifest(writer, manifest, timings, started):
+    """Write ``manifest.json`` with ``timings_s`` rounded to 0.1 ms (and ``total_s`` when ``started`` is known)."""
+    timings = dict(timings)
+    if started is not None:
+        timings["total_s"] = timings.get("ingest_s", 0.0) + time.perf_counter() - started
+    manifest["timings_s"] = {k: round(v, 4) for k, v in timings.items()}
+    writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
 
 
 def run_pure(config_path, stages_to_run="all", orchestration=None):

@@ -219,8 +219,10 @@ def _screening_lines(run, cfg, top_n):
     target_p = scr.target_prob.iloc[0] if len(scr) else sc.get("collapse_target_prob", float("nan"))
     target_t = scr.target_years.iloc[0] if len(scr) else sc.get("collapse_target_years", float("nan"))
     flagged = scr[scr.exceeds_target].sort_values(["ratio_to_target", "asset_id"], ascending=[False, True])
-    lines = ["", f"  collapse-risk screening: {len(flagged)} of {len(scr)} assets exceed the target of "
-                 f"{target_p:.2%} collapse probability in {target_t:g} years"]
+    unscreened = int(scr.collapse_prob_in_target_years.isna().sum())  # vulnerability classes: no collapse figure
+    lines = ["", f"  collapse-risk screening: {len(flagged)} of {len(scr) - unscreened} assets exceed the target of "
+                 f"{target_p:.2%} collapse probability in {target_t:g} years"
+             + (f" ({unscreened} assets without damage states not screened)" if unscreened else "")]
     for r in flagged.head(min(3, top_n)).itertuples():
         lines.append(f"    {r.asset_id:<12}{r.building_class:<10}{r.site_id:<8}P({target_t:g} yr) "
                      f"{r.collapse_prob_in_target_years:.4f}  {r.ratio_to_target:.1f} x target")
@@ -319,10 +321,14 @@ def summary_text(run_dir, *, elapsed_s=None):
         f"  {'asset_id':<12}{'class':<10}{'site':<8}{'collapse/yr':>13}{'P(' + format(horizon, 'g') + ' yr)':>12}"
         f"{'EAL ' + cur:>14}",
     ]
-    top = loss.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).head(top_n)
+    with_states = loss[loss.collapse_prob_in_horizon.notna()]  # NaN: a class without damage states
+    top = with_states.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).head(top_n)
     for r in top.itertuples():
         lines.append(f"  {r.asset_id:<12}{r.building_class:<10}{r.site_id:<8}{r.annual_collapse_rate:>13.3e}"
                      f"{r.collapse_prob_in_horizon:>12.4f}{_money(r.eal):>14}")
+    if len(with_states) < len(loss):
+        lines.append(f"  ({len(loss) - len(with_states)} assets of classes given by a vulnerability table have no "
+                     "damage states, hence no collapse figures)")
     for w in manifest.get("warnings", []):
         lines.append(f"  note: {w}")
     lines += _screening_lines(run, cfg, top_n)

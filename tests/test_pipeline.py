@@ -13,7 +13,7 @@ from quakefolio.pipeline import stages
 from quakefolio.pipeline.runner import run_pure
 from quakefolio.pipeline.io.store import RunWriter, latest_run, read_table, table_metadata
 
-TABLES = ["site_hazard", "hazard_at_return_periods", "asset_damage", "asset_loss", "asset_loss_curve",
+TABLES = ["hazard_sites", "site_hazard", "hazard_at_return_periods", "asset_damage", "asset_loss", "asset_loss_curve",
           "collapse_screening", "site_risk_targeted_im", "run_assets", "run_fragility",
           "asset_consequences", "portfolio_consequences"]  # people and time
 

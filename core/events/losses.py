@@ -27,7 +27,10 @@ from quakefolio.core.events.eventset import damage_block_rng
 from quakefolio.core.events.portfolio import (
     aal_with_standard_error, apply_policy, expected_loss_ratio, expected_loss_ratios,
 )
-from quakefolio.core.events.secondary import group_factors, sample_correlated_loss_ratio
+from quakefolio.core.events.secondary import correlated_uniform, group_factors, sample_correlated_loss_ratio
+from quakefolio.core.vulnerability import (
+    VulnerabilityTable, mean_loss_ratio_at, vulnerability_loss_ratios, vulnerability_quantile,
+)
 
 __all__ = [
     "event_loss_ratio",
@@ -51,7 +54,9 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
     x : ndarray, shape (n_events, n_pairs) [IM units]
         Intensity at the class's unique (site, class) pairs.
     medians, betas, mean_damage_ratio, cov : ndarray, shape (n_ds,)
-        The class's damage states (:func:`expected_loss_ratio`, :func:`sample_loss_ratio`).
+        The class's damage states (:func:`expected_loss_ratio`, :func:`sample_loss_ratio`); for a
+        vulnerability class ``medians`` is its
+        :class:`~quakefolio.core.vulnerability.VulnerabilityTable` (the others unused).
     pair : ndarray of int, shape (n_assets,)
         Pair of each asset of the class.
     loss_model : str
@@ -78,6 +83,9 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
     -------
     ndarray, shape (n_events, n_assets) [-]
     """
+    if isinstance(medians, VulnerabilityTable):
+        return _vulnerability_ratio(x, medians, pair, loss_model, seed, blocks, class_entry, correlation, factors,
+                                    twin)
     if loss_model == "mean_damage_ratio":
         return expected_loss_ratio(x, medians, betas, mean_damage_ratio)[:, pair]
     # one generator per event block and class: identical whatever the chunking
@@ -88,6 +96,25 @@ def event_loss_ratio(x, medians, betas, mean_damage_ratio, cov, pair, *, loss_mo
         parts.append(sample_correlated_loss_ratio(rng, x[lo:hi][:, pair], medians, betas, mean_damage_ratio, cov,
                                                   f[0], f[1], correlation, twin=twin)[1])
     return np.concatenate(parts)
+
+
+def _vulnerability_ratio(x, table, pair, loss_model, seed, blocks, class_entry, correlation, factors, twin):
+    """:func:`event_loss_ratio` of a vulnerability class: its mean at ``x``, or one draw per asset-event.
+
+    Draws by the inverse transform (:func:`quakefolio.core.vulnerability.vulnerability_quantile`) of
+    one own uniform per asset-event from the class entry's stream of each block, made
+    group-correlated through the loss-ratio factor (:mod:`quakefolio.core.events.secondary`) when
+    ``correlation > 0`` (the twin: the same uniforms without it).
+    """
+    if loss_model == "mean_damage_ratio":
+        return mean_loss_ratio_at(x[:, pair], table.levels, table.mean)
+    parts = []
+    for b, lo, hi in blocks:
+        u = damage_block_rng(seed, b, class_entry).random((hi - lo, len(pair)))
+        if correlation > 0 and not twin:
+            u = correlated_uniform(u, factors[lo:hi, :, 1], correlation)
+        parts.append(vulnerability_quantile(u, x[lo:hi][:, pair], *table))
+    return np.concatenate(parts) if parts else np.zeros((0, len(pair)))
 
 
 def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=None):
@@ -154,7 +181,9 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
         Sampled intensity at the sites (0 beyond the integration distance).
     classes : sequence of (assets, im index, medians, betas, mean damage ratio, cov, sites, pair)
         Per class entry: its asset indices, the IM of its fragility, its damage states,
-        its unique sites and the site pair of each of its assets.
+        its unique sites and the site pair of each of its assets.  A vulnerability class
+        gives its :class:`~quakefolio.core.vulnerability.VulnerabilityTable` in place of the
+        medians (betas, mean damage ratio and cov unused).
     value, deductible, limit : ndarray, shape (n_assets,) [currency]
     loss_model, seed : as :func:`event_loss_ratio`
     blocks : sequence of (block index, first row, stop row)
@@ -198,8 +227,12 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
         x = im[:, i_im, usites]
         net_k = None
         if loss_model == "mean_damage_ratio":  # net: expected over the loss distribution given x
-            ratio, net_ratio = expected_loss_ratios(x, medians, betas, mdr, cov, value[assets], deductible[assets],
-                                                    limit[assets], pair=pair)
+            if isinstance(medians, VulnerabilityTable):
+                ratio, net_ratio = vulnerability_loss_ratios(x, *medians, value[assets], deductible[assets],
+                                                             limit[assets], pair=pair)
+            else:
+                ratio, net_ratio = expected_loss_ratios(x, medians, betas, mdr, cov, value[assets],
+                                                        deductible[assets], limit[assets], pair=pair)
             net_k = value[assets] * net_ratio
         else:
             ratio = event_loss_ratio(x, medians, betas, mdr, cov, pair, loss_model=loss_model,

@@ -113,6 +113,11 @@ def fragility_class_digests(library):
     """
     out = {}
     for code, dss in sorted(library.classes.items()):
+        if not dss.has_damage_states:
+            blob = json.dumps({"im": dss.im, "levels": dss.levels.tolist(), "mean": dss.mean_loss_ratio.tolist(),
+                               "cov": dss.cov.tolist()}, sort_keys=True)
+            out[code] = hashlib.sha256(blob.encode()).hexdigest()
+            continue
         blob = json.dumps({"im": dss.im, "names": list(dss.names), "medians": dss.medians.tolist(),
                            "betas": dss.betas.tolist(), "mdr": dss.mean_damage_ratio.tolist(),
                            "cov": dss.cov.tolist(), "collapse_index": dss.collapse_index}, sort_keys=True)

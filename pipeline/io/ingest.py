@@ -19,6 +19,7 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from quakefolio.core.curves import NoCommonRates, interpolate_period
@@ -28,6 +29,9 @@ from quakefolio.core.ims import im_period, parse_im
 from quakefolio.core.plausibility import VS30_ERROR_ABOVE_MPS, VS30_ERROR_BELOW_MPS, vs30_problem
 from quakefolio.core.validation import Interval, MaxMagnitude, Real, WholeNumber
 from quakefolio.pipeline.io.config import IM_UNITS_TO_G
+from quakefolio.pipeline.io.csv_fast import (
+    check_unique_columns, first_line, identifier_problems, parse_numbers, read_regular_csv,
+)
 from quakefolio.pipeline.io.hazard_checks import check_flat_curves, check_levels, statistic_rows, zero_curve_warning
 
 __all__ = ["UnavailableIM", "read_table", "read_exposure", "read_hazard_curves", "HazardCurves", "map_assets_to_sites",
@@ -56,10 +60,9 @@ def _read_parquet(path):
 
 def _check_delimiter(path, text):
     """Refuse a spreadsheet ``sep=`` line and a header delimited by ``;``, tab or ``|`` (no comma)."""
-    lines = [ln for ln in text.lstrip("\ufeff").splitlines() if ln.strip()]
-    if not lines:
+    head = first_line(text.lstrip("\ufeff"))
+    if head is None:
         return
-    head = lines[0].strip()
     if re.fullmatch(r"sep=.", head):
         raise InputError(path, f"first line {head!r} is a spreadsheet delimiter hint; remove it and save the file "
                                "as comma-separated values", row=1)
@@ -70,8 +73,14 @@ def _check_delimiter(path, text):
                                        "save the file as comma-separated values", row=1)
 
 
-def _read_csv(path):
-    """Frame of a CSV file (all cells as text) and the file line where each record starts."""
+def _read_csv(path, fast=True):
+    """Frame of a CSV file (all cells as text) and the file line where each record starts.
+
+    A regular file (no quotes, one record per non-empty line) is read by the vectorised
+    reader (:func:`quakefolio.pipeline.io.csv_fast.read_regular_csv`); any other file, or
+    every file with ``fast=False``, by the general reader below.  Both give the same frame
+    and rows.
+    """
     raw = path.read_bytes()
     try:
         text = raw.decode("utf-8")
@@ -80,6 +89,11 @@ def _read_csv(path):
         raise InputError(path, f"not valid UTF-8 text (byte 0x{raw[exc.start]:02x})", row=line,
                          column=_column_at_byte(raw, exc.start)) from None
     _check_delimiter(path, text)
+    del text
+    regular = read_regular_csv(path, raw) if fast else None
+    if regular is not None:
+        return regular
+    text = raw.decode("utf-8")
     _, starts = _csv_records(path, text)
     try:
         # index_col=False: a trailing delimiter on data rows must not turn the first column into an index;
@@ -108,7 +122,7 @@ def _check_columns(path, frame, columns):
     """Header: unique names, no misspelt known column, every required column present."""
     frame.columns = [str(c).strip() for c in frame.columns]
     present = list(frame.columns)
-    _check_unique_columns(path, present)
+    check_unique_columns(path, present)
     for col in present:
         if col not in columns:
             hint = did_you_mean(col, columns, cutoff=0.8, skip=present)
@@ -180,7 +194,7 @@ def _csv_records(path, text):
                 continue
             if header is None:
                 header = [f.strip().lstrip("\ufeff") for f in fields]
-                _check_unique_columns(path, header)
+                check_unique_columns(path, header)
                 continue
             if len(fields) > len(header) and any(f.strip() for f in fields[len(header):]):
                 raise InputError(path, f"record has {len(fields)} fields but the header has {len(header)}",
@@ -202,14 +216,6 @@ def _column_at_byte(raw, offset):
     except csv.Error:
         return None
     return header[index].strip().lstrip("\ufeff") if index < len(header) else None
-
-
-def _check_unique_columns(path, names):
-    seen = set()
-    for name in names:
-        if name in seen:
-            raise InputError(path, "column name appears more than once in the header", row=1, column=name)
-        seen.add(name)
 
 
 #: Declared per-cell checks of numeric columns (each a constraint with a column-wise test).
@@ -252,19 +258,11 @@ def _numbers(frame, rows, path, column, rules=(), *, required=True):
         The values, NaN where a cell is empty.
     """
     raw = frame[column]
-    if raw.dtype == object or pd.api.types.is_string_dtype(raw):
-        text = raw.astype(str).str.strip().fillna("")
-        empty = text.eq("") | text.str.lower().isin(["nan", "none", "null", "na", "n/a"])
-        values = pd.to_numeric(text.where(~empty, None), errors="coerce").to_numpy(dtype=float)
-    else:
-        text = raw.astype(str)
-        values = raw.to_numpy(dtype=float, na_value=np.nan)
-        empty = pd.Series(np.isnan(values), index=raw.index)
-    empty = empty.to_numpy()
+    values, empty, text = _parse_cells(raw)
     bad_parse = np.isnan(values) & ~empty
     if bad_parse.any():
         i = int(np.argmax(bad_parse))
-        raise InputError(path, f"expected a number, got {text.iloc[i]!r}", row=int(rows[i]), column=column)
+        raise InputError(path, f"expected a number, got {text().iloc[i]!r}", row=int(rows[i]), column=column)
     if required and empty.any():
         i = int(np.argmax(empty))
         raise InputError(path, "missing value (empty or NaN)", row=int(rows[i]), column=column)
@@ -272,29 +270,74 @@ def _numbers(frame, rows, path, column, rules=(), *, required=True):
         mask = ~empty & rule.violations(values)
         if mask.any():
             i = int(np.argmax(mask))
-            raise InputError(path, f"{rule.describe()}, got {text.iloc[i]!r}", row=int(rows[i]), column=column)
+            raise InputError(path, f"{rule.describe()}, got {text().iloc[i]!r}", row=int(rows[i]), column=column)
     return values
 
 
-def _identifiers(frame, rows, path, column, *, unique=False):
-    ids = frame[column].astype(str).str.strip().fillna("").to_numpy(dtype=object)
-    for i, v in enumerate(ids):
-        if not v or v.lower() in ("nan", "none"):
+def _parse_cells(raw):
+    """Values of a column, its empty cells and a function giving the cells' text (for errors).
+
+    Text cells: empty, ``nan``, ``none``, ``null``, ``na`` and ``n/a`` (any case, after
+    stripping) are empty; the rest parse as numbers, NaN where they do not.  Columns of
+    plain numbers are parsed by Arrow at once
+    (:func:`quakefolio.pipeline.io.csv_fast.parse_numbers`); others by pandas, with the
+    same result.
+
+    Returns
+    -------
+    values : ndarray of float (n,)
+    empty : ndarray of bool (n,)
+    text : callable returning pandas.Series of str
+        The stripped text of every cell (built only when an error needs it).
+    """
+    if raw.dtype == object or pd.api.types.is_string_dtype(raw):
+        def text():
+            return raw.astype(str).str.strip().fillna("")
+
+        quick = parse_numbers(raw)
+        if quick is not None:
+            return quick[0], quick[1], text
+        cells = text()
+        empty = cells.eq("") | cells.str.lower().isin(["nan", "none", "null", "na", "n/a"])
+        values = pd.to_numeric(cells.where(~empty, None), errors="coerce").to_numpy(dtype=float)
+        return values, empty.to_numpy(dtype=bool), lambda: cells
+    values = raw.to_numpy(dtype=float, na_value=np.nan)
+    return values, np.isnan(values), lambda: raw.astype(str)
+
+
+def _identifiers(frame, rows, path, column, *, unique=False, series=False):
+    """Identifier column, stripped; the first bad cell is an error naming its row.
+
+    Checks, in this order for each cell: not empty (nor ``nan``/``none``); no formula
+    character first and no control character; at most 128 characters; with ``unique``,
+    not seen before.  The checks are vectorised; the error names the first bad row.
+
+    Returns
+    -------
+    ndarray of str, or pandas.Series of str (``series``)
+    """
+    ids = frame[column].astype(str).str.strip().fillna("")
+    missing, formula, long = identifier_problems(ids, _FORMULA_START)
+    bad = missing | formula | long
+    if bad.any():
+        i = int(np.argmax(bad))
+        v = str(ids.iloc[i])
+        if missing[i]:
             raise InputError(path, "missing identifier", row=int(rows[i]), column=column)
-        if v.startswith(_FORMULA_START) or any(ord(ch) < 32 for ch in v):
+        if formula[i]:
             raise InputError(path, f"identifier {v[:40]!r} starts with a formula character or holds control "
                                    "characters", row=int(rows[i]), column=column)
-        if len(v) > 128:
-            raise InputError(path, "identifier longer than 128 characters", row=int(rows[i]), column=column)
-    if unique:
-        s = pd.Series(ids)
-        dup = s.duplicated().to_numpy()
+        raise InputError(path, "identifier longer than 128 characters", row=int(rows[i]), column=column)
+    if unique and pc.count_distinct(pa.array(ids, type=pa.string())).as_py() < len(ids):
+        dup = ids.duplicated().to_numpy()
         if dup.any():
             i = int(np.argmax(dup))
-            first = int(np.argmax((s == s.iloc[i]).to_numpy()))
-            raise InputError(path, f"duplicate id {ids[i]!r} (first seen at row {int(rows[first])})",
+            first = int(np.argmax((ids == ids.iloc[i]).to_numpy()))
+            raise InputError(path, f"duplicate id {str(ids.iloc[i])!r} (first seen at row {int(rows[first])})",
                              row=int(rows[i]), column=column)
-    return ids.astype(str)
+    if series:
+        return ids.reset_index(drop=True)
+    return ids.to_numpy(dtype=object).astype(str)
 
 
 def read_exposure(path, library, group_column="building_class"):
@@ -333,16 +376,16 @@ def read_exposure(path, library, group_column="building_class"):
         On the first problem, naming file, row and column.
     """
     frame, rows = read_table(path, EXPOSURE_COLUMNS)
-    out = pd.DataFrame({"asset_id": _identifiers(frame, rows, path, "asset_id", unique=True)})
+    out = pd.DataFrame({"asset_id": _identifiers(frame, rows, path, "asset_id", unique=True, series=True)})
     out["lon"] = _numbers(frame, rows, path, "lon", (LONGITUDE,))
     out["lat"] = _numbers(frame, rows, path, "lat", (LATITUDE,))
-    classes = _identifiers(frame, rows, path, "building_class")
-    unknown = ~np.isin(classes, list(library.classes))
+    classes = _identifiers(frame, rows, path, "building_class", series=True)
+    unknown = ~classes.isin(list(library.classes)).to_numpy(dtype=bool)
     if unknown.any():
         i = int(np.argmax(unknown))
-        hint = did_you_mean(classes[i], library.classes, cutoff=0.6,
+        hint = did_you_mean(str(classes.iloc[i]), library.classes, cutoff=0.6,
                             otherwise=f"; the library defines {sorted(library.classes)}")
-        raise InputError(path, f"unknown building class {str(classes[i])!r}{hint}", row=int(rows[i]),
+        raise InputError(path, f"unknown building class {str(classes.iloc[i])!r}{hint}", row=int(rows[i]),
                          column="building_class")
     out["building_class"] = classes
     out["replacement_value"] = _numbers(frame, rows, path, "replacement_value", (POSITIVE,))
@@ -362,16 +405,20 @@ def read_exposure(path, library, group_column="building_class"):
         if group_column not in frame.columns:
             raise InputError(path, "missing column named by [portfolio] secondary_group (assets sharing secondary "
                                    "uncertainty)", row=1, column=group_column)
-        out[group_column] = _identifiers(frame, rows, path, group_column)
+        out[group_column] = _identifiers(frame, rows, path, group_column, series=True)
     if "terms_group" in frame.columns:
-        out["terms_group"] = _identifiers(frame, rows, path, "terms_group")
+        out["terms_group"] = _identifiers(frame, rows, path, "terms_group", series=True)
     for col, key in _NEEDS_CONSEQUENCE.items():
-        lacking = [c for c in library.classes if not np.isfinite(getattr(library[c], key)).all()]
-        bad = (out[col].to_numpy() > 0) & np.isin(classes, lacking)
+        lacking = [c for c in library.classes
+                   if not library[c].has_damage_states or not np.isfinite(getattr(library[c], key)).all()]
+        bad = (out[col].to_numpy() > 0) & classes.isin(lacking).to_numpy(dtype=bool)
         if bad.any():
             i = int(np.argmax(bad))
-            raise InputError(path, f"{col} is given but class {str(classes[i])!r} has no {key} in the fragility "
-                                   "library", row=int(rows[i]), column=col)
+            code = str(classes.iloc[i])
+            why = (" (it is given by a vulnerability table, without damage states)"
+                   if not library[code].has_damage_states else "")
+            raise InputError(path, f"{col} is given but class {code!r} has no {key} in the fragility "
+                                   f"library{why}", row=int(rows[i]), column=col)
     out["row"] = rows
     return out
 

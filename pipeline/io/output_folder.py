@@ -1,7 +1,8 @@
 """The output folder: which folders a run may write into, and marking ours.
 
-An output folder holds ``runs/``, ``LATEST``, ``cache/``, ``reports/`` and ``comparisons/``
-(see :mod:`quakefolio.pipeline.io.store`) and the marker file ``.quakefolio-output``,
+An output folder holds ``runs/``, ``LATEST``, ``cache/``, ``reports/``, ``comparisons/``,
+``exports/`` and ``history.parquet`` (see :mod:`quakefolio.pipeline.io.store`) and the marker
+file ``.quakefolio-output``,
 written before anything else.  A run writes only into
 
 - a folder that does not exist yet (created), or an empty one;
@@ -31,7 +32,8 @@ __all__ = ["MARKER", "is_our_output", "output_folder_problem", "check_output_fol
 
 MARKER = ".quakefolio-output"
 _MARKER_TEXT = ("This folder holds quakefolio outputs: runs/ (one folder per finished run), LATEST, cache/, "
-                "reports/ and comparisons/.\nKeep this file: later runs recognise the folder by it.\n")
+                "reports/, comparisons/, exports/ and history.parquet.\nKeep this file: later runs recognise the "
+                "folder by it.\n")
 #: Cache subfolders the stages write (an older output folder may hold only these).
 _CACHE_STAGES = frozenset({"hazard", "disaggregation", "damage", "events", "whatif"})
 

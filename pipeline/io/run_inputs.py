@@ -18,9 +18,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from quakefolio.fragility.models import DamageStateSet, FragilityLibrary
+from quakefolio.fragility.models import DamageStateSet, FragilityLibrary, VulnerabilityFunction
 
-__all__ = ["run_input_frames", "library_from_frame", "ASSET_COLUMNS", "FRAGILITY_COLUMNS"]
+__all__ = ["run_input_frames", "library_from_frame", "ASSET_COLUMNS", "FRAGILITY_COLUMNS", "VULNERABILITY_COLUMNS"]
 
 #: Columns of ``run_assets`` (the exposure contract), in order.
 ASSET_COLUMNS = ("asset_id", "lon", "lat", "building_class", "replacement_value", "vs30_mps", "occupants",
@@ -32,12 +32,34 @@ FRAGILITY_COLUMNS = ("building_class", "description", "im", "damage_state", "dam
                      "is_collapse_state", "contents_damage_ratio")
 
 
+#: Columns of ``run_vulnerability`` (classes given by a vulnerability table), in order.
+VULNERABILITY_COLUMNS = ("building_class", "description", "im", "row_index", "im_level", "mean_loss_ratio", "cov")
+
+
+def _vulnerability_frame(library, classes):
+    """Long-form tables of the vulnerability classes among ``classes`` (one row per class and level)."""
+    rows = {c: [] for c in VULNERABILITY_COLUMNS}
+    for code in classes:
+        vf = library[code]
+        if vf.has_damage_states:
+            continue
+        for i in range(len(vf.levels)):
+            for col, v in zip(VULNERABILITY_COLUMNS, (code, vf.description, vf.im, i, vf.levels[i],
+                                                      vf.mean_loss_ratio[i], vf.cov[i])):
+                rows[col].append(v)
+    out = pd.DataFrame({c: pd.Series(rows[c], dtype=object) for c in VULNERABILITY_COLUMNS[:3]})
+    out["row_index"] = np.asarray(rows["row_index"], dtype=np.int32)
+    for col in VULNERABILITY_COLUMNS[4:]:
+        out[col] = np.asarray(rows[col], dtype=float)
+    return out
+
+
 def _asset_frame(exposure):
     """The exposure contract's columns of a validated exposure frame (missing optional ones as NaN)."""
-    out = pd.DataFrame({"asset_id": exposure["asset_id"].astype(str).to_numpy(dtype=object)})
+    out = pd.DataFrame({"asset_id": exposure["asset_id"].astype(str).array})  # text stays in Arrow
     for col in ASSET_COLUMNS[1:]:
         if col == "building_class":
-            out[col] = exposure[col].astype(str).to_numpy(dtype=object)
+            out[col] = exposure[col].astype(str).array
         elif col in exposure.columns:
             out[col] = exposure[col].to_numpy(dtype=float)
         else:
@@ -86,19 +108,28 @@ def run_input_frames(exposure, library, classes=None):
     -------
     dict
         ``{"run_assets": DataFrame (n_assets rows), "run_fragility": DataFrame
-        (sum of the classes' damage-state counts rows)}``; values are copied unchanged
+        (sum of the classes' damage-state counts rows)}``, and ``"run_vulnerability"`` (one row
+        per level of each class given by a vulnerability table) when there is such a class;
+        values are copied unchanged
         (float64), so :func:`library_from_frame` restores the classes exactly.
     """
     if classes is None:
-        classes = sorted(set(exposure["building_class"].astype(str)))
-    return {"run_assets": _asset_frame(exposure), "run_fragility": _fragility_frame(library, list(classes))}
+        classes = sorted(set(exposure["building_class"].astype(str).unique()))
+    out = {"run_assets": _asset_frame(exposure), "run_fragility": _fragility_frame(library, list(classes))}
+    vulnerability = _vulnerability_frame(library, list(classes))
+    if len(vulnerability):  # only runs that use a vulnerability class have the table
+        out["run_vulnerability"] = vulnerability
+    return out
 
 
-def library_from_frame(frame):
-    """A FragilityLibrary from a ``run_fragility`` table.
+def library_from_frame(frame, vulnerability=None):
+    """A FragilityLibrary from a ``run_fragility`` table (and ``run_vulnerability``, if any).
 
     Parameters
     ----------
+    vulnerability : pandas.DataFrame, optional
+        Columns :data:`VULNERABILITY_COLUMNS`, one row per class and level (``im_level``
+        [IM units, g], ``mean_loss_ratio`` [-], ``cov`` [-]).
     frame : pandas.DataFrame
         Columns :data:`FRAGILITY_COLUMNS`; one row per class and damage state
         (``median`` [IM units, g], ``beta`` [-], ``mean_damage_ratio`` [-], ``cov`` [-],
@@ -125,4 +156,11 @@ def library_from_frame(frame):
             contents_damage_ratio=(g.contents_damage_ratio.to_numpy(float) if "contents_damage_ratio" in g
                                    else None),
             description="" if description is None or description != description else str(description))
-    return FragilityLibrary(classes=classes)
+    for code, g in ([] if vulnerability is None else vulnerability.groupby("building_class", sort=True)):
+        g = g.sort_values("row_index", kind="stable")
+        description = g.description.iloc[0]
+        classes[str(code)] = VulnerabilityFunction(
+            class_code=str(code), im=str(g.im.iloc[0]), levels=g.im_level.to_numpy(float),
+            mean_loss_ratio=g.mean_loss_ratio.to_numpy(float), cov=g["cov"].to_numpy(float),
+            description="" if description is None or description != description else str(description))
+    return FragilityLibrary(classes=dict(sorted(classes.items())))

@@ -35,12 +35,14 @@ import json
 import os
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from quakefolio.core.errors import InputError, OutputError
 from quakefolio.pipeline.io.atomic import atomic_publish_folder, atomic_write_bytes, atomic_write_text, fsync_path
+from quakefolio.pipeline.io.chunked import ChunkedTable
 from quakefolio.pipeline.io.claims import OWNER_FILE, PARTIAL_PREFIX, RUN_ID, claim_run, discard, process_alive
 from quakefolio.pipeline.io.output_folder import prepare_output_folder
 
@@ -86,17 +88,40 @@ def _arrow_type(series):
     return pa.string()
 
 
+def _string_array(col):
+    """A pandas column as an Arrow ``string`` array; missing values (None, NaN) as nulls.
+
+    Columns already held by Arrow (pandas' ``str`` dtype) are cast without passing
+    through Python objects; any other column is converted cell by cell.
+    """
+    dtype = col.dtype
+    if isinstance(dtype, pd.StringDtype) and dtype.storage == "pyarrow":
+        arr = pa.array(col.array)
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        return arr.cast(pa.string())
+    values = col.astype(object)
+    values = values.where(col.notna(), None)  # missing strings (None or NaN) are nulls
+    return pa.array(values.to_numpy(), type=pa.string())
+
+
+def _schema_metadata(name, units, description, provenance):
+    meta = {"table": name, "description": description, "units": units, **provenance}
+    return {METADATA_KEY: json.dumps(meta, sort_keys=True).encode()}
+
+
 def to_arrow(frame, *, name, units, description, provenance):
-    """DataFrame to an Arrow table with an explicit schema and quakefolio metadata.
+    """DataFrame (or Arrow table) to an Arrow table with an explicit schema and quakefolio metadata.
 
     Strings are written as ``string`` (not ``large_string``) so readers and later
     concatenations agree whatever the pandas version; booleans, integers (int64 or int32)
-    and floats (float64) keep their kind, everything else becomes a string.
+    and floats (float64) keep their kind, everything else becomes a string.  An Arrow
+    table built by a stage keeps its types (``large_string`` becomes ``string``).
 
     Parameters
     ----------
-    frame : pandas.DataFrame
-        The table, long form.
+    frame : pandas.DataFrame or pyarrow.Table
+        The table.
     name : str
         Table name (stored in the metadata).
     units : dict of str -> str
@@ -112,16 +137,17 @@ def to_arrow(frame, *, name, units, description, provenance):
         Schema metadata under the key ``quakefolio``: JSON with ``table``,
         ``description``, ``units`` and the provenance entries.
     """
+    metadata = _schema_metadata(name, units, description, provenance)
+    if isinstance(frame, pa.Table):
+        fields = [pa.field(f.name, pa.string() if f.type == pa.large_string() else f.type) for f in frame.schema]
+        return frame.cast(pa.schema(fields)).replace_schema_metadata(metadata)
     fields = [pa.field(c, _arrow_type(frame[c])) for c in frame.columns]
-    meta = {"table": name, "description": description, "units": units, **provenance}
-    schema = pa.schema(fields, metadata={METADATA_KEY: json.dumps(meta, sort_keys=True).encode()})
+    schema = pa.schema(fields, metadata=metadata)
     arrays = []
     for f in fields:
         col = frame[f.name]
         if f.type == pa.string():
-            values = col.astype(object)
-            values = values.where(col.notna(), None)  # missing strings (None or NaN) are nulls
-            arrays.append(pa.array(values.to_numpy(), type=pa.string()))
+            arrays.append(_string_array(col))
         else:
             arrays.append(pa.array(col.to_numpy(), type=f.type))
     return pa.Table.from_arrays(arrays, schema=schema)
@@ -194,8 +220,9 @@ class RunWriter:
         ----------
         name : str
             Table name without ``.parquet``; must stay inside the run folder.
-        frame : pandas.DataFrame
-            The table.
+        frame : pandas.DataFrame, pyarrow.Table or ChunkedTable
+            The table; a :class:`~quakefolio.pipeline.io.chunked.ChunkedTable` is built and
+            written one chunk of assets at a time.
         units : dict of str -> str
             Unit of each column.
         description : str
@@ -213,13 +240,24 @@ class RunWriter:
         OutputError
             When the system refuses the write (permission denied, read-only file system).
         """
-        table = to_arrow(frame, name=name, units=units, description=description, provenance=provenance)
+        def arrow(part):
+            return to_arrow(part, name=name, units=units, description=description, provenance=provenance)
+
         path = self._inside(f"{name}.parquet")
         try:
-            pq.write_table(table, path, compression="zstd")
+            if isinstance(frame, ChunkedTable):
+                with pq.ParquetWriter(path, arrow(frame.build(np.zeros(0, dtype=np.int64))).schema,
+                                      compression="zstd") as out:
+                    for part in frame.chunks():
+                        out.write_table(arrow(part))
+                rows = frame.num_rows
+            else:
+                table = arrow(frame)
+                pq.write_table(table, path, compression="zstd")
+                rows = table.num_rows
         except OSError as exc:
             _reraise(exc, path, "cannot write the run table")
-        self.row_counts[name] = table.num_rows
+        self.row_counts[name] = rows
         return path
 
     def write_text(self, name, text):
@@ -567,10 +605,10 @@ class RunFolder:
         Returns
         -------
         quakefolio.fragility.FragilityLibrary or None
-            Rebuilt from ``run_fragility``
-            (:func:`quakefolio.pipeline.io.run_inputs.library_from_frame`).
+            Rebuilt from ``run_fragility`` and, when the run used a vulnerability class,
+            ``run_vulnerability`` (:func:`quakefolio.pipeline.io.run_inputs.library_from_frame`).
         """
         from quakefolio.pipeline.io.run_inputs import library_from_frame
 
         frame = self.optional_table("run_fragility")
-        return None if frame is None else library_from_frame(frame)
+        return None if frame is None else library_from_frame(frame, self.optional_table("run_vulnerability"))

@@ -1,6 +1,15 @@
 """Units and descriptions of the run-store tables (written into each file's schema metadata)."""
 
 TABLES = {
+    "hazard_sites": dict(
+        description="One row per hazard site: position (WGS84), in compute mode the site condition the "
+                    "ground-motion models used (vs30_mps: the asset's own Vs30, or the geometric mean of the Vs30 of "
+                    "the assets snapped to a grid node; [hazard] default_vs30_mps for assets without one, counted in "
+                    "n_assets_default_vs30), the assets mapped to the site and the farthest one's distance (0 for "
+                    "a site without assets).",
+        units={"lon": "deg", "lat": "deg", "vs30_mps": "m/s", "n_assets_default_vs30": "-", "n_assets": "-",
+               "max_asset_distance_km": "km"},
+    ),
     "site_hazard": dict(
         description="Tabulated site hazard curves used by the run (long form).",
         units={"im_level": "g", "annual_rate": "1/yr"},
@@ -44,7 +53,8 @@ TABLES = {
     ),
     "asset_damage": dict(
         description="Per asset and damage state: annual rate of reaching or exceeding the state and its "
-                    "probability in the horizon (Poisson); extrapolated tail shares as diagnostics.",
+                    "probability in the horizon (Poisson); extrapolated tail shares as diagnostics. Assets of a "
+                    "class given by a vulnerability table (run_vulnerability) have no damage states, hence no rows.",
         units={"annual_rate_exceed": "1/yr", "return_period_yr": "yr", "prob_exceed_in_horizon": "-",
                "horizon_yr": "yr", "tail_share_below": "-", "tail_share_above": "-"},
     ),
@@ -53,7 +63,9 @@ TABLES = {
                     "ground-up (eal) and net of the asset's per-event deductible and limit (eal_net: the "
                     "expected payment over the beta-distributed loss ratio of each damage state, closed form "
                     "by the incomplete-beta identity, never the terms applied to the mean loss), and annual "
-                    "collapse rate and probability in the horizon.",
+                    "collapse rate and probability in the horizon. For a class given by a vulnerability table "
+                    "the expectations run over its beta loss ratio at each IM, and the collapse figures are NaN "
+                    "(no damage states: no collapse figure, not zero).",
         units={"site_distance_km": "km", "replacement_value": "{currency}", "eal": "{currency}/yr",
                "eal_net": "{currency}/yr",
                "eal_ratio": "1/yr", "annual_collapse_rate": "1/yr", "collapse_prob_in_horizon": "-",
@@ -69,9 +81,11 @@ TABLES = {
         units={"eal": "{currency}/yr", "eal_ratio": "1/yr"},
     ),
     "asset_loss_curve": dict(
-        description="Per asset: annual rate at which the loss exceeds each loss ratio (beta-distributed "
-                    "loss ratio per damage state).",
-        units={"loss_ratio": "-", "loss": "{currency}", "annual_rate_exceed": "1/yr"},
+        description="Per asset (one row each, exposure order): its replacement value and the annual rate at which "
+                    "its loss ratio exceeds each configured loss ratio ([output] loss_curve_ratios), one column "
+                    "annual_rate_exceed_lr_<ratio> per ratio (beta-distributed loss ratio per damage state); the loss "
+                    "at a ratio is ratio x replacement_value.",
+        units={"replacement_value": "{currency}", "annual_rate_exceed_lr_*": "1/yr"},
     ),
     "change_assets": dict(
         description="Change report, per asset of the union of two runs (A, B): status (added, removed, kept), "
@@ -328,6 +342,15 @@ TABLES.update({
 # People and time (pipeline/stages/people.py): casualties, downtime, contents and interruption losses.
 TABLES["run_assets"]["units"].update({"contents_value": "{currency}", "interruption_value_per_day": "{currency}/day"})
 TABLES["run_fragility"]["units"].update({"contents_damage_ratio": "-"})
+TABLES["run_vulnerability"] = dict(
+    description="The vulnerability tables of the building classes this run used that are given without damage "
+                "states (written only when there is such a class): one row per class and IM level in increasing "
+                "order (row_index from 0); mean loss ratio (repair cost / replacement value) and its CoV at the "
+                "level; between levels both are linear in ln IM, 0 below the first level, held above the last; "
+                "the loss ratio at an IM is beta-distributed with that mean and CoV. Such classes have no rows in "
+                "run_fragility or asset_damage and NaN collapse figures in asset_loss.",
+    units={"im_level": "g", "mean_loss_ratio": "-", "cov": "-", "row_index": "-"},
+)
 _PEOPLE_UNITS = {"casualties": "persons", "downtime_days": "building-days", "contents_loss": "{currency}",
                  "interruption_loss": "{currency}", "present_fraction": "-"}
 TABLES.update({
@@ -396,8 +419,12 @@ TABLES.update({
 TABLES["whatif_benefit_cost"]["description"] += (" benefits_counted: this ratio counts building repair cost only "
                                                  "(whatif_people adds contents, interruption and life safety).")
 
-def units_for(name, currency):
+def units_for(name, currency, columns=None):
     """Column units of a run table, with ``{currency}`` replaced by the run's currency.
+
+    A unit key ending in ``*`` stands for every column whose name starts with the rest
+    (the per-ratio columns of ``asset_loss_curve``); given the table's ``columns``, it is
+    expanded to them.
 
     Parameters
     ----------
@@ -405,10 +432,21 @@ def units_for(name, currency):
         A table name of :data:`TABLES`.
     currency : str
         Currency code of the run (e.g. ``"EUR"``).
+    columns : list of str, optional
+        The table's columns (expands the ``*`` keys).
 
     Returns
     -------
     dict of str -> str
         Column name -> unit.
     """
-    return {k: v.replace("{currency}", currency) for k, v in TABLES[name]["units"].items()}
+    units = {}
+    if columns is not None:  # positions appended to per-asset and per-site tables (io.coordinates)
+        units.update({c: "deg" for c in ("lon", "lat") if c in columns})
+    for key, unit in TABLES[name]["units"].items():
+        unit = unit.replace("{currency}", currency)
+        if key.endswith("*") and columns is not None:
+            units.update({c: unit for c in columns if c.startswith(key[:-1])})
+        else:
+            units[key] = unit
+    return units

@@ -109,7 +109,7 @@ def _bodies(builders, run, cache):
     return {sid: bodies[sid] for sid in builders}, keys
 
 
-def build_report(run_dir, *, previous_run=None, cache=None):
+def build_report(run_dir, *, previous_run=None, tables=None, cache=None):
     """The HTML report of one run, as a string (one self-contained document).
 
     Parameters
@@ -120,6 +120,10 @@ def build_report(run_dir, *, previous_run=None, cache=None):
     previous_run : path-like, optional
         A finished run (or an output folder, for its ``LATEST`` run) to compare with;
         adds the change report (:func:`quakefolio.pipeline.compare.compare_runs`).
+    tables : Mapping name -> DataFrame, pyarrow.Table or ChunkedTable, optional
+        The run's tables still in memory (the run writing its own report), read instead of
+        the folder's files (same content; see :class:`ReportRun`).  The report's cost then
+        does not grow with re-reading them.
     cache : quakefolio.pipeline.io.cache.StageCache, optional
         The content cache of the run's output folder: sections drawn from the tables alone
         (:data:`CACHED_SECTIONS`) are taken from it when the inputs digest, the stages and the
@@ -136,7 +140,7 @@ def build_report(run_dir, *, previous_run=None, cache=None):
     InputError
         When ``run_dir`` is not a folder or holds no readable ``manifest.json``.
     """
-    run = ReportRun(run_dir)
+    run = ReportRun(run_dir, tables)
     builders = {
         "inputs": (_section_inputs, run), "hazard": (_section_hazard, run), "fragility": (_section_fragility, run),
         "damage": (_section_damage, run), "riskiest": (_section_riskiest, run),
@@ -166,7 +170,7 @@ def build_report(run_dir, *, previous_run=None, cache=None):
     )
 
 
-def write_report(run_dir, out_path, *, previous_run=None, cache=None):
+def write_report(run_dir, out_path, *, previous_run=None, tables=None, cache=None):
     """Build the report of ``run_dir`` and write it to ``out_path`` atomically; return the path.
 
     Parameters
@@ -178,6 +182,8 @@ def write_report(run_dir, out_path, *, previous_run=None, cache=None):
         its folder must exist.
     previous_run : path-like, optional
         A run to compare with (see :func:`build_report`).
+    tables : Mapping, optional
+        The run's tables still in memory (see :func:`build_report`).
     cache : quakefolio.pipeline.io.cache.StageCache, optional
         Content cache of unchanged sections (see :func:`build_report`).
 
@@ -200,7 +206,7 @@ def write_report(run_dir, out_path, *, previous_run=None, cache=None):
     never a half-written one.
     """
     out = report_target(out_path)
-    text = build_report(run_dir, previous_run=previous_run, cache=cache)
+    text = build_report(run_dir, previous_run=previous_run, tables=tables, cache=cache)
     out = report_target(out)  # again: the file may have appeared while the report was built
     try:
         return atomic_write_text(out, text)

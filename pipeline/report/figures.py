@@ -293,6 +293,57 @@ def _fragility_figure(lib, codes, counts):
     return fig
 
 
+def _vulnerability_figure(lib, codes, counts):
+    """Mean loss ratio against IM of classes given by a vulnerability table, one panel per class.
+
+    Parameters
+    ----------
+    lib : FragilityLibrary
+        The classes the run used.
+    codes : list of str
+        Classes given by a vulnerability table.
+    counts : pandas.Series
+        Number of assets per class.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        The mean (interpolation rule of :mod:`quakefolio.core.vulnerability`: linear in ln IM, 0
+        below the first level, held above the last), the band mean x (1 +- CoV) clipped to
+        [0, 1] and the table's rows as points.
+    """
+    from matplotlib.ticker import FuncFormatter
+
+    from quakefolio.core.vulnerability import cov_at
+
+    ncols = min(4, len(codes))
+    nrows = math.ceil(len(codes) / ncols)
+    fig = _new_figure(2.45 * ncols + 0.4, 2.2 * nrows + 0.5)
+    axes = fig.subplots(nrows, ncols, squeeze=False).ravel()
+    for ax in axes[len(codes):]:
+        ax.set_visible(False)
+    for ax, code in zip(axes, codes):
+        vf = lib[code]
+        xmin, xmax = float(vf.levels[0]) / 2.0, float(vf.levels[-1]) * 1.5
+        x = np.geomspace(xmin, xmax, 300)
+        mu = vf.mean_at(x)
+        sd = mu * cov_at(x, vf.levels, vf.mean_loss_ratio, vf.cov)
+        ax.fill_between(x, np.clip(mu - sd, 0, 1), np.clip(mu + sd, 0, 1), color=_TEAL, alpha=0.2, lw=0,
+                        label="mean ± 1 standard deviation")
+        ax.plot(x, mu, color=_TEAL, label="mean loss ratio")
+        ax.plot(vf.levels, vf.mean_loss_ratio, "o", color=_TEAL, ms=3, label="table rows")
+        ax.set_xscale("log")
+        ax.set_xlim(xmin, xmax)
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+        ax.set_ylim(0, 1.0)
+        ax.set_title(f"{code}  ({counts.get(code, 0)} assets)")
+        ax.set_xlabel(f"{vf.im} [g]")
+        if ax.get_subplotspec().is_first_col():
+            ax.set_ylabel("loss ratio [-]")
+    axes[0].legend(loc="upper left", fontsize=6.5, handlelength=1.4)
+    return fig
+
+
 # --- map ---------------------------------------------------------------------------------------------
 
 def _nice(x):
@@ -319,6 +370,61 @@ def _scale_bar(ax, lat0):
     ax.plot([bx, bx + bar_deg], [by, by], color=_INK, linewidth=2.5, solid_capstyle="butt")
     ax.text(bx + bar_deg / 2, by + 0.015 * (y1 - y0), f"{bar_km:g} km", ha="center", va="bottom", fontsize=7.5)
     return bar_km
+
+
+#: Above this many assets the map draws grid cells (value-weighted centres, summed values) instead of assets.
+MAP_MAX_MARKERS = 5000
+#: Cells along the longer side of the map's extent when it is aggregated.
+MAP_CELLS_ACROSS = 80
+
+
+def map_cells(d, cells_across=MAP_CELLS_ACROSS):
+    """Assets aggregated on a square grid of equal ground distance, for the map of a large portfolio.
+
+    Parameters
+    ----------
+    d : pandas.DataFrame
+        ``lon``, ``lat`` [deg], ``replacement_value`` [currency], ``eal_ratio`` [1/yr].
+    cells_across : int
+        Cells along the longer side of the assets' extent (the cell size is rounded to a
+        1-2-5 number of km).
+
+    Returns
+    -------
+    cells : pandas.DataFrame
+        One row per occupied cell: ``lon``, ``lat`` [deg] (value-weighted mean position of
+        its assets), ``replacement_value`` [currency] (sum), ``eal_ratio`` [1/yr] (sum of
+        EAL / sum of value: the cell's own EAL ratio) and ``n_assets``.
+    cell_km : float
+        Side of a cell [km].
+
+    Notes
+    -----
+    Positions are projected with an equirectangular approximation about the mean latitude
+    (x = lon cos(lat0) 111.32 km/deg, y = lat 111.32 km/deg; common practice for a city-size
+    extent), so cells are squares on the ground as the map's axes are.
+    """
+    import pandas as pd
+
+    lat0 = math.radians(float(d.lat.mean()))
+    x = d.lon.to_numpy(float) * 111.32 * math.cos(lat0)
+    y = d.lat.to_numpy(float) * 111.32
+    extent = max(float(np.ptp(x)), float(np.ptp(y)), 1e-3)
+    cell_km = _nice(extent / cells_across)
+    ix = np.floor((x - x.min()) / cell_km).astype(np.int64)
+    iy = np.floor((y - y.min()) / cell_km).astype(np.int64)
+    keys, cell = np.unique(iy * (int(ix.max()) + 1) + ix, return_inverse=True)
+    value = d.replacement_value.to_numpy(float)
+    total = np.bincount(cell, weights=value, minlength=len(keys))
+    weight = np.where(total > 0, total, 1.0)
+    cells = pd.DataFrame({
+        "lon": np.bincount(cell, weights=value * d.lon.to_numpy(float), minlength=len(keys)) / weight,
+        "lat": np.bincount(cell, weights=value * d.lat.to_numpy(float), minlength=len(keys)) / weight,
+        "replacement_value": total,
+        "eal_ratio": np.bincount(cell, weights=value * d.eal_ratio.to_numpy(float), minlength=len(keys)) / weight,
+        "n_assets": np.bincount(cell, minlength=len(keys)),
+    })
+    return cells, cell_km
 
 
 def _map_figure(d, cur):

@@ -3,8 +3,10 @@ from __future__ import annotations
 
 import pandas as pd
 
-from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, PREDATES_NOTE, TOP_ASSETS
-from quakefolio.pipeline.report.figures import _figure_html, _fragility_figure, _map_figure
+from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, PREDATES_NOTE, TOP_ASSETS, state_catalogue, top_rows
+from quakefolio.pipeline.report.figures import (
+    MAP_MAX_MARKERS, _figure_html, _fragility_figure, _map_figure, _vulnerability_figure, map_cells,
+)
 from quakefolio.pipeline.report.html import _cell, _esc, _g, _money, _note, _p, _pct, _prob, _rate, _table
 
 
@@ -39,29 +41,58 @@ def _section_fragility(run):
     lib = run.fragility()
     if lib is None:
         return _note(PREDATES_NOTE.format(what="fragility curves"))
-    loss = run.table("asset_loss")
-    used = sorted(set(loss.building_class)) if loss is not None and len(loss) else sorted(lib.classes)
-    codes = [c for c in used if c in lib.classes]
-    if not codes:
+    loss = run.table("asset_loss", columns=["building_class"])
+    used = sorted(set(loss.building_class.unique())) if loss is not None and len(loss) else sorted(lib.classes)
+    every = [c for c in used if c in lib.classes]
+    if not every:
         return _note("No building class of the run can be drawn.")
+    codes = [c for c in every if lib[c].has_damage_states]
     counts = loss.building_class.value_counts() if loss is not None else pd.Series(dtype=int)
-    out = [_figure_html(_fragility_figure(lib, codes, counts), "fragility curves per building class",
-                        "Figure: lognormal fragility functions, probability of reaching or exceeding each "
-                        "damage state [-] against the class's intensity measure [g] on a log axis (from the "
-                        "first state's median / exp(2.5 beta) to the last state's median x exp(2.5 beta))."),
-           "<h3>Parameters</h3>",
-           _table(["class", "IM", "damage state", "median [g]#", "beta [-]#", "mean damage ratio [-]#",
-                   "loss-ratio CoV [-]#"], _fragility_rows(lib, codes))]
+    out = [] if not codes else [
+        _figure_html(_fragility_figure(lib, codes, counts), "fragility curves per building class",
+                     "Figure: lognormal fragility functions, probability of reaching or exceeding each "
+                     "damage state [-] against the class's intensity measure [g] on a log axis (from the "
+                     "first state's median / exp(2.5 beta) to the last state's median x exp(2.5 beta))."),
+        "<h3>Parameters</h3>",
+        _table(["class", "IM", "damage state", "median [g]#", "beta [-]#", "mean damage ratio [-]#",
+                "loss-ratio CoV [-]#"], _fragility_rows(lib, codes))]
+    out += _vulnerability_part(lib, [c for c in every if not lib[c].has_damage_states], counts)
+    codes = every
     descr = [(c, lib[c].description) for c in codes if getattr(lib[c], "description", "")]
     if descr:
         out.append("<p>" + "; ".join(f"<b>{_esc(c)}</b>: {_esc(d)}" for c, d in descr) + ".</p>")
     return "".join(out)
 
 
+def _vulnerability_part(lib, codes, counts):
+    """Figure, table and note of the classes given by a vulnerability table (none: nothing)."""
+    if not codes:
+        return []
+    rows = [[code if i == 0 else "", lib[code].im if i == 0 else "", _cell(f"{x:g}", x), _cell(f"{m:.3f}", m),
+             _cell(_g(c, 2), c)]
+            for code in codes for i, (x, m, c) in enumerate(zip(lib[code].levels, lib[code].mean_loss_ratio,
+                                                                  lib[code].cov))]
+    return [
+        "<h3>Classes given by a vulnerability table</h3>",
+        _figure_html(_vulnerability_figure(lib, codes, counts), "vulnerability functions per building class",
+                     "Figure: mean loss ratio (repair cost / replacement value) [-] against the class's intensity "
+                     "measure [g] on a log axis, linear in ln IM between the table's rows (points), 0 below the "
+                     "first row and held above the last; the band is the mean ± one standard deviation of the "
+                     "beta-distributed loss ratio."),
+        _table(["class", "IM", "IM level [g]#", "mean loss ratio [-]#", "loss-ratio CoV [-]#"], rows),
+        _note("These classes have no damage states: their assets have no damage-state rates (no rows in the "
+              "damage table and asset_damage), no collapse figures (n/a, NaN in asset_loss) and are not "
+              "screened for collapse; their EAL, loss curves and event losses come from the table."),
+    ]
+
+
 # --- damage table ------------------------------------------------------------------------------------
 
 def _damage_rows(dmg, loss, shown, idx):
-    """Table rows: asset, class, site, IM, then rates [1/yr] and probabilities per damage state."""
+    """Table rows: asset, class, site, IM, then rates [1/yr] and probabilities per damage state.
+
+    ``dmg`` holds the ``asset_damage`` rows of the ``shown`` assets, ``loss`` their ``asset_loss`` rows.
+    """
     rate = dmg.pivot_table(index="asset_id", columns="damage_state_index", values="annual_rate_exceed", aggfunc="first")
     prob = dmg.pivot_table(index="asset_id", columns="damage_state_index", values="prob_exceed_in_horizon",
                            aggfunc="first")
@@ -102,24 +133,25 @@ def _section_damage(run):
     str
         HTML of the section body.
     """
-    dmg = run.table("asset_damage")
+    cat = state_catalogue(run)
     loss = run.table("asset_loss")
-    if dmg is None or not len(dmg) or loss is None:
+    if cat is None or not len(cat) or loss is None or not len(loss):
         return _note("This run holds no per-asset results (hazard stage only).")
     horizon = run.horizon
-    idx = sorted(set(dmg.damage_state_index))
-    names = dmg.groupby("damage_state_index").damage_state.agg(lambda s: sorted(set(s)))
+    idx = sorted(set(cat.damage_state_index))
+    names = cat.groupby("damage_state_index").damage_state.agg(lambda s: sorted(set(s)))
     labels = {i: (names[i][0] if len(names[i]) == 1 else f"DS{i}") for i in idx}
-    order = loss.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).asset_id
-    rows = _damage_rows(dmg, loss, list(order[:MAX_TABLE_ROWS]), idx)
+    shown = top_rows(loss, "collapse_prob_in_horizon", MAX_TABLE_ROWS)
+    dmg = run.asset_rows("asset_damage", list(shown.asset_id))
+    rows = _damage_rows(dmg, shown, list(shown.asset_id), idx)
     headers = ["asset", "class", "site", "IM"] + [f"{labels[i]}#" for i in idx] * 2
     groups = [("", 4), ("annual rate of reaching or exceeding [1/yr]", len(idx)),
               (f"probability in {horizon:g} yr [-]", len(idx))]
     out = [_p(f"Per asset and damage state: the annual rate of reaching or exceeding the state [1/yr] and the "
               f"probability of that in {horizon:g} years (Poisson, P = 1 - exp(-rate x {horizon:g})). Click a column "
-              "header to sort."), _state_names_note(dmg, names)]
-    if len(order) > MAX_TABLE_ROWS:
-        out.append(_note(f"Showing {MAX_TABLE_ROWS:,} of {len(order):,} assets (highest collapse probability first); "
+              "header to sort."), _state_names_note(cat, names)]
+    if len(loss) > MAX_TABLE_ROWS:
+        out.append(_note(f"Showing {MAX_TABLE_ROWS:,} of {len(loss):,} assets (highest collapse probability first); "
                          "every asset is in asset_damage.parquet of the run folder."))
     out.append(_table(headers, rows, sortable=True, scroll=True, groups=groups, wide=True))
     return "".join(out)
@@ -143,7 +175,7 @@ def _section_riskiest(run):
     if loss is None or not len(loss):
         return _note("This run holds no per-asset results (hazard stage only).")
     cur, h = run.currency, run.horizon
-    top = loss.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).head(TOP_ASSETS)
+    top = top_rows(loss, "collapse_prob_in_horizon", TOP_ASSETS)
     rows = [[r.asset_id, r.building_class, r.site_id, _cell(_money(r.replacement_value), r.replacement_value),
              _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
              _cell(_prob(r.collapse_prob_in_horizon), r.collapse_prob_in_horizon),
@@ -171,26 +203,40 @@ def _section_map(run):
     str
         HTML of the section body; a one-line note for runs that predate stored inputs.
     """
-    loss = run.table("asset_loss")
+    loss = run.table("asset_loss", columns=["asset_id", "replacement_value", "eal_ratio"])
     if loss is None or not len(loss):
         return _note("This run holds no per-asset results (hazard stage only).")
-    assets = run.assets()
-    if assets is None:
+    if not run.has("run_assets"):
         return _note(PREDATES_NOTE.format(what="asset positions"))
-    d = loss.merge(assets[["asset_id", "lon", "lat"]], on="asset_id", how="left")
+    assets = run.table("run_assets", columns=["asset_id", "lon", "lat"])
+    if len(assets) == len(loss) and assets.asset_id.equals(loss.asset_id):  # the same assets in the same order
+        d = loss.assign(lon=assets.lon.to_numpy(), lat=assets.lat.to_numpy())
+    else:
+        d = loss.merge(assets, on="asset_id", how="left")
     missing = int(d.lon.isna().sum())
     d = d.dropna(subset=["lon", "lat"])
     if not len(d):
         return _note("No asset of the run has a position in the stored assets.")
     cur = run.currency
-    fig, capped, bar_km = _map_figure(d, cur)
-    caption = (f"Figure: {len(d):,} assets at their positions in the exposure the run used (WGS84 degrees); "
-               f"marker area grows with replacement value [{cur}], colour gives the expected annual loss ratio "
-               f"[‰ of value per year, classical]"
+    cells = None
+    if len(d) > MAP_MAX_MARKERS:
+        cells, cell_km = map_cells(d)
+    fig, capped, bar_km = _map_figure(d if cells is None else cells, cur)
+    if cells is None:
+        what = (f"{len(d):,} assets at their positions in the exposure the run used (WGS84 degrees); marker area "
+                f"grows with replacement value [{cur}], colour gives the expected annual loss ratio")
+    else:
+        what = (f"{len(d):,} assets of the exposure the run used, aggregated on a grid of {cell_km:g} km cells "
+                f"(more than {MAP_MAX_MARKERS:,} assets are not drawn one by one): one marker per occupied cell "
+                f"({len(cells):,}) at the value-weighted mean position of its assets (WGS84 degrees); marker area "
+                f"grows with the cell's total replacement value [{cur}], colour gives the cell's expected annual "
+                "loss ratio (its EAL over its value)")
+    caption = (f"Figure: {what} [‰ of value per year, classical]"
                f"{' (colour scale capped at the 99th percentile)' if capped else ''}. Axes are drawn with equal "
                f"ground distance per degree at latitude {d.lat.mean():.2f}° (x stretched by 1/cos(lat)); the scale "
                f"bar is {bar_km:g} km.")
-    out = [_figure_html(fig, "map of assets by replacement value and EAL ratio", caption)]
+    alt = "map of assets by replacement value and EAL ratio" + ("" if cells is None else " (grid cells)")
+    out = [_figure_html(fig, alt, caption)]
     if missing:
         out.append(_note(f"{missing} asset(s) of the run have no position in the stored assets and are not drawn."))
     return "".join(out)

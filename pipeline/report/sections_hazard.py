@@ -6,17 +6,28 @@ import numpy as np
 import pandas as pd
 
 from quakefolio.core.curves import rate_at_im
-from quakefolio.pipeline.report.context import _fractile_stats, _period_key
+from quakefolio.pipeline.report.context import _fractile_stats, _period_key, state_catalogue
 from quakefolio.pipeline.report.figures import _disagg_figure, _figure_html, _hazard_curves_figure, _uhs_figure
 from quakefolio.pipeline.report.html import _cell, _finite, _note, _p, _table
 from quakefolio.pipeline.report.sections_spectrum import _cms_part
 
 
+def _asset_ims(run):
+    """The IM of every asset's fragility (exposure order), or None without damage results."""
+    cat = state_catalogue(run)
+    if cat is None or "im" not in cat.columns:
+        return None
+    if run.has("run_fragility"):  # the class's IM, per asset of asset_loss (the same assets and order)
+        class_im = dict(zip(cat.building_class, cat.im))
+        return run.table("asset_loss", columns=["building_class"]).building_class.map(class_im)
+    return run.table("asset_damage", columns=["asset_id", "im"]).drop_duplicates("asset_id").im
+
+
 def _ranking_im(run, ims):
     """The IM that ranks the sites: the one most assets' fragility uses, else the shortest period."""
-    dmg = run.table("asset_damage")
-    if dmg is not None and len(dmg) and "im" in dmg.columns:
-        counts = dmg.drop_duplicates("asset_id").im.value_counts()
+    per_asset = _asset_ims(run)
+    if per_asset is not None and len(per_asset):
+        counts = per_asset.value_counts()
         for im in counts.index:
             if im in ims:
                 return im, "the IM the fragility of most assets uses"
@@ -97,8 +108,8 @@ def _choose_sites(run, curves, stat, im):
         The candidates and the ranking basis, for the text.
     """
     sites = sorted(set(curves.site_id))
-    loss = run.table("asset_loss")
-    used = sorted(set(loss.site_id) & set(sites)) if loss is not None and len(loss) else []
+    loss = run.table("asset_loss", columns=["site_id"])
+    used = sorted(set(loss.site_id.unique()) & set(sites)) if loss is not None and len(loss) else []
     candidates = used or sites
     scope = "sites used by assets" if used else "hazard sites"
     score, basis = _uhs_score(run, candidates, stat, im)

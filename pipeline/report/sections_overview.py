@@ -1,7 +1,7 @@
 """Report sections about the run itself: key figures, inputs and provenance, cross-checks and logic tree."""
 from __future__ import annotations
 
-from quakefolio.pipeline.report.context import _created
+from quakefolio.pipeline.report.context import _created, top_rows
 from quakefolio.pipeline.report.html import (
     _cell, _esc, _facts, _finite, _g, _html, _money, _note, _p, _pct, _prob, _table,
 )
@@ -22,7 +22,7 @@ def _key_figures(run):
         if "eal_net" in loss:
             keys.append((_money(loss.eal_net.sum(), cur + "/yr"),
                          "expected annual loss net of deductibles and limits, classical"))
-        worst = loss.sort_values(["collapse_prob_in_horizon", "asset_id"], ascending=[False, True]).iloc[0]
+        worst = top_rows(loss, "collapse_prob_in_horizon", 1).iloc[0]
         keys.append((_prob(worst.collapse_prob_in_horizon),
                      f"highest probability of collapse in {run.horizon:g} yr (asset {worst.asset_id})"))
     summ = run.table("portfolio_summary")
@@ -60,6 +60,16 @@ def _stored_as(run, role):
     return ""
 
 
+def _run_folder(run):
+    """The run folder as the config names it (``output/runs/<run_id>``, relative to the config's folder).
+
+    The final name, also while the run is being written; no local folder of the machine that ran it
+    (a manifest written before paths were stored relative keeps its absolute output folder).
+    """
+    folder = str(run.section("output").get("folder") or "").rstrip("/")
+    return f"{folder}/runs/{run.run_id}" if folder else f"runs/{run.run_id}"
+
+
 def _run_facts(run):
     """Scenario, run id, stages, hazard mode, horizon, currency, seed and digest as (label, value) pairs."""
     m = run.manifest
@@ -78,7 +88,7 @@ def _run_facts(run):
         ("currency", run.currency),
         ("seed", m.get("seed") if m.get("seed") is not None else "none (no simulation)"),
         ("inputs digest (sha256)", m.get("inputs_sha256", "n/a")),
-        ("run folder", str(run.path.parent / run.run_id)),  # the final name, also while being written
+        ("run folder", _run_folder(run)),
     ]
     interp = m.get("hazard_ims_interpolated") or []
     if interp:

@@ -26,7 +26,7 @@ def _section_people(run):
     if totals is None:
         return _note("This run holds no people-and-time tables (hazard stage only, or written before they existed).")
     cur = run.currency
-    assets = run.table("asset_consequences")
+    assets = run.table("asset_consequences", columns=["mean_present_fraction"])
     fraction = float(assets.mean_present_fraction.iloc[0]) if assets is not None and len(assets) else 1.0
     out = [_p(f"Classical annual expectations of the same model as the EAL (rate of being in each damage state "
               f"times its consequence). Casualties count the occupants present: mean share {fraction:.3f} over the "

@@ -1,7 +1,7 @@
 """Report sections on portfolio results: event-based losses, collapse-risk screening, retrofit what-if."""
 from __future__ import annotations
 
-from quakefolio.pipeline.report.context import SCREENING_ROWS
+from quakefolio.pipeline.report.context import SCREENING_ROWS, top_rows
 from quakefolio.pipeline.report.figures import _ep_curve_figure, _figure_html
 from quakefolio.pipeline.report.html import _cell, _g, _money, _note, _p, _pct, _prob, _rate, _table
 from quakefolio.pipeline.summary import loss_model_label
@@ -128,16 +128,20 @@ def _section_screening(run):
     if scr is None or not len(scr):
         return _note("This run holds no screening table (hazard stage only).")
     target_p, target_t = float(scr.target_prob.iloc[0]), float(scr.target_years.iloc[0])
-    flagged = scr[scr.exceeds_target].sort_values(["ratio_to_target", "asset_id"], ascending=[False, True])
+    flagged = scr[scr.exceeds_target]
+    unscreened = int(scr.collapse_prob_in_target_years.isna().sum())  # classes without damage states
     out = [_p(f"Each asset's annual collapse rate from this run, as a probability of collapse in {target_t:g} years "
               f"(Poisson), against the target of {_pct(target_p)} in {target_t:g} years (the risk target of "
-              f"ASCE/SEI 7-16 Chapter 21). {len(flagged)} of {len(scr)} assets exceed it.")]
+              f"ASCE/SEI 7-16 Chapter 21). {len(flagged)} of {len(scr) - unscreened} assets exceed it."
+              + (f" {unscreened} assets of classes given by a vulnerability table have no damage states and are "
+                 "not screened." if unscreened else ""))]
     by_class = scr.groupby("building_class").agg(n=("asset_id", "size"), over=("exceeds_target", "sum"),
                                                  worst=("ratio_to_target", "max")).sort_values("worst", ascending=False)
     out.append(_table(["class", "assets", "above the target", "largest ratio to target"],
-                      [[c, int(r.n), int(r.over), f"{r.worst:.2f}"] for c, r in by_class.iterrows()],
+                      [[c, int(r.n), int(r.over), "not screened" if r.worst != r.worst else f"{r.worst:.2f}"]
+                       for c, r in by_class.iterrows()],
                       caption="Buildings above the collapse-risk target, by class"))
-    shown = flagged.head(SCREENING_ROWS)
+    shown = top_rows(flagged, "ratio_to_target", SCREENING_ROWS)
     rows = [[r.asset_id, r.building_class, r.site_id, _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
              _cell(_prob(r.collapse_prob_in_target_years), r.collapse_prob_in_target_years),
              _cell(f"{r.ratio_to_target:.2f}", r.ratio_to_target)] for r in shown.itertuples()]
@@ -150,7 +154,8 @@ def _section_screening(run):
     rt = run.table("site_risk_targeted_im")
     if rt is not None and len(rt):
         rt = rt[rt.statistic == ("mean" if "mean" in set(rt.statistic) else rt.statistic.iloc[0])]
-        used = set(run.table("asset_loss").site_id) if run.table("asset_loss") is not None else set(rt.site_id)
+        loss = run.table("asset_loss", columns=["site_id"])
+        used = set(loss.site_id.unique()) if loss is not None else set(rt.site_id)
         rt = rt[rt.site_id.isin(used)]
         rows = []
         for im, grp in rt.groupby("im", sort=True):

@@ -177,7 +177,7 @@ def check_class_hazard(dss, levels_of, library_path, lines, *, reject_crossing, 
     except InputError as exc:  # located in the hazard file: say which class needed the IM
         raise InputError(exc.path, f"{exc.message} (needed by class {code!r}{of_alternative})", row=exc.row,
                          column=exc.column) from None
-    if reject_crossing and levels is not None:
+    if reject_crossing and levels is not None and dss.has_damage_states:  # a vulnerability table cannot cross
         try:
             dss.check_crossing(float(np.min(levels)), float(np.max(levels)))
         except CrossingError as exc:

@@ -106,8 +106,8 @@ def classical_by_combination(em, model, tail):
     curves = combination_curves(model, em.sites)
     out = np.zeros((len(em.combos), len(em.value)))
     for _, assets, i_im, dss, usites, pair in em.classes:
-        ds = dss.annual_rates(em.levels_g, curves[:, i_im][:, usites], tail=tail)
-        out[:, assets] = expected_annual_loss(ds, dss.mean_damage_ratio)[:, pair] * em.value[assets]
+        ds, mdr, _ = dss.loss_states(em.levels_g, curves[:, i_im][:, usites], tail=tail)
+        out[:, assets] = expected_annual_loss(ds, mdr)[:, pair] * em.value[assets]
     return out
 
 

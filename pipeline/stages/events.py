@@ -35,6 +35,7 @@ from quakefolio.core.events.programme import GroupSums, chunk_programme_loss
 from quakefolio.core.events.secondary import correlation_effect
 from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
 from quakefolio.core.loss import expected_annual_loss, expected_annual_net_loss
+from quakefolio.core.vulnerability import VulnerabilityTable
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
 from quakefolio.pipeline.stages import event_branches as eb
 from quakefolio.pipeline.stages.programme import programme_digest, programme_tables
@@ -302,6 +303,9 @@ def event_chunk(em, chunk, independent=True):
     counts = exceedance_counts(lnim, em.levels_g)
     rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
     classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
+               if dss.has_damage_states else
+               (assets, i_im, VulnerabilityTable(dss.levels, dss.mean_loss_ratio, dss.cov), None, None, None, usites,
+                pair)
                for _, assets, i_im, dss, usites, pair in em.classes]
     gt = em.group_terms
     groups = None if gt is None else GroupSums(gt.group_of_asset, len(gt.ids), stop - start)
@@ -514,8 +518,10 @@ def _classical_net(em, inputs):
     curves = _branch_mean_curves(em, inputs)
     out = np.zeros(len(em.value))
     for _, assets, i_im, dss, usites, pair in em.classes:
-        ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)
-        out[assets] = expected_annual_net_loss(ds[pair], dss.mean_damage_ratio, dss.cov, em.value[assets],
+        ds, mdr, cov = dss.loss_states(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)
+        if mdr.ndim > 1:  # a vulnerability class: bins of its own per pair
+            mdr, cov = mdr[pair], cov[pair]
+        out[assets] = expected_annual_net_loss(ds[pair], mdr, cov, em.value[assets],
                                                em.deductible[assets], em.limit[assets])
     return out
 
@@ -542,8 +548,8 @@ def _cross_checks(em, inputs, asset_sum, asset_sumsq, years, results, total_se=N
     curves = _branch_mean_curves(em, inputs)
     classical = np.zeros(len(em.value))
     for code, assets, i_im, dss, usites, pair in em.classes:
-        ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)
-        classical[assets] = expected_annual_loss(ds, dss.mean_damage_ratio)[pair] * em.value[assets]
+        ds, mdr, _ = dss.loss_states(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)
+        classical[assets] = expected_annual_loss(ds, mdr)[pair] * em.value[assets]
     aal = aal_cross_check(asset_sum[0], asset_sumsq[0], n, classical, years["ground_up"][0], standard_error=total_se)
     # event-based hazard: rate of events with IM > x, vs the classical curve, where the
     # classical rate is above 10/N (Poisson standard error sqrt(lambda / N))

@@ -199,7 +199,7 @@ def prepare_compute(config, exposure, library, lines=None, budget=None):
         library file and the class), or a source model is invalid.
     """
     hz = config.hazard
-    used = sorted(set(exposure.building_class))
+    used = sorted(set(exposure.building_class.unique()))
     needed = {library[c].im for c in used}
     ims = sorted(set(hz.ims) | needed | set(hz.cms_conditioning_ims), key=im_period)
     ids, lon, lat, vs30, site_index, dist, ref = build_sites(exposure, hz.site_spacing_km, hz.default_vs30_mps)

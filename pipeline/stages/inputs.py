@@ -11,6 +11,7 @@ from dataclasses import replace
 import numpy as np
 
 from quakefolio.fragility import load_library
+from quakefolio.pipeline.io.arrow_columns import index_of
 from quakefolio.pipeline.io.cache import StageCache
 from quakefolio.pipeline.io.config import load_config, sha256_file
 from quakefolio.pipeline.io.group_terms import group_terms_for
@@ -80,9 +81,8 @@ def load_inputs(config_or_path):
     Returns
     -------
     RunInputs
-        With ``read_s``, the wall time of this call [s].
     """
-    t0 = time.perf_counter()
+    started = time.perf_counter()
     config = config_or_path if hasattr(config_or_path, "sections") else load_config(config_or_path)
     folder_warnings = check_output_folder(config)  # where the run may write; nothing is written here
     budget = memory_budget()
@@ -112,7 +112,7 @@ def load_inputs(config_or_path):
         for bid, _, src in model.source_branches:
             hashes[f"source_model:{bid}"] = {"path": src.path, "sha256": src.sha256}
         levels_of = computed_levels(model, config.path)
-    for code in sorted(set(exposure.building_class)):
+    for code in sorted(set(exposure.building_class.unique())):
         check_class_hazard(library[code], levels_of, fr.library, lines, reject_crossing=fr.crossing == "reject")
     if model is None:
         hazard = levels_of.hazard  # with the curves interpolated across periods for the classes
@@ -130,9 +130,10 @@ def load_inputs(config_or_path):
             hazard = hazard.with_im(alt.dss.im, allow_interpolation=hz.period_interpolation)
     work = estimate_work(draft, unique_pairs(draft), budget)
     check_work(draft, work)  # before any stage: what cannot fit is refused here, naming the key
-    return replace(draft, hazard=hazard, input_hashes=frozen_mapping(hashes),
-                   inputs_sha256=inputs_digest(hashes, config), group_terms=group_terms, work=work,
-                   read_s=time.perf_counter() - t0)
+    digest = inputs_digest(hashes, config)
+    return replace(draft, hazard=hazard, input_hashes=frozen_mapping(hashes), inputs_sha256=digest,
+                   group_terms=group_terms, work=work,
+                   timings=frozen_mapping({"ingest_s": time.perf_counter() - started}))
 
 
 def with_hazard(inputs, model, hazard):
@@ -164,5 +165,7 @@ def unique_pairs(inputs):
     -------
     int
     """
-    classes = inputs.exposure.building_class.to_numpy()
-    return sum(len(np.unique(inputs.site_index[classes == code])) for code in set(classes))
+    codes = sorted(set(inputs.exposure.building_class.unique()))
+    cls = index_of(inputs.exposure.building_class, codes)
+    site = np.asarray(inputs.site_index, dtype=np.int64)
+    return len(np.unique(cls * (int(site.max(initial=0)) + 1) + site))  # one key per (class, site) pair

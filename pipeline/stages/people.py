@@ -34,6 +34,7 @@ from quakefolio.core.economics import benefit_cost_ratio, present_value
 from quakefolio.core.events.eventset import STREAM_OCCUPANCY, stream_rng
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, tvar, year_loss
 from quakefolio.core.whatif import change, paired_aal_change
+from quakefolio.pipeline.io.arrow_columns import index_of
 
 __all__ = ["PeopleModel", "profile", "consequence_tables", "prepare_people", "chunk_consequences",
            "event_consequence_tables", "people_cache_key", "moved_people", "whatif_people_tables", "add_benefits",
@@ -83,7 +84,7 @@ def consequence_tables(inputs, classes, asset_loss):
     inputs : RunInputs
     classes : dict code -> ClassDamage
         Per-pair damage-state rates of each class.
-    asset_loss : DataFrame
+    asset_loss : DataFrame or pyarrow.Table
         The damage stage's ``asset_loss`` (building EAL per asset).
 
     Returns
@@ -92,11 +93,14 @@ def consequence_tables(inputs, classes, asset_loss):
     """
     ex = inputs.exposure
     n = len(ex)
-    codes = ex.building_class.to_numpy()
+    order = sorted(classes)
+    cls = index_of(ex.building_class, order)
     cas_unit, down, contents_ratio = np.full(n, np.nan), np.full(n, np.nan), np.full(n, np.nan)
-    for code in sorted(classes):
+    for k, code in enumerate(order):
         cd, dss = classes[code], inputs.library[code]
-        assets = np.flatnonzero(codes == code)
+        if not dss.has_damage_states:  # a vulnerability class gives no consequence per state: NaN, left out
+            continue
+        assets = np.flatnonzero(cls == k)
         ds = cd.ds_rates[np.searchsorted(cd.sites, inputs.site_index[assets])]
         cas_unit[assets] = expected_annual_consequence(ds, dss.casualty_rate)
         down[assets] = expected_annual_consequence(ds, dss.downtime_days)
@@ -109,9 +113,9 @@ def consequence_tables(inputs, classes, asset_loss):
                                                                                               np.nan, 0.0))
     bi_eal = np.where(np.nan_to_num(per_day) > 0, interruption_loss(down, per_day), np.where(np.isnan(per_day),
                                                                                               np.nan, 0.0))
-    building = asset_loss["eal"].to_numpy()
+    building = np.asarray(asset_loss["eal"].to_numpy(), dtype=float)
     assets_table = pd.DataFrame({
-        "asset_id": ex.asset_id.to_numpy(), "building_class": codes, "occupants": occupants,
+        "asset_id": ex.asset_id.array, "building_class": ex.building_class.array, "occupants": occupants,
         "mean_present_fraction": f_bar, "expected_annual_casualties": casualties,
         "expected_annual_downtime_days": down, "building_eal": building, "contents_value": contents,
         "contents_eal": contents_eal, "interruption_value_per_day": per_day, "interruption_eal": bi_eal,
@@ -159,6 +163,10 @@ class PeopleModel:
 
 
 def _class_per_state(dss):
+    """Casualty rate, downtime, contents ratio and downtime per state, shape (n_ds, 4); NaN where not
+    given (a vulnerability class: one row of NaN, none given)."""
+    if not dss.has_damage_states:
+        return np.full((1, 4), np.nan)
     table = np.stack([dss.casualty_rate, dss.downtime_days, dss.contents_damage_ratio, dss.downtime_days], axis=1)
     return table
 
@@ -297,6 +305,8 @@ def _classical_same_branch(em, inputs, curves):
     f_bar = _present_fraction(inputs.config)
     total = np.zeros(len(QUANTITIES))
     for code, assets, i_im, dss, usites, pair in em.classes:
+        if not dss.has_damage_states:  # no consequences given (weights 0)
+            continue
         ds = dss.annual_rates(em.levels_g, curves[i_im, usites], tail=inputs.config.fragility.tail)
         per_pair = np.stack([expected_annual_consequence(ds, people.per_state[code][:, k])
                              for k in range(len(QUANTITIES))], axis=1)
@@ -318,10 +328,11 @@ def people_cache_key(inputs):
         The occupancy profile and the consequences per state of every class used.
     """
     lib = inputs.library
-    used = sorted(set(inputs.exposure.building_class))
+    used = sorted(set(inputs.exposure.building_class.unique()))
     return {"occupancy_periods": [dict(p) for p in (inputs.config.exposure.occupancy_periods or ())],
             "classes": {c: [lib[c].casualty_rate.tolist(), lib[c].downtime_days.tolist(),
-                            lib[c].contents_damage_ratio.tolist()] for c in used}}
+                            lib[c].contents_damage_ratio.tolist()] if lib[c].has_damage_states else "vulnerability"
+                        for c in used}}
 
 
 # --- what-if --------------------------------------------------------------------------------------

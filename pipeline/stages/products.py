@@ -95,9 +95,8 @@ class RunInputs:
         ``[programme] group_terms_file`` with the exposure's ``terms_group`` column.
     work : quakefolio.pipeline.stages.sizes.WorkSize or None
         The estimated size of the run's work (counts and peak memory per stage).
-    read_s : float
-        Wall time of reading and validating the inputs [s] (the manifest's ``ingest_s``);
-        not part of equality.
+    timings : Mapping
+        Wall time [s] of reading and checking the inputs (``ingest_s``), for the manifest.
     """
 
     config: object
@@ -112,7 +111,7 @@ class RunInputs:
     hazard_model: object = None
     group_terms: object = None  # quakefolio.core.events.programme.GroupTerms or None
     work: object = None  # quakefolio.pipeline.stages.sizes.WorkSize or None
-    read_s: float = field(default=0.0, compare=False)
+    timings: Mapping = field(default_factory=lambda: frozen_mapping({}))
 
 
 @dataclass(frozen=True)

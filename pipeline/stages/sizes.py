@@ -66,6 +66,7 @@ from quakefolio.core.errors import InputError, locate_toml_line
 from quakefolio.core.events.eventset import EVENT_BLOCK_SIZE
 from quakefolio.core.events.gmf import EIGEN_MAX_SITES
 from quakefolio.core.hazard import DisaggBins
+from quakefolio.core.vulnerability import SUB_BINS
 from quakefolio.fragility.library import read_toml
 from quakefolio.pipeline.io.source_model import RuptureLimit
 
@@ -93,8 +94,9 @@ PAIR_BYTES = 400
 #: two models' results alive at once.
 PAIR_IM_BYTES = 130
 #: Per simulated year: branch of the year, year losses (two bases, aggregate and largest),
-#: the year table, four full EP curves sorted into tables, and their Arrow copies when stored.
-YEAR_BYTES = 700
+#: the year table, four full EP curves sorted into tables, and their Arrow copies when stored
+#: (string columns go to Arrow without Python objects since the tables are built for Arrow).
+YEAR_BYTES = 450
 #: Per event: the event set and its sort, the model of each event, the event-loss table
 #: (eight columns, two of strings) and its Arrow copy, ground-up and net losses.
 EVENT_BYTES = 420
@@ -511,8 +513,10 @@ def check_hazard_work(config, n_ruptures, n_sites, n_ims, budget):
 
 def _damage_stage(inputs, d):
     cfg = inputs.config
-    codes = set(inputs.exposure.building_class)
-    states = max(len(inputs.library[c].medians) for c in codes)
+    codes = set(inputs.exposure.building_class.unique())
+    # a vulnerability class: the bins of its integral (about SUB_BINS per hazard and table level)
+    states = max(len(inputs.library[c].medians) if inputs.library[c].has_damage_states
+                 else SUB_BINS * (len(inputs.library[c].levels) + d.levels) for c in codes)
     ratios = len(cfg.output.loss_curve_ratios)
     model = inputs.hazard_model
     branches = 1 + (len(model.source_branches) * len(model.gmm_branches)

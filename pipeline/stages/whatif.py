@@ -56,6 +56,7 @@ from quakefolio.core.events.portfolio import ep_from_years, tvar, year_loss
 from quakefolio.core.risk import risk_targeted_im
 from quakefolio.core.whatif import alternative_change, change, paired_aal_change, rerun_asset_aal
 from quakefolio.fragility import load_library
+from quakefolio.pipeline.io.arrow_columns import index_of, take_text, text_array, text_series
 from quakefolio.pipeline.io.ingest import curves_for_im
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 from quakefolio.pipeline.stages.people import add_benefits, moved_people, whatif_people_tables, year_totals
@@ -89,6 +90,19 @@ def _suggestion(name, valid, what):
     ordered = sorted(names)
     shown = ", ".join(ordered[:12]) + (", ..." if len(ordered) > 12 else "")
     return did_you_mean(name, names, cutoff=0.6, otherwise=f"; {what}: {shown}", quote="repr")
+
+
+def _need_damage_states(fail, new, selected_classes, library, by_class):
+    """An alternative compares damage states and collapse before and after: no vulnerability class on either side
+    (``by_class``: the class the alternative selects by, or None)."""
+    if not new.has_damage_states:
+        fail(f"new_class {new.class_code!r} is given by a vulnerability table: a retrofit alternative compares "
+             "damage states and collapse, so its new class needs damage states", "new_class")
+    for code in sorted(set(selected_classes)):
+        if not library[code].has_damage_states:
+            fail(f"the alternative selects assets of class {code!r}, given by a vulnerability table: a retrofit "
+                 "alternative compares damage states and collapse, so the assets it selects need them",
+                 "building_class" if code == by_class else "assets")
 
 
 def _same_fragility(a, b):
@@ -174,6 +188,7 @@ def validate(inputs, hashes=None, lines=None):
             fail(f"unknown building class {new_class!r}" + _suggestion(new_class, library.classes,
                                                                        f"{library_path} defines"), "new_class")
         dss = library[new_class]
+        _need_damage_states(fail, dss, classes[selected], inputs.library, entry["building_class"])
         # the hazard must provide the new class's IM, and its curves must not cross (as for the run's classes)
         check_class_hazard(dss, levels_of, library_path, lines, reject_crossing=cfg.fragility.crossing == "reject",
                            alternative=aid)
@@ -198,6 +213,9 @@ def _pair_kernel(inputs, dss, sites):
     """
     fr = inputs.config.fragility
     levels, rates = curves_for_im(inputs.hazard, dss.im)
+    if not dss.has_damage_states:  # a vulnerability class: no damage-state rates, its EAL from its bins
+        r, mdr, _ = dss.loss_states(levels[sites], rates[sites], tail=fr.tail)
+        return np.zeros((len(sites), 0)), expected_annual_loss(r, mdr)
     ds = dss.annual_rates(levels[sites], rates[sites], tail=fr.tail, envelope=fr.crossing == "envelope")
     return ds, expected_annual_loss(ds, dss.mean_damage_ratio)
 
@@ -216,11 +234,12 @@ def _run_asset_rates(inputs, results):
     for code, (sites, rows) in (getattr(inputs, "cached_pairs", None) or {}).items():
         if len(sites):
             parts.setdefault(code, []).append((sites, rows["ds"], rows["eal"]))
-    classes = inputs.exposure.building_class.to_numpy()
+    codes = sorted(set(inputs.exposure.building_class.unique()))
+    cls = index_of(inputs.exposure.building_class, codes)
     out = {}
-    for code in sorted(set(classes)):
+    for k, code in enumerate(codes):
         dss = inputs.library[code]
-        assets = np.flatnonzero(classes == code)
+        assets = np.flatnonzero(cls == k)
         need = np.unique(inputs.site_index[assets])
         got = parts.get(code, [])
         sites = np.concatenate([np.asarray(s) for s, _, _ in got] + [np.zeros(0, dtype=need.dtype)])
@@ -241,7 +260,8 @@ def _per_asset(inputs, by_class):
     n = len(inputs.exposure)
     collapse, eal_ratio = np.empty(n), np.empty(n)
     for code, (assets, ds, eal) in by_class.items():
-        collapse[assets] = ds[:, inputs.library[code].collapse_index]
+        dss = inputs.library[code]  # a vulnerability class: no collapse figure (NaN)
+        collapse[assets] = ds[:, dss.collapse_index] if dss.has_damage_states else np.nan
         eal_ratio[assets] = eal
     return collapse, eal_ratio
 
@@ -290,10 +310,12 @@ def screening_tables(inputs, collapse_rate):
     sc = cfg.screening
     target_p, target_t = sc.collapse_target_prob, sc.collapse_target_years
     ex = inputs.exposure
-    prob = prob_in_years(collapse_rate, target_t)
+    # NaN collapse rate (a vulnerability class: no damage states): NaN probability, not screened
+    prob = np.where(np.isnan(collapse_rate), np.nan, prob_in_years(np.nan_to_num(collapse_rate), target_t))
     assets = pd.DataFrame({
-        "asset_id": ex.asset_id.to_numpy(), "building_class": ex.building_class.to_numpy(),
-        "site_id": inputs.hazard.site_id[inputs.site_index], "annual_collapse_rate": collapse_rate,
+        "asset_id": ex.asset_id.array, "building_class": ex.building_class.array,
+        "site_id": text_series(take_text(text_array(inputs.hazard.site_id), inputs.site_index)).array,
+        "annual_collapse_rate": collapse_rate,
         "collapse_prob_in_target_years": prob, "target_prob": target_p, "target_years": target_t,
         "exceeds_target": prob > target_p, "ratio_to_target": prob / target_p,
     })
@@ -471,6 +493,7 @@ def alternative_tables(inputs, alternatives, by_class, portfolio=None, em=None, 
     value_all = ex.replacement_value.to_numpy()
     site_all = inputs.hazard.site_id[inputs.site_index]
     collapse_all, eal_ratio_all = _per_asset(inputs, by_class)
+    collapse_all = np.nan_to_num(collapse_all)  # portfolio collapse totals over the classes with damage states
     targets = {"horizon_yr": horizon, "target_prob": sc.collapse_target_prob,
                "target_years": sc.collapse_target_years}
     rps = np.asarray(cfg.portfolio.return_periods_yr, dtype=float)
