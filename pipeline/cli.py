@@ -10,7 +10,9 @@ naming the stage and the cause); 2 a problem the user can fix: bad input, an out
 folder that cannot be written (permission denied, read-only file system) or a full disk
 (the line names the stage and the path), or a Dask scheduler address that does not answer
 as a Dask scheduler; 130 Ctrl-C; 143 SIGTERM (handled as Ctrl-C: the run stops, nothing
-half-written is kept, a Prefect server this command started is stopped).  In the Prefect
+half-written is kept; a Prefect server this command was still starting is stopped, one
+already running is left for the next command).  ``quakefolio server status|stop`` shows or
+stops the shared local Prefect server.  In the Prefect
 path, Prefect's own log records go to the run's log file
 (:mod:`quakefolio.pipeline.runlog`), named on the error line, never to the terminal.
 Everything printed shows control characters escaped (:mod:`quakefolio.pipeline.terminal`).
@@ -69,6 +71,10 @@ def _parser():
     hzd.add_argument("config", help="run config file (quakefolio.toml)")
     hzd.add_argument("--quiet", action="store_true", help="print only the run folder")
     hzd.add_argument("--no-flow", action="store_true", help="run without Prefect orchestration")
+    for sp in (run, hzd):
+        sp.add_argument("--always-flow", action="store_true",
+                        help="run the Prefect flow even when every stage's result is in the cache (by default "
+                             "such a run is written without a flow run)")
     for sp in (run, hzd):
         scale = sp.add_argument_group("scale-out (overrides [execution] backend and address)")
         scale.add_argument("--executor", choices=("local", "dask"),
@@ -151,7 +157,13 @@ def _parser():
                      help="mean damage ratio of the state (required for a new state)")
     lib.add_argument("--cov", type=_non_negative_number, metavar="C", help="CoV of the state's loss ratio")
     lib.add_argument("--im", metavar="IM", help="IM of the fit, e.g. SA_1.0 (required for a new class)")
-    for sp in (sch, run, hzd, chk, cmp, rep, exp, his, fit):
+    srv = sub.add_parser(
+        "server", help="status or stop of the local Prefect server shared by commands",
+        description="The local Prefect server (127.0.0.1, database in the state folder) is started by the first "
+                    "command that needs it and reused by later ones; it stops after QUAKEFOLIO_SERVER_IDLE_S "
+                    "seconds unused (default 1800) or with 'server stop'.")
+    srv.add_argument("action", choices=("status", "stop"), help="status: print where it runs; stop: stop it now")
+    for sp in (sch, run, hzd, chk, cmp, rep, exp, his, fit, srv):
         # SUPPRESS: a --debug given before the command is not reset by the command's default
         sp.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks on errors")
     return p
@@ -241,22 +253,56 @@ def _run(args, stages_to_run="all"):
             configure_prefect(log_to=inputs.config.output.folder)  # Prefect's records to the run's log file
             from quakefolio.pipeline.orchestration import run_on_dask
 
-            run_dir = run_on_dask(Path(args.config).resolve(), address, stages_to_run=stages_to_run)
+            run_dir = run_on_dask(Path(args.config).resolve(), address, stages_to_run=stages_to_run, inputs=inputs)
         elif args.no_flow:
             from quakefolio.pipeline.runner import run_pure
 
             run_dir = run_pure(inputs, stages_to_run=stages_to_run)
         else:
-            configure_prefect(log_to=inputs.config.output.folder)
-            from quakefolio.pipeline.flow import run_flow
-
-            run_dir = run_flow(Path(args.config).resolve(), max_workers=inputs.config.execution.max_workers,
-                               stages_to_run=stages_to_run)
+            run_dir = _run_flow_shared(args.config, inputs, stages_to_run, always=args.always_flow)
     elapsed = time.perf_counter() - t0
     if args.quiet:
         print(run_dir)
     else:
         print(summary_text(run_dir, elapsed_s=elapsed))
+    return 0
+
+
+def _run_flow_shared(config, inputs, stages_to_run, always=False):
+    """The flow in this process, reporting to the shared local Prefect server (found running or started).
+
+    When a run of the same inputs and code completed before (every stage's result is in the
+    content cache), the run is written without a flow run and without Prefect: nothing is
+    computed, so there is nothing to orchestrate; the manifest says so.  ``always``
+    (``--always-flow``) runs the flow all the same.
+    """
+    from quakefolio.pipeline.runner import FROM_CACHE, every_stage_cached, run_pure
+
+    if not always and every_stage_cached(inputs, stages_to_run):
+        return run_pure(inputs, stages_to_run=stages_to_run, orchestration=FROM_CACHE)
+    configure_prefect(log_to=inputs.config.output.folder)
+    from quakefolio.pipeline.server import use_server
+
+    with use_server() as server:
+        from quakefolio.pipeline.flow import run_flow
+        from quakefolio.pipeline.orchestration import using_api
+
+        with using_api(server.url):
+            return run_flow(Path(config).resolve(), max_workers=inputs.config.execution.max_workers,
+                            stages_to_run=stages_to_run, inputs=inputs)
+
+
+def _server(args):
+    from quakefolio.pipeline.server import ServerError, server_status, stop_recorded
+
+    if args.action == "status":
+        print(server_status())
+        return 0
+    try:
+        print(stop_recorded())
+    except ServerError as exc:
+        print(f"error: server stop: {exc}", file=sys.stderr)
+        return EXIT_INTERNAL
     return 0
 
 
@@ -267,6 +313,8 @@ def _backend(args, config):
 
     if args.executor == "local" and args.address:
         raise InputError("--address", "applies to --executor dask, not --executor local")
+    if args.no_flow and args.always_flow:
+        raise InputError("--always-flow", "runs the Prefect flow; it cannot be combined with --no-flow")
     if args.no_flow and (args.executor == "dask" or args.address):
         raise InputError("--no-flow", "runs without Prefect in this process; it cannot be combined with "
                                       "--executor dask or --address")
@@ -282,22 +330,18 @@ def _schedule(args):
     load_inputs(args.config)  # validate before starting a server: a bad input starts nothing
     configure_prefect()
     from quakefolio.pipeline.scheduling import check_cron, serve_schedule
-    from quakefolio.pipeline.server import connect_or_start
+    from quakefolio.pipeline.server import use_server
 
     problem = check_cron(args.cron, args.timezone)
     if problem:
         print(f"error: schedule: --cron {args.cron!r} --timezone {args.timezone!r}: {problem}", file=sys.stderr)
         return EXIT_USER_ERROR
     print(CAUTION)
-    server = connect_or_start()
-    try:
+    with use_server() as server:  # left running for later commands; stopped when idle or by 'server stop'
         where = f"{server.url}" + (f" (database {server.database})" if server.database else "")
-        print(f"started a Prefect server at {where}" if server.owned else f"using the Prefect server at {where}",
-              flush=True)
+        print(f"using the Prefect server at {where}", flush=True)
         out = serve_schedule(Path(args.config).resolve(), args.cron, api_url=server.url, timezone=args.timezone,
                              run_once=args.run_once)
-    finally:
-        server.stop()  # only if this command started it
     if not args.run_once:
         return 0
     print(f"deployment {out['deployment']}: run {out['flow_run_id']} finished {out['state']}")
@@ -465,7 +509,8 @@ def main(argv=None):
     """
     args = _parser().parse_args(argv)
     handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "report": _report,
-                "fit-fragility": _fit_fragility, "schedule": _schedule, "export": _export, "history": _history}
+                "fit-fragility": _fit_fragility, "schedule": _schedule, "export": _export, "history": _history,
+                "server": _server}
     before = _set_sigterm(_raise_terminated)
     try:
         return handlers[args.command](args)

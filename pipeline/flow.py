@@ -22,7 +22,7 @@ from quakefolio.pipeline import progress
 from quakefolio.pipeline.runner import execute, stage_guard
 from quakefolio.pipeline.stages.inputs import load_inputs
 
-__all__ = ["portfolio_risk", "run_flow", "PrefectExecutor"]
+__all__ = ["portfolio_risk", "run_flow", "hand_over", "PrefectExecutor"]
 
 _TASK = dict(cache_policy=NO_CACHE, persist_result=False)
 
@@ -59,6 +59,8 @@ class PrefectExecutor:
     """
 
     config_path = None
+    #: what the manifest's ``orchestration`` says
+    orchestration = "Prefect flow portfolio-risk"
 
     def __init__(self):
         self._tasks = {}
@@ -146,12 +148,43 @@ def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
     """
     executor = PrefectExecutor()
     executor.config_path = config_path
-    inputs = executor.one("ingest", load_inputs, config_path)
+    inputs = executor.one("ingest", _ingest, config_path)
     return str(execute(inputs, executor, stages_to_run=stages_to_run))
 
 
-def run_flow(config_path, max_workers=2, stages_to_run="all"):
-    """Run the flow embedded with a capped thread pool.
+#: inputs already read and validated by the caller in this process, by config path (taken once)
+_READ = {}
+
+
+def _ingest(config_path):
+    """The inputs handed over by :func:`run_flow` (read once per run), else read them now."""
+    given = _READ.pop(config_path, None)
+    return given if given is not None else load_inputs(config_path)
+
+
+def hand_over(config_path, inputs, *, forget=False):
+    """Give the next flow run of ``config_path`` in this process the inputs already read.
+
+    The ``ingest`` task then takes them instead of reading every file again.
+
+    Parameters
+    ----------
+    config_path : str
+        The config path exactly as passed to the flow.
+    inputs : quakefolio.pipeline.stages.inputs.RunInputs or None
+        What :func:`quakefolio.pipeline.stages.inputs.load_inputs` returned for it; None
+        does nothing.
+    forget : bool
+        Drop what was handed over for ``config_path`` and not taken (after the flow run).
+    """
+    if forget:
+        _READ.pop(config_path, None)
+    elif inputs is not None:
+        _READ[config_path] = inputs
+
+
+def run_flow(config_path, max_workers=2, stages_to_run="all", inputs=None):
+    """Run the flow with a capped thread pool (embedded, or on the API Prefect's settings name).
 
     Parameters
     ----------
@@ -159,6 +192,8 @@ def run_flow(config_path, max_workers=2, stages_to_run="all"):
     max_workers : int
         Threads of the task runner.
     stages_to_run : {"all", "hazard"}
+    inputs : quakefolio.pipeline.stages.inputs.RunInputs, optional
+        The inputs of ``config_path`` already read in this process (read once per run).
 
     Returns
     -------
@@ -166,4 +201,8 @@ def run_flow(config_path, max_workers=2, stages_to_run="all"):
         The run folder.
     """
     runner = ThreadPoolTaskRunner(max_workers=max_workers)
-    return portfolio_risk.with_options(task_runner=runner)(str(config_path), stages_to_run)
+    hand_over(str(config_path), inputs)
+    try:
+        return portfolio_risk.with_options(task_runner=runner)(str(config_path), stages_to_run)
+    finally:
+        hand_over(str(config_path), None, forget=True)

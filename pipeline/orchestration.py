@@ -195,13 +195,14 @@ def flush_to_api(timeout_s=10.0):
             pass
 
 
-def run_on_dask(config_path, address="", *, stages_to_run="all", api_url=None):
+def run_on_dask(config_path, address="", *, stages_to_run="all", api_url=None, inputs=None):
     """Run ``portfolio-risk`` with its block tasks on Dask; returns the run folder.
 
     ``address`` is the scheduler of an existing cluster (``tcp://host:port``); empty
     starts :data:`LOCAL_CLUSTER` for this run.  ``api_url`` is the Prefect API every
-    task reports to; None connects to (or starts, and afterwards stops) the local
-    server of the state folder, or uses ``PREFECT_API_URL`` if set.
+    task reports to; None uses the shared local server of the state folder
+    (found running, or started and left running: :func:`quakefolio.pipeline.server.use_server`),
+    or ``PREFECT_API_URL`` if set.
 
     Parameters
     ----------
@@ -213,6 +214,8 @@ def run_on_dask(config_path, address="", *, stages_to_run="all", api_url=None):
         Every stage, or the hazard stage only.
     api_url : str, optional
         Prefect API URL of a running server.
+    inputs : quakefolio.pipeline.stages.inputs.RunInputs, optional
+        The inputs of ``config_path`` already read in this process (read once per run).
 
     Returns
     -------
@@ -226,17 +229,25 @@ def run_on_dask(config_path, address="", *, stages_to_run="all", api_url=None):
     """
     if address:
         check_scheduler(address)  # before Prefect is even imported: a wrong address is one line, at once
-    from quakefolio.pipeline.flow import portfolio_risk
-    from quakefolio.pipeline.server import connect_or_start
+    from quakefolio.pipeline.flow import hand_over, portfolio_risk
 
-    server = None
-    if api_url is None:
-        server = connect_or_start()
-        api_url = server.url
-    try:
-        with using_api(api_url):
-            flow = portfolio_risk.with_options(task_runner=dask_task_runner(address))
-            return Path(flow(str(Path(config_path).resolve()), stages_to_run))
-    finally:
-        if server is not None:
-            server.stop()  # only if this call started it
+    config = str(Path(config_path).resolve())
+    with _api(api_url) as url, using_api(url):
+        flow = portfolio_risk.with_options(task_runner=dask_task_runner(address))
+        hand_over(config, inputs)
+        try:
+            return Path(flow(config, stages_to_run))
+        finally:
+            hand_over(config, None, forget=True)
+
+
+@contextmanager
+def _api(url):
+    """``url`` as given, else the shared local server's (found running or started; left running)."""
+    if url is not None:
+        yield url
+        return
+    from quakefolio.pipeline.server import use_server
+
+    with use_server() as server:
+        yield server.url

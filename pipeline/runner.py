@@ -17,7 +17,9 @@ from concurrent.futures import ThreadPoolExecutor
 from importlib import metadata
 from pathlib import Path
 
-from quakefolio.core.errors import InputError
+import numpy as np
+
+from quakefolio.core.errors import InputError, OutputError
 from quakefolio.pipeline import progress
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.io.cache import digest, fragility_class_digests
@@ -36,7 +38,11 @@ from quakefolio.pipeline.stages.products import CacheCounts, EventProduct, RunIn
 from quakefolio.pipeline.stages.regions import site_input_record
 from quakefolio.pipeline.stages.sites import hazard_sites_table
 
-__all__ = ["execute", "SequentialExecutor", "write_run", "run_pure", "inputs_digest", "package_versions",
+#: The manifest's ``orchestration`` of a run that needed no flow: every stage's result was in the cache.
+FROM_CACHE = "none: every stage's result was in the content cache (no Prefect flow run)"
+
+__all__ = ["every_stage_cached", "FROM_CACHE", "execute", "SequentialExecutor", "write_run", "run_pure",
+           "inputs_digest", "package_versions",
            "StageError", "stage_guard"]
 
 _PACKAGES = ("quakefolio", "numpy", "scipy", "pandas", "pyarrow", "prefect")
@@ -117,6 +123,8 @@ class SequentialExecutor:
     """
 
     config_path = None
+    #: what the manifest's ``orchestration`` says
+    orchestration = "plain: stages in this process, no Prefect"
 
     def one(self, name, fn, *args):
         """Run a stage once, in this thread.
@@ -361,7 +369,38 @@ def execute(inputs, executor, *, stages_to_run="all"):
             counts += c
             extra, c = run_whatif(inputs, damage, events, em, executor, clock)
             counts += c
-        return executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts, started)
+        run = executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts, started,
+                           getattr(executor, "orchestration", None))
+    try:  # marks that every stage's result is now in the cache (see every_stage_cached)
+        stage_cache(inputs).put("complete-runs", _complete_key(inputs, stages_to_run), {"done": np.ones(1, np.int8)})
+    except (OSError, OutputError):
+        pass  # the run is written; a later run of the same inputs goes through the flow again
+    return run
+
+
+def _complete_key(inputs, stages_to_run):
+    return digest("complete-run", inputs.inputs_sha256, stages_to_run)  # and the code version
+
+
+def every_stage_cached(inputs, stages_to_run="all"):
+    """True if a run of these inputs (same files, settings and code) completed and the cache is on.
+
+    Every stage's result of such a run is in the content cache (a stage stores its result
+    before the run is written), so a new run computes nothing; the CLI then writes it
+    without a Prefect flow run (:data:`FROM_CACHE`).  A cache entry that has gone since (or
+    fails its digest check) is simply computed again, in this process.
+
+    Parameters
+    ----------
+    inputs : RunInputs
+        As read by :func:`quakefolio.pipeline.stages.load_inputs`.
+    stages_to_run : {"all", "hazard"}
+
+    Returns
+    -------
+    bool
+    """
+    return stage_cache(inputs).get("complete-runs", _complete_key(inputs, stages_to_run)) is not None
 
 
 def _hazard_frames(inputs):
@@ -379,7 +418,7 @@ def _hazard_frames(inputs):
     return frames
 
 
-def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, frames, warnings):
+def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, frames, warnings, orchestration):
     cfg = inputs.config
     currency = cfg.scenario.currency
     model = inputs.hazard_model
@@ -397,6 +436,7 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
         "cross_checks": None if events is None else events.checks,
         "cache": (counts or CacheCounts()).as_dict(),
         "timings_s": {k: round(v, 4) for k, v in timings.items()},
+        "orchestration": orchestration,
         "row_counts": dict(writer.row_counts),
         "units": {name: units_for(name, currency, _column_names(frame)) for name, frame in frames.items()},
         "hazard_ims_interpolated": sorted(inputs.hazard.interpolated),
@@ -417,7 +457,8 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
     return relative_paths(manifest, Path(cfg.path).parent)  # no local folder of this machine in the outputs
 
 
-def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None, started=None):
+def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts=None, started=None,
+              orchestration=None):
     """Assemble every table, write the run folder atomically, return its path.
 
     The manifest's ``timings_s`` holds the wall time [s] of every stage: ``ingest_s``
@@ -439,6 +480,8 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     counts : CacheCounts or None
     started : float or None
         ``time.perf_counter()`` when the run's stages started (for ``total_s``).
+    orchestration : str or None
+        How the stages ran (the manifest's ``orchestration``).
 
     Returns
     -------
@@ -467,11 +510,11 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
     try:
         timings = dict(timings or {})
         manifest = _manifest(inputs, run_id, "hazard" if damage is None else "all", events, counts, timings, writer,
-                             frames, warnings)
+                             frames, warnings, orchestration)
         report = None
         if cfg.output.report:  # drawn from the tables in memory while they are written (the manifest it shows
             _write_manifest(writer, manifest, timings, started)  # lacks the row counts and the store's time)
-            report = _ReportThread(writer.partial, frames)
+            report = _ReportThread(writer.partial, frames, stage_cache(inputs))
             report.start()
         try:
             _write_tables(writer, frames, currency, provenance, cfg.execution.max_workers)
@@ -505,9 +548,9 @@ class _ReportThread(threading.Thread):
     are drawn; :meth:`result` raises what the report raised.
     """
 
-    def __init__(self, folder, frames):
+    def __init__(self, folder, frames, cache=None):
         super().__init__(name="quakefolio-report", daemon=True)
-        self.folder, self.frames = folder, frames
+        self.folder, self.frames, self.cache = folder, frames, cache
         self.error, self.seconds = None, 0.0
 
     def run(self):
@@ -515,7 +558,7 @@ class _ReportThread(threading.Thread):
 
         t = time.perf_counter()
         try:
-            write_report(self.folder, self.folder / "report.html", tables=self.frames)
+            write_report(self.folder, self.folder / "report.html", tables=self.frames, cache=self.cache)
         except BaseException as exc:  # noqa: BLE001 - handed to the writing thread by result()
             self.error = exc
         self.seconds = time.perf_counter() - t
@@ -560,13 +603,15 @@ def _write_manifest(writer, manifest, timings, started):
     writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
 
 
-def run_pure(config_path, stages_to_run="all"):
+def run_pure(config_path, stages_to_run="all", orchestration=None):
     """The whole run without Prefect (same stage functions, sequential).
 
     Parameters
     ----------
     config_path : str, Path or RunInputs
     stages_to_run : {"all", "hazard"}
+    orchestration : str, optional
+        What the manifest says about how the stages ran (default: the plain path's).
 
     Returns
     -------
@@ -574,4 +619,7 @@ def run_pure(config_path, stages_to_run="all"):
         The run folder.
     """
     inputs = config_path if isinstance(config_path, RunInputs) else load_inputs(config_path)
-    return execute(inputs, SequentialExecutor(), stages_to_run=stages_to_run)
+    executor = SequentialExecutor()
+    if orchestration:
+        executor.orchestration = orchestration
+    return execute(inputs, executor, stages_to_run=stages_to_run)

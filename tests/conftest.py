@@ -16,9 +16,23 @@ if os.environ.get("PYTEST_XDIST_WORKER"):
     _WORKER_STATE.mkdir(parents=True, exist_ok=True)
     os.environ["QUAKEFOLIO_STATE"] = str(_WORKER_STATE)
 
+# a shared local Prefect server that a test leaves behind (``quakefolio run`` leaves its server
+# for later commands) is stopped by its keeper soon, whatever happens to the session
+os.environ.setdefault("QUAKEFOLIO_SERVER_IDLE_S", "120")
+
 from quakefolio.pipeline.env import configure_prefect  # noqa: E402
 
 configure_prefect()
+
+
+def pytest_sessionfinish(session, exitstatus):
+    """Stop the shared local server of this session's state folder, if a test started one."""
+    from quakefolio.pipeline.server import ServerError, stop_recorded
+
+    try:
+        stop_recorded()
+    except ServerError:
+        pass
 
 REPO = Path(__file__).resolve().parents[1]
 

@@ -34,8 +34,13 @@ def test_demo_end_to_end_cli(tmp_path):
     assert "years = 50000" in text
     cfg.write_text(text.replace("years = 50000", "years = 5000"), encoding="utf-8")
     env = dict(os.environ, QUAKEFOLIO_STATE=str(tmp_path / "state"))
-    proc = subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "run", str(cfg)],
-                          capture_output=True, text=True, env=env, timeout=600)
+    env.pop("PREFECT_API_URL", None)
+    try:
+        proc = subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "run", str(cfg)],
+                              capture_output=True, text=True, env=env, timeout=600)
+        assert (tmp_path / "state" / "server" / "server.json").exists()  # the server is left for the next command
+    finally:
+        subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "server", "stop"], env=env, timeout=120)
     assert proc.returncode == 0, proc.stderr
     out = proc.stdout + proc.stderr
     assert out.startswith("CAUTION: screening-level results")

@@ -3,7 +3,10 @@ from __future__ import annotations
 
 import errno
 import os
+from contextlib import contextmanager
 from pathlib import Path
+
+import numpy as np
 
 from quakefolio.core.errors import OutputError
 from quakefolio.pipeline.caution import CAUTION
@@ -48,10 +51,65 @@ def _safe(builder, *args):
     try:
         return builder(*args)
     except Exception as exc:  # noqa: BLE001 - one broken section must not lose the rest of the report
-        return _note(f"This section could not be drawn: {type(exc).__name__}: {exc}")
+        return _not_drawn(exc)
 
 
-def build_report(run_dir, *, previous_run=None, tables=None):
+def _not_drawn(exc):
+    return _note(f"This section could not be drawn: {type(exc).__name__}: {exc}")
+
+
+#: Sections drawn from the run's tables and its settings alone (the same for every run of the same
+#: inputs and code), kept in the content cache; the others name the run, its timings or another run.
+CACHED_SECTIONS = frozenset({"hazard", "fragility", "damage", "riskiest", "portfolio", "screening", "whatif",
+                             "people", "map"})
+
+
+def _section_key(run, sid):
+    """Content-cache key of a section of ``run``, or None when the run does not say what it was made of."""
+    sha = run.manifest.get("inputs_sha256")
+    if not isinstance(sha, str) or not sha:
+        return None
+    from quakefolio.pipeline.io.cache import digest
+
+    return digest("report-section", sid, sha, run.manifest.get("stages"))
+
+
+@contextmanager
+def _figure_style(drawing):
+    """The report's matplotlib style within the block; matplotlib is not even imported when nothing is drawn."""
+    if not drawing:
+        yield
+        return
+    import matplotlib
+
+    with matplotlib.rc_context(_RC):
+        yield
+
+
+def _bodies(builders, run, cache):
+    """Every section body; with ``cache``, the cacheable ones are taken from it or drawn and stored."""
+    bodies, todo = {}, {}
+    for sid, (fn, *args) in builders.items():
+        key = _section_key(run, sid) if cache is not None and sid in CACHED_SECTIONS else None
+        found = None if key is None else cache.get("report", key)
+        if found is not None:
+            bodies[sid] = found["html"].tobytes().decode("utf-8")
+        else:
+            todo[sid] = (key, fn, args)
+    with _figure_style(any(sid in CACHED_SECTIONS for sid in todo)):  # the others draw no figure
+        for sid, (key, fn, args) in todo.items():
+            try:
+                bodies[sid] = fn(*args)
+            except Exception as exc:  # noqa: BLE001 - as in _safe; a failed section is not cached
+                bodies[sid] = _not_drawn(exc)
+                continue
+            if key is not None:
+                cache.put("report", key, {"html": np.frombuffer(bodies[sid].encode("utf-8"), dtype=np.uint8)})
+        keys = _safe(_key_figures, run)
+    return {sid: bodies[sid] for sid in builders}, keys
+
+
+def build_report(run_dir, *, previous_run=None, tables=None, cache=None):
     """The HTML report of one run, as a string (one self-contained document).
 
     Parameters
@@ -66,6 +124,10 @@ def build_report(run_dir, *, previous_run=None, tables=None):
         The run's tables still in memory (the run writing its own report), read instead of
         the folder's files (same content; see :class:`ReportRun`).  The report's cost then
         does not grow with re-reading them.
+    cache : quakefolio.pipeline.io.cache.StageCache, optional
+        The content cache of the run's output folder: sections drawn from the tables alone
+        (:data:`CACHED_SECTIONS`) are taken from it when the inputs digest, the stages and the
+        code are the same, else drawn and stored; the document is the same byte for byte.
 
     Returns
     -------
@@ -78,8 +140,6 @@ def build_report(run_dir, *, previous_run=None, tables=None):
     InputError
         When ``run_dir`` is not a folder or holds no readable ``manifest.json``.
     """
-    import matplotlib
-
     run = ReportRun(run_dir, tables)
     builders = {
         "inputs": (_section_inputs, run), "hazard": (_section_hazard, run), "fragility": (_section_fragility, run),
@@ -88,9 +148,7 @@ def build_report(run_dir, *, previous_run=None, tables=None):
         "whatif": (_section_whatif, run), "people": (_section_people, run), "map": (_section_map, run),
         "changes": (_section_changes, run, previous_run), "checks": (_section_checks, run),
     }
-    with matplotlib.rc_context(_RC):
-        bodies = {sid: _safe(fn, *args) for sid, (fn, *args) in builders.items()}
-        keys = _safe(_key_figures, run)
+    bodies, keys = _bodies(builders, run, cache)
     scenario = run.manifest.get("scenario") or run.section("scenario").get("name", "")
     nav = "<nav><ol>" + "".join(f'<li><a href="#{sid}">{_esc(title)}</a></li>'
                                 for sid, title in SECTIONS) + "</ol></nav>"
@@ -112,7 +170,7 @@ def build_report(run_dir, *, previous_run=None, tables=None):
     )
 
 
-def write_report(run_dir, out_path, *, previous_run=None, tables=None):
+def write_report(run_dir, out_path, *, previous_run=None, tables=None, cache=None):
     """Build the report of ``run_dir`` and write it to ``out_path`` atomically; return the path.
 
     Parameters
@@ -126,6 +184,8 @@ def write_report(run_dir, out_path, *, previous_run=None, tables=None):
         A run to compare with (see :func:`build_report`).
     tables : Mapping, optional
         The run's tables still in memory (see :func:`build_report`).
+    cache : quakefolio.pipeline.io.cache.StageCache, optional
+        Content cache of unchanged sections (see :func:`build_report`).
 
     Returns
     -------
@@ -146,7 +206,7 @@ def write_report(run_dir, out_path, *, previous_run=None, tables=None):
     never a half-written one.
     """
     out = report_target(out_path)
-    text = build_report(run_dir, previous_run=previous_run, tables=tables)
+    text = build_report(run_dir, previous_run=previous_run, tables=tables, cache=cache)
     out = report_target(out)  # again: the file may have appeared while the report was built
     try:
         return atomic_write_text(out, text)
