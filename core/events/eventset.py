@@ -38,8 +38,8 @@ naming the quantity, and (for per-event quantities) a block index:
   generator per block and group, so adding a group leaves the others' factors unchanged).
 * the period of the day of each event (time-of-day occupancy):
   ``SeedSequence([seed, STREAM_OCCUPANCY])`` (:func:`stream_rng`).
-* the period of the day of each event (time-of-day occupancy):
-  ``SeedSequence([seed, STREAM_OCCUPANCY])`` (:func:`stream_rng`).
+* station-conditioned residuals of a scenario rupture ``r``, ground-motion model ``g`` and IM
+  ``k``: ``SeedSequence([seed, STREAM_CONDITIONED, r, g, k])`` (:func:`conditioned_rng`).
 
 Every stream tag of the project is defined here and nowhere else; the tags are part of
 the reproducibility contract (changing one changes the draws of its quantity).
@@ -95,7 +95,8 @@ __all__ = [
     "STREAM_BRANCH_EVENTS",
     "STREAM_GROUP_FACTOR",
     "STREAM_OCCUPANCY",
-    "STREAM_OCCUPANCY",
+    "STREAM_CONDITIONED",
+    "conditioned_rng",
     "MAX_CLASS_ENTRIES",
     "EventSet",
     "stochastic_event_set",
@@ -136,6 +137,8 @@ STREAM_BRANCH_YEARS = 12
 STREAM_BRANCH_EVENTS = 13
 #: Stream tag of the per-event period of the day (time-of-day occupancy; one generator for the event set).
 STREAM_OCCUPANCY = 17
+#: Stream tag of station-conditioned scenario residuals (per rupture, ground-motion model and IM).
+STREAM_CONDITIONED = 19
 #: Class entries per event block in the packed index of :func:`class_block_index`.
 MAX_CLASS_ENTRIES = 4096
 
@@ -548,3 +551,25 @@ def group_factor_rng(seed: int, block_index: int, group: int) -> np.random.Gener
             raise ValueError(f"{name} must be a non-negative integer; got {v!r}")
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence(
         [seed, STREAM_GROUP_FACTOR, int(block_index), int(group)])))
+
+
+def conditioned_rng(seed: int, rupture: int, gmm: int, im: int) -> np.random.Generator:
+    """The generator of station-conditioned residuals: ``SeedSequence([seed, STREAM_CONDITIONED, r, g, k])``.
+
+    Parameters
+    ----------
+    seed : int
+        The run's non-negative seed.
+    rupture, gmm, im : int
+        Scenario rupture, ground-motion model and IM index, each >= 0.
+
+    Returns
+    -------
+    numpy.random.Generator
+        A PCG64 generator independent of every other stream.
+    """
+    seed = check_seed(seed)
+    parts = [int(rupture), int(gmm), int(im)]
+    if min(parts) < 0:
+        raise ValueError(f"rupture, gmm and im must be >= 0; got {parts}")
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, STREAM_CONDITIONED, *parts])))
