@@ -177,7 +177,7 @@ def read_scenario(path):
         seen.add(r.id)
     stations = None
     if v["stations_file"] is not None:
-        stations = read_stations((path.parent / v["stations_file"]).resolve(), v["station_sigma_ln"])
+        stations = read_stations(path.parent / v["stations_file"], v["station_sigma_ln"])
     return ScenarioSpec(path, v["name"], int(v["realisations"]), int(v["seed"]),
                         tuple(float(p) for p in v["percentiles"]), v["source_branch"], ruptures, stations, digest)
 
@@ -232,7 +232,7 @@ def read_stations(path, default_sigma_ln=0.0):
     first = {}
     for i, k in enumerate(key):
         if k in first:
-            raise InputError(path, f"station {ids[i]!r} gives {ims[i]} twice (first at row {int(rows[first[k]])})",
+            raise InputError(path, f"station {str(ids[i])!r} gives {ims[i]} twice (first at row {int(rows[first[k]])})",
                              row=int(rows[i]), column="im")
         first[k] = i
     return Stations(Path(path), np.asarray(ids, dtype=object), lon, lat, np.asarray(ims, dtype=object), obs, vs30,
