@@ -111,9 +111,17 @@ def _vector(name, x, n=None, *, non_negative=False):
 
 
 def _psd_root(m: FloatArray) -> FloatArray:
-    """Symmetric square root of a symmetric positive semi-definite matrix (negative round-off -> 0)."""
+    """Symmetric square root of a symmetric positive semi-definite matrix.
+
+    Eigenvalues below ``10 n eps max|w|`` are round-off of zero (Golub & Van Loan 2013, the
+    backward error of the symmetric eigenproblem) and taken as 0, so a direction of zero
+    conditional variance (a target on an exact station) keeps exactly none.
+    """
+    if m.size == 0:
+        return np.zeros_like(m)
     w, u = np.linalg.eigh(0.5 * (m + m.T))
-    return (u * np.sqrt(np.clip(w, 0.0, None))) @ u.T
+    tol = 10.0 * m.shape[0] * np.finfo(np.float64).eps * max(float(np.max(np.abs(w))), 1.0)
+    return (u * np.sqrt(np.where(w > tol, w, 0.0))) @ u.T
 
 
 def condition_field(station_residual: ArrayLike, station_tau: ArrayLike, station_phi: ArrayLike,

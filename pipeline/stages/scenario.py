@@ -145,12 +145,17 @@ class _Sites:
         self.vs30 = inputs.hazard_model.site_vs30[used]
 
 
-def _km(lon0, lat0, lon1, lat1):
-    """Distances [km] between two point sets (one local azimuthal equidistant projection)."""
+def _local_xy(lon0, lat0, lon1, lat1):
+    """Local coordinates [km] of two point sets in one azimuthal equidistant projection (one reference)."""
     ref = mean_position(np.concatenate([lon0, lon1]), np.concatenate([lat0, lat1]))
-    x0, y0 = (np.asarray(a) for a in aeqd_forward(lon0, lat0, *ref))
-    x1, y1 = (np.asarray(a) for a in aeqd_forward(lon1, lat1, *ref))
-    return np.hypot(x0[:, None] - x1[None, :], y0[:, None] - y1[None, :])
+    x0, y0 = (np.asarray(a, dtype=float) for a in aeqd_forward(lon0, lat0, *ref))
+    x1, y1 = (np.asarray(a, dtype=float) for a in aeqd_forward(lon1, lat1, *ref))
+    return (x0, y0), (x1, y1)
+
+
+def _km(a, b):
+    """Distances [km] between the points ``a`` = (x, y) and ``b`` (same projection)."""
+    return np.hypot(a[0][:, None] - b[0][None, :], a[1][:, None] - b[1][None, :])
 
 
 def _rho(dist, range_km, spatial):
@@ -185,9 +190,8 @@ class _Conditioner:
         for k in self.ims:
             im = self.model.ims[k]
             sel = np.flatnonzero(self.st.im == im)
-            d_ts = _km(self.sites.lon, self.sites.lat, self.st.lon[sel], self.st.lat[sel])
-            d_ss = _km(self.st.lon[sel], self.st.lat[sel], self.st.lon[sel], self.st.lat[sel])
-            d_tt = _km(self.sites.lon, self.sites.lat, self.sites.lon, self.sites.lat)
+            t, s = _local_xy(self.sites.lon, self.sites.lat, self.st.lon[sel], self.st.lat[sel])
+            d_ts, d_ss, d_tt = _km(t, s), _km(s, s), _km(t, t)  # one projection: a site on a station is at 0 km
             b = float(self.sampler.range_km[k])
             for j in np.unique(ev_rup):
                 m_s, t_s, p_s = rupture_ground_motion(

@@ -1,0 +1,244 @@
+"""Scenario earthquakes: station conditioning, damage against a closed form, the scenario command.
+
+Sources of the checks are named beside each: Gaussian conditioning of a joint normal vector
+(common practice; any multivariate statistics text), the scalar normal-normal update (common
+practice), the lognormal-fragility expectation identity (common practice), scipy.stats as the
+reference for Phi.
+"""
+from __future__ import annotations
+
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.linalg as sla
+from numpy.testing import assert_allclose
+from scipy import stats
+
+from quakefolio.core.events.conditioning import condition_field, sample_conditioned
+from quakefolio.core.events.gmf import FieldSampler, ln_im
+from quakefolio.core.events.scenario import mean_exceedance, realisation_percentiles, standard_error_of_mean
+from quakefolio.pipeline.cli import main
+
+from conftest import REPO
+
+MINI = REPO / "tests" / "data" / "mini"
+
+
+def _exp_corr(x, y, b):
+    d = np.hypot(x[:, None] - x[None, :], y[:, None] - y[None, :])
+    return np.exp(-3.0 * d / b)
+
+
+def _layout(seed=3, n_s=6, n_far=2):
+    """Stations, targets on the stations, targets between them and targets 1000 km away."""
+    rng = np.random.default_rng(seed)
+    xs, ys = rng.uniform(0, 30, n_s), rng.uniform(0, 30, n_s)
+    xt = np.concatenate([xs, rng.uniform(0, 30, 4), 1000 + rng.uniform(0, 5, n_far)])
+    yt = np.concatenate([ys, rng.uniform(0, 30, 4), 1000 + rng.uniform(0, 5, n_far)])
+    x, y = np.concatenate([xs, xt]), np.concatenate([ys, yt])
+    r = _exp_corr(x, y, 20.0)
+    return r[:n_s, :n_s], r[n_s:, :n_s], r[n_s:, n_s:], n_s
+
+
+def test_two_step_conditioning_equals_the_joint_gaussian_conditional():
+    # Common practice: for a joint normal (d_t, r_s) with covariance [[S_tt, S_ts], [S_st, S_ss]],
+    # d_t | r_s ~ N(S_ts S_ss^-1 r_s, S_tt - S_ts S_ss^-1 S_st). Here d = tau eta + phi eps with
+    # eta ~ N(0, 1), eps ~ N(0, R), and r_s = d_s + e_s, e_s ~ N(0, sigma_m^2).
+    rss, rts, rtt, n_s = _layout()
+    n_t = rtt.shape[0]
+    rng = np.random.default_rng(1)
+    tau_s, phi_s = rng.uniform(0.3, 0.45, n_s), rng.uniform(0.5, 0.65, n_s)
+    tau_t, phi_t = rng.uniform(0.3, 0.45, n_t), rng.uniform(0.5, 0.65, n_t)
+    sd = rng.uniform(0.0, 0.2, n_s)
+    r = rng.normal(0.3, 0.5, n_s)
+    f = condition_field(r, tau_s, phi_s, sd, rss, rts, rtt)
+    # the two-step (Worden et al. 2018) moments of d_t
+    a = tau_t - phi_t * (f.gain @ tau_s)
+    mean_2 = tau_t * f.eta_mean + phi_t * f.eps_mean(f.eta_mean)[0]
+    cov_2 = (phi_t[:, None] * (f.root @ f.root.T) * phi_t[None, :]) + f.eta_var * np.outer(a, a)
+    # the joint route
+    s_ss = np.outer(tau_s, tau_s) + phi_s[:, None] * rss * phi_s[None, :] + np.diag(sd ** 2)
+    s_ts = np.outer(tau_t, tau_s) + phi_t[:, None] * rts * phi_s[None, :]
+    s_tt = np.outer(tau_t, tau_t) + phi_t[:, None] * rtt * phi_t[None, :]
+    mean_j = s_ts @ sla.solve(s_ss, r, assume_a="pos")
+    cov_j = s_tt - s_ts @ sla.solve(s_ss, s_ts.T, assume_a="pos")
+    assert_allclose(mean_2, mean_j, rtol=0, atol=1e-10)
+    assert_allclose(cov_2, cov_j, rtol=0, atol=1e-10)
+    # and the sampler draws from it (Monte Carlo of the same model): means within 5 standard errors
+    eta, eps = sample_conditioned(f, np.random.default_rng(5), 40_000)
+    d = tau_t * eta[:, None] + phi_t * eps
+    se = np.sqrt(np.diag(cov_j) / d.shape[0])
+    assert np.all(np.abs(d.mean(axis=0) - mean_j) <= 5 * se + 1e-12)
+    assert_allclose(np.cov(d.T), cov_j, atol=0.01)
+
+
+def test_field_at_a_station_equals_the_record_in_every_realisation():
+    # Required by the scenario issue: zero measurement sigma -> zero conditional variance at the
+    # station; every realisation reproduces ln y_s = mu_s + r_s (round-off only).
+    rss, rts, rtt, n_s = _layout(seed=11)
+    rng = np.random.default_rng(2)
+    tau, phi = rng.uniform(0.3, 0.45, n_s), rng.uniform(0.5, 0.65, n_s)
+    mu_s = np.log(rng.uniform(0.1, 0.5, n_s))
+    observed = rng.uniform(0.05, 0.8, n_s)
+    f = condition_field(np.log(observed) - mu_s, tau, phi, 0.0, rss, rts, rtt)
+    eta, eps = sample_conditioned(f, np.random.default_rng(9), 2000)
+    at_station = mu_s + tau * eta[:, None] + phi * eps[:, :n_s]  # the first n_s targets sit on the stations
+    assert_allclose(at_station, np.broadcast_to(np.log(observed), at_station.shape), rtol=0, atol=1e-7)
+
+
+def test_measurement_sigma_gives_the_scalar_normal_update_at_a_lone_station():
+    # Common practice (normal prior, normal measurement): d ~ N(0, s^2), r = d + e, e ~ N(0, m^2)
+    # -> d | r ~ N(s^2 / (s^2 + m^2) r, s^2 m^2 / (s^2 + m^2)), s^2 = tau^2 + phi^2.
+    tau, phi, m, r = 0.35, 0.55, 0.25, 0.8
+    f = condition_field([r], [tau], [phi], [m], [[1.0]], [[1.0]], [[1.0]])
+    s2 = tau ** 2 + phi ** 2
+    a = tau - phi * f.gain[0, 0] * tau
+    mean = tau * f.eta_mean + phi * f.eps_mean(f.eta_mean)[0, 0]
+    var = phi ** 2 * f.root[0, 0] ** 2 + f.eta_var * a ** 2
+    assert mean == pytest.approx(s2 / (s2 + m * m) * r, abs=1e-12)
+    assert var == pytest.approx(s2 * m * m / (s2 + m * m), abs=1e-12)
+
+
+def test_far_from_stations_the_within_event_field_is_unconditioned():
+    # Far away (correlation exp(-3 x 1000 / 20) = 0) the within-event residual is N(0, 1) again
+    # (zero gain, unit conditional variance); ln IM ~ N(mu + tau eta_hat, tau^2 v + phi^2) with the
+    # stations' between-event estimate (module notes). Monte Carlo of the same model checks both.
+    rss, rts, rtt, n_s = _layout(seed=4, n_far=2)
+    tau, phi = 0.4, 0.6
+    f = condition_field(np.full(n_s, 0.7), np.full(n_s, tau), np.full(n_s, phi), 0.0, rss, rts, rtt)
+    far = slice(rtt.shape[0] - 2, None)
+    assert_allclose(f.gain[far], 0.0, atol=1e-30)
+    assert_allclose(np.diag(f.root @ f.root.T)[far], 1.0, atol=1e-12)
+    eta, eps = sample_conditioned(f, np.random.default_rng(3), 50_000)
+    e = eps[:, far]
+    n = e.shape[0]
+    assert np.all(np.abs(e.mean(axis=0)) < 5 / np.sqrt(n))
+    assert np.all(np.abs(e.var(axis=0) - 1.0) < 5 * np.sqrt(2.0 / n))
+    total = tau * eta + phi * e[:, 0]
+    assert abs(total.mean() - tau * f.eta_mean) < 5 * np.sqrt((tau ** 2 * f.eta_var + phi ** 2) / n)
+    assert total.var() == pytest.approx(tau ** 2 * f.eta_var + phi ** 2, rel=0.03)
+
+
+def test_without_stations_the_field_is_the_unconditioned_one():
+    rtt = _exp_corr(np.array([0.0, 3.0, 9.0]), np.zeros(3), 20.0)
+    f = condition_field([], [], [], 0.0, np.zeros((0, 0)), np.zeros((3, 0)), rtt)
+    assert (f.eta_mean, f.eta_var) == (0.0, 1.0)
+    assert_allclose(f.root @ f.root.T, rtt, atol=1e-12)
+
+
+def test_scenario_damage_probability_matches_the_lognormal_closed_form():
+    # Common practice: for ln x ~ N(mu, sigma^2) and a lognormal fragility (theta, beta),
+    # E[Phi(ln(x / theta) / beta)] = Phi((mu - ln theta) / sqrt(beta^2 + sigma^2)).
+    # The field is sampled as the scenario samples it (FieldSampler + ln_im, untruncated).
+    mu, tau, phi = np.log(0.3), 0.35, 0.55
+    sampler = FieldSampler([10.0], [20.0], ["PGA"])
+    res = sampler.sample(np.random.default_rng(21), 200_000)
+    x = np.exp(ln_im(mu, tau, phi, res.eta, res.eps))[:, 0, :]  # (n, 1 site)
+    medians, betas = np.array([0.15, 0.4, 0.9]), np.array([0.6, 0.5, 0.45])
+    got = mean_exceedance(x, medians, betas)[0]
+    sigma = np.hypot(tau, phi)
+    expected = stats.norm.cdf((mu - np.log(medians)) / np.sqrt(betas ** 2 + sigma ** 2))
+    se = np.sqrt(expected * (1 - expected) / x.shape[0])  # a bound: the conditional probabilities vary less
+    assert np.all(np.abs(got - expected) <= 4 * se)
+
+
+def test_percentiles_and_standard_error_follow_numpy_and_the_sample_formula():
+    v = np.random.default_rng(0).lognormal(0, 1, (501, 3))
+    assert_allclose(realisation_percentiles(v, [50, 90]), np.percentile(v, [50, 90], axis=0), rtol=1e-15)
+    assert_allclose(standard_error_of_mean(v), v.std(axis=0, ddof=1) / np.sqrt(501), rtol=1e-13)
+    with pytest.raises(ValueError, match="percentiles"):
+        realisation_percentiles(v, [0, 120])
+
+
+# --- the command on the mini portfolio ----------------------------------------------------------
+
+_SCENARIO = """format = "quakefolio-scenario-1"
+name = "mini scenario"
+realisations = 300
+seed = 5
+percentiles = [50, 90]
+{stations}
+[[ruptures]]
+id = "fault_max"
+source_id = "test_fault"
+
+[[ruptures]]
+id = "own"
+magnitude = 6.2
+hypocentre = [10.05, 20.04, 8.0]
+strike_deg = 80.0
+dip_deg = 60.0
+rake_deg = 90.0
+lower_depth_km = 15.0
+"""
+
+
+@pytest.fixture(scope="module")
+def mini(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("scenario") / "mini"
+    shutil.copytree(MINI, folder, ignore=shutil.ignore_patterns("output"))
+    return folder
+
+
+def _run(folder, capsys, stations=""):
+    path = folder / ("scenario_st.toml" if stations else "scenario.toml")
+    path.write_text(_SCENARIO.format(stations=stations))
+    assert main(["scenario", str(folder / "quakefolio_compute.toml"), str(path), "--quiet"]) == 0
+    out = capsys.readouterr().out.strip().splitlines()[-1]
+    from pathlib import Path
+
+    run = Path(out)
+    return run, {p.stem: pd.read_parquet(p) for p in run.glob("*.parquet")}
+
+
+def test_scenario_run_writes_tables_whose_totals_agree(mini, capsys):
+    run, t = _run(mini, capsys)
+    assert (run / "report.html").read_text().count('id="scenario"') == 1
+    assert run.parent.parent.name == "scenarios"  # the portfolio runs of the output folder are untouched
+    assert set(t) >= {"scenario_ruptures", "scenario_asset_damage", "scenario_asset_loss", "scenario_portfolio_loss",
+                      "scenario_realisation_loss", "scenario_site_motion"}
+    for rid in ("fault_max", "own"):
+        assets = t["scenario_asset_loss"].query("rupture_id == @rid")
+        pf = t["scenario_portfolio_loss"].query("rupture_id == @rid")
+        real = t["scenario_realisation_loss"].query("rupture_id == @rid")
+        assert len(real) == 300 and len(assets) == 5
+        # portfolio mean loss = sum of the buildings' mean losses (linearity of the mean; exact up to round-off)
+        total = pf.query("scope == 'portfolio' and metric == 'ground_up_loss'").iloc[0]
+        assert total["mean"] == pytest.approx(assets.mean_ground_up_loss.sum(), rel=1e-12)
+        assert total["mean"] == pytest.approx(real.ground_up_loss.mean(), rel=1e-12)
+        assert total["p90"] == pytest.approx(np.percentile(real.ground_up_loss, 90), rel=1e-12)
+        by_class = pf.query("scope == 'building_class' and metric == 'ground_up_loss'")
+        assert by_class["mean"].sum() == pytest.approx(total["mean"], rel=1e-12)
+        net = pf.query("scope == 'portfolio' and metric == 'net_loss'").iloc[0]
+        assert net["mean"] <= total["mean"] + 1e-6
+        dmg = t["scenario_asset_damage"].query("rupture_id == @rid")
+        p = dmg.pivot(index="asset_id", columns="damage_state", values="prob_exceed")
+        assert ((dmg.prob_exceed >= 0) & (dmg.prob_exceed <= 1)).all() and len(p) == 5
+    # the same inputs and seed give identical tables
+    run2, t2 = _run(mini, capsys)
+    assert run2 != run
+    for name in t:
+        pd.testing.assert_frame_equal(t[name], t2[name])
+
+
+def test_station_on_a_hazard_site_fixes_the_field_there(mini, capsys):
+    # Done-when of the scenario issue: with conditioning, the field at a station matches the record
+    # within its stated uncertainty. A station with sigma_ln = 0 on hazard site of asset B5 (lon
+    # 10.000, lat 20.000, Vs30 760 m/s: its own hazard site) fixes PGA there in every realisation.
+    sites = pd.read_csv(mini / "exposure.csv")
+    b5 = sites.query("asset_id == 'B5'").iloc[0]
+    (mini / "stations.csv").write_text("station_id,lon,lat,im,observed_g,vs30_mps,sigma_ln\n"
+                                       f"ST1,{b5.lon},{b5.lat},PGA,0.21,{b5.vs30_mps},0\n"
+                                       "ST2,10.08,20.06,PGA,0.15,500,0.2\n")
+    run, t = _run(mini, capsys, stations='stations_file = "stations.csv"\n')
+    motion = t["scenario_site_motion"].query("im == 'PGA'")
+    at = motion[np.isclose(motion.lon, b5.lon) & np.isclose(motion.lat, b5.lat)]
+    assert len(at) == 2  # one per rupture
+    for col in ("median_g", "p16_g", "p84_g"):
+        assert_allclose(at[col], 0.21, rtol=1e-9)
+    st = t["scenario_stations"]
+    assert set(st.station_id) == {"ST1", "ST2"} and st.used.all()
+    elsewhere = motion[~(np.isclose(motion.lon, b5.lon) & np.isclose(motion.lat, b5.lat))]
+    assert (elsewhere.p84_g > elsewhere.p16_g).all()  # other sites keep their scatter
