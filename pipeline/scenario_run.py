@@ -34,7 +34,7 @@ def _spec(scenario_path, realisations, stations, station_sigma_ln):
     if realisations is not None:
         spec = dataclasses.replace(spec, realisations=int(realisations))
     if stations is not None:
-        spec = dataclasses.replace(spec, stations=read_stations(Path(stations).resolve(), station_sigma_ln))
+        spec = dataclasses.replace(spec, stations=read_stations(Path(stations), station_sigma_ln))
     return spec
 
 

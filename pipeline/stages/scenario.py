@@ -15,12 +15,13 @@ calls those and lays results out as tables (:mod:`quakefolio.pipeline.stages.sce
 from __future__ import annotations
 
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from quakefolio.core.consequences import expected_consequence_given_im, mean_present_fraction
-from quakefolio.core.errors import InputError, InputWarning, did_you_mean
+from quakefolio.core.errors import InputError, InputWarning, did_you_mean, locate_toml_line
 from quakefolio.core.events.conditioning import condition_field, sample_conditioned
 from quakefolio.core.events.eventset import (
     EVENT_BLOCK_SIZE, STREAM_GMM_CHOICE, conditioned_rng, event_blocks, stream_rng,
@@ -295,8 +296,10 @@ def run_scenario(inputs, spec):
         When the run config is not in compute mode, or a rupture cannot be found or built.
     """
     if inputs.hazard_model is None:
-        raise InputError(inputs.config.path, "scenario earthquakes need [hazard] mode = \"compute\" (ground motion "
-                                             "from the ground-motion models)", column="hazard.mode")
+        path = inputs.config.path
+        row = locate_toml_line(Path(path).read_text(encoding="utf-8-sig"), ("hazard",), "mode")
+        raise InputError(path, "scenario earthquakes need [hazard] mode = \"compute\" (ground motion from the "
+                               "ground-motion models)", row=row, column="hazard.mode")
     from quakefolio.pipeline.stages.events import single_blas_thread
 
     single_blas_thread()  # identical draws whatever the machine's thread count
