@@ -8,6 +8,7 @@ reference for Phi.
 from __future__ import annotations
 
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -187,8 +188,6 @@ def _run(folder, capsys, stations=""):
     path.write_text(_SCENARIO.format(stations=stations))
     assert main(["scenario", str(folder / "quakefolio_compute.toml"), str(path), "--quiet"]) == 0
     out = capsys.readouterr().out.strip().splitlines()[-1]
-    from pathlib import Path
-
     run = Path(out)
     return run, {p.stem: pd.read_parquet(p) for p in run.glob("*.parquet")}
 
@@ -242,3 +241,23 @@ def test_station_on_a_hazard_site_fixes_the_field_there(mini, capsys):
     assert set(st.station_id) == {"ST1", "ST2"} and st.used.all()
     elsewhere = motion[~(np.isclose(motion.lon, b5.lon) & np.isclose(motion.lat, b5.lat))]
     assert (elsewhere.p84_g > elsewhere.p16_g).all()  # other sites keep their scatter
+
+
+def test_demo_scenario_of_the_largest_fault_writes_its_tables_and_report(tmp_path, capsys):
+    # Done-when of the scenario issue: the demo's scenario of its largest fault (Quarnel, M 6.95)
+    # writes its tables and report section, with and without the invented station records.
+    demo = tmp_path / "demo"
+    shutil.copytree(REPO / "demo_portfolio", demo, ignore=shutil.ignore_patterns("output", "*.parquet", "__pycache__"))
+    for station_args in ([], ["--stations", str(demo / "stations_quarnel.csv")]):
+        assert main(["scenario", str(demo / "quakefolio.toml"), str(demo / "scenario_quarnel.toml"),
+                     "--realisations", "100", "--quiet", *station_args]) == 0
+        run = Path(capsys.readouterr().out.strip().splitlines()[-1])
+        rup = pd.read_parquet(run / "scenario_ruptures.parquet")
+        assert (rup.source_id.tolist(), rup.magnitude.tolist()) == (["quarnel_fault"], [pytest.approx(6.95)])
+        pf = pd.read_parquet(run / "scenario_portfolio_loss.parquet")
+        total = pf.query("scope == 'portfolio' and metric == 'ground_up_loss'").iloc[0]
+        assert 0 < total["p50"] <= total["p90"] <= total["p99"]
+        assert len(pd.read_parquet(run / "scenario_asset_loss.parquet")) == 480
+        html = (run / "report.html").read_text()
+        assert 'id="scenario"' in html and "data:image/png;base64," in html and "CAUTION" in html
+        assert ("scenario_stations.parquet" in {p.name for p in run.iterdir()}) == bool(station_args)

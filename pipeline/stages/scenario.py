@@ -317,5 +317,5 @@ def run_scenario(inputs, spec):
                                        correlation=pf.secondary_correlation, group=group)
     cas = _casualties(inputs, classes, im)
     tables = scenario_tables(inputs, spec, rs, sites, classes, (ln, im, ev_rup, ev_gmm), (gu, net, cas), cond)
-    warnings = tuple(cond.warnings) if cond is not None else ()
+    warnings = tuple(dict.fromkeys(cond.warnings)) if cond is not None else ()  # once each, whatever the model
     return ScenarioProduct(tables, warnings, spec.realisations, cond is not None)
