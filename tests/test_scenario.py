@@ -261,3 +261,20 @@ def test_demo_scenario_of_the_largest_fault_writes_its_tables_and_report(tmp_pat
         html = (run / "report.html").read_text()
         assert 'id="scenario"' in html and "data:image/png;base64," in html and "CAUTION" in html
         assert ("scenario_stations.parquet" in {p.name for p in run.iterdir()}) == bool(station_args)
+
+
+def test_rupture_of_given_size_is_centred_on_its_hypocentre():
+    # Closed form (plane geometry): top and bottom depths d -+ (w / 2) sin(dip); the top edge is
+    # the length long, the horizontal projection of the width w cos(dip); the centre is the epicentre.
+    from quakefolio.core.sources.geometry import aeqd_forward
+    from quakefolio.pipeline.io.scenario_file import ScenarioRupture
+    from quakefolio.pipeline.stages.scenario import _given_plane
+
+    r = ScenarioRupture("own", None, 6.5, (10.0, 20.0, 8.0), 80.0, 60.0, 90.0, 0.0, 20.0, 30.0, 12.0)
+    rs = _given_plane(r)
+    half = 6.0 * np.sin(np.radians(60.0))
+    assert_allclose([rs.ztor_km[0], rs.zbot_km[0]], [8.0 - half, 8.0 + half], rtol=1e-12)
+    x, y = (np.asarray(a) for a in aeqd_forward(rs.corners[0, :, 0], rs.corners[0, :, 1], 10.0, 20.0))
+    assert np.hypot(x[1] - x[0], y[1] - y[0]) == pytest.approx(30.0, rel=1e-9)
+    assert np.hypot(x[3] - x[0], y[3] - y[0]) == pytest.approx(12.0 * np.cos(np.radians(60.0)), rel=1e-9)
+    assert_allclose([x.mean(), y.mean()], [0.0, 0.0], atol=1e-9)

@@ -6,7 +6,8 @@ A scenario file (``format = "quakefolio-scenario-1"``) lists ``[[ruptures]]`` ta
   the source's largest; the rupture of that magnitude in the middle of its floating positions), or
 * a rupture of its own: ``magnitude`` [Mw], ``hypocentre = [lon, lat, depth_km]``, ``strike_deg``,
   ``dip_deg``, ``rake_deg`` and the seismogenic layer ``upper_depth_km``/``lower_depth_km`` [km];
-  length and width follow from the magnitude (Wells & Coppersmith 1994, as for point sources).
+  length and width follow from the magnitude (Wells & Coppersmith 1994, as for point sources) unless
+  ``length_km`` and ``width_km`` give them (the plane then centred on the hypocentre).
 
 with top-level ``realisations``, ``seed``, ``percentiles`` [%] and optional ``stations_file`` and
 ``station_sigma_ln``. The station file (CSV or Parquet) has columns ``station_id``, ``lon``, ``lat``
@@ -16,6 +17,7 @@ Every problem is an :class:`~quakefolio.core.errors.InputError` naming file, row
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -63,6 +65,8 @@ _RUPTURE = Schema({
     "rake_deg": Field(_FLOAT + (Interval(-180, 180),), None),
     "upper_depth_km": Field(_FLOAT + (Interval(0, None),), 0.0),
     "lower_depth_km": Field(_FLOAT + (Interval(0, None, closed="neither"),), 20.0),
+    "length_km": Field(_FLOAT + (POSITIVE,), None),
+    "width_km": Field(_FLOAT + (POSITIVE,), None),
 })
 _OWN_KEYS = ("magnitude", "hypocentre", "strike_deg", "dip_deg", "rake_deg")
 STATION_COLUMNS = {"station_id": True, "lon": True, "lat": True, "im": True, "observed_g": True,
@@ -82,6 +86,8 @@ class ScenarioRupture:
     rake_deg: float = 0.0
     upper_depth_km: float = 0.0
     lower_depth_km: float = 20.0
+    length_km: float | None = None  # with width_km: the plane's own size, centred on the hypocentre
+    width_km: float | None = None
     row: int | None = None  # line of the [[ruptures]] header, for errors
 
 
@@ -141,8 +147,18 @@ def _rupture(i, entry, path, text):
     if not upper <= depth <= lower:
         raise place.error(f"hypocentre depth {depth:g} km lies outside the layer [{upper:g}, {lower:g}] km",
                           "hypocentre")
+    size = (v["length_km"], v["width_km"])
+    if (size[0] is None) != (size[1] is None):
+        key = "width_km" if size[1] is None else "length_km"
+        raise place.error(f"give length_km and width_km together (or neither: sizes from the magnitude); missing "
+                          f"'{key}'", None, column=f"ruptures[{i}].{key}")
+    if size[1] is not None:
+        half = 0.5 * size[1] * math.sin(math.radians(v["dip_deg"]))
+        if depth - half < upper - 1e-9 or depth + half > lower + 1e-9:
+            raise place.error(f"a plane of width {size[1]:g} km centred on the hypocentre reaches from {depth - half:.3g} "
+                              f"to {depth + half:.3g} km depth, outside the layer [{upper:g}, {lower:g}] km", "width_km")
     return ScenarioRupture(v["id"], None, v["magnitude"], (lon, lat, depth), v["strike_deg"], v["dip_deg"],
-                           v["rake_deg"], upper, lower, row)
+                           v["rake_deg"], upper, lower, size[0], size[1], row)
 
 
 def read_scenario(path):

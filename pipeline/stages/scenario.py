@@ -31,7 +31,7 @@ from quakefolio.core.events.scenario import asset_realisation_losses
 from quakefolio.core.hazard import event_ground_motion, event_ln_im, rupture_ground_motion
 from quakefolio.core.sources.geometry import aeqd_forward, mean_position
 from quakefolio.core.sources.mfd import MagnitudeBins
-from quakefolio.core.sources.ruptures import RuptureSet, point_source_ruptures
+from quakefolio.core.sources.ruptures import RuptureSet, point_source_ruptures, rupture_corners
 from quakefolio.core.vulnerability import VulnerabilityTable
 from quakefolio.pipeline.stages import people as pp
 from quakefolio.pipeline.stages.scenario_tables import scenario_tables
@@ -106,6 +106,9 @@ def scenario_ruptures(inputs, spec):
             parts.append(rs.subset([_source_rupture(rs, r, i, spec)]))
             continue
         lon, lat, depth = r.hypocentre
+        if r.length_km is not None:
+            parts.append(_given_plane(r))
+            continue
         try:
             parts.append(point_source_ruptures(
                 r.id, lon, lat, mfd=MagnitudeBins(np.array([r.magnitude]), np.array([1.0])),
@@ -114,6 +117,16 @@ def scenario_ruptures(inputs, spec):
         except ValueError as exc:
             raise InputError(spec.path, str(exc), row=r.row, column=f"ruptures[{i}]") from None
     return RuptureSet.concat(parts)
+
+
+def _given_plane(r):
+    """A rupture of given length and width [km] centred on its hypocentre (one rectangle)."""
+    corners = rupture_corners(r.hypocentre[0], r.hypocentre[1], r.hypocentre[2], r.strike_deg, r.dip_deg,
+                              r.length_km, r.width_km)
+    return RuptureSet(source_index=np.zeros(1, dtype=np.int64), source_ids=(r.id,), mag=[r.magnitude], rate=[1.0],
+                      strike_deg=[r.strike_deg], dip_deg=[r.dip_deg], rake_deg=[r.rake_deg],
+                      ztor_km=corners[:, 0, 2], zbot_km=corners[:, 2, 2], width_km=[r.width_km],
+                      length_km=[r.length_km], zhyp_km=[r.hypocentre[2]], corners=corners)
 
 
 def _classes(inputs, local):
