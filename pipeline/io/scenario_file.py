@@ -198,6 +198,21 @@ def read_scenario(path):
                         tuple(float(p) for p in v["percentiles"]), v["source_branch"], ruptures, stations, digest)
 
 
+def _same_point(path, ids, lon, lat, ims, sigma, rows):
+    """Two exact records (sigma_ln 0) of one IM at one point cannot both hold: an error at the second."""
+    seen = {}
+    for i in range(len(ids)):
+        if sigma[i] > 0:
+            continue
+        k = (float(lon[i]), float(lat[i]), ims[i])
+        if k in seen and str(ids[seen[k]]) != str(ids[i]):
+            j = seen[k]
+            raise InputError(path, f"station {str(ids[i])!r} records {ims[i]} at the position of station "
+                                   f"{str(ids[j])!r} (row {int(rows[j])}) and both without a measurement error: "
+                                   "give sigma_ln > 0 to one or both", row=int(rows[i]), column="sigma_ln")
+        seen.setdefault(k, i)
+
+
 def read_stations(path, default_sigma_ln=0.0):
     """Read and validate a station file.
 
@@ -244,6 +259,7 @@ def read_stations(path, default_sigma_ln=0.0):
         problem = vs30_problem(vs30[i])
         if problem:
             raise InputError(path, problem, row=int(rows[i]), column="vs30_mps")
+    _same_point(path, ids, lon, lat, ims, sigma, rows)
     key = [f"{s}\x00{m}" for s, m in zip(ids, ims)]
     first = {}
     for i, k in enumerate(key):

@@ -223,8 +223,12 @@ class _Conditioner:
         use = np.isfinite(m_s)
         r = np.log(self.st.observed_g[sel]) - np.where(use, m_s, 0.0)
         u = np.flatnonzero(use)
-        field = condition_field(r[u], t_s[u], p_s[u], self.st.sigma_ln[sel][u], _rho(d_ss[np.ix_(u, u)], b,
-                                self.spatial), _rho(d_ts[:, u], b, self.spatial), _rho(d_tt, b, self.spatial))
+        try:
+            field = condition_field(r[u], t_s[u], p_s[u], self.st.sigma_ln[sel][u], _rho(d_ss[np.ix_(u, u)], b,
+                                    self.spatial), _rho(d_ts[:, u], b, self.spatial), _rho(d_tt, b, self.spatial))
+        except ValueError as exc:  # stations so close that their exact records leave no room for each other
+            raise InputError(self.st.path, f"{exc} ({self.model.ims[k]}); give sigma_ln > 0 to stations a few metres "
+                                           "apart", column="sigma_ln") from None
         eta, eps = sample_conditioned(field, conditioned_rng(self.spec.seed, j, g, k), idx.size)
         e0 = idx[0]
         ln[idx, k, :] = mu[e0, k] + tau[e0, k] * eta[:, None] + phi[e0, k] * eps  # -inf beyond the distance stays
