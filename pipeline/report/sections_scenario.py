@@ -25,7 +25,9 @@ def _histogram(real, rid, cur):
                         f"Portfolio ground-up loss over the {loss.size} realisations of rupture {rid}.")
 
 
-def _map(sites, ruptures, rid):
+def _map(sites, ruptures, stations, rid):
+    from matplotlib.ticker import MaxNLocator
+
     im = sites.im.iloc[0]
     s = sites[(sites.rupture_id == rid) & (sites.im == im)]
     fig = _new_figure(5.2, 4.0)
@@ -33,15 +35,22 @@ def _map(sites, ruptures, rid):
     pts = ax.scatter(s.lon, s.lat, c=s.median_g, cmap="viridis", s=28, edgecolors="none")
     fig.colorbar(pts, ax=ax, label=f"median {im} [g]")
     r = ruptures[ruptures.rupture_id == rid].iloc[0]
-    ax.plot([r.centre_lon], [r.centre_lat], marker="*", color="#9b3b2f", markersize=12, linestyle="none",
-            label="rupture centre")
+    corners = ("top_start", "top_end", "bottom_end", "bottom_start", "top_start")
+    ax.plot([getattr(r, f"{c}_lon") for c in corners], [getattr(r, f"{c}_lat") for c in corners], color="#9b3b2f",
+            linewidth=1.0, linestyle="--", label="rupture plane (surface projection)")
+    ax.plot([r.top_start_lon, r.top_end_lon], [r.top_start_lat, r.top_end_lat], color="#9b3b2f", linewidth=2.2,
+            label="top edge")
+    if stations is not None and len(stations):
+        st = stations.drop_duplicates("station_id")
+        ax.scatter(st.lon, st.lat, marker="^", s=46, facecolors="white", edgecolors="#1d2733", label="stations")
     ax.set_xlabel("lon [deg]")
     ax.set_ylabel("lat [deg]")
-    ax.set_aspect(1.0 / max(np.cos(np.radians(float(s.lat.mean()))), 0.1))
-    ax.legend(loc="best")
+    ax.xaxis.set_major_locator(MaxNLocator(4))
+    ax.set_aspect(1.0 / max(np.cos(np.radians(float(s.lat.mean()))), 0.1), adjustable="datalim")
+    ax.legend(loc="best", fontsize=7)
     return _figure_html(fig, f"Map of the median {im} of rupture {rid}",
-                        f"Median {im} over realisations at the portfolio's hazard sites; star: centre of the "
-                        f"rupture plane (surface projection).")
+                        f"Median {im} over realisations at the portfolio's hazard sites; dashed: the rupture plane "
+                        f"projected to the surface, thick: its top edge; triangles: stations.")
 
 
 def scenario_section(tables, cur):
@@ -75,7 +84,8 @@ def scenario_section(tables, cur):
         out.append(_table(["portfolio or class", "metric", f"mean [{cur} or persons]#", "median#", "90 %#",
                            "99 %#"], rows, sortable=True, scroll=True))
         out.append('<div class="pair">' + _histogram(tables["scenario_realisation_loss"], rid, cur)
-                   + _map(tables["scenario_site_motion"], rup, rid) + "</div>")
+                   + _map(tables["scenario_site_motion"], rup, tables.get("scenario_stations"), rid)
+                   + "</div>")
     st = tables.get("scenario_stations")
     if st is not None and len(st):
         out.append(_p("Fields conditioned on station records (Worden et al. 2018: between-event residual estimated "

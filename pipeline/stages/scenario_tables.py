@@ -16,13 +16,17 @@ __all__ = ["SCENARIO_TABLES", "PORTFOLIO_PERCENTILES", "scenario_tables", "scena
 #: Percentiles [%] of the portfolio loss over realisations (with the mean).
 PORTFOLIO_PERCENTILES = (50.0, 90.0, 99.0)
 
+#: The rupture plane's corners in the order of the rupture set (the plane dips to the right of start -> end).
+_CORNERS = ("top_start", "top_end", "bottom_end", "bottom_start")
+
 SCENARIO_TABLES = {
     "scenario_ruptures": dict(
         description="One row per scenario rupture: its source (a source-model id, or the rupture's own id), "
-                    "magnitude, geometry (plane centre from the four corners) and the realisations run.",
+                    "magnitude, geometry (corners of the plane, top edge first, and its centre, the mean of the corners) and "
+                    "the realisations run.",
         units={"magnitude": "Mw", "strike_deg": "deg", "dip_deg": "deg", "rake_deg": "deg", "ztor_km": "km",
                "zbot_km": "km", "length_km": "km", "width_km": "km", "centre_lon": "deg", "centre_lat": "deg",
-               "realisations": "-"}),
+               "realisations": "-", **{f"{c}_{a}": "deg" for c in _CORNERS for a in ("lon", "lat")}}),
     "scenario_asset_damage": dict(
         description="Per rupture, asset and damage state: probability of reaching or exceeding the state, the mean "
                     "over realisations of the lognormal fragility at each realisation's intensity, with its "
@@ -93,6 +97,8 @@ def _rupture_table(spec, rs):
         "magnitude": rs.mag, "strike_deg": rs.strike_deg, "dip_deg": rs.dip_deg, "rake_deg": rs.rake_deg,
         "ztor_km": rs.ztor_km, "zbot_km": rs.zbot_km, "length_km": rs.length_km, "width_km": rs.width_km,
         "centre_lon": centre[:, 0], "centre_lat": centre[:, 1],
+        **{f"{corner}_{axis}": rs.corners[:, c, a] for c, corner in enumerate(_CORNERS)
+           for a, axis in enumerate(("lon", "lat"))},
         "realisations": np.full(len(spec.ruptures), spec.realisations, dtype=np.int64),
     })
 
