@@ -278,3 +278,24 @@ def test_rupture_of_given_size_is_centred_on_its_hypocentre():
     assert np.hypot(x[1] - x[0], y[1] - y[0]) == pytest.approx(30.0, rel=1e-9)
     assert np.hypot(x[3] - x[0], y[3] - y[0]) == pytest.approx(12.0 * np.cos(np.radians(60.0)), rel=1e-9)
     assert_allclose([x.mean(), y.mean()], [0.0, 0.0], atol=1e-9)
+
+
+def test_source_model_ruptures_by_source_id_and_by_index(mini, tmp_path):
+    from quakefolio.pipeline.io.scenario_file import read_scenario
+    from quakefolio.pipeline.stages import load_inputs
+    from quakefolio.pipeline.stages.scenario import scenario_ruptures
+
+    inputs = load_inputs(mini / "quakefolio_compute.toml")
+    rs = inputs.hazard_model.source_branches[0][2].ruptures
+    fault = np.flatnonzero(rs.source_index == rs.source_ids.index("test_fault"))
+    k = int(fault[len(fault) // 3])
+    path = tmp_path / "s.toml"
+    path.write_text('format = "quakefolio-scenario-1"\n[[ruptures]]\nid = "a"\nsource_id = "test_fault"\n'
+                    f'[[ruptures]]\nid = "b"\nrupture_index = {k}\n'
+                    '[[ruptures]]\nid = "c"\nsource_id = "test_fault"\nmagnitude = 5.5\n')
+    got = scenario_ruptures(inputs, read_scenario(path))
+    assert got.mag[0] == rs.mag[fault].max()  # the default: the source's largest magnitude
+    for field in ("mag", "strike_deg", "ztor_km", "length_km"):
+        assert getattr(got, field)[1] == getattr(rs, field)[k]
+    assert abs(got.mag[2] - 5.5) <= 0.051
+    assert list(np.asarray(got.source_ids)[got.source_index]) == ["test_fault"] * 3

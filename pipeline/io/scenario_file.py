@@ -58,6 +58,7 @@ _TOP = Schema({
 _RUPTURE = Schema({
     "id": Field((Text(), _ID)),
     "source_id": Field((Text(non_empty=True),), None),
+    "rupture_index": Field((Integer(), Interval(0, None, message="expected a non-negative integer")), None),
     "magnitude": Field(_FLOAT + (_MAG,), None),
     "hypocentre": Field((ListOf(Real(finite=True), "expected [lon, lat, depth_km]", min_len=3),), None),
     "strike_deg": Field(_FLOAT + (Interval(0, 360, closed="left"),), None),
@@ -75,7 +76,7 @@ STATION_COLUMNS = {"station_id": True, "lon": True, "lat": True, "im": True, "ob
 
 @dataclass(frozen=True)
 class ScenarioRupture:
-    """One rupture of a scenario file (``source_id`` set: from the source model; else its own)."""
+    """One rupture of a scenario file (``source_id`` or ``rupture_index`` set: from the source model; else its own)."""
 
     id: str
     source_id: str | None
@@ -88,7 +89,8 @@ class ScenarioRupture:
     lower_depth_km: float = 20.0
     length_km: float | None = None  # with width_km: the plane's own size, centred on the hypocentre
     width_km: float | None = None
-    row: int | None = None  # line of the [[ruptures]] header, for errors
+    row: int | None = None
+    rupture_index: int | None = None  # a rupture of the source model by its index (rupture_id of event_loss)  # line of the [[ruptures]] header, for errors
 
 
 @dataclass(frozen=True)
@@ -127,6 +129,13 @@ def _rupture(i, entry, path, text):
         raise place.error("expected a table ([[ruptures]])")
     v = validate_table(entry, _RUPTURE, place)
     row = place.locate(None)
+    if v["rupture_index"] is not None:
+        extra = [k for k in ("source_id", "magnitude", *_OWN_KEYS[1:]) if v[k] is not None]
+        if extra:
+            raise place.error(f"'{extra[0]}' does not apply to a rupture given by rupture_index (the rupture_id of "
+                              "the event tables); give one of rupture_index, source_id or the rupture's own "
+                              "geometry", extra[0])
+        return ScenarioRupture(v["id"], None, None, row=row, rupture_index=int(v["rupture_index"]))
     if v["source_id"] is not None:
         extra = [k for k in ("hypocentre", "strike_deg", "dip_deg", "rake_deg") if v[k] is not None]
         if extra:

@@ -102,6 +102,12 @@ def scenario_ruptures(inputs, spec):
     rs = model.source_branches[ids.index(branch)][2].ruptures
     parts = []
     for i, r in enumerate(spec.ruptures):
+        if r.rupture_index is not None:
+            if r.rupture_index >= len(rs.mag):
+                raise InputError(spec.path, f"rupture_index {r.rupture_index} is beyond the {len(rs.mag)} ruptures of "
+                                            f"source branch {branch!r}", row=r.row, column=f"ruptures[{i}].rupture_index")
+            parts.append(rs.subset([r.rupture_index]))
+            continue
         if r.source_id is not None:
             parts.append(rs.subset([_source_rupture(rs, r, i, spec)]))
             continue

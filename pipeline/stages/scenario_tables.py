@@ -93,7 +93,7 @@ def _rupture_table(spec, rs):
     return pd.DataFrame({
         "rupture_id": [r.id for r in spec.ruptures],
         "source_id": np.array(rs.source_ids, dtype=object)[rs.source_index],
-        "from_source_model": [r.source_id is not None for r in spec.ruptures],
+        "from_source_model": [r.source_id is not None or r.rupture_index is not None for r in spec.ruptures],
         "magnitude": rs.mag, "strike_deg": rs.strike_deg, "dip_deg": rs.dip_deg, "rake_deg": rs.rake_deg,
         "ztor_km": rs.ztor_km, "zbot_km": rs.zbot_km, "length_km": rs.length_km, "width_km": rs.width_km,
         "centre_lon": centre[:, 0], "centre_lat": centre[:, 1],
