@@ -386,7 +386,8 @@ def _scenario(args):
               f"90% {r.p90:,.0f}, 99% {r.p99:,.0f} over {r.realisations} realisations"
               + (" (conditioned on stations)" if product.conditioned else ""))
     print(f"run folder: {run_dir}")
-    print(f"report: {run_dir / 'report.html'}")
+    if (run_dir / "report.html").exists():
+        print(f"report: {run_dir / 'report.html'}")
     return 0
 
 

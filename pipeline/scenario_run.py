@@ -2,7 +2,8 @@
 
 The run config gives the exposure, fragility library and hazard model (compute mode); the scenario
 file the ruptures, realisations and seed (:mod:`quakefolio.pipeline.io.scenario_file`). The tables
-(:mod:`quakefolio.pipeline.stages.scenario_tables`), ``manifest.json`` and ``report.html`` go to a
+(:mod:`quakefolio.pipeline.stages.scenario_tables`), ``manifest.json`` and ``report.html`` (unless
+``[output] report = false``) go to a
 new run folder under ``<[output] folder>/scenarios/runs/`` (its own ``LATEST``), written under a
 partial name and renamed into place when complete (:class:`quakefolio.pipeline.io.store.RunWriter`),
 so the portfolio runs of the output folder, its history and its ``LATEST`` are left as they are.
@@ -84,8 +85,9 @@ def run_scenario_files(config_path, scenario_path, *, realisations=None, station
         facts = [("run config", Path(config_path).name), ("scenario file", spec.path.name),
                  ("realisations per rupture", f"{spec.realisations:,}"), ("seed", str(spec.seed)),
                  ("stations", spec.stations.path.name if spec.stations is not None else "none")]
-        writer.write_text("report.html", scenario_report(product.tables, title=spec.name or spec.path.stem,
-                                                         run_id=writer.run_id, currency=currency, facts=facts))
+        if cfg.output.report:  # as for portfolio runs, [output] report = false leaves the report out
+            writer.write_text("report.html", scenario_report(product.tables, title=spec.name or spec.path.stem,
+                                                             run_id=writer.run_id, currency=currency, facts=facts))
         manifest = {"run_id": writer.run_id, "kind": "scenario", "caution": CAUTION,
                     "config": relative_paths(str(Path(config_path).resolve()), base),
                     "scenario_file": relative_paths(str(spec.path.resolve()), base), "scenario_sha256": spec.sha256,
