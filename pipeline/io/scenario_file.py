@@ -69,7 +69,9 @@ _RUPTURE = Schema({
     "length_km": Field(_FLOAT + (POSITIVE,), None),
     "width_km": Field(_FLOAT + (POSITIVE,), None),
 })
-_OWN_KEYS = ("magnitude", "hypocentre", "strike_deg", "dip_deg", "rake_deg")
+#: Keys of a rupture of its own: the required ones first, then the optional plane size.
+_OWN_KEYS = ("magnitude", "hypocentre", "strike_deg", "dip_deg", "rake_deg", "length_km", "width_km")
+_NEEDED = _OWN_KEYS[:5]
 STATION_COLUMNS = {"station_id": True, "lon": True, "lat": True, "im": True, "observed_g": True,
                    "vs30_mps": False, "sigma_ln": False}
 
@@ -123,12 +125,8 @@ class ScenarioSpec:
     sha256: str
 
 
-def _rupture(i, entry, path, text):
-    place = toml_place(path, text, ("ruptures",), f"ruptures[{i}]", occurrence=i)
-    if not isinstance(entry, dict):
-        raise place.error("expected a table ([[ruptures]])")
-    v = validate_table(entry, _RUPTURE, place)
-    row = place.locate(None)
+def _from_source_model(v, place, row):
+    """A rupture of the source model (``rupture_index`` or ``source_id``), or None for one of its own."""
     if v["rupture_index"] is not None:
         extra = [k for k in ("source_id", "magnitude", *_OWN_KEYS[1:]) if v[k] is not None]
         if extra:
@@ -137,14 +135,42 @@ def _rupture(i, entry, path, text):
                               "geometry", extra[0])
         return ScenarioRupture(v["id"], None, None, row=row, rupture_index=int(v["rupture_index"]))
     if v["source_id"] is not None:
-        extra = [k for k in ("hypocentre", "strike_deg", "dip_deg", "rake_deg") if v[k] is not None]
+        extra = [k for k in _OWN_KEYS[1:] if v[k] is not None]
         if extra:
             raise place.error(f"'{extra[0]}' does not apply to a rupture of the source model (source_id); give "
                               "either source_id or the rupture's own geometry", extra[0])
         return ScenarioRupture(v["id"], v["source_id"], v["magnitude"], row=row)
-    missing = [k for k in _OWN_KEYS if v[k] is None]
+    return None
+
+
+def _plane_size(v, place, i, depth, upper, lower):
+    """(length_km, width_km) given together, or (None, None); the plane must stay inside the layer."""
+    size = (v["length_km"], v["width_km"])
+    if (size[0] is None) != (size[1] is None):
+        key = "width_km" if size[1] is None else "length_km"
+        raise place.error(f"give length_km and width_km together (or neither: sizes from the magnitude); missing "
+                          f"'{key}'", None, column=f"ruptures[{i}].{key}")
+    if size[1] is not None:
+        half = 0.5 * size[1] * math.sin(math.radians(v["dip_deg"]))
+        if depth - half < upper - 1e-9 or depth + half > lower + 1e-9:
+            raise place.error(f"a plane of width {size[1]:g} km centred on the hypocentre reaches from "
+                              f"{depth - half:.3g} to {depth + half:.3g} km depth, outside the layer "
+                              f"[{upper:g}, {lower:g}] km", "width_km")
+    return size
+
+
+def _rupture(i, entry, path, text):
+    place = toml_place(path, text, ("ruptures",), f"ruptures[{i}]", occurrence=i)
+    if not isinstance(entry, dict):
+        raise place.error("expected a table ([[ruptures]])")
+    v = validate_table(entry, _RUPTURE, place)
+    row = place.locate(None)
+    known = _from_source_model(v, place, row)
+    if known is not None:
+        return known
+    missing = [k for k in _NEEDED if v[k] is None]
     if missing:
-        raise place.error(f"a rupture needs source_id, or its own {', '.join(_OWN_KEYS)}; missing '{missing[0]}'",
+        raise place.error(f"a rupture needs source_id, or its own {', '.join(_NEEDED)}; missing '{missing[0]}'",
                           None, column=f"ruptures[{i}].{missing[0]}")
     lon, lat, depth = (float(x) for x in v["hypocentre"][:3])
     if len(v["hypocentre"]) != 3 or not (-180 <= lon <= 180 and -90 <= lat <= 90):
@@ -156,16 +182,7 @@ def _rupture(i, entry, path, text):
     if not upper <= depth <= lower:
         raise place.error(f"hypocentre depth {depth:g} km lies outside the layer [{upper:g}, {lower:g}] km",
                           "hypocentre")
-    size = (v["length_km"], v["width_km"])
-    if (size[0] is None) != (size[1] is None):
-        key = "width_km" if size[1] is None else "length_km"
-        raise place.error(f"give length_km and width_km together (or neither: sizes from the magnitude); missing "
-                          f"'{key}'", None, column=f"ruptures[{i}].{key}")
-    if size[1] is not None:
-        half = 0.5 * size[1] * math.sin(math.radians(v["dip_deg"]))
-        if depth - half < upper - 1e-9 or depth + half > lower + 1e-9:
-            raise place.error(f"a plane of width {size[1]:g} km centred on the hypocentre reaches from {depth - half:.3g} "
-                              f"to {depth + half:.3g} km depth, outside the layer [{upper:g}, {lower:g}] km", "width_km")
+    size = _plane_size(v, place, i, depth, upper, lower)
     return ScenarioRupture(v["id"], None, v["magnitude"], (lon, lat, depth), v["strike_deg"], v["dip_deg"],
                            v["rake_deg"], upper, lower, size[0], size[1], row)
 
