@@ -49,10 +49,11 @@ def ratio(times, name, base):
     return float(np.median(r)), float(r.min()), float(r.max())
 
 
-def row(label, stats, target=None, above=False):
-    """Print one result row; ``target`` is an upper bound (a lower one if ``above``)."""
+def row(label, stats, target=None, above=False, rounds=None):
+    """Print one result row; ``target`` is an upper bound (a lower one if ``above``); ``rounds``
+    (default :data:`REPEATS`) is the number of rounds the stats come from."""
     med, lo, hi = stats
-    spread = f"[{lo:.2f}-{hi:.2f} over {REPEATS} rounds]"
+    spread = f"[{lo:.2f}-{hi:.2f} over {REPEATS if rounds is None else rounds} rounds]"
     if target is None:
         print(f"row: {label}: {med:.2f}x {spread}", flush=True)
         return

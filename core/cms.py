@@ -68,7 +68,7 @@ from quakefolio.core.events.gmf import cross_im_correlation_matrix
 from quakefolio.core.hazard import (
     DISAGG_MOMENTS, DisaggBins, disaggregation_from_pairs, disaggregation_means, exceedance_probability,
 )
-from quakefolio.core.pairs import block_pairs
+from quakefolio.core.pairs import block_pairs, model_input, region_parts
 from quakefolio.core.sources.geometry import mean_position
 from quakefolio.core.ims import model_period, parse_im
 
@@ -172,10 +172,12 @@ def conditional_mean_spectrum(ln_target, ln_median, sigma, rho, conditioning):
     return eps, ln_cms, conditional_sigma
 
 
-def _per_pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
+def _per_pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref,
+                     site_fields=None):
     """Blocks of sites with their surviving (site, rupture) pairs and one GMM scenario per pair.
 
-    The pairs and inputs of the classical engine (:func:`quakefolio.core.pairs.block_pairs`),
+    The pairs and inputs of the classical engine (:func:`quakefolio.core.pairs.block_pairs`,
+    with the per-site ``site_fields``: ``z1p0_km``, ``z2p5_km`` [km], ``backarc``),
     with the projection's reference point fixed for all blocks (default: the mean site
     position), so results do not depend on the blocking.  Yields
     ``(slice, site, rupture, inp, distances, pair_rate)``; blocks without pairs are skipped.
@@ -184,9 +186,11 @@ def _per_pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, r
     lat = np.asarray(site_lat, dtype=float)
     vs30 = np.asarray(site_vs30, dtype=float)
     ref = ref if ref is not None else mean_position(lon, lat)
+    fields = {k: np.asarray(v, dtype=float) for k, v in (site_fields or {}).items() if v is not None}
     for lo in range(0, len(lon), site_block):
         blk = slice(lo, min(len(lon), lo + site_block))
-        site, rup, _, _, inp, d = block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km, ref, region)
+        site, rup, _, _, inp, d = block_pairs(lon[blk], lat[blk], vs30[blk], ruptures, max_distance_km, ref, region,
+                                              **{k: v[blk] for k, v in fields.items()})
         if site.size:
             yield blk, site, rup, inp, d, ruptures.rate[rup]
 
@@ -282,7 +286,7 @@ def _site_chunks(pairs, pair_site, size):
 
 def compute_spectrum_sums(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_weights, conditioning_ims, ims,
                           ln_targets, *, truncation_sigma=None, max_distance_km=200.0, region="global", site_block=64,
-                          ref=None):
+                          ref=None, region_branches=None, site_fields=None):
     r"""Weighted disaggregation moments and spectral sums [1/yr] per conditioning IM, site and target.
 
     Parameters
@@ -299,8 +303,11 @@ def compute_spectrum_sums(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_wei
         IMs of the spectrum (``n_periods``, e.g. :func:`spectrum_ims`).
     ln_targets : ndarray, shape (n_cond, n_sites, n_targets) [ln g]
         Target at each conditioning IM (NaN skips a target).
-    truncation_sigma, max_distance_km, region, site_block, ref
-        As :func:`quakefolio.core.hazard.compute_site_hazard`.
+    truncation_sigma, max_distance_km, region, site_block, ref, region_branches, site_fields
+        As :func:`quakefolio.core.hazard.compute_site_hazard`; ``gmms`` evaluate the
+        active-crustal ruptures, each other region's ruptures enter with their branch
+        weights times the sum of ``gmm_weights`` (the mean over branch combinations, as
+        :func:`quakefolio.core.hazard.compute_disaggregation`).
 
     Returns
     -------
@@ -321,16 +328,29 @@ def compute_spectrum_sums(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_wei
     moments = np.zeros((len(cond), len(site_lon), n_t, len(DISAGG_MOMENTS)))
     sums = np.zeros((len(cond), len(site_lon), n_t, len(SPECTRUM_SUMS), len(ims)))
     chunk = max(1, _CHUNK_VALUES // max(1, len(ims)))
+    scale = float(np.sum(gmm_weights))
+    for part_set, branches in region_parts(ruptures, region_branches):
+        weighted = (list(zip(gmms, gmm_weights)) if branches is None
+                    else [(m, scale * w) for w, m in branches])
+        _add_spectrum_sums(moments, sums, site_lon, site_lat, site_vs30, part_set, weighted, cond, ims, ln_targets,
+                           truncation_sigma, max_distance_km, region, site_block, ref, site_fields, chunk)
+    return moments, sums
+
+
+def _add_spectrum_sums(moments, sums, site_lon, site_lat, site_vs30, ruptures, weighted, cond, ims, ln_targets,
+                       truncation_sigma, max_distance_km, region, site_block, ref, site_fields, chunk):
+    """Adds one region's weighted moments and spectral sums in place (:func:`compute_spectrum_sums`)."""
     for blk, site, rup, inp, d, rate in _per_pair_blocks(
-            site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
+            site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref, site_fields):
         n_blk = blk.stop - blk.start
         targets = ln_targets[:, blk]
-        for gmm, w in zip(gmms, gmm_weights):
-            at_cond = gmm.evaluate(inp, cond)
+        for gmm, w in weighted:
+            minp = model_input(inp, gmm)
+            at_cond = gmm.evaluate(minp, cond)
             keep = np.flatnonzero(_contributing(targets, at_cond.ln_median, at_cond.sigma, rate, site,
                                                 truncation_sigma))
             for part in _site_chunks(keep, site[keep], chunk):
-                res = gmm.evaluate(_subset(inp, part), ims)
+                res = gmm.evaluate(_subset(minp, part), ims)
                 for c in range(len(cond)):
                     m, s = spectrum_sums_from_pairs(
                         targets[c], at_cond.ln_median[c, part], at_cond.sigma[c, part], rate[part], site[part],
@@ -338,7 +358,6 @@ def compute_spectrum_sums(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_wei
                         truncation_sigma)
                     moments[c, blk] += w * m
                     sums[c, blk] += w * s
-    return moments, sums
 
 
 class CausalSpectrum(NamedTuple):

@@ -45,8 +45,9 @@ import scipy.sparse as sp
 from scipy.special import ndtr, ndtri
 
 from quakefolio.core.curves import im_at_rate
-from quakefolio.core.events.gmf import ln_im
-from quakefolio.core.pairs import block_pairs, pair_blocks, pair_segments, pair_values
+from quakefolio.core.pairs import (
+    block_pairs, check_event_model, model_input, pair_blocks, pair_segments, pair_values, region_parts,
+)
 
 __all__ = [
     "exceedance_probability",
@@ -66,8 +67,6 @@ __all__ = [
     "compute_site_hazard",
     "compute_disaggregation",
     "rupture_ground_motion",
-    "event_ground_motion",
-    "event_ln_im",
 ]
 
 
@@ -521,16 +520,19 @@ def uniform_hazard_targets(levels, curves, return_periods_yr):
 # --- engine driver: sources + ground-motion models -> curves --------------------------------
 
 def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, levels_g, *, truncation_sigma=None,
-                        max_distance_km=200.0, region="global", site_block=64, ref=None):
+                        max_distance_km=200.0, region="global", site_block=64, ref=None, region_branches=None,
+                        site_fields=None):
     r"""Hazard curves [1/yr] from a rupture set and ground-motion models.
 
     Parameters
     ----------
     site_lon, site_lat : array_like, shape (n_sites,) [deg]
     site_vs30 : array_like, shape (n_sites,) [m/s]
+        Each model takes it clamped to its own range (:func:`quakefolio.core.pairs.model_input`).
     ruptures : quakefolio.core.sources.ruptures.RuptureSet
     gmms : sequence of ground-motion models (``quakefolio.core.gmm``)
-        Evaluated on the same pairs (distances are computed once per block).
+        The branches of the active-crustal ruptures, evaluated on the same pairs
+        (distances are computed once per block).
     ims : sequence of str
     levels_g : array_like, shape (n_levels,) [g], strictly increasing
     truncation_sigma : float or None
@@ -543,25 +545,55 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     ref : (lon, lat) or None
         Reference point of the local projection (default: mean site position), fixed
         for all blocks so results do not depend on the blocking.
+    region_branches : mapping of str to sequence of (weight, model), or None
+        Ground-motion branches of the other tectonic regions present in ``ruptures``
+        (:func:`quakefolio.core.pairs.region_parts`).
+    site_fields : dict of str to array_like, shape (n_sites,), or None
+        Optional per-site inputs: ``backarc`` (0 or 1), ``z1p0_km``, ``z2p5_km`` [km]
+        (NaN: the model's own default), :func:`quakefolio.core.pairs.pair_blocks`.
 
     Returns
     -------
     ndarray, shape (n_gmms, n_ims, n_sites, n_levels) [1/yr]
+        Branch ``g``: the active-crustal ruptures' curve with model ``g`` plus, for every
+        other region, the weighted mean of its branches' curves.
 
     Notes
     -----
     :math:`\lambda(IM > x) = \sum_r \nu_r P(IM > x \mid r)` over ruptures within the
     integration distance (Cornell 1968, discretised); see :func:`hazard_from_pairs`.
+    Regions are independent parts of the sum: a branch combination (one model per
+    region) has the hazard :math:`\sum_R \lambda_R^{(g_R)}`, so its logic-tree mean over
+    all combinations (weights the product of the regions' weights) is
+    :math:`\sum_R \sum_g w_{R,g} \lambda_R^{(g)}`, exactly the weighted mean over the
+    returned branches with the active-crustal weights.  Fractiles over the returned
+    branches are those over the active-crustal models with the other regions at their
+    mean.
     """
     lnx = np.log(np.asarray(levels_g, dtype=float))
     if np.any(np.diff(lnx) <= 0):
         raise ValueError("levels_g must be strictly increasing")
     out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
+    for part, branches in region_parts(ruptures, region_branches):
+        models = gmms if branches is None else [m for _, m in branches]
+        curves = _part_hazard(site_lon, site_lat, site_vs30, part, models, ims, lnx, truncation_sigma,
+                              max_distance_km, region, site_block, ref, site_fields)
+        if branches is None:
+            out += curves
+        else:
+            out += weighted_sum(curves, [w for w, _ in branches])[None]
+    return out
+
+
+def _part_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, lnx, truncation_sigma, max_distance_km, region,
+                 site_block, ref, site_fields):
+    """Curves (n_gmms, n_ims, n_sites, n_levels) [1/yr] of one region's ruptures, one per model."""
+    out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
     for blk, site, rup, starts, owners, inp, cells, _, rate in pair_blocks(
-            site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
+            site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref, site_fields):
         n_blk = blk.stop - blk.start
         for g, gmm in enumerate(gmms):
-            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
+            ln_median, sigma = pair_values(gmm.evaluate(model_input(inp, gmm), list(ims)), cells)
             for i in range(len(ims)):
                 out[g, i, blk] = hazard_from_pairs(lnx, ln_median[i], sigma[i], rate, starts, owners, n_blk,
                                                    truncation_sigma)
@@ -570,7 +602,7 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
 
 def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_weights, ims, ln_targets, bins, *,
                            truncation_sigma=None, max_distance_km=200.0, region="global", site_block=64, ref=None,
-                           moments=False):
+                           moments=False, region_branches=None, site_fields=None):
     r"""Weighted (M, R, epsilon) contributions [1/yr] at target levels per site and IM.
 
     Parameters
@@ -588,6 +620,8 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
     -------
     contrib : ndarray, shape (n_ims, n_sites, n_targets, n_mag, n_dist, n_eps) [1/yr]
         Distance is Rrup. See :func:`disaggregation_from_pairs` (Bazzurro & Cornell 1999).
+        The ruptures of other regions contribute with their branch weights times the
+        sum of ``gmm_weights`` (the mean over branch combinations, as the mean curve).
     moments : ndarray, shape (n_ims, n_sites, n_targets, 5), if ``moments``
         Rate-weighted sums over every (site, rupture) pair and model, with the model
         weights (:func:`disaggregation_means` gives the exact means).
@@ -595,24 +629,28 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
     n_t = ln_targets.shape[-1]
     out = np.zeros((len(ims), len(site_lon), n_t) + bins.shape)
     mom = np.zeros((len(ims), len(site_lon), n_t, len(DISAGG_MOMENTS)))
-    for blk, site, rup, starts, owners, inp, cells, d, rate in pair_blocks(
-            site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref):
-        n_blk = blk.stop - blk.start
-        for gmm, w in zip(gmms, gmm_weights):
-            ln_median, sigma = pair_values(gmm.evaluate(inp, list(ims)), cells)
-            for i in range(len(ims)):
-                c, m = disaggregation_from_pairs(
-                    ln_targets[i, blk], ln_median[i], sigma[i], rate, site, ruptures.mag[rup], d["rrup_km"],
-                    bins, n_blk, truncation_sigma, moments=True)
-                out[i, blk] += w * c
-                mom[i, blk] += w * m
+    scale = float(np.sum(gmm_weights))
+    for part, branches in region_parts(ruptures, region_branches):
+        weighted = (list(zip(gmms, gmm_weights)) if branches is None
+                    else [(m, scale * w) for w, m in branches])
+        for blk, site, rup, starts, owners, inp, cells, d, rate in pair_blocks(
+                site_lon, site_lat, site_vs30, part, max_distance_km, region, site_block, ref, site_fields):
+            n_blk = blk.stop - blk.start
+            for gmm, w in weighted:
+                ln_median, sigma = pair_values(gmm.evaluate(model_input(inp, gmm), list(ims)), cells)
+                for i in range(len(ims)):
+                    c, m = disaggregation_from_pairs(
+                        ln_targets[i, blk], ln_median[i], sigma[i], rate, site, part.mag[rup], d["rrup_km"],
+                        bins, n_blk, truncation_sigma, moments=True)
+                    out[i, blk] += w * c
+                    mom[i, blk] += w * m
     return (out, mom) if moments else out
 
 
 # --- event-based ground motion: the same pairs and GMM inputs as the classical engine ----------
 
 def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *, max_distance_km=200.0,
-                          region="global", ref, evaluate=None):
+                          region="global", ref, evaluate=None, site_fields=None):
     r"""Ln median [ln g], tau and phi [ln units] of every (model, IM, site, rupture).
 
     The (site, rupture) pairs within the integration distance and their ground-motion
@@ -624,7 +662,7 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     site_lon, site_lat : ndarray, shape (n_sites,) [deg]
     site_vs30 : ndarray, shape (n_sites,) [m/s]
     ruptures : quakefolio.core.sources.ruptures.RuptureSet
-        ``n_ruptures`` ruptures.
+        ``n_ruptures`` ruptures, of any tectonic regions.
     gmms : sequence of ground-motion models
     ims : sequence of str
     max_distance_km : float
@@ -632,9 +670,13 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     region : str
     ref : (lon, lat) [deg]
         Reference point of the local projection.
-    evaluate : array_like of int or None
-        Indices of the models to evaluate (default: all); the others keep the values of
-        pairs beyond the integration distance.
+    evaluate : array_like of int, mapping of int to array_like of int, or None
+        Indices of the models to evaluate (default: all), for every rupture or, as a
+        mapping, per tectonic region code of the ruptures (a code not in it: none); the
+        others keep the values of pairs beyond the integration distance.
+    site_fields : dict of str to ndarray, shape (n_sites,), or None
+        Per-site ``z1p0_km``, ``z2p5_km`` [km] (NaN: the model's own Vs30 relation) and
+        ``backarc`` (0 or 1), as :func:`compute_site_hazard`.
 
     Returns
     -------
@@ -645,82 +687,34 @@ def rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures, gmms, ims, *,
     Raises
     ------
     ValueError
-        If a model to evaluate gives only a total sigma (``has_tau_phi`` False).
+        If a model to evaluate gives only a total sigma (``has_tau_phi`` False), or is
+        not made for the tectonic region of a rupture it is to evaluate.
     """
+    from quakefolio.core.gmm import TECTONIC_REGIONS
+
     n_im = len(ims)
     mu = np.full((len(gmms), n_im, len(site_lon), len(ruptures.mag)), -np.inf)
     tau = np.zeros_like(mu)
     phi = np.zeros_like(mu)
-    si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, ruptures, max_distance_km, ref, region)
-    if inp is None:
-        return mu, tau, phi
-    for g in (range(len(gmms)) if evaluate is None else evaluate):
-        if not gmms[g].has_tau_phi:
-            raise ValueError(f"{gmms[g].name}: the model gives only a total sigma; event ground motion needs "
-                             "its between- and within-event parts (tau, phi)")
-        res = gmms[g].evaluate(inp, ims)
-        mu[g][:, si, ri] = res.ln_median
-        tau[g][:, si, ri] = res.tau
-        phi[g][:, si, ri] = res.phi
+    fields = {k: np.asarray(v, dtype=float) for k, v in (site_fields or {}).items() if v is not None}
+    codes = ruptures.region_code
+    for code in np.unique(codes):
+        wanted = range(len(gmms)) if evaluate is None else (
+            evaluate.get(int(code), ()) if isinstance(evaluate, dict) else evaluate)
+        wanted = [int(g) for g in wanted]
+        if not wanted:
+            continue
+        for g in wanted:
+            check_event_model(gmms[g], TECTONIC_REGIONS[code])
+        idx = np.flatnonzero(codes == code)
+        part = ruptures if idx.size == codes.size else ruptures.subset(idx)
+        si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, part, max_distance_km, ref, region,
+                                           **fields)
+        if inp is None:
+            continue
+        for g in wanted:
+            res = gmms[g].evaluate(model_input(inp, gmms[g]), ims)
+            mu[g][:, si, idx[ri]] = res.ln_median
+            tau[g][:, si, idx[ri]] = res.tau
+            phi[g][:, si, idx[ri]] = res.phi
     return mu, tau, phi
-
-
-def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, event_gmm, gmms, ims, *,
-                        max_distance_km=200.0, region="global", ref):
-    r"""Ln median [ln g], tau and phi [ln units] of each event's ground motion at each site.
-
-    Parameters
-    ----------
-    site_lon, site_lat, site_vs30 : ndarray, shape (n_sites,) [deg], [deg], [m/s]
-    ruptures : quakefolio.core.sources.ruptures.RuptureSet
-    event_rupture : ndarray of int, shape (n_events,)
-        Rupture of each event (index into ``ruptures``).
-    event_gmm : ndarray of int, shape (n_events,)
-        Ground-motion model of each event (index into ``gmms``).
-    gmms : sequence of ground-motion models
-    ims : sequence of str
-    max_distance_km, region, ref
-        As :func:`rupture_ground_motion`.
-
-    Returns
-    -------
-    ln_median, tau, phi : ndarray, shape (n_events, n_ims, n_sites)
-        ``-inf`` median and zero tau, phi beyond the integration distance.
-
-    Notes
-    -----
-    Each distinct rupture of the events is evaluated once, with only the models the
-    events use (:func:`rupture_ground_motion`); the event field is then
-    :math:`\ln IM = \mu + \tau\eta + \phi\varepsilon` (Jayaram & Baker 2009,
-    :func:`quakefolio.core.events.gmf.ln_im`).
-    """
-    ev_rup = np.asarray(event_rupture)
-    g_ev = np.asarray(event_gmm)
-    uniq, inv = np.unique(ev_rup, return_inverse=True)
-    mu, tau, phi = rupture_ground_motion(site_lon, site_lat, site_vs30, ruptures.subset(uniq), gmms, list(ims),
-                                         max_distance_km=max_distance_km, region=region, ref=ref,
-                                         evaluate=np.unique(g_ev))
-    # (n_ev, n_im, n_sites): gather each event's model and rupture
-    return mu[g_ev, :, :, inv], tau[g_ev, :, :, inv], phi[g_ev, :, :, inv]
-
-
-def event_ln_im(ln_median, tau, phi, eta, eps, truncation_sigma=None):
-    r"""ln IM [ln g] of sampled events; ``-inf`` (no ground motion) beyond the integration distance.
-
-    Parameters
-    ----------
-    ln_median, tau, phi : ndarray, shape (n_events, n_ims, n_sites)
-        From :func:`event_ground_motion` (``-inf`` median beyond the integration distance).
-    eta : ndarray, shape (n_events, n_ims) [-]
-    eps : ndarray, shape (n_events, n_ims, n_sites) [-]
-        Standard-normal residuals (:class:`quakefolio.core.events.gmf.FieldSampler`).
-    truncation_sigma : float or None
-
-    Returns
-    -------
-    ndarray, shape (n_events, n_ims, n_sites) [ln g]
-        :func:`quakefolio.core.events.gmf.ln_im` where the median is finite, ``-inf`` elsewhere.
-    """
-    with np.errstate(invalid="ignore"):
-        out = ln_im(np.where(np.isfinite(ln_median), ln_median, 0.0), tau, phi, eta, eps, truncation_sigma)
-    return np.where(np.isfinite(ln_median), out, -np.inf)

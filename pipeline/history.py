@@ -56,9 +56,11 @@ def _runs(output):
              and (p / "manifest.json").is_file()]
 
     def order(p):
+        # the run id's start second, then (runs started in the same second) when the manifest was
+        # committed [ns]: the random part of the id carries no order
         stamp, _, rest = p.name.partition("-")
         suffix = rest.split("-")[1] if rest.count("-") else "1"
-        return stamp, int(suffix), p.name
+        return stamp, (p / "manifest.json").stat().st_mtime_ns, int(suffix), p.name
 
     return sorted(found, key=order)
 

@@ -22,7 +22,9 @@ def _hazard_lines(run, manifest):
     if tree:
         lines.append(f"  hazard computed at {manifest['hazard_sites']} sites: "
                      f"{len(tree['source_branches'])} source-model x {len(tree['gmm_branches'])} ground-motion "
-                     f"branches ({sum(b['ruptures'] for b in tree['source_branches'])} ruptures in all)")
+                     f"branches ({sum(b['ruptures'] for b in tree['source_branches'])} ruptures in all)"
+                     + "".join(f"; {region}: {', '.join(g['id'] for g in rows)}"
+                               for region, rows in tree.get("region_gmm_branches", {}).items()))
     else:
         lines.append(f"  hazard tabulated at {manifest['hazard_sites']} sites")
     lines.append(f"  {stat} uniform-hazard IM [g] across sites (min / median / max):")

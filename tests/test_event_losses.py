@@ -1,7 +1,8 @@
 """Event-based arithmetic in the core: random streams (quakefolio.core.events.eventset), event
 ground motion on the classical engine's pairs (quakefolio.core.hazard) and event losses
 and cross-check statistics (quakefolio.core.events.losses), each equal, bit for bit, to the
-previous stage code on random inputs (kept below as the reference)."""
+previous stage code on random inputs (kept below as the reference); the mean-damage-ratio mode's
+sums, formed per (site, class) pair in another order of addition, to 1e-12 relative."""
 from __future__ import annotations
 
 import numpy as np
@@ -18,11 +19,13 @@ from quakefolio.core.events.eventset import (
     block_rng, class_block_index, damage_block_rng, stream_rng,
 )
 from quakefolio.core.sources.geometry import pair_distances, site_rupture_mask
-from quakefolio.core.gmm import GmmInput, get_gmm
-from quakefolio.core.hazard import event_ground_motion
+from quakefolio.core.gmm import GMM_REGISTRY, GmmInput, get_gmm
+from quakefolio.core.events.programme import GroupSums
+from quakefolio.core.events.motion import event_ground_motion
 from quakefolio.core.sources.mfd import truncated_gr
 from quakefolio.core.events.portfolio import (
-    aal_with_standard_error, apply_policy, expected_loss_ratio, expected_net_loss_ratio, sample_loss_ratio,
+    aal_with_standard_error, apply_policy, expected_loss_ratio, expected_loss_ratios, expected_net_loss_ratio,
+    sample_loss_ratio,
 )
 from quakefolio.core.sources.ruptures import RuptureSet, planar_fault_ruptures, point_source_ruptures
 
@@ -91,21 +94,52 @@ def test_event_ground_motion_equals_the_previous_stage_code(seed):
     gmms = [get_gmm("BSSA14"), get_gmm("CB14")]
     ims = ["PGA", "SA_0.3", "SA_1.0"]
     n_ev = int(rng.integers(1, 200))
-    ev_rup = np.sort(rng.integers(0, len(rs), n_ev))
+    ev_rup = rng.integers(0, len(rs), n_ev)  # in no order, as the events of a chunk
     g_ev = rng.integers(0, 1 + seed % 2, n_ev)  # seed 0, 2: one model only
+    ev_rup[-1], g_ev[-1] = ev_rup[0], g_ev[0]  # at least one (model, rupture) drawn twice: rows copied
     args = (lon, lat, vs30, rs, ev_rup, g_ev, gmms, ims)
-    got = event_ground_motion(*args, max_distance_km=60.0, region="california", ref=(10.3, 20.0))
     want = _reference_ground_motion(*args, 60.0, "california", (10.3, 20.0))
-    for g, w in zip(got, want):
-        _same(g, w)
+    # each model only on the ruptures of its events, in passes of a few ruptures: the same values
+    for pair_block in (1, 37, 100_000):
+        got = event_ground_motion(*args, max_distance_km=60.0, region="california", ref=(10.3, 20.0),
+                                  pair_block=pair_block)
+        for g, w in zip(got, want):
+            _same(g, w)
     assert np.isinf(got[0]).any() and np.isfinite(got[0]).any()  # both sides of the integration distance
+
+
+@pytest.mark.parametrize("name", sorted(GMM_REGISTRY))
+def test_models_are_elementwise_on_subsets_of_scenarios(name):
+    # event_ground_motion evaluates each model on subsets of the pairs (GmmInput.take): every
+    # value must be the one the model gives that scenario among all the others
+    rng = np.random.default_rng(4)
+    n = 400
+    model = get_gmm(name)
+    region = "california" if "california" in model.supported_regions else model.supported_regions[0]
+    mag = rng.uniform(4.5, 7.8, n)
+    width = rng.uniform(3.0, 20.0, n)
+    inp = GmmInput(mag=mag, vs30_mps=rng.uniform(180, 1200, n), rrup_km=rng.uniform(1.0, 200.0, n),
+                   rjb_km=rng.uniform(0.0, 199.0, n), rx_km=rng.uniform(-50, 50, n), ry0_km=rng.uniform(0, 30, n),
+                   ztor_km=rng.uniform(0, 5, n), zhyp_km=rng.uniform(5, 15, n), dip_deg=rng.uniform(30, 90, n),
+                   rake_deg=rng.uniform(-180, 180, n), width_km=width, rhyp_km=rng.uniform(10.0, 250.0, n),
+                   intraslab=rng.uniform(size=n) < 0.5, backarc=rng.uniform(size=n) < 0.5,
+                   vs30_measured=rng.uniform(size=n) < 0.5, region=region)
+    ims = list(model.supported_ims[:1]) + ["SA_0.3", "SA_1.0"]
+    whole = model.evaluate(inp, ims)
+    for idx in (np.arange(0, n, 7), np.sort(rng.choice(n, 60, replace=False)), np.array([5])):
+        sub = inp.take(idx)
+        assert sub.shape == (idx.size,)
+        part = model.evaluate(sub, ims)
+        for field in ("ln_median", "tau", "phi", "sigma"):
+            _same(getattr(part, field), getattr(whole, field)[:, idx])
 
 
 # --- event losses -----------------------------------------------------------------------------
 
-def _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks):
+def _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks, per_asset=None):
     """The previous stage loop (event_chunk), with the mean mode's net loss now the expected net loss
-    given the intensity (expected_net_loss_ratio, checked against Monte Carlo in test_net_loss.py)."""
+    given the intensity (expected_net_loss_ratio, checked against Monte Carlo in test_net_loss.py).
+    ``per_asset``: an (n_events, n_assets) array that receives every asset's net loss."""
     n_ev, n_assets = im.shape[0], len(value)
     gu_ev, net_ev = np.zeros(n_ev), np.zeros(n_ev)
     bounds = [(lo, hi) for _, lo, hi in blocks]
@@ -129,6 +163,8 @@ def _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks):
                                                           lim[assets])
         gu_ev += gu.sum(axis=1)
         net_ev += net.sum(axis=1)
+        if per_asset is not None:
+            per_asset[:, assets] = net
         for j, (lo, hi) in enumerate(bounds):
             g, n = gu[lo:hi], net[lo:hi]
             asset_sum[j, 0, assets], asset_sum[j, 1, assets] = g.sum(axis=0), n.sum(axis=0)
@@ -169,10 +205,90 @@ def test_portfolio_event_losses_equal_the_previous_stage_loop(seed, loss_model):
     got = portfolio_event_losses(im, classes, value, ded, lim, loss_model=loss_model, seed=seed, blocks=blocks)
     want = _reference_losses(im, classes, value, ded, lim, loss_model, seed, blocks)
     for g, w in zip(got, want):
-        _same(g, w)
+        if loss_model == "sampled_damage":
+            _same(g, w)
+        else:  # mean mode: sums per (site, class) pair, another order of addition (pair_mean_losses)
+            assert g.shape == w.shape
+            np.testing.assert_allclose(g, w, rtol=1e-12, atol=0)
     gu, net, asset_sum, _, class_sum = got
     assert (net <= gu + 1e-6).all()
     np.testing.assert_allclose(asset_sum.sum(axis=2), class_sum.sum(axis=1), rtol=1e-12)
+
+
+@pytest.mark.parametrize("loss_model", ["mean_damage_ratio", "sampled_damage"])
+def test_group_sums_of_event_losses(loss_model):
+    # terms groups (programme): per event, the net losses of each group's assets; in the mean mode
+    # the assets without terms enter per (site, class) pair (GroupSums.add_pairs)
+    im, classes, value, ded, lim, blocks = _random_portfolio(np.random.default_rng(7))
+    group = np.random.default_rng(8).integers(0, 4, len(value))
+    sums = GroupSums(group, 4, im.shape[0])
+    portfolio_event_losses(im, classes, value, ded, lim, loss_model=loss_model, seed=3, blocks=blocks,
+                           group_sums=sums)
+    net = np.zeros((im.shape[0], len(value)))
+    _reference_losses(im, classes, value, ded, lim, loss_model, 3, blocks, per_asset=net)
+    want = np.stack([net[:, group == g].sum(axis=1) for g in range(4)], axis=1)
+    np.testing.assert_allclose(sums.total, want, rtol=1e-12, atol=1e-9)
+
+
+def _vulnerability_portfolio(rng):
+    """The random portfolio with its first class a vulnerability table (invented rows, feasible CoVs)."""
+    from quakefolio.core.vulnerability import VulnerabilityTable, check_vulnerability
+
+    im, classes, value, ded, lim, blocks = _random_portfolio(rng)
+    table = VulnerabilityTable(*check_vulnerability(np.array([0.05, 0.2, 0.5, 1.0, 2.0]),
+                                                    np.array([0.0, 0.05, 0.2, 0.5, 0.8]),
+                                                    np.array([0.0, 0.8, 0.5, 0.3, 0.2])))
+    assets, i_im, _, _, _, _, usites, pair = classes[0]
+    classes[0] = (assets, i_im, table, None, None, None, usites, pair)
+    return im, classes, value, ded, lim, blocks
+
+
+@pytest.mark.parametrize("loss_model", ["mean_damage_ratio", "sampled_damage"])
+@pytest.mark.parametrize("seed", range(3))
+def test_vulnerability_class_event_losses_equal_the_per_asset_loop(seed, loss_model):
+    # a vulnerability class beside damage-state classes: the mean mode summed per (site, class) pair
+    # (pair_mean_losses) equals the per-asset expected ground-up and net losses
+    # (vulnerability_loss_ratios, incomplete-beta identity) to round-off; the sampled mode, with the
+    # terms applied only to the assets that have them, equals apply_policy on every asset bit for bit
+    from quakefolio.core.events.losses import block_loss_sums, event_loss_ratio
+    from quakefolio.core.vulnerability import vulnerability_loss_ratios
+
+    im, classes, value, ded, lim, blocks = _vulnerability_portfolio(np.random.default_rng(100 + seed))
+    group = np.random.default_rng(seed).integers(0, 3, len(value))
+    sums = GroupSums(group, 3, im.shape[0])
+    got = portfolio_event_losses(im, classes, value, ded, lim, loss_model=loss_model, seed=seed, blocks=blocks,
+                                 group_sums=sums)
+    bounds = [(lo, hi) for _, lo, hi in blocks]
+    gu_ev, net_ev = np.zeros(im.shape[0]), np.zeros(im.shape[0])
+    per_asset = np.zeros((im.shape[0], len(value)))
+    for k, (assets, i_im, medians, betas, mdr, cov, usites, pair) in enumerate(classes):
+        x = im[:, i_im, usites]
+        v, d, lm = value[assets], ded[assets], lim[assets]
+        if loss_model == "mean_damage_ratio":
+            if k == 0:
+                ratio, net_ratio = vulnerability_loss_ratios(x, *medians, v, d, lm, pair=pair)
+            else:
+                ratio, net_ratio = expected_loss_ratios(x, medians, betas, mdr, cov, v, d, lm, pair=pair)
+            net = v * net_ratio
+        else:
+            ratio = event_loss_ratio(x, medians, betas, mdr, cov, pair, loss_model=loss_model, seed=seed,
+                                     blocks=blocks, class_entry=k)
+            net = apply_policy(ratio * v, d, lm)
+        gu, n, a_sum, _, _ = block_loss_sums(ratio, v, d, lm, bounds, net=net)
+        gu_ev += gu
+        net_ev += n
+        per_asset[:, assets] = net
+        if loss_model == "sampled_damage":
+            _same(got[2][:, :, assets], a_sum)
+    want_groups = np.stack([per_asset[:, group == g].sum(axis=1) for g in range(3)], axis=1)
+    if loss_model == "sampled_damage":
+        _same(got[0], gu_ev)
+        _same(got[1], net_ev)
+    else:
+        np.testing.assert_allclose(got[0], gu_ev, rtol=1e-12, atol=0)
+        np.testing.assert_allclose(got[1], net_ev, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(sums.total, want_groups, rtol=1e-12, atol=1e-9)
+    assert (got[1] <= got[0] + 1e-6).all() and (got[1] < got[0]).any()
 
 
 def test_exceedance_counts_and_group_sums():

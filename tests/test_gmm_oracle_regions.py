@@ -48,7 +48,7 @@ from quakefolio.core.gmm import (
     im_period_s,
     models_for_region,
 )
-from quakefolio.core.hazard import hazard_from_pairs, pair_index
+from quakefolio.core.hazard import compute_site_hazard, hazard_from_pairs, pair_index
 
 pygmm = pytest.importorskip("pygmm")
 
@@ -404,9 +404,8 @@ def test_intraslab_point_source_hazard_matches_closed_form():
     pygmm's scalar AG16 (independent oracle). With truncation at 3 sigma the closed form
     is nu [Phi(-eps) - Phi(-3)] / [1 - 2 Phi(-3)], clipped at 0.
 
-    ``compute_site_hazard`` cannot take this source yet: a RuptureSet carries no event
-    type, its pairs get no hypocentral distance and the sites no backarc flag, so the
-    kernel is fed the model's values directly.
+    Here the kernel is fed the model's values directly; the same check through
+    ``compute_site_hazard`` (rupture region, hypocentral distance, backarc flag) follows.
     """
     nu, mag, depth = 2e-3, 7.2, 55.0
     repi = np.array([0.0, 40.0, 120.0, 250.0])
@@ -463,3 +462,151 @@ def test_stable_continental_hazard_runs_and_event_motion_refuses_total_sigma_mod
     assert_allclose(got, expected, rtol=1e-12)
     with pytest.raises(ValueError, match="PZT11: the model gives only a total sigma"):
         rupture_ground_motion(lon, lat, np.array([760.0]), rs, [model], ["PGA"], ref=ref)
+
+
+# --------------------------------------------------------------------------- #
+# Closed form through the engine: tectonic regions of a rupture set
+# --------------------------------------------------------------------------- #
+def _slab_source(nu=2e-3, mag=7.2, depth=55.0, lon=140.0, lat=-10.0):
+    from quakefolio.core.sources.mfd import single_magnitude
+    from quakefolio.core.sources.ruptures import point_source_ruptures
+
+    rs = point_source_ruptures("slab", lon, lat, mfd=single_magnitude(mag, nu), hypo_depths=[(depth, 1.0)],
+                               mechanisms=[(0.0, 90.0, -90.0, 1.0)], upper_depth_km=40.0, lower_depth_km=70.0)
+    return rs.with_region("subduction_intraslab")
+
+
+def _sites_east(repi_km, lon=140.0, lat=-10.0):
+    from quakefolio.core.sources.geometry import aeqd_inverse
+
+    return aeqd_inverse(np.asarray(repi_km, dtype=float), np.zeros(len(repi_km)), lon, lat)
+
+
+def test_intraslab_point_source_through_the_engine_matches_closed_form():
+    r"""compute_site_hazard on an intraslab rupture: nu (1 - Phi(eps)) with AG16 at Rhypo (Cornell 1968).
+
+    Invented source: one intraslab rupture (point source at 55 km depth, M 7.2, 2e-3 per
+    year, vertical plane within 40-70 km); sites due east at epicentral distances 0, 40,
+    120 and 250 km (exact in the engine's projection about the epicentre), the last in
+    the backarc (``site_fields``). The closed form takes Rhypo = sqrt(Repi^2 + 55^2)
+    computed here, the model's median and sigma, and, as an independent oracle,
+    pygmm's scalar AG16; with truncation at 3 sigma,
+    nu [Phi(-eps) - Phi(-3)] / [1 - 2 Phi(-3)], clipped at 0.
+    """
+    nu, mag, depth = 2e-3, 7.2, 55.0
+    rs = _slab_source(nu, mag, depth)
+    assert len(rs) == 1 and rs.regions == ("subduction_intraslab",)
+    assert rs.zhyp_km[0] == depth
+    repi = np.array([0.0, 40.0, 120.0, 250.0])
+    lon, lat = _sites_east(repi)
+    vs30 = np.array([250.0, 400.0, 900.0, 600.0])
+    backarc = np.array([0.0, 0.0, 0.0, 1.0])
+    ims = ["PGA", "SA_0.2", "SA_1.0", "SA_3.0"]
+    levels = np.geomspace(1e-4, 3.0, 40)
+    model = get_gmm("AG16")
+    kw = dict(max_distance_km=300.0, ref=(140.0, -10.0), region_branches={"subduction_intraslab": [(1.0, model)]},
+              site_fields={"backarc": backarc})
+    # the crustal branches (here two) see no crustal rupture: each carries the intraslab mean
+    got = compute_site_hazard(lon, lat, vs30, rs, [get_gmm("BSSA14"), get_gmm("CB14")], ims, levels, **kw)
+    assert_allclose(got[0], got[1], rtol=0, atol=0)
+    trunc = compute_site_hazard(lon, lat, vs30, rs, [get_gmm("BSSA14")], ims, levels, truncation_sigma=3.0, **kw)[0]
+    rhyp = np.hypot(repi, depth)
+    res = model.evaluate(GmmInput(mag=mag, vs30_mps=vs30, rhyp_km=rhyp, zhyp_km=depth, intraslab=1, backarc=backarc),
+                         ims)
+    with _quiet():
+        oracle = [pygmm.AbrahamsonGregorAddo2016(pygmm.Scenario(
+            mag=mag, v_s30=float(v), dist_hyp=float(r), depth_hyp=depth, event_type="intraslab",
+            tectonic_region="backarc" if b else "forearc")) for v, r, b in zip(vs30, rhyp, backarc)]
+    mu_o = np.array([_interp_rows(m, m._ln_resp, ims) for m in oracle]).T
+    sd_o = np.array([_interp_rows(m, m._ln_std, ims) for m in oracle]).T
+    lnx = np.log(levels)
+    p3 = norm.sf(3.0)
+    for i in range(len(ims)):
+        eps = (lnx[None, :] - res.ln_median[i][:, None]) / res.sigma[i][:, None]
+        assert_allclose(got[0, i], nu * norm.sf(eps), rtol=1e-9, atol=0.0)
+        eps_o = (lnx[None, :] - mu_o[i][:, None]) / sd_o[i][:, None]
+        assert_allclose(got[0, i], nu * norm.sf(eps_o), rtol=1e-5, atol=1e-300)
+        assert_allclose(trunc[i], nu * np.clip((norm.sf(eps) - p3) / (1 - 2 * p3), 0, 1), rtol=1e-9, atol=1e-18)
+    assert got[0, 0, :, 0].min() > 0.99 * nu and got[0, 0, 0, -1] < 1e-2 * nu
+
+
+def test_interface_fault_through_the_engine_matches_closed_form():
+    r"""compute_site_hazard on one interface rupture: nu (1 - Phi(eps)) with AG16 at Rrup (Cornell 1968).
+
+    Invented source: a planar interface fault, trace due north along 140 E from 10.45 S to
+    9.55 S (100 km), dipping 20 degrees east between 10 and 30 km depth, M 8.5 at 1e-3 per
+    year; the magnitude's rupture is larger than the fault, so its one rupture is the whole
+    plane. Sites due east of the trace's midpoint at 0 to 250 km (exact in the engine's
+    projection about it), one of them in the backarc. Rrup closed form: in the vertical
+    section through the sites the plane is the segment s (cos d, sin d), s from 10/sin d
+    to 30/sin d, so a site at x has Rrup = |(x, 0) - t (cos d, sin d)| with
+    t = clip(x cos d) (the segment's nearest point; the sites face the middle of the
+    100 km length). The hazard takes the model's median and sigma at that Rrup and, as an
+    independent oracle, pygmm's scalar AG16 (interface, dist_rup).
+    """
+    from quakefolio.core.sources.mfd import single_magnitude
+    from quakefolio.core.sources.ruptures import planar_fault_ruptures
+
+    nu, mag, dip = 1e-3, 8.5, np.radians(20.0)
+    rs = planar_fault_ruptures("interface", [[140.0, -10.45], [140.0, -9.55]], dip_deg=20.0, upper_depth_km=10.0,
+                               lower_depth_km=30.0, rake_deg=90.0, mfd=single_magnitude(mag, nu))
+    rs = rs.with_region("subduction_interface")
+    assert len(rs) == 1 and rs.ztor_km[0] == 10.0 and rs.zbot_km[0] == 30.0
+    x = np.array([0.0, 30.0, 60.0, 100.0, 150.0, 250.0])
+    lon, lat = _sites_east(x)
+    t = np.clip(x * np.cos(dip), 10.0 / np.sin(dip), 30.0 / np.sin(dip))
+    rrup = np.hypot(x - t * np.cos(dip), t * np.sin(dip))
+    vs30 = np.array([300.0, 450.0, 760.0, 250.0, 600.0, 900.0])
+    backarc = np.array([0.0, 0.0, 0.0, 0.0, 0.0, 1.0])
+    ims = ["PGA", "SA_0.2", "SA_1.0", "SA_3.0"]
+    levels = np.geomspace(1e-4, 3.0, 40)
+    model = get_gmm("AG16")
+    got = compute_site_hazard(lon, lat, vs30, rs, [get_gmm("CB14")], ims, levels, max_distance_km=300.0,
+                              ref=(140.0, -10.0), region_branches={"subduction_interface": [(1.0, model)]},
+                              site_fields={"backarc": backarc})[0]
+    res = model.evaluate(GmmInput(mag=mag, vs30_mps=vs30, rrup_km=rrup, intraslab=0, backarc=backarc), ims)
+    with _quiet():
+        oracle = [pygmm.AbrahamsonGregorAddo2016(pygmm.Scenario(
+            mag=mag, v_s30=float(v), dist_rup=float(r), event_type="interface",
+            tectonic_region="backarc" if b else "forearc")) for v, r, b in zip(vs30, rrup, backarc)]
+    mu_o = np.array([_interp_rows(m, m._ln_resp, ims) for m in oracle]).T
+    sd_o = np.array([_interp_rows(m, m._ln_std, ims) for m in oracle]).T
+    lnx = np.log(levels)
+    for i in range(len(ims)):
+        eps = (lnx[None, :] - res.ln_median[i][:, None]) / res.sigma[i][:, None]
+        assert_allclose(got[i], nu * norm.sf(eps), rtol=1e-7, atol=1e-300)
+        eps_o = (lnx[None, :] - mu_o[i][:, None]) / sd_o[i][:, None]
+        assert_allclose(got[i], nu * norm.sf(eps_o), rtol=1e-5, atol=1e-300)
+    assert got[0, :, 0].min() > 0.99 * nu and got[0, 0, -1] < 1e-2 * nu
+
+
+def test_regions_sum_and_branch_weights_give_the_combination_mean():
+    # A crustal rupture and an intraslab one: branch g is crustal(g) + sum_k w_k slab(k), so the
+    # weighted mean over g equals the mean over all (crustal, slab) combinations with product
+    # weights (linearity of the hazard sum, Cornell 1968); computed here by brute force.
+    from quakefolio.core.sources.mfd import single_magnitude
+    from quakefolio.core.sources.ruptures import RuptureSet, point_source_ruptures
+
+    crustal = point_source_ruptures("crust", 140.2, -10.0, mfd=single_magnitude(6.0, 0.01),
+                                    hypo_depths=[(10.0, 1.0)], mechanisms=[(0.0, 90.0, 0.0, 1.0)],
+                                    upper_depth_km=0.0, lower_depth_km=20.0)
+    slab = _slab_source()
+    both = RuptureSet.concat([crustal, slab])
+    assert both.regions == ("active_crustal", "subduction_intraslab")
+    lon, lat = _sites_east([10.0, 80.0])
+    vs30 = np.array([400.0, 760.0])
+    levels = np.geomspace(1e-3, 2.0, 15)
+    ag = get_gmm("AG16")
+    crust_models, wc = [get_gmm("BSSA14"), get_gmm("ASK14")], [0.4, 0.6]
+    kw = dict(max_distance_km=300.0, ref=(140.0, -10.0))
+    slab_branches = [(0.3, ag), (0.7, ag)]  # the same model twice: the mean is that model's curve
+    got = compute_site_hazard(lon, lat, vs30, both, crust_models, ["PGA"], levels,
+                              region_branches={"subduction_intraslab": slab_branches}, **kw)
+    c = compute_site_hazard(lon, lat, vs30, crustal, crust_models, ["PGA"], levels, **kw)
+    s = compute_site_hazard(lon, lat, vs30, slab, [get_gmm("BSSA14")], ["PGA"], levels,
+                            region_branches={"subduction_intraslab": [(1.0, ag)]}, **kw)[0]
+    combos = sum(wg * ws * (c[g] + s) for g, wg in enumerate(wc) for ws, _ in slab_branches)
+    assert_allclose(np.tensordot(wc, got, axes=(0, 0)), combos, rtol=1e-12)
+    assert_allclose(got, c + s[None], rtol=1e-12)
+    with pytest.raises(ValueError, match="subduction_intraslab region have no ground-motion branches"):
+        compute_site_hazard(lon, lat, vs30, both, crust_models, ["PGA"], levels, **kw)

@@ -139,9 +139,9 @@ def test_disaggregation_mean_magnitude_grows_with_the_fault_rate(compute_config)
 def test_hazard_only_run_writes_hazard_tables(compute_config):
     run = run_pure(compute_config, stages_to_run="hazard")
     names = sorted(p.stem for p in run.glob("*.parquet"))
-    # the hazard tables, and the assets and fragility classes the run used (a run describes itself)
-    assert names == ["disaggregation", "disaggregation_summary", "hazard_at_return_periods", "run_assets",
-                     "run_fragility", "site_hazard"]
+    # the hazard tables and sites, and the assets and fragility classes the run used (a run describes itself)
+    assert names == ["disaggregation", "disaggregation_summary", "hazard_at_return_periods", "hazard_sites",
+                     "run_assets", "run_fragility", "site_hazard"]
 
 
 def test_sites_snap_to_a_grid(compute_config):

@@ -124,7 +124,8 @@ def test_source_model_keeps_magnitude_ranges_and_a_bent_trace_is_accepted(tmp_pa
     path = tmp_path / "sources.toml"
     path.write_text(text)
     model = load_source_model(path)
-    (row_f, col_f, lo_f, hi_f), (row_p, col_p, lo_p, hi_p) = model.magnitudes
+    (row_f, col_f, lo_f, hi_f, reg_f), (row_p, col_p, lo_p, hi_p, reg_p) = model.magnitudes
+    assert reg_f == reg_p == "active_crustal"
     assert (col_f, col_p) == ("faults[0].mfd", "points[0].mfd")
     assert_allclose([lo_f, hi_f, lo_p, hi_p], [5.1, 6.7, 4.55, 6.45])
     assert text.splitlines()[row_f - 1].startswith("mfd =")

@@ -42,7 +42,7 @@ def test_failing_stage_is_named_with_its_cause(tmp_path, monkeypatch, capsys):
 def _config(folder, cache):
     shutil.copytree(MINI, folder, ignore=shutil.ignore_patterns("output"))
     cfg = folder / "quakefolio_compute.toml"
-    text = cfg.read_text().replace("[exposure]", "[portfolio]\nyears = 400000\nseed = 3\n\n[exposure]")
+    text = cfg.read_text().replace("[exposure]", "[portfolio]\nyears = 150000\nseed = 3\n\n[exposure]")
     cfg.write_text(text.replace("site_block_size = 2", f"site_block_size = 2\ncache = {cache}"))
     return cfg
 

@@ -40,6 +40,9 @@ naming the quantity, and (for per-event quantities) a block index:
   ``SeedSequence([seed, STREAM_OCCUPANCY])`` (:func:`stream_rng`).
 * station-conditioned residuals of a scenario rupture ``r``, ground-motion model ``g`` and IM
   ``k``: ``SeedSequence([seed, STREAM_CONDITIONED, r, g, k])`` (:func:`conditioned_rng`).
+* the ground-motion model of each event of a tectonic region other than active crustal
+  (drawn by the region's branch weights, one uniform number per event):
+  ``SeedSequence([seed, STREAM_REGION_GMM_CHOICE])`` (:func:`stream_rng`).
 
 Every stream tag of the project is defined here and nowhere else; the tags are part of
 the reproducibility contract (changing one changes the draws of its quantity).
@@ -97,6 +100,7 @@ __all__ = [
     "STREAM_OCCUPANCY",
     "STREAM_CONDITIONED",
     "conditioned_rng",
+    "STREAM_REGION_GMM_CHOICE",
     "MAX_CLASS_ENTRIES",
     "EventSet",
     "stochastic_event_set",
@@ -139,13 +143,17 @@ STREAM_BRANCH_EVENTS = 13
 STREAM_OCCUPANCY = 17
 #: Stream tag of station-conditioned scenario residuals (per rupture, ground-motion model and IM).
 STREAM_CONDITIONED = 19
+#: Stream tag of the ground-motion model of events of tectonic regions other than active crustal
+#: (one uniform number per event of the set, drawn by the region's branch weights).
+STREAM_REGION_GMM_CHOICE = 18
 #: Class entries per event block in the packed index of :func:`class_block_index`.
 MAX_CLASS_ENTRIES = 4096
 
 #: Streams drawn per event block (:func:`block_rng`).
 _STREAMS = (STREAM_EVENT_SET, STREAM_GROUND_MOTION, STREAM_DAMAGE, STREAM_LOSS_RATIO)
 #: Streams drawn once per event set (:func:`stream_rng`).
-_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE, STREAM_BRANCH_YEARS, STREAM_OCCUPANCY)
+_WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE, STREAM_BRANCH_YEARS, STREAM_OCCUPANCY,
+                      STREAM_REGION_GMM_CHOICE)
 
 
 def check_seed(seed) -> int:
@@ -331,8 +339,8 @@ def stream_rng(seed: int, stream: int) -> np.random.Generator:
     seed : int
         The run's non-negative seed.
     stream : int
-        :data:`STREAM_EVENT_SET`, :data:`STREAM_GMM_CHOICE`, :data:`STREAM_BRANCH_YEARS` or
-        :data:`STREAM_OCCUPANCY`.
+        :data:`STREAM_EVENT_SET`, :data:`STREAM_GMM_CHOICE`, :data:`STREAM_BRANCH_YEARS`,
+        :data:`STREAM_OCCUPANCY` or :data:`STREAM_REGION_GMM_CHOICE`.
 
     Returns
     -------

@@ -127,6 +127,8 @@ __all__ = [
     "cross_im_correlation_matrix",
     "truncated_normal_transform",
     "ln_im",
+    "residual_term",
+    "check_standard_deviations",
     "Residuals",
     "FieldSampler",
 ]
@@ -387,16 +389,55 @@ def ln_im(ln_median: ArrayLike, tau: ArrayLike, phi: ArrayLike, eta: ArrayLike, 
             "eta must have shape (n_events, n_ims) and eps (n_events, n_ims, n_sites) with the same first two "
             f"axes; got {eta.shape} and {eps.shape}"
         )
+    check_standard_deviations(tau, phi)
+    return mu + residual_term(tau, phi, eta, eps, n)
+
+
+def check_standard_deviations(tau, phi) -> None:
+    """Raise ``ValueError`` unless ``tau`` and ``phi`` [ln units] are finite and >= 0 (two reductions each)."""
     for name, sd in (("tau", tau), ("phi", phi)):
-        if np.any(~np.isfinite(sd)) or np.any(sd < 0):
+        if sd.size and not (sd.min() >= 0 and np.isfinite(sd.max())):  # NaN fails both comparisons
             raise ValueError(f"{name} must be finite and >= 0 [ln units]")
-    total = tau * eta[:, :, None] + phi * eps
-    if n is not None:
-        sigma = np.sqrt(tau * tau + phi * phi)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            e = np.where(sigma > 0, total / sigma, 0.0)
-        total = sigma * truncated_normal_transform(e, n)
-    return mu + total
+
+
+def residual_term(tau: FloatArray, phi: FloatArray, eta: FloatArray, eps: FloatArray,
+                  truncation_sigma: float | None) -> FloatArray:
+    r"""The residual part of :func:`ln_im` [ln units]: :math:`\tau\eta + \phi\varepsilon`, truncated.
+
+    Parameters
+    ----------
+    tau, phi : ndarray, shape (n_events, n_ims, n_sites) [ln units]
+        Checked by the caller (finite, >= 0).
+    eta : ndarray, shape (n_events, n_ims) [-]
+    eps : ndarray, shape (n_events, n_ims, n_sites) [-]
+    truncation_sigma : float or None
+        As :func:`ln_im`.
+
+    Returns
+    -------
+    ndarray, shape (n_events, n_ims, n_sites) [ln units]
+        :math:`\sigma\,T_n((\tau\eta + \phi\varepsilon)/\sigma)` with :math:`T_n`
+        :func:`truncated_normal_transform` (0 where :math:`\sigma = 0`), or the untruncated
+        sum; the operations of :func:`ln_im` in the same order, in place where possible.
+    """
+    n = _check_truncation(truncation_sigma)
+    total = _sum(tau * eta[:, :, None], phi * eps)
+    if n is None:
+        return total
+    sigma = np.sqrt(_sum(tau * tau, phi * phi))
+    e = np.zeros(np.broadcast_shapes(total.shape, sigma.shape))
+    np.divide(total, sigma, out=e, where=sigma > 0)
+    total = truncated_normal_transform(e, n)
+    total *= sigma
+    return total
+
+
+def _sum(a: FloatArray, b: FloatArray) -> FloatArray:
+    """``a + b``, into ``a`` when it has the broadcast shape."""
+    if isinstance(a, np.ndarray) and a.shape == np.broadcast_shapes(a.shape, np.shape(b)):
+        a += b
+        return a
+    return a + b
 
 
 # --------------------------------------------------------------------------- #

@@ -10,9 +10,16 @@ tables, vectorised over events and assets:
    policy terms per asset and event: on the sampled loss
    (:func:`quakefolio.core.events.portfolio.apply_policy`), or in the mean mode the
    expected net loss over damage states and loss ratios
-   (:func:`quakefolio.core.events.portfolio.expected_loss_ratios`, closed form).
+   (:func:`quakefolio.core.events.portfolio.expected_loss_ratios`, closed form); a
+   vulnerability class takes its loss ratio from its table
+   (:mod:`quakefolio.core.vulnerability`: the interpolated mean, or a beta draw).
 2. **Sums per random-number block** (per event, per asset, per class), so that totals do
-   not depend on how blocks are grouped into tasks.
+   not depend on how blocks are grouped into tasks.  In the mean mode the ground-up loss is
+   a function of the (site, class) pair's intensity, so the sums are formed per pair and
+   the per-asset work is left to the assets with policy terms (:func:`pair_mean_losses`;
+   the same sums in another order of addition, equal to 1e-12 relative); sampled damage
+   draws per asset and event, and applies the terms only to the assets that have them
+   (:func:`block_loss_sums`, bit for bit).
 3. **Statistics of the simulation**: per-asset AAL with its compound-Poisson standard
    error, per-group averages, event-based exceedance rates.
 4. **Cross-checks** against the classical results of the same model: z-scores of the
@@ -22,19 +29,23 @@ tables, vectorised over events and assets:
 from __future__ import annotations
 
 import numpy as np
+from scipy.special import ndtr
 
 from quakefolio.core.events.eventset import damage_block_rng
 from quakefolio.core.events.portfolio import (
-    aal_with_standard_error, apply_policy, expected_loss_ratio, expected_loss_ratios,
+    aal_with_standard_error, apply_policy, expected_loss_ratio, has_policy_terms,
 )
+from quakefolio.core.loss import check_damage_ratios, net_loss_ratio
+from quakefolio.core.risk import lognormal_fragility
 from quakefolio.core.events.secondary import correlated_uniform, group_factors, sample_correlated_loss_ratio
-from quakefolio.core.vulnerability import (
-    VulnerabilityTable, mean_loss_ratio_at, vulnerability_loss_ratios, vulnerability_quantile,
-)
+from quakefolio.core.vulnerability import VulnerabilityTable, cov_at, mean_loss_ratio_at, vulnerability_quantile
 
 __all__ = [
     "event_loss_ratio",
     "block_loss_sums",
+    "PASS_VALUES",
+    "state_exceedance",
+    "pair_mean_losses",
     "portfolio_event_losses",
     "exceedance_counts",
     "sum_over_blocks",
@@ -117,7 +128,7 @@ def _vulnerability_ratio(x, table, pair, loss_model, seed, blocks, class_entry, 
     return np.concatenate(parts) if parts else np.zeros((0, len(pair)))
 
 
-def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=None):
+def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=None, terms=None):
     r"""Ground-up and net losses [currency] of assets over events, summed per event and per block.
 
     Parameters
@@ -137,6 +148,10 @@ def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=No
         Net loss of every asset-event when already known (mean mode:
         :func:`quakefolio.core.events.portfolio.expected_net_loss_ratio` x value);
         otherwise the terms are applied to ``ratio x value``.
+    terms : ndarray of bool, shape (n_assets,), optional
+        :func:`quakefolio.core.events.portfolio.has_policy_terms` of the assets (computed
+        when not given): the terms are applied to these assets only, the others' net
+        loss is their ground-up loss.
 
     Returns
     -------
@@ -151,24 +166,237 @@ def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=No
 
     Notes
     -----
-    Loss = ratio x value; net = :func:`apply_policy` unless given.  Sums are kept per
-    random-number block so that totals do not depend on how blocks are grouped into tasks.
+    Loss = ratio x value; net = :func:`apply_policy` unless given.  Without terms the
+    policy returns the ground-up loss bit for bit
+    (:func:`quakefolio.core.events.portfolio.has_policy_terms`), so it runs only on the
+    assets with terms, and where no asset has any the net sums are the ground-up sums
+    (not computed twice).  Sums are kept per random-number block so that totals do not
+    depend on how blocks are grouped into tasks.
     """
     gu = ratio * value
     if net is None:
-        net = apply_policy(gu, deductible, limit)
+        net = _net_of(gu, deductible, limit, has_policy_terms(deductible, limit) if terms is None else terms)
     if on_net is not None:
         on_net(net)
     n_assets = gu.shape[1]
     asset_sum = np.zeros((len(bounds), 2, n_assets))
     asset_sumsq = np.zeros((len(bounds), 2, n_assets))
     total = np.zeros((len(bounds), 2))
+    same = net is gu
     for j, (lo, hi) in enumerate(bounds):
-        g, n = gu[lo:hi], net[lo:hi]
-        asset_sum[j, 0], asset_sum[j, 1] = g.sum(axis=0), n.sum(axis=0)
-        asset_sumsq[j, 0], asset_sumsq[j, 1] = (g * g).sum(axis=0), (n * n).sum(axis=0)
-        total[j] = g.sum(), n.sum()
-    return gu.sum(axis=1), net.sum(axis=1), asset_sum, asset_sumsq, total
+        for i, part in enumerate((gu,) if same else (gu, net)):
+            b = part[lo:hi]
+            asset_sum[j, i], asset_sumsq[j, i], total[j, i] = b.sum(axis=0), (b * b).sum(axis=0), b.sum()
+        if same:
+            asset_sum[j, 1], asset_sumsq[j, 1], total[j, 1] = asset_sum[j, 0], asset_sumsq[j, 0], total[j, 0]
+    gu_ev = gu.sum(axis=1)
+    return gu_ev, gu_ev.copy() if same else net.sum(axis=1), asset_sum, asset_sumsq, total
+
+
+def _net_of(gu, deductible, limit, terms):
+    """Net loss [currency]: :func:`apply_policy` on the assets with ``terms``, the ground-up loss elsewhere."""
+    if not terms.any():
+        return gu
+    if terms.all():
+        return apply_policy(gu, deductible, limit)
+    t = np.flatnonzero(terms)
+    net = gu.copy(order="K")  # the layout of ``gu``: sums over it add in the same order
+    net[:, t] = apply_policy(gu[:, t], deductible[t], limit[t])
+    return net
+
+
+#: Values per pass of the elementwise arithmetic of the mean mode (and of the event fields,
+#: :func:`quakefolio.core.events.motion.event_ln_im`): a pass's arrays of 256 KB stay in the
+#: processor's L2 cache instead of streaming through memory.
+PASS_VALUES = 32_768
+
+
+def state_exceedance(x, medians, betas):
+    r"""Probability [-] of reaching or exceeding each damage state, one 2-D array per state.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n_events, n_pairs) [IM units], non-negative
+    medians, betas : ndarray, shape (n_ds,)
+        Lognormal fragility of the ordered damage states.
+
+    Returns
+    -------
+    list of ndarray, each shape (n_events, n_pairs) [-]
+        :math:`P^*_j(x) = \max_{l \ge j} \Phi(\ln(x/\theta_l)/\beta_l)`: the values of
+        :func:`quakefolio.core.events.portfolio.exceedance_envelope` (bit for bit), state by
+        state (no (events, pairs, states) array).
+    """
+    x = np.asarray(x, dtype=float)
+    bad = np.isnan(x) | (x < 0)
+    if np.any(bad):
+        raise ValueError(f"x must be non-negative and not NaN [IM units], got {x[bad][:3].tolist()}")
+    lognormal_fragility(1.0, medians, betas)  # checks medians and betas
+    return _state_exceedance(x, np.asarray(medians, dtype=float), np.asarray(betas, dtype=float))
+
+
+def _state_exceedance(x, theta, b):
+    """:func:`state_exceedance` without the checks: ``ndtr(log(x / theta) / beta)`` per state, enveloped."""
+    p = []
+    with np.errstate(divide="ignore"):
+        for j in range(theta.size):  # the operations of quakefolio.core.risk.lognormal_fragility
+            q = x / theta[j]
+            np.log(q, out=q)
+            q /= b[j]
+            p.append(ndtr(q, out=q))
+    for j in range(theta.size - 2, -1, -1):  # upper envelope over the higher states
+        np.maximum(p[j + 1], p[j], out=p[j])
+    return p
+
+
+def _fragility_pass(x, medians, betas, mean_damage_ratio, cov, value, deductible, limit, pair):
+    """Per-pass arithmetic of :func:`pair_mean_losses` for a class with damage states.
+
+    Returns ``ratio_into(xp, out)`` (the mean loss ratio of the pairs, written into
+    ``out``; returns the states' exceedance probabilities) and ``net_of(xp, r, p)``
+    (the expected net losses [currency] of the assets given, those with terms).
+    """
+    mdr, c = check_damage_ratios(mean_damage_ratio, cov)
+    inc = np.diff(mdr, axis=-1, prepend=0.0)
+    state_exceedance(x[:0], medians, betas)  # checks the fragility once
+    if np.any(np.isnan(x) | (x < 0)):
+        state_exceedance(x, medians, betas)  # raises, naming the values
+    theta, beta = np.asarray(medians, dtype=float), np.asarray(betas, dtype=float)
+    if pair.size:  # per asset, not per asset-event
+        inc_net = np.diff(net_loss_ratio(mdr, c, value[:, None], deductible[:, None], limit[:, None]), axis=-1,
+                          prepend=0.0)
+
+    def ratio_into(xp, out):
+        p = _state_exceedance(xp, theta, beta)
+        np.multiply(inc[0], p[0], out=out)
+        for k in range(1, len(p)):
+            out += inc[k] * p[k]
+        return p
+
+    def net_of(xp, r, p):
+        acc = 0.0
+        for k in range(len(p)):
+            acc = acc + inc_net[:, k] * p[k][:, pair]
+        return value * acc
+
+    return ratio_into, net_of
+
+
+def _vulnerability_pass(x, table, value, deductible, limit, pair):
+    """Per-pass arithmetic of :func:`pair_mean_losses` for a vulnerability class (as :func:`_fragility_pass`).
+
+    The mean loss ratio at the pair's intensity
+    (:func:`quakefolio.core.vulnerability.mean_loss_ratio_at`) and, for the assets with
+    terms, the expected net loss over the beta loss ratio of that mean and CoV
+    (:func:`quakefolio.core.loss.net_loss_ratio`): the values of
+    :func:`quakefolio.core.vulnerability.vulnerability_loss_ratios`, elementwise.
+    """
+    bad = np.isnan(x) | (x < 0)
+    if np.any(bad):
+        raise ValueError(f"x must be non-negative and not NaN [IM units], got {x[bad][:3].tolist()}")
+
+    def ratio_into(xp, out):
+        out[...] = mean_loss_ratio_at(xp, table.levels, table.mean)
+        return None
+
+    def net_of(xp, r, _):
+        xa = xp[:, pair]
+        return value * net_loss_ratio(r[:, pair], cov_at(xa, *table), value, deductible, limit)
+
+    return ratio_into, net_of
+
+
+def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, deductible, limit, bounds,
+                     group_sums=None, assets=None):
+    r"""Mean-mode losses [currency] of one class's assets, summed per (site, class) pair where no terms apply.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n_events, n_pairs) [IM units]
+        Intensity at the class's unique (site, class) pairs.
+    medians, betas, mean_damage_ratio, cov : ndarray, shape (n_ds,)
+        The class's damage states (:func:`quakefolio.core.events.portfolio.expected_loss_ratios`);
+        for a vulnerability class ``medians`` is its
+        :class:`~quakefolio.core.vulnerability.VulnerabilityTable` (the others unused).
+    pair : ndarray of int, shape (n_assets,)
+        Pair of each asset.
+    value, deductible, limit : ndarray, shape (n_assets,) [currency]
+        Replacement values and per-event terms (NaN: none).
+    bounds : sequence of (first row, stop row)
+        Rows of each random-number block.
+    group_sums : quakefolio.core.events.programme.GroupSums, optional
+        Receives the assets' net losses per event, summed by terms group.
+    assets : ndarray of int, shape (n_assets,), optional
+        The assets' indices in the portfolio (needed with ``group_sums``).
+
+    Returns
+    -------
+    As :func:`block_loss_sums`.
+
+    Notes
+    -----
+    In the mean mode the ground-up loss of asset :math:`i` in event :math:`e` is
+    :math:`V_i\,r_{e,p(i)}` with :math:`r_{e,p}` the mean loss ratio at its pair's
+    intensity: :math:`r_{e,p} = \sum_j (\mu_j - \mu_{j-1}) P^*_j(x_{e,p})` for damage
+    states (:func:`quakefolio.core.events.portfolio.expected_loss_ratio`; added state by
+    state in order, which is numpy's order for fewer than 8 states), the interpolated
+    mean :math:`\mu(x_{e,p})` for a vulnerability class
+    (:func:`quakefolio.core.vulnerability.mean_loss_ratio_at`).  So the sums over assets
+    and over events factor through the pairs:
+
+    .. math:: \sum_i V_i r_{e,p(i)} = \sum_p r_{e,p} \sum_{i \in p} V_i, \qquad
+              \sum_{e \in b} V_i r_{e,p(i)} = V_i \sum_{e \in b} r_{e,p(i)}, \qquad
+              \sum_{e \in b} (V_i r_{e,p(i)})^2 = V_i^2 \sum_{e \in b} r_{e,p(i)}^2,
+
+    at a cost per pair instead of per asset.  Assets without terms
+    (:func:`quakefolio.core.events.portfolio.has_policy_terms`) have net = ground-up, so
+    they enter the net sums the same way; the expected net loss given the intensity
+    (closed form, as :func:`quakefolio.core.events.portfolio.expected_loss_ratios` and
+    :func:`quakefolio.core.vulnerability.vulnerability_loss_ratios`) is evaluated per
+    asset and event only for the assets with terms.  The sums are the same sums in
+    another order of addition: equal to those of :func:`block_loss_sums` on the
+    per-asset losses to round-off (non-negative terms: relative difference below the
+    number of terms times 2^-53, about 1e-13 here; tested to 1e-12).
+    """
+    terms = has_policy_terms(deductible, limit)
+    t = np.flatnonzero(terms)
+    money = (value[t], deductible[t], limit[t], pair[t])
+    if isinstance(medians, VulnerabilityTable):
+        ratio_into, net_of = _vulnerability_pass(x, medians, *money)
+    else:
+        ratio_into, net_of = _fragility_pass(x, medians, betas, mean_damage_ratio, cov, *money)
+    n_pairs = x.shape[1]
+    v_all = np.bincount(pair, weights=value, minlength=n_pairs)
+    v_free = np.bincount(pair[~terms], weights=value[~terms], minlength=n_pairs) if t.size else v_all
+    ratio = np.empty(x.shape)
+    gu_ev, net_ev = np.empty(x.shape[0]), np.empty(x.shape[0])
+    asset_sum = np.zeros((len(bounds), 2, len(value)))
+    asset_sumsq = np.zeros((len(bounds), 2, len(value)))
+    total = np.zeros((len(bounds), 2))
+    step = max(1, PASS_VALUES // max(1, n_pairs))  # events per pass of the elementwise arithmetic
+    for j, (lo, hi) in enumerate(bounds):  # one random-number block at a time
+        net = np.empty((hi - lo, t.size))
+        for a in range(lo, hi, step):
+            xp, r = x[a:min(hi, a + step)], ratio[a:min(hi, a + step)]
+            p = ratio_into(xp, r)
+            if t.size:  # expected net loss of the assets with terms
+                net[a - lo:a - lo + r.shape[0]] = net_of(xp, r, p)
+        r = ratio[lo:hi]
+        # along each event's row (einsum's own loop, not BLAS): an event's sum does not depend on its chunk
+        gu_ev[lo:hi] = np.einsum("ep,p->e", r, v_all)
+        net_ev[lo:hi] = np.einsum("ep,p->e", r, v_free) if t.size else gu_ev[lo:hi]
+        asset_sum[j, 0] = value * r.sum(axis=0)[pair]
+        asset_sumsq[j, 0] = value * value * (r * r).sum(axis=0)[pair]
+        asset_sum[j, 1], asset_sumsq[j, 1] = asset_sum[j, 0], asset_sumsq[j, 0]
+        if t.size:
+            net_ev[lo:hi] += net.sum(axis=1)
+            asset_sum[j, 1, t], asset_sumsq[j, 1, t] = net.sum(axis=0), (net * net).sum(axis=0)
+            if group_sums is not None:
+                group_sums.add(assets[t], net, rows=slice(lo, hi))
+        total[j] = gu_ev[lo:hi].sum(), net_ev[lo:hi].sum()
+    if group_sums is not None:
+        group_sums.add_pairs(assets[~terms], pair[~terms], value[~terms], ratio)
+    return gu_ev, net_ev, asset_sum, asset_sumsq, total
 
 
 def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model, seed, blocks, correlation=0.0,
@@ -208,11 +436,15 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
 
     Notes
     -----
-    Classes are added in their given order (:func:`event_loss_ratio`,
-    :func:`block_loss_sums`).  Mean mode: ground-up from the mean loss ratio, net the
-    expected net loss given the intensity (not the terms applied to the mean loss), so
-    both are the conditional expectations, given the ground motion, of the sampled
-    mode's losses.
+    Classes are added in their given order.  Mean mode: ground-up from the mean loss
+    ratio, net the expected net loss given the intensity (not the terms applied to the
+    mean loss), so both are the conditional expectations, given the ground motion, of the
+    sampled mode's losses; summed per (site, class) pair (:func:`pair_mean_losses`).
+    Sampled mode: per asset and event (:func:`event_loss_ratio`, :func:`block_loss_sums`),
+    the terms applied only to the assets that have them, every value and sum bit for bit
+    that of the policy applied to all.  The per-asset arrays of a chunk take
+    ``8 x events x assets of the class`` bytes each: ``[execution] event_block_size``
+    bounds them.
     """
     n_ev = im.shape[0]
     bounds = [(lo, hi) for _, lo, hi in blocks]
@@ -225,28 +457,35 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
     factors = group_factors(seed, blocks, int(np.max(group)) + 1 if len(group) else 0) if shared else None
     for k, (assets, i_im, medians, betas, mdr, cov, usites, pair) in enumerate(classes):
         x = im[:, i_im, usites]
-        net_k = None
         if loss_model == "mean_damage_ratio":  # net: expected over the loss distribution given x
-            if isinstance(medians, VulnerabilityTable):
-                ratio, net_ratio = vulnerability_loss_ratios(x, *medians, value[assets], deductible[assets],
-                                                             limit[assets], pair=pair)
-            else:
-                ratio, net_ratio = expected_loss_ratios(x, medians, betas, mdr, cov, value[assets],
-                                                        deductible[assets], limit[assets], pair=pair)
-            net_k = value[assets] * net_ratio
+            gu, net, a_sum, a_sumsq, total = pair_mean_losses(
+                x, medians, betas, mdr, cov, pair, value[assets], deductible[assets], limit[assets], bounds,
+                group_sums, assets)
         else:
-            ratio = event_loss_ratio(x, medians, betas, mdr, cov, pair, loss_model=loss_model,
-                                     seed=seed, blocks=blocks, class_entry=k, correlation=correlation,
-                                     factors=None if factors is None else factors[:, group[assets]], twin=twin)
-        on_net = None if group_sums is None else (lambda n, a=assets: group_sums.add(a, n))
-        gu, net, a_sum, a_sumsq, total = block_loss_sums(ratio, value[assets], deductible[assets], limit[assets],
-                                                         bounds, on_net, net=net_k)
+            gu, net, a_sum, a_sumsq, total = _sampled_class_losses(
+                x, (medians, betas, mdr, cov), pair, assets, (value, deductible, limit), blocks, k,
+                dict(loss_model=loss_model, seed=seed, correlation=correlation, twin=twin),
+                None if factors is None else (factors, group), group_sums)
         gu_ev += gu
         net_ev += net
         asset_sum[:, :, assets] = a_sum
         asset_sumsq[:, :, assets] = a_sumsq
         class_sum[:, k] = total
     return gu_ev, net_ev, asset_sum, asset_sumsq, class_sum
+
+
+def _sampled_class_losses(x, states, pair, assets, money, blocks, class_entry, draw, shared, group_sums):
+    """Sampled-mode losses of one class in a chunk (:func:`event_loss_ratio`, :func:`block_loss_sums`).
+
+    ``shared`` (correlated draws only): the chunk's group factors (:func:`group_factors`) and
+    every asset's group.
+    """
+    value, deductible, limit = (a[assets] for a in money)
+    factors = None if shared is None else shared[0][:, shared[1][assets]]
+    ratio = event_loss_ratio(x, *states, pair, blocks=blocks, class_entry=class_entry, factors=factors, **draw)
+    on_net = None if group_sums is None else (lambda n: group_sums.add(assets, n))
+    return block_loss_sums(ratio, value, deductible, limit, [(lo, hi) for _, lo, hi in blocks], on_net,
+                           terms=has_policy_terms(deductible, limit))
 
 
 def exceedance_counts(ln_im, levels_g):
@@ -263,7 +502,11 @@ def exceedance_counts(ln_im, levels_g):
         Divided by the simulated years, the event-based hazard curve (common practice).
     """
     ln_levels = np.log(levels_g)
-    return np.stack([(ln_im[:, i, :, None] > ln_levels).sum(axis=0) for i in range(ln_im.shape[1])])
+    out = np.empty((ln_im.shape[1], ln_im.shape[2], ln_levels.size), dtype=np.int64)
+    for i in range(ln_im.shape[1]):
+        for k, level in enumerate(ln_levels):  # 2-D comparisons: no (events, sites, levels) array
+            out[i, :, k] = np.count_nonzero(ln_im[:, i, :] > level, axis=0)
+    return out
 
 
 def sum_over_blocks(parts):

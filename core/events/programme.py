@@ -112,13 +112,46 @@ class GroupSums:
         self.group_of_asset = np.asarray(group_of_asset, dtype=np.int64)
         self.total = np.zeros((n_events, n_groups))
 
-    def add(self, assets, net):
-        """Add the net losses ``net`` [currency], shape (n_events, len(assets)), of ``assets``."""
+    def add(self, assets, net, rows=slice(None)):
+        """Add the net losses ``net`` [currency], shape (n_rows, len(assets)), of ``assets`` to events ``rows``."""
+        if not len(assets):
+            return
         g = self.group_of_asset[assets]
         order = np.argsort(g, kind="stable")
         gs = g[order]
         starts = np.flatnonzero(np.r_[True, gs[1:] != gs[:-1]])
-        self.total[:, gs[starts]] += np.add.reduceat(net[:, order], starts, axis=1)
+        self.total[rows, gs[starts]] += np.add.reduceat(net[:, order], starts, axis=1)
+
+    def add_pairs(self, assets, pair, value, ratio):
+        r"""Add losses :math:`V_i\,r_{e,p(i)}` [currency] of ``assets`` given per (site, class) pair.
+
+        Parameters
+        ----------
+        assets : ndarray of int, shape (n,)
+            The assets (whose net loss is their ground-up loss).
+        pair : ndarray of int, shape (n,)
+            Pair of each asset (column of ``ratio``).
+        value : ndarray, shape (n,) [currency]
+        ratio : ndarray, shape (n_events, n_pairs) [-]
+            Loss ratio of each pair in every event of the chunk.
+
+        Notes
+        -----
+        :math:`\sum_{i \in g} V_i r_{e,p(i)} = \sum_{p \in g} r_{e,p} W_{p,g}` with
+        :math:`W_{p,g}` the value of the assets of pair p in group g: a sum over the pairs
+        of each group instead of over its assets (another order of addition than
+        :meth:`add`; equal to round-off).  Summed along each event's row, so an event's
+        sum does not depend on the other events of the chunk.
+        """
+        if not len(assets):
+            return
+        key = np.unique(np.asarray(self.group_of_asset[assets], dtype=np.int64) * ratio.shape[1] + pair,
+                        return_inverse=True)
+        w = np.bincount(key[1].ravel(), weights=value)  # value per (group, pair), sorted by group then pair
+        group, col = np.divmod(key[0], ratio.shape[1])
+        starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]])
+        for lo, hi in zip(starts, np.r_[starts[1:], group.size]):
+            self.total[:, group[lo]] += (ratio[:, col[lo:hi]] * w[lo:hi]).sum(axis=1)
 
 
 def apply_group_terms(group_net, deductible, limit):

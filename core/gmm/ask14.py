@@ -106,6 +106,7 @@ class Ask14(VectorGmm):
     """
 
     tectonic_regions = ("active_crustal",)
+    basin_input = ("z1p0_km", "not given: the reference depth of the Vs30 relation, ASK14 Eqs. 18-19")
     name = "ASK14"
     reference = "Abrahamson, Silva & Kamai (2014), Earthquake Spectra 30(3), 1025-1055"
     coefficient_file = "abrahamson_silva_kamai_2014.csv"

@@ -310,6 +310,38 @@ class GmmInput:
         value = getattr(self, name)
         return None if value is None else np.broadcast_to(value, self.shape)
 
+    def take(self, index: ArrayLike) -> "GmmInput":
+        """The scenarios at ``index`` of a one-dimensional input, as a new input.
+
+        Every value of the subset passed this input's checks already, so they are not
+        repeated (a model evaluated on the subset gives the values it gives those
+        scenarios in the whole input: the models are elementwise).
+
+        Parameters
+        ----------
+        index : array_like of int or bool
+            Positions along the (single) scenario axis.
+
+        Returns
+        -------
+        GmmInput
+            Shape ``(len(selection),)``; scalar fields stay scalar.
+        """
+        if len(self.shape) != 1:
+            raise ValueError(f"GmmInput.take needs a one-dimensional input; shape is {self.shape}")
+        idx = np.asarray(index)
+        sub = object.__new__(GmmInput)
+        n = None
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if f.name != "region" and value is not None and value.ndim:
+                value = value[idx]
+                value.setflags(write=False)
+                n = value.shape
+            object.__setattr__(sub, f.name, value)
+        object.__setattr__(sub, "_shape", n if n is not None else np.zeros(self.shape)[idx].shape)
+        return sub
+
 
 @dataclass(frozen=True, eq=False)
 class GmmResult:
@@ -500,10 +532,14 @@ class VectorGmm:
     coefficient_file: ClassVar[str] = ""
     #: regions accepted in ``GmmInput.region``
     supported_regions: ClassVar[tuple[str, ...]] = ()
-    #: documented applicability ranges (informative; not enforced)
+    #: documented applicability ranges (informative, except Vs30: the hazard engine gives each
+    #: model a Vs30 clamped to its range, :func:`quakefolio.core.pairs.model_input`)
     applicability: ClassVar[dict[str, object]] = {}
     #: tectonic regions (names from :data:`TECTONIC_REGIONS`) whose earthquakes the model is for
     tectonic_regions: ClassVar[tuple[str, ...]] = ()
+    #: The basin depth the model takes (``"z1p0_km"`` or ``"z2p5_km"``) and its rule where a
+    #: site gives none, or None for a model without a basin term.
+    basin_input: ClassVar[tuple[str, str] | None] = None
     #: False when the model publishes only the total sigma: ``tau`` and ``phi`` are then NaN
     has_tau_phi: ClassVar[bool] = True
     #: False when the model has no site term (its medians are for its reference rock)

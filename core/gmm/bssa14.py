@@ -65,6 +65,7 @@ class Bssa14(VectorGmm):
     )
     coefficient_file = "boore_stewart_seyhan_atkinson-2014.csv"
     tectonic_regions = ("active_crustal",)
+    basin_input = ("z1p0_km", "not given: no basin term (z1p0_km taken as the mean depth of the Vs30 relation, BSSA14 Eqs. 11-12)")
     supported_regions = (
         "global",
         "california",

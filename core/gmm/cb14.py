@@ -81,6 +81,7 @@ class Cb14(VectorGmm):
     reference = "Campbell & Bozorgnia (2014), Earthquake Spectra 30(3), 1087-1115"
     coefficient_file = "campbell_bozorgnia_2014.csv"
     tectonic_regions = ("active_crustal",)
+    basin_input = ("z2p5_km", "not given: the Vs30 relation of CB14 Eqs. 33-34")
     supported_regions = ("global", "california", "japan", "italy", "china")
     applicability = {
         "mag": {"strike_slip": (3.3, 8.5), "reverse": (3.3, 8.0), "normal": (3.3, 7.5)},

@@ -75,6 +75,7 @@ class Cy14(VectorGmm):
     """
 
     tectonic_regions = ("active_crustal",)
+    basin_input = ("z1p0_km", "not given: no basin term (z1p0_km taken as the mean depth of the Vs30 relation, CY14 Eqs. 1-2)")
     name = "CY14"
     reference = "Chiou & Youngs (2014), Earthquake Spectra 30(3), 1117-1153"
     coefficient_file = "chiou_youngs_2014.csv"

@@ -39,7 +39,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from quakefolio.core.sources.geometry import aeqd_forward, aeqd_inverse, mean_position, points_in_polygon
-from quakefolio.core.gmm import mechanism_flags
+from quakefolio.core.gmm import TECTONIC_REGIONS, mechanism_flags
 from quakefolio.core.sources.mfd import MagnitudeBins
 
 __all__ = [
@@ -110,6 +110,12 @@ class RuptureSet:
         Corners of each piece as ``corners`` orders them, the pieces of a rupture in order
         along the fault, each at its rupture's ``ztor_km``/``zbot_km``, ``dip_deg`` and
         ``width_km``; the distance code uses their top edges.
+    region_code : ndarray of int8, shape (n,)
+        Tectonic region of each rupture's source as an index into
+        :data:`quakefolio.core.gmm.TECTONIC_REGIONS` (0, ``active_crustal``, by default);
+        the hazard engine evaluates each rupture with its region's ground-motion models
+        and, for the subduction regions, the event type (interface or intraslab) follows
+        from it. Default: every rupture active crustal.
 
     Raises
     ------
@@ -132,6 +138,7 @@ class RuptureSet:
     corners: FloatArray
     piece_rupture: NDArray[np.int64] = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
     piece_corners: FloatArray = field(default_factory=lambda: np.zeros((0, 4, 3)))
+    region_code: NDArray[np.int8] | None = None
 
     def __post_init__(self) -> None:
         ids = tuple(self.source_ids)
@@ -163,7 +170,31 @@ class RuptureSet:
         corners.setflags(write=False)
         object.__setattr__(self, "corners", corners)
         self._set_pieces(n)
+        self._set_regions(n)
         self._check_constraints()
+
+    def _set_regions(self, n: int) -> None:
+        code = np.zeros(n, dtype=np.int8) if self.region_code is None else np.array(self.region_code).reshape(-1)
+        if code.size != n:
+            raise ValueError(f"RuptureSet: 'region_code' has {code.size} values, expected {n}")
+        if n and (code.min() < 0 or code.max() >= len(TECTONIC_REGIONS)):
+            raise ValueError(f"RuptureSet: 'region_code' must index {TECTONIC_REGIONS}")
+        code = code.astype(np.int8)
+        code.setflags(write=False)
+        object.__setattr__(self, "region_code", code)
+
+    @property
+    def regions(self) -> tuple[str, ...]:
+        """Tectonic regions present, in :data:`~quakefolio.core.gmm.TECTONIC_REGIONS` order."""
+        return tuple(TECTONIC_REGIONS[i] for i in np.unique(self.region_code))
+
+    def with_region(self, region: str) -> "RuptureSet":
+        """The same ruptures, all of tectonic region ``region`` (a :data:`TECTONIC_REGIONS` name)."""
+        if region not in TECTONIC_REGIONS:
+            raise ValueError(f"unknown tectonic region {region!r}; valid: " + ", ".join(TECTONIC_REGIONS))
+        out = {f.name: getattr(self, f.name) for f in fields(self)}
+        out["region_code"] = np.full(len(self), TECTONIC_REGIONS.index(region), dtype=np.int8)
+        return RuptureSet(**out)
 
     def _set_pieces(self, n: int) -> None:
         owner = np.array(self.piece_rupture, dtype=np.int64).reshape(-1)
@@ -258,6 +289,7 @@ class RuptureSet:
             np.concatenate([s.corners for s in sets]),
             np.concatenate(owners),
             np.concatenate([s.piece_corners for s in sets]),
+            np.concatenate([s.region_code for s in sets]),
         )
 
     def subset(self, mask: ArrayLike) -> "RuptureSet":

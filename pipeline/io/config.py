@@ -22,6 +22,7 @@ from quakefolio.core.validation import (
 )
 from quakefolio.fragility.library import read_toml
 from quakefolio.pipeline.io.alternatives import ALTERNATIVE_KEYS, _resolve, _ResolvedPath, parse_alternatives  # noqa: F401
+from quakefolio.pipeline.io.gmm_regions import RegionBranches
 from quakefolio.pipeline.io.layers import Layers as _Layers
 from quakefolio.pipeline.io.occupancy import OccupancyPeriods as _OccupancyPeriods
 
@@ -159,6 +160,8 @@ SCHEMA = {
         "period_interpolation": _key(_BOOL, True),
         "source_models": _key((_Branches("source_branches"),), None, help="compute mode: [{file, weight, id}]"),
         "gmm_branches": _key((_Branches("gmm_branches"),), None, help="compute mode: [{model, weight}]"),
+        "region_gmm_branches": _key((RegionBranches(),), {}, help="compute mode: {region = [{model, weight}]}"),
+        "site_backarc": _key(_BOOL, False, help="sites without an exposure 'backarc' value lie in the backarc"),
         "truncation_sigma": _key((_PositiveOrNone(),), 3.0, help="residual truncation [sigma] or \"none\""),
         "integration_distance_km": _key(_FLOAT, 200.0, _POSITIVE),
         "ims": _key((_IMNames(),), [], help="IMs to compute besides those the fragility library needs"),
@@ -298,6 +301,8 @@ class HazardSettings(_Section):
     period_interpolation: bool  #: interpolate curves across periods for untabulated IMs
     source_models: tuple | None  #: source-model branches ``{file, weight, id}`` (compute mode)
     gmm_branches: tuple | None  #: ground-motion model branches ``{model, weight, id}`` (compute mode)
+    region_gmm_branches: dict  #: other tectonic regions' branches (:mod:`quakefolio.pipeline.io.gmm_regions`)
+    site_backarc: bool  #: default backarc flag of subduction sites (forearc when false)
     truncation_sigma: float | None  #: residual truncation [sigma], None for no truncation
     integration_distance_km: float  #: site-rupture distance cut-off [km]
     ims: tuple  #: IMs computed besides those the fragility library needs

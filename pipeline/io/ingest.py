@@ -42,6 +42,7 @@ EXPOSURE_COLUMNS = {  # name: required
     "vs30_mps": False, "occupants": False, "deductible": False, "limit": False,
     "contents_value": False, "interruption_value_per_day": False,
     "terms_group": False,  # programme terms group (policy or account), pipeline/io/group_terms.py
+    "z1p0_km": False, "z2p5_km": False, "backarc": False,  # site inputs of the ground-motion models (compute mode)
 }
 HAZARD_COLUMNS = {"site_id": True, "lon": True, "lat": True, "im": True, "im_level": True, "annual_rate": True,
                   "statistic": False}
@@ -229,7 +230,10 @@ _ALWAYS = (Real(finite=True), MaxMagnitude(_MAX_ABS))
 #: Optional exposure columns and their rules.
 _OPTIONAL_EXPOSURE = {"vs30_mps": (POSITIVE,), "occupants": (NON_NEGATIVE, WHOLE), "deductible": (NON_NEGATIVE,),
                       "limit": (POSITIVE,), "contents_value": (NON_NEGATIVE,),
-                      "interruption_value_per_day": (NON_NEGATIVE,)}
+                      "interruption_value_per_day": (NON_NEGATIVE,),
+                      "z1p0_km": (Interval(0.0, 3.0, message="expected a depth in [0, 3] km (a value in metres?)"),),
+                      "z2p5_km": (Interval(0.0, 15.0, message="expected a depth in [0, 15] km (a value in metres?)"),),
+                      "backarc": (Interval(0, 1), WHOLE)}
 #: Optional money columns -> the per-state consequence their class must give.
 _NEEDS_CONSEQUENCE = {"contents_value": "contents_damage_ratio", "interruption_value_per_day": "downtime_days"}
 
@@ -364,8 +368,9 @@ def read_exposure(path, library, group_column="building_class"):
         ``asset_id``, ``lon``, ``lat`` [deg], ``building_class``, ``replacement_value``
         [currency], ``vs30_mps`` [m/s], ``occupants`` [-], ``deductible`` and ``limit``
         [currency] (building coverage), ``contents_value`` [currency],
-        ``interruption_value_per_day`` [currency/day] (NaN where the optional column is
-        absent or empty) and ``row``, the user-facing row of each asset (see
+        ``interruption_value_per_day`` [currency/day], ``z1p0_km`` and ``z2p5_km`` [km]
+        (basin depths) and ``backarc`` (1: site in the backarc of a subduction zone) (NaN
+        where the optional column is absent or empty) and ``row``, the user-facing row of each asset (see
         :func:`read_table`); ``terms_group`` (only where
         the file has the column; every asset then names its group); and ``group_column`` if
         it is none of these.

@@ -91,8 +91,8 @@ class ScenarioRupture:
     lower_depth_km: float = 20.0
     length_km: float | None = None  # with width_km: the plane's own size, centred on the hypocentre
     width_km: float | None = None
-    row: int | None = None
-    rupture_index: int | None = None  # a rupture of the source model by its index (rupture_id of event_loss)  # line of the [[ruptures]] header, for errors
+    row: int | None = None  # line of the [[ruptures]] header, for errors
+    rupture_index: int | None = None  # a rupture of the source model by its index (rupture_id of event_loss)
 
 
 @dataclass(frozen=True)

@@ -23,7 +23,9 @@ Layout::
     mfd = { kind = "truncated_gr", b_value = 1.0, min_mag = 5.0, max_mag = 7.0, bin_width = 0.1,
             rate_above_min = 0.02 }      # or a_value = ..., or slip_rate_mm_per_yr = ...
 
-    [[areas]]
+    [[areas]]                            # every kind takes an optional tectonic region:
+    region = "active_crustal"            # (default) or "subduction_interface", "subduction_intraslab",
+                                         # "stable_continental"; the subduction event type follows from it
     id = "zone_a"
     polygon = [[lon, lat], ...]
     spacing_km = 10.0
@@ -57,6 +59,7 @@ import math
 from typing import NamedTuple
 
 from quakefolio.core.errors import InputWarning, did_you_mean
+from quakefolio.core.gmm import TECTONIC_REGIONS
 from quakefolio.core.plausibility import MAX_MAGNITUDE
 from quakefolio.core.sources.counts import (
     fault_rupture_count, magnitude_bin_count, point_rupture_count, polygon_point_count,
@@ -90,7 +93,7 @@ _KEYS = {
 }
 #: Optional keys of point and area sources: a strike distribution crossed with mechanisms given without strike.
 _STRIKE_KEYS = ("strikes", "uniform_strikes")
-_OPTIONAL = {"faults": (), "areas": _STRIKE_KEYS, "points": _STRIKE_KEYS}
+_OPTIONAL = {"faults": ("region",), "areas": _STRIKE_KEYS + ("region",), "points": _STRIKE_KEYS + ("region",)}
 _MFD_KEYS = {
     "truncated_gr": ("kind", "b_value", "min_mag", "max_mag", "bin_width", "rate_above_min", "a_value",
                      "slip_rate_mm_per_yr"),
@@ -127,8 +130,9 @@ class _Tally:
 class SourceModel:
     """A parsed source model: its ruptures, per-source summary and provenance.
 
-    ``magnitudes`` holds per source ``(row, column, smallest, largest magnitude [Mw])`` with
-    the line and key of its ``mfd`` (for checks against the ground-motion models), and
+    ``magnitudes`` holds per source ``(row, column, smallest, largest magnitude [Mw], tectonic
+    region)`` with the line and key of its ``mfd`` (for checks against the region's
+    ground-motion models), and
     ``warnings`` the doubts found in the file (:class:`~quakefolio.core.errors.InputWarning`).
     """
 
@@ -173,6 +177,10 @@ def _source(kind, i, src, settings, seen, path, text, tally):
     if not isinstance(sid, str) or not sid.strip() or sid in seen:
         raise place.error(f"source id must be a unique non-empty string, got {sid!r}", "id")
     seen.add(sid)
+    region = src.get("region", TECTONIC_REGIONS[0])
+    if region not in TECTONIC_REGIONS:
+        raise place.error(f"source {sid!r}: unknown tectonic region {region!r}; "
+                          "valid: " + ", ".join(TECTONIC_REGIONS), "region")
     try:
         rs, info, doubts = _build(kind, src, settings, tally)
     except _FieldError as exc:
@@ -183,10 +191,13 @@ def _source(kind, i, src, settings, seen, path, text, tally):
         raise place.error(f"source {sid!r}: {exc}") from None
     if rs is None:  # counted only
         return None, None, None, []
+    if region != TECTONIC_REGIONS[0]:
+        rs = rs.with_region(region)
     notes = [InputWarning(path, f"{kind[:-1]} {sid!r}: {msg}", row=place.locate(key), column=place.column_of(key))
              for key, msg in doubts]
-    mags = (place.locate("mfd"), place.column_of("mfd"), float(rs.mag.min()), float(rs.mag.max())) if len(rs) else None
-    row = {"source_id": sid, "kind": kind[:-1], **info, "n_ruptures": len(rs), "total_rate": float(rs.rate.sum())}
+    mags = (place.locate("mfd"), place.column_of("mfd"), float(rs.mag.min()), float(rs.mag.max()),
+            region) if len(rs) else None
+    row = {"source_id": sid, "kind": kind[:-1], "region": region, **info, "n_ruptures": len(rs), "total_rate": float(rs.rate.sum())}
     return rs, row, mags, notes
 
 

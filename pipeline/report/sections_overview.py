@@ -195,17 +195,23 @@ def _logic_tree(run, tree):
         for k, s in enumerate(br.get("sources", [])):
             rows.append([br["id"] if k == 0 else "", _cell(f"{br['weight']:.3g}", br["weight"]) if k == 0 else "",
                          _cell(f"{br['ruptures']:,}", br["ruptures"]) if k == 0 else "", s.get("source_id", ""),
-                         s.get("kind", ""), _cell(f"{s.get('n_ruptures', 0):,}", s.get("n_ruptures")),
+                         s.get("kind", ""), s.get("region", "active_crustal"), _cell(f"{s.get('n_ruptures', 0):,}", s.get("n_ruptures")),
                          _cell(_g(s.get("total_rate"), 4), s.get("total_rate")),
                          ", ".join(f"{m:g}" for m in s.get("mags_capped", []))])
-    out = [_table(["source-model branch", "weight#", "ruptures#", "source", "kind", "ruptures#",
+    out = [_table(["source-model branch", "weight#", "ruptures#", "source", "kind", "tectonic region", "ruptures#",
                    "total rate [1/yr]#", "ruptures capped at the fault (M)"], rows)]
     if any(s.get("mags_capped") for br in tree.get("source_branches", []) for s in br.get("sources", [])):
         out.append(_p("Ruptures capped at the fault: the Wells & Coppersmith (1994) rupture of these magnitudes is "
                       "longer than the fault; it is cut to the fault length and keeps its rate, so the fault releases "
                       "the magnitude over less area than the scaling relation gives."))
-    rows = [[g["id"], _cell(f"{g['weight']:.3g}", g["weight"])] for g in tree.get("gmm_branches", [])]
-    out.append(_table(["ground-motion branch", "weight#"], rows))
+    rows = [[g["id"], "active_crustal", _cell(f"{g['weight']:.3g}", g["weight"])] for g in tree.get("gmm_branches", [])]
+    rows += [[g["id"], region, _cell(f"{g['weight']:.3g}", g["weight"])]
+             for region, branches in tree.get("region_gmm_branches", {}).items() for g in branches]
+    out.append(_table(["ground-motion branch", "tectonic region", "weight#"], rows))
+    if tree.get("region_gmm_branches"):
+        out.append(_p("Each tectonic region's sources take that region's models; the end branches are those of the "
+                      "active-crustal models, each with the other regions at their weighted mean (the mean curve is "
+                      "the mean over every combination of one model per region)."))
     trunc = hz.get("truncation_sigma")
     n_src, n_gmm = len(tree.get("source_branches", [])), len(tree.get("gmm_branches", []))
     facts = [("IMs computed", ", ".join(tree.get("ims", []))),
@@ -216,8 +222,20 @@ def _logic_tree(run, tree):
              ("curves used for damage", "weighted mean over the end branches"
               + ("; every end branch is also carried through the damage and loss (fractile tables)"
                  if hz.get("propagate_branches") else ""))]
+    facts += _site_input_facts(run.manifest.get("site_inputs"))
     out.append(_facts(facts))
     return out
+
+
+def _site_input_facts(record):
+    """Facts of the manifest's ``site_inputs``: the Vs30 rule with the clamped sites, the basin depths given."""
+    if not record:
+        return []
+    n = record.get("hazard_sites", 0)
+    clamped = ", ".join(f"{g} {k} sites" for g, k in record.get("vs30_clamped_sites", {}).items() if k) or "none"
+    given = ", ".join(f"{c} at {k} of {n} sites" for c, k in record.get("basin_depth_sites", {}).items() if k)
+    return [("Vs30 outside a model's range", f"{record.get('vs30_rule', '')}; clamped: {clamped}"),
+            ("basin depths", (given + "; elsewhere" if given else "none given:") + " each model's own Vs30 relation")]
 
 
 def _section_checks(run):

@@ -17,7 +17,7 @@ gathers inputs, calls them and lays results out as tables.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -33,13 +33,15 @@ from quakefolio.core.events.losses import (
 from quakefolio.core.events.gmf import FieldSampler
 from quakefolio.core.events.programme import GroupSums, chunk_programme_loss
 from quakefolio.core.events.secondary import correlation_effect
-from quakefolio.core.hazard import event_ground_motion, event_ln_im, weighted_sum
+from quakefolio.core.events.motion import event_ground_motion, event_ln_im
+from quakefolio.core.hazard import weighted_sum
 from quakefolio.core.loss import expected_annual_loss, expected_annual_net_loss
 from quakefolio.core.vulnerability import VulnerabilityTable
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
 from quakefolio.pipeline.stages import event_branches as eb
 from quakefolio.pipeline.stages.programme import programme_digest, programme_tables
 from quakefolio.pipeline.stages import people as pp
+from quakefolio.pipeline.stages.regions import event_region_models
 
 __all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
@@ -54,7 +56,7 @@ class EventModel:
     source_ids: tuple
     events: object
     gmm_of_event: np.ndarray  # (n_events,) index into gmms
-    gmms: list
+    gmms: list  # the active-crustal branches' models, then the other regions' (stages.regions.event_region_models)
     gmm_ids: list
     ims: list
     sites: np.ndarray  # indices into the hazard sites used by the portfolio
@@ -87,6 +89,7 @@ class EventModel:
     group: np.ndarray | None = None  # (n_assets,) index into group_names
     group_terms: object = None  # GroupTerms of [programme] (None: no group terms)
     people: object = None  # PeopleModel: casualties, downtime, contents and interruption (stages.people)
+    site_fields: dict = field(default_factory=dict)  # per used site: z1p0_km, z2p5_km [km], backarc (stages.regions)
 
 
 def _groups(exposure, column):
@@ -163,7 +166,10 @@ def prepare_events(inputs):
     branch id (per-branch mode, for sensitivity) the events are a Poisson stochastic event
     set over ``[portfolio] years`` from that branch's ruptures
     (:func:`quakefolio.core.events.eventset.stochastic_event_set`) and each event draws its
-    ground-motion model by branch weight from its own random stream.  Fields are spatially
+    ground-motion model by branch weight from its own random stream.  Events of ruptures of
+    other tectonic regions take their region's models ([hazard] region_gmm_branches), drawn
+    per event by weight (:func:`quakefolio.pipeline.stages.regions.event_region_models`).
+    Fields are spatially
     correlated (Jayaram & Baker 2009) and cross-IM correlated (Baker & Jayaram 2008)
     (:class:`quakefolio.core.events.gmf.FieldSampler`).  Sets BLAS to one thread
     (:func:`single_blas_thread`).
@@ -199,6 +205,7 @@ def prepare_events(inputs):
         weights = np.array([w for _, w, _ in model.gmm_branches])
         rng = stream_rng(pf.seed, STREAM_GMM_CHOICE)
         gmm_of_event = rng.choice(len(weights), size=events.n_events, p=weights / weights.sum()).astype(np.int64)
+    gmm_of_event, gmms, gmm_ids = event_region_models(model, rs, gmm_of_event, events.rupture, pf.seed)
     used = np.unique(inputs.site_index)
     local = np.searchsorted(used, inputs.site_index)
     ex = inputs.exposure
@@ -217,8 +224,8 @@ def prepare_events(inputs):
     group_names, group = _groups(ex, pf.secondary_group)
     return EventModel(
         branch_id=bid, branch_index=b, ruptures=rs, source_ids=tuple(rs.source_ids), events=events,
-        gmm_of_event=gmm_of_event, gmms=[g for _, _, g in model.gmm_branches],
-        gmm_ids=[i for i, _, _ in model.gmm_branches], ims=list(model.ims), sites=used,
+        gmm_of_event=gmm_of_event, gmms=gmms, gmm_ids=gmm_ids, ims=list(model.ims), sites=used,
+        site_fields={n: v[used] for n, v in model.site_fields.items()},
         site_lon=inputs.hazard.lon[used], site_lat=inputs.hazard.lat[used], site_vs30=model.site_vs30[used],
         sampler=sampler, seed=pf.seed, n_years=pf.years, truncation_sigma=model.truncation_sigma,
         max_distance_km=model.max_distance_km, region=model.region, ref=model.ref, loss_model=pf.loss_model,
@@ -267,12 +274,16 @@ def _correlated(em):
 
 
 def _ground_motion(em, start, stop, b0, b1):
-    """ln IM [ln g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites)."""
+    """ln IM [ln g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites).
+
+    Written into the median's array: the chunk holds one copy of each field less.
+    """
     mu, tau, phi = event_ground_motion(em.site_lon, em.site_lat, em.site_vs30, em.ruptures,
                                        em.events.rupture[start:stop], em.gmm_of_event[start:stop], em.gmms, em.ims,
-                                       max_distance_km=em.max_distance_km, region=em.region, ref=em.ref)
+                                       max_distance_km=em.max_distance_km, region=em.region, ref=em.ref,
+                                       site_fields=em.site_fields)
     res = em.sampler.sample_event_blocks(em.seed, em.events.n_events, np.arange(b0, b1))
-    return event_ln_im(mu, tau, phi, res.eta, res.eps, em.truncation_sigma)
+    return event_ln_im(mu, tau, phi, res.eta, res.eps, em.truncation_sigma, out=mu)
 
 
 def event_chunk(em, chunk, independent=True):
@@ -298,9 +309,9 @@ def event_chunk(em, chunk, independent=True):
     b0, b1 = chunk
     blocks = event_blocks(em.events.n_events, EVENT_BLOCK_SIZE)
     start, stop = int(blocks[b0, 0]), int(blocks[b1 - 1, 1])
-    lnim = _ground_motion(em, start, stop, b0, b1)
-    im = np.exp(lnim)  # (n_ev, n_im, n_sites); 0 beyond the integration distance
-    counts = exceedance_counts(lnim, em.levels_g)
+    im = _ground_motion(em, start, stop, b0, b1)
+    counts = exceedance_counts(im, em.levels_g)
+    np.exp(im, out=im)  # (n_ev, n_im, n_sites) [g]; 0 beyond the integration distance
     rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
     classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
                if dss.has_damage_states else

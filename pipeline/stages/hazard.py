@@ -24,6 +24,7 @@ from quakefolio.pipeline.io.cache import digest
 from quakefolio.pipeline.io.ingest import HazardCurves
 from quakefolio.pipeline.stages.checks import LibraryLines, check_class_hazard, model_periods
 from quakefolio.pipeline.stages.products import SiteBlockResult, frozen_mapping
+from quakefolio.pipeline.stages.regions import check_source_regions, region_model_branches, site_inputs
 from quakefolio.pipeline.io.source_model import count_source_model, load_source_model
 from quakefolio.pipeline.stages.sizes import check_hazard_work, rupture_limit
 
@@ -90,6 +91,12 @@ class HazardModel:
     bins : DisaggBins
     digest : str
         Content digest of everything a site's hazard depends on except the site.
+    region_branches : Mapping region -> tuple of (id, weight, ground-motion model)
+        Branches of the tectonic regions other than active crustal present in the sources
+        (:mod:`quakefolio.pipeline.stages.regions`).
+    site_fields : Mapping name -> ndarray (n_sites,)
+        Per-site model inputs (``z1p0_km``, ``z2p5_km`` [km], ``backarc``); empty when none
+        applies (:func:`quakefolio.pipeline.stages.regions.site_inputs`).
     """
 
     source_branches: tuple
@@ -111,6 +118,8 @@ class HazardModel:
     disagg_moments: np.ndarray | None = None
     spectrum_sums: np.ndarray | None = None
     spectrum_moments: np.ndarray | None = None
+    region_branches: Mapping = field(default_factory=lambda: frozen_mapping({}))
+    site_fields: Mapping = field(default_factory=lambda: frozen_mapping({}))
 
 
 def build_sites(exposure, spacing_km, default_vs30):
@@ -211,15 +220,23 @@ def prepare_compute(config, exposure, library, lines=None, budget=None):
     for branch in hz.source_models:
         sources.append((branch["id"], branch["weight"], load_source_model(branch["file"])))
     gmms = [(b["id"], b["weight"], get_gmm(b["model"])) for b in hz.gmm_branches]
+    regions = check_source_regions(config, sources)
+    others = {r: b for r, b in region_model_branches(hz).items() if r in regions}
+    fields = site_inputs(exposure, site_index, len(ids), hz.site_backarc)
+    if not any(r.startswith("subduction") for r in regions):
+        fields.pop("backarc")
     lines = lines or LibraryLines()
+    every = gmms + [g for rows in others.values() for g in rows]
     for code in used:
-        check_class_hazard(library[code], model_periods(gmms), config.fragility.library, lines, reject_crossing=False)
+        check_class_hazard(library[code], model_periods(every), config.fragility.library, lines, reject_crossing=False)
     levels = np.asarray(hz.im_levels_g, dtype=float)
     model_digest = digest(
         "hazard-model", [(bid, w, src.sha256) for bid, w, src in sources], [(g, w) for g, w, _ in gmms], ims,
-        levels, hz.truncation_sigma, hz.integration_distance_km, hz.region, list(ref))
+        levels, hz.truncation_sigma, hz.integration_distance_km, hz.region, list(ref),
+        *([sorted((r, [(g, w) for g, w, _ in rows]) for r, rows in others.items())] if others else []))
     model = HazardModel(tuple(sources), tuple(gmms), ims, levels, hz.truncation_sigma, hz.integration_distance_km,
-                        hz.region, list(hz.fractiles), hz.disaggregation, vs30, ref, digest=model_digest)
+                        hz.region, list(hz.fractiles), hz.disaggregation, vs30, ref, digest=model_digest,
+                        region_branches=frozen_mapping(others), site_fields=frozen_mapping(fields))
     hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=frozenset())
     return model, hazard, site_index, dist
 
@@ -241,8 +258,16 @@ def site_blocks(n_sites, size):
 
 
 def _site_keys(model, hazard, lo, hi, *extra):
+    names = sorted(model.site_fields)
     return [digest("hazard-site", model.digest, float(hazard.lon[i]), float(hazard.lat[i]),
-                   float(model.site_vs30[i]), *extra) for i in range(lo, hi)]
+                   float(model.site_vs30[i]), *extra, *[(n, float(model.site_fields[n][i])) for n in names])
+            for i in range(lo, hi)]
+
+
+def _region_kwargs(model, idx):
+    """Keywords of the core engine for the regions' branches and the site inputs of sites ``idx``."""
+    return dict(region_branches={r: [(w, g) for _, w, g in rows] for r, rows in model.region_branches.items()},
+                site_fields={n: v[idx] for n, v in model.site_fields.items()} or None)
 
 
 def _cached_rows(cache, stage, keys, shape, name, *also):
@@ -297,7 +322,7 @@ def hazard_block(model, hazard, block, cache=None):
                 hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures,
                 [g for _, _, g in model.gmm_branches], model.ims, model.levels_g,
                 truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km,
-                region=model.region, site_block=len(idx), ref=model.ref)
+                region=model.region, site_block=len(idx), ref=model.ref, **_region_kwargs(model, idx))
         if cache is not None:
             for j in missing:
                 cache.put("hazard", keys[j], {"curves": out[:, :, :, j]})
@@ -428,7 +453,7 @@ def disagg_block(model, hazard, return_periods, block, cache=None):
                 [g for _, _, g in model.gmm_branches], [ws * wg for _, wg, _ in model.gmm_branches], model.ims,
                 targets[:, missing], bins, truncation_sigma=model.truncation_sigma,
                 max_distance_km=model.max_distance_km, region=model.region, site_block=len(idx), ref=model.ref,
-                moments=True)
+                moments=True, **_region_kwargs(model, idx))
             total[:, missing] += contrib
             moments[:, missing] += mom
         if cache is not None:

@@ -21,7 +21,10 @@ __all__ = ["INGEST_ONLY_KEYS", "COMPUTE_ONLY_KEYS", "input_warnings", "model_ran
 INGEST_ONLY_KEYS = ("curves_file", "im_unit", "statistic", "max_site_distance_km", "period_interpolation")
 COMPUTE_ONLY_KEYS = ("source_models", "gmm_branches", "truncation_sigma", "integration_distance_km", "ims",
                      "im_levels_g", "fractiles", "site_spacing_km", "default_vs30_mps", "region", "disaggregation",
-                     "cms_conditioning_ims", "cms_return_periods_yr", "propagate_branches")
+                     "cms_conditioning_ims", "cms_return_periods_yr", "propagate_branches", "region_gmm_branches",
+                     "site_backarc")
+#: Exposure columns that are ground-motion inputs of the compute mode (stages.regions.SITE_INPUT_COLUMNS).
+_SITE_INPUT_COLUMNS = ("z1p0_km", "z2p5_km", "backarc")
 
 
 def _more(n):
@@ -49,6 +52,35 @@ def mode_key_warning(config):
     also = f" (also {', '.join(given[1:])})" if len(given) > 1 else ""
     return InputWarning(config.path, f"applies to mode = \"{other}\" only and is ignored with mode = \"{mode}\"{also}",
                         row=locate_toml_line(text, ("hazard",), given[0]), column=f"hazard.{given[0]}")
+
+
+def site_column_warning(config, exposure):
+    """A warning for ground-motion site inputs given in ingest mode, which the run ignores; None if none.
+
+    Parameters
+    ----------
+    config : quakefolio.pipeline.io.config.Config
+    exposure : pandas.DataFrame
+        Validated exposure with ``asset_id`` and ``row``.
+
+    Returns
+    -------
+    InputWarning or None
+        At the exposure row of the first asset giving one, in the first such column.
+    """
+    if config.hazard.mode != "ingest":
+        return None
+    for col in _SITE_INPUT_COLUMNS:
+        if col not in exposure.columns:
+            continue
+        given = np.isfinite(exposure[col].to_numpy(dtype=float))
+        if given.any():
+            i = int(np.argmax(given))
+            return InputWarning(config.exposure.file, f"{col} of asset {str(exposure.asset_id.iloc[i])!r} is ignored "
+                                                      "with mode = \"ingest\": the tabulated hazard curves already hold "
+                                                      "the site conditions (a ground-motion input of mode = \"compute\")",
+                                row=int(exposure.row.iloc[i]), column=col)
+    return None
 
 
 def distance_warning(config, exposure, site_id, site_index, distance_km):
@@ -136,9 +168,22 @@ def model_range(gmms, key):
     return (min(s[1] for s in spans), max(s[2] for s in spans)), words
 
 
+def _outside(gmms, vs30):
+    """The models of ``gmms`` whose Vs30 range excludes ``vs30`` [m/s], in words (empty: none)."""
+    words = []
+    for gid, _, gmm in gmms:
+        span = gmm.applicability.get("vs30_mps")
+        if span is not None and not span[0] <= vs30 <= span[1]:
+            words.append(f"{gid} {span[0]:g}-{span[1]:g}")
+    return ", ".join(words)
+
+
 def vs30_warning(config, exposure, gmms):
-    """A warning for a Vs30 outside every ground-motion model's range (compute mode); None if
+    """A warning for a Vs30 outside some ground-motion model's range (compute mode); None if
     there is none.  Assets without ``vs30_mps`` use ``[hazard] default_vs30_mps``.
+
+    The stated rule (:func:`quakefolio.core.pairs.model_input`): each model takes such a
+    Vs30 clamped to its own range.
 
     Parameters
     ----------
@@ -146,57 +191,69 @@ def vs30_warning(config, exposure, gmms):
     exposure : pandas.DataFrame
         Validated exposure with ``vs30_mps`` (NaN: none) and ``row``.
     gmms : sequence of (id, weight, ground-motion model)
+        Every model of the run (every region's in use).
 
     Returns
     -------
     InputWarning or None
         At the exposure row of the first such asset, or at the config's ``default_vs30_mps``.
     """
-    (lo, hi), words = model_range(gmms, "vs30_mps")
     vs30 = exposure.vs30_mps.to_numpy(dtype=float)
-    outside = ~np.isnan(vs30) & ((vs30 < lo) | (vs30 > hi))
-    tail = f"outside the range of every ground-motion model of the run ({words} m/s): the models are extrapolated"
+    outside = np.array([bool(_outside(gmms, v)) if np.isfinite(v) else False for v in vs30], dtype=bool)
+
+    def tail(words):
+        several = "," in words
+        return (f"outside the range of ground-motion model{'s' if several else ''} {words} m/s: "
+                f"{'each of them takes' if several else 'the model takes'} it clamped to "
+                f"{'its' if several else 'the'} range")
     if outside.any():
         i = int(np.argmax(outside))
         return InputWarning(config.exposure.file, f"Vs30 {vs30[i]:g} m/s of asset {str(exposure.asset_id.iloc[i])!r} "
-                                                  f"is {tail}{_more(int(outside.sum()))}",
+                                                  f"is {tail(_outside(gmms, vs30[i]))}{_more(int(outside.sum()))}",
                             row=int(exposure.row.iloc[i]), column="vs30_mps")
     default = config.hazard.default_vs30_mps
-    if np.isnan(vs30).any() and not lo <= default <= hi:
+    words = _outside(gmms, default)
+    if np.isnan(vs30).any() and words:
         text = Path(config.path).read_text(encoding="utf-8-sig")
         n = int(np.isnan(vs30).sum())
         return InputWarning(config.path, f"Vs30 {default:g} m/s (of the {n} asset{'s' if n > 1 else ''} without "
-                                         f"vs30_mps) is {tail}",
+                                         f"vs30_mps) is {tail(words)}",
                             row=locate_toml_line(text, ("hazard",), "default_vs30_mps"), column="hazard.default_vs30_mps")
     return None
 
 
+def _every_model(model):
+    """Every (id, weight, model) of the run: the active-crustal branches, then the other regions' in use."""
+    return list(model.gmm_branches) + [b for rows in model.region_branches.values() for b in rows]
+
+
 def magnitude_warnings(model):
     """One warning per source-model file whose magnitudes leave the range of every ground-motion
-    model of the run.
+    model of their source's tectonic region.
 
     Parameters
     ----------
     model : quakefolio.pipeline.stages.hazard.HazardModel
-        With ``source_branches`` (their :class:`~quakefolio.pipeline.io.source_model.SourceModel`)
-        and ``gmm_branches``.
+        With ``source_branches`` (their :class:`~quakefolio.pipeline.io.source_model.SourceModel`),
+        ``gmm_branches`` and ``region_branches``.
 
     Returns
     -------
     list of InputWarning
         At the ``mfd`` line of the first such source of each file.
     """
-    (lo, hi), words = model_range(model.gmm_branches, "mag")
     out, seen = [], set()
     for _, _, src in model.source_branches:
         if src.path in seen:
             continue
         seen.add(src.path)
-        for row, column, m_lo, m_hi in src.magnitudes:
+        for row, column, m_lo, m_hi, region in src.magnitudes:
+            gmms = model.gmm_branches if region == "active_crustal" else model.region_branches.get(region, ())
+            (lo, hi), words = model_range(gmms, "mag")
             if m_lo < lo or m_hi > hi:
                 out.append(InputWarning(src.path, f"magnitudes {m_lo:g} to {m_hi:g} leave the range of every "
-                                                  f"ground-motion model of the run ({words}): their ground motion is "
-                                                  "extrapolated", row=row, column=column))
+                                                  f"ground-motion model of the {region} region ({words}): their "
+                                                  "ground motion is extrapolated", row=row, column=column))
                 break
     return out
 
@@ -224,9 +281,9 @@ def input_warnings(config, library, exposure, hazard, site_index, distance_km, m
     """
     found = [mode_key_warning(config), *library.warnings, *hazard.warnings,
              distance_warning(config, exposure, hazard.site_id, site_index, distance_km),
-             deductible_warning(config.exposure.file, exposure)]
+             deductible_warning(config.exposure.file, exposure), site_column_warning(config, exposure)]
     if model is not None:
-        found.append(vs30_warning(config, exposure, model.gmm_branches))
+        found.append(vs30_warning(config, exposure, _every_model(model)))
         seen = set()
         for _, _, src in model.source_branches:
             if src.path not in seen:

@@ -1,11 +1,13 @@
 """Scenario earthquakes: many realisations of one or more given ruptures, their damage and losses.
 
 Sequence (:func:`run_scenario`): the scenario's ruptures (:func:`scenario_ruptures`: from the
-run's source model by source id, or of their own geometry), ``n`` realisations per rupture, each
-with a ground-motion model drawn by branch weight (as the event-based stage draws one per event);
-ln median, tau and phi at the portfolio's hazard sites from the classical engine's pairs
-(:func:`quakefolio.core.hazard.event_ground_motion`); correlated residuals from the event stage's
-field sampler (:class:`quakefolio.core.events.gmf.FieldSampler`, the run's ``[portfolio]``
+run's source model by source id or rupture index, or of their own geometry), ``n`` realisations
+per rupture, each with a ground-motion model drawn by branch weight (as the event-based stage
+draws one per event; ruptures of other tectonic regions take their region's models,
+:func:`quakefolio.pipeline.stages.regions.event_region_models`); ln median, tau and phi at the
+portfolio's hazard sites from the classical engine's pairs
+(:func:`quakefolio.core.events.motion.event_ground_motion`); correlated residuals from the event
+stage's field sampler (:class:`quakefolio.core.events.gmf.FieldSampler`, the run's ``[portfolio]``
 correlation settings); optionally conditioned on station records
 (:mod:`quakefolio.core.events.conditioning`, Worden et al. 2018); losses per asset and realisation
 with the event stage's arithmetic (:func:`quakefolio.core.events.scenario.asset_realisation_losses`);
@@ -28,12 +30,14 @@ from quakefolio.core.events.eventset import (
 )
 from quakefolio.core.events.gmf import FieldSampler
 from quakefolio.core.events.scenario import asset_realisation_losses
-from quakefolio.core.hazard import event_ground_motion, event_ln_im, rupture_ground_motion
+from quakefolio.core.events.motion import event_ground_motion, event_ln_im
+from quakefolio.core.hazard import rupture_ground_motion
 from quakefolio.core.sources.geometry import aeqd_forward, mean_position
 from quakefolio.core.sources.mfd import MagnitudeBins
 from quakefolio.core.sources.ruptures import RuptureSet, point_source_ruptures, rupture_corners
 from quakefolio.core.vulnerability import VulnerabilityTable
 from quakefolio.pipeline.stages import people as pp
+from quakefolio.pipeline.stages.regions import event_region_models
 from quakefolio.pipeline.stages.scenario_tables import scenario_tables
 
 __all__ = ["ScenarioProduct", "scenario_ruptures", "run_scenario", "PORTFOLIO_PERCENTILES"]
@@ -105,7 +109,8 @@ def scenario_ruptures(inputs, spec):
         if r.rupture_index is not None:
             if r.rupture_index >= len(rs.mag):
                 raise InputError(spec.path, f"rupture_index {r.rupture_index} is beyond the {len(rs.mag)} ruptures of "
-                                            f"source branch {branch!r}", row=r.row, column=f"ruptures[{i}].rupture_index")
+                                            f"source branch {branch!r}", row=r.row,
+                                 column=f"ruptures[{i}].rupture_index")
             parts.append(rs.subset([r.rupture_index]))
             continue
         if r.source_id is not None:
@@ -163,6 +168,18 @@ class _Sites:
         self.ids = np.asarray(inputs.hazard.site_id)[used]
         self.lon, self.lat = inputs.hazard.lon[used], inputs.hazard.lat[used]
         self.vs30 = inputs.hazard_model.site_vs30[used]
+        self.fields = {n: np.asarray(v)[used] for n, v in inputs.hazard_model.site_fields.items()}
+
+    def at(self, lon, lat):
+        """Site fields (z1p0_km, z2p5_km, backarc) at points: those of a site at the same position, else
+        none (NaN depths: each model's own Vs30 relation; backarc 0)."""
+        out = {n: np.where(n == "backarc", 0.0, np.nan) * np.ones(len(lon)) for n in self.fields}
+        for i, (x, y) in enumerate(zip(lon, lat)):
+            same = np.flatnonzero((self.lon == x) & (self.lat == y))
+            for n in self.fields:
+                if same.size:
+                    out[n][i] = self.fields[n][same[0]]
+        return out
 
 
 def _local_xy(lon0, lat0, lon1, lat1):
@@ -188,8 +205,9 @@ def _rho(dist, range_km, spatial):
 class _Conditioner:
     """Replaces the conditioned IMs' fields of each (rupture, model) by station-conditioned draws."""
 
-    def __init__(self, inputs, spec, sites, sampler, rs):
+    def __init__(self, inputs, spec, sites, sampler, rs, models):
         self.st, self.spec, self.sites, self.sampler, self.rs = spec.stations, spec, sites, sampler, rs
+        self.gmms, self.gmm_ids = models
         self.model = inputs.hazard_model
         self.default_vs30 = inputs.config.hazard.default_vs30_mps
         self.spatial = inputs.config.portfolio.spatial_correlation
@@ -206,7 +224,8 @@ class _Conditioner:
 
     def apply(self, ln, mu, tau, phi, ev_rup, ev_gmm):
         """Overwrite ``ln`` [ln g] of the conditioned IMs, combination by combination (in place)."""
-        gmms = [g for _, _, g in self.model.gmm_branches]
+        gmms = self.gmms
+        fields = self.sites.at(self.st.lon, self.st.lat)
         for k in self.ims:
             im = self.model.ims[k]
             sel = np.flatnonzero(self.st.im == im)
@@ -217,7 +236,7 @@ class _Conditioner:
                 m_s, t_s, p_s = rupture_ground_motion(
                     self.st.lon[sel], self.st.lat[sel], self.vs30[sel], self.rs.subset([j]), gmms, [im],
                     max_distance_km=self.model.max_distance_km, region=self.model.region, ref=self.model.ref,
-                    evaluate=np.unique(ev_gmm[ev_rup == j]))
+                    evaluate=np.unique(ev_gmm[ev_rup == j]), site_fields={n: v[sel] for n, v in fields.items()})
                 for g in np.unique(ev_gmm[ev_rup == j]):
                     idx = np.flatnonzero((ev_rup == j) & (ev_gmm == g))
                     self._combination(ln, mu, tau, phi, idx, int(j), int(g), k, sel,
@@ -238,7 +257,7 @@ class _Conditioner:
         eta, eps = sample_conditioned(field, conditioned_rng(self.spec.seed, j, g, k), idx.size)
         e0 = idx[0]
         ln[idx, k, :] = mu[e0, k] + tau[e0, k] * eta[:, None] + phi[e0, k] * eps  # -inf beyond the distance stays
-        gmm_id = self.model.gmm_branches[g][0]
+        gmm_id = self.gmm_ids[g]
         for n, s in enumerate(sel):
             self.rows.append({"rupture_id": self.spec.ruptures[j].id, "gmm": gmm_id,
                               "station_id": str(self.st.station_id[s]), "lon": self.st.lon[s], "lat": self.st.lat[s],
@@ -265,9 +284,10 @@ def _ground_motion(inputs, spec, rs, sites):
     weights = np.array([w for _, w, _ in model.gmm_branches])
     ev_gmm = stream_rng(spec.seed, STREAM_GMM_CHOICE).choice(len(weights), size=n_ev,
                                                                p=weights / weights.sum()).astype(np.int64)
-    gmms = [g for _, _, g in model.gmm_branches]
+    ev_gmm, gmms, gmm_ids = event_region_models(model, rs, ev_gmm, ev_rup, spec.seed)  # other regions' own models
     mu, tau, phi = event_ground_motion(sites.lon, sites.lat, sites.vs30, rs, ev_rup, ev_gmm, gmms, model.ims,
-                                       max_distance_km=model.max_distance_km, region=model.region, ref=model.ref)
+                                       max_distance_km=model.max_distance_km, region=model.region, ref=model.ref,
+                                       site_fields=sites.fields)
     sampler = FieldSampler(sites.lon, sites.lat, model.ims, spatial_correlation=pf.spatial_correlation,
                            cross_im_correlation=pf.cross_im_correlation,
                            vs30_clustering=pf.correlation_range == "clustered_site_conditions")
@@ -276,9 +296,9 @@ def _ground_motion(inputs, spec, rs, sites):
     ln = event_ln_im(mu, tau, phi, res.eta, res.eps, model.truncation_sigma)
     cond = None
     if spec.stations is not None:
-        cond = _Conditioner(inputs, spec, sites, sampler, rs)
+        cond = _Conditioner(inputs, spec, sites, sampler, rs, (gmms, gmm_ids))
         cond.apply(ln, mu, tau, phi, ev_rup, ev_gmm)
-    return ln, ev_rup, ev_gmm, blocks, cond
+    return ln, ev_rup, ev_gmm, gmm_ids, blocks, cond
 
 
 def _casualties(inputs, classes, im):
@@ -328,7 +348,7 @@ def run_scenario(inputs, spec):
     single_blas_thread()  # identical draws whatever the machine's thread count
     rs = scenario_ruptures(inputs, spec)
     sites = _Sites(inputs)
-    ln, ev_rup, ev_gmm, blocks, cond = _ground_motion(inputs, spec, rs, sites)
+    ln, ev_rup, ev_gmm, gmm_ids, blocks, cond = _ground_motion(inputs, spec, rs, sites)
     im = np.exp(ln)
     classes = _classes(inputs, sites.local)
     pf, ex = inputs.config.portfolio, inputs.exposure
@@ -339,6 +359,7 @@ def run_scenario(inputs, spec):
                                        loss_model=pf.loss_model, seed=spec.seed, blocks=rows,
                                        correlation=pf.secondary_correlation, group=group)
     cas = _casualties(inputs, classes, im)
-    tables = scenario_tables(inputs, spec, rs, sites, classes, (ln, im, ev_rup, ev_gmm), (gu, net, cas), cond)
+    tables = scenario_tables(inputs, spec, rs, sites, classes, (ln, im, ev_rup, ev_gmm, gmm_ids), (gu, net, cas),
+                            cond)
     warnings = tuple(dict.fromkeys(cond.warnings)) if cond is not None else ()  # once each, whatever the model
     return ScenarioProduct(tables, warnings, spec.realisations, cond is not None)

@@ -22,7 +22,8 @@ _CORNERS = ("top_start", "top_end", "bottom_end", "bottom_start")
 SCENARIO_TABLES = {
     "scenario_ruptures": dict(
         description="One row per scenario rupture: its source (a source-model id, or the rupture's own id), "
-                    "magnitude, geometry (corners of the plane, top edge first, and its centre, the mean of the corners) and "
+                    "magnitude, geometry (corners of the plane, top edge first, and its centre, the mean of the "
+                    "corners) and "
                     "the realisations run.",
         units={"magnitude": "Mw", "strike_deg": "deg", "dip_deg": "deg", "rake_deg": "deg", "ztor_km": "km",
                "zbot_km": "km", "length_km": "km", "width_km": "km", "centre_lon": "deg", "centre_lat": "deg",
@@ -179,9 +180,9 @@ def scenario_tables(inputs, spec, rs, sites, classes, motion, losses, cond):
     sites : object
         The portfolio's hazard sites (``ids``, ``lon``, ``lat``, ``vs30``).
     classes : list of (code, assets, im index, DamageStateSet, unique sites, pair)
-    motion : (ndarray, ndarray, ndarray, ndarray)
+    motion : (ndarray, ndarray, ndarray, ndarray, list of str)
         ln IM [ln g] and IM [g] of every realisation (n_events, n_ims, n_sites), each event's rupture
-        and ground-motion model index.
+        and ground-motion model index, and the models' ids.
     losses : (ndarray, ndarray, ndarray)
         Ground-up and net loss [currency] and expected casualties [persons], (n_events, n_assets).
     cond : object or None
@@ -191,9 +192,9 @@ def scenario_tables(inputs, spec, rs, sites, classes, motion, losses, cond):
     -------
     dict of str -> pandas.DataFrame
     """
-    _, im, ev_rup, ev_gmm = motion
+    _, im, ev_rup, ev_gmm, gmm_ids = motion
     gu, net, cas = losses
-    gmm_ids = np.array([g for g, _, _ in inputs.hazard_model.gmm_branches], dtype=object)
+    gmm_ids = np.array(gmm_ids, dtype=object)
     damage, assets, portfolio, site = [], [], [], []
     for j, r in enumerate(spec.ruptures):
         ev = np.flatnonzero(ev_rup == j)

@@ -24,7 +24,7 @@ from quakefolio.core.gmm import get_gmm
 from quakefolio.core.hazard import DISAGG_MOMENTS
 from quakefolio.core.ims import im_period, model_period
 from quakefolio.pipeline.io.cache import digest
-from quakefolio.pipeline.stages.hazard import _assemble, _cached_rows, _site_keys
+from quakefolio.pipeline.stages.hazard import _assemble, _cached_rows, _region_kwargs, _site_keys
 from quakefolio.pipeline.stages.products import SiteBlockResult
 
 __all__ = ["check_spectrum_settings", "conditioning_ims", "spectrum_block", "combine_spectrum", "spectrum_frame"]
@@ -52,6 +52,8 @@ def check_spectrum_settings(config):
     """
     ims = conditioning_ims(config)
     gmms = [(b["id"], b["weight"], get_gmm(b["model"])) for b in config.hazard.gmm_branches or ()]
+    gmms += [(b["id"], b["weight"], get_gmm(b["model"]))
+             for rows in (config.hazard.region_gmm_branches or {}).values() for b in rows]
     for i, im in enumerate(ims):
         if im in ims[:i]:
             raise _key_error(config, f"{im} is listed twice (IM names are compared by their period)")
@@ -63,6 +65,11 @@ def check_spectrum_settings(config):
             lo, hi = gmm.period_range_s
             if im not in gmm.supported_ims and not lo <= model_period(im) <= hi:
                 raise _key_error(config, f"{im} is outside the periods of ground-motion model {gid} ({lo:g}-{hi:g} s)")
+
+
+def _every_model(model):
+    """The active-crustal models, then those of the other regions present (the spectrum's periods are common to all)."""
+    return [g for _, _, g in model.gmm_branches] + [g for rows in model.region_branches.values() for _, _, g in rows]
 
 
 def conditioning_ims(config):
@@ -117,7 +124,7 @@ def spectrum_block(model, hazard, cond, return_periods, rate_floor, block, cache
     """
     lo, hi = block
     gmms = [g for _, _, g in model.gmm_branches]
-    ims = spectrum_ims(gmms, cond)
+    ims = spectrum_ims(_every_model(model), cond)
     targets = _targets(model, cond, return_periods, rate_floor, lo, hi)
     keys = [digest("spectrum-site", k, list(cond), list(map(float, return_periods)), ims, targets[:, j])
             for j, k in enumerate(_site_keys(model, hazard, lo, hi))]
@@ -133,7 +140,7 @@ def spectrum_block(model, hazard, cond, return_periods, rate_floor, block, cache
                 hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures, gmms,
                 [ws * wg for _, wg, _ in model.gmm_branches], cond, ims, targets[:, missing],
                 truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km, region=model.region,
-                site_block=len(idx), ref=model.ref)
+                site_block=len(idx), ref=model.ref, **_region_kwargs(model, idx))
             moments[:, missing] += m
             sums[:, missing] += s
         if cache is not None:
@@ -195,7 +202,7 @@ def spectrum_frame(model, hazard, config):
     hz = config.hazard
     cond = conditioning_ims(config)
     rps = np.asarray(hz.cms_return_periods_yr, dtype=float)
-    ims = spectrum_ims([g for _, _, g in model.gmm_branches], cond)
+    ims = spectrum_ims(_every_model(model), cond)
     targets = _targets(model, cond, rps, hz.rate_floor, 0, len(hazard.site_id))
     cs = spectrum_from_sums(model.spectrum_moments, model.spectrum_sums, targets, cond, ims)
     flag = _flags(targets, 1.0 / rps, hz.rate_floor, model.spectrum_moments[..., 0])
