@@ -5,7 +5,7 @@ BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 export QUAKEFOLIO_STATE := $(CURDIR)/.quakefolio
 
-.PHONY: demo test bench venv clean
+.PHONY: demo demo-scenario test bench venv clean
 
 venv: $(STAMP)
 
@@ -19,6 +19,11 @@ $(STAMP): pyproject.toml requirements.lock
 
 demo: $(STAMP)
 	$(BIN)/quakefolio run demo_portfolio/quakefolio.toml
+
+# scenario earthquake of the demo's largest fault, fields conditioned on the invented station records
+demo-scenario: $(STAMP)
+	$(BIN)/quakefolio scenario demo_portfolio/quakefolio.toml demo_portfolio/scenario_quarnel.toml \
+		--stations demo_portfolio/stations_quarnel.csv
 
 # the suite runs in TEST_WORKERS processes (pytest-xdist), one test file per process at a time
 TEST_WORKERS ?= 2

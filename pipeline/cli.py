@@ -1,5 +1,5 @@
 """Command line: ``quakefolio run|hazard|check CONFIG``, ``quakefolio compare RUN_A RUN_B``,
-``quakefolio report|export RUN`` and ``quakefolio history OUTPUT``.
+``quakefolio report|export RUN``, ``quakefolio history OUTPUT`` and ``quakefolio scenario CONFIG SCENARIO``.
 
 User errors (bad input files or config) exit with status 2 and one line naming file,
 row and column; no traceback unless ``--debug``.  ``check`` and ``--help`` never start
@@ -135,6 +135,20 @@ def _parser():
                     "that changed since the run before and the change of each figure in percent. The table is also "
                     "written to OUTPUT/history.parquet (replacing an earlier one).")
     his.add_argument("output", metavar="OUTPUT", help="an output folder (holding runs/)")
+    scn = sub.add_parser(
+        "scenario", help="damage and loss of given earthquakes: many realisations of correlated ground motion",
+        description="Run the ruptures of SCENARIO (a scenario file: ruptures of the source model by source id, or "
+                    "ruptures of their own; realisations, seed, percentiles, optional station file) on the "
+                    "portfolio, fragility library and hazard model of CONFIG (compute mode). Optionally condition "
+                    "the fields on recorded intensities at stations. The tables and report go to a new run folder "
+                    "under <[output] folder>/scenarios/runs/; the portfolio runs are left as they are.")
+    scn.add_argument("config", help="run config file (quakefolio.toml)")
+    scn.add_argument("scenario", metavar="SCENARIO", help="scenario file (TOML)")
+    scn.add_argument("--realisations", type=_count, metavar="N", help="realisations per rupture (overrides the file)")
+    scn.add_argument("--stations", metavar="FILE", help="station file (CSV or Parquet) overriding the scenario file's")
+    scn.add_argument("--station-sigma", type=_non_negative_number, default=0.0, metavar="S",
+                     help="measurement standard deviation [ln units] of records without sigma_ln (default 0)")
+    scn.add_argument("--quiet", action="store_true", help="print only the run folder")
     fit = sub.add_parser(
         "fit-fragility", help="fit a lognormal fragility function to structural-analysis results",
         description="Fit median and beta of a lognormal fragility function to multiple-stripe analysis results "
@@ -163,7 +177,7 @@ def _parser():
                     "command that needs it and reused by later ones; it stops after QUAKEFOLIO_SERVER_IDLE_S "
                     "seconds unused (default 1800) or with 'server stop'.")
     srv.add_argument("action", choices=("status", "stop"), help="status: print where it runs; stop: stop it now")
-    for sp in (sch, run, hzd, chk, cmp, rep, exp, his, fit, srv):
+    for sp in (sch, run, hzd, chk, cmp, rep, exp, his, fit, srv, scn):
         # SUPPRESS: a --debug given before the command is not reset by the command's default
         sp.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks on errors")
     return p
@@ -395,6 +409,32 @@ def _history(args):
     return 0
 
 
+def _scenario(args):
+    from quakefolio.core.errors import InputError
+    from quakefolio.pipeline.caution import CAUTION
+    from quakefolio.pipeline.scenario_run import run_scenario_files
+
+    if args.realisations == 0:
+        raise InputError("--realisations", "expected an integer >= 1, got 0")
+    run_dir, warnings, product = run_scenario_files(args.config, args.scenario, realisations=args.realisations,
+                                                    stations=args.stations, station_sigma_ln=args.station_sigma)
+    _print_notes(warnings, notes=False)
+    if args.quiet:
+        print(run_dir)
+        return 0
+    print(CAUTION)
+    pf = product.tables["scenario_portfolio_loss"]
+    rows = pf[(pf.scope == "portfolio") & (pf.metric == "ground_up_loss")]
+    for r in rows.itertuples():
+        print(f"rupture {r.rupture_id}: portfolio ground-up loss mean {r.mean:,.0f}, median {r.p50:,.0f}, "
+              f"90% {r.p90:,.0f}, 99% {r.p99:,.0f} over {r.realisations} realisations"
+              + (" (conditioned on stations)" if product.conditioned else ""))
+    print(f"run folder: {run_dir}")
+    if (run_dir / "report.html").exists():
+        print(f"report: {run_dir / 'report.html'}")
+    return 0
+
+
 def _fit_fragility(args):
     import json
 
@@ -510,7 +550,7 @@ def main(argv=None):
     args = _parser().parse_args(argv)
     handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "report": _report,
                 "fit-fragility": _fit_fragility, "schedule": _schedule, "export": _export, "history": _history,
-                "server": _server}
+                "server": _server, "scenario": _scenario}
     before = _set_sigterm(_raise_terminated)
     try:
         return handlers[args.command](args)

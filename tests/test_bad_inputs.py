@@ -4,8 +4,10 @@ Each case folder holds a ``quakefolio.toml`` plus only the files that differ fro
 ``tests/data/mini`` (unchanged files are referenced as ``../../mini/<file>``); its first
 line says what is broken.  ``expect.toml`` in the folder says what quakefolio must answer:
 
-- ``command``: ``"check"`` (default) or ``"run"`` (``run --no-flow --quiet``, for what only
-  a run can meet; its output goes to the case's own ``output/`` folder, removed afterwards);
+- ``command``: ``"check"`` (default), ``"run"`` (``run --no-flow --quiet``, for what only
+  a run can meet; its output goes to the case's own ``output/`` folder, removed afterwards) or
+  ``"scenario"`` (``scenario quakefolio.toml scenario.toml --quiet``: the case folder holds a
+  scenario file, and the station file it names, next to a compute-mode config);
 - ``exit``: the exit status (2 for a refused input, 0 for an accepted one with a warning);
 - ``level``: ``"error"`` or ``"warning"``: stderr holds exactly one line
   ``<level>: <file>[:<row>]: [column '<col>': ]<message>``;
@@ -54,7 +56,7 @@ def expectation(case):
     assert not unknown, f"{case}/expect.toml: unknown keys {sorted(unknown)}"
     spec.setdefault("command", "check")
     spec.setdefault("level", "error")
-    assert spec["command"] in ("check", "run"), case
+    assert spec["command"] in ("check", "run", "scenario"), case
     assert spec["level"] in ("error", "warning"), case
     assert (spec["level"] == "error") == (spec["exit"] != 0), f"{case}: an error exits non-zero, a warning 0"
     return spec
@@ -91,7 +93,8 @@ def test_case_folder_holds_only_changed_files(case):
 
 def _answer(case, spec, capsys):
     config = str(BROKEN / case / "quakefolio.toml")
-    argv = ["check", config] if spec["command"] == "check" else ["run", config, "--no-flow", "--quiet"]
+    argv = {"check": ["check", config], "run": ["run", config, "--no-flow", "--quiet"],
+            "scenario": ["scenario", config, str(BROKEN / case / "scenario.toml"), "--quiet"]}[spec["command"]]
     try:
         rc = main(argv)
     finally:

@@ -26,7 +26,7 @@ OVER_LIMIT: set = set()
 LAYERS = [
     {"caution", "env", "progress", "io", "server", "terminal", "runlog"},
     {"stages", "runner", "summary"},
-    {"report", "compare", "export", "history"},
+    {"report", "compare", "export", "history", "scenario_run"},
     {"flow", "orchestration", "scheduling"},
     {"cli", "__main__"},
 ]

@@ -38,6 +38,8 @@ naming the quantity, and (for per-event quantities) a block index:
   generator per block and group, so adding a group leaves the others' factors unchanged).
 * the period of the day of each event (time-of-day occupancy):
   ``SeedSequence([seed, STREAM_OCCUPANCY])`` (:func:`stream_rng`).
+* station-conditioned residuals of a scenario rupture ``r``, ground-motion model ``g`` and IM
+  ``k``: ``SeedSequence([seed, STREAM_CONDITIONED, r, g, k])`` (:func:`conditioned_rng`).
 * the ground-motion model of each event of a tectonic region other than active crustal
   (drawn by the region's branch weights, one uniform number per event):
   ``SeedSequence([seed, STREAM_REGION_GMM_CHOICE])`` (:func:`stream_rng`).
@@ -96,6 +98,8 @@ __all__ = [
     "STREAM_BRANCH_EVENTS",
     "STREAM_GROUP_FACTOR",
     "STREAM_OCCUPANCY",
+    "STREAM_CONDITIONED",
+    "conditioned_rng",
     "STREAM_REGION_GMM_CHOICE",
     "MAX_CLASS_ENTRIES",
     "EventSet",
@@ -137,6 +141,8 @@ STREAM_BRANCH_YEARS = 12
 STREAM_BRANCH_EVENTS = 13
 #: Stream tag of the per-event period of the day (time-of-day occupancy; one generator for the event set).
 STREAM_OCCUPANCY = 17
+#: Stream tag of station-conditioned scenario residuals (per rupture, ground-motion model and IM).
+STREAM_CONDITIONED = 19
 #: Stream tag of the ground-motion model of events of tectonic regions other than active crustal
 #: (one uniform number per event of the set, drawn by the region's branch weights).
 STREAM_REGION_GMM_CHOICE = 18
@@ -553,3 +559,25 @@ def group_factor_rng(seed: int, block_index: int, group: int) -> np.random.Gener
             raise ValueError(f"{name} must be a non-negative integer; got {v!r}")
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence(
         [seed, STREAM_GROUP_FACTOR, int(block_index), int(group)])))
+
+
+def conditioned_rng(seed: int, rupture: int, gmm: int, im: int) -> np.random.Generator:
+    """The generator of station-conditioned residuals: ``SeedSequence([seed, STREAM_CONDITIONED, r, g, k])``.
+
+    Parameters
+    ----------
+    seed : int
+        The run's non-negative seed.
+    rupture, gmm, im : int
+        Scenario rupture, ground-motion model and IM index, each >= 0.
+
+    Returns
+    -------
+    numpy.random.Generator
+        A PCG64 generator independent of every other stream.
+    """
+    seed = check_seed(seed)
+    parts = [int(rupture), int(gmm), int(im)]
+    if min(parts) < 0:
+        raise ValueError(f"rupture, gmm and im must be >= 0; got {parts}")
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, STREAM_CONDITIONED, *parts])))
