@@ -66,7 +66,7 @@ import scipy.sparse as sp
 
 from quakefolio.core.events.gmf import cross_im_correlation_matrix
 from quakefolio.core.hazard import (
-    DISAGG_MOMENTS, DisaggBins, disaggregation_from_pairs, disaggregation_means, exceedance_probability,
+    DISAGG_MOMENTS, DisaggBins, disaggregation_from_pairs, disaggregation_means, exceedance_probability, values_key,
 )
 from quakefolio.core.pairs import block_pairs, model_input, region_parts
 from quakefolio.core.sources.geometry import mean_position
@@ -286,7 +286,7 @@ def _site_chunks(pairs, pair_site, size):
 
 def compute_spectrum_sums(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_weights, conditioning_ims, ims,
                           ln_targets, *, truncation_sigma=None, max_distance_km=200.0, region="global", site_block=64,
-                          ref=None, region_branches=None, site_fields=None):
+                          ref=None, region_branches=None, site_fields=None, memo=None, memo_key=None, curve_ims=None):
     r"""Weighted disaggregation moments and spectral sums [1/yr] per conditioning IM, site and target.
 
     Parameters
@@ -308,6 +308,12 @@ def compute_spectrum_sums(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_wei
         active-crustal ruptures, each other region's ruptures enter with their branch
         weights times the sum of ``gmm_weights`` (the mean over branch combinations, as
         :func:`quakefolio.core.hazard.compute_disaggregation`).
+    memo, memo_key, curve_ims : optional
+        The models' per-pair values at ``curve_ims`` (which hold the conditioning IMs) kept
+        by :func:`quakefolio.core.hazard.compute_site_hazard` for the same sites and
+        ``memo_key``: the values at the conditioning IMs are read from them rather than
+        evaluated again (the same numbers: a model gives each IM the same values whatever
+        the other IMs of the call, and the same per pair or on a grid).
 
     Returns
     -------
@@ -329,31 +335,44 @@ def compute_spectrum_sums(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_wei
     sums = np.zeros((len(cond), len(site_lon), n_t, len(SPECTRUM_SUMS), len(ims)))
     chunk = max(1, _CHUNK_VALUES // max(1, len(ims)))
     scale = float(np.sum(gmm_weights))
-    for part_set, branches in region_parts(ruptures, region_branches):
+    memo = memo if curve_ims is not None and set(cond) <= set(curve_ims) else None
+    for k, (part_set, branches) in enumerate(region_parts(ruptures, region_branches)):
         weighted = (list(zip(gmms, gmm_weights)) if branches is None
                     else [(m, scale * w) for w, m in branches])
+        kept = None if memo is None else (memo, (memo_key, k), list(curve_ims))
         _add_spectrum_sums(moments, sums, site_lon, site_lat, site_vs30, part_set, weighted, cond, ims, ln_targets,
-                           truncation_sigma, max_distance_km, region, site_block, ref, site_fields, chunk)
+                           truncation_sigma, max_distance_km, region, site_block, ref, site_fields, chunk, kept)
     return moments, sums
 
 
+def _at_conditioning(gmm, minp, cond, kept, first_site, g):
+    """Ln median [ln g] and sigma (n_cond, n_pairs) of the model at the conditioning IMs, kept values if any."""
+    if kept is not None:
+        memo, part_key, curve_ims = kept
+        hit = memo.get(values_key(part_key, first_site, g, gmm, curve_ims))
+        if hit is not None:
+            rows = [curve_ims.index(c) for c in cond]
+            return hit[0][rows], hit[1][rows]
+    res = gmm.evaluate(minp, cond)
+    return res.ln_median, res.sigma
+
+
 def _add_spectrum_sums(moments, sums, site_lon, site_lat, site_vs30, ruptures, weighted, cond, ims, ln_targets,
-                       truncation_sigma, max_distance_km, region, site_block, ref, site_fields, chunk):
+                       truncation_sigma, max_distance_km, region, site_block, ref, site_fields, chunk, kept):
     """Adds one region's weighted moments and spectral sums in place (:func:`compute_spectrum_sums`)."""
     for blk, site, rup, inp, d, rate in _per_pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref, site_fields):
         n_blk = blk.stop - blk.start
         targets = ln_targets[:, blk]
-        for gmm, w in weighted:
+        for g, (gmm, w) in enumerate(weighted):
             minp = model_input(inp, gmm)
-            at_cond = gmm.evaluate(minp, cond)
-            keep = np.flatnonzero(_contributing(targets, at_cond.ln_median, at_cond.sigma, rate, site,
-                                                truncation_sigma))
+            mu_cond, sd_cond = _at_conditioning(gmm, minp, cond, kept, blk.start, g)
+            keep = np.flatnonzero(_contributing(targets, mu_cond, sd_cond, rate, site, truncation_sigma))
             for part in _site_chunks(keep, site[keep], chunk):
                 res = gmm.evaluate(_subset(minp, part), ims)
                 for c in range(len(cond)):
                     m, s = spectrum_sums_from_pairs(
-                        targets[c], at_cond.ln_median[c, part], at_cond.sigma[c, part], rate[part], site[part],
+                        targets[c], mu_cond[c, part], sd_cond[c, part], rate[part], site[part],
                         ruptures.mag[rup[part]], d["rrup_km"][part], res.ln_median, res.sigma, n_blk,
                         truncation_sigma)
                     moments[c, blk] += w * m

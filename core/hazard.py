@@ -46,7 +46,7 @@ from scipy.special import ndtr, ndtri
 
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.pairs import (
-    block_pairs, check_event_model, model_input, pair_blocks, pair_segments, pair_values, region_parts,
+    block_pairs, check_event_model, model_input, model_values, pair_blocks, pair_segments, region_parts,
 )
 
 __all__ = [
@@ -66,6 +66,7 @@ __all__ = [
     "uniform_hazard_targets",
     "compute_site_hazard",
     "compute_disaggregation",
+    "values_key",
     "rupture_ground_motion",
 ]
 
@@ -402,7 +403,10 @@ def disaggregation_from_pairs(ln_targets, ln_median, sigma, pair_rate, pair_site
 
     Notes
     -----
-    Vectorised over pairs: one segmented sum (``np.bincount``) per target level.
+    Vectorised over pairs: one segmented sum (``np.bincount``) per target level.  Pairs
+    whose weight is exactly 0 at a target are left out of its sums (beyond the
+    truncation at the site's lowest target already, :func:`_possible_pairs`, or at that
+    target): they would add only zeros, so every sum keeps its bits.
     """
     n_t = ln_targets.shape[1]
     nm, nr, ne = bins.shape
@@ -415,20 +419,31 @@ def disaggregation_from_pairs(ln_targets, ln_median, sigma, pair_rate, pair_site
     base = (im * nr + ir) * ne
     out_flat = out.reshape(-1)  # a view: out is contiguous
     mom_rows = mom.reshape(-1, len(DISAGG_MOMENTS))  # a view: (site, target) rows
+    pairs = _possible_pairs(ln_targets, ln_median, sigma, pair_rate, pair_site, truncation_sigma)
+    if pairs is not None:
+        ln_median, sigma, pair_rate, pair_site, base = (a[pairs] for a in (ln_median, sigma, pair_rate, pair_site,
+                                                                              base))
+        mag, dist_km = mag[pairs], dist_km[pairs]
     for t in range(n_t):
         target = ln_targets[pair_site, t]
         ok = np.isfinite(target)
         if not ok.any():
             continue
+        ok = np.flatnonzero(ok)
         mu, sd = ln_median[ok], sigma[ok]
         tgt = target[ok]
-        p = exceedance_probability(np.zeros(1), mu - tgt, sd, truncation_sigma)[:, 0]
+        w = exceedance_probability(np.zeros(1), mu - tgt, sd, truncation_sigma)[:, 0]
+        w *= pair_rate[ok]
+        # pairs of weight exactly 0 (beyond the truncation, or of zero rate) add +0.0 or -0.0
+        # to sums that start at +0.0: leaving them out changes no bit of any sum
+        some = np.flatnonzero(w != 0)  # NaN kept
+        if some.size < ok.size:
+            ok, mu, sd, tgt, w = ok[some], mu[some], sd[some], tgt[some], w[some]
         with np.errstate(divide="ignore", invalid="ignore"):
             eps = np.where(sd > 0, (tgt - mu) / sd, np.sign(tgt - mu) * np.inf)
         ie = np.clip(np.searchsorted(bins.eps_edges, eps, side="right") - 1, 0, ne - 1)
         row = pair_site[ok] * n_t + t
         cell = row * (nm * nr * ne) + base[ok] + ie
-        w = p * pair_rate[ok]
         out_flat += np.bincount(cell, weights=w, minlength=out_flat.size)
         if moments:
             finite = np.isfinite(eps)
@@ -437,6 +452,26 @@ def disaggregation_from_pairs(ln_targets, ln_median, sigma, pair_rate, pair_site
                                          w_eps * np.where(finite, eps, 0.0))):
                 mom_rows[:, c] += np.bincount(row, weights=weights, minlength=mom_rows.shape[0])
     return (out, mom) if moments else out
+
+
+def _possible_pairs(ln_targets, ln_median, sigma, pair_rate, pair_site, truncation_sigma):
+    """Pairs that may have a nonzero weight at some target (None: all of them), in their order.
+
+    A pair whose standardised value at its site's lowest target, computed as
+    :func:`exceedance_probability` computes it, lies below the truncation window
+    (:func:`truncation_window`) has a weight of exactly 0 at every target (the value only
+    decreases as the target rises: rounding is monotone), as has a pair of zero rate;
+    leaving them out changes no bit of any sum.
+    """
+    if truncation_sigma is None:
+        return None
+    with np.errstate(invalid="ignore", all="ignore"):
+        lowest = np.nanmin(np.where(np.isfinite(ln_targets), ln_targets, np.inf), axis=1)[pair_site]
+        z = np.subtract(ln_median - lowest, 0.0)
+        z *= 1.0 / sigma
+    lo, _ = truncation_window(truncation_sigma)
+    keep = ~(z < lo) & (pair_rate != 0)
+    return None if keep.all() else np.flatnonzero(keep)
 
 
 def disaggregation_means(moments):
@@ -521,7 +556,7 @@ def uniform_hazard_targets(levels, curves, return_periods_yr):
 
 def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, levels_g, *, truncation_sigma=None,
                         max_distance_km=200.0, region="global", site_block=64, ref=None, region_branches=None,
-                        site_fields=None):
+                        site_fields=None, memo=None, memo_key=None):
     r"""Hazard curves [1/yr] from a rupture set and ground-motion models.
 
     Parameters
@@ -551,6 +586,12 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     site_fields : dict of str to array_like, shape (n_sites,), or None
         Optional per-site inputs: ``backarc`` (0 or 1), ``z1p0_km``, ``z2p5_km`` [km]
         (NaN: the model's own default), :func:`quakefolio.core.pairs.pair_blocks`.
+    memo, memo_key : optional
+        Keeps each model's per-pair values (:func:`quakefolio.core.pairs.model_values`)
+        under ``(memo_key, region part, first site of the block, model index, model name,
+        ims)``, for :func:`compute_disaggregation` and
+        :func:`quakefolio.core.cms.compute_spectrum_sums` on the same sites with the same
+        ``memo_key``; ``memo_key`` must identify the sites, ruptures and models.
 
     Returns
     -------
@@ -574,10 +615,10 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     if np.any(np.diff(lnx) <= 0):
         raise ValueError("levels_g must be strictly increasing")
     out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
-    for part, branches in region_parts(ruptures, region_branches):
+    for k, (part, branches) in enumerate(region_parts(ruptures, region_branches)):
         models = gmms if branches is None else [m for _, m in branches]
         curves = _part_hazard(site_lon, site_lat, site_vs30, part, models, ims, lnx, truncation_sigma,
-                              max_distance_km, region, site_block, ref, site_fields)
+                              max_distance_km, region, site_block, ref, site_fields, memo, (memo_key, k))
         if branches is None:
             out += curves
         else:
@@ -586,14 +627,15 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
 
 
 def _part_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, lnx, truncation_sigma, max_distance_km, region,
-                 site_block, ref, site_fields):
+                 site_block, ref, site_fields, memo, part_key):
     """Curves (n_gmms, n_ims, n_sites, n_levels) [1/yr] of one region's ruptures, one per model."""
     out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
     for blk, site, rup, starts, owners, inp, cells, _, rate in pair_blocks(
             site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref, site_fields):
         n_blk = blk.stop - blk.start
         for g, gmm in enumerate(gmms):
-            ln_median, sigma = pair_values(gmm.evaluate(model_input(inp, gmm), list(ims)), cells)
+            ln_median, sigma = model_values(gmm, inp, cells, ims, memo,
+                                            values_key(part_key, blk.start, g, gmm, ims))
             for i in range(len(ims)):
                 out[g, i, blk] = hazard_from_pairs(lnx, ln_median[i], sigma[i], rate, starts, owners, n_blk,
                                                    truncation_sigma)
@@ -602,7 +644,7 @@ def _part_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, lnx, trunca
 
 def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_weights, ims, ln_targets, bins, *,
                            truncation_sigma=None, max_distance_km=200.0, region="global", site_block=64, ref=None,
-                           moments=False, region_branches=None, site_fields=None):
+                           moments=False, region_branches=None, site_fields=None, memo=None, memo_key=None):
     r"""Weighted (M, R, epsilon) contributions [1/yr] at target levels per site and IM.
 
     Parameters
@@ -615,6 +657,9 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
 
     moments : bool
         Also return the weighted exact moments (:data:`DISAGG_MOMENTS`).
+    memo, memo_key : optional
+        The models' per-pair values kept by :func:`compute_site_hazard` for the same sites
+        and ``ims`` are taken from ``memo`` rather than evaluated again (the same arrays).
 
     Returns
     -------
@@ -630,14 +675,15 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
     out = np.zeros((len(ims), len(site_lon), n_t) + bins.shape)
     mom = np.zeros((len(ims), len(site_lon), n_t, len(DISAGG_MOMENTS)))
     scale = float(np.sum(gmm_weights))
-    for part, branches in region_parts(ruptures, region_branches):
+    for k, (part, branches) in enumerate(region_parts(ruptures, region_branches)):
         weighted = (list(zip(gmms, gmm_weights)) if branches is None
                     else [(m, scale * w) for w, m in branches])
         for blk, site, rup, starts, owners, inp, cells, d, rate in pair_blocks(
                 site_lon, site_lat, site_vs30, part, max_distance_km, region, site_block, ref, site_fields):
             n_blk = blk.stop - blk.start
-            for gmm, w in weighted:
-                ln_median, sigma = pair_values(gmm.evaluate(model_input(inp, gmm), list(ims)), cells)
+            for g, (gmm, w) in enumerate(weighted):
+                ln_median, sigma = model_values(gmm, inp, cells, ims, memo,
+                                                values_key((memo_key, k), blk.start, g, gmm, ims))
                 for i in range(len(ims)):
                     c, m = disaggregation_from_pairs(
                         ln_targets[i, blk], ln_median[i], sigma[i], rate, site, part.mag[rup], d["rrup_km"],
@@ -645,6 +691,28 @@ def compute_disaggregation(site_lon, site_lat, site_vs30, ruptures, gmms, gmm_we
                     out[i, blk] += w * c
                     mom[i, blk] += w * m
     return (out, mom) if moments else out
+
+
+def values_key(part_key, first_site, model_index, gmm, ims):
+    """Key of one model's per-pair values in a memo (:func:`quakefolio.core.pairs.model_values`).
+
+    Parameters
+    ----------
+    part_key : (hashable, int)
+        The caller's key of the sites, ruptures and models, and the region part
+        (:func:`quakefolio.core.pairs.region_parts` order).
+    first_site : int
+        First site of the block of pairs.
+    model_index : int
+        The model's place among the part's models.
+    gmm : ground-motion model
+    ims : sequence of str
+
+    Returns
+    -------
+    tuple
+    """
+    return part_key + (first_site, model_index, getattr(gmm, "name", type(gmm).__qualname__), tuple(ims))
 
 
 # --- event-based ground motion: the same pairs and GMM inputs as the classical engine ----------

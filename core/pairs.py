@@ -19,8 +19,8 @@ import numpy as np
 from quakefolio.core.gmm import TECTONIC_REGIONS, GmmInput
 from quakefolio.core.sources.geometry import aeqd_forward, mean_position, pair_distances, rupture_distances, site_rupture_mask
 
-__all__ = ["DENSE_SHARE", "pair_segments", "block_pairs", "pair_blocks", "pair_values", "hypocentres_km",
-           "extra_fields", "region_parts", "model_input", "check_event_model"]
+__all__ = ["DENSE_SHARE", "pair_segments", "block_pairs", "pair_blocks", "pair_values", "model_values",
+           "hypocentres_km", "extra_fields", "region_parts", "model_input", "check_event_model"]
 
 #: Index of the intraslab region in :data:`quakefolio.core.gmm.TECTONIC_REGIONS`.
 _INTRASLAB = TECTONIC_REGIONS.index("subduction_intraslab")
@@ -251,6 +251,44 @@ def pair_values(result, cells):
     return result.ln_median[:, cells], result.sigma[:, cells]
 
 
+def model_values(gmm, inp, cells, ims, memo=None, key=None):
+    """Ln median [ln g] and sigma [ln units] per IM and pair of model ``gmm``, reused from ``memo`` when there.
+
+    Parameters
+    ----------
+    gmm : ground-motion model
+    inp : GmmInput
+        Of :func:`pair_blocks` or :func:`block_pairs` (Vs30 clamped here, :func:`model_input`).
+    cells : ndarray of bool or None
+        As :func:`pair_values`.
+    ims : sequence of str
+    memo : object with ``get(key)`` and ``memo[key] = values``, or None
+        Values of earlier evaluations in this process (e.g. the hazard curves' for the
+        disaggregation and the conditional mean spectrum); it may decline to keep new ones.
+    key : hashable
+        Identifies the pairs, the model and ``ims`` in ``memo`` (the caller's duty: the same
+        key only for the same sites, ruptures, model and IMs).
+
+    Returns
+    -------
+    ln_median, sigma : ndarray, shape (n_ims, n_pairs)
+
+    Notes
+    -----
+    The model's evaluation (its paper's equations, :mod:`quakefolio.core.gmm`), computed
+    once: a value taken from ``memo`` is the array computed before, so every result is bit
+    for bit the one of a new evaluation on the same pairs.
+    """
+    if memo is not None:
+        hit = memo.get(key)
+        if hit is not None:
+            return hit
+    values = pair_values(gmm.evaluate(model_input(inp, gmm), list(ims)), cells)
+    if memo is not None:
+        memo[key] = values
+    return values
+
+
 def pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region, site_block, ref,
                 site_fields=None):
     """Blocks of sites with their surviving pairs; blocks without any pair are skipped.
@@ -285,7 +323,8 @@ def pair_blocks(site_lon, site_lat, site_vs30, ruptures, max_distance_km, region
     vs30 = np.asarray(site_vs30, dtype=float)
     ref = ref if ref is not None else mean_position(lon, lat)
     fields = {k: np.asarray(v, dtype=float) for k, v in (site_fields or {}).items() if v is not None}
-    plain = not fields and not np.isin(ruptures.region_code, _SUBDUCTION).any()
+    # backarc enters only with subduction ruptures (:func:`extra_fields` drops it for the others)
+    plain = not set(fields) - {"backarc"} and not np.isin(ruptures.region_code, _SUBDUCTION).any()
     for lo in range(0, len(lon), site_block):
         blk = slice(lo, min(len(lon), lo + site_block))
         site, rup, starts, owners, d, grid = _surviving_pairs(lon[blk], lat[blk], ruptures, max_distance_km, ref)

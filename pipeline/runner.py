@@ -203,6 +203,15 @@ def run_hazard(inputs, ref, executor, work, clock):
     (RunInputs, RunRef, CacheCounts)
         The inputs with the hazard, the reference to them, and the cache counts.
     """
+    hs.GROUND_MOTION_MEMO.clear()
+    try:
+        return _run_hazard_stages(inputs, ref, executor, work, clock)
+    finally:  # the values kept for the disaggregation and the spectrum are not needed after them
+        hs.GROUND_MOTION_MEMO.clear()
+
+
+def _run_hazard_stages(inputs, ref, executor, work, clock):
+    """The stages of :func:`run_hazard`."""
     t = time.perf_counter()
     site_blocks = hs.site_blocks(len(inputs.hazard.site_id), inputs.config.execution.site_block_size)
     parts = executor.many("hazard-block", blocks.hazard_task, ref, site_blocks)
@@ -365,10 +374,15 @@ def execute(inputs, executor, *, stages_to_run="all"):
         if stages_to_run == "all":
             damage, c = run_damage(inputs, ref, executor, clock)
             counts += c
-            events, em, c = run_events(inputs, ref, executor, clock)
-            counts += c
-            extra, c = run_whatif(inputs, damage, events, em, executor, clock)
-            counts += c
+            # the what-if reruns the event stage's events: their fields are kept for it in this process
+            ps.FIELD_MEMO.clear(enabled=bool(inputs.config.scenario.alternatives))
+            try:
+                events, em, c = run_events(inputs, ref, executor, clock)
+                counts += c
+                extra, c = run_whatif(inputs, damage, events, em, executor, clock)
+                counts += c
+            finally:
+                ps.FIELD_MEMO.clear()
         run = executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts, started,
                            getattr(executor, "orchestration", None))
     try:  # marks that every stage's result is now in the cache (see every_stage_cached)

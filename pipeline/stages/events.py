@@ -17,6 +17,7 @@ gathers inputs, calls them and lays results out as tables.
 """
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -43,7 +44,7 @@ from quakefolio.pipeline.stages.programme import programme_digest, programme_tab
 from quakefolio.pipeline.stages import people as pp
 from quakefolio.pipeline.stages.regions import event_region_models
 
-__all__ = ["EventModel", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
+__all__ = ["EventModel", "FieldMemo", "FIELD_MEMO", "prepare_events", "event_chunks", "event_chunk", "combine_events"]
 
 
 @dataclass(frozen=True)
@@ -273,6 +274,94 @@ def _correlated(em):
     return em.loss_model != "mean_damage_ratio" and em.correlation > 0
 
 
+def _field_inputs(em):
+    """The event model's parts the ground-motion fields depend on (compared by identity)."""
+    return (em.events, em.ruptures, em.gmm_of_event, em.gmms, em.ims, em.site_lon, em.site_lat, em.site_vs30,
+            em.site_fields, em.sampler, em.seed, em.truncation_sigma, em.max_distance_km, em.region, em.ref,
+            em.levels_g)
+
+
+class FieldMemo:
+    """Ground-motion fields [g] and exceedance counts of the event stage's chunks, kept in this process
+    for the what-if's rerun of the same events (up to ``max_bytes``).
+
+    An entry is found only for an event model whose event set, ruptures, models, sites,
+    sampler and settings are the very objects of the one that stored it (the what-if's
+    model is a copy of the run's with other classes and values): the same fields, which the
+    rerun would otherwise compute again with the same numbers.  Arrays are kept read-only.
+    Thread-safe.
+    """
+
+    def __init__(self, max_bytes):
+        self.max_bytes = int(max_bytes)
+        self.enabled = False  # set by the runner for a run whose what-if reruns its events
+        self._entries = {}
+        self._bytes = 0
+        self._lock = threading.Lock()
+
+    def get(self, em, chunk):
+        """The kept fields of a chunk of events.
+
+        Parameters
+        ----------
+        em : EventModel
+        chunk : (int, int)
+            First and stop random-number block (:func:`event_chunks`).
+
+        Returns
+        -------
+        (ndarray, ndarray) or None
+            Fields [g] (n_ev, n_im, n_sites) and exceedance counts (n_im, n_sites,
+            n_levels) of ``chunk`` for ``em``; None where not kept.
+        """
+        entry = self._entries.get(tuple(chunk))
+        if entry is None or len(entry[0]) != len(_field_inputs(em)):
+            return None
+        if not all(a is b for a, b in zip(entry[0], _field_inputs(em))):
+            return None
+        return entry[1], entry[2]
+
+    def put(self, em, chunk, fields, counts):
+        """Keep the fields of a chunk of events while they fit (made read-only).
+
+        Parameters
+        ----------
+        em : EventModel
+        chunk : (int, int)
+        fields : ndarray, shape (n_ev, n_im, n_sites) [g]
+        counts : ndarray, shape (n_im, n_sites, n_levels)
+        """
+        size = int(fields.nbytes) + int(counts.nbytes)
+        with self._lock:
+            if tuple(chunk) in self._entries or self._bytes + size > self.max_bytes:
+                return
+            fields.flags.writeable = False
+            counts.flags.writeable = False
+            self._entries[tuple(chunk)] = (_field_inputs(em), fields, counts)
+            self._bytes += size
+
+    def clear(self, enabled=False):
+        """Forget every entry.
+
+        Parameters
+        ----------
+        enabled : bool
+            Keep new entries from now on.
+        """
+        with self._lock:
+            self._entries.clear()
+            self._bytes = 0
+            self.enabled = bool(enabled)
+
+
+#: Bytes of event fields kept for the what-if (the demo's 50,000 years need about 40 MB).
+FIELD_MEMO_BYTES = 512 * 2 ** 20
+#: The process's memo: filled by :func:`event_chunk` when the runner enables it (``enabled``),
+#: read by the what-if's rerun (:func:`quakefolio.pipeline.stages.whatif.rerun_events`),
+#: cleared by the runner after the what-if.
+FIELD_MEMO = FieldMemo(FIELD_MEMO_BYTES)
+
+
 def _ground_motion(em, start, stop, b0, b1):
     """ln IM [ln g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites).
 
@@ -309,9 +398,15 @@ def event_chunk(em, chunk, independent=True):
     b0, b1 = chunk
     blocks = event_blocks(em.events.n_events, EVENT_BLOCK_SIZE)
     start, stop = int(blocks[b0, 0]), int(blocks[b1 - 1, 1])
-    im = _ground_motion(em, start, stop, b0, b1)
-    counts = exceedance_counts(im, em.levels_g)
-    np.exp(im, out=im)  # (n_ev, n_im, n_sites) [g]; 0 beyond the integration distance
+    kept = FIELD_MEMO.get(em, chunk)
+    if kept is None:
+        im = _ground_motion(em, start, stop, b0, b1)
+        counts = exceedance_counts(im, em.levels_g)
+        np.exp(im, out=im)  # (n_ev, n_im, n_sites) [g]; 0 beyond the integration distance
+        if FIELD_MEMO.enabled:  # kept for a rerun of the same events (the what-if), which reads them
+            FIELD_MEMO.put(em, chunk, im, counts)
+    else:
+        im, counts = kept
     rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
     classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
                if dss.has_damage_states else

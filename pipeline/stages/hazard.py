@@ -6,6 +6,7 @@ into site blocks (the unit of a flow task) and lays results out as tables.
 """
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, field, replace
 from typing import Mapping
 
@@ -28,7 +29,7 @@ from quakefolio.pipeline.stages.regions import check_source_regions, region_mode
 from quakefolio.pipeline.io.source_model import count_source_model, load_source_model
 from quakefolio.pipeline.stages.sizes import check_hazard_work, rupture_limit
 
-__all__ = ["HazardModel", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "with_branch_curves",
+__all__ = ["HazardModel", "GroundMotionMemo", "GROUND_MOTION_MEMO", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "with_branch_curves",
            "disagg_block", "combine_disaggregation", "statistic_name", "branch_weights",
            "site_hazard_table", "hazard_at_return_periods_table"]
 
@@ -97,6 +98,9 @@ class HazardModel:
     site_fields : Mapping name -> ndarray (n_sites,)
         Per-site model inputs (``z1p0_km``, ``z2p5_km`` [km], ``backarc``); empty when none
         applies (:func:`quakefolio.pipeline.stages.regions.site_inputs`).
+    reuse_ground_motion : bool
+        The hazard blocks keep their per-pair ground-motion values (:data:`GROUND_MOTION_MEMO`)
+        for the disaggregation or the conditional mean spectrum of the run.
     """
 
     source_branches: tuple
@@ -120,6 +124,85 @@ class HazardModel:
     spectrum_moments: np.ndarray | None = None
     region_branches: Mapping = field(default_factory=lambda: frozen_mapping({}))
     site_fields: Mapping = field(default_factory=lambda: frozen_mapping({}))
+    reuse_ground_motion: bool = False
+
+
+class GroundMotionMemo:
+    """Per-pair ground-motion values of the hazard curves, kept in this process for the disaggregation
+    and the conditional mean spectrum of the same site blocks (up to ``max_bytes``).
+
+    Keys are :func:`quakefolio.core.hazard.values_key` tuples whose first part is
+    :func:`memo_key` (the content keys of the block's sites and the source branch), so a
+    value is only found for the same sites, ruptures, models and IMs.  New values are kept
+    while they fit, never evicted (blocks are visited in the same order by every stage);
+    a value not found is evaluated again, with the same numbers.  Thread-safe.
+    """
+
+    def __init__(self, max_bytes):
+        self.max_bytes = int(max_bytes)
+        self._values = {}
+        self._bytes = 0
+        self._lock = threading.Lock()
+
+    def get(self, key):
+        """The values kept under a key.
+
+        Parameters
+        ----------
+        key : tuple
+            :func:`quakefolio.core.hazard.values_key`.
+
+        Returns
+        -------
+        (ndarray, ndarray) or None
+            Ln median [ln g] and sigma [ln units] (n_ims, n_pairs); None where not kept.
+        """
+        return self._values.get(key)
+
+    def __setitem__(self, key, values):
+        size = sum(int(v.nbytes) for v in values)
+        with self._lock:
+            if key not in self._values and self._bytes + size <= self.max_bytes:
+                for v in values:  # shared by the stages that read them: never written
+                    v.flags.writeable = False
+                self._values[key] = values
+                self._bytes += size
+
+    @property
+    def nbytes(self):
+        """Bytes of the values kept."""
+        return self._bytes
+
+    def clear(self):
+        """Forget every value."""
+        with self._lock:
+            self._values.clear()
+            self._bytes = 0
+
+
+#: Bytes of ground-motion values kept between the hazard, disaggregation and spectrum stages
+#: (the demo needs about 200 MB; a larger run recomputes the blocks that do not fit).
+MEMO_BYTES = 512 * 2 ** 20
+#: The process's memo: filled by :func:`hazard_block`, read by :func:`disagg_block` and
+#: :func:`quakefolio.pipeline.stages.spectrum.spectrum_block`, cleared by the runner after them.
+GROUND_MOTION_MEMO = GroundMotionMemo(MEMO_BYTES)
+
+
+def memo_key(site_keys, source_index):
+    """Key prefix of a source branch's ground-motion values on a set of sites.
+
+    Parameters
+    ----------
+    site_keys : sequence of str
+        Content digests of the sites (model, position, Vs30, site inputs).
+    source_index : int
+        The source branch.
+
+    Returns
+    -------
+    tuple
+    """
+    return tuple(site_keys), int(source_index)
 
 
 def build_sites(exposure, spacing_km, default_vs30):
@@ -236,7 +319,8 @@ def prepare_compute(config, exposure, library, lines=None, budget=None):
         *([sorted((r, [(g, w) for g, w, _ in rows]) for r, rows in others.items())] if others else []))
     model = HazardModel(tuple(sources), tuple(gmms), ims, levels, hz.truncation_sigma, hz.integration_distance_km,
                         hz.region, list(hz.fractiles), hz.disaggregation, vs30, ref, digest=model_digest,
-                        region_branches=frozen_mapping(others), site_fields=frozen_mapping(fields))
+                        region_branches=frozen_mapping(others), site_fields=frozen_mapping(fields),
+                        reuse_ground_motion=bool(hz.disaggregation or hz.cms_conditioning_ims))
     hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=frozenset())
     return model, hazard, site_index, dist
 
@@ -268,6 +352,12 @@ def _region_kwargs(model, idx):
     """Keywords of the core engine for the regions' branches and the site inputs of sites ``idx``."""
     return dict(region_branches={r: [(w, g) for _, w, g in rows] for r, rows in model.region_branches.items()},
                 site_fields={n: v[idx] for n, v in model.site_fields.items()} or None)
+
+
+def _memo(model):
+    """The process's ground-motion memo (:data:`GROUND_MOTION_MEMO`), or None for a run without
+    disaggregation or conditional mean spectrum (nothing would read the values)."""
+    return GROUND_MOTION_MEMO if model.reuse_ground_motion else None
 
 
 def _cached_rows(cache, stage, keys, shape, name, *also):
@@ -317,12 +407,14 @@ def hazard_block(model, hazard, block, cache=None):
     out = np.ascontiguousarray(np.moveaxis(rows, 0, 3))
     if missing:
         idx = lo + np.array(missing)
+        computed = [keys[j] for j in missing]
         for s_i, (_, _, src) in enumerate(model.source_branches):
             out[s_i][:, :, missing] = compute_site_hazard(
                 hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures,
                 [g for _, _, g in model.gmm_branches], model.ims, model.levels_g,
                 truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km,
-                region=model.region, site_block=len(idx), ref=model.ref, **_region_kwargs(model, idx))
+                region=model.region, site_block=len(idx), ref=model.ref, memo=_memo(model),
+                memo_key=memo_key(computed, s_i), **_region_kwargs(model, idx))
         if cache is not None:
             for j in missing:
                 cache.put("hazard", keys[j], {"curves": out[:, :, :, j]})
@@ -437,8 +529,9 @@ def disagg_block(model, hazard, return_periods, block, cache=None):
     with np.errstate(divide="ignore", invalid="ignore"):
         targets = np.log(im_at_rate(1.0 / np.asarray(return_periods), model.levels_g, mean))
     bins = model.bins
+    site_keys = _site_keys(model, hazard, lo, hi)
     keys = [digest("disagg-site-moments", k, list(map(float, return_periods)), bins.mag_edges, bins.dist_edges,
-                   bins.eps_edges, mean[:, j]) for j, k in enumerate(_site_keys(model, hazard, lo, hi))]
+                   bins.eps_edges, mean[:, j]) for j, k in enumerate(site_keys)]
     per_site = (len(model.ims), len(return_periods)) + bins.shape
     per_site_moments = (len(model.ims), len(return_periods), len(DISAGG_MOMENTS))
     rows, mom_rows, missing = _cached_rows(cache, "disaggregation", keys, (hi - lo,) + per_site, "contrib",
@@ -447,13 +540,14 @@ def disagg_block(model, hazard, return_periods, block, cache=None):
     moments = np.ascontiguousarray(np.moveaxis(mom_rows, 0, 1))
     if missing:
         idx = lo + np.array(missing)
-        for _, ws, src in model.source_branches:
+        computed = [site_keys[j] for j in missing]
+        for s_i, (_, ws, src) in enumerate(model.source_branches):
             contrib, mom = compute_disaggregation(
                 hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures,
                 [g for _, _, g in model.gmm_branches], [ws * wg for _, wg, _ in model.gmm_branches], model.ims,
                 targets[:, missing], bins, truncation_sigma=model.truncation_sigma,
                 max_distance_km=model.max_distance_km, region=model.region, site_block=len(idx), ref=model.ref,
-                moments=True, **_region_kwargs(model, idx))
+                moments=True, memo=_memo(model), memo_key=memo_key(computed, s_i), **_region_kwargs(model, idx))
             total[:, missing] += contrib
             moments[:, missing] += mom
         if cache is not None:

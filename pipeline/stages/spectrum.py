@@ -24,7 +24,7 @@ from quakefolio.core.gmm import get_gmm
 from quakefolio.core.hazard import DISAGG_MOMENTS
 from quakefolio.core.ims import im_period, model_period
 from quakefolio.pipeline.io.cache import digest
-from quakefolio.pipeline.stages.hazard import _assemble, _cached_rows, _region_kwargs, _site_keys
+from quakefolio.pipeline.stages.hazard import _assemble, _cached_rows, _memo, _region_kwargs, _site_keys, memo_key
 from quakefolio.pipeline.stages.products import SiteBlockResult
 
 __all__ = ["check_spectrum_settings", "conditioning_ims", "spectrum_block", "combine_spectrum", "spectrum_frame"]
@@ -126,8 +126,9 @@ def spectrum_block(model, hazard, cond, return_periods, rate_floor, block, cache
     gmms = [g for _, _, g in model.gmm_branches]
     ims = spectrum_ims(_every_model(model), cond)
     targets = _targets(model, cond, return_periods, rate_floor, lo, hi)
+    site_keys = _site_keys(model, hazard, lo, hi)
     keys = [digest("spectrum-site", k, list(cond), list(map(float, return_periods)), ims, targets[:, j])
-            for j, k in enumerate(_site_keys(model, hazard, lo, hi))]
+            for j, k in enumerate(site_keys)]
     per_site = (len(cond), len(return_periods))
     sums, moments, missing = _cached_rows(cache, "spectrum", keys, (hi - lo,) + per_site + (len(SPECTRUM_SUMS),
                                           len(ims)), "sums", ("moments", (hi - lo,) + per_site + (len(DISAGG_MOMENTS),)))
@@ -135,12 +136,14 @@ def spectrum_block(model, hazard, cond, return_periods, rate_floor, block, cache
     moments = np.ascontiguousarray(np.moveaxis(moments, 0, 1))
     if missing:
         idx = lo + np.array(missing)
-        for _, ws, src in model.source_branches:
+        computed = [site_keys[j] for j in missing]
+        for s_i, (_, ws, src) in enumerate(model.source_branches):
             m, s = compute_spectrum_sums(
                 hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures, gmms,
                 [ws * wg for _, wg, _ in model.gmm_branches], cond, ims, targets[:, missing],
                 truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km, region=model.region,
-                site_block=len(idx), ref=model.ref, **_region_kwargs(model, idx))
+                site_block=len(idx), ref=model.ref, memo=_memo(model), memo_key=memo_key(computed, s_i),
+                curve_ims=model.ims, **_region_kwargs(model, idx))
             moments[:, missing] += m
             sums[:, missing] += s
         if cache is not None:
