@@ -7,6 +7,8 @@ import pytest
 
 _STATE = Path(tempfile.mkdtemp(prefix="quakefolio-test-state-"))
 os.environ.setdefault("QUAKEFOLIO_STATE", str(_STATE))
+#: the session's base state folder (shared by the parallel test processes): the migrated Prefect database lives here
+BASE_STATE = Path(os.environ["QUAKEFOLIO_STATE"])
 # the memory budget of the size checks (pipeline.stages.sizes), pinned so that what the tests
 # expect to be refused does not depend on the machine's free memory
 os.environ["QUAKEFOLIO_MEMORY_GIB"] = "8"
@@ -23,6 +25,41 @@ os.environ.setdefault("QUAKEFOLIO_SERVER_IDLE_S", "120")
 from quakefolio.pipeline.env import configure_prefect  # noqa: E402
 
 configure_prefect()
+
+import prefect_template  # noqa: E402
+from quakefolio.pipeline import server as _server  # noqa: E402  (light: does not import Prefect)
+
+
+def seed_state(state):
+    """Give the fresh state folder ``state`` a migrated Prefect database before a server starts in it.
+
+    Starting a server on an empty database spends most of its time migrating the schema
+    (tests/prefect_template.py); the copy is the same schema, so nothing else changes.
+    """
+    return prefect_template.seed_state(state, BASE_STATE)
+
+
+def pytest_configure(config):
+    """The controlling process builds the migrated Prefect database in the background while tests are collected."""
+    worker = bool(os.environ.get("PYTEST_XDIST_WORKER"))
+    if not worker:
+        prefect_template.start_build(BASE_STATE)
+    if worker or not config.getoption("numprocesses", None):  # a process that runs tests (not the -n controller)
+        state = Path(os.environ["QUAKEFOLIO_STATE"])
+        home = Path(os.environ.get("PREFECT_HOME", state / "prefect"))
+        # its local server's database, and the one of the embedded server of a flow run given no API
+        prefect_template.seed_in_background([state / "server" / "prefect.db", home / "prefect.db"], BASE_STATE)
+
+
+_real_start_server = _server.start_server
+
+
+def _start_seeded(*args, **kwargs):
+    seed_state(_server.state_folder())
+    return _real_start_server(*args, **kwargs)
+
+
+_server.start_server = _start_seeded  # servers started by this process find their schema migrated
 
 
 def pytest_sessionfinish(session, exitstatus):

@@ -10,7 +10,7 @@ import pytest
 from quakefolio.pipeline.runner import run_pure
 from quakefolio.pipeline.io.store import latest_run, read_table
 
-from conftest import DEMO
+from conftest import DEMO, seed_state
 
 TABLES = ["site_hazard", "hazard_at_return_periods", "asset_damage", "asset_loss", "asset_loss_curve"]
 
@@ -35,6 +35,7 @@ def test_demo_end_to_end_cli(tmp_path):
     cfg.write_text(text.replace("years = 50000", "years = 5000"), encoding="utf-8")
     env = dict(os.environ, QUAKEFOLIO_STATE=str(tmp_path / "state"))
     env.pop("PREFECT_API_URL", None)
+    seed_state(tmp_path / "state")  # a migrated Prefect database: the command's server starts without migrating
     try:
         proc = subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "run", str(cfg)],
                               capture_output=True, text=True, env=env, timeout=600)

@@ -212,8 +212,10 @@ def test_dask_run_equals_local_run(tmp_path, prefect_server, ops_state):
 
     from quakefolio.pipeline.stages import blocks
     from quakefolio.pipeline.flow import run_flow
+    from quakefolio.pipeline.orchestration import using_api
 
-    local = run_flow(_copy_mini(tmp_path / "local"), max_workers=2)
+    with using_api(prefect_server.url):  # the module's server (no embedded server of its own)
+        local = run_flow(_copy_mini(tmp_path / "local"), max_workers=2)
     cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
                            dashboard_address="127.0.0.1:0")
     try:

@@ -19,6 +19,8 @@ import pytest
 from quakefolio.pipeline import server
 from quakefolio.pipeline.cli import main
 
+from conftest import seed_state
+
 pytestmark = pytest.mark.flow
 
 
@@ -121,8 +123,9 @@ def test_keeper_stops_an_idle_server_only_when_no_command_uses_it(state):
 
 def test_concurrent_first_uses_start_one_server_that_later_uses_reuse(state, capsys):
     """Two processes at once start one server (a stale record is replaced); this process reuses it; stop ends it."""
+    seed_state(state)  # a migrated Prefect database (conftest): the server starts without migrating
     folder = state / "server"
-    folder.mkdir(parents=True)
+    folder.mkdir(parents=True, exist_ok=True)
     (folder / "server.json").write_text(json.dumps({"pid": os.getpid(), "token": "0" * 32, "port": 9}),
                                         encoding="utf-8")
     env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
