@@ -335,9 +335,7 @@ def prepare_compute(config, exposure, library, lines=None, budget=None):
         "hazard-model", [(bid, w, src.sha256) for bid, w, src in sources], [(g, w) for g, w, _ in gmms], ims,
         levels, hz.truncation_sigma, hz.integration_distance_km, hz.region, list(ref),
         *([sorted((r, [(g, w) for g, w, _ in rows]) for r, rows in others.items())] if others else []))
-    parts = part_layout([w for _, w, _ in gmms], {r: [w for _, w, _ in rows] for r, rows in others.items()})
-    combos = tree_combinations([w for _, w, _ in sources], [src.ruptures.regions for _, _, src in sources], parts,
-                               hz.fractile_combinations_max, config.portfolio.seed)
+    parts, combos = _end_branches(config, sources, gmms, others)
     model = HazardModel(tuple(sources), tuple(gmms), ims, levels, hz.truncation_sigma, hz.integration_distance_km,
                         hz.region, list(hz.fractiles), hz.disaggregation, vs30, ref, digest=model_digest,
                         region_branches=frozen_mapping(others), site_fields=frozen_mapping(fields),
@@ -345,6 +343,14 @@ def prepare_compute(config, exposure, library, lines=None, budget=None):
                         combinations=combos)
     hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=frozenset())
     return model, hazard, site_index, dist
+
+
+def _end_branches(config, sources, gmms, others):
+    """The part axis and the combinations of the fractiles (:mod:`quakefolio.core.combinations`)."""
+    parts = part_layout([w for _, w, _ in gmms], {r: [w for _, w, _ in rows] for r, rows in others.items()})
+    combos = tree_combinations([w for _, w, _ in sources], [src.ruptures.regions for _, _, src in sources], parts,
+                               config.hazard.fractile_combinations_max, config.portfolio.seed)
+    return parts, combos
 
 
 def site_blocks(n_sites, size):
