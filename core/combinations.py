@@ -251,7 +251,10 @@ def end_branch_curves(parts, layout):
         layout order, each region's term by
         :func:`quakefolio.core.hazard.weighted_sum` per source branch: the sums of
         :func:`quakefolio.core.hazard.compute_site_hazard` (Cornell 1968, linearity).
+        With active-crustal models only, ``parts`` itself (the same values, no copy).
     """
+    if len(layout.regions) == 1:
+        return parts
     offsets = layout.offsets
     n_gmm = len(layout.weights[0])
     out = np.zeros(parts.shape[:1] + (n_gmm,) + parts.shape[2:])
