@@ -556,7 +556,7 @@ def uniform_hazard_targets(levels, curves, return_periods_yr):
 
 def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, levels_g, *, truncation_sigma=None,
                         max_distance_km=200.0, region="global", site_block=64, ref=None, region_branches=None,
-                        site_fields=None, memo=None, memo_key=None):
+                        site_fields=None, memo=None, memo_key=None, by_region=False):
     r"""Hazard curves [1/yr] from a rupture set and ground-motion models.
 
     Parameters
@@ -592,12 +592,15 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
         ims)``, for :func:`compute_disaggregation` and
         :func:`quakefolio.core.cms.compute_spectrum_sums` on the same sites with the same
         ``memo_key``; ``memo_key`` must identify the sites, ruptures and models.
+    by_region : bool
+        Return each region's curves per model instead (:mod:`quakefolio.core.combinations`).
 
     Returns
     -------
     ndarray, shape (n_gmms, n_ims, n_sites, n_levels) [1/yr]
         Branch ``g``: the active-crustal ruptures' curve with model ``g`` plus, for every
-        other region, the weighted mean of its branches' curves.
+        other region, the weighted mean of its branches' curves.  With ``by_region``: a
+        dict of region name to its curves, shape (n_models, n_ims, n_sites, n_levels).
 
     Notes
     -----
@@ -607,23 +610,23 @@ def compute_site_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, leve
     region) has the hazard :math:`\sum_R \lambda_R^{(g_R)}`, so its logic-tree mean over
     all combinations (weights the product of the regions' weights) is
     :math:`\sum_R \sum_g w_{R,g} \lambda_R^{(g)}`, exactly the weighted mean over the
-    returned branches with the active-crustal weights.  Fractiles over the returned
-    branches are those over the active-crustal models with the other regions at their
-    mean.
+    returned branches with the active-crustal weights.  Fractiles are taken over every
+    combination instead (:func:`quakefolio.core.combinations.combination_fractiles`).
     """
     lnx = np.log(np.asarray(levels_g, dtype=float))
     if np.any(np.diff(lnx) <= 0):
         raise ValueError("levels_g must be strictly increasing")
-    out = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx)))
+    out, by_part = np.zeros((len(gmms), len(ims), len(site_lon), len(lnx))), {}
     for k, (part, branches) in enumerate(region_parts(ruptures, region_branches)):
         models = gmms if branches is None else [m for _, m in branches]
         curves = _part_hazard(site_lon, site_lat, site_vs30, part, models, ims, lnx, truncation_sigma,
                               max_distance_km, region, site_block, ref, site_fields, memo, (memo_key, k))
+        by_part["active_crustal" if branches is None else part.regions[0]] = curves
         if branches is None:
             out += curves
         else:
             out += weighted_sum(curves, [w for w, _ in branches])[None]
-    return out
+    return by_part if by_region else out
 
 
 def _part_hazard(site_lon, site_lat, site_vs30, ruptures, gmms, ims, lnx, truncation_sigma, max_distance_km, region,

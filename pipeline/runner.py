@@ -35,7 +35,7 @@ from quakefolio.pipeline.stages import hazard as hs
 from quakefolio.pipeline.stages.damage import combine_damage, plan_blocks
 from quakefolio.pipeline.stages.inputs import load_inputs, stage_cache, with_hazard
 from quakefolio.pipeline.stages.products import CacheCounts, EventProduct, RunInputs, WhatIfProduct
-from quakefolio.pipeline.stages.regions import site_input_record
+from quakefolio.pipeline.stages.regions import combination_record, site_input_record
 from quakefolio.pipeline.stages.sites import hazard_sites_table
 
 #: The manifest's ``orchestration`` of a run that needed no flow: every stage's result was in the cache.
@@ -466,6 +466,7 @@ def _manifest(inputs, run_id, stages_written, events, counts, timings, writer, f
             "ims": model.ims,
             "region_gmm_branches": {r: [{"id": i, "weight": w} for i, w, _ in rows]
                                     for r, rows in model.region_branches.items()},
+            "fractile_combinations": combination_record(model, cfg),
         }
         manifest["site_inputs"] = site_input_record(model)
     return relative_paths(manifest, Path(cfg.path).parent)  # no local folder of this machine in the outputs

@@ -43,6 +43,9 @@ naming the quantity, and (for per-event quantities) a block index:
 * the ground-motion model of each event of a tectonic region other than active crustal
   (drawn by the region's branch weights, one uniform number per event):
   ``SeedSequence([seed, STREAM_REGION_GMM_CHOICE])`` (:func:`stream_rng`).
+* the logic-tree combinations of a seeded sample for the hazard fractiles (only above
+  ``[hazard] fractile_combinations_max``): ``SeedSequence([seed, STREAM_FRACTILE_SAMPLE])``
+  (:func:`stream_rng`, :func:`quakefolio.core.combinations.tree_combinations`).
 
 Every stream tag of the project is defined here and nowhere else; the tags are part of
 the reproducibility contract (changing one changes the draws of its quantity).
@@ -101,6 +104,7 @@ __all__ = [
     "STREAM_CONDITIONED",
     "conditioned_rng",
     "STREAM_REGION_GMM_CHOICE",
+    "STREAM_FRACTILE_SAMPLE",
     "MAX_CLASS_ENTRIES",
     "EventSet",
     "stochastic_event_set",
@@ -146,6 +150,8 @@ STREAM_CONDITIONED = 19
 #: Stream tag of the ground-motion model of events of tectonic regions other than active crustal
 #: (one uniform number per event of the set, drawn by the region's branch weights).
 STREAM_REGION_GMM_CHOICE = 18
+#: Stream tag of the sampled logic-tree combinations of the hazard fractiles (one generator per run).
+STREAM_FRACTILE_SAMPLE = 20
 #: Class entries per event block in the packed index of :func:`class_block_index`.
 MAX_CLASS_ENTRIES = 4096
 
@@ -153,7 +159,7 @@ MAX_CLASS_ENTRIES = 4096
 _STREAMS = (STREAM_EVENT_SET, STREAM_GROUND_MOTION, STREAM_DAMAGE, STREAM_LOSS_RATIO)
 #: Streams drawn once per event set (:func:`stream_rng`).
 _WHOLE_SET_STREAMS = (STREAM_EVENT_SET, STREAM_GMM_CHOICE, STREAM_BRANCH_YEARS, STREAM_OCCUPANCY,
-                      STREAM_REGION_GMM_CHOICE)
+                      STREAM_REGION_GMM_CHOICE, STREAM_FRACTILE_SAMPLE)
 
 
 def check_seed(seed) -> int:
@@ -340,7 +346,7 @@ def stream_rng(seed: int, stream: int) -> np.random.Generator:
         The run's non-negative seed.
     stream : int
         :data:`STREAM_EVENT_SET`, :data:`STREAM_GMM_CHOICE`, :data:`STREAM_BRANCH_YEARS`,
-        :data:`STREAM_OCCUPANCY` or :data:`STREAM_REGION_GMM_CHOICE`.
+        :data:`STREAM_OCCUPANCY`, :data:`STREAM_REGION_GMM_CHOICE` or :data:`STREAM_FRACTILE_SAMPLE`.
 
     Returns
     -------

@@ -44,6 +44,7 @@ SETTING_SCOPES = {
     ("hazard", "fractiles"): "other_tables",
     ("hazard", "disaggregation"): "other_tables",
     ("hazard", "propagate_branches"): "other_tables",
+    ("hazard", "fractile_combinations_max"): "other_tables",
     ("exposure", "file"): "none",
     ("fragility", "library"): "none",
     ("fragility", "tail_share_warning"): "none",

@@ -176,6 +176,9 @@ SCHEMA = {
                                      "(checked by pipeline.stages.spectrum); [] (default): none"),
         "cms_return_periods_yr": _key(_FLOATS, [475.0, 2475.0], *_RETURN_PERIODS),
         "propagate_branches": _key(_BOOL, False, help="also give damage and EAL fractiles over branches"),
+        "fractile_combinations_max": _key(_INT, 1000, Interval(2, 1_000_000, message="expected an integer from 2 to "
+                                          "1,000,000"), help="logic-tree combinations enumerated for the fractiles; "
+                                          "above: a seeded sample of this many"),
     },
     "portfolio": {
         "event_based": _key(_BOOL, None, help="event-based portfolio loss (default: on in compute mode)"),
@@ -315,6 +318,7 @@ class HazardSettings(_Section):
     cms_conditioning_ims: tuple  #: IMs the conditional mean spectrum is conditioned on (empty: none)
     cms_return_periods_yr: tuple  #: return periods of the conditional mean spectrum [yr]
     propagate_branches: bool  #: also give damage and EAL fractiles over branches
+    fractile_combinations_max: int  #: combinations enumerated for the fractiles; above: a sample of this many
 
 
 @dataclass(frozen=True)

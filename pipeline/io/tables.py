@@ -11,7 +11,9 @@ TABLES = {
                "max_asset_distance_km": "km"},
     ),
     "site_hazard": dict(
-        description="Tabulated site hazard curves used by the run (long form).",
+        description="Site hazard curves used by the run (long form): tabulated, or computed (the mean and the "
+                    "weighted fractiles over every logic-tree combination of a source-model branch and one "
+                    "ground-motion model per tectonic region, or their seeded sample).",
         units={"im_level": "g", "annual_rate": "1/yr"},
     ),
     "hazard_at_return_periods": dict(
@@ -72,12 +74,13 @@ TABLES = {
                "horizon_yr": "yr", "max_tail_share": "-"},
     ),
     "asset_damage_fractiles": dict(
-        description="Logic-tree fractiles of per-asset damage-state rates (every hazard branch propagated "
-                    "through the fragility integral; weighted inverse-CDF fractiles).",
+        description="Logic-tree fractiles of per-asset damage-state rates (the combinations of the hazard "
+                    "fractiles propagated through the fragility integral; weighted inverse-CDF fractiles).",
         units={"annual_rate_exceed": "1/yr", "prob_exceed_in_horizon": "-"},
     ),
     "asset_loss_fractiles": dict(
-        description="Logic-tree fractiles of per-asset expected annual loss.",
+        description="Logic-tree fractiles of per-asset expected annual loss (over the combinations of the "
+                    "hazard fractiles).",
         units={"eal": "{currency}/yr", "eal_ratio": "1/yr"},
     ),
     "asset_loss_curve": dict(

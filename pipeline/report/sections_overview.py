@@ -208,23 +208,42 @@ def _logic_tree(run, tree):
     rows += [[g["id"], region, _cell(f"{g['weight']:.3g}", g["weight"])]
              for region, branches in tree.get("region_gmm_branches", {}).items() for g in branches]
     out.append(_table(["ground-motion branch", "tectonic region", "weight#"], rows))
+    combos = tree.get("fractile_combinations")
     if tree.get("region_gmm_branches"):
-        out.append(_p("Each tectonic region's sources take that region's models; the end branches are those of the "
-                      "active-crustal models, each with the other regions at their weighted mean (the mean curve is "
-                      "the mean over every combination of one model per region)."))
-    trunc = hz.get("truncation_sigma")
-    n_src, n_gmm = len(tree.get("source_branches", [])), len(tree.get("gmm_branches", []))
-    facts = [("IMs computed", ", ".join(tree.get("ims", []))),
-             ("branches", f"{n_src} source model x {n_gmm} ground-motion = {n_src * n_gmm} end branches"),
-             ("ground-motion truncation", f"{trunc:g} sigma" if _finite(trunc) else "none"),
-             ("integration distance", f"{hz.get('integration_distance_km', float('nan')):g} km"),
-             ("fractiles", ", ".join(f"{f:g}" for f in hz.get("fractiles") or []) or "none"),
-             ("curves used for damage", "weighted mean over the end branches"
-              + ("; every end branch is also carried through the damage and loss (fractile tables)"
-                 if hz.get("propagate_branches") else ""))]
+        out.append(_p("Each tectonic region's sources take that region's models. The end branches are the "
+                      "combinations of one source-model branch and one model per tectonic region with ruptures in "
+                      "that branch, weighted by the product of their branch weights; a combination's hazard is the "
+                      "sum of its regions' hazard. The mean curve is the mean over every combination"
+                      + ("; the fractiles are taken over " + _combination_set(combos) if combos else "") + "."))
+    facts = _tree_facts(hz, tree, combos)
     facts += _site_input_facts(run.manifest.get("site_inputs"))
     out.append(_facts(facts))
     return out
+
+
+def _tree_facts(hz, tree, combos):
+    """Facts of the hazard logic tree: IMs, end branches, truncation, distance, fractiles, curves for damage."""
+    trunc = hz.get("truncation_sigma")
+    n_src, n_gmm = len(tree.get("source_branches", [])), len(tree.get("gmm_branches", []))
+    ends = (f"{combos['combinations']:,} end branches (source model x one ground-motion model per tectonic region)"
+            if combos else f"{n_src} source model x {n_gmm} ground-motion = {n_src * n_gmm} end branches")
+    return [("IMs computed", ", ".join(tree.get("ims", []))),
+            ("branches", ends),
+            ("ground-motion truncation", f"{trunc:g} sigma" if _finite(trunc) else "none"),
+            ("integration distance", f"{hz.get('integration_distance_km', float('nan')):g} km"),
+            ("fractiles", (", ".join(f"{f:g}" for f in hz.get("fractiles") or []) or "none")
+             + (f" over {_combination_set(combos)}" if combos and hz.get("fractiles") else "")),
+            ("curves used for damage", "weighted mean over the end branches"
+             + ("; the end branches of the fractiles are also carried through the damage and loss (fractile tables)"
+                if hz.get("propagate_branches") else ""))]
+
+
+def _combination_set(record):
+    """The end branches the fractiles were taken over, in words (the manifest's ``fractile_combinations``)."""
+    if record.get("sampled"):
+        return (f"a sample of {record['used']:,} of the {record['combinations']:,} combinations, drawn by weight "
+                f"(seed {record.get('seed')}; more than fractile_combinations_max = {record.get('max'):,})")
+    return f"all {record['combinations']:,} combinations"
 
 
 def _site_input_facts(record):

@@ -8,10 +8,12 @@ a chunk of event blocks), and finds its run's products with :func:`resolve`:
   registered by the driver (:func:`register`) and are used as they are;
 * in any other process (a Dask worker) the inputs are read again from the config path,
   once per process and run; a digest that differs from the driver's refuses the task
-  instead of computing on other inputs; in compute mode the branch curves come from the
-  ``.npy`` file the driver wrote (:func:`publish_hazard`) and pass through the same
-  :func:`quakefolio.pipeline.stages.hazard.with_branch_curves`, so a block gives the same
-  numbers in every process.  Workers must see the input files and the output folder
+  instead of computing on other inputs; in compute mode the part curves (every source
+  branch, region and model) come from the ``.npy`` file the driver wrote
+  (:func:`publish_hazard`) and pass through the same
+  :func:`quakefolio.pipeline.stages.hazard.with_part_curves`, so a block gives the same
+  numbers in every process (the hazard fractiles, which only the driver writes, are not
+  computed again there).  Workers must see the input files and the output folder
   under the same paths as the driver (a shared file system).
 
 The same functions therefore run unchanged in this thread, in a thread pool or on Dask:
@@ -140,7 +142,7 @@ def _read_inputs(ref):
             "files under the same paths")
     if ref.hazard_file is not None:
         curves = np.load(ref.hazard_file, allow_pickle=False)
-        model, hazard = hs.with_branch_curves(inputs.hazard_model, inputs.hazard, curves)
+        model, hazard = hs.with_part_curves(inputs.hazard_model, inputs.hazard, curves, fractiles=False)
         inputs = with_hazard(inputs, model, hazard)
     return inputs
 
@@ -199,7 +201,7 @@ def work_folder(inputs):
 
 
 def publish_hazard(ref, inputs, folder):
-    """Write the branch curves where other processes can read them; register ``inputs`` under the new reference.
+    """Write the part curves where other processes can read them; register ``inputs`` under the new reference.
 
     Parameters
     ----------
@@ -214,10 +216,10 @@ def publish_hazard(ref, inputs, folder):
     RunRef
         ``ref`` with ``hazard_file`` and ``hazard_sha256``.
     """
-    curves = np.ascontiguousarray(inputs.hazard_model.branch_curves)
+    curves = np.ascontiguousarray(inputs.hazard_model.part_curves)
     sha = hashlib.sha256(curves.tobytes()).hexdigest()
     folder.mkdir(parents=True, exist_ok=True)
-    path = folder / f"branch_curves-{sha[:16]}.npy"
+    path = folder / f"part_curves-{sha[:16]}.npy"
     buffer = io.BytesIO()
     np.save(buffer, curves, allow_pickle=False)
     atomic_write_bytes(path, buffer.getvalue())
@@ -237,7 +239,8 @@ def hazard_task(ref, block):
     Returns
     -------
     SiteBlockResult
-        Branch curves ``(n_src, n_gmm, n_im, n_block_sites, n_levels)`` [1/yr].
+        Part curves ``(n_src, n_columns, n_im, n_block_sites, n_levels)`` [1/yr]
+        (:func:`quakefolio.pipeline.stages.hazard.hazard_block`).
     """
     inputs = resolve(ref)
     return hs.hazard_block(inputs.hazard_model, inputs.hazard, block, stage_cache(inputs))

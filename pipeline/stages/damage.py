@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
+from quakefolio.core.combinations import combination_curves
 from quakefolio.core.curves import prob_in_years, return_period
 from quakefolio.core.hazard import weighted_fractiles
 from quakefolio.core.loss import expected_annual_loss, expected_annual_net_loss, loss_exceedance_rates
@@ -22,7 +23,7 @@ from quakefolio.pipeline.io.arrow_columns import index_of, take_text, text_array
 from quakefolio.pipeline.io.cache import PairStore, digest, row_digests
 from quakefolio.pipeline.io.chunked import ChunkedTable
 from quakefolio.pipeline.io.ingest import curves_for_im
-from quakefolio.pipeline.stages.hazard import branch_weights, statistic_name
+from quakefolio.pipeline.stages.hazard import statistic_name
 from quakefolio.pipeline.stages.inputs import stage_cache
 from quakefolio.pipeline.stages.people import consequence_tables
 from quakefolio.pipeline.stages.products import (
@@ -91,7 +92,10 @@ def compute_block(inputs, block):
     (:meth:`quakefolio.fragility.DamageStateSet.annual_rates`), EAL by
     :func:`quakefolio.core.loss.expected_annual_loss`, loss curve by
     :func:`quakefolio.core.loss.loss_exceedance_rates`; with propagated logic-tree
-    branches, the same kernels per branch and weighted fractiles over branches.
+    branches, the same kernels per end branch of the hazard fractiles (every combination of
+    one source branch and one model per region, or their seeded sample:
+    ``model.combinations``, :func:`quakefolio.core.combinations.combination_curves`) and
+    weighted fractiles over them.
 
     Parameters
     ----------
@@ -117,11 +121,11 @@ def compute_block(inputs, block):
     model = inputs.hazard_model
     if not (model is not None and cfg.hazard.propagate_branches):
         return BlockResult(block, ds, below, above, eal_ratio, curve)
-    # every logic-tree branch through the same kernels, then weighted fractiles over branches
+    # every end branch of the hazard fractiles through the same kernels, then weighted fractiles over them
     i = model.ims.index(dss.im)
-    branch = model.branch_curves[:, :, i][:, :, block.sites].reshape((-1, len(block.sites), x.shape[-1]))
+    branch = combination_curves(model.part_curves[:, :, i][:, :, block.sites], model.combinations)
     ds_b, mdr_b, _ = dss.loss_states(x, branch, tail=cfg.fragility.tail, envelope=envelope)
-    w = branch_weights(model)
+    w = model.combinations.weight
     eal_fractiles = weighted_fractiles(expected_annual_loss(ds_b, mdr_b), w, model.fractiles)
     if not dss.has_damage_states:
         ds_b = np.zeros(ds_b.shape[:-1] + (0,))

@@ -13,11 +13,14 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
+from quakefolio.core.combinations import (
+    combination_fractiles, end_branch_curves, part_columns, part_layout, tree_combinations,
+)
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.gmm import get_gmm
 from quakefolio.core.hazard import (
     DISAGG_MOMENTS, DisaggBins, compute_disaggregation, compute_site_hazard, disaggregation_summary,
-    weighted_fractiles, weighted_mean,
+    weighted_mean,
 )
 from quakefolio.core.ims import im_period
 from quakefolio.core.sites import exact_sites, grid_reference, snap_sites
@@ -29,7 +32,7 @@ from quakefolio.pipeline.stages.regions import check_source_regions, region_mode
 from quakefolio.pipeline.io.source_model import count_source_model, load_source_model
 from quakefolio.pipeline.stages.sizes import check_hazard_work, rupture_limit
 
-__all__ = ["HazardModel", "GroundMotionMemo", "GROUND_MOTION_MEMO", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "with_branch_curves",
+__all__ = ["HazardModel", "GroundMotionMemo", "GROUND_MOTION_MEMO", "prepare_compute", "site_blocks", "hazard_block", "combine_hazard", "with_part_curves",
            "disagg_block", "combine_disaggregation", "statistic_name", "branch_weights",
            "site_hazard_table", "hazard_at_return_periods_table"]
 
@@ -77,9 +80,21 @@ class HazardModel:
     ref : tuple (lon, lat) [deg]
         Reference point of the local projection.
     branch_curves : ndarray (n_src, n_gmm, n_im, n_sites, n_levels) [1/yr] or None
-        Curves of every branch, once computed.
+        Curves of every (source branch, active-crustal model) end branch with the other
+        regions at their weighted mean, once computed
+        (:func:`quakefolio.core.combinations.end_branch_curves`); the mean and the event
+        stage use them.
+    part_curves : ndarray (n_src, n_columns, n_im, n_sites, n_levels) [1/yr] or None
+        Curves of every (source branch, region, model) on the part axis of ``parts``,
+        once computed.
+    parts : quakefolio.core.combinations.PartLayout
+        The part axis: the active-crustal models, then each other region's models.
+    combinations : quakefolio.core.combinations.Combinations
+        The end branches of the fractiles and of ``propagate_branches``: every combination of
+        one source branch and one model per region, or a seeded sample above
+        ``[hazard] fractile_combinations_max``.
     statistics : Mapping name -> ndarray (n_im, n_sites, n_levels) [1/yr]
-        ``mean`` and fractiles (``p16`` ...), once computed.
+        ``mean`` and fractiles (``p16`` ...) over ``combinations``, once computed.
     disagg : ndarray (n_im, n_sites, n_rp, n_mag, n_dist, n_eps) [1/yr] or None
         Disaggregation, once computed.
     disagg_moments : ndarray (n_im, n_sites, n_rp, 5) or None
@@ -125,6 +140,9 @@ class HazardModel:
     region_branches: Mapping = field(default_factory=lambda: frozen_mapping({}))
     site_fields: Mapping = field(default_factory=lambda: frozen_mapping({}))
     reuse_ground_motion: bool = False
+    part_curves: np.ndarray | None = None
+    parts: object = None
+    combinations: object = None
 
 
 class GroundMotionMemo:
@@ -317,12 +335,22 @@ def prepare_compute(config, exposure, library, lines=None, budget=None):
         "hazard-model", [(bid, w, src.sha256) for bid, w, src in sources], [(g, w) for g, w, _ in gmms], ims,
         levels, hz.truncation_sigma, hz.integration_distance_km, hz.region, list(ref),
         *([sorted((r, [(g, w) for g, w, _ in rows]) for r, rows in others.items())] if others else []))
+    parts, combos = _end_branches(config, sources, gmms, others)
     model = HazardModel(tuple(sources), tuple(gmms), ims, levels, hz.truncation_sigma, hz.integration_distance_km,
                         hz.region, list(hz.fractiles), hz.disaggregation, vs30, ref, digest=model_digest,
                         region_branches=frozen_mapping(others), site_fields=frozen_mapping(fields),
-                        reuse_ground_motion=bool(hz.disaggregation or hz.cms_conditioning_ims))
+                        reuse_ground_motion=bool(hz.disaggregation or hz.cms_conditioning_ims), parts=parts,
+                        combinations=combos)
     hazard = HazardCurves(site_id=ids, lon=lon, lat=lat, curves={}, source="computed", interpolated=frozenset())
     return model, hazard, site_index, dist
+
+
+def _end_branches(config, sources, gmms, others):
+    """The part axis and the combinations of the fractiles (:mod:`quakefolio.core.combinations`)."""
+    parts = part_layout([w for _, w, _ in gmms], {r: [w for _, w, _ in rows] for r, rows in others.items()})
+    combos = tree_combinations([w for _, w, _ in sources], [src.ruptures.regions for _, _, src in sources], parts,
+                               config.hazard.fractile_combinations_max, config.portfolio.seed)
+    return parts, combos
 
 
 def site_blocks(n_sites, size):
@@ -380,7 +408,7 @@ def _cached_rows(cache, stage, keys, shape, name, *also):
 
 
 def hazard_block(model, hazard, block, cache=None):
-    """Curves of every (source branch, GMM branch) for one block of sites.
+    """Curves of every (source branch, region, model) for one block of sites.
 
     Sites whose content key is in the cache are read from it; the others are computed
     with :func:`quakefolio.core.hazard.compute_site_hazard` (per-site results do not
@@ -398,26 +426,30 @@ def hazard_block(model, hazard, block, cache=None):
     Returns
     -------
     SiteBlockResult
-        ``values`` (n_src, n_gmm, n_im, n_block_sites, n_levels) [1/yr].
+        ``values`` (n_src, n_columns, n_im, n_block_sites, n_levels) [1/yr]: the part
+        curves (:func:`quakefolio.core.combinations.part_columns` of
+        :func:`~quakefolio.core.hazard.compute_site_hazard` with ``by_region``).
     """
     lo, hi = block
     keys = _site_keys(model, hazard, lo, hi)
-    per_site = (len(model.source_branches), len(model.gmm_branches), len(model.ims), len(model.levels_g))
-    rows, missing = _cached_rows(cache, "hazard", keys, (hi - lo,) + per_site, "curves")
+    per_site = (len(model.source_branches), model.parts.n_columns, len(model.ims), len(model.levels_g))
+    rows, missing = _cached_rows(cache, "hazard", keys, (hi - lo,) + per_site, "parts")
     out = np.ascontiguousarray(np.moveaxis(rows, 0, 3))
     if missing:
         idx = lo + np.array(missing)
         computed = [keys[j] for j in missing]
         for s_i, (_, _, src) in enumerate(model.source_branches):
-            out[s_i][:, :, missing] = compute_site_hazard(
+            by_region = compute_site_hazard(
                 hazard.lon[idx], hazard.lat[idx], model.site_vs30[idx], src.ruptures,
                 [g for _, _, g in model.gmm_branches], model.ims, model.levels_g,
                 truncation_sigma=model.truncation_sigma, max_distance_km=model.max_distance_km,
                 region=model.region, site_block=len(idx), ref=model.ref, memo=_memo(model),
-                memo_key=memo_key(computed, s_i), **_region_kwargs(model, idx))
+                memo_key=memo_key(computed, s_i), by_region=True, **_region_kwargs(model, idx))
+            out[s_i][:, :, missing] = part_columns(by_region, model.parts, (len(model.ims), len(idx),
+                                                                            len(model.levels_g)))
         if cache is not None:
             for j in missing:
-                cache.put("hazard", keys[j], {"curves": out[:, :, :, j]})
+                cache.put("hazard", keys[j], {"parts": out[:, :, :, j]})
     return SiteBlockResult(block, out, len(keys) - len(missing), len(missing))
 
 
@@ -452,35 +484,44 @@ def _assemble(parts, n_sites, axis):
     return out
 
 
-def with_branch_curves(model, hazard, curves):
-    """The hazard model and curves once the branch curves are known (new objects).
+def with_part_curves(model, hazard, parts, fractiles=True):
+    """The hazard model and curves once the part curves are known (new objects).
 
-    Computes the weighted mean over branches and, with more than one branch, the
-    weighted fractiles (:func:`quakefolio.core.hazard.weighted_mean`,
-    :func:`~quakefolio.core.hazard.weighted_fractiles`); the mean feeds risk.
+    The end-branch curves (:func:`quakefolio.core.combinations.end_branch_curves`: each
+    source branch and active-crustal model with the other regions at their weighted
+    mean) give the weighted mean (:func:`quakefolio.core.hazard.weighted_mean`), which
+    feeds risk and equals the mean over every combination (linearity of the hazard sum);
+    with more than one combination in ``model.combinations`` the fractiles are the
+    weighted fractiles over the combinations
+    (:func:`quakefolio.core.combinations.combination_fractiles`).
 
     Parameters
     ----------
     model : HazardModel
     hazard : HazardCurves
         The hazard sites.
-    curves : ndarray (n_src, n_gmm, n_im, n_sites, n_levels) [1/yr]
+    parts : ndarray (n_src, n_columns, n_im, n_sites, n_levels) [1/yr]
+        Part curves (:func:`hazard_block`).
+    fractiles : bool
+        Compute the fractiles (a process that only runs block tasks needs the mean alone).
 
     Returns
     -------
     (HazardModel, HazardCurves)
-        ``statistics`` filled; ``curves[im]`` = (levels (n_sites, n_levels) [g], mean rates [1/yr]).
+        ``branch_curves``, ``part_curves`` and ``statistics`` filled; ``curves[im]`` =
+        (levels (n_sites, n_levels) [g], mean rates [1/yr]).
     """
     n_sites = len(hazard.site_id)
+    curves = end_branch_curves(parts, model.parts)
     flat = curves.reshape((-1,) + curves.shape[2:])
-    w = branch_weights(model)
-    statistics = {"mean": weighted_mean(flat, w)}
-    if len(w) > 1:
-        for q, arr in zip(model.fractiles, weighted_fractiles(flat, w, model.fractiles)):
+    statistics = {"mean": weighted_mean(flat, branch_weights(model))}
+    combos = model.combinations
+    if fractiles and len(combos) > 1:
+        for q, arr in zip(model.fractiles, combination_fractiles(parts, combos, model.fractiles)):
             statistics[statistic_name(q)] = arr
     levels = np.broadcast_to(model.levels_g, (n_sites, len(model.levels_g)))
     mean_curves = {im: (np.array(levels), statistics["mean"][i]) for i, im in enumerate(model.ims)}
-    return (replace(model, branch_curves=curves, statistics=frozen_mapping(statistics)),
+    return (replace(model, branch_curves=curves, part_curves=parts, statistics=frozen_mapping(statistics)),
             replace(hazard, curves=mean_curves, interpolated=frozenset()))
 
 
@@ -497,9 +538,9 @@ def combine_hazard(model, hazard, parts):
     Returns
     -------
     (HazardModel, HazardCurves)
-        As :func:`with_branch_curves`.
+        As :func:`with_part_curves`.
     """
-    return with_branch_curves(model, hazard, _assemble(parts, len(hazard.site_id), axis=3))
+    return with_part_curves(model, hazard, _assemble(parts, len(hazard.site_id), axis=3))
 
 
 def disagg_block(model, hazard, return_periods, block, cache=None):

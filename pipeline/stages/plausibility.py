@@ -15,14 +15,14 @@ import numpy as np
 from quakefolio.core.errors import InputWarning, locate_toml_line
 from quakefolio.core.plausibility import SITE_DISTANCE_WARN_KM
 
-__all__ = ["INGEST_ONLY_KEYS", "COMPUTE_ONLY_KEYS", "input_warnings", "model_range"]
+__all__ = ["INGEST_ONLY_KEYS", "COMPUTE_ONLY_KEYS", "input_warnings", "model_range", "combination_warning"]
 
 #: ``[hazard]`` keys read in one mode only (the others apply to both).
 INGEST_ONLY_KEYS = ("curves_file", "im_unit", "statistic", "max_site_distance_km", "period_interpolation")
 COMPUTE_ONLY_KEYS = ("source_models", "gmm_branches", "truncation_sigma", "integration_distance_km", "ims",
                      "im_levels_g", "fractiles", "site_spacing_km", "default_vs30_mps", "region", "disaggregation",
                      "cms_conditioning_ims", "cms_return_periods_yr", "propagate_branches", "region_gmm_branches",
-                     "site_backarc")
+                     "site_backarc", "fractile_combinations_max")
 #: Exposure columns that are ground-motion inputs of the compute mode (stages.regions.SITE_INPUT_COLUMNS).
 _SITE_INPUT_COLUMNS = ("z1p0_km", "z2p5_km", "backarc")
 
@@ -258,6 +258,34 @@ def magnitude_warnings(model):
     return out
 
 
+def combination_warning(config, model):
+    """A warning when the hazard fractiles are taken on a sample of the logic tree's combinations; else None.
+
+    Parameters
+    ----------
+    config : quakefolio.pipeline.io.config.Config
+    model : quakefolio.pipeline.stages.hazard.HazardModel
+        With ``combinations`` (:func:`quakefolio.core.combinations.tree_combinations`).
+
+    Returns
+    -------
+    InputWarning or None
+        At ``[hazard] fractile_combinations_max`` when the config gives it, else at
+        ``[hazard] gmm_branches``.
+    """
+    combos = model.combinations
+    if combos is None or not combos.sampled or not (model.fractiles or config.hazard.propagate_branches):
+        return None
+    key = "fractile_combinations_max" if "fractile_combinations_max" in config.raw.get("hazard", {}) else "gmm_branches"
+    text = Path(config.path).read_text(encoding="utf-8-sig")
+    carried = " (and the propagated branches)" if config.hazard.propagate_branches else ""
+    return InputWarning(config.path, f"the logic tree has {combos.total:,} combinations of a source-model branch and "
+                                     f"one ground-motion model per tectonic region, more than fractile_combinations_max "
+                                     f"= {config.hazard.fractile_combinations_max:,}: the fractiles{carried} are taken "
+                                     f"on a sample of {len(combos):,} combinations drawn by weight ([portfolio] seed)",
+                        row=locate_toml_line(text, ("hazard",), key), column=f"hazard.{key}")
+
+
 def input_warnings(config, library, exposure, hazard, site_index, distance_km, model):
     """Every located warning about the run's inputs, in a fixed order.
 
@@ -290,4 +318,5 @@ def input_warnings(config, library, exposure, hazard, site_index, distance_km, m
                 seen.add(src.path)
                 found.extend(src.warnings)
         found.extend(magnitude_warnings(model))
+        found.append(combination_warning(config, model))
     return [w for w in found if w is not None]

@@ -24,7 +24,7 @@ from quakefolio.core.gmm import get_gmm
 from quakefolio.pipeline.io.gmm_regions import missing_regions
 
 __all__ = ["region_model_branches", "check_source_regions", "site_inputs", "event_region_models", "site_input_record",
-           "SITE_INPUT_COLUMNS"]
+           "combination_record", "SITE_INPUT_COLUMNS"]
 
 #: Optional exposure columns that become per-site ground-motion inputs.
 SITE_INPUT_COLUMNS = ("z1p0_km", "z2p5_km", "backarc")
@@ -209,3 +209,33 @@ def site_input_record(model):
     return {"vs30_rule": "each ground-motion model takes Vs30 clamped to its range of applicability",
             "vs30_clamped_sites": clamped, "basin_depth_sites": given, "basin_depth_rules": rules,
             "hazard_sites": int(vs30.size), "backarc_sites": 0 if backarc is None else int(np.sum(backarc))}
+
+
+def combination_record(model, config):
+    """Which end branches the hazard fractiles (and ``propagate_branches``) were taken over, for the manifest.
+
+    Parameters
+    ----------
+    model : quakefolio.pipeline.stages.hazard.HazardModel
+        With ``combinations`` (:func:`quakefolio.core.combinations.tree_combinations`).
+    config : quakefolio.pipeline.io.config.Config
+
+    Returns
+    -------
+    dict
+        ``rule`` (in words), ``combinations`` (of the whole tree), ``used`` (those the
+        fractiles were taken over), ``sampled``, ``max`` (``[hazard]
+        fractile_combinations_max``), ``seed`` (of the sample, or None),
+        ``propagate_branches`` (whether the damage and loss fractiles were taken over the
+        same set) and ``event_stage`` (what the event stage's branch combinations are).
+    """
+    combos = model.combinations
+    return {"rule": "every combination of one source-model branch and one ground-motion model per tectonic region "
+                    "with ruptures in that branch, weight the product of the branch weights; above max, a seeded "
+                    "sample drawn by weight, weighted equally",
+            "combinations": int(combos.total), "used": len(combos), "sampled": bool(combos.sampled),
+            "max": int(config.hazard.fractile_combinations_max),
+            "seed": int(config.portfolio.seed) if combos.sampled else None,
+            "propagate_branches": bool(config.hazard.propagate_branches),
+            "event_stage": "source-model branch x active-crustal model per simulated year; other regions' models "
+                           "drawn per event by weight"}

@@ -464,7 +464,8 @@ def _curves_term(config, d):
     if hz.mode != "compute":
         return Term(0.0, "hazard.curves_file", "", "")
     n_branch = len(hz.source_models) * len(hz.gmm_branches)
-    per_site = 8 * d.ims * d.levels * (2 * n_branch + 2 + len(hz.fractiles))
+    n_part = len(hz.source_models) * (len(hz.gmm_branches) + sum(len(r) for r in hz.region_gmm_branches.values()))
+    per_site = 8 * d.ims * d.levels * (n_branch + 2 * n_part + 2 + len(hz.fractiles))
     if hz.disaggregation:
         per_site += 8 * 2 * d.ims * len(hz.return_periods_yr) * _DISAGG_BINS
     return Term(d.sites * per_site, "hazard.site_spacing_km", f"{d.sites:,} hazard sites",
@@ -519,8 +520,7 @@ def _damage_stage(inputs, d):
                  else SUB_BINS * (len(inputs.library[c].levels) + d.levels) for c in codes)
     ratios = len(cfg.output.loss_curve_ratios)
     model = inputs.hazard_model
-    branches = 1 + (len(model.source_branches) * len(model.gmm_branches)
-                    if model is not None and cfg.hazard.propagate_branches else 0)
+    branches = 1 + (len(model.combinations) if model is not None and cfg.hazard.propagate_branches else 0)
     block = min(cfg.execution.block_size, max(d.pairs, 1))
     per_block = d.tasks * block * (d.levels + ratios) * states * 8 * 4 * branches
     task = Term(per_block, "execution.block_size", f"block_size = {cfg.execution.block_size:,} "
