@@ -42,8 +42,8 @@ def _key_figures(run):
         shown.add("aal")
     ep = run.table("portfolio_ep")
     if ep is not None and len(ep):
-        gu = ep[ep.basis == "ground_up"].sort_values("return_period_yr")
-        if len(gu):
+        gu = ep[(ep.basis == "ground_up") & ep.aep_loss.notna()].sort_values("return_period_yr")
+        if len(gu):  # the largest return period the simulated years reach
             top = gu.iloc[-1]
             keys.append((_money(top.aep_loss, cur), f"PML {top.return_period_yr:,.0f} yr, ground-up aggregate "
                                                     "(loss in one year)"))
