@@ -196,7 +196,19 @@ UHS_DENSE_PERIODS = 8
 
 
 def uhs_style(n_periods):
-    """Plot options of a uniform-hazard spectrum of ``n_periods`` computed periods: markers, a faint line if dense."""
+    """Plot options of a uniform-hazard spectrum: markers at the computed periods, a faint line only if dense.
+
+    Parameters
+    ----------
+    n_periods : int
+        Periods at which the spectrum was computed.
+
+    Returns
+    -------
+    dict
+        Keyword arguments of ``Axes.plot``: markers without a line below :data:`UHS_DENSE_PERIODS`
+        periods, markers joined by a thin line from there on.
+    """
     if n_periods >= UHS_DENSE_PERIODS:
         return {"marker": "o", "markersize": 4, "linewidth": 0.6, "alpha": 0.9}
     return {"marker": "o", "markersize": 5, "linestyle": "none"}
