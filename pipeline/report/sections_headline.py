@@ -23,9 +23,11 @@ def branches_used(run, summary_row=None):
     tree = run.manifest.get("hazard_logic_tree") or {}
     src = [b.get("id", "") for b in tree.get("source_branches", [])]
     gmm = [g.get("id", "") for g in tree.get("gmm_branches", [])]
+    regions = "".join(f"; {region.replace('_', ' ')} sources: {', '.join(g.get('id', '') for g in branches)}"
+                      for region, branches in (tree.get("region_gmm_branches") or {}).items())
     if tree:
         classical = (f"the weighted mean hazard of all {len(src) * len(gmm)} end branches of the logic tree "
-                     f"(source models {', '.join(src)}; ground-motion models {', '.join(gmm)})")
+                     f"(source models {', '.join(src)}; ground-motion models {', '.join(gmm)}{regions})")
     else:
         hz = run.section("hazard")
         classical = f"the tabulated hazard curves of the input file (statistic '{hz.get('statistic', 'mean')}')"
@@ -34,10 +36,10 @@ def branches_used(run, summary_row=None):
     branch = str(summary_row.get("source_branch", "all"))
     if branch == "all":
         event = (f"the whole logic tree by weight: each simulated year draws one combination of source model "
-                 f"({', '.join(src)}) and ground-motion model ({', '.join(gmm)})")
+                 f"({', '.join(src)}) and ground-motion model ({', '.join(gmm)}{regions})")
     else:
         event = (f"source-model branch '{branch}' only (per-branch mode), the ground-motion model "
-                 f"({', '.join(gmm)}) drawn per event by weight")
+                 f"({', '.join(gmm)}{regions}) drawn per event by weight")
     return classical, event
 
 
@@ -78,9 +80,9 @@ def headline_notes(run, figures):
                      f"expected annual loss. It is the mean ground-up loss per year (before deductibles and limits), "
                      f"integrated exactly over {classical}, with each damage state's mean damage ratio."))
     if "eal_net" in figures:
-        items.append((f"Net EAL [{cur}/yr]", f"the same expectation after each building's deductible and limit, "
-                     "taken over the loss distribution (not the terms applied to a mean); quote it for the share "
-                     "the policy terms leave to be paid."))
+        items.append((f"Net EAL [{cur}/yr]", f"the same expectation of the loss after each building's deductible "
+                     "and up to its limit, per event, taken over the loss distribution (not the terms applied to a "
+                     "mean); quote it for what the per-building cover pays, the ground-up EAL for the whole loss."))
     if "aal" in figures and gu is not None:
         items.append((f"Average annual loss (AAL), event-based [{cur}/yr]", f"the mean of {int(gu.n_years):,} "
                      f"simulated years over {event}; {_loss_model_sentence(gu)}. It is the simulation's check on "
