@@ -94,7 +94,7 @@ def test_new_sections_are_listed_and_cached():
 
 
 def test_key_figures_say_what_to_quote(runs, report):
-    notes = re.search(r'<details open id="key-notes">(.*?)</details>', report, flags=re.S)
+    notes = re.search(r'<details open class="explain" id="key-notes">(.*?)</details>', report, flags=re.S)
     assert notes, "the key figures have no explanation"
     text = html.unescape(re.sub(r"<[^>]+>", " ", notes.group(1)))
     assert "quote this as the portfolio's expected annual loss" in text
@@ -384,3 +384,36 @@ def test_report_explains_itself_in_headless_chromium(runs, report, tmp_path):
                     "Breakdowns by exposure column", "The riskiest buildings", "By expected annual loss",
                     "By probability of collapse", "What these figures are and which to quote"):
         assert heading in text
+
+
+def test_breakdown_without_event_stage_shows_eal_by_group(tmp_path):
+    """Tabulated hazard (no event stage): the breakdown holds the classical EAL of every group, summing to the total."""
+    dst = _mini_with_columns(tmp_path / "mini")
+    cfg = dst / "quakefolio.toml"
+    cfg.write_text(cfg.read_text().replace("report = false  # tests of the report turn it on",
+                                           'report = false\nbreakdown_columns = ["district"]'))
+    run = run_pure(cfg)
+    assert not (run / "breakdown_ep.parquet").exists()
+    body = _section(build_report(run), "breakdowns")
+    assert "No event-based stage: no AAL or PML by group." in body and "<h3>By district</h3>" in body
+    loss, assets = read_table(run, "asset_loss"), read_table(run, "run_assets")
+    direct = loss.eal.groupby(assets.district.to_numpy()).sum()
+    shown = {m[0]: float(m[1]) for m in re.findall(r"<tr><td>(\w+)</td>(?:<td[^>]*>[^<]*</td>){2}"
+                                                   r'<td class=n data-v="([^"]+)">', body)}
+    assert set(shown) == set(direct.index)
+    np.testing.assert_allclose([shown[k] for k in direct.index], direct.to_numpy(), rtol=1e-8)
+
+
+def test_breakdown_memory_counts_in_the_size_check():
+    """16 bytes per event and group (ground-up and net) and 32 per year and group of the largest column."""
+    from types import SimpleNamespace
+
+    from quakefolio.pipeline.stages.sizes import _breakdown_term
+
+    exposure = pd.DataFrame({"district": ["a", "b", "c", "a"], "account": ["x", "x", "y", "y"]})
+    inputs = SimpleNamespace(config=SimpleNamespace(output=SimpleNamespace(breakdown_columns=("district", "account"))),
+                             exposure=exposure)
+    term = _breakdown_term(inputs, years=1000, events=5000.0)
+    assert term.bytes == 16.0 * 5000 * (3 + 2) + 32.0 * 1000 * 3 and term.key == "output.breakdown_columns"
+    none = SimpleNamespace(config=SimpleNamespace(output=SimpleNamespace(breakdown_columns=())), exposure=exposure)
+    assert _breakdown_term(none, years=1000, events=5000.0).bytes == 0

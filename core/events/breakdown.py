@@ -14,7 +14,7 @@ import numpy as np
 
 from quakefolio.core.events.programme import GroupSums
 
-__all__ = ["BreakdownSums", "LossHooks"]
+__all__ = ["BreakdownSums", "LossHooks", "group_year_losses"]
 
 
 class _Fan:

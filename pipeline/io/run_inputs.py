@@ -121,7 +121,8 @@ def run_input_frames(exposure, library, classes=None, extra_columns=()):
     """
     if classes is None:
         classes = sorted(set(exposure["building_class"].astype(str).unique()))
-    out = {"run_assets": _asset_frame(exposure, extra_columns), "run_fragility": _fragility_frame(library, list(classes))}
+    out = {"run_assets": _asset_frame(exposure, extra_columns),
+           "run_fragility": _fragility_frame(library, list(classes))}
     vulnerability = _vulnerability_frame(library, list(classes))
     if len(vulnerability):  # only runs that use a vulnerability class have the table
         out["run_vulnerability"] = vulnerability

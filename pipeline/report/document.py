@@ -146,7 +146,8 @@ def build_report(run_dir, *, previous_run=None, tables=None, cache=None):
     """
     run = ReportRun(run_dir, tables)
     builders = {
-        "inputs": (_section_inputs, run), "exposure": (_section_exposure, run), "hazard": (_section_hazard, run), "fragility": (_section_fragility, run),
+        "inputs": (_section_inputs, run), "exposure": (_section_exposure, run), "hazard": (_section_hazard, run),
+        "fragility": (_section_fragility, run),
         "damage": (_section_damage, run), "riskiest": (_section_riskiest, run),
         "portfolio": (_section_portfolio, run), "events": (_section_events, run),
         "breakdowns": (_section_breakdowns, run), "screening": (_section_screening, run),

@@ -86,7 +86,8 @@ def headline_notes(run, figures):
     if "aal" in figures and gu is not None:
         items.append((f"Average annual loss (AAL), event-based [{cur}/yr]", f"the mean of {int(gu.n_years):,} "
                      f"simulated years over {event}; {_loss_model_sentence(gu)}. It is the simulation's check on "
-                     f"the classical EAL (they differ by sampling error, ± {_money(gu.aal_standard_error, cur + '/yr')}"
+                     f"the classical EAL (they differ by sampling error, "
+                     f"± {_money(gu.aal_standard_error, cur + '/yr')}"
                      " at one standard error) and the basis of PML and TVaR; do not quote it in place of the EAL."))
     if "pml" in figures:
         items.append((f"PML [{cur}]", f"the aggregate ground-up loss of one year exceeded with annual probability "
@@ -96,11 +97,12 @@ def headline_notes(run, figures):
         items.append((f"TVaR [{cur}]", f"the mean annual loss of the years whose loss exceeds the PML at the "
                      "same return period; quote it where the size of the tail matters, not only its threshold."))
     if "collapse" in figures:
-        items.append((f"Highest collapse probability", f"of one building, over the report's horizon (Poisson from "
+        items.append(("Highest collapse probability", f"of one building, over the report's horizon (Poisson from "
                      "its annual collapse rate); see the riskiest buildings and the screening sections."))
     if not items:
         return ""
-    return ('<details open id="key-notes"><summary>What these figures are and which to quote</summary><ul>'
+    return ('<details open class="explain" id="key-notes">'
+            "<summary>What these figures are and which to quote</summary><ul>"
             + "".join(f"<li><b>{_esc(k)}</b>: {_esc(t)}</li>" for k, t in items) + "</ul></details>")
 
 

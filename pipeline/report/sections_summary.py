@@ -139,7 +139,7 @@ def _section_events(run):
             + _table(headers, rows, sortable=True))
 
 
-def _breakdown_rows(run, col, assets, loss, bep, rps):
+def _breakdown_rows(col, assets, loss, bep, rps):
     """Table rows of one breakdown column: group, buildings, value, EAL, AAL, PML per return period."""
     d = loss[["asset_id", "replacement_value", "eal"]].merge(assets[["asset_id", col]], on="asset_id", how="left")
     g = d.groupby(col, sort=True)
@@ -202,6 +202,6 @@ def _section_breakdowns(run):
         if rps:
             headers += [f"AAL ground-up [{cur}/yr]#", f"AAL net [{cur}/yr]#"]
             headers += [f"PML {rp:,.0f} yr [{cur}]#" for rp in rps]
-        out.append(_table(headers, _breakdown_rows(run, col, assets, loss, bep if rps else None, rps),
+        out.append(_table(headers, _breakdown_rows(col, assets, loss, bep if rps else None, rps),
                           sortable=True))
     return "".join(out)
