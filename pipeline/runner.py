@@ -515,7 +515,8 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         frames.update(events.tables)
     if extra is not None:
         frames.update(extra.tables)
-    frames.update(run_input_frames(inputs.exposure, inputs.library))  # the run stores the inputs it used
+    # the run stores the inputs it used (with the columns it breaks its results down by)
+    frames.update(run_input_frames(inputs.exposure, inputs.library, extra_columns=cfg.output.breakdown_columns))
     frames = _located(inputs, frames)
     output = cfg.output.folder
     writer = RunWriter(output, new_run_id(output, inputs.inputs_sha256))  # claims a free run id

@@ -49,8 +49,9 @@ ADDED_COLUMNS = {f"{name}.parquet": ("lon", "lat") for name in (  # positions of
     "asset_consequences", "asset_damage", "asset_event_loss", "asset_loss", "asset_loss_curve", "collapse_screening",
     "conditional_mean_spectrum", "disaggregation", "disaggregation_summary", "hazard_at_return_periods", "site_hazard",
     "site_risk_targeted_im", "whatif_asset_damage", "whatif_assets", "whatif_benefit_cost", "whatif_people")}
+ADDED_COLUMNS["run_assets.parquet"] = ("terms_group",)  # the demo's [output] breakdown_columns
 #: Demo inputs the base commit's code does not know, removed from its copy: (file, regex).
-NEW_INPUTS = ()
+NEW_INPUTS = (("quakefolio*.toml", r"(?m)^breakdown_columns = .*\n"),)
 
 
 def _loss_curve_long(table):

@@ -128,7 +128,7 @@ def _vulnerability_ratio(x, table, pair, loss_model, seed, blocks, class_entry, 
     return np.concatenate(parts) if parts else np.zeros((0, len(pair)))
 
 
-def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=None, terms=None):
+def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=None, terms=None, on_ground_up=None):
     r"""Ground-up and net losses [currency] of assets over events, summed per event and per block.
 
     Parameters
@@ -178,6 +178,8 @@ def block_loss_sums(ratio, value, deductible, limit, bounds, on_net=None, net=No
         net = _net_of(gu, deductible, limit, has_policy_terms(deductible, limit) if terms is None else terms)
     if on_net is not None:
         on_net(net)
+    if on_ground_up is not None:
+        on_ground_up(gu)
     n_assets = gu.shape[1]
     asset_sum = np.zeros((len(bounds), 2, n_assets))
     asset_sumsq = np.zeros((len(bounds), 2, n_assets))
@@ -396,6 +398,8 @@ def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, ded
         total[j] = gu_ev[lo:hi].sum(), net_ev[lo:hi].sum()
     if group_sums is not None:
         group_sums.add_pairs(assets[~terms], pair[~terms], value[~terms], ratio)
+        if getattr(group_sums, "ground_up", None) is not None:  # the breakdown's ground-up sums
+            group_sums.ground_up.add_pairs(assets, pair, value, ratio)
     return gu_ev, net_ev, asset_sum, asset_sumsq, total
 
 
@@ -484,8 +488,10 @@ def _sampled_class_losses(x, states, pair, assets, money, blocks, class_entry, d
     factors = None if shared is None else shared[0][:, shared[1][assets]]
     ratio = event_loss_ratio(x, *states, pair, blocks=blocks, class_entry=class_entry, factors=factors, **draw)
     on_net = None if group_sums is None else (lambda n: group_sums.add(assets, n))
+    gu_sums = getattr(group_sums, "ground_up", None)
+    on_gu = None if gu_sums is None else (lambda g: gu_sums.add(assets, g))
     return block_loss_sums(ratio, value, deductible, limit, [(lo, hi) for _, lo, hi in blocks], on_net,
-                           terms=has_policy_terms(deductible, limit))
+                           terms=has_policy_terms(deductible, limit), on_ground_up=on_gu)
 
 
 def exceedance_counts(ln_im, levels_g):

@@ -21,6 +21,7 @@ from quakefolio.core.validation import (
     check_value, toml_place, validate_table,
 )
 from quakefolio.fragility.library import read_toml
+from quakefolio.pipeline.io.breakdowns import BREAKDOWN_COLUMNS
 from quakefolio.pipeline.io.alternatives import ALTERNATIVE_KEYS, _resolve, _ResolvedPath, parse_alternatives  # noqa: F401
 from quakefolio.pipeline.io.gmm_regions import RegionBranches
 from quakefolio.pipeline.io.layers import Layers as _Layers
@@ -225,6 +226,7 @@ SCHEMA = {
                                              0.6, 0.7, 0.8, 0.9, 0.95, 0.99], _RATIOS),
         "top_assets": _key(_INT, 10, _POSITIVE_INT),
         "report": _key(_BOOL, True, help="write report.html into the run folder"),
+        "breakdown_columns": _key(BREAKDOWN_COLUMNS, [], help="exposure columns to break EAL, AAL, PML down by"),
     },
     "execution": {
         "backend": _key(_STR, "local", choices=("local", "dask")),
@@ -373,6 +375,7 @@ class OutputSettings(_Section):
     loss_curve_ratios: tuple  #: loss ratios of the per-asset loss curves [-]
     top_assets: int  #: assets listed in the summary
     report: bool  #: write report.html into the run folder
+    breakdown_columns: tuple  #: exposure columns the results are broken down by
 
 
 @dataclass(frozen=True)

@@ -344,7 +344,7 @@ def _identifiers(frame, rows, path, column, *, unique=False, series=False):
     return ids.to_numpy(dtype=object).astype(str)
 
 
-def read_exposure(path, library, group_column="building_class"):
+def read_exposure(path, library, group_column="building_class", keep=()):
     """Validated exposure as a DataFrame with columns of :data:`EXPOSURE_COLUMNS` and ``row``.
 
     Checks: unique ids, WGS84 ranges, known building classes (against ``library``),
@@ -361,6 +361,10 @@ def read_exposure(path, library, group_column="building_class"):
         Column grouping assets that share secondary uncertainty (``[portfolio] secondary_group``);
         another column than those of :data:`EXPOSURE_COLUMNS` is kept as identifiers (text,
         every row non-empty).
+    keep : sequence of str
+        Further columns to keep as identifiers (``[output] breakdown_columns``), where the
+        file has them; the file's column names are in ``attrs["file_columns"]`` so that a
+        caller can say which named column is missing.
 
     Returns
     -------
@@ -413,6 +417,10 @@ def read_exposure(path, library, group_column="building_class"):
         out[group_column] = _identifiers(frame, rows, path, group_column, series=True)
     if "terms_group" in frame.columns:
         out["terms_group"] = _identifiers(frame, rows, path, "terms_group", series=True)
+    for col in keep:
+        if col not in out.columns and col in frame.columns:
+            out[col] = _identifiers(frame, rows, path, col, series=True)
+    out.attrs["file_columns"] = [str(c) for c in frame.columns]
     for col, key in _NEEDS_CONSEQUENCE.items():
         lacking = [c for c in library.classes
                    if not library[c].has_damage_states or not np.isfinite(getattr(library[c], key)).all()]

@@ -54,8 +54,9 @@ def _vulnerability_frame(library, classes):
     return out
 
 
-def _asset_frame(exposure):
-    """The exposure contract's columns of a validated exposure frame (missing optional ones as NaN)."""
+def _asset_frame(exposure, extra_columns=()):
+    """The exposure contract's columns of a validated exposure frame (missing optional ones as NaN), then the
+    ``extra_columns`` (text) the run breaks its results down by."""
     out = pd.DataFrame({"asset_id": exposure["asset_id"].astype(str).array})  # text stays in Arrow
     for col in ASSET_COLUMNS[1:]:
         if col == "building_class":
@@ -64,6 +65,9 @@ def _asset_frame(exposure):
             out[col] = exposure[col].to_numpy(dtype=float)
         else:
             out[col] = np.nan
+    for col in extra_columns:
+        if col not in out.columns:
+            out[col] = exposure[col].astype(str).array
     return out
 
 
@@ -88,7 +92,7 @@ def _fragility_frame(library, classes):
     return out
 
 
-def run_input_frames(exposure, library, classes=None):
+def run_input_frames(exposure, library, classes=None, extra_columns=()):
     """The ``run_assets`` and ``run_fragility`` tables of a run.
 
     Parameters
@@ -103,6 +107,8 @@ def run_input_frames(exposure, library, classes=None):
         The fragility library the run loaded.
     classes : iterable of str, optional
         The building classes the run used; default: every class of the exposure, sorted.
+    extra_columns : sequence of str
+        Exposure columns kept after the contract's (``[output] breakdown_columns``), as text.
 
     Returns
     -------
@@ -115,7 +121,8 @@ def run_input_frames(exposure, library, classes=None):
     """
     if classes is None:
         classes = sorted(set(exposure["building_class"].astype(str).unique()))
-    out = {"run_assets": _asset_frame(exposure), "run_fragility": _fragility_frame(library, list(classes))}
+    out = {"run_assets": _asset_frame(exposure, extra_columns),
+           "run_fragility": _fragility_frame(library, list(classes))}
     vulnerability = _vulnerability_frame(library, list(classes))
     if len(vulnerability):  # only runs that use a vulnerability class have the table
         out["run_vulnerability"] = vulnerability

@@ -178,6 +178,16 @@ TABLES.update({
         description="Event-based AAL by building class and by seismic source.",
         units={"aal_ground_up": "{currency}/yr", "aal_net": "{currency}/yr"},
     ),
+    "breakdown_ep": dict(
+        description="Per exposure column of [output] breakdown_columns, group (a distinct value of the column) and "
+                    "basis (ground-up; net of the per-asset deductibles and limits): the group's assets, its "
+                    "event-based AAL and, at the configured return periods, the PML on the aggregate (AEP) and "
+                    "occurrence (OEP) curves of the group's own year losses and the TVaR of its annual aggregate "
+                    "loss (the estimators of portfolio_ep). AALs add up over the groups of a column; PML and TVaR "
+                    "do not (diversification).",
+        units={"n_assets": "-", "aal": "{currency}/yr", "return_period_yr": "yr", "aep_loss": "{currency}",
+               "oep_loss": "{currency}", "tvar_loss": "{currency}"},
+    ),
     "portfolio_branch_summary": dict(
         description="Whole logic tree: per branch combination (source-model branch x ground-motion model) and "
                     "basis, its weight, simulated years (the weight's share of N) and events, AAL of its own years "

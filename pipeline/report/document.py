@@ -20,6 +20,7 @@ from quakefolio.pipeline.report.sections_hazard import _section_hazard
 from quakefolio.pipeline.report.sections_overview import _key_figures, _section_checks, _section_inputs
 from quakefolio.pipeline.report.sections_portfolio import _section_portfolio, _section_screening, _section_whatif
 from quakefolio.pipeline.report.sections_people import _section_people
+from quakefolio.pipeline.report.sections_summary import _section_breakdowns, _section_events, _section_exposure
 from quakefolio.pipeline.io.store import atomic_write_text
 
 __all__ = ["build_report", "write_report", "SECTIONS", "REPORT_MARKER", "is_our_report", "report_target",
@@ -32,11 +33,14 @@ _HEAD = '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
 #: Section ids and headings, in report order.
 SECTIONS = (
     ("inputs", "Inputs and provenance"),
+    ("exposure", "Exposure and annual loss by building class"),
     ("hazard", "Seismic hazard at the sites"),
     ("fragility", "Fragility curves by building class"),
     ("damage", "Damage-state rates and probabilities per asset"),
-    ("riskiest", "The riskiest assets"),
+    ("riskiest", "The riskiest buildings"),
     ("portfolio", "Portfolio loss: exceedance curves, AAL, PML and TVaR"),
+    ("events", "The largest simulated events"),
+    ("breakdowns", "Breakdowns by exposure column"),
     ("screening", "Collapse-risk screening"),
     ("whatif", "Retrofit what-if and benefit-cost"),
     ("people", "People and time: casualties, downtime, losses by coverage"),
@@ -61,7 +65,7 @@ def _not_drawn(exc):
 #: Sections drawn from the run's tables and its settings alone (the same for every run of the same
 #: inputs and code), kept in the content cache; the others name the run, its timings or another run.
 CACHED_SECTIONS = frozenset({"hazard", "fragility", "damage", "riskiest", "portfolio", "screening", "whatif",
-                             "people", "map"})
+                             "people", "map", "exposure", "events", "breakdowns"})
 
 
 def _section_key(run, sid):
@@ -142,9 +146,11 @@ def build_report(run_dir, *, previous_run=None, tables=None, cache=None):
     """
     run = ReportRun(run_dir, tables)
     builders = {
-        "inputs": (_section_inputs, run), "hazard": (_section_hazard, run), "fragility": (_section_fragility, run),
+        "inputs": (_section_inputs, run), "exposure": (_section_exposure, run), "hazard": (_section_hazard, run),
+        "fragility": (_section_fragility, run),
         "damage": (_section_damage, run), "riskiest": (_section_riskiest, run),
-        "portfolio": (_section_portfolio, run), "screening": (_section_screening, run),
+        "portfolio": (_section_portfolio, run), "events": (_section_events, run),
+        "breakdowns": (_section_breakdowns, run), "screening": (_section_screening, run),
         "whatif": (_section_whatif, run), "people": (_section_people, run), "map": (_section_map, run),
         "changes": (_section_changes, run, previous_run), "checks": (_section_checks, run),
     }

@@ -190,7 +190,32 @@ def _hazard_curves_figure(run, curves, stat, fractiles, chosen, ims):
     return fig
 
 
+#: From this many computed periods on, a spectrum's markers are joined by a faint line (dense enough to read
+#: as a curve); below it they stand alone: the spectrum between computed periods is not known.
+UHS_DENSE_PERIODS = 8
+
+
+def uhs_style(n_periods):
+    """Plot options of a uniform-hazard spectrum: markers at the computed periods, a faint line only if dense.
+
+    Parameters
+    ----------
+    n_periods : int
+        Periods at which the spectrum was computed.
+
+    Returns
+    -------
+    dict
+        Keyword arguments of ``Axes.plot``: markers without a line below :data:`UHS_DENSE_PERIODS`
+        periods, markers joined by a thin line from there on.
+    """
+    if n_periods >= UHS_DENSE_PERIODS:
+        return {"marker": "o", "markersize": 4, "linewidth": 0.6, "alpha": 0.9}
+    return {"marker": "o", "markersize": 5, "linestyle": "none"}
+
+
 def _uhs_figure(run, uhs, stat, chosen):
+    """Uniform-hazard spectra of the chosen sites, one panel per site: the computed periods as markers."""
     from matplotlib.ticker import FuncFormatter
 
     rps = sorted(set(uhs.return_period_yr))
@@ -204,7 +229,7 @@ def _uhs_figure(run, uhs, stat, chosen):
         for k, rp in enumerate(rps):
             r = g[g.return_period_yr == rp].sort_values("period")
             colour = shades[min(k, len(shades) - 1)] if len(rps) <= len(shades) else None
-            ax.plot(r.period, r.im_level, marker="o", markersize=3.5, color=colour, label=f"{rp:,.0f} yr")
+            ax.plot(r.period, r.im_level, color=colour, label=f"{rp:,.0f} yr", **uhs_style(len(r)))
         ax.set_xscale("log")
         ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
         ax.set_xlabel("oscillator period [s] (PGA at 0.01 s)")
@@ -557,7 +582,7 @@ def _cms_figure(cms, uhs_of, site):
     axes = fig.subplots(1, len(rps), squeeze=False).ravel()  # own scale per return period
     for ax, rp in zip(axes, rps):
         t, u = uhs_of(rp)
-        ax.plot(t, u, color=_INK, marker="o", markersize=3, linewidth=1.2, label="uniform-hazard spectrum")
+        ax.plot(t, u, color=_INK, label="uniform-hazard spectrum", **uhs_style(len(t)))
         for k, im in enumerate(conds):
             c = cms[(cms.return_period_yr == rp) & (cms.conditioning_im == im)].copy()
             c["period"] = c.im.map(_period_key)

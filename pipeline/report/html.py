@@ -59,6 +59,11 @@ th.group{text-align:center;border-bottom:1px solid var(--rule);position:static}
 dl.facts{display:grid;grid-template-columns:max-content 1fr;gap:2px 16px;margin:8px 0}
 dl.facts dt{color:var(--muted)}
 dl.facts dd{margin:0}
+details.explain{background:#fff;border:1px solid var(--rule);border-left:3px solid var(--teal);padding:6px 12px;
+margin:0 0 16px}
+details.explain summary{cursor:pointer;font-weight:600}
+details.explain ul{margin:6px 0 2px;padding-left:18px}
+details.explain li{margin:4px 0;max-width:110ch}
 footer{color:var(--muted);font-size:12px;padding:16px 0}
 @media print{nav{display:none}.scroll{max-height:none;overflow:visible}figure,table{break-inside:avoid}}
 """

@@ -159,8 +159,40 @@ def _section_damage(run):
 
 # --- riskiest assets ---------------------------------------------------------------------------------
 
+def _riskiest_rows(top, horizon):
+    """Rows: building, class, site, value, EAL, EAL ratio, collapse rate and probability in the horizon."""
+    return [[r.asset_id, r.building_class, r.site_id, _cell(_money(r.replacement_value), r.replacement_value),
+             _cell(_money(r.eal), r.eal), _cell(f"{1000 * r.eal_ratio:.3f}", r.eal_ratio),
+             _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
+             _cell(_prob(r.collapse_prob_in_horizon), r.collapse_prob_in_horizon)]
+            for r in top.itertuples()]
+
+
+def riskiest(loss, n):
+    """The ``n`` buildings of largest EAL and the ``n`` of largest collapse probability in the horizon.
+
+    Parameters
+    ----------
+    loss : pandas.DataFrame
+        ``asset_loss``.
+    n : int
+
+    Returns
+    -------
+    by_eal, by_collapse : pandas.DataFrame
+        Largest ``eal`` first (ties by ``asset_id``); largest ``collapse_prob_in_horizon`` first, ties
+        (buildings of one class at one hazard site share it) by larger EAL, then ``asset_id``; buildings
+        without a collapse probability (vulnerability classes) are left out of the second.
+    """
+    by_eal = top_rows(loss, "eal", n)
+    c = loss[loss.collapse_prob_in_horizon.notna()]
+    by_collapse = c.sort_values(["collapse_prob_in_horizon", "eal", "asset_id"],
+                                ascending=[False, False, True]).head(n)
+    return by_eal, by_collapse
+
+
 def _section_riskiest(run):
-    """Section 5: the assets with the highest collapse probability in the horizon, with their EAL.
+    """Section 5: the riskiest buildings, ranked by expected annual loss and by collapse probability.
 
     Parameters
     ----------
@@ -175,17 +207,31 @@ def _section_riskiest(run):
     if loss is None or not len(loss):
         return _note("This run holds no per-asset results (hazard stage only).")
     cur, h = run.currency, run.horizon
-    top = top_rows(loss, "collapse_prob_in_horizon", TOP_ASSETS)
-    rows = [[r.asset_id, r.building_class, r.site_id, _cell(_money(r.replacement_value), r.replacement_value),
-             _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
-             _cell(_prob(r.collapse_prob_in_horizon), r.collapse_prob_in_horizon),
-             _cell(_money(r.eal), r.eal), _cell(f"{1000 * r.eal_ratio:.3f}", r.eal_ratio)]
-            for r in top.itertuples()]
-    share = top.eal.sum() / loss.eal.sum() if loss.eal.sum() > 0 else float("nan")
-    out = [_p(f"The {len(top)} assets with the highest probability of collapse in {h:g} years, with their expected "
-              f"annual loss (classical). Together they carry {_pct(share)} of the portfolio EAL.")]
-    out.append(_table(["asset", "class", "site", f"value [{cur}]#", "collapse rate [1/yr]#",
-                       f"P(collapse in {h:g} yr)#", f"EAL [{cur}/yr]#", "EAL ratio [‰/yr]#"], rows, sortable=True))
+    by_eal, by_collapse = riskiest(loss, TOP_ASSETS)
+    total = loss.eal.sum()
+    share = by_eal.eal.sum() / total if total > 0 else float("nan")
+    headers = ["building", "class", "site", f"value [{cur}]#", f"EAL [{cur}/yr]#", "EAL ratio [‰/yr]#",
+               "collapse rate [1/yr]#", f"P(collapse in {h:g} yr)#"]
+    out = [_p(f"Two rankings of the buildings: by expected annual loss (classical, ground-up; what the portfolio "
+              f"loses to each building on average per year) and by probability of collapse in {h:g} years (life "
+              "safety). A large building of moderate vulnerability leads the first, a small fragile one the second."),
+           "<h3>By expected annual loss</h3>",
+           _p(f"The {len(by_eal)} buildings of largest EAL carry {_pct(share)} of the portfolio EAL "
+              f"({_money(total, cur + '/yr')})."),
+           _table(headers, _riskiest_rows(by_eal, h), sortable=True),
+           "<h3>By probability of collapse</h3>"]
+    if not len(by_collapse):
+        out.append(_note("No building of the run has damage states (every class is given by a vulnerability "
+                         "table): no collapse probability."))
+        return "".join(out)
+    tied = int(by_collapse.duplicated(["building_class", "site_id"]).sum())
+    one = by_collapse.building_class.iloc[0] if by_collapse.building_class.nunique() == 1 else None
+    out.append(_p(f"The {len(by_collapse)} buildings of highest collapse probability in {h:g} years (Poisson, "
+                  f"1 - exp(-rate x {h:g}))."
+                  + (f" Buildings of one class at one hazard site share the probability ({tied} rows here repeat a "
+                     "class and site); ties are listed by larger EAL." if tied else "")
+                  + (f" All are of class {one}: its fragility leads the collapse ranking." if one else "")))
+    out.append(_table(headers, _riskiest_rows(by_collapse, h), sortable=True))
     return "".join(out)
 
 

@@ -7,7 +7,9 @@ import pandas as pd
 
 from quakefolio.core.curves import rate_at_im
 from quakefolio.pipeline.report.context import _fractile_stats, _period_key, state_catalogue
-from quakefolio.pipeline.report.figures import _disagg_figure, _figure_html, _hazard_curves_figure, _uhs_figure
+from quakefolio.pipeline.report.figures import (
+    UHS_DENSE_PERIODS, _disagg_figure, _figure_html, _hazard_curves_figure, _uhs_figure,
+)
 from quakefolio.pipeline.report.html import _cell, _finite, _note, _p, _table
 from quakefolio.pipeline.report.sections_spectrum import _cms_part
 
@@ -155,11 +157,15 @@ def _uhs_part(run, stat, chosen, ims):
     chosen_ids = [s for s, _ in chosen]
     flagged = uhs[(uhs.statistic == stat) & uhs.site_id.isin(chosen_ids) & uhs.im_level.isna()]
     extra = (f" {len(flagged)} value(s) at these sites are not reported (outside the tabulated curve or below "
-             "the rate floor) and are left out of the lines." if len(flagged) else "")
+             "the rate floor) and are not drawn." if len(flagged) else "")
+    n_periods = len(set(uhs.im))
+    how = (f"the {n_periods} computed periods as points joined by a faint line (dense enough to read as a curve)"
+           if n_periods >= UHS_DENSE_PERIODS else
+           f"the {n_periods} computed periods as points, not joined: the spectrum between them was not computed")
     out.append(_figure_html(
         fig, "uniform-hazard spectra",
         f"Figure: uniform-hazard spectra ({stat}): the IM [g] with annual exceedance rate 1/T, against "
-        f"oscillator period [s] on a log axis; PGA is plotted at 0.01 s.{extra}"))
+        f"oscillator period [s] on a log axis; {how}; PGA is plotted at 0.01 s.{extra}"))
     u = uhs[(uhs.statistic == stat) & uhs.site_id.isin(chosen_ids)]
     rps = sorted(set(u.return_period_yr))
     out.append(_table(["site", "IM"] + [f"{rp:,.0f} yr [g]#" for rp in rps], _uhs_rows(u, chosen_ids, ims, rps)))

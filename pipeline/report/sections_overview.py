@@ -2,44 +2,59 @@
 from __future__ import annotations
 
 from quakefolio.pipeline.report.context import _created, top_rows
+from quakefolio.pipeline.report.sections_headline import headline_notes
 from quakefolio.pipeline.report.html import (
     _cell, _esc, _facts, _finite, _g, _html, _money, _note, _p, _pct, _prob, _table,
 )
 
 
 def _key_figures(run):
+    """The key figures (value and label, money with its currency and ``/yr`` where per year) and, under them,
+    what each is and which to quote (:func:`quakefolio.pipeline.report.sections_headline.headline_notes`)."""
     cur = run.currency
-    keys = []
+    keys, shown = [], set()
     loss = run.table("asset_loss")
     if loss is not None and len(loss):
         total = loss.replacement_value.sum()
         eal = loss.eal.sum()
-        keys.append((f"{len(loss):,}", f"assets in {loss.building_class.nunique()} classes, "
+        keys.append((f"{len(loss):,}", f"buildings in {loss.building_class.nunique()} classes, "
                                        f"{loss.site_id.nunique()} hazard sites"))
         keys.append((_money(total, cur), "total replacement value"))
         keys.append((_money(eal, cur + "/yr"),
-                     f"expected annual loss, classical ({1000 * eal / total:.3f} ‰ of value)"))
+                     f"expected annual loss (EAL), classical, ground-up ({1000 * eal / total:.3f} ‰ of value per "
+                     "year): the figure to quote"))
+        shown.add("eal")
         if "eal_net" in loss:
             keys.append((_money(loss.eal_net.sum(), cur + "/yr"),
-                         "expected annual loss net of deductibles and limits, classical"))
+                         "EAL net of deductibles and limits, classical"))
+            shown.add("eal_net")
         worst = top_rows(loss, "collapse_prob_in_horizon", 1).iloc[0]
-        keys.append((_prob(worst.collapse_prob_in_horizon),
-                     f"highest probability of collapse in {run.horizon:g} yr (asset {worst.asset_id})"))
+        if _finite(worst.collapse_prob_in_horizon):
+            keys.append((_prob(worst.collapse_prob_in_horizon),
+                         f"highest probability of collapse in {run.horizon:g} yr (building {worst.asset_id})"))
+            shown.add("collapse")
     summ = run.table("portfolio_summary")
     if summ is not None and "ground_up" in set(summ.basis):
         gu = summ.set_index("basis").loc["ground_up"]
-        keys.append((_money(gu.aal, cur + "/yr"), f"AAL ground-up, event-based (± {_money(gu.aal_standard_error)} "
-                                                  "1 s.e.)"))
+        keys.append((_money(gu.aal, cur + "/yr"), f"average annual loss (AAL), event-based, ground-up "
+                                                  f"(± {_money(gu.aal_standard_error, cur + '/yr')} 1 s.e.): "
+                                                  "the check of the EAL"))
+        shown.add("aal")
     ep = run.table("portfolio_ep")
     if ep is not None and len(ep):
-        gu = ep[ep.basis == "ground_up"].sort_values("return_period_yr")
-        if len(gu):
+        gu = ep[(ep.basis == "ground_up") & ep.aep_loss.notna()].sort_values("return_period_yr")
+        if len(gu):  # the largest return period the simulated years reach
             top = gu.iloc[-1]
-            keys.append((_money(top.aep_loss, cur), f"PML {top.return_period_yr:,.0f} yr, ground-up aggregate"))
+            keys.append((_money(top.aep_loss, cur), f"PML {top.return_period_yr:,.0f} yr, ground-up aggregate "
+                                                    "(loss in one year)"))
+            keys.append((_money(top.tvar_loss, cur), f"TVaR {top.return_period_yr:,.0f} yr, ground-up aggregate "
+                                                     "(mean loss of the years beyond that PML)"))
+            shown.update({"pml", "tvar"})
     if not keys:
         keys.append((f"{run.manifest.get('hazard_sites', 'n/a')}", "hazard sites (hazard stage only)"))
-    return '<div class="keys">' + "".join(f'<div class="key"><b>{_esc(v)}</b><span>{_esc(t)}</span></div>'
-                                          for v, t in keys) + "</div>"
+    return ('<div class="keys" id="key-figures">'
+            + "".join(f'<div class="key"><b>{_esc(v)}</b><span>{_esc(t)}</span></div>' for v, t in keys)
+            + "</div>" + headline_notes(run, shown))
 
 
 # --- inputs and provenance -------------------------------------------------------------------------
@@ -148,13 +163,13 @@ def _check_rows(checks, cur):
         rows.append([f"portfolio AAL vs classical EAL of {scope}",
                      f"event-based {_money(p['event_based_aal'], cur + '/yr')} vs classical "
                      f"{_money(p['classical_eal'], cur + '/yr')}; z = {p['z']:+.2f} "
-                     f"(1 s.e. {_money(p['standard_error'])})", "|z| ≤ 3", _verdict(p.get("passed"))])
+                     f"(1 s.e. {_money(p['standard_error'], cur + '/yr')})", "|z| ≤ 3", _verdict(p.get("passed"))])
     n = checks.get("portfolio_net_aal_vs_classical_net_eal")
     if n:
         rows.append([f"portfolio net AAL vs classical net EAL of {scope}",
                      f"event-based {_money(n['event_based_aal'], cur + '/yr')} vs classical "
                      f"{_money(n['classical_eal'], cur + '/yr')}; z = {n['z']:+.2f} "
-                     f"(1 s.e. {_money(n['standard_error'])})", "|z| ≤ 3", _verdict(n.get("passed"))])
+                     f"(1 s.e. {_money(n['standard_error'], cur + '/yr')})", "|z| ≤ 3", _verdict(n.get("passed"))])
     a = checks.get("asset_aal_vs_classical_eal")
     if a:
         share = a["share_within_3_standard_errors"]

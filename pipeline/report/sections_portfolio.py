@@ -60,7 +60,7 @@ def _section_portfolio(run):
                            r.aal_standard_error / r.aal if r.aal else float("nan")),
                      _cell(_money(classical), classical)])
     out.append("<h3>Average annual loss</h3>")
-    out.append(_table(["basis", f"AAL [{cur}/yr]#", "± 1 standard error#", "relative s.e.#",
+    out.append(_table(["basis", f"AAL [{cur}/yr]#", f"± 1 standard error [{cur}/yr]#", "relative s.e.#",
                        f"classical EAL, {'all branches' if branches is not None else 'same branch'} [{cur}/yr]#"],
                       rows))
     if branches is not None:
@@ -96,7 +96,7 @@ def _branch_section(branches, frac, cur):
             for r in branches[branches.basis == "ground_up"].itertuples()]
     out = ["<h3>Logic-tree branches</h3>",
            _table(["source model", "ground-motion model", "weight#", "years#", f"AAL ground-up [{cur}/yr]#",
-                   "± 1 s.e.#", f"classical EAL [{cur}/yr]#", "z#"], rows)]
+                   f"± 1 s.e. [{cur}/yr]#", f"classical EAL [{cur}/yr]#", "z#"], rows)]
     gu = frac[frac.basis == "ground_up"]
     qs = sorted(set(gu.fractile))
     rows = []
@@ -105,7 +105,8 @@ def _branch_section(branches, frac, cur):
         label = {"aal": "AAL", "aep_loss": "PML, aggregate", "oep_loss": "PML, occurrence", "tvar_loss": "TVaR"}[metric]
         rows.append([label, _cell("" if rp != rp else f"{rp:,.0f}", rp)]
                     + [_cell("n/a" if v != v else _money(v), v) for v in vals])
-    out.append(_table(["ground-up", "return period [yr]#"] + [f"{q * 100:g}% [{cur}]#" for q in qs], rows))
+    out.append(_table(["ground-up", "return period [yr]#"] + [f"{q * 100:g}% [{cur}; AAL {cur}/yr]#" for q in qs],
+                      rows))
     out.append(_p("Fractiles across the branch combinations by weight (the smallest branch value whose cumulative "
                   "weight reaches the fractile), each branch from its own years; n/a where a branch has fewer "
                   "years than the return period."))

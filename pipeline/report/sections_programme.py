@@ -46,7 +46,7 @@ def programme_html(run):
                  _cell(_prob(r.prob_attachment), r.prob_attachment), _cell(_prob(r.prob_exhaustion), r.prob_exhaustion),
                  _cell(_prob(r.prob_annual_cap_used), r.prob_annual_cap_used)] for r in ls.itertuples()]
         out.append(_table(["layer", "kind", f"attachment [{cur}]#", f"limit [{cur}]#", "reinstatements",
-                           f"expected layer loss [{cur}/yr]#", "± 1 s.e.#", "P(attach) per yr#",
+                           f"expected layer loss [{cur}/yr]#", f"± 1 s.e. [{cur}/yr]#", "P(attach) per yr#",
                            "P(exhaust) per yr#", "P(annual cap used) per yr#"], rows, caption="Layers"))
         ep = run.table("layer_ep")
         rows = [[r.layer_id, _cell(f"{r.return_period_yr:,.0f}", r.return_period_yr),

@@ -81,8 +81,9 @@ def scenario_section(tables, cur):
         out.append(f"<h3>Rupture {_esc(rid)}</h3>")
         rows = [[r.key, r.metric.replace("_", " "), _cell(_money(r.mean), r.mean), _cell(_money(r.p50), r.p50),
                  _cell(_money(r.p90), r.p90), _cell(_money(r.p99), r.p99)] for r in part.itertuples()]
-        out.append(_table(["portfolio or class", "metric", f"mean [{cur} or persons]#", "median#", "90 %#",
-                           "99 %#"], rows, sortable=True, scroll=True))
+        unit = f"[{cur} or persons]"
+        out.append(_table(["portfolio or class", "metric", f"mean {unit}#", f"median {unit}#", f"90 % {unit}#",
+                           f"99 % {unit}#"], rows, sortable=True, scroll=True))
         out.append('<div class="pair">' + _histogram(tables["scenario_realisation_loss"], rid, cur)
                    + _map(tables["scenario_site_motion"], rup, tables.get("scenario_stations"), rid)
                    + "</div>")

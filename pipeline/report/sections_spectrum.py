@@ -65,7 +65,8 @@ def _cms_part(run, curves, chosen):
     out.append(_figure_html(
         fig, "conditional mean spectra",
         f"Figure: conditional mean spectra (CMS, Baker 2011) at site {site}, beside the mean uniform-hazard spectrum "
-        "(black; computed at the marked IMs only, joined by straight lines) of the same return period. Each CMS is the expected spectrum of a record that reaches "
+        "(black points: computed at those periods only, not joined unless dense) of the same return period. Each "
+        "CMS is the expected spectrum of a record that reaches "
         "the uniform-hazard value at its conditioning period (diamond), for the mean-disaggregation scenario at "
         "that level, with the Baker & Jayaram (2008) correlation; shaded: plus and minus one conditional "
         "standard deviation (zero at the conditioning period). The uniform-hazard spectrum is an envelope of "

@@ -39,6 +39,7 @@ from quakefolio.core.hazard import weighted_sum
 from quakefolio.core.loss import expected_annual_loss, expected_annual_net_loss
 from quakefolio.core.vulnerability import VulnerabilityTable
 from quakefolio.core.events.portfolio import aal_with_standard_error, ep_from_years, full_ep_curve, tvar, year_loss
+from quakefolio.pipeline.stages import breakdown as bd
 from quakefolio.pipeline.stages import event_branches as eb
 from quakefolio.pipeline.stages.programme import programme_digest, programme_tables
 from quakefolio.pipeline.stages import people as pp
@@ -91,6 +92,7 @@ class EventModel:
     group_terms: object = None  # GroupTerms of [programme] (None: no group terms)
     people: object = None  # PeopleModel: casualties, downtime, contents and interruption (stages.people)
     site_fields: dict = field(default_factory=dict)  # per used site: z1p0_km, z2p5_km [km], backarc (stages.regions)
+    breakdown: tuple = ()  # [output] breakdown_columns: (column, group names, group of each asset) (stages.breakdown)
 
 
 def _groups(exposure, column):
@@ -233,7 +235,8 @@ def prepare_events(inputs):
         levels_g=model.levels_g, asset_site=local, classes=classes, value=ex.replacement_value.to_numpy(),
         deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task,
         correlation=pf.secondary_correlation, group_column=pf.secondary_group, group_names=group_names, group=group,
-        group_terms=inputs.group_terms, people=pp.prepare_people(inputs, events.n_events, pf.seed, classes), **tree)
+        group_terms=inputs.group_terms, people=pp.prepare_people(inputs, events.n_events, pf.seed, classes),
+        breakdown=bd.breakdown_groups(ex, cfg.output.breakdown_columns), **tree)
 
 
 def event_chunks(em):
@@ -267,6 +270,7 @@ class ChunkResult:
     programme: np.ndarray = None  # (n_ev,) after building and group terms [currency]
     group_sum: np.ndarray = None  # (n_blocks, 2, n_groups): before, after group terms [currency]
     people: np.ndarray = None  # (n_ev, 4): casualties, downtime, contents and interruption loss (stages.people)
+    breakdown: tuple = None  # per breakdown column, ground-up and net (n_ev, n_groups) sums (stages.breakdown)
 
 
 def _correlated(em):
@@ -415,16 +419,18 @@ def event_chunk(em, chunk, independent=True):
                for _, assets, i_im, dss, usites, pair in em.classes]
     gt = em.group_terms
     groups = None if gt is None else GroupSums(gt.group_of_asset, len(gt.ids), stop - start)
+    hooks, by_group = bd.chunk_hooks(em.breakdown, groups, stop - start)
     gu_ev, net_ev, asset_sum, asset_sumsq, class_sum = portfolio_event_losses(
         im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows,
-        correlation=em.correlation, group=em.group, group_sums=groups)
+        correlation=em.correlation, group=em.group, group_sums=hooks)
     programme, group_sum = chunk_programme_loss(gt, groups, net_ev, [(lo, hi) for _, lo, hi in rows])
     other = None
     if independent and _correlated(em):  # the same ground motions and own draws, no group factors: the effect
         other = portfolio_event_losses(im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model,
                                        seed=em.seed, blocks=rows, correlation=em.correlation, twin=True)[:2]
     return ChunkResult(start, stop, gu_ev, net_ev, asset_sum, asset_sumsq, class_sum, counts, other, programme,
-                       group_sum, pp.chunk_consequences(em, im, start, stop))
+                       group_sum, pp.chunk_consequences(em, im, start, stop),
+                       None if by_group is None else by_group.result())
 
 
 def combine_events(em, inputs, results):
@@ -564,6 +570,9 @@ def _optional_tables(em, inputs, results, losses, years, rps, tables, checks):
             "secondary_correlation": em.correlation, "secondary_group": em.group_column,
             "change": aal.change.tolist(), "standard_error_of_change": aal.standard_error_of_change.tolist(),
             "passed": bool((aal.change.abs() <= 3 * aal.standard_error_of_change).all())}
+    if em.breakdown:
+        tables["breakdown_ep"] = bd.breakdown_ep_table(em.breakdown, [r.breakdown for r in results], em.events.year,
+                                                       em.n_years, rps)
     if em.people is not None and results:
         tables.update(pp.event_consequence_tables(em, inputs, np.concatenate([r.people for r in results]),
                                                   _branch_mean_curves(em, inputs)))
@@ -712,4 +721,4 @@ def event_cache_key(inputs):
     classes = fragility_class_digests(inputs.library)
     return digest("events", model.digest, cfg.resolved()["portfolio"], cfg.resolved()["hazard"],
                   cfg.fragility.tail, {c: classes[c] for c in used}, inputs.input_hashes["exposure"]["sha256"],
-                  *programme_digest(inputs), pp.people_cache_key(inputs))
+                  *programme_digest(inputs), pp.people_cache_key(inputs), list(cfg.output.breakdown_columns))

@@ -12,6 +12,7 @@ import numpy as np
 
 from quakefolio.fragility import load_library
 from quakefolio.pipeline.io.arrow_columns import index_of
+from quakefolio.pipeline.io.breakdowns import check_breakdown_columns
 from quakefolio.pipeline.io.cache import StageCache
 from quakefolio.pipeline.io.config import load_config, sha256_file
 from quakefolio.pipeline.io.group_terms import group_terms_for
@@ -88,7 +89,8 @@ def load_inputs(config_or_path):
     budget = memory_budget()
     hz, ex, fr = config.hazard, config.exposure, config.fragility
     library = load_library(fr.library)
-    exposure = read_exposure(ex.file, library, config.portfolio.secondary_group)
+    exposure = read_exposure(ex.file, library, config.portfolio.secondary_group, keep=config.output.breakdown_columns)
+    check_breakdown_columns(config, exposure)
     hashes = {
         "config": {"path": str(config.path), "sha256": config.sha256},
         "fragility_library": {"path": str(fr.library), "sha256": library.sha256},

@@ -571,6 +571,17 @@ def _years_term(inputs, d, years, events, tables):
                 otherwise="fewer events: fewer years, or check the source models' rates")
 
 
+def _breakdown_term(inputs, years, events):
+    """The per-event and per-year losses of every group of ``[output] breakdown_columns`` (ground-up and net)."""
+    columns = inputs.config.output.breakdown_columns
+    groups = sum(int(inputs.exposure[c].nunique()) for c in columns if c in inputs.exposure.columns)
+    largest = max([int(inputs.exposure[c].nunique()) for c in columns if c in inputs.exposure.columns] or [0])
+    return Term(16.0 * events * groups + 32.0 * years * largest, "output.breakdown_columns",
+                f"breakdown_columns = {list(columns)} ({groups:,} groups)",
+                "the event and year losses of every breakdown group",
+                otherwise="fewer breakdown columns or columns of fewer groups, or fewer years")
+
+
 def _task_term(inputs, d, shares, events):
     """Ground motions and losses of one chunk of events, times the tasks at once."""
     cfg = inputs.config
@@ -605,7 +616,8 @@ def _event_stages(inputs, d):
     per_task = StageSize("event-based losses per task",
                          kept + (_years_term(inputs, d, years, events, False), fields,
                                  _task_term(inputs, d, shares, events)))
-    tables = StageSize("event-based tables", kept + (_years_term(inputs, d, years, events, True),))
+    tables = StageSize("event-based tables", kept + (_years_term(inputs, d, years, events, True),
+                                                     _breakdown_term(inputs, years, events)))
     return (per_task, tables), years, events
 
 

@@ -394,6 +394,7 @@ def rerun_events(em, alternative):
                               limit=np.concatenate([em.limit, em.limit[changed]]), classes=list(em.classes) + [entry],
                               group=ps.extended_group(em, changed, alternative.new_class),
                               group_terms=None,  # the what-if compares building losses; no programme terms
+                              breakdown=(),  # nor breakdowns by exposure column
                               people=moved_people(em.people, changed, alternative.dss))
     chunks = sorted((ps.event_chunk(alt, c, independent=False) for c in ps.event_chunks(alt)), key=lambda r: r.start)
     gu = np.concatenate([c.ground_up for c in chunks]) if chunks else np.zeros(0)
