@@ -60,10 +60,17 @@ dl.facts{display:grid;grid-template-columns:max-content 1fr;gap:2px 16px;margin:
 dl.facts dt{color:var(--muted)}
 dl.facts dd{margin:0}
 footer{color:var(--muted);font-size:12px;padding:16px 0}
-@media print{nav{display:none}.scroll{max-height:none;overflow:visible}figure,table{break-inside:avoid}}
+.toggle{display:flex;flex-wrap:wrap;gap:4px 16px;align-items:center;margin:8px 0;font-size:13px}
+.toggle label{cursor:pointer}
+.views>[hidden]{display:none}
+table.fit{table-layout:auto;max-width:100%}
+table.fit td{white-space:normal}
+table.fit td.n{white-space:nowrap}
+@media print{.views>[hidden]{display:block}nav{display:none}.scroll{max-height:none;overflow:visible}figure,table{break-inside:avoid}}
 """
 
-# Sort a table by the clicked header: numbers by their data-v attribute, text otherwise.
+# Sort a table by the clicked header: numbers by their data-v attribute, text otherwise; a radio button of a
+# .toggle shows the child of the .views block (data-toggle = its name) whose data-view is its value.
 _JS = """
 (function(){
 function key(c){var v=c.getAttribute('data-v');if(v===null)return c.textContent.trim().toLowerCase();
@@ -81,6 +88,10 @@ rows.forEach(function(r){b.appendChild(r);});}
 th.addEventListener('click',go);
 th.addEventListener('keydown',function(e){if(e.key==='Enter'||e.key===' '){e.preventDefault();go();}});
 });});
+document.querySelectorAll('.toggle input[type=radio]').forEach(function(r){
+r.addEventListener('change',function(){var v=document.querySelector('.views[data-toggle="'+r.name+'"]');
+if(!v)return;Array.prototype.forEach.call(v.children,function(c){c.hidden=c.getAttribute('data-view')!==r.value;});});
+});
 })();
 """
 
@@ -176,6 +187,19 @@ def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=
 def _html(fragment):
     """A table cell holding trusted HTML (already escaped by the caller)."""
     return ("html", fragment)
+
+
+def _toggle(name, label, views, default):
+    """Radio buttons showing one of several views (e.g. one figure per colouring); the others are hidden.
+
+    ``views``: ``[(value, radio label, html), ...]``; ``default``: the value shown first.
+    Without the script every view after the default stays hidden; printing shows them all."""
+    radios = "".join(f'<label><input type="radio" name="{_esc(name)}" value="{_esc(v)}"'
+                     f'{" checked" if v == default else ""}> {_esc(text)}</label>' for v, text, _ in views)
+    blocks = "".join(f'<div data-view="{_esc(v)}"{"" if v == default else " hidden"}>{body}</div>'
+                     for v, _, body in views)
+    return (f'<div class="toggle" role="radiogroup" aria-label="{_esc(label)}"><span>{_esc(label)}:</span>'
+            f'{radios}</div><div class="views" data-toggle="{_esc(name)}">{blocks}</div>')
 
 
 def _note(text):
