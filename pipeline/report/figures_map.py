@@ -92,11 +92,36 @@ def colour_values(d, colouring):
     return d.replacement_value.to_numpy(float)
 
 
-def _frame_extent(d, sites):
-    """The map's frame: assets and hazard sites, padded by 6% and at least 1 km each side [deg]."""
+#: Fault traces within this distance of the assets' and sites' box, or half its size if larger, widen the frame [km].
+NEAR_FAULT_KM = 10.0
+
+
+def _near_fault_points(faults, lon, lat):
+    """Points of the fault traces (sampled along each segment) near the box of ``lon``, ``lat`` [deg]."""
+    if faults is None or not len(faults):
+        return np.empty(0), np.empty(0)
+    km_lat = 111.32
+    km_lon = km_lat * max(math.cos(math.radians(float(np.mean(lat)))), 1e-3)
+    reach = max(NEAR_FAULT_KM, 0.5 * max(float(np.ptp(lon)) * km_lon, float(np.ptp(lat)) * km_lat))
+    t = np.linspace(0.0, 1.0, 32)[:, None]
+    xs, ys = [], []
+    for _sid, _region, x, y in _traces(faults):
+        xs.append((x[:-1] + t * np.diff(x)).T.ravel())
+        ys.append((y[:-1] + t * np.diff(y)).T.ravel())
+    x, y = np.concatenate(xs), np.concatenate(ys)
+    near = ((x >= lon.min() - reach / km_lon) & (x <= lon.max() + reach / km_lon)
+            & (y >= lat.min() - reach / km_lat) & (y <= lat.max() + reach / km_lat))
+    return x[near], y[near]
+
+
+def _frame_extent(d, sites, faults=None):
+    """The map's frame: assets, hazard sites and the parts of faults near them (:data:`NEAR_FAULT_KM`), padded
+    by 6% and at least 1 km each side [deg]."""
     lon = [d.lon.to_numpy(float)] + ([] if sites is None else [sites.lon.to_numpy(float)])
     lat = [d.lat.to_numpy(float)] + ([] if sites is None else [sites.lat.to_numpy(float)])
     lon, lat = np.concatenate(lon), np.concatenate(lat)
+    fx, fy = _near_fault_points(faults, lon, lat)
+    lon, lat = np.concatenate([lon, fx]), np.concatenate([lat, fy])
     lat0 = math.radians(float(np.mean(lat)))
     pad_lat = max(0.06 * float(np.ptp(lat)), 1.0 / 111.32)
     pad_lon = max(0.06 * float(np.ptp(lon)), 1.0 / (111.32 * max(math.cos(lat0), 1e-3)))
@@ -197,7 +222,7 @@ def map_figure(d, cur, colouring, *, horizon, faults=None, sites=None, outline=N
     from matplotlib.colors import LinearSegmentedColormap
     from matplotlib.lines import Line2D
 
-    xlim, ylim = _frame_extent(d, sites)
+    xlim, ylim = _frame_extent(d, sites, faults)
     lat0 = math.radians(0.5 * (ylim[0] + ylim[1]))
     fig = _new_figure(7.4, 6.6)
     ax = fig.subplots()

@@ -63,9 +63,8 @@ footer{color:var(--muted);font-size:12px;padding:16px 0}
 .toggle{display:flex;flex-wrap:wrap;gap:4px 16px;align-items:center;margin:8px 0;font-size:13px}
 .toggle label{cursor:pointer}
 .views>[hidden]{display:none}
-table.fit{table-layout:auto;max-width:100%}
-table.fit td{white-space:normal}
-table.fit td.n{white-space:nowrap}
+table.fit{max-width:100%}
+table.fit th,table.fit td,table.fit td.n,table.fit th.n{white-space:normal}
 @media print{.views>[hidden]{display:block}nav{display:none}.scroll{max-height:none;overflow:visible}figure,table{break-inside:avoid}}
 """
 
@@ -152,11 +151,12 @@ def _cell(text, value=None):
     return ("n", text, _sv(value))
 
 
-def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=None, wide=False):
+def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=None, wide=False, fit=False):
     """HTML table. ``headers``: labels (a label ending in ``#`` is a numeric column,
     shown without the mark). ``rows``: lists of cells, each a plain value (escaped),
     :func:`_cell` output (right-aligned, sorted numerically) or :func:`_html` output.
-    ``groups``: optional ``[(label, n_columns), ...]`` header row above the labels."""
+    ``groups``: optional ``[(label, n_columns), ...]`` header row above the labels.
+    ``fit``: headers and cells wrap, so a table of many columns stays within the page's width."""
     top = ""
     if groups:
         top = "<tr>" + "".join(f"<th class=group colspan={n} scope=colgroup>{_esc(g)}</th>"
@@ -177,7 +177,7 @@ def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=
                 text = str(c)
                 cells.append(f"<td{' class=wrap' if len(text) > 28 else ''}>{_esc(text)}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
-    classes = " ".join(c for c, on in (("sortable", sortable), ("wide", wide)) if on)
+    classes = " ".join(c for c, on in (("sortable", sortable), ("wide", wide), ("fit", fit)) if on)
     cls = f' class="{classes}"' if classes else ""
     cap = f"<caption>{_esc(caption)}</caption>" if caption else ""
     out = f"<table{cls}>{cap}<thead>{top}<tr>{''.join(hs)}</tr></thead><tbody>{''.join(body)}</tbody></table>"

@@ -1,8 +1,10 @@
 """Report sections per building class and per asset: fragility curves, damage table, riskiest assets, map."""
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 
+from quakefolio.core.errors import InputError
 from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, PREDATES_NOTE, TOP_ASSETS, state_catalogue, top_rows
 from quakefolio.pipeline.report.figures import (
     MAP_MAX_MARKERS, _figure_html, _fragility_figure, _vulnerability_figure, map_cells,
@@ -194,7 +196,12 @@ def _section_riskiest(run):
 
 def _map_frame(run):
     """The assets with positions (or a note): (frame, missing count) or (None, note HTML)."""
-    loss = run.table("asset_loss", columns=["asset_id", "replacement_value", "eal_ratio", "collapse_prob_in_horizon"])
+    base = ["asset_id", "replacement_value", "eal_ratio"]
+    try:
+        loss = run.table("asset_loss", columns=base + ["collapse_prob_in_horizon"])
+    except InputError:  # a table without the collapse column: no collapse colouring
+        loss = run.table("asset_loss", columns=base)
+        loss = loss.assign(collapse_prob_in_horizon=np.nan)
     if loss is None or not len(loss):
         return None, _note("This run holds no per-asset results (hazard stage only).")
     if not run.has("run_assets"):
@@ -268,6 +275,8 @@ def _section_map(run):
               "value": f"colour: replacement value [{cur}]" + ("" if cells is None else " (the cell's total)")}
     views = []
     for key, (label, _bar) in MAP_COLOURINGS.items():
+        if key == "collapse" and d.collapse_prob_in_horizon.isna().all():
+            continue
         fig, capped, bar_km, layers = map_figure(d if cells is None else cells, cur, key, horizon=h, faults=faults,
                                                  sites=sites, outline=outline)
         caption = (f"Figure: {what}; {colour[key]}{' (colour scale capped at the 99th percentile)' if capped else ''}"

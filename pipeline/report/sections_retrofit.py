@@ -303,7 +303,7 @@ def _per_building(bc, assets, cur):
                 "all": "Every building of the alternative, highest benefit-cost ratio first"}[which]
         out.append(_table(["asset", "class", f"value [{cur}]#", f"retrofit cost [{cur}]#",
                            f"avoided EAL [{cur}/yr]#", f"PV avoided [{cur}]#", "benefit-cost ratio#",
-                           "P(collapse in horizon), before → after#", "after: target"], rows, sortable=True,
+                           "P(collapse in horizon), before → after#", "after: target"], rows, sortable=True, fit=True,
                           caption=f"{what} (all {len(per):,} in whatif_benefit_cost.parquet, scope 'asset')"))
     return out
 
