@@ -47,26 +47,51 @@ def portfolio_outline(lon, lat):
     Notes
     -----
     Computed in the (lon, lat) plane, which is what the map draws (its aspect only stretches
-    x, and a hull is preserved by scaling an axis).  Quickhull through scipy's Qhull binding.
+    x, and a hull is preserved by scaling an axis).  The positions strictly inside the polygon
+    of the eight extreme points (of lon, lat, lon + lat, lon - lat, each way) are dropped
+    first, as none of them can be a hull vertex (Akl & Toussaint 1978); the rest go to
+    Quickhull through scipy's Qhull binding.
 
     References
     ----------
+    Akl, S. G. and Toussaint, G. T. (1978). A fast convex hull algorithm. Information
+    Processing Letters 7(5), 219-222.
     Barber, C. B., Dobkin, D. P. and Huhdanpaa, H. (1996). The Quickhull algorithm for convex
     hulls. ACM Transactions on Mathematical Software 22(4), 469-483.
     """
-    pts = np.unique(np.column_stack([np.asarray(lon, float), np.asarray(lat, float)]), axis=0)
+    pts = np.column_stack([np.asarray(lon, float), np.asarray(lat, float)])
     pts = pts[np.isfinite(pts).all(axis=1)]
     if len(pts) < 3:
-        return pts
+        return np.unique(pts, axis=0)
     from scipy.spatial import ConvexHull, QhullError
 
     try:
-        hull = ConvexHull(pts)
-    except QhullError:  # collinear: the two ends of the line
+        pts = _outside_octagon(pts, ConvexHull)
+        hull = ConvexHull(pts)  # repeated positions are fine: a hull vertex is listed once
+    except QhullError:  # fewer than 3 distinct or collinear positions: the two ends of the line
+        pts = np.unique(pts, axis=0)
+        if len(pts) < 3:
+            return pts
         d = pts - pts[0]
         t = d @ (d[np.argmax(np.hypot(d[:, 0], d[:, 1]))])
         return pts[[int(np.argmin(t)), int(np.argmax(t))]]
     return pts[hull.vertices]  # counter-clockwise for 2-d input
+
+
+def _outside_octagon(pts, hull_of):
+    """The points not strictly inside the convex polygon of the eight extreme points (all when it is flat)."""
+    x, y = pts[:, 0], pts[:, 1]
+    idx = np.unique([f(v) for v in (x, y, x + y, x - y) for f in (np.argmin, np.argmax)])
+    if len(idx) < 3 or len(pts) < 16:
+        return pts
+    try:
+        ring = pts[idx][hull_of(pts[idx]).vertices]  # counter-clockwise
+    except Exception:  # noqa: BLE001 - a flat set of extremes filters nothing
+        return pts
+    inside = np.ones(len(pts), dtype=bool)
+    for a, b in zip(ring, np.roll(ring, -1, axis=0)):
+        inside &= (b[0] - a[0]) * (y - a[1]) - (b[1] - a[1]) * (x - a[0]) > 0  # strictly left of each edge
+    return pts[~inside]
 
 
 def colour_values(d, colouring):
