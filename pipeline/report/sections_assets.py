@@ -224,7 +224,7 @@ def _map_layers_text(layers, faults_stored):
              "dashed grey line: the portfolio's outline (convex hull of the asset positions)"]
     if layers.faults:
         parts.append("black lines: the source model's fault traces (" + ", ".join(layers.faults) +
-                     "; dashed: a tectonic region other than active crustal)")
+                     "; the legend tells crustal from other tectonic regions)")
     elif not faults_stored:
         parts.append("no fault traces (hazard tabulated from a file, or a run that predates the source_faults table)")
     if layers.faults_outside:

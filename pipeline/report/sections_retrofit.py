@@ -233,8 +233,8 @@ def _portfolio_table(grp, cur, alt_id):
 def _verdict(alt, total, moved, people, cur):
     """One paragraph per alternative: what it costs, what it saves, whether it pays, what it does to screening."""
     bcr = float(total.benefit_cost_ratio)
-    pays = ("pays for itself on avoided repair losses alone (benefit-cost ratio at least 1)" if bcr >= 1 else
-            "does not pay for itself on avoided repair losses alone (benefit-cost ratio below 1)")
+    pays = ("pays for itself on avoided repair losses alone" if bcr >= 1 else
+            "does not pay for itself on avoided repair losses alone")
     text = (f"Verdict for '{alt}': retrofitting {int(total.n_assets):,} buildings costs {_money(total.retrofit_cost, cur)}"
             f" and avoids {_money(total.avoided_eal, cur)} of expected loss per year, worth "
             f"{_money(total.pv_avoided_loss, cur)} over {total.benefit_horizon_yr:g} years at "

@@ -75,28 +75,27 @@ def trend_frame(run):
 
 
 def _trend_figure(frame, cur):
-    """EAL and AAL per run (left) and PML per return period per run (right), runs in order."""
-    from matplotlib.ticker import FuncFormatter, MaxNLocator
+    """EAL and AAL per run (left) and, where any run has them, PML per return period per run (right)."""
+    from matplotlib.ticker import FuncFormatter
 
-    fig = _new_figure(9.6, 3.2)
-    left, right = fig.subplots(1, 2)
+    pml = [c for c in frame.columns if c.startswith("pml_") and np.isfinite(frame[c].to_numpy(float)).any()]
+    panels = [([("classical_eal", "EAL, classical"), ("event_aal", "AAL, event-based")], f"annual loss [{cur}/yr]")]
+    if pml:
+        panels.append(([(c, f"PML {c[4:]} yr") for c in pml], f"aggregate PML, ground-up [{cur}]"))
+    fig = _new_figure(4.8 * len(panels), 3.2)
+    axes = fig.subplots(1, len(panels), squeeze=False).ravel()
     x = np.arange(len(frame))
-    money = FuncFormatter(lambda v, _pos: f"{v / 1e6:,.2f}")
-    for ax, columns, title in ((left, [("classical_eal", "EAL, classical"), ("event_aal", "AAL, event-based")],
-                                f"annual loss [million {cur}/yr]"),
-                               (right, [(c, f"PML {c[4:]} yr") for c in frame.columns if c.startswith("pml_")],
-                                f"aggregate PML, ground-up [million {cur}]")):
+    money = FuncFormatter(lambda v, _pos: f"{v:,.0f}")  # whole currency units, as in the table
+    for ax, (columns, title) in zip(axes, panels):
         for k, (col, label) in enumerate(columns):
             y = frame[col].to_numpy(float)
             if np.isfinite(y).any():
                 ax.plot(x, y, marker="o", markersize=4, color=_SERIES[k % len(_SERIES)], label=label)
         ax.yaxis.set_major_formatter(money)
         ax.set_ylabel(title)
-        ax.set_xlabel("run (oldest first)")
-        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+        ax.set_xlabel("run (oldest first, numbered as in the table)")
         ax.set_xticks(x, [str(i + 1) for i in x])
-        if ax.get_legend_handles_labels()[0]:
-            ax.legend(loc="best")
+        ax.legend(loc="best")
     return fig
 
 
@@ -139,7 +138,8 @@ def _section_trend(run):
                   + [f"PML {c[4:]} yr [{cur}]#" for c in pmls]
                   + ["expected collapses#", "inputs changed since the run before"], rows),
            _figure_html(_trend_figure(frame, cur), "trend of EAL, AAL and PML across runs",
-                        f"Figure: left, classical EAL and event-based AAL [million {cur}/yr]; right, ground-up "
-                        f"aggregate PML per return period [million {cur}]; x: the runs of the table above, oldest "
-                        "first. A missing point: the run has no such figure (no event stage, another return period).")]
+                        f"Figure: classical EAL and event-based AAL [{cur}/yr]; beside it, where the runs simulated "
+                        f"events, the ground-up aggregate PML per return period [{cur}]; x: the runs of the table "
+                        "above, oldest first. A missing point: the run has no such figure (no event stage, another "
+                        "return period).")]
     return "".join(out)
