@@ -125,6 +125,7 @@ def _section_screening(run):
                  "not screened." if unscreened else "")),
            _p(_target_basis(run, target_p, target_t))]
     out += tables
+    out += _whatif_moves(run)
     flagged = scr[scr.exceeds_target]
     shown = top_rows(flagged, "ratio_to_target", SCREENING_ROWS)
     rows = [[r.asset_id, r.building_class, r.site_id, _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
@@ -138,6 +139,19 @@ def _section_screening(run):
                                    if len(flagged) > len(shown) else "")))
     out += _risk_targeted_html(run, target_p, target_t)
     return "".join(out)
+
+
+def _whatif_moves(run):
+    """One sentence per retrofit alternative: how many of its buildings it brings below the target."""
+    assets = run.table("whatif_assets")
+    if assets is None or not len(assets) or "exceeds_collapse_target_after" not in assets:
+        return []
+    parts = []
+    for alt, g in assets.groupby("alternative_id", sort=False):
+        before, after = int(g.exceeds_collapse_target_before.sum()), int(g.exceeds_collapse_target_after.sum())
+        parts.append(f"'{alt}' brings {before - after:,} of its {before:,} buildings above the target below it "
+                     f"({after:,} stay above)")
+    return [_p("Retrofit what-if (next section): " + "; ".join(parts) + ".")]
 
 
 def _risk_targeted_html(run, target_p, target_t):
@@ -280,7 +294,7 @@ def _per_building(bc, assets, cur):
         per = per.merge(assets[[c for c in keep if c in assets]], on="asset_id", how="left")
     order = per.sort_values(["benefit_cost_ratio", "asset_id"], ascending=[False, True])
     if len(order) > 2 * BCR_ROWS:
-        parts = [("best", order.head(BCR_ROWS)), ("worst", order.tail(BCR_ROWS))]
+        parts = [("best", order.head(BCR_ROWS)), ("worst", order.tail(BCR_ROWS).iloc[::-1])]
     else:
         parts = [("all", order)]
     out = []
@@ -299,11 +313,11 @@ def _per_building(bc, assets, cur):
                          _cell(f"{_prob(p0)} → {_prob(p1)}", p1),
                          "" if verdict is None else ("above" if verdict else "below")])
         what = {"best": f"The {len(frame)} buildings of highest benefit-cost ratio",
-                "worst": f"The {len(frame)} buildings of lowest benefit-cost ratio",
+                "worst": f"The {len(frame)} buildings of lowest benefit-cost ratio, lowest first",
                 "all": "Every building of the alternative, highest benefit-cost ratio first"}[which]
         out.append(_table(["asset", "class", f"value [{cur}]#", f"retrofit cost [{cur}]#",
                            f"avoided EAL [{cur}/yr]#", f"PV avoided [{cur}]#", "benefit-cost ratio#",
-                           "P(collapse in horizon), before → after#", "after: target"], rows, sortable=True, fit=True,
+                           "P(collapse in horizon), before → after#", "after, against the target"], rows, sortable=True, fit=True,
                           caption=f"{what} (all {len(per):,} in whatif_benefit_cost.parquet, scope 'asset')"))
     return out
 
