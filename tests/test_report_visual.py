@@ -227,12 +227,18 @@ def test_trend_of_three_runs_matches_history(three_runs):
     assert trend_frame(ReportRun(three_runs[1])).run_id.tolist() == [p.name for p in three_runs[:2]]
 
 
-def test_trend_section_of_the_third_run(three_runs):
-    html = build_report(three_runs[-1])
-    body = _section(html, "trend")
-    assert body.count("<tr>") == 1 + 3 and "(this run)" in body and body.count("<img") == 1
-    first = build_report(three_runs[0])
-    assert "No earlier run in this output folder" in _section(first, "trend")
+def test_trend_section_of_the_third_run(three_runs, tmp_path):
+    from quakefolio.pipeline.io.cache import StageCache
+    from quakefolio.pipeline.report.document import CACHED_SECTIONS
+    from quakefolio.pipeline.report.sections_trend import _section_trend
+
+    assert "trend" not in CACHED_SECTIONS  # it depends on the other runs of the folder
+    cache = StageCache(tmp_path)
+    drawn = _section(build_report(three_runs[-1], cache=cache), "trend")
+    assert drawn.count("<tr>") == 1 + 3 and "(this run)" in drawn and drawn.count("<img") == 1
+    again = _section(build_report(three_runs[-1], cache=cache), "trend")  # other sections from the cache
+    assert again == drawn
+    assert "No earlier run in this output folder" in _section_trend(ReportRun(three_runs[0]))
 
 
 # --- rendered ----------------------------------------------------------------------------------------
@@ -277,3 +283,4 @@ def test_visual_items_render_in_headless_chromium(report, tmp_path):
 def test_manifest_lists_new_tables(compute_run):
     manifest = json.loads((compute_run / "manifest.json").read_text())
     assert {"source_faults", "whatif_fragility"} <= set(manifest["units"])
+
