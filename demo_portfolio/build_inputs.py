@@ -88,8 +88,8 @@ contents_damage_ratio = 0.08
 
 [[classes.MAS-UR-RF.states]]
 name = "irreparable"
-median = 0.56  # g (PGA)
-beta = 0.72
+median = 0.65  # g (PGA)
+beta = 0.7
 mean_damage_ratio = 0.65
 cov = 0.3
 downtime_days = 300
@@ -98,8 +98,8 @@ contents_damage_ratio = 0.35
 
 [[classes.MAS-UR-RF.states]]
 name = "collapse"
-median = 1.05  # g (PGA)
-beta = 0.74
+median = 1.15  # g (PGA)
+beta = 0.7
 mean_damage_ratio = 1.0
 downtime_days = 540
 casualty_rate = 0.15

@@ -38,7 +38,8 @@ from quakefolio.pipeline.io.atomic import atomic_write_bytes
 from quakefolio.pipeline.io.claims import RUN_ID
 from quakefolio.pipeline.io.store import METADATA_KEY, RunFolder, to_arrow
 
-__all__ = ["run_history", "write_history", "history_text", "HISTORY_FILE", "HEADLINE"]
+__all__ = ["run_history", "write_history", "history_text", "HISTORY_FILE", "HEADLINE", "finished_runs",
+           "headline_figures", "changed_inputs"]
 
 HISTORY_FILE = "history.parquet"
 #: Headline figures compared between runs (besides the PML columns), with their units.
@@ -84,6 +85,60 @@ def _headline(run):
         for rp, loss_at in ep[ep["basis"] == "ground_up"][["return_period_yr", "aep_loss"]].itertuples(index=False):
             pml[float(rp)] = float(loss_at)
     return out, pml
+
+
+def finished_runs(output):
+    """The finished run folders of an output folder, oldest first (the order of :func:`run_history`).
+
+    Parameters
+    ----------
+    output : path-like
+        An output folder holding ``runs/``.
+
+    Returns
+    -------
+    list of pathlib.Path
+
+    Raises
+    ------
+    InputError
+        When ``output`` has no ``runs/`` folder.
+    """
+    return _runs(output)
+
+
+def headline_figures(run):
+    """The headline figures of one run, as :func:`run_history` lists them.
+
+    Parameters
+    ----------
+    run : quakefolio.pipeline.io.store.RunFolder
+        A run folder (or the report's view of one, tables in memory included).
+
+    Returns
+    -------
+    figures : dict
+        :data:`HEADLINE` name -> value (``classical_eal`` [currency/yr] ...; NaN where the run
+        lacks it).
+    pml : dict
+        Return period [yr] -> ground-up aggregate PML [currency] of the event-based stage.
+    """
+    return _headline(run)
+
+
+def changed_inputs(before, after):
+    """``role: path`` of every input file whose sha256 differs between two run manifests ("; "-joined).
+
+    Parameters
+    ----------
+    before, after : dict
+        Run manifests.
+
+    Returns
+    -------
+    str
+    """
+    return _changed_inputs(before, after)
 
 
 def _changed_inputs(before, after):

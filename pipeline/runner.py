@@ -36,7 +36,7 @@ from quakefolio.pipeline.stages.damage import combine_damage, plan_blocks
 from quakefolio.pipeline.stages.inputs import load_inputs, stage_cache, with_hazard
 from quakefolio.pipeline.stages.products import CacheCounts, EventProduct, RunInputs, WhatIfProduct
 from quakefolio.pipeline.stages.regions import combination_record, site_input_record
-from quakefolio.pipeline.stages.sites import hazard_sites_table
+from quakefolio.pipeline.stages.sites import hazard_sites_table, source_faults_table
 
 #: The manifest's ``orchestration`` of a run that needed no flow: every stage's result was in the cache.
 FROM_CACHE = "none: every stage's result was in the content cache (no Prefect flow run)"
@@ -424,6 +424,8 @@ def _hazard_frames(inputs):
         "hazard_at_return_periods": hs.hazard_at_return_periods_table(inputs),
     }
     model = inputs.hazard_model
+    if model is not None:
+        frames["source_faults"] = source_faults_table(model)
     if model is not None and model.disagg is not None:
         frames["disaggregation"], frames["disaggregation_summary"] = hs.disaggregation_frames(
             model, inputs.hazard, inputs.config.hazard.return_periods_yr)

@@ -10,7 +10,9 @@ A scheduled run first compares a digest of every input file and the resolved con
 ``LATEST`` points to.  If they are equal it writes nothing (no run, no cache entry, no
 report) and says ``inputs unchanged since run <id>; nothing written``.  Otherwise it
 runs ``portfolio-risk`` as a subflow and writes the change report against the previous
-run (:func:`quakefolio.pipeline.compare.write_change_report`).
+run (:func:`quakefolio.pipeline.compare.write_change_report`); the new run's report shows the
+trend of the headline figures across the output folder's runs
+(:mod:`quakefolio.pipeline.report.sections_trend`).
 
 :func:`serve_schedule` with ``run_once=True`` creates the deployment, triggers one run
 now and executes it, without waiting for the clock (used by tests and for a manual

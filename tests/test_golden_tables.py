@@ -51,7 +51,8 @@ ADDED_COLUMNS = {f"{name}.parquet": ("lon", "lat") for name in (  # positions of
     "site_risk_targeted_im", "whatif_asset_damage", "whatif_assets", "whatif_benefit_cost", "whatif_people")}
 ADDED_COLUMNS["run_assets.parquet"] = ("terms_group",)  # the demo's [output] breakdown_columns
 #: Demo inputs the base commit's code does not know, removed from its copy: (file, regex).
-NEW_INPUTS = (("quakefolio*.toml", r"(?m)^breakdown_columns = .*\n"),)
+NEW_INPUTS = (("quakefolio*.toml", r"(?m)^breakdown_columns = .*\n"),  # [output] breakdown_columns
+              ("quakefolio.toml", r"target_basis = .*\n"))  # [screening] target_basis: words for the report
 
 
 def _loss_curve_long(table):

@@ -146,6 +146,7 @@ SCHEMA = {
     "screening": {
         "collapse_target_prob": _key(_FLOAT, 0.01, _PROBABILITY, help="target collapse probability [-]"),
         "collapse_target_years": _key(_FLOAT, 50.0, _POSITIVE, help="period of the target probability [yr]"),
+        "target_basis": _key(_STR, "", help="where the collapse target comes from, in words (shown in the report)"),
         "rt_beta": _key(_FLOAT, 0.6, _POSITIVE, help="dispersion of the generic collapse fragility [-]"),
         "rt_prob_at_im": _key(_FLOAT, 0.10, _PROBABILITY,
                               help="collapse probability of the generic fragility at the risk-targeted IM [-]"),
@@ -288,6 +289,7 @@ class ScreeningSettings(_Section):
 
     collapse_target_prob: float  #: target collapse probability [-]
     collapse_target_years: float  #: period of the target probability [yr]
+    target_basis: str  #: where the target comes from, in words ("": not stated)
     rt_beta: float  #: dispersion of the generic collapse fragility [-]
     rt_prob_at_im: float  #: collapse probability of the generic fragility at the risk-targeted IM [-]
 

@@ -20,7 +20,7 @@ import pandas as pd
 
 from quakefolio.fragility.models import DamageStateSet, FragilityLibrary, VulnerabilityFunction
 
-__all__ = ["run_input_frames", "library_from_frame", "ASSET_COLUMNS", "FRAGILITY_COLUMNS", "VULNERABILITY_COLUMNS"]
+__all__ = ["run_input_frames", "library_from_frame", "new_class_frame", "ASSET_COLUMNS", "FRAGILITY_COLUMNS", "VULNERABILITY_COLUMNS"]
 
 #: Columns of ``run_assets`` (the exposure contract), in order.
 ASSET_COLUMNS = ("asset_id", "lon", "lat", "building_class", "replacement_value", "vs30_mps", "occupants",
@@ -127,6 +127,36 @@ def run_input_frames(exposure, library, classes=None, extra_columns=()):
     if len(vulnerability):  # only runs that use a vulnerability class have the table
         out["run_vulnerability"] = vulnerability
     return out
+
+
+def new_class_frame(classes):
+    """The ``whatif_fragility`` table: the parameters of each retrofit alternative's new class.
+
+    Parameters
+    ----------
+    classes : sequence of (str, str, DamageStateSet)
+        Per alternative: its id, the new class code and the class's damage states (a class
+        given by a vulnerability table has none and is left out).
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``alternative_id`` then the columns of :data:`FRAGILITY_COLUMNS` (``median`` [IM
+        units, g], ``beta`` [-], ...), one row per alternative and damage state, in severity
+        order; :func:`library_from_frame` of one alternative's rows restores its class.
+    """
+    parts = []
+    for alt_id, code, dss in classes:
+        if not getattr(dss, "has_damage_states", True):
+            continue
+        part = _fragility_frame({code: dss}, [code])
+        part.insert(0, "alternative_id", pd.Series([alt_id] * len(part), dtype=object))
+        parts.append(part)
+    if not parts:
+        empty = _fragility_frame({}, [])
+        empty.insert(0, "alternative_id", pd.Series([], dtype=object))
+        return empty
+    return pd.concat(parts, ignore_index=True)
 
 
 def library_from_frame(frame, vulnerability=None):

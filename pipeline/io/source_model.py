@@ -133,12 +133,14 @@ class SourceModel:
     ``magnitudes`` holds per source ``(row, column, smallest, largest magnitude [Mw], tectonic
     region)`` with the line and key of its ``mfd`` (for checks against the region's
     ground-motion models), and
-    ``warnings`` the doubts found in the file (:class:`~quakefolio.core.errors.InputWarning`).
+    ``warnings`` the doubts found in the file (:class:`~quakefolio.core.errors.InputWarning`), and
+    ``traces`` per fault ``(source id, tectonic region, ((lon, lat) [deg], ...))``: its trace as given,
+    for maps.
     """
 
-    def __init__(self, path, name, ruptures, sources, sha256, magnitudes=(), warnings=()):
+    def __init__(self, path, name, ruptures, sources, sha256, magnitudes=(), warnings=(), traces=()):
         self.path, self.name, self.ruptures, self.sources, self.sha256 = path, name, ruptures, sources, sha256
-        self.magnitudes, self.warnings = tuple(magnitudes), tuple(warnings)
+        self.magnitudes, self.warnings, self.traces = tuple(magnitudes), tuple(warnings), tuple(traces)
 
 
 _TOP_SCHEMA = Schema({key: Field((), None) for key in _TOP})
@@ -230,8 +232,9 @@ def load_source_model(path, limit=None):
         On the first problem, naming file, line and key (among them a self-crossing fault
         trace and a magnitude above :data:`~quakefolio.core.plausibility.MAX_MAGNITUDE`).
     """
-    sets, summary, name, digest, magnitudes, notes = _read(path, _Tally(limit, build=True))
-    return SourceModel(str(path), name, RuptureSet.concat(sets), summary, digest, magnitudes, notes)
+    traces = []
+    sets, summary, name, digest, magnitudes, notes = _read(path, _Tally(limit, build=True), traces)
+    return SourceModel(str(path), name, RuptureSet.concat(sets), summary, digest, magnitudes, notes, traces)
 
 
 def count_source_model(path, limit=None):
@@ -259,9 +262,9 @@ def count_source_model(path, limit=None):
     return tally.used
 
 
-def _read(path, tally):
+def _read(path, tally, traces=None):
     """Every source of a file in order: (rupture sets, summary rows, model name, sha256, magnitude ranges,
-    warnings)."""
+    warnings); each fault's (id, region, trace) appended to ``traces`` when given."""
     text, data, digest = read_toml(path)
     path = str(path)
     root = toml_place(path, text, (), "")
@@ -280,6 +283,9 @@ def _read(path, tally):
             summary.append(row)
             magnitudes += [mags] if mags else []
             notes += doubts
+            if kind == "faults" and traces is not None:  # the trace passed _build's checks
+                points = tuple((float(p[0]), float(p[1])) for p in src["trace"])
+                traces.append((row["source_id"], row["region"], points))
     if not sets:
         raise root.error("the source model defines no source ([[faults]], [[areas]] or [[points]])")
     return sets, summary, str(data.get("name", "")), digest, magnitudes, notes

@@ -10,6 +10,12 @@ TABLES = {
         units={"lon": "deg", "lat": "deg", "vs30_mps": "m/s", "n_assets_default_vs30": "-", "n_assets": "-",
                "max_asset_distance_km": "km"},
     ),
+    "source_faults": dict(
+        description="Compute mode: the fault traces of the source models, one row per trace point in the order "
+                    "given (source_branch, source_id, tectonic region, point_index); areas and points are not "
+                    "listed. Drawn on the report's map.",
+        units={"point_index": "-", "lon": "deg", "lat": "deg"},
+    ),
     "site_hazard": dict(
         description="Site hazard curves used by the run (long form): tabulated, or computed (the mean and the "
                     "weighted fractiles over every logic-tree combination of a source-model branch and one "
@@ -404,6 +410,13 @@ TABLES.update({
                     "name kept) and the z-score.",
         units={"annual_average": "see column unit", "standard_error": "see column unit",
                "classical_same_branch": "see column unit", "z": "-"},
+    ),
+    "whatif_fragility": dict(
+        description="Retrofit what-if: the fragility and consequence parameters of each alternative's new class "
+                    "(columns of run_fragility after alternative_id; one row per alternative and damage state), "
+                    "so the report draws the retrofit curves beside the original class's.",
+        units={"median": "g", "beta": "-", "mean_damage_ratio": "-", "cov": "-", "downtime_days": "days",
+               "casualty_rate": "-", "contents_damage_ratio": "-"},
     ),
     "whatif_people": dict(
         description="Retrofit what-if per alternative (scope 'alternative', sums) and selected asset: classical "

@@ -18,7 +18,9 @@ from quakefolio.pipeline.report.sections_assets import _section_riskiest
 from quakefolio.pipeline.report.sections_changes import _section_changes
 from quakefolio.pipeline.report.sections_hazard import _section_hazard
 from quakefolio.pipeline.report.sections_overview import _key_figures, _section_checks, _section_inputs
-from quakefolio.pipeline.report.sections_portfolio import _section_portfolio, _section_screening, _section_whatif
+from quakefolio.pipeline.report.sections_portfolio import _section_portfolio
+from quakefolio.pipeline.report.sections_retrofit import _section_screening, _section_whatif
+from quakefolio.pipeline.report.sections_trend import _section_trend
 from quakefolio.pipeline.report.sections_people import _section_people
 from quakefolio.pipeline.report.sections_summary import _section_breakdowns, _section_events, _section_exposure
 from quakefolio.pipeline.io.store import atomic_write_text
@@ -46,6 +48,7 @@ SECTIONS = (
     ("people", "People and time: casualties, downtime, losses by coverage"),
     ("map", "Map of assets"),
     ("changes", "Changes since the previous run"),
+    ("trend", "Trend across the runs of the output folder"),
     ("checks", "Built-in cross-checks and hazard logic tree"),
 )
 
@@ -63,9 +66,12 @@ def _not_drawn(exc):
 
 
 #: Sections drawn from the run's tables and its settings alone (the same for every run of the same
-#: inputs and code), kept in the content cache; the others name the run, its timings or another run.
+#: inputs and code), kept in the content cache; the others name the run, its timings or another run
+#: (the trend reads the other runs of the output folder, so it is never cached).
 CACHED_SECTIONS = frozenset({"hazard", "fragility", "damage", "riskiest", "portfolio", "screening", "whatif",
                              "people", "map", "exposure", "events", "breakdowns"})
+#: Sections that draw figures besides the cached ones.
+_DRAWING_SECTIONS = CACHED_SECTIONS | {"trend"}
 
 
 def _section_key(run, sid):
@@ -100,7 +106,7 @@ def _bodies(builders, run, cache):
             bodies[sid] = found["html"].tobytes().decode("utf-8")
         else:
             todo[sid] = (key, fn, args)
-    with _figure_style(any(sid in CACHED_SECTIONS for sid in todo)):  # the others draw no figure
+    with _figure_style(any(sid in _DRAWING_SECTIONS for sid in todo)):  # the others draw no figure
         for sid, (key, fn, args) in todo.items():
             try:
                 bodies[sid] = fn(*args)
@@ -152,7 +158,8 @@ def build_report(run_dir, *, previous_run=None, tables=None, cache=None):
         "portfolio": (_section_portfolio, run), "events": (_section_events, run),
         "breakdowns": (_section_breakdowns, run), "screening": (_section_screening, run),
         "whatif": (_section_whatif, run), "people": (_section_people, run), "map": (_section_map, run),
-        "changes": (_section_changes, run, previous_run), "checks": (_section_checks, run),
+        "changes": (_section_changes, run, previous_run), "trend": (_section_trend, run),
+        "checks": (_section_checks, run),
     }
     bodies, keys = _bodies(builders, run, cache)
     scenario = run.manifest.get("scenario") or run.section("scenario").get("name", "")

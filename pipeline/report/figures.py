@@ -419,7 +419,9 @@ def map_cells(d, cells_across=MAP_CELLS_ACROSS):
     cells : pandas.DataFrame
         One row per occupied cell: ``lon``, ``lat`` [deg] (value-weighted mean position of
         its assets), ``replacement_value`` [currency] (sum), ``eal_ratio`` [1/yr] (sum of
-        EAL / sum of value: the cell's own EAL ratio) and ``n_assets``.
+        EAL / sum of value: the cell's own EAL ratio) and ``n_assets``; with
+        ``collapse_prob_in_horizon`` [-] in ``d``, its mean over the cell's assets (expected
+        collapses per building).
     cell_km : float
         Side of a cell [km].
 
@@ -449,56 +451,10 @@ def map_cells(d, cells_across=MAP_CELLS_ACROSS):
         "eal_ratio": np.bincount(cell, weights=value * d.eal_ratio.to_numpy(float), minlength=len(keys)) / weight,
         "n_assets": np.bincount(cell, minlength=len(keys)),
     })
+    if "collapse_prob_in_horizon" in d:  # the mean over the cell's buildings: its expected collapses per building
+        cells["collapse_prob_in_horizon"] = (np.bincount(cell, weights=d.collapse_prob_in_horizon.to_numpy(float),
+                                                         minlength=len(keys)) / cells.n_assets.to_numpy())
     return cells, cell_km
-
-
-def _map_figure(d, cur):
-    """Assets at their positions: marker area by replacement value, colour by EAL ratio.
-
-    Parameters
-    ----------
-    d : pandas.DataFrame
-        ``asset_loss`` rows with ``lon``, ``lat`` [deg], ``replacement_value`` [currency], ``eal_ratio`` [1/yr].
-    cur : str
-        Currency code.
-
-    Returns
-    -------
-    fig : matplotlib.figure.Figure
-    capped : bool
-        Whether the colour scale is capped at the 99th percentile.
-    bar_km : float
-        Length of the scale bar [km].
-    """
-    from matplotlib.colors import LinearSegmentedColormap
-
-    lat0 = float(np.deg2rad(d.lat.mean()))
-    fig = _new_figure(7.4, 6.4)
-    ax = fig.subplots()
-    cmap = LinearSegmentedColormap.from_list("qf_loss", ["#e9e2c8", "#d9b44a", "#c97d2c", "#9b3b2f", "#3d1712"])
-    # with many assets a few extreme ratios would wash out the rest: cap the colour scale at the 99th percentile
-    capped = len(d) >= 100
-    vmax = float(np.nanpercentile(1000 * d.eal_ratio, 99 if capped else 100)) or None
-    vmax_value = float(d.replacement_value.max())
-    size = 6.0 + 220.0 * np.sqrt(d.replacement_value / vmax_value)
-    order = np.argsort(-d.replacement_value.to_numpy())
-    sc = ax.scatter(d.lon.to_numpy()[order], d.lat.to_numpy()[order], s=size.to_numpy()[order],
-                    c=1000 * d.eal_ratio.to_numpy()[order], cmap=cmap, vmin=0, vmax=vmax, edgecolors=_INK,
-                    linewidths=0.35, alpha=0.9)
-    cb = fig.colorbar(sc, ax=ax, shrink=0.75, pad=0.02,
-                      extend="max" if vmax and (1000 * d.eal_ratio).max() > vmax else "neither")
-    cb.set_label("EAL ratio [‰ of value per yr]")
-    ax.set_aspect(1.0 / math.cos(lat0))
-    ax.set_xlabel("longitude [°]")
-    ax.set_ylabel("latitude [°]")
-    ax.ticklabel_format(useOffset=False, style="plain")
-    # value legend
-    refs = sorted({_nice(v) for v in np.quantile(d.replacement_value, [0.5, 0.9, 1.0])})
-    handles = [ax.scatter([], [], s=6.0 + 220.0 * np.sqrt(v / vmax_value), facecolor="none", edgecolors=_INK,
-                          linewidths=0.6) for v in refs]
-    fig.legend(handles, [f"{v:,.0f}" for v in refs], title=f"marker area: replacement value [{cur}]",
-               title_fontsize=7.5, loc="outside lower center", ncol=len(refs), columnspacing=2.5, fontsize=7.5)
-    return fig, capped, _scale_bar(ax, lat0)
 
 
 # --- portfolio ---------------------------------------------------------------------------------------

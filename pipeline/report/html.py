@@ -65,10 +65,16 @@ details.explain summary{cursor:pointer;font-weight:600}
 details.explain ul{margin:6px 0 2px;padding-left:18px}
 details.explain li{margin:4px 0;max-width:110ch}
 footer{color:var(--muted);font-size:12px;padding:16px 0}
-@media print{nav{display:none}.scroll{max-height:none;overflow:visible}figure,table{break-inside:avoid}}
+.toggle{display:flex;flex-wrap:wrap;gap:4px 16px;align-items:center;margin:8px 0;font-size:13px}
+.toggle label{cursor:pointer}
+.views>[hidden]{display:none}
+table.fit{max-width:100%}
+table.fit th,table.fit td,table.fit td.n,table.fit th.n{white-space:normal}
+@media print{.views>[hidden]{display:block}nav{display:none}.scroll{max-height:none;overflow:visible}figure,table{break-inside:avoid}}
 """
 
-# Sort a table by the clicked header: numbers by their data-v attribute, text otherwise.
+# Sort a table by the clicked header: numbers by their data-v attribute, text otherwise; a radio button of a
+# .toggle shows the child of the .views block (data-toggle = its name) whose data-view is its value.
 _JS = """
 (function(){
 function key(c){var v=c.getAttribute('data-v');if(v===null)return c.textContent.trim().toLowerCase();
@@ -86,6 +92,10 @@ rows.forEach(function(r){b.appendChild(r);});}
 th.addEventListener('click',go);
 th.addEventListener('keydown',function(e){if(e.key==='Enter'||e.key===' '){e.preventDefault();go();}});
 });});
+document.querySelectorAll('.toggle input[type=radio]').forEach(function(r){
+r.addEventListener('change',function(){var v=document.querySelector('.views[data-toggle="'+r.name+'"]');
+if(!v)return;Array.prototype.forEach.call(v.children,function(c){c.hidden=c.getAttribute('data-view')!==r.value;});});
+});
 })();
 """
 
@@ -146,11 +156,12 @@ def _cell(text, value=None):
     return ("n", text, _sv(value))
 
 
-def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=None, wide=False):
+def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=None, wide=False, fit=False):
     """HTML table. ``headers``: labels (a label ending in ``#`` is a numeric column,
     shown without the mark). ``rows``: lists of cells, each a plain value (escaped),
     :func:`_cell` output (right-aligned, sorted numerically) or :func:`_html` output.
-    ``groups``: optional ``[(label, n_columns), ...]`` header row above the labels."""
+    ``groups``: optional ``[(label, n_columns), ...]`` header row above the labels.
+    ``fit``: headers and cells wrap, so a table of many columns stays within the page's width."""
     top = ""
     if groups:
         top = "<tr>" + "".join(f"<th class=group colspan={n} scope=colgroup>{_esc(g)}</th>"
@@ -171,7 +182,7 @@ def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=
                 text = str(c)
                 cells.append(f"<td{' class=wrap' if len(text) > 28 else ''}>{_esc(text)}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
-    classes = " ".join(c for c, on in (("sortable", sortable), ("wide", wide)) if on)
+    classes = " ".join(c for c, on in (("sortable", sortable), ("wide", wide), ("fit", fit)) if on)
     cls = f' class="{classes}"' if classes else ""
     cap = f"<caption>{_esc(caption)}</caption>" if caption else ""
     out = f"<table{cls}>{cap}<thead>{top}<tr>{''.join(hs)}</tr></thead><tbody>{''.join(body)}</tbody></table>"
@@ -181,6 +192,19 @@ def _table(headers, rows, *, sortable=False, scroll=False, caption=None, groups=
 def _html(fragment):
     """A table cell holding trusted HTML (already escaped by the caller)."""
     return ("html", fragment)
+
+
+def _toggle(name, label, views, default):
+    """Radio buttons showing one of several views (e.g. one figure per colouring); the others are hidden.
+
+    ``views``: ``[(value, radio label, html), ...]``; ``default``: the value shown first.
+    Without the script every view after the default stays hidden; printing shows them all."""
+    radios = "".join(f'<label><input type="radio" name="{_esc(name)}" value="{_esc(v)}"'
+                     f'{" checked" if v == default else ""}> {_esc(text)}</label>' for v, text, _ in views)
+    blocks = "".join(f'<div data-view="{_esc(v)}"{"" if v == default else " hidden"}>{body}</div>'
+                     for v, _, body in views)
+    return (f'<div class="toggle" role="radiogroup" aria-label="{_esc(label)}"><span>{_esc(label)}:</span>'
+            f'{radios}</div><div class="views" data-toggle="{_esc(name)}">{blocks}</div>')
 
 
 def _note(text):

@@ -1,13 +1,16 @@
 """Report sections per building class and per asset: fragility curves, damage table, riskiest assets, map."""
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 
+from quakefolio.core.errors import InputError
 from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, PREDATES_NOTE, TOP_ASSETS, state_catalogue, top_rows
 from quakefolio.pipeline.report.figures import (
-    MAP_MAX_MARKERS, _figure_html, _fragility_figure, _map_figure, _vulnerability_figure, map_cells,
+    MAP_MAX_MARKERS, _figure_html, _fragility_figure, _vulnerability_figure, map_cells,
 )
-from quakefolio.pipeline.report.html import _cell, _esc, _g, _money, _note, _p, _pct, _prob, _rate, _table
+from quakefolio.pipeline.report.figures_map import MAP_COLOURINGS, map_figure, portfolio_outline
+from quakefolio.pipeline.report.html import _cell, _esc, _g, _money, _note, _p, _pct, _prob, _rate, _table, _toggle
 
 
 # --- fragility ---------------------------------------------------------------------------------------
@@ -237,8 +240,52 @@ def _section_riskiest(run):
 
 # --- map ---------------------------------------------------------------------------------------------
 
+def _map_frame(run):
+    """The assets with positions (or a note): (frame, missing count) or (None, note HTML)."""
+    base = ["asset_id", "replacement_value", "eal_ratio"]
+    try:
+        loss = run.table("asset_loss", columns=base + ["collapse_prob_in_horizon"])
+    except InputError:  # a table without the collapse column: no collapse colouring
+        loss = run.table("asset_loss", columns=base)
+        loss = loss.assign(collapse_prob_in_horizon=np.nan)
+    if loss is None or not len(loss):
+        return None, _note("This run holds no per-asset results (hazard stage only).")
+    if not run.has("run_assets"):
+        return None, _note(PREDATES_NOTE.format(what="asset positions"))
+    assets = run.table("run_assets", columns=["asset_id", "lon", "lat"])
+    if len(assets) == len(loss) and assets.asset_id.equals(loss.asset_id):  # the same assets in the same order
+        d = loss.assign(lon=assets.lon.to_numpy(), lat=assets.lat.to_numpy())
+    else:
+        d = loss.merge(assets, on="asset_id", how="left")
+    missing = int(d.lon.isna().sum())
+    d = d.dropna(subset=["lon", "lat"])
+    if not len(d):
+        return None, _note("No asset of the run has a position in the stored assets.")
+    return d, missing
+
+
+def _map_layers_text(layers, faults_stored):
+    """What the caption says of the layers drawn."""
+    parts = [f"triangles: the {layers.sites} hazard sites" if layers.sites else "no hazard-site table in this run",
+             "dashed grey line: the portfolio's outline (convex hull of the asset positions)"]
+    if layers.faults:
+        parts.append("black lines: the source model's fault traces (" + ", ".join(layers.faults) +
+                     "; the legend tells crustal from other tectonic regions)")
+    elif not faults_stored:
+        parts.append("no fault traces (hazard tabulated from a file, or a run that predates the source_faults table)")
+    if layers.faults_outside:
+        parts.append("faults outside the frame: " + ", ".join(layers.faults_outside))
+    text = "; ".join(parts)
+    return text[:1].upper() + text[1:]
+
+
 def _section_map(run):
-    """Section: map of the assets at their stored positions (``run_assets``), by value and EAL ratio.
+    """Section: map of the assets, faults, hazard sites and the portfolio's outline; colour chosen by a toggle.
+
+    One figure per colouring (:data:`~quakefolio.pipeline.report.figures_map.MAP_COLOURINGS`: EAL
+    ratio, the default, collapse probability in the horizon, replacement value), shown one at a
+    time by radio buttons.  Above :data:`MAP_MAX_MARKERS` assets the markers are grid cells, so
+    the drawing's cost does not grow with the number of buildings.
 
     Parameters
     ----------
@@ -249,40 +296,46 @@ def _section_map(run):
     str
         HTML of the section body; a one-line note for runs that predate stored inputs.
     """
-    loss = run.table("asset_loss", columns=["asset_id", "replacement_value", "eal_ratio"])
-    if loss is None or not len(loss):
-        return _note("This run holds no per-asset results (hazard stage only).")
-    if not run.has("run_assets"):
-        return _note(PREDATES_NOTE.format(what="asset positions"))
-    assets = run.table("run_assets", columns=["asset_id", "lon", "lat"])
-    if len(assets) == len(loss) and assets.asset_id.equals(loss.asset_id):  # the same assets in the same order
-        d = loss.assign(lon=assets.lon.to_numpy(), lat=assets.lat.to_numpy())
-    else:
-        d = loss.merge(assets, on="asset_id", how="left")
-    missing = int(d.lon.isna().sum())
-    d = d.dropna(subset=["lon", "lat"])
-    if not len(d):
-        return _note("No asset of the run has a position in the stored assets.")
-    cur = run.currency
+    d, missing = _map_frame(run)
+    if d is None:
+        return missing
+    cur, h = run.currency, run.horizon
     cells = None
     if len(d) > MAP_MAX_MARKERS:
         cells, cell_km = map_cells(d)
-    fig, capped, bar_km = _map_figure(d if cells is None else cells, cur)
+    sites = run.table("hazard_sites", columns=["site_id", "lon", "lat"]) if run.has("hazard_sites") else None
+    faults = run.table("source_faults")
+    outline = portfolio_outline(d.lon, d.lat)
     if cells is None:
         what = (f"{len(d):,} assets at their positions in the exposure the run used (WGS84 degrees); marker area "
-                f"grows with replacement value [{cur}], colour gives the expected annual loss ratio")
+                f"grows with replacement value [{cur}]")
     else:
         what = (f"{len(d):,} assets of the exposure the run used, aggregated on a grid of {cell_km:g} km cells "
                 f"(more than {MAP_MAX_MARKERS:,} assets are not drawn one by one): one marker per occupied cell "
                 f"({len(cells):,}) at the value-weighted mean position of its assets (WGS84 degrees); marker area "
-                f"grows with the cell's total replacement value [{cur}], colour gives the cell's expected annual "
-                "loss ratio (its EAL over its value)")
-    caption = (f"Figure: {what} [‰ of value per year, classical]"
-               f"{' (colour scale capped at the 99th percentile)' if capped else ''}. Axes are drawn with equal "
-               f"ground distance per degree at latitude {d.lat.mean():.2f}° (x stretched by 1/cos(lat)); the scale "
-               f"bar is {bar_km:g} km.")
-    alt = "map of assets by replacement value and EAL ratio" + ("" if cells is None else " (grid cells)")
-    out = [_figure_html(fig, alt, caption)]
+                f"grows with the cell's total replacement value [{cur}]")
+    colour = {"eal": "colour: expected annual loss ratio [‰ of value per year, classical]" +
+                     ("" if cells is None else " (the cell's EAL over its value)"),
+              "collapse": f"colour: probability of collapse in {h:g} years [%, classical]" +
+                          ("" if cells is None else " (mean over the cell's buildings)"),
+              "value": f"colour: replacement value [{cur}]" + ("" if cells is None else " (the cell's total)")}
+    views = []
+    for key, (label, _bar) in MAP_COLOURINGS.items():
+        if key == "collapse" and d.collapse_prob_in_horizon.isna().all():
+            continue
+        fig, capped, bar_km, layers = map_figure(d if cells is None else cells, cur, key, horizon=h, faults=faults,
+                                                 sites=sites, outline=outline)
+        caption = (f"Figure: {what}; {colour[key]}{' (colour scale capped at the 99th percentile)' if capped else ''}"
+                   f". {_map_layers_text(layers, faults is not None)}. Axes are drawn with equal ground distance per "
+                   f"degree at the frame's mean latitude (x stretched by 1/cos(lat)); the scale bar is {bar_km:g} km.")
+        alt = f"map of assets coloured by {label}" + ("" if cells is None else " (grid cells)")
+        body = (f'<div class="map" data-colour="{key}" data-faults="{len(layers.faults)}" '
+                f'data-sites="{layers.sites}" data-outline="{layers.outline_vertices}">'
+                f"{_figure_html(fig, alt, caption)}</div>")
+        views.append((key, label, body))
+    out = [_p("The assets with the source model's faults, the hazard sites their hazard was computed or read at, "
+              "and the outline of the portfolio. Choose what the colour shows:"),
+           _toggle("map-colour", "Colour the map by", views, "eal")]
     if missing:
         out.append(_note(f"{missing} asset(s) of the run have no position in the stored assets and are not drawn."))
     return "".join(out)

@@ -1,9 +1,8 @@
-"""Report sections on portfolio results: event-based losses, collapse-risk screening, retrofit what-if."""
+"""Report section on portfolio results: event-based losses (screening and what-if: sections_retrofit)."""
 from __future__ import annotations
 
-from quakefolio.pipeline.report.context import SCREENING_ROWS, top_rows
 from quakefolio.pipeline.report.figures import _ep_curve_figure, _figure_html
-from quakefolio.pipeline.report.html import _cell, _g, _money, _note, _p, _pct, _prob, _rate, _table
+from quakefolio.pipeline.report.html import _cell, _money, _note, _p, _pct, _table
 from quakefolio.pipeline.summary import loss_model_label
 from quakefolio.pipeline.report.sections_programme import programme_html
 
@@ -110,111 +109,6 @@ def _branch_section(branches, frac, cur):
     out.append(_p("Fractiles across the branch combinations by weight (the smallest branch value whose cumulative "
                   "weight reaches the fractile), each branch from its own years; n/a where a branch has fewer "
                   "years than the return period."))
-    return "".join(out)
-
-
-def _section_screening(run):
-    """Section: collapse-risk screening against the target and the risk-targeted IM at the used sites.
-
-    Parameters
-    ----------
-    run : ReportRun
-
-    Returns
-    -------
-    str
-        HTML of the section body; a note when the run holds no such tables.
-    """
-    scr = run.table("collapse_screening")
-    if scr is None or not len(scr):
-        return _note("This run holds no screening table (hazard stage only).")
-    target_p, target_t = float(scr.target_prob.iloc[0]), float(scr.target_years.iloc[0])
-    flagged = scr[scr.exceeds_target]
-    unscreened = int(scr.collapse_prob_in_target_years.isna().sum())  # classes without damage states
-    out = [_p(f"Each asset's annual collapse rate from this run, as a probability of collapse in {target_t:g} years "
-              f"(Poisson), against the target of {_pct(target_p)} in {target_t:g} years (the risk target of "
-              f"ASCE/SEI 7-16 Chapter 21). {len(flagged)} of {len(scr) - unscreened} assets exceed it."
-              + (f" {unscreened} assets of classes given by a vulnerability table have no damage states and are "
-                 "not screened." if unscreened else ""))]
-    by_class = scr.groupby("building_class").agg(n=("asset_id", "size"), over=("exceeds_target", "sum"),
-                                                 worst=("ratio_to_target", "max")).sort_values("worst", ascending=False)
-    out.append(_table(["class", "assets", "above the target", "largest ratio to target"],
-                      [[c, int(r.n), int(r.over), "not screened" if r.worst != r.worst else f"{r.worst:.2f}"]
-                       for c, r in by_class.iterrows()],
-                      caption="Buildings above the collapse-risk target, by class"))
-    shown = top_rows(flagged, "ratio_to_target", SCREENING_ROWS)
-    rows = [[r.asset_id, r.building_class, r.site_id, _cell(_rate(r.annual_collapse_rate), r.annual_collapse_rate),
-             _cell(_prob(r.collapse_prob_in_target_years), r.collapse_prob_in_target_years),
-             _cell(f"{r.ratio_to_target:.2f}", r.ratio_to_target)] for r in shown.itertuples()]
-    if rows:
-        out.append(_table(["asset", "class", "site", "collapse rate [1/yr]#",
-                           f"P(collapse in {target_t:g} yr)#", "ratio to target#"], rows, sortable=True,
-                          caption="Assets above the collapse-risk target, highest first" +
-                                  (f" (first {len(shown)} of {len(flagged)}; all are in collapse_screening.parquet)"
-                                   if len(flagged) > len(shown) else "")))
-    rt = run.table("site_risk_targeted_im")
-    if rt is not None and len(rt):
-        rt = rt[rt.statistic == ("mean" if "mean" in set(rt.statistic) else rt.statistic.iloc[0])]
-        loss = run.table("asset_loss", columns=["site_id"])
-        used = set(loss.site_id.unique()) if loss is not None else set(rt.site_id)
-        rt = rt[rt.site_id.isin(used)]
-        rows = []
-        for im, grp in rt.groupby("im", sort=True):
-            v, c = grp.risk_targeted_im_g.dropna(), grp.risk_coefficient.dropna()
-            rows.append([im, len(grp), _g(v.min()) if len(v) else "n/a", _g(v.median()) if len(v) else "n/a",
-                         _g(v.max()) if len(v) else "n/a",
-                         f"{c.min():.2f} to {c.max():.2f}" if len(c) else "n/a"])
-        out.append(_table(["IM", "sites", "risk-targeted IM, min [g]", "median [g]", "max [g]",
-                           "risk coefficient (to the 2%-in-50-yr IM)"], rows,
-                          caption="Risk-targeted IM at the sites used by the portfolio (generic collapse fragility "
-                                  "of ASCE/SEI 7-16 Section 21.2.1.2: 10% collapse probability at the IM, "
-                                  "dispersion as configured)"))
-    return "".join(out)
-
-
-def _section_whatif(run):
-    """Section: retrofit alternatives, portfolio before and after, and benefit-cost.
-
-    Parameters
-    ----------
-    run : ReportRun
-
-    Returns
-    -------
-    str
-        HTML of the section body; a note when the run holds no such tables.
-    """
-    port = run.table("whatif_portfolio")
-    bc = run.table("whatif_benefit_cost")
-    if port is None or not len(port):
-        return _note("No retrofit alternative is configured for this run ([[scenario.alternatives]]).")
-    cur = run.currency
-    out = [_p("Each alternative assigns other building classes (retrofit designs) to a set of assets and recomputes "
-              "their damage and loss with the same hazard and, for the event-based results, the same simulated "
-              "events and ground motions. Amounts per year unless stated.")]
-    for alt_id, grp in port.groupby("alternative_id", sort=False):
-        rows = []
-        for r in grp.itertuples():
-            label = r.metric.replace("_", " ") + ("" if r.basis != r.basis or not r.basis else f" ({r.basis})")
-            if r.return_period_yr == r.return_period_yr:
-                label += f", {r.return_period_yr:g} yr"
-            se = "" if r.standard_error_of_change != r.standard_error_of_change else \
-                f" (± {_money(r.standard_error_of_change)})"
-            rows.append([label, r.unit, _g(r.value_before, 4), _g(r.value_after, 4),
-                         _g(r.change, 4) + se, _pct(r.relative_change, signed=True)])
-        out.append(_table(["metric", "unit", "before", "after", "change", "relative"], rows,
-                          caption=f"Alternative '{alt_id}': portfolio before and after"))
-    if bc is not None and len(bc):
-        tot = bc[bc.scope == "alternative"]
-        rows = [[r.alternative_id, r.n_assets, _money(r.retrofit_cost), _money(r.avoided_eal),
-                 f"{r.discount_rate:.1%}, {r.benefit_horizon_yr:g} yr", _money(r.pv_avoided_loss),
-                 _money(r.net_present_value), f"{r.benefit_cost_ratio:.2f}",
-                 _prob(r.avoided_annual_collapse_prob)] for r in tot.itertuples()]
-        out.append(_table(["alternative", "assets", f"retrofit cost [{cur}]", f"avoided EAL [{cur}/yr]",
-                           "discount, horizon", f"PV of avoided loss [{cur}]", f"NPV [{cur}]",
-                           "benefit-cost ratio", "avoided annual collapse probability (sum)"], rows,
-                          caption="Benefit-cost: present value of the avoided expected annual loss over the "
-                                  "horizon (annuity factor (1 - (1 + r)^-T) / r) against the retrofit cost"))
     return "".join(out)
 
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-__all__ = ["hazard_sites_table"]
+__all__ = ["hazard_sites_table", "source_faults_table"]
 
 
 def hazard_sites_table(inputs):
@@ -39,3 +39,30 @@ def hazard_sites_table(inputs):
     np.maximum.at(farthest, index, np.asarray(inputs.site_distance_km, dtype=float))
     frame["max_asset_distance_km"] = farthest
     return pd.DataFrame(frame)
+
+
+def source_faults_table(model):
+    """The fault traces of the run's source models, one row per trace point (for maps).
+
+    Parameters
+    ----------
+    model : quakefolio.pipeline.stages.hazard.HazardModel
+        Computed-hazard model with its ``source_branches`` (each a
+        :class:`~quakefolio.pipeline.io.source_model.SourceModel` with ``traces``).
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``source_branch``, ``source_id``, ``region`` (tectonic region), ``point_index`` (0-based,
+        along the trace as given), ``lon`` and ``lat`` [deg, WGS84]: every fault of every
+        source-model branch (a fault shared by branches appears once per branch).  Areas and
+        points are not listed.
+    """
+    rows = [(bid, sid, region, k, lon, lat)
+            for bid, _weight, src in model.source_branches
+            for sid, region, trace in getattr(src, "traces", ())
+            for k, (lon, lat) in enumerate(trace)]
+    columns = ["source_branch", "source_id", "region", "point_index", "lon", "lat"]
+    frame = pd.DataFrame(rows, columns=columns)
+    return frame.astype({"source_branch": str, "source_id": str, "region": str, "point_index": np.int64,
+                         "lon": float, "lat": float})

@@ -58,6 +58,7 @@ from quakefolio.core.whatif import alternative_change, change, paired_aal_change
 from quakefolio.fragility import load_library
 from quakefolio.pipeline.io.arrow_columns import index_of, take_text, text_array, text_series
 from quakefolio.pipeline.io.ingest import curves_for_im
+from quakefolio.pipeline.io.run_inputs import new_class_frame
 from quakefolio.pipeline.stages.checks import LibraryLines, TabulatedLevels, check_class_hazard, computed_levels
 from quakefolio.pipeline.stages.people import add_benefits, moved_people, whatif_people_tables, year_totals
 
@@ -647,8 +648,8 @@ def evaluate(inputs, results, portfolio=None, em=None):
     -------
     dict name -> DataFrame
         ``collapse_screening``, ``site_risk_targeted_im`` always; ``whatif_assets``,
-        ``whatif_asset_damage``, ``whatif_portfolio`` and ``whatif_benefit_cost`` when
-        the config has alternatives.
+        ``whatif_asset_damage``, ``whatif_portfolio``, ``whatif_benefit_cost`` and
+        ``whatif_fragility`` (the new classes' parameters) when the config has alternatives.
     """
     alternatives = validate(inputs)
     by_class = _run_asset_rates(inputs, results)
@@ -660,4 +661,5 @@ def evaluate(inputs, results, portfolio=None, em=None):
         tables.update(whatif_people_tables(inputs, alternatives, by_class, people["ds_after"], portfolio,
                                            people.get("reruns")))
         add_benefits(tables, inputs)
+        tables["whatif_fragility"] = new_class_frame([(a.alt_id, a.new_class, a.dss) for a in alternatives])
     return tables
