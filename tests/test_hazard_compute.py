@@ -141,7 +141,7 @@ def test_hazard_only_run_writes_hazard_tables(compute_config):
     names = sorted(p.stem for p in run.glob("*.parquet"))
     # the hazard tables and sites, and the assets and fragility classes the run used (a run describes itself)
     assert names == ["disaggregation", "disaggregation_summary", "hazard_at_return_periods", "hazard_sites",
-                     "run_assets", "run_fragility", "site_hazard"]
+                     "run_assets", "run_fragility", "site_hazard", "source_faults"]
 
 
 def test_sites_snap_to_a_grid(compute_config):

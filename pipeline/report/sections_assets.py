@@ -272,7 +272,7 @@ def _map_layers_text(layers, faults_stored):
         parts.append("black lines: the source model's fault traces (" + ", ".join(layers.faults) +
                      "; the legend tells crustal from other tectonic regions)")
     elif not faults_stored:
-        parts.append("no fault traces (hazard tabulated from a file, or a run that predates the source_faults table)")
+        parts.append("no fault traces (the hazard was tabulated from a file, or the run stored no source_faults table)")
     if layers.faults_outside:
         parts.append("faults outside the frame: " + ", ".join(layers.faults_outside))
     text = "; ".join(parts)
