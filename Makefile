@@ -25,11 +25,12 @@ demo-scenario: $(STAMP)
 	$(BIN)/quakefolio scenario demo_portfolio/quakefolio.toml demo_portfolio/scenario_quarnel.toml \
 		--stations demo_portfolio/stations_quarnel.csv
 
-# the suite runs in TEST_WORKERS processes (pytest-xdist), one test file per process at a time
+# the suite runs in TEST_WORKERS processes (pytest-xdist), one test file per process at a time, the longest
+# files first (tests/conftest.py HEAVY_FILES; xdist would otherwise order them by their number of tests)
 TEST_WORKERS ?= 2
 
 test: $(STAMP)
-	$(BIN)/python -m pytest -n $(TEST_WORKERS) --dist loadfile
+	$(BIN)/python -m pytest -n $(TEST_WORKERS) --dist loadfile --no-loadscope-reorder
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run_all.py

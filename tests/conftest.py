@@ -5,6 +5,12 @@ from pathlib import Path
 
 import pytest
 
+# The suite runs in parallel processes (pytest -n) that already fill the cores: a BLAS or OpenMP thread pool of
+# the cores' size in each of them (and in every command they start) oversubscribes them, and idle pool threads
+# spin.  One thread each; set before numpy is imported.  The numbers do not depend on it within a session:
+# every run compared in a test runs with the same setting.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
 _STATE = Path(tempfile.mkdtemp(prefix="quakefolio-test-state-"))
 os.environ.setdefault("QUAKEFOLIO_STATE", str(_STATE))
 #: the session's base state folder (shared by the parallel test processes): the migrated Prefect database lives here
@@ -98,3 +104,19 @@ def mini_config(tmp_path):
     dst = tmp_path / "mini"
     shutil.copytree(MINI, dst, ignore=shutil.ignore_patterns("output"))
     return dst / "quakefolio.toml"
+
+
+#: Test files that take longest (seconds of one worker, measured on 2 cores): collected first, so that the
+#: parallel workers (``--dist loadfile``, files handed out in collection order) start on them and the short
+#: files fill the end, instead of one long file finishing alone.  Order only; every test still runs.
+HEAVY_FILES = {
+    "test_golden_tables.py": 75, "test_operations.py": 70, "test_report.py": 60, "test_fault_injection.py": 45,
+    "test_reliability.py": 40, "test_bad_inputs.py": 40, "test_report_explains.py": 30, "test_compare.py": 25,
+    "test_report_visual.py": 25, "test_cache.py": 25, "test_flow.py": 20, "test_hostile_store.py": 20,
+    "test_logic_tree_events.py": 18, "test_scale_paths.py": 16, "test_export_history.py": 16,
+}
+
+
+def pytest_collection_modifyitems(session, config, items):
+    """Heaviest files first (:data:`HEAVY_FILES`), the others in their usual order after them."""
+    items.sort(key=lambda item: -HEAVY_FILES.get(item.path.name, 0))

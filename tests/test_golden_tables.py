@@ -12,9 +12,12 @@ for bit, NaNs included.  A table whose layout changed on purpose is listed in
 :data:`RESHAPED` with the function that lays the new table out as the old one, so its
 values are still compared bit for bit (none since the current base commit).
 
-Both hazard modes of the demo run here on the plain library path (``--no-flow``).  The
-flow and Dask paths are held to the plain path by ``test_flow.py`` and
-``test_operations.py`` (every table, ``check_exact``), so they match the old tables too.
+The reference runs on the plain library path (``--no-flow``).  The demo in compute mode
+runs here end to end as a user runs it: ``quakefolio run`` on the default flow path (a
+local Prefect server in a state folder of its own), with its report and cache; its tables
+must equal the reference's, and its output, report and assets are checked.  The tabulated
+mode runs on the plain path.  The flow and Dask paths are also held to the plain path by
+``test_flow.py`` and ``test_operations.py`` (every table, ``check_exact``).
 The demo's event set is shortened to 5,000 years to keep the suite fast; the event stage
 runs exactly the same code for any length.
 """
@@ -32,7 +35,9 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import DEMO, REPO
+from quakefolio.pipeline.io.store import latest_run, read_table
+
+from conftest import DEMO, REPO, seed_state
 
 #: the reference code: the commit that merged the report work of issue 14 and the multi-region fractiles, whose
 #: code reproduced, bit for bit, the tables of the earlier reference (47135e5, the last commit before the demo
@@ -82,8 +87,9 @@ def _old_code(root):
     return root / "shim"
 
 
-def _demo_copy(dst, config_name, old=False):
-    """The demo inputs under ``dst`` with a shorter event set, no report and no cache (``old``: without new inputs)."""
+def _demo_copy(dst, config_name, old=False, as_shipped=False):
+    """The demo inputs under ``dst`` with a shorter event set, no report and no cache (``old``: without new inputs;
+    ``as_shipped``: with its report and cache)."""
     shutil.copytree(DEMO, dst, ignore=shutil.ignore_patterns("output", "__pycache__"))
     for pattern, regex in NEW_INPUTS if old else ():
         for path in dst.glob(pattern):
@@ -92,10 +98,36 @@ def _demo_copy(dst, config_name, old=False):
     text = cfg.read_text(encoding="utf-8")
     if "years = 50000" in text:
         text = text.replace("years = 50000", f"years = {YEARS}")
-    text = text.replace("[output]\n", "[output]\nreport = false\n", 1)
-    text = text.replace("[execution]\n", "[execution]\ncache = false\n", 1)
+    if not as_shipped:
+        text = text.replace("[output]\n", "[output]\nreport = false\n", 1)
+        text = text.replace("[execution]\n", "[execution]\ncache = false\n", 1)
     cfg.write_text(text, encoding="utf-8")
     return cfg
+
+
+def _run_cli_flow(cfg, state):
+    """The demo through the command as a user runs it: default flow path (a local Prefect server of its own
+    state folder, left running for later commands, stopped here), report and cache on."""
+    env = dict(os.environ, QUAKEFOLIO_STATE=str(state))
+    env.pop("PREFECT_API_URL", None)
+    seed_state(state)  # a migrated Prefect database: the command's server starts without migrating
+    try:
+        proc = subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "run", str(cfg)],
+                              capture_output=True, text=True, env=env, timeout=900, cwd=str(cfg.parent))
+        assert (state / "server" / "server.json").exists()  # the server is left for the next command
+    finally:
+        subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "server", "stop"], env=env, timeout=120)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    out = proc.stdout + proc.stderr
+    assert out.startswith("CAUTION: screening-level results")
+    assert "ERROR" not in out and "Traceback" not in out and "error" not in proc.stderr.lower()
+    assert "portfolio EAL" in out and "highest collapse probability" in out
+    run = latest_run(cfg.parent / "output")
+    assert run is not None
+    assert (run / "report.html").read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+    loss = read_table(run, "asset_loss")
+    assert len(loss) >= 400 and loss.building_class.nunique() >= 6 and (loss.eal > 0).all()
+    return run
 
 
 def _run(cfg, pythonpath=None):
@@ -143,7 +175,10 @@ def _difference(old, new):
 @pytest.mark.parametrize("mode", sorted(CONFIGS))
 def test_demo_tables_identical_to_base_commit(mode, old_code, tmp_path):
     old_run = _run(_demo_copy(tmp_path / "old", CONFIGS[mode], old=True), pythonpath=old_code)
-    new_run = _run(_demo_copy(tmp_path / "new", CONFIGS[mode]))
+    if mode == "compute":  # also the demo end to end: the command's default flow path, report and cache
+        new_run = _run_cli_flow(_demo_copy(tmp_path / "new", CONFIGS[mode], as_shipped=True), tmp_path / "state")
+    else:
+        new_run = _run(_demo_copy(tmp_path / "new", CONFIGS[mode]))
     old_tables = sorted(p.name for p in old_run.glob("*.parquet"))
     new_tables = {p.name for p in new_run.glob("*.parquet")}
     assert len(old_tables) >= 5

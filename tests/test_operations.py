@@ -207,15 +207,12 @@ def test_local_server_listens_on_loopback_only(prefect_server, ops_state):
 def test_dask_run_equals_local_run(tmp_path, prefect_server, ops_state):
     """The compute-mode mini portfolio (hazard, disaggregation, damage, events) on a two-process
     Dask cluster, through the command line and [execution] backend/address, gives the same
-    tables as the local thread-pool run."""
+    tables as the plain local run (which the local thread-pool flow equals: test_flow.py)."""
     from distributed import Client, LocalCluster
 
     from quakefolio.pipeline.stages import blocks
-    from quakefolio.pipeline.flow import run_flow
-    from quakefolio.pipeline.orchestration import using_api
 
-    with using_api(prefect_server.url):  # the module's server (no embedded server of its own)
-        local = run_flow(_copy_mini(tmp_path / "local"), max_workers=2)
+    local = run_pure(_copy_mini(tmp_path / "local"))  # the local flow path equals this one (test_flow.py)
     cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
                            dashboard_address="127.0.0.1:0")
     try:
