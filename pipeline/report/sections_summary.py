@@ -97,7 +97,7 @@ def _section_exposure(run):
         text += (f" AAL: the event-based average annual loss of the same buildings, ground-up [{cur}/yr]; it "
                  "estimates the same quantity as the EAL by simulation, so the two shares should agree within "
                  "sampling error.")
-    return _p(text) + _table(headers, rows, sortable=False)
+    return _p(text) + _table(headers, rows, sortable=False, fit=True)
 
 
 def _section_events(run):
@@ -136,7 +136,7 @@ def _section_events(run):
                f"deductibles and limits; net: after each building's deductible and limit, before the programme's "
                f"group terms and layers. Losses in {cur} per event. Rupture: its index within the source model "
                "of its branch. All events are in event_loss.parquet of the run folder.")
-            + _table(headers, rows, sortable=True))
+            + _table(headers, rows, sortable=True, fit=True))
 
 
 def _breakdown_rows(col, assets, loss, bep, rps):
@@ -203,5 +203,5 @@ def _section_breakdowns(run):
             headers += [f"AAL ground-up [{cur}/yr]#", f"AAL net [{cur}/yr]#"]
             headers += [f"PML {rp:,.0f} yr [{cur}]#" for rp in rps]
         out.append(_table(headers, _breakdown_rows(col, assets, loss, bep if rps else None, rps),
-                          sortable=True))
+                          sortable=True, fit=True))
     return "".join(out)
