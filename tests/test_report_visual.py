@@ -258,7 +258,10 @@ def test_visual_items_render_in_headless_chromium(report, tmp_path):
              "document.querySelector('#map input[value=collapse]').click();b.setAttribute('data-shown-after',v());"
              "var w=document.querySelector('#whatif');b.setAttribute('data-whatif-overflow',"
              "Array.prototype.filter.call(w.querySelectorAll('table'),function(t){return t.scrollWidth>w.clientWidth+1;})"
-             ".length);});</script>")
+             ".length);"
+             "b.setAttribute('data-page-overflow',Array.prototype.filter.call(document.querySelectorAll('section table'),"
+             "function(t){return t.getBoundingClientRect().right>t.closest('section').getBoundingClientRect().right+1;})"
+             ".map(function(t){return t.closest('section').id;}).join(','));});</script>")
     page = tmp_path / "report.html"
     page.write_text(report.replace("</body>", probe + "</body>"), encoding="utf-8")
     done = _browser(binary, tmp_path, "--window-size=1280,2400", "--dump-dom", page.as_uri())
@@ -270,6 +273,7 @@ def test_visual_items_render_in_headless_chromium(report, tmp_path):
     assert body.get("data-images") == body.get("data-decoded") == str(n_images)
     assert body.get("data-shown-first") == "eal" and body.get("data-shown-after") == "collapse"
     assert body.get("data-whatif-overflow") == "0"
+    assert body.get("data-page-overflow") == ""  # no table of any section wider than the page
     maps = [a for t, a in dom.tags if t == "div" and a.get("class") == "map"]
     assert [m["data-colour"] for m in maps] == ["eal", "collapse", "value"]
     assert all(m["data-faults"] == "1" and int(m["data-sites"]) > 0 and int(m["data-outline"]) >= 3 for m in maps)

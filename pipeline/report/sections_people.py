@@ -59,5 +59,5 @@ def _section_people(run):
                       "(the ratio in the what-if section counts building repair cost only)."))
         out.append(_table(["alternative", "avoided casualties [persons/yr]#", "avoided downtime [building-days/yr]#",
                            f"avoided contents + interruption [{cur}/yr]#", f"PV life safety [{cur}]#",
-                           "benefit-cost, all#", "counts"], rows))
+                           "benefit-cost, all#", "counts"], rows, fit=True))
     return "".join(out)

@@ -47,12 +47,12 @@ def programme_html(run):
                  _cell(_prob(r.prob_annual_cap_used), r.prob_annual_cap_used)] for r in ls.itertuples()]
         out.append(_table(["layer", "kind", f"attachment [{cur}]#", f"limit [{cur}]#", "reinstatements",
                            f"expected layer loss [{cur}/yr]#", f"± 1 s.e. [{cur}/yr]#", "P(attach) per yr#",
-                           "P(exhaust) per yr#", "P(annual cap used) per yr#"], rows, caption="Layers"))
+                           "P(exhaust) per yr#", "P(annual cap used) per yr#"], rows, caption="Layers", fit=True))
         ep = run.table("layer_ep")
         rows = [[r.layer_id, _cell(f"{r.return_period_yr:,.0f}", r.return_period_yr),
                  _cell(_money(r.aep_layer_loss), r.aep_layer_loss), _cell(_money(r.oep_layer_loss), r.oep_layer_loss),
                  _cell(_money(r.tvar_layer_loss), r.tvar_layer_loss)] for r in ep.itertuples()]
         out.append(_table(["layer", "return period [yr]#", f"annual layer loss (AEP) [{cur}]#",
                            f"largest event layer loss (OEP) [{cur}]#", f"TVaR, annual [{cur}]#"], rows,
-                          caption="Layer loss at the configured return periods"))
+                          caption="Layer loss at the configured return periods", fit=True))
     return "".join(out)
