@@ -377,12 +377,12 @@ def _compare(args):
 
 def _report(args):
     from quakefolio.pipeline.compare import resolve_run
-    from quakefolio.pipeline.report import default_report_file, report_target, write_report
+    from quakefolio.pipeline.report import default_report_file, output_cache, report_target, write_report
 
     run = resolve_run(args.run)
     previous = resolve_run(args.previous) if args.previous else None
     out = report_target(args.out or default_report_file(run), runs=(run, previous))  # new, or an earlier report
-    print(write_report(run, out, previous_run=previous))
+    print(write_report(run, out, previous_run=previous, cache=output_cache(run)))  # unchanged sections from the cache
     return 0
 
 

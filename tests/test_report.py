@@ -10,7 +10,8 @@ import pytest
 
 from quakefolio.pipeline.caution import CAUTION
 from quakefolio.pipeline.cli import main
-from quakefolio.pipeline.report import SECTIONS, build_report, write_report
+from quakefolio.pipeline.report import SECTIONS, build_report, output_cache, write_report
+from quakefolio.pipeline.report.document import CACHED_SECTIONS
 from quakefolio.pipeline.runner import run_pure
 from quakefolio.pipeline.io.store import PARTIAL_PREFIX, read_table
 
@@ -86,12 +87,13 @@ def runs(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def report_b(runs):
-    return build_report(runs["b"], previous_run=runs["a"])
+    """Run B's change report, its unchanged sections stored in the output folder's cache (as a run does)."""
+    return build_report(runs["b"], previous_run=runs["a"], cache=output_cache(runs["b"]))
 
 
 @pytest.fixture(scope="module")
 def report_ingest(runs):
-    return build_report(runs["ingest"])
+    return build_report(runs["ingest"], cache=output_cache(runs["ingest"]))
 
 
 def test_every_section_is_present_once_in_order(report_b, report_ingest):
@@ -189,7 +191,8 @@ def test_report_of_a_partial_run_folder(runs, tmp_path):
     # The store writes report.html into the partial folder before renaming it into place.
     partial = tmp_path / f"{PARTIAL_PREFIX}{runs['b'].name}"
     shutil.copytree(runs["b"], partial)
-    out = write_report(partial, partial / "report.html", previous_run=runs["a"])
+    assert output_cache(partial) is None  # not in runs/: the store hands the run's cache over, as here
+    out = write_report(partial, partial / "report.html", previous_run=runs["a"], cache=output_cache(runs["b"]))
     text = out.read_text(encoding="utf-8")
     assert _parse(text).sections == [sid for sid, _ in SECTIONS]
     assert "No change report" not in _section(text, "changes")  # compared although the folder is partial
@@ -212,6 +215,22 @@ def test_cli_out_and_previous(runs, tmp_path, capsys):
     assert main(["report", str(runs["b"]), "--previous", str(runs["a"]), "--out", str(target)]) == 0
     assert capsys.readouterr().out.strip() == str(target)
     assert "B2" in _section(target.read_text(encoding="utf-8"), "changes")
+
+
+def test_cli_report_takes_unchanged_sections_from_the_output_folders_cache(runs, report_b, tmp_path, capsys):
+    """``quakefolio report`` of a run whose output folder keeps a cache draws only what changed: the same
+    document as one drawn in full (``report_b`` stored the sections)."""
+    cache = output_cache(runs["b"])
+    assert cache is not None and cache.root == runs["output"] / "cache"
+    stored = sorted((cache.root / "report").rglob("*.npz"))
+    assert len(stored) >= len(CACHED_SECTIONS)
+    before = {p: p.stat().st_mtime_ns for p in stored}
+    target = tmp_path / "again.html"
+    assert main(["report", str(runs["b"]), "--previous", str(runs["a"]), "--out", str(target)]) == 0
+    capsys.readouterr()
+    assert target.read_text(encoding="utf-8") == report_b
+    assert {p: p.stat().st_mtime_ns for p in stored} == before  # read, not drawn and written again
+    assert output_cache(runs["output"]) is None  # an output folder is not a run: no cache of its own
 
 
 @pytest.mark.parametrize("args", [["{missing}"], ["{run}", "--out", "{run}/report.html"],

@@ -33,7 +33,7 @@ from __future__ import annotations
 
 from quakefolio.pipeline.report.context import MAX_TABLE_ROWS, TOP_ASSETS
 from quakefolio.pipeline.report.document import (REPORT_MARKER, SECTIONS, build_report, default_report_file,
-                                                 is_our_report, report_target, write_report)
+                                                 is_our_report, output_cache, report_target, write_report)
 
-__all__ = ["build_report", "write_report", "report_target", "default_report_file", "is_our_report", "REPORT_MARKER",
-           "SECTIONS", "MAX_TABLE_ROWS", "TOP_ASSETS"]
+__all__ = ["build_report", "write_report", "report_target", "default_report_file", "is_our_report", "output_cache",
+           "REPORT_MARKER", "SECTIONS", "MAX_TABLE_ROWS", "TOP_ASSETS"]

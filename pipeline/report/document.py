@@ -26,7 +26,7 @@ from quakefolio.pipeline.report.sections_summary import _section_breakdowns, _se
 from quakefolio.pipeline.io.store import atomic_write_text
 
 __all__ = ["build_report", "write_report", "SECTIONS", "REPORT_MARKER", "is_our_report", "report_target",
-           "default_report_file"]
+           "default_report_file", "output_cache"]
 
 #: In the head of every report: how an earlier report of ours is recognised before it is replaced.
 REPORT_MARKER = '<meta name="generator" content="quakefolio report">'
@@ -114,7 +114,10 @@ def _bodies(builders, run, cache):
                 bodies[sid] = _not_drawn(exc)
                 continue
             if key is not None:
-                cache.put("report", key, {"html": np.frombuffer(bodies[sid].encode("utf-8"), dtype=np.uint8)})
+                try:
+                    cache.put("report", key, {"html": np.frombuffer(bodies[sid].encode("utf-8"), dtype=np.uint8)})
+                except (OutputError, OSError):  # a section not kept costs a later report time, never this one
+                    pass
         keys = _safe(_key_figures, run)
     return {sid: bodies[sid] for sid in builders}, keys
 
@@ -254,6 +257,34 @@ def is_our_report(path):
             return b"<footer>quakefolio " in head.encode() + fh.read(64 << 20)
     except OSError:
         return False
+
+
+def output_cache(run):
+    """The content cache of the output folder that holds ``run``, when that folder keeps one; else None.
+
+    A run made with ``[execution] cache = true`` leaves ``<output folder>/cache/``; a report
+    built again later (``quakefolio report``) takes its unchanged sections from there
+    (:data:`CACHED_SECTIONS`, keyed by the inputs digest, the stages and the code) instead of
+    drawing them again, and stores the ones it draws.  An output folder without a cache, or
+    whose cache cannot be written, gets none: the report is drawn in full and nothing is
+    written outside the report file.
+
+    Parameters
+    ----------
+    run : path-like
+        A run folder.
+
+    Returns
+    -------
+    quakefolio.pipeline.io.cache.StageCache or None
+    """
+    run = Path(run)
+    root = run.parent.parent / "cache"
+    if run.parent.name != "runs" or not root.is_dir() or root.is_symlink() or not os.access(root, os.W_OK | os.X_OK):
+        return None
+    from quakefolio.pipeline.io.cache import StageCache
+
+    return StageCache(run.parent.parent)
 
 
 def default_report_file(run):
