@@ -228,8 +228,9 @@ def test_per_branch_mode_is_the_single_branch_event_set(mini):
 
 @pytest.mark.slow
 def test_demo_like_aal_agrees_with_the_all_branch_classical_eal(tmp_path):
-    # the demo's inputs (both source models, both GMMs), a quarter of the buildings and a
-    # shorter event set: the pooled AAL estimates the classical EAL of every branch by weight
+    # the demo's inputs (both source models, both GMMs), a quarter of the buildings, a quarter
+    # of the hazard sites (4 km grid) and a shorter event set: the pooled AAL estimates the
+    # classical EAL of every branch by weight
     dst = tmp_path / "demo"
     shutil.copytree(DEMO, dst, ignore=shutil.ignore_patterns("output", "__pycache__"))
     ex = pd.read_csv(dst / "exposure.csv")
@@ -237,6 +238,8 @@ def test_demo_like_aal_agrees_with_the_all_branch_classical_eal(tmp_path):
     cfg = dst / "quakefolio.toml"
     text = cfg.read_text().replace("years = 50000", "years = 10000").replace("disaggregation = true",
                                                                              "disaggregation = false")
+    assert "site_spacing_km = 2.0" in text
+    text = text.replace("site_spacing_km = 2.0", "site_spacing_km = 4.0")
     text = re.sub(r"(?m)^cms_\w+ = .*\n", "", text)  # no conditional mean spectrum: not what is checked here
     text = text.replace("[output]\n", "[output]\nreport = false\n").replace("[execution]\n",
                                                                            "[execution]\ncache = false\n")

@@ -73,18 +73,14 @@ def _check_store(out, frozen):
 @pytest.mark.slow
 @pytest.mark.parametrize("cache", ["true", "false"])
 def test_kill_9_at_random_moments_never_corrupts_the_store(tmp_path, cache):
-    ref_cfg = _config(tmp_path / "ref", cache)
-    t0 = time.perf_counter()
-    proc = _run(ref_cfg)
-    assert proc.wait(timeout=300) == 0, proc.stderr.read()
-    duration = time.perf_counter() - t0
-    reference = latest_run(ref_cfg.parent / "output")
-
     cfg = _config(tmp_path / "work", cache)
     out = cfg.parent / "output"
+    t0 = time.perf_counter()
     proc = _run(cfg)
-    assert proc.wait(timeout=300) == 0
-    frozen = {latest_run(out): _snapshot(latest_run(out))}
+    assert proc.wait(timeout=300) == 0, proc.stderr.read()
+    duration = time.perf_counter() - t0
+    reference = latest_run(out)  # the first complete run: its files must survive every kill (frozen), and the
+    frozen = {reference: _snapshot(reference)}  # last run's tables must equal its own
     rng = np.random.default_rng(20261201)
     for moment in rng.uniform(0.2, duration, 5):  # 5 per cache setting: 10 seeded moments in all
         proc = _run(cfg)
