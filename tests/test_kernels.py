@@ -1,7 +1,8 @@
 """The numerical kernels' shortcuts change no bit, and the benchmark's reference agrees with the kernel.
 
-* Risk convolution (:mod:`quakefolio.core.risk`): results do not depend on the row
-  blocking, bit for bit.
+* Risk convolution (:mod:`quakefolio.core.risk`, :mod:`quakefolio.core.risk_pieces`): results
+  do not depend on the row blocking or the number of threads, bit for bit; the telescoped
+  and the per-segment forms agree to round-off (tails, diagnostics, log-space terms).
 * Hazard engine (:mod:`quakefolio.core.hazard`): evaluating the truncated exceedance only
   inside :func:`truncation_window` gives exactly the full formula; the curves do not depend
   on the pass size, bit for bit.
@@ -40,8 +41,9 @@ def _curves(rng, n, m=40, zero_tail=False):
 
 
 def test_reference_agrees_with_the_kernel():
-    # Two evaluations of the exact integral: per segment with log-space power terms
-    # (kernel) and telescoped into positive terms only (reference); only round-off differs.
+    # Two evaluations of the exact integral telescoped into positive terms: plain products
+    # C_p [Phi(hi) - Phi(lo)] added in order (kernel) and log-space terms summed pairwise
+    # (reference); only round-off differs.
     rng = np.random.default_rng(7)
     levels, rates = _curves(rng, 60)
     ref = _reference_module()
