@@ -390,7 +390,7 @@ def damage_state_rates(im_levels, rates, medians, betas, tail="extrapolate", *,
     round-off (about 1e-15 relative), the summation order differing.
     """
     x, lam, theta, b = _prepare(im_levels, rates, medians, betas, tail)
-    lnx = np.log(x)
+    lnx = _log_levels(x)
     ln_theta = np.log(theta)
     if envelope:
         inner, low, high_ext, high_trunc = _envelope_parts(x, lam, ln_theta, b)
@@ -404,6 +404,12 @@ def damage_state_rates(im_levels, rates, medians, betas, tail="extrapolate", *,
         share_below = np.where(total_ext > 0, low / total_ext, 0.0)
         share_above = np.where(total_ext > 0, high_ext / total_ext, 0.0)
     return out, share_below, share_above
+
+
+def _log_levels(x):
+    """ln x, taken once per distinct curve of levels where ``x`` is broadcast (shared levels)."""
+    own = tuple(slice(0, 1) if st == 0 else slice(None) for st in x.strides[:-1])
+    return np.broadcast_to(np.log(x[own]), x.shape)
 
 
 def _summed(lnx, lam, ln_theta, b, tail, diagnostics, workers):

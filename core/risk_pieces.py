@@ -118,24 +118,25 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
     n_blocks = -(-n // step)
     workers = max(1, min(int(workers), n_blocks))
     per_row = ln_theta.ndim > 1
-    kp, la, xa = _blocked_pieces(lnx, lam, truncate, step, n_blocks)
+    curves = _Curves(lnx, lam, truncate)
     th = _blocked_rows(ln_theta.T, step, n_blocks, 0.0) if per_row else ln_theta[:, None, None]
     b = _blocked_rows(beta.T, step, n_blocks, 1.0) if per_row else beta[:, None, None]
     shared = None  # the z bounds of every row, where the rows share their levels and fragilities
     if not per_row and (n < 2 or np.array_equal(lnx[1:], np.broadcast_to(lnx[:1], (n - 1, m)))):
         shared = _Bounds(n_ds, m, step)
-        shared.fill(np.broadcast_to(xa[0, :, :1], (m + 1, step)), th, b)
+        xa = np.concatenate([lnx[0, :1], lnx[0]])
+        shared.fill(np.broadcast_to(xa[:, None], (m + 1, step)), th, b)
     out = np.empty((5 if ends else 3, n_ds, n_blocks * step))
     per_thread = -(-n_blocks // workers)
 
     def run(first):
-        work = _Work(n_ds, m, step, shared)
+        work = _Work(n_ds, m, step, shared, truncate)
         for i in range(first, min(first + per_thread, n_blocks)):
+            r0, r1 = i * step, min(i * step + step, n)
             th_i, b_i = (th[:, i], b[:, i]) if per_row else (th, b)
-            if shared is None:
-                work.bounds.fill(xa[i], th_i, b_i)
+            work.rows(curves, r0, r1, th_i, b_i)
             with np.errstate(over="ignore", invalid="ignore"):  # ln C above the range: log space
-                _piece_block(work, kp[i], la[i], b_i, out[:, :, i * step:(i + 1) * step])
+                _piece_block(work, b_i, out[:, :, r0:r0 + step])
 
     starts = range(0, n_blocks, per_thread)
     if workers == 1:
@@ -148,26 +149,22 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
     return parts if ends else parts + (None, None)
 
 
-def _blocked_pieces(lnx, lam, truncate, step, n_blocks):
-    """Per block, piece and row: slope, log rate and log level at the piece's anchor.
+class _Curves:
+    """Log levels, log rates and segment slopes of the rows (n, m), computed end to end.
 
-    Shape (n_blocks, m + 1, step) each, contiguous per block (pieces major, so that a
-    block's work arrays run along its rows); rows beyond ``n`` are padding (0, never read).
+    ``k[:, i]`` is the slope of segment i (the last column, between two rows, is never read).
     """
-    n, m = lam.shape
-    pad = n_blocks * step
-    kp, la, xa = np.zeros((3, m + 1, pad))
-    ln_lam = np.log(lam)
-    np.subtract(ln_lam[:, :-1], ln_lam[:, 1:], out=kp[1:-1, :n].T)
-    kp[1:-1, :n] /= (lnx[:, 1:] - lnx[:, :-1]).T
-    kp[0] = 0.0 if truncate else kp[1]
-    kp[-1] = kp[-2]
-    la[0, :n], la[1:, :n] = ln_lam[:, 0], ln_lam.T
-    if truncate:
-        la[-1] = -np.inf
-    xa[0, :n], xa[1:, :n] = lnx[:, 0], lnx.T
-    block = lambda a: np.ascontiguousarray(a.reshape(m + 1, n_blocks, step).transpose(1, 0, 2))  # noqa: E731
-    return block(kp), block(la), block(xa)
+
+    def __init__(self, lnx, lam, truncate):
+        n, m = lam.shape
+        self.lnx = np.ascontiguousarray(lnx)
+        self.ln_lam = np.log(lam)
+        self.k = np.empty((n, m))
+        flat_x, flat_l, k = self.lnx.reshape(-1), self.ln_lam.reshape(-1), self.k.reshape(-1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            np.subtract(flat_l[:-1], flat_l[1:], out=k[:-1])
+            k[:-1] /= flat_x[1:] - flat_x[:-1]
+        self.truncate = truncate
 
 
 def _blocked_rows(a, step, n_blocks, fill):
@@ -198,29 +195,55 @@ class _Bounds:
 
 
 class _Work:
-    """Preallocated work arrays of one thread: per damage state and piece, a block's rows."""
+    """Preallocated work arrays of one thread: per damage state and piece, a block's rows.
 
-    def __init__(self, n_ds, m, rows, shared):
+    Pieces major, so that every ufunc runs over a whole block; a block's rows are copied in
+    transposed (a block is small, the copy stays in cache).  A last block shorter than
+    the others leaves earlier (finite) values in its padding, never read.
+    """
+
+    def __init__(self, n_ds, m, rows, shared, truncate):
         self.kb, self.lo, self.hi, self.c = np.empty((4, n_ds, m + 1, rows))
         self.t = np.empty((n_ds, m + 1, rows), dtype=np.int64)
+        self.kp, self.la, self.xa = np.zeros((3, m + 1, rows))  # slope, log rate, log level at the anchor
+        if truncate:
+            self.kp[0] = 0.0  # the lower piece is lambda_0 Phi(z_0)
+            self.la[-1] = -np.inf  # no upper piece
         self.bounds = shared if shared is not None else _Bounds(n_ds, m, rows)
+        self.shared = shared is not None
+
+    def rows(self, curves, r0, r1, th, b):
+        """Take rows ``r0:r1`` of ``curves`` (and their bounds against ``th, b`` unless shared)."""
+        nb, m = r1 - r0, curves.k.shape[1]
+        kp, la, xa = self.kp[:, :nb], self.la[:, :nb], self.xa[:, :nb]
+        kp[1:-1] = curves.k[r0:r1, :-1].T  # pieces: lower tail, segments, upper tail
+        kp[-1] = kp[-2]
+        la[1:-1] = curves.ln_lam[r0:r1, :-1].T
+        la[0] = la[1]
+        if not curves.truncate:
+            kp[0] = kp[1]
+            la[-1] = curves.ln_lam[r0:r1, m - 1]
+        if not self.shared:
+            xa[1:] = curves.lnx[r0:r1].T
+            xa[0] = xa[1]
+            self.bounds.fill(self.xa, th, b)
 
     def take(self):
         bd = self.bounds
-        return self.kb, self.lo, self.hi, self.c, self.t, bd.za, bd.zlo, bd.zhi, bd.p0, bd.pn
+        return self.kp, self.la, self.kb, self.lo, self.hi, self.c, self.t, bd.za, bd.zlo, bd.zhi, bd.p0, bd.pn
 
 
 #: The sign bit of a double, as an int64.
 _SIGN = np.int64(np.iinfo(np.int64).min)
 
 
-def _piece_block(work, kp, la, b, out):
+def _piece_block(work, b, out):
     """Pieces of one block of rows (module notes); writes inner, low, high (and p0, pn) into ``out``.
 
     The segment pieces are added in order (p = 1, 2, ..), so each row's sum is the same
     whatever the block (``tests/test_kernels.py`` checks it bit for bit).
     """
-    kb, lo, hi, c, t, za, zlo, zhi, p0, pn = work.take()
+    kp, la, kb, lo, hi, c, t, za, zlo, zhi, p0, pn = work.take()
     np.multiply(kp, b, out=kb)  # k beta
     # ln C = ln lambda_a + k beta (z_a + k beta / 2)
     np.multiply(kb, 0.5, out=c)
