@@ -452,6 +452,7 @@ def _fast_rows(parts, sel, lnx, lam, ln_theta, b, tail, diagnostics, workers):
     truncate = tail == "truncate"
     inner, low_p, high_p, p0, pn = piece_sums(lnx, lam, ln_theta, b, truncate=truncate and not diagnostics,
                                               ends=diagnostics, workers=workers)
+    low_p = np.nan_to_num(low_p, nan=0.0)  # as the per-segment tails: beyond the doubles, the largest
     if not diagnostics:
         parts[0, sel] = inner + low_p + high_p if not truncate else inner + low_p
         return

@@ -114,6 +114,9 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
     """
     n, m = lam.shape
     n_ds = ln_theta.shape[-1]
+    if n == 0:
+        empty = np.zeros((0, n_ds))
+        return (empty,) * 3 + ((empty, empty) if ends else (None, None))
     step = max(1, block_values // (n_ds * (m + 1)))  # rows per block
     n_blocks = -(-n // step)
     workers = max(1, min(int(workers), n_blocks))

@@ -150,3 +150,5 @@ def test_telescoped_and_per_segment_forms_agree(tail):
     np.testing.assert_allclose(above, np.where(total > 0, high_ext / total, 0.0), rtol=1e-12, atol=1e-15)
     assert np.array_equal(got, damage_state_rates(levels, rates, medians, betas, tail=tail, workers=2))
     assert np.all(got[1] > 0) and np.all(np.isfinite(got))
+    none = damage_state_rates(levels, rates[:0], medians, betas, tail=tail, diagnostics=True)
+    assert [a.shape for a in none] == [(0, 4)] * 3
