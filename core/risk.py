@@ -387,7 +387,10 @@ def damage_state_rates(im_levels, rates, medians, betas, tail="extrapolate", *,
     law.  Curves whose rates are all positive are integrated in the telescoped form of
     :mod:`quakefolio.core.risk_pieces` (a sum of positive per-piece terms), the others
     (and the envelope) per segment; both are the same closed form and agree to
-    round-off (about 1e-15 relative), the summation order differing.
+    round-off, the summation order differing: about 1e-15 relative on ordinary curves, up
+    to about 1e-13 where the exponents of the power terms reach hundreds (steep curves
+    and wide dispersions), as each exponential carries a relative error of
+    :math:`\epsilon` times its exponent.
     """
     x, lam, theta, b = _prepare(im_levels, rates, medians, betas, tail)
     lnx = _log_levels(x)

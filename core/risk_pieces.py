@@ -124,6 +124,7 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
     curves = _Curves(lnx, lam, truncate)
     th = _blocked_rows(ln_theta.T, step, n_blocks, 0.0) if per_row else ln_theta[:, None, None]
     b = _blocked_rows(beta.T, step, n_blocks, 1.0) if per_row else beta[:, None, None]
+    checked = _coef_bound(curves, lnx, ln_theta, beta) > LOG_COEF_MAX  # else no piece needs log space
     shared = None  # the z bounds of every row, where the rows share their levels and fragilities
     if not per_row and (n < 2 or np.array_equal(lnx[1:], np.broadcast_to(lnx[:1], (n - 1, m)))):
         shared = _Bounds(n_ds, m, step)
@@ -139,7 +140,7 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
             th_i, b_i = (th[:, i], b[:, i]) if per_row else (th, b)
             work.rows(curves, r0, r1, th_i, b_i)
             with np.errstate(over="ignore", invalid="ignore"):  # ln C above the range: log space
-                _piece_block(work, b_i, out[:, :, r0:r0 + step])
+                _piece_block(work, b_i, out[:, :, r0:r0 + step], checked)
 
     starts = range(0, n_blocks, per_thread)
     if workers == 1:
@@ -150,6 +151,21 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
             list(pool.map(run, starts))
     parts = tuple(o[:, :n].T for o in out)
     return parts if ends else parts + (None, None)
+
+
+def _coef_bound(curves, lnx, ln_theta, beta):
+    r"""An upper bound of :math:`\ln C_p` over every row, piece and state.
+
+    :math:`\ln C_p = \ln\lambda_a + k_p(\ln x_a - \ln\theta) + (k_p\beta)^2/2 \le
+    \max\ln\lambda + K\max(0, \max\ln x - \min\ln\theta) + (K \max\beta)^2/2` with
+    :math:`K = \max k_p \ge 0`, plus a margin of 1 for round-off.
+    """
+    k = curves.k[:, :-1]
+    if not np.isfinite(k).all():
+        return np.inf
+    big_k = max(float(k.max(initial=0.0)), 0.0)
+    reach = max(float(lnx.max()) - float(ln_theta.min()), 0.0)
+    return float(curves.ln_lam.max()) + big_k * reach + 0.5 * (big_k * float(beta.max())) ** 2 + 1.0
 
 
 class _Curves:
@@ -240,7 +256,7 @@ class _Work:
 _SIGN = np.int64(np.iinfo(np.int64).min)
 
 
-def _piece_block(work, b, out):
+def _piece_block(work, b, out, checked=True):
     """Pieces of one block of rows (module notes); writes inner, low, high (and p0, pn) into ``out``.
 
     The segment pieces are added in order (p = 1, 2, ..), so each row's sum is the same
@@ -255,7 +271,7 @@ def _piece_block(work, b, out):
     c += la
     np.add(zlo, kb, out=lo)
     np.add(zhi, kb, out=hi)
-    big = _log_space_terms(c, lo, hi)
+    big = _log_space_terms(c, lo, hi) if checked else None
     # sigma = -sign(lo) on the bits: sigma lo = -|lo|, sigma hi = -hi where lo >= 0
     lo_bits, hi_bits = lo.view(np.int64), hi.view(np.int64)
     np.bitwise_and(lo_bits, _SIGN, out=t)
