@@ -63,9 +63,9 @@ PHI_PER_LEVEL = 2
 #: Largest :math:`\ln C_p` evaluated as a plain product (module notes); above it, log space.
 LOG_COEF_MAX = 600.0
 
-#: Values (damage state x piece x row) per block: the eight work arrays of a block (1 MB) stay
-#: in cache (measured on the benchmark's case, interleaved: 2**14 fastest, 2**13 and 2**15
-#: 5-15 % slower, 2**11 and 2**16 a third slower).
+#: Values (damage state x piece x row) per block: the work arrays of a block (about 1 MB)
+#: stay in cache (measured on the benchmark's case, interleaved on a loaded machine: 2**13
+#: to 2**15 equally fast within the noise, 2**16 a quarter and 2**11 a third slower).
 BLOCK_VALUES = 1 << 14
 
 
