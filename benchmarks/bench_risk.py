@@ -7,31 +7,48 @@ A synthetic portfolio (invented numbers) of up to 10**6 assets on 2,000 hazard s
 side in one process, interleaved, median of the per-round ratios (``timing.py``):
 
 * kernel: exact damage-state rates of every unique pair
-  (:func:`quakefolio.core.risk.damage_state_rates`, one call per class);
+  (:func:`quakefolio.core.risk.damage_state_rates`, one call per class), on one thread
+  and on ``workers`` threads (``workers=`` of the kernel; one per core);
 * reference: the same integral in tight plain numpy (``reference_risk.py``);
+* floor: bare ``ndtr`` on exactly the normal-CDF arguments the exact integral needs, 2m per
+  (pair, damage state) for m levels (two per segment, one per extrapolated tail; module
+  notes of :mod:`quakefolio.core.risk_pieces`), in one call: no exact evaluation of the
+  integral can do less on one thread;
 * production path: unique (site, class) pairs, the kernel, EAL per pair, broadcast to
   assets;
 * baseline: bare ``scipy.special.ndtr`` (into a preallocated array) on as many
   standard-normal values as pairs x damage states x levels.
 
-Rows: kernel / baseline (target <= 2), reference / baseline, kernel / reference,
-production path / baseline; the agreement of kernel and reference; the fitted exponent of
-kernel time vs number of pairs (linear growth: about 1).
+Single-thread rows are CPU-time ratios.  The threaded kernel is timed on the wall clock
+against the baseline on the wall clock in rounds of their own (``timing.WALL``): its CPU
+time is summed over its threads, and its wall time depends on the cores that other jobs
+leave free, so the load average is printed beside it.
+
+Rows: kernel on one thread / baseline (target <= 2; its floor is 2 normal-CDF evaluations
+per value, printed as counted and as measured), kernel on ``workers`` threads / baseline
+(wall clock; target <= 2), reference / baseline, kernel / reference, production path /
+baseline; the agreement of kernel and reference; the fitted exponent of kernel time vs
+number of pairs (linear growth: about 1).
 """
 from __future__ import annotations
+
+import os
 
 import numpy as np
 from scipy.special import ndtr
 
 from quakefolio.core.loss import expected_annual_loss
 from quakefolio.core.risk import damage_state_rates
+from quakefolio.core.risk_pieces import PHI_PER_LEVEL
 
 from reference_risk import damage_state_rates_reference
-from timing import interleaved, ratio, row
+from timing import WALL, interleaved, load_average, ratio, row
 
 N_LEVELS, N_DS, N_CLASSES = 40, 4, 7
 SEED = 2026
 TARGET = 2.0
+#: threads of the threaded kernel: one per core
+WORKERS = max(2, os.cpu_count() or 1)
 
 
 def synthetic(n_sites, n_assets, rng):
@@ -55,13 +72,33 @@ def unique_pairs(a_site, a_class, n_sites):
     return uniq // n_sites, uniq % n_sites, inverse
 
 
-def per_class(fn, levels, rates, medians, betas, p_class, p_site):
+def per_class(fn, levels, rates, medians, betas, p_class, p_site, **kw):
     """Damage-state rates of every pair, one call per class (the small axis)."""
     ds = np.empty((len(p_class), N_DS))
     for c in range(N_CLASSES):
         sel = p_class == c
-        ds[sel] = fn(levels, rates[p_site[sel]], medians[c], betas[c])
+        ds[sel] = fn(levels, rates[p_site[sel]], medians[c], betas[c], **kw)
     return ds
+
+
+def phi_arguments(levels, rates, medians, betas, p_class, p_site):
+    """The normal-CDF arguments of the exact integral, 2m per (pair, state), as evaluated.
+
+    Per piece (lower tail, segments, upper tail) the bounds ``lo, hi`` in z plus ``k beta``
+    (module notes of :mod:`quakefolio.core.risk_pieces`), survival side where ``lo > 0``;
+    the infinite bound of each tail needs no evaluation.
+    """
+    lnx = np.log(levels)
+    out = []
+    for c in range(N_CLASSES):
+        ln_lam = np.log(rates[p_site[p_class == c]])
+        k = (ln_lam[:, :-1] - ln_lam[:, 1:]) / np.diff(lnx)
+        kb = np.concatenate([k[:, :1], k, k[:, -1:]], axis=1)[:, None, :] * betas[c][:, None]
+        z = (lnx - np.log(medians[c])[:, None]) / betas[c][:, None]  # (n_ds, m)
+        lo = np.concatenate([np.full(kb.shape[:-1] + (1,), -np.inf), z + kb[..., 1:]], axis=-1)
+        hi = np.concatenate([z + kb[..., :-1], np.full(kb.shape[:-1] + (1,), np.inf)], axis=-1)
+        out += [-np.abs(lo[..., 1:]).ravel(), np.where(lo >= 0, -hi, hi)[..., :-1].ravel()]
+    return np.concatenate(out)
 
 
 def production(levels, rates, medians, betas, mdr, a_site, a_class, n_sites):
@@ -76,37 +113,59 @@ def measure(n_sites, n_assets, rng):
     z = np.random.default_rng(1).standard_normal((len(p_class), N_DS, N_LEVELS))
     out = np.empty_like(z)
     args = (levels, rates, medians, betas, p_class, p_site)
+    phi_args = phi_arguments(*args)
+    assert phi_args.size == PHI_PER_LEVEL * z.size
+    out_floor = np.empty_like(phi_args)
     kernel = per_class(damage_state_rates, *args)
+    assert np.array_equal(kernel, per_class(damage_state_rates, *args, workers=WORKERS))
     reference = per_class(damage_state_rates_reference, *args)
     agreement = float(np.max(np.abs(kernel - reference) / reference))
     times = interleaved({
         "ndtr": lambda: ndtr(z, out=out),
         "kernel": lambda: per_class(damage_state_rates, *args),
+        "floor": lambda: ndtr(phi_args, out=out_floor),
         "reference": lambda: per_class(damage_state_rates_reference, *args),
         "production": lambda: production(levels, rates, medians, betas, mdr, a_site, a_class, n_sites),
     })
-    return len(p_class), times, agreement
+    walls = interleaved({
+        "ndtr": lambda: ndtr(z, out=out),
+        "kernel": lambda: per_class(damage_state_rates, *args),
+        "threads": lambda: per_class(damage_state_rates, *args, workers=WORKERS),
+    }, clock=WALL)
+    return len(p_class), times, walls, agreement
 
 
 def main():
     rng = np.random.default_rng(SEED)
     print("fragility convolution benchmark (synthetic, invented inputs)")
-    print(f"{'assets':>9} {'pairs':>7} {'evaluations':>12} {'ndtr s':>8} {'kernel':>7} {'ref':>7} "
-          f"{'k/ref':>6} {'prod':>7}  (ratios: medians of interleaved rounds)")
+    print(f"load average at start: {load_average():.2f} on {os.cpu_count()} cores; threaded kernel: "
+          f"{WORKERS} threads")
+    print(f"{'assets':>9} {'pairs':>7} {'evaluations':>12} {'ndtr s':>8} {'kernel':>7} {'floor':>6} {'ref':>6} "
+          f"{'k/ref':>6} {'prod':>6} | {'wall: 1 thr':>11} {f'{WORKERS} thr':>6} {'load':>5}")
     sizes = [(500, 250_000), (1000, 500_000), (2000, 1_000_000)]
     pairs, kernel_s = [], []
     for n_sites, n_assets in sizes:
-        n_pairs, times, agreement = measure(n_sites, n_assets, rng)
-        k, r = ratio(times, "kernel", "ndtr"), ratio(times, "reference", "ndtr")
+        n_pairs, times, walls, agreement = measure(n_sites, n_assets, rng)
+        k, f, r = ratio(times, "kernel", "ndtr"), ratio(times, "floor", "ndtr"), ratio(times, "reference", "ndtr")
         kr, p = ratio(times, "kernel", "reference"), ratio(times, "production", "ndtr")
+        w1, wt = ratio(walls, "kernel", "ndtr"), ratio(walls, "threads", "ndtr")
         print(f"{n_assets:>9} {n_pairs:>7} {n_pairs * N_DS * N_LEVELS:>12} {np.median(times['ndtr']):>8.4f} "
-              f"{k[0]:>7.2f} {r[0]:>7.2f} {kr[0]:>6.2f} {p[0]:>7.2f}")
+              f"{k[0]:>7.2f} {f[0]:>6.2f} {r[0]:>6.2f} {kr[0]:>6.2f} {p[0]:>6.2f} | {w1[0]:>11.2f} {wt[0]:>6.2f} "
+              f"{load_average():>5.2f}")
         pairs.append(n_pairs)
         kernel_s.append(np.median(times["kernel"]))
-    print(f"kernel vs reference, largest size: max relative difference {agreement:.1e}")
+    print("(CPU-time ratios to the left of |, wall-clock ratios to the right, each a median of interleaved rounds)")
+    print(f"kernel vs reference, largest size: max relative difference {agreement:.1e}; "
+          f"threaded kernel: identical tables")
     slope = np.polyfit(np.log(pairs), np.log(kernel_s), 1)[0]
     print(f"fitted exponent of kernel time vs pairs: {slope:.2f} (linear = 1)")
-    row("damage convolution kernel / bare ndtr, N pairs x 4 states x 40 levels", k, TARGET)
+    print(f"floor: the exact integral needs {PHI_PER_LEVEL} normal-CDF evaluations per value "
+          f"({PHI_PER_LEVEL * N_LEVELS} per pair and state for {N_LEVELS} levels); measured on its own arguments: "
+          f"{f[0]:.2f}x")
+    row("damage convolution kernel, 1 thread (CPU time) / bare ndtr, N pairs x 4 states x 40 levels", k, TARGET)
+    row(f"damage convolution kernel, {WORKERS} threads (wall clock, load {load_average():.1f}) / bare ndtr "
+        "(wall clock)", wt, TARGET)
+    row("floor: bare ndtr on the 2 normal-CDF arguments per value the exact integral needs / bare ndtr", f)
     row("tight numpy reference of the same integral / bare ndtr", r)
     row("damage convolution kernel / tight numpy reference", kr)
     row("production path (unique pairs, kernel, EAL, broadcast) / bare ndtr", p)

@@ -21,9 +21,12 @@ their relative accuracy.  Two :math:`\Phi` evaluations per piece, one exponentia
 logarithm; no per-level :math:`\Phi`, no branches.
 
 Scope: strictly positive rates (no segment ending at a zero rate), extrapolated tails, no
-diagnostics: the benchmark's inputs.  The production kernel evaluates each segment on
-its own (per-segment shares, zero-rate segments, both tail policies), so the two agree to
-round-off, not bit for bit (summation order and the cancelling boundary terms differ).
+diagnostics: the benchmark's inputs.  The production kernel
+(:mod:`quakefolio.core.risk_pieces`) sums the same positive terms, but multiplies
+:math:`C_p` and the plain :math:`\Phi` difference (log space only where :math:`\ln C_p` is
+large), adds the pieces in another order and handles both tail policies, the tail
+diagnostics and threads; curves reaching a zero rate go to the per-segment kernel of
+:mod:`quakefolio.core.risk`.  So the two agree to round-off, not bit for bit.
 
 Reference: Cornell, C.A., Jalayer, F., Hamburger, R.O., Foutch, D.A. (2002). Probabilistic
 basis for 2000 SAC FEMA steel moment frame guidelines. J. Struct. Eng. 128(4), 526-533.

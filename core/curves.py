@@ -74,8 +74,8 @@ def validate_curve(im_levels, rates, *, name="hazard curve"):
     Raises
     ------
     ValueError
-        Naming the constraint, the offending curve index and level index, and the
-        value received.
+        Naming the constraint, the offending curve index and level index (in the array
+        given: levels shared by every curve are checked once), and the value received.
     """
     x = np.asarray(im_levels, dtype=float)
     lam = np.asarray(rates, dtype=float)
@@ -88,7 +88,7 @@ def validate_curve(im_levels, rates, *, name="hazard curve"):
     if x.shape[-1] < 2:
         raise ValueError(f"{name}: at least 2 levels are needed, got {x.shape[-1]}")
     try:
-        x, lam = np.broadcast_arrays(x, lam)
+        np.broadcast_shapes(x.shape, lam.shape)
     except ValueError as exc:
         raise ValueError(
             f"{name}: im_levels shape {x.shape} does not broadcast with rates shape {lam.shape}"
@@ -121,7 +121,7 @@ def validate_curve(im_levels, rates, *, name="hazard curve"):
             f"{name}: rates must be non-increasing with im level, got {float(lam[i]):g} then {float(lam[j]):g} "
             f"at index {j}"
         )
-    return x, lam
+    return tuple(np.broadcast_arrays(x, lam))  # checked before: levels shared by curves once
 
 
 def segment_exponents(im_levels, rates):

@@ -1,7 +1,8 @@
 """The numerical kernels' shortcuts change no bit, and the benchmark's reference agrees with the kernel.
 
-* Risk convolution (:mod:`quakefolio.core.risk`): results do not depend on the row
-  blocking, bit for bit.
+* Risk convolution (:mod:`quakefolio.core.risk`, :mod:`quakefolio.core.risk_pieces`): results
+  do not depend on the row blocking or the number of threads, bit for bit; the telescoped
+  and the per-segment forms agree to round-off (tails, diagnostics, log-space terms).
 * Hazard engine (:mod:`quakefolio.core.hazard`): evaluating the truncated exceedance only
   inside :func:`truncation_window` gives exactly the full formula; the curves do not depend
   on the pass size, bit for bit.
@@ -19,6 +20,7 @@ from scipy.special import ndtr
 from conftest import REPO
 from quakefolio.core.hazard import exceedance_probability, hazard_from_pairs, truncation_window
 from quakefolio.core.risk import _convolve, damage_state_rates, risk_disaggregation
+from quakefolio.core.risk_pieces import piece_sums
 
 
 def _reference_module():
@@ -39,8 +41,9 @@ def _curves(rng, n, m=40, zero_tail=False):
 
 
 def test_reference_agrees_with_the_kernel():
-    # Two evaluations of the exact integral: per segment with log-space power terms
-    # (kernel) and telescoped into positive terms only (reference); only round-off differs.
+    # Two evaluations of the exact integral telescoped into positive terms: plain products
+    # C_p [Phi(hi) - Phi(lo)] added in order (kernel) and log-space terms summed pairwise
+    # (reference); only round-off differs.
     rng = np.random.default_rng(7)
     levels, rates = _curves(rng, 60)
     ref = _reference_module()
@@ -96,3 +99,56 @@ def test_hazard_curves_do_not_depend_on_the_pass_size():
         whole = hazard_from_pairs(lnx, mu, sd, rate, starts, owners, 50, trunc, chunk=n_pairs)
         for chunk in (1, 150, 1000):
             assert np.array_equal(hazard_from_pairs(lnx, mu, sd, rate, starts, owners, 50, trunc, chunk=chunk), whole)
+
+
+def _mixed_case(rng, n=45, m=17):
+    """Curves of every kind the kernels route: positive, ending at zero rates, steep (log-space terms)."""
+    levels, rates = _curves(rng, n, m=m)
+    _, ending = _curves(rng, n, m=m, zero_tail=True)
+    rates[::3] = ending[::3]  # every third curve reaches a zero rate
+    # a drop with slope k = 120 between levels 8 and 9: ln C_p far above 600 there
+    rates[1, 9:] = rates[1, 9:] * np.exp(-120.0 * (np.log(levels[9]) - np.log(levels[8])))
+    return levels, rates
+
+
+@pytest.mark.parametrize("per_row", [False, True])
+def test_telescoped_sums_do_not_depend_on_blocking_or_threads(per_row):
+    # Each row's pieces are added in order whatever the block (also a block of one row, where
+    # numpy alone would add pairwise) and whichever thread takes it.
+    rng = np.random.default_rng(5)
+    levels, rates = _curves(rng, 53, m=19)
+    lnx = np.log(levels * rng.uniform(0.9, 1.1, (53, 1)))  # levels differing per row
+    ln_theta, beta = np.log([0.08, 0.3, 1.1]), np.array([0.35, 0.6, 0.9])
+    if per_row:
+        ln_theta = ln_theta + rng.uniform(-0.5, 0.5, (53, 3))
+        beta = beta * rng.uniform(0.8, 1.2, (53, 3))
+    for truncate, ends in [(False, False), (True, False), (False, True)]:
+        whole = piece_sums(lnx, rates, ln_theta, beta, truncate=truncate, ends=ends)
+        for block, workers in [(1, 1), (130, 1), (500, 2), (10 ** 6, 3), (1, 4)]:
+            parts = piece_sums(lnx, rates, ln_theta, beta, truncate=truncate, ends=ends, workers=workers,
+                               block_values=block)
+            for a, b in zip(whole, parts):
+                assert (a is None and b is None) or np.array_equal(a, b)
+
+
+@pytest.mark.parametrize("tail", ["extrapolate", "truncate"])
+def test_telescoped_and_per_segment_forms_agree(tail):
+    # The same closed form (Cornell et al. 2002, Eq. 11 per piece) summed two ways: telescoped
+    # into positive terms (curves with positive rates) and per segment (_convolve, every curve);
+    # they differ by round-off only, tails and diagnostics included.  Curve 1 is steep enough for
+    # the log-space terms (ln C_p above LOG_COEF_MAX).
+    rng = np.random.default_rng(9)
+    levels, rates = _mixed_case(rng)
+    medians, betas = np.array([0.05, 0.4, 1.5, 4.0]), np.array([0.3, 0.5, 0.8, 1.2])
+    got, below, above = damage_state_rates(levels, rates, medians, betas, tail=tail, diagnostics=True)
+    lnx = np.log(np.broadcast_to(levels, rates.shape))
+    inner, low, high_ext, high_trunc = _convolve(lnx, rates, np.log(medians), betas)
+    total = inner + low + high_ext
+    expected = total if tail == "extrapolate" else inner + high_trunc
+    np.testing.assert_allclose(got, expected, rtol=1e-13, atol=0)
+    np.testing.assert_allclose(below, np.where(total > 0, low / total, 0.0), rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(above, np.where(total > 0, high_ext / total, 0.0), rtol=1e-12, atol=1e-15)
+    assert np.array_equal(got, damage_state_rates(levels, rates, medians, betas, tail=tail, workers=2))
+    assert np.all(got[1] > 0) and np.all(np.isfinite(got))
+    none = damage_state_rates(levels, rates[:0], medians, betas, tail=tail, diagnostics=True)
+    assert [a.shape for a in none] == [(0, 4)] * 3
