@@ -16,9 +16,10 @@ draws a figure that is not cached, no Prefect): an unchanged demo rerun costs re
 inputs and copying a few megabytes.
 
 The source run is the one recorded with the cache's ``complete-runs`` entry of the inputs
-(:func:`record_complete_run`); it is used only when it still exists, its manifest names the
-same inputs digest and stages, it holds exactly the files a run writes, and every table's
-provenance names that run and digest.  Otherwise (an entry written before runs were
+(:func:`record_complete_run`); it is used only when it still exists, its tables have the size
+and modification time recorded when it was written, its manifest names the same inputs digest
+and stages, it holds exactly the files a run writes, and every table's provenance names that
+run and digest.  Otherwise (an entry written before runs were
 recorded, a removed or edited run) the caller runs the stages, every one from the cache.
 """
 from __future__ import annotations
@@ -94,7 +95,18 @@ def record_complete_run(inputs, stages_to_run, run, stage_warnings=()):
     """
     _cache(inputs).put("complete-runs", complete_key(inputs, stages_to_run),
                        {"done": np.ones(1, np.int8), "run": np.array(Path(run).name),
+                        "files": np.array(json.dumps(_file_stamps(run))),
                         "stage_warnings": np.array(json.dumps([str(w) for w in stage_warnings]))})
+
+
+def _file_stamps(run):
+    """Size [bytes] and modification time [ns] of every table of a run folder: an edited table is not taken."""
+    out = {}
+    for path in Path(run).iterdir():
+        if path.name.endswith(".parquet"):
+            st = path.stat()
+            out[path.name] = [st.st_size, st.st_mtime_ns]
+    return out
 
 
 def _stages_label(stages_to_run):
@@ -129,7 +141,9 @@ def finished_source(inputs, stages_to_run="all"):
     try:
         manifest = read_manifest(source)
         stage_warnings = json.loads(str(entry["stage_warnings"]))
-    except (InputError, ValueError):
+        if json.loads(str(entry["files"])) != _file_stamps(source):  # a table edited, added or removed since
+            return None
+    except (InputError, ValueError, KeyError, OSError):
         return None
     names = {p.name for p in source.iterdir()}
     tables = {n[:-len(".parquet")] for n in names if n.endswith(".parquet")}

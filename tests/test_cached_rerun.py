@@ -125,3 +125,18 @@ def test_trend_figure_from_the_cache_is_the_same_document(mini_config, tmp_path)
     drawn = build_report(second, cache=cache)
     assert len(list((cache.root / "report").rglob("*.npz"))) == len(CACHED_SECTIONS) + 1  # and the trend figure
     assert build_report(second, cache=cache) == drawn == build_report(second)
+
+
+def test_an_edited_table_of_the_complete_run_is_not_taken_again(mini_config):
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    first = run_pure(mini_config)
+    kept = read_table(first, "asset_loss")
+    table = pq.read_table(first / "asset_loss.parquet")
+    doubled = table.set_column(table.schema.get_field_index("eal"), "eal", pc.multiply(table["eal"], 2.0))
+    pq.write_table(doubled, first / "asset_loss.parquet", compression="zstd")  # same provenance, other numbers
+    assert main(["run", str(mini_config), "--quiet"]) == 0
+    second = latest_run(mini_config.parent / "output")
+    assert "tables_from_run" not in _manifest(second)  # the stages ran from the content cache instead
+    pd.testing.assert_frame_equal(kept, read_table(second, "asset_loss"), check_exact=True)
