@@ -162,7 +162,8 @@ class _NotReusable(Exception):
 def _read_table(source, name, source_id, sha):
     """Table ``name`` of the source run (Arrow) and its quakefolio metadata, checked against the run and digest."""
     try:
-        table = pq.read_table(source / f"{name}.parquet")
+        with pq.ParquetFile(source / f"{name}.parquet") as file:  # one file: without the dataset machinery
+            table = file.read()
         meta = json.loads((table.schema.metadata or {}).get(METADATA_KEY, b"{}"))
     except (OSError, ValueError, pa.ArrowException) as exc:  # gone, unreadable or not Parquet: not taken
         raise _NotReusable(name) from exc

@@ -435,6 +435,12 @@ def read_table(run_dir, name):
     return pq.read_table(Path(run_dir) / f"{name}.parquet").to_pandas()
 
 
+def _read_columns(file, columns):
+    """Some columns of one Parquet file as a DataFrame (read with the file reader: no dataset machinery)."""
+    with pq.ParquetFile(file) as handle:
+        return handle.read(columns=list(columns)).to_pandas()
+
+
 def table_metadata(run_dir, name):
     """The quakefolio schema metadata (units, provenance) of a run table.
 
@@ -554,9 +560,8 @@ class RunFolder:
             if not file.exists():
                 raise InputError(file, f"missing table: run {self.run_id} has no {name}.parquet")
             try:
-                self._tables[key] = (read_table(self.path, name) if columns is None
-                                     else pq.read_table(file, columns=list(columns)).to_pandas())
-            except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
+                self._tables[key] = read_table(self.path, name) if columns is None else _read_columns(file, columns)
+            except (OSError, ValueError, KeyError) as exc:  # pyarrow's errors derive from these
                 raise InputError(file, f"unreadable table ({exc})") from None
         return self._tables[key]
 
