@@ -293,7 +293,7 @@ def _run_flow_shared(config, inputs, stages_to_run, always=False):
     if not always:
         from quakefolio.pipeline.reuse import FROM_CACHE, reuse_finished_run
 
-        run = reuse_finished_run(inputs, stages_to_run, orchestration=FROM_CACHE)  # imports no stage module
+        run = reuse_finished_run(inputs, stages_to_run, orchestration=FROM_CACHE)  # no stage runs
         if run is not None:
             return run
         from quakefolio.pipeline.runner import every_stage_cached, run_pure

@@ -11,9 +11,9 @@ the source run's with this run's id, time, package versions, orchestration, cach
 report is drawn again (its table-drawn sections from the content cache).  The folder is
 written and committed like any other (:class:`quakefolio.pipeline.io.store.RunWriter`).
 
-Nothing numerical is imported on this path (no scipy, no matplotlib unless the report
-draws a figure that is not cached, no Prefect): an unchanged demo rerun costs reading the
-inputs and copying a few megabytes.
+Neither scipy nor Prefect is imported on this path, and matplotlib only when the report
+draws a figure that is not cached (the trend, while its numbers change): an unchanged demo
+rerun costs reading the inputs, copying a few megabytes of tables and the report.
 
 The source run is the one recorded with the cache's ``complete-runs`` entry of the inputs
 (:func:`record_complete_run`); it is used only when it still exists, its tables have the size
