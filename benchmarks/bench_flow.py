@@ -15,7 +15,9 @@ candidates right after one another):
   server already running (the usual case: any earlier command started it): target <= 1.1x;
 * the same with no server running (this run starts it; once per state folder and idle time);
 * unchanged demo rerun on the default flow path, server running: target <= 3 s wall; it is
-  written without a flow run when every stage is cached (``--always-flow`` timed beside it).
+  written without a flow run when every stage is cached, from the tables of the run before
+  (``--always-flow`` timed beside it).  The output folder is new, so every rerun's report draws
+  the trend figure (its numbers change with the number of runs).
 """
 from __future__ import annotations
 

@@ -62,8 +62,8 @@ from dataclasses import fields
 from typing import NamedTuple
 
 import numpy as np
-import scipy.sparse as sp
 
+from quakefolio.core.lazy import lazy_module
 from quakefolio.core.events.gmf import cross_im_correlation_matrix
 from quakefolio.core.hazard import (
     DISAGG_MOMENTS, DisaggBins, disaggregation_from_pairs, disaggregation_means, exceedance_probability, values_key,
@@ -71,6 +71,8 @@ from quakefolio.core.hazard import (
 from quakefolio.core.pairs import block_pairs, model_input, region_parts
 from quakefolio.core.sources.geometry import mean_position
 from quakefolio.core.ims import model_period, parse_im
+
+sp = lazy_module("scipy.sparse")
 
 __all__ = [
     "CMS_MIN_PERIOD_S",

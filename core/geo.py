@@ -8,7 +8,10 @@ chord is the nearest by arc, and :math:`d = 2R\arcsin(c/2)`.
 from __future__ import annotations
 
 import numpy as np
-from scipy.spatial import cKDTree
+
+from quakefolio.core.lazy import lazy_module
+
+spatial = lazy_module("scipy.spatial")
 
 __all__ = ["EARTH_RADIUS_KM", "unit_vectors", "great_circle_km", "nearest_site"]
 
@@ -43,7 +46,7 @@ def nearest_site(lon_assets, lat_assets, lon_sites, lat_sites):
     sites = unit_vectors(lon_sites, lat_sites)
     if sites.shape[0] == 0:
         raise ValueError("no sites given")
-    tree = cKDTree(sites)
+    tree = spatial.cKDTree(sites)
     chord, idx = tree.query(unit_vectors(lon_assets, lat_assets), k=1)
     dist = 2 * EARTH_RADIUS_KM * np.arcsin(np.clip(chord / 2, 0.0, 1.0))
     return idx.astype(np.int64), dist

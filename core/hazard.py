@@ -41,13 +41,15 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse as sp
-from scipy.special import ndtr, ndtri
 
+from quakefolio.core.lazy import lazy_module
 from quakefolio.core.curves import im_at_rate
 from quakefolio.core.pairs import (
     block_pairs, check_event_model, model_input, model_values, pair_blocks, pair_segments, region_parts,
 )
+
+sp = lazy_module("scipy.sparse")
+special = lazy_module("scipy.special")
 
 __all__ = [
     "exceedance_probability",
@@ -125,9 +127,9 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *
     if any_zero:
         p[...] = np.where(zero, np.where(p > 0, np.inf, -np.inf), p)  # step: 1[ln x < mu]
     if truncation_sigma is None:
-        ndtr(p, out=p)
+        special.ndtr(p, out=p)
         return p
-    pn = ndtr(-truncation_sigma)
+    pn = special.ndtr(-truncation_sigma)
     lo, hi = truncation_window(truncation_sigma)
     above = p > hi
     outside = p < lo
@@ -143,7 +145,7 @@ def exceedance_probability(ln_levels, ln_median, sigma, truncation_sigma=None, *
 
 def _truncated(z, pn):
     """In place: clip((Phi(z) - pn) / (1 - 2 pn), 0, 1), the truncated exceedance."""
-    ndtr(z, out=z)
+    special.ndtr(z, out=z)
     z -= pn
     z *= 1.0 / (1.0 - 2.0 * pn)
     np.clip(z, 0.0, 1.0, out=z)
@@ -174,9 +176,9 @@ def truncation_window(truncation_sigma):
     Bounds from the normal quantile function (``scipy.special.ndtri``) with margins
     far above the round-off, so evaluating only inside the window changes no bit.
     """
-    pn = float(ndtr(-truncation_sigma))
-    lo = float(ndtri(pn * (1.0 - 1e-6))) if pn > 0 else -np.inf
-    hi = float(-ndtri(pn - 1e-9)) if pn > 2e-9 else np.inf
+    pn = float(special.ndtr(-truncation_sigma))
+    lo = float(special.ndtri(pn * (1.0 - 1e-6))) if pn > 0 else -np.inf
+    hi = float(-special.ndtri(pn - 1e-9)) if pn > 2e-9 else np.inf
     return lo, hi
 
 

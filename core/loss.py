@@ -34,7 +34,10 @@ the loss distribution, never by applying the terms to the mean loss.
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import betainc
+
+from quakefolio.core.lazy import lazy_module
+
+special = lazy_module("scipy.special")
 
 __all__ = [
     "check_damage_ratios", "beta_parameters", "expected_annual_loss", "loss_exceedance_rates",
@@ -142,7 +145,7 @@ def loss_exceedance_rates(ds_rates, mean_damage_ratio, loss_ratios, cov=None):
     a, b = beta_parameters(mdr, c)
     random = (c > 0)[..., None]
     with np.errstate(divide="ignore", invalid="ignore"):
-        p_beta = 1.0 - betainc(np.where(random, a[..., None], 1.0), np.where(random, b[..., None], 1.0), l)
+        p_beta = 1.0 - special.betainc(np.where(random, a[..., None], 1.0), np.where(random, b[..., None], 1.0), l)
     p_det = (mdr[..., None] > l).astype(float)
     p = np.where(random, p_beta, p_det)  # (..., n_ds, n_l)
     return np.einsum("...j,...jl->...l", occ, p)
@@ -201,7 +204,7 @@ def limited_mean_loss_ratio(mean, cov, cap):
     if np.any(random):
         a, b = beta_parameters(mu[random], c[random])
         uc = np.minimum(u[random], 1.0)
-        out[random] = mu[random] * betainc(a + 1.0, b, uc) + uc * (1.0 - betainc(a, b, uc))
+        out[random] = mu[random] * special.betainc(a + 1.0, b, uc) + uc * (1.0 - special.betainc(a, b, uc))
     return out
 
 

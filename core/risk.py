@@ -43,10 +43,12 @@ ASCE/SEI 7-16 (2017), Chapter 21, Section 21.2.1.2 (risk-targeted ground motion)
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import log_ndtr, ndtr, ndtri
 
+from quakefolio.core.lazy import lazy_module
 from quakefolio.core.curves import rate_from_prob, validate_curve
 from quakefolio.core.risk_pieces import log_ndtr_diff, piece_sums
+
+special = lazy_module("scipy.special")
 
 __all__ = [
     "lognormal_fragility",
@@ -74,7 +76,7 @@ def lognormal_fragility(im, median, beta):
     x = np.asarray(im, dtype=float)
     theta, b = _check_fragility(median, beta)
     with np.errstate(divide="ignore"):
-        return ndtr(np.log(x / theta) / b)
+        return special.ndtr(np.log(x / theta) / b)
 
 
 def lognormal_crossing_im(median_1, beta_1, median_2, beta_2):
@@ -111,7 +113,7 @@ def _power_term(ln_lam_i, ln_x_i, k, ln_theta, beta, log_phi_part):
 
 def _g(z):
     """Antiderivative of Phi: G(z) = z Phi(z) + phi(z)."""
-    return z * ndtr(z) + np.exp(-0.5 * z * z) / np.sqrt(2.0 * np.pi)
+    return z * special.ndtr(z) + np.exp(-0.5 * z * z) / np.sqrt(2.0 * np.pi)
 
 
 #: Values (damage state x row x level) per block of :func:`_convolve`: large enough that
@@ -243,7 +245,7 @@ def _segment_block(work, n, m, lnx, lam, ln_lam, k, th, b, ends):
     np.add(z[:, :-1], kb, out=lo)
     np.add(z[:, 1:], kb, out=hi)
     ends[0], ends[1] = grid(z)[:, :, 0], grid(z)[:, :, -1]
-    ndtr(z, out=z)
+    special.ndtr(z, out=z)
     ends[2], ends[3] = grid(z)[:, :, 0], grid(z)[:, :, -1]
     z *= lam.reshape(-1)
     np.subtract(z[:, :-1], z[:, 1:], out=seg)  # lambda_i Phi(z_i) - lambda_{i+1} Phi(z_{i+1})
@@ -256,8 +258,8 @@ def _segment_block(work, n, m, lnx, lam, ln_lam, k, th, b, ends):
         np.less_equal(hi, lo, out=up)
         up[:, m - 1::m] = False  # the dummy segments between rows
         empty = np.nonzero(up) if up.any() else None
-        log_ndtr(a, out=a)
-        log_ndtr(c, out=c)
+        special.log_ndtr(a, out=a)
+        special.log_ndtr(c, out=c)
         c -= a
         np.exp(c, out=c)
         np.negative(c, out=c)
@@ -321,8 +323,8 @@ def _tails(lnx, lam, ln_lam, k, ln_theta, beta, z0, zn, p0, pn, *, extrapolate=T
     l0, l1 = lam[..., :1], lam[..., 1:2]
     k0, kn = k[..., :1], k[..., -1:]
     with np.errstate(divide="ignore", invalid="ignore"):
-        low_power = _power_term(ln_lam[..., :1], x0, k0, ln_theta, beta, log_ndtr(z0 + k0 * beta)) - l0 * p0
-        high_ext = ln_ * pn + _power_term(ln_lam[..., -1:], xn, kn, ln_theta, beta, log_ndtr(-(zn + kn * beta)))
+        low_power = _power_term(ln_lam[..., :1], x0, k0, ln_theta, beta, special.log_ndtr(z0 + k0 * beta)) - l0 * p0
+        high_ext = ln_ * pn + _power_term(ln_lam[..., -1:], xn, kn, ln_theta, beta, special.log_ndtr(-(zn + kn * beta)))
     low = np.where(l1 > 0, low_power, 0.0)
     linear = (l1 == 0) & (l0 > 0)
     if linear.any():
@@ -522,7 +524,7 @@ def _envelope_parts(x, lam, ln_theta, b):
     z_top = (lnx[..., -1:] - ln_theta) / b  # (B, l)
     env_top = np.max(np.where(upper_mask, z_top[..., None, :], -np.inf), axis=-1)  # (B, j)
     lam_top = lam[..., -1:]
-    high_trunc = np.where(lam_top > 0, lam_top * ndtr(env_top), 0.0)
+    high_trunc = np.where(lam_top > 0, lam_top * special.ndtr(env_top), 0.0)
     return inner, low, high_ext, high_trunc
 
 
@@ -541,8 +543,8 @@ def _subpiece_integral(u, v, a, la, lb, k, delta, ln_theta, beta):
     zv = (v - ln_theta) / beta
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         ln_la = np.log(la)
-        end_u = np.where(np.isneginf(u), 0.0, np.exp(ln_la - k * (u - a) + log_ndtr(zu)))
-        end_v = np.where(np.isposinf(v), 0.0, np.exp(ln_la - k * (v - a) + log_ndtr(zv)))
+        end_u = np.where(np.isneginf(u), 0.0, np.exp(ln_la - k * (u - a) + special.log_ndtr(zu)))
+        end_v = np.where(np.isposinf(v), 0.0, np.exp(ln_la - k * (v - a) + special.log_ndtr(zv)))
         power = end_u - end_v + _power_term(ln_la, a, k, ln_theta, beta, log_ndtr_diff(zu + k * beta, zv + k * beta))
         g_u = np.where(np.isneginf(zu), 0.0, _g(zu))
         linear = la * beta / delta * (_g(zv) - g_u)
@@ -641,5 +643,5 @@ def risk_targeted_im(im_levels, rates, beta=0.6, prob_at_im=0.10, target_prob=0.
         lo = np.where(above, mid, lo)
         hi = np.where(above, hi, mid)
     ln_theta = 0.5 * (lo + hi)
-    x_rt = np.exp(ln_theta + ndtri(prob_at_im) * beta)
+    x_rt = np.exp(ln_theta + special.ndtri(prob_at_im) * beta)
     return np.where(ok, x_rt, np.nan)

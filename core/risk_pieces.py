@@ -52,7 +52,10 @@ from __future__ import annotations
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
-from scipy.special import log_ndtr, ndtr
+
+from quakefolio.core.lazy import lazy_module
+
+special = lazy_module("scipy.special")  # imported on first use (core/lazy.py)
 
 __all__ = ["piece_sums", "log_ndtr_diff", "PHI_PER_LEVEL"]
 
@@ -75,8 +78,8 @@ def log_ndtr_diff(lo, hi):
     upper = lo > 0  # both in the upper tail: use survival functions
     a = np.where(upper, -lo, hi)  # log Phi(a) is the larger term
     c = np.where(upper, -hi, lo)
-    la = log_ndtr(a)
-    lc = log_ndtr(c)
+    la = special.log_ndtr(a)
+    lc = special.log_ndtr(c)
     with np.errstate(divide="ignore", invalid="ignore"):
         out = la + np.log1p(-np.exp(lc - la))
     return np.where(hi <= lo, -np.inf, out)
@@ -209,8 +212,8 @@ class _Bounds:
         zlo[:, 0] = -np.inf  # bounds: -inf, z_0 .. z_{m-1}, +inf
         zhi[:, :-1] = za[:, 1:]
         zhi[:, -1] = np.inf
-        ndtr(za[:, 0], out=self.p0)
-        ndtr(za[:, -1], out=self.pn)
+        special.ndtr(za[:, 0], out=self.p0)
+        special.ndtr(za[:, -1], out=self.pn)
 
 
 class _Work:
@@ -278,8 +281,8 @@ def _piece_block(work, b, out, checked=True):
     np.bitwise_xor(hi_bits, t, out=hi_bits)
     np.bitwise_xor(hi_bits, _SIGN, out=hi_bits)
     np.bitwise_or(lo_bits, _SIGN, out=lo_bits)
-    ndtr(lo, out=lo)
-    ndtr(hi, out=hi)
+    special.ndtr(lo, out=lo)
+    special.ndtr(hi, out=hi)
     hi -= lo
     np.abs(hi, out=hi)  # sigma [Phi(sigma hi) - Phi(sigma lo)] >= 0
     np.exp(c, out=c)

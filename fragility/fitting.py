@@ -42,10 +42,12 @@ import re
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy.special import gammaln, log_ndtr, ndtr, ndtri
 
+from quakefolio.core.lazy import lazy_module
 from quakefolio.core.ims import parse_im
 from quakefolio.core.risk import lognormal_crossing_im
+
+special = lazy_module("scipy.special")
 
 __all__ = [
     "FragilityFit",
@@ -263,7 +265,7 @@ def _check_beta_extra(beta_extra):
 # ---------------------------------------------------------------------------------------------
 def _inverse_mills(eta):
     r""":math:`\phi(\eta)/\Phi(\eta)`, computed in logs so that it stays finite far in the tails."""
-    return np.exp(-0.5 * eta * eta - _LN_SQRT_2PI - log_ndtr(eta))
+    return np.exp(-0.5 * eta * eta - _LN_SQRT_2PI - special.log_ndtr(eta))
 
 
 def _maximise_concave(parts, start, *, what, max_iter=200):
@@ -400,12 +402,12 @@ def fit_msa(im, n_records, n_exceed, *, beta_extra=0.0):
         raise ValueError(f"{what}: the fraction of exceedances decreases with IM (every exceedance lies at or below "
                          "the IM of every non-exceedance); these data do not describe a fragility function")
 
-    log_comb = float(np.sum(gammaln(n + 1) - gammaln(z + 1) - gammaln(n - z + 1)))
+    log_comb = float(np.sum(special.gammaln(n + 1) - special.gammaln(z + 1) - special.gammaln(n - z + 1)))
 
     def parts(t):
         a, b = t
         eta = a + b * lx
-        ll = log_comb + float(np.sum(z * log_ndtr(eta) + (n - z) * log_ndtr(-eta)))
+        ll = log_comb + float(np.sum(z * special.log_ndtr(eta) + (n - z) * special.log_ndtr(-eta)))
         lam_p, lam_m = _inverse_mills(eta), _inverse_mills(-eta)
         s = z * lam_p - (n - z) * lam_m
         w = -z * lam_p * (eta + lam_p) - (n - z) * lam_m * (lam_m - eta)
@@ -429,7 +431,7 @@ def fit_msa(im, n_records, n_exceed, *, beta_extra=0.0):
 def _msa_start(lx, n, z):
     """Weighted least squares of probit((z + 1/2)/(n + 1)) on ln IM (minimum chi-square start)."""
     p = (z + 0.5) / (n + 1.0)
-    y = ndtri(p)
+    y = special.ndtri(p)
     w = n * np.exp(-y * y) / (2.0 * np.pi * p * (1.0 - p))
     xm = np.sum(w * lx) / w.sum()
     ym = np.sum(w * y) / w.sum()
@@ -444,7 +446,8 @@ def _pearson_chi_square(lx, n, z, a, b):
     from scipy.stats import chi2
 
     eta = a + b * lx
-    e1, e0 = n * ndtr(eta), n * ndtr(-eta)  # expected exceedances and non-exceedances, each without cancellation
+    # expected exceedances and non-exceedances, each without cancellation
+    e1, e0 = n * special.ndtr(eta), n * special.ndtr(-eta)
     d2 = (z - e1) ** 2
     with np.errstate(divide="ignore", invalid="ignore"):
         terms = np.where(d2 == 0, 0.0, d2 / e1 + d2 / e0)
@@ -573,7 +576,7 @@ def fit_ida_truncated(im_at_failure, im_max, *, beta_extra=0.0):
         a, b = t
         u = b * y - a
         eta = a - b * c
-        ll = float(np.sum(math.log(b) - _LN_SQRT_2PI - 0.5 * u * u - y) + np.sum(log_ndtr(eta)))
+        ll = float(np.sum(math.log(b) - _LN_SQRT_2PI - 0.5 * u * u - y) + np.sum(special.log_ndtr(eta)))
         lam = _inverse_mills(eta)
         w = -lam * (eta + lam)
         g = np.array([u.sum() + lam.sum(), y.size / b - (u * y).sum() - (lam * c).sum()])
@@ -595,7 +598,7 @@ def fit_ida_truncated(im_at_failure, im_max, *, beta_extra=0.0):
 
 def _censored_ks(y, c, ln_median, beta, *, n):
     """Sup distance between the fitted CDF and the Kaplan-Meier estimate (ln IM failures ``y``, censored at ``c``)."""
-    fitted = lambda v: ndtr((v - ln_median) / beta)  # noqa: E731
+    fitted = lambda v: special.ndtr((v - ln_median) / beta)  # noqa: E731
     times, d = np.unique(y, return_counts=True)
     at_risk = (y.size - np.searchsorted(np.sort(y), times)) + (c.size - np.searchsorted(np.sort(c), times))
     km = 1.0 - np.cumprod(1.0 - d / at_risk)  # estimate of P(capacity <= t) at each failure IM
@@ -753,7 +756,7 @@ def _check_neighbours(class_code, states, pos):
         x = float(lognormal_crossing_im(m_lo, b_lo, m_hi, b_hi))
         if not math.isfinite(x) or x <= 0:
             continue
-        p = float(ndtr(math.log(x / m_lo) / b_lo))
+        p = float(special.ndtr(math.log(x / m_lo) / b_lo))
         bound = p if b_hi > b_lo else 1.0 - p
         if bound > CROSSING_TOLERANCE:
             side = "below" if b_hi > b_lo else "above"

@@ -290,10 +290,16 @@ def _run_flow_shared(config, inputs, stages_to_run, always=False):
     computed, so there is nothing to orchestrate; the manifest says so.  ``always``
     (``--always-flow``) runs the flow all the same.
     """
-    from quakefolio.pipeline.runner import FROM_CACHE, every_stage_cached, run_pure
+    if not always:
+        from quakefolio.pipeline.reuse import FROM_CACHE, reuse_finished_run
 
-    if not always and every_stage_cached(inputs, stages_to_run):
-        return run_pure(inputs, stages_to_run=stages_to_run, orchestration=FROM_CACHE)
+        run = reuse_finished_run(inputs, stages_to_run, orchestration=FROM_CACHE)  # no stage runs
+        if run is not None:
+            return run
+        from quakefolio.pipeline.runner import every_stage_cached, run_pure
+
+        if every_stage_cached(inputs, stages_to_run):  # the earlier run is gone: its stages' results are cached
+            return run_pure(inputs, stages_to_run=stages_to_run, orchestration=FROM_CACHE)
     configure_prefect(log_to=inputs.config.output.folder)
     from quakefolio.pipeline.server import use_server
 

@@ -69,18 +69,18 @@ def _runs(output):
 def _headline(run):
     """The headline figures of one run (NaN where it lacks them) and its PML per return period."""
     out = dict.fromkeys(HEADLINE, math.nan)
-    loss = run.optional_table("asset_loss")
+    loss = run.optional_table("asset_loss", ["eal", "collapse_prob_in_horizon", "annual_collapse_rate"])
     if loss is not None:
         out["classical_eal"] = float(loss["eal"].sum())
         out["expected_collapses_in_horizon"] = float(loss["collapse_prob_in_horizon"].sum())
         out["annual_collapse_rate_sum"] = float(loss["annual_collapse_rate"].sum())
-    summary = run.optional_table("portfolio_summary")
+    summary = run.optional_table("portfolio_summary", ["basis", "aal"])
     if summary is not None:
         ground = summary[summary["basis"] == "ground_up"]
         if len(ground):
             out["event_aal"] = float(ground["aal"].iloc[0])
     pml = {}
-    ep = run.optional_table("portfolio_ep")
+    ep = run.optional_table("portfolio_ep", ["basis", "return_period_yr", "aep_loss"])
     if ep is not None:
         for rp, loss_at in ep[ep["basis"] == "ground_up"][["return_period_yr", "aep_loss"]].itertuples(index=False):
             pml[float(rp)] = float(loss_at)

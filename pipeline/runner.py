@@ -10,14 +10,9 @@ runs: :class:`SequentialExecutor` in this thread, or
 from __future__ import annotations
 
 import json
-import platform
-import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
-from importlib import metadata
 from pathlib import Path
-
-import numpy as np
 
 from quakefolio.core.errors import InputError, OutputError
 from quakefolio.pipeline import progress
@@ -29,6 +24,8 @@ from quakefolio.pipeline.io.run_inputs import run_input_frames
 from quakefolio.pipeline.io.output_folder import prepare_output_folder
 from quakefolio.pipeline.io.store import RunWriter, new_run_id
 from quakefolio.pipeline.io.tables import TABLES, units_for
+from quakefolio.pipeline.io.versions import package_versions
+from quakefolio.pipeline.reuse import FROM_CACHE, ReportThread, complete_key, record_complete_run
 from quakefolio.pipeline.stages import blocks, spectrum, whatif
 from quakefolio.pipeline.stages import events as ps
 from quakefolio.pipeline.stages import hazard as hs
@@ -38,31 +35,9 @@ from quakefolio.pipeline.stages.products import CacheCounts, EventProduct, RunIn
 from quakefolio.pipeline.stages.regions import combination_record, site_input_record
 from quakefolio.pipeline.stages.sites import hazard_sites_table, source_faults_table
 
-#: The manifest's ``orchestration`` of a run that needed no flow: every stage's result was in the cache.
-FROM_CACHE = "none: every stage's result was in the content cache (no Prefect flow run)"
-
 __all__ = ["every_stage_cached", "FROM_CACHE", "execute", "SequentialExecutor", "write_run", "run_pure",
            "inputs_digest", "package_versions",
            "StageError", "stage_guard"]
-
-_PACKAGES = ("quakefolio", "numpy", "scipy", "pandas", "pyarrow", "prefect")
-
-
-def package_versions():
-    """Versions of quakefolio, its main dependencies and Python (for the manifest).
-
-    Returns
-    -------
-    dict name -> version string or None
-    """
-    out = {}
-    for name in _PACKAGES:
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = None
-    out["python"] = platform.python_version()
-    return out
 
 
 def inputs_digest(inputs):
@@ -385,15 +360,11 @@ def execute(inputs, executor, *, stages_to_run="all"):
                 ps.FIELD_MEMO.clear()
         run = executor.one("store-run", write_run, inputs, damage, events, extra, clock.timings, counts, started,
                            getattr(executor, "orchestration", None))
-    try:  # marks that every stage's result is now in the cache (see every_stage_cached)
-        stage_cache(inputs).put("complete-runs", _complete_key(inputs, stages_to_run), {"done": np.ones(1, np.int8)})
+    try:  # marks that every stage's result is now in the cache, and this run's tables (see every_stage_cached)
+        record_complete_run(inputs, stages_to_run, run, () if damage is None else damage.warnings)
     except (OSError, OutputError):
         pass  # the run is written; a later run of the same inputs goes through the flow again
     return run
-
-
-def _complete_key(inputs, stages_to_run):
-    return digest("complete-run", inputs.inputs_sha256, stages_to_run)  # and the code version
 
 
 def every_stage_cached(inputs, stages_to_run="all"):
@@ -414,7 +385,7 @@ def every_stage_cached(inputs, stages_to_run="all"):
     -------
     bool
     """
-    return stage_cache(inputs).get("complete-runs", _complete_key(inputs, stages_to_run)) is not None
+    return stage_cache(inputs).get("complete-runs", complete_key(inputs, stages_to_run)) is not None
 
 
 def _hazard_frames(inputs):
@@ -532,7 +503,7 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         report = None
         if cfg.output.report:  # drawn from the tables in memory while they are written (the manifest it shows
             _write_manifest(writer, manifest, timings, started)  # lacks the row counts and the store's time)
-            report = _ReportThread(writer.partial, frames, stage_cache(inputs))
+            report = ReportThread(writer.partial, frames, stage_cache(inputs))
             report.start()
         try:
             _write_tables(writer, frames, currency, provenance, cfg.execution.max_workers)
@@ -557,34 +528,6 @@ def _located(inputs, frames):
     assets = Positions.of(ex.asset_id, ex.lon.to_numpy(dtype=float), ex.lat.to_numpy(dtype=float))
     sites = Positions.of(hz.site_id, hz.lon, hz.lat)
     return {name: with_coordinates(frame, assets, sites) for name, frame in frames.items()}
-
-
-class _ReportThread(threading.Thread):
-    """Writes the report of a partial run folder from the tables in memory, in its own thread.
-
-    Parquet encoding (in the store's threads) runs outside the GIL while the report's figures
-    are drawn; :meth:`result` raises what the report raised.
-    """
-
-    def __init__(self, folder, frames, cache=None):
-        super().__init__(name="quakefolio-report", daemon=True)
-        self.folder, self.frames, self.cache = folder, frames, cache
-        self.error, self.seconds = None, 0.0
-
-    def run(self):
-        from quakefolio.pipeline.report import write_report  # lazy: the report is a layer above the stages
-
-        t = time.perf_counter()
-        try:
-            write_report(self.folder, self.folder / "report.html", tables=self.frames, cache=self.cache)
-        except BaseException as exc:  # noqa: BLE001 - handed to the writing thread by result()
-            self.error = exc
-        self.seconds = time.perf_counter() - t
-
-    def result(self):
-        """Raise the report's error, if any."""
-        if self.error is not None:
-            raise self.error
 
 
 def _write_tables(writer, frames, currency, provenance, workers):

@@ -2,19 +2,24 @@
 
 A run whose inputs, settings and code match a run that completed takes every stage's result
 from the content cache; ``quakefolio run`` then writes it without Prefect (the manifest says
-so) unless ``--always-flow`` is given.  The report's table-drawn sections are cached too, and
-the document must be the same byte for byte as one drawn from scratch.  No Prefect server is
+so) unless ``--always-flow`` is given: the tables of the completed run are written again with
+the new run's provenance, importing no numerical module, or, when that run is gone, the
+stages run from the cache.  The report's table-drawn sections are cached too, and the
+document must be the same byte for byte as one drawn from scratch.  No Prefect server is
 started here: the runs are on the plain path.
 """
 from __future__ import annotations
 
 import json
+import shutil
+import subprocess
+import sys
 
 import pandas as pd
 
 from quakefolio.pipeline.cli import main
 from quakefolio.pipeline.io.cache import StageCache
-from quakefolio.pipeline.io.store import latest_run, read_table
+from quakefolio.pipeline.io.store import latest_run, read_table, table_metadata
 from quakefolio.pipeline.report import build_report
 from quakefolio.pipeline.report.document import CACHED_SECTIONS
 from quakefolio.pipeline.runner import FROM_CACHE, every_stage_cached, run_pure
@@ -62,3 +67,76 @@ def test_always_flow_and_no_flow_together_are_a_user_error(mini_config, capsys):
     assert main(["run", str(mini_config), "--no-flow", "--always-flow"]) == 2
     err = capsys.readouterr().err
     assert err.startswith("error: --always-flow") and err.count("\n") == 1
+
+
+def _manifest(run):
+    return json.loads((run / "manifest.json").read_text(encoding="utf-8"))
+
+
+#: Runs ``quakefolio run CONFIG --quiet`` in a fresh interpreter and prints the top-level packages it imported.
+_IMPORTS = """
+import json, sys
+from quakefolio.pipeline.cli import main
+code = main(["run", sys.argv[1], "--quiet"])
+print(json.dumps(sorted({m.split(".")[0] for m in sys.modules})))
+sys.exit(code)
+"""
+
+
+def test_unchanged_rerun_takes_the_tables_of_the_complete_run_and_imports_no_numerical_module(mini_config):
+    cfg = mini_config.parent / "quakefolio_compute.toml"  # computed hazard: the source models are read too
+    first = run_pure(cfg)
+    proc = subprocess.run([sys.executable, "-c", _IMPORTS, str(cfg)], capture_output=True, text=True, timeout=300,
+                          cwd=cfg.parent)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    second, imported = latest_run(cfg.parent / "output"), set(json.loads(proc.stdout.splitlines()[-1]))
+    assert second != first and proc.stdout.splitlines()[0] == str(second)
+    assert not imported & {"scipy", "matplotlib", "prefect"}, sorted(imported & {"scipy", "matplotlib", "prefect"})
+    manifest, before = _manifest(second), _manifest(first)
+    assert manifest["tables_from_run"] == first.name and manifest["orchestration"] == FROM_CACHE
+    assert manifest["row_counts"] == before["row_counts"] and manifest["inputs_sha256"] == before["inputs_sha256"]
+    assert all(c["computed"] == 0 for c in manifest["cache"].values())
+    assert {"ingest_s", "damage_loss_s", "store_s", "total_s"} <= set(manifest["timings_s"])
+    for name in manifest["row_counts"]:  # each table names the run it belongs to
+        meta, old = table_metadata(second, name), table_metadata(first, name)
+        assert meta["run_id"] == second.name and {**meta, "run_id": old["run_id"]} == old
+        pd.testing.assert_frame_equal(read_table(first, name), read_table(second, name), check_exact=True)
+
+
+def test_unchanged_rerun_runs_the_stages_from_the_cache_when_the_complete_run_is_gone(mini_config, capsys):
+    first = run_pure(mini_config)
+    kept = {name: read_table(first, name) for name in TABLES}
+    shutil.rmtree(first)
+    assert main(["run", str(mini_config), "--quiet"]) == 0
+    second = latest_run(mini_config.parent / "output")
+    manifest = _manifest(second)
+    assert manifest["orchestration"] == FROM_CACHE and "tables_from_run" not in manifest
+    assert all(c["computed"] == 0 for c in manifest["cache"].values())
+    for name in TABLES:
+        pd.testing.assert_frame_equal(kept[name], read_table(second, name), check_exact=True)
+    assert main(["run", str(mini_config), "--quiet"]) == 0  # and this run is taken by the next one
+    assert _manifest(latest_run(mini_config.parent / "output"))["tables_from_run"] == second.name
+
+
+def test_trend_figure_from_the_cache_is_the_same_document(mini_config, tmp_path):
+    run_pure(mini_config)
+    second = run_pure(mini_config)  # two runs: the trend section draws its figure
+    cache = StageCache(tmp_path / "cache-home")
+    drawn = build_report(second, cache=cache)
+    assert len(list((cache.root / "report").rglob("*.npz"))) == len(CACHED_SECTIONS) + 1  # and the trend figure
+    assert build_report(second, cache=cache) == drawn == build_report(second)
+
+
+def test_an_edited_table_of_the_complete_run_is_not_taken_again(mini_config):
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    first = run_pure(mini_config)
+    kept = read_table(first, "asset_loss")
+    table = pq.read_table(first / "asset_loss.parquet")
+    doubled = table.set_column(table.schema.get_field_index("eal"), "eal", pc.multiply(table["eal"], 2.0))
+    pq.write_table(doubled, first / "asset_loss.parquet", compression="zstd")  # same provenance, other numbers
+    assert main(["run", str(mini_config), "--quiet"]) == 0
+    second = latest_run(mini_config.parent / "output")
+    assert "tables_from_run" not in _manifest(second)  # the stages ran from the content cache instead
+    pd.testing.assert_frame_equal(kept, read_table(second, "asset_loss"), check_exact=True)

@@ -25,13 +25,13 @@ OVER_LIMIT: set = set()
 #: layers inside ``pipeline/``, lowest first; a module may import only from its own layer or lower
 LAYERS = [
     {"caution", "env", "progress", "io", "server", "terminal", "runlog"},
-    {"stages", "runner", "summary"},
+    {"stages", "runner", "reuse", "summary"},
     {"report", "compare", "export", "history", "scenario_run"},
     {"flow", "orchestration", "scheduling"},
     {"cli", "__main__"},
 ]
 #: imports of a higher layer deferred into a function by design
-LAYER_EXCEPTIONS = {("runner", "report")}  # the store stage writes the report into the run folder
+LAYER_EXCEPTIONS = {("runner", "report"), ("reuse", "report")}  # a run writes its report into its folder
 
 
 def _modules(folder):

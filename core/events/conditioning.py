@@ -59,8 +59,11 @@ from __future__ import annotations
 from typing import NamedTuple
 
 import numpy as np
-import scipy.linalg as sla
+
+from quakefolio.core.lazy import lazy_module
 from numpy.typing import ArrayLike, NDArray
+
+sla = lazy_module("scipy.linalg")
 
 __all__ = ["ConditionedField", "condition_field", "sample_conditioned"]
 

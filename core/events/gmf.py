@@ -108,13 +108,16 @@ from collections.abc import Mapping, Sequence
 from typing import NamedTuple
 
 import numpy as np
-import scipy.linalg as sla
+
+from quakefolio.core.lazy import lazy_module
 from numpy.typing import ArrayLike, NDArray
-from scipy.special import expit, ndtr, ndtri
 
 from quakefolio.core.events.eventset import EVENT_BLOCK_SIZE, block_rng, check_seed, event_blocks
 from quakefolio.core.sources.geometry import aeqd_forward, mean_position
 from quakefolio.core.ims import PGA_PERIOD_S, model_period
+
+sla = lazy_module("scipy.linalg")
+special = lazy_module("scipy.special")
 
 __all__ = [
     "DENSE_MAX_SITES",
@@ -265,8 +268,8 @@ def bj08_correlation(period1_s: ArrayLike, period2_s: ArrayLike) -> FloatArray:
     tmin = np.minimum(t1, t2)
     tmax = np.maximum(t1, t2)
     c1 = 1.0 - np.cos(np.pi / 2.0 - 0.366 * np.log(tmax / np.maximum(tmin, 0.109)))
-    # 1 - 1/(1 + exp(x)) = expit(x): no overflow at long periods
-    c2 = np.where(tmax < 0.2, 1.0 - 0.105 * expit(100.0 * tmax - 5.0) * (tmax - tmin) / (tmax - 0.0099), 0.0)
+    # 1 - 1/(1 + exp(x)) = special.expit(x): no overflow at long periods
+    c2 = np.where(tmax < 0.2, 1.0 - 0.105 * special.expit(100.0 * tmax - 5.0) * (tmax - tmin) / (tmax - 0.0099), 0.0)
     c3 = np.where(tmax < 0.109, c2, c1)
     c4 = c1 + 0.5 * (np.sqrt(c3) - c3) * (1.0 + np.cos(np.pi * tmin / 0.109))
     rho = np.select([tmax < 0.109, tmin > 0.109, tmax < 0.2], [c2, c1, np.minimum(c2, c4)], c4)
@@ -335,11 +338,11 @@ def truncated_normal_transform(z: ArrayLike, truncation_sigma: float | None) -> 
     n = _check_truncation(truncation_sigma)
     if n is None:
         return z.copy()
-    pn = ndtr(-n)
-    out = ndtr(-np.abs(z))
+    pn = special.ndtr(-n)
+    out = special.ndtr(-np.abs(z))
     out *= 1.0 - 2.0 * pn
     out += pn
-    out = ndtri(out)
+    out = special.ndtri(out)
     np.negative(out, out=out)  # >= 0
     np.minimum(out, n, out=out)
     return np.copysign(out, z)

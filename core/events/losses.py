@@ -29,8 +29,8 @@ tables, vectorised over events and assets:
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import ndtr
 
+from quakefolio.core.lazy import lazy_module
 from quakefolio.core.events.eventset import damage_block_rng
 from quakefolio.core.events.portfolio import (
     aal_with_standard_error, apply_policy, expected_loss_ratio, has_policy_terms,
@@ -39,6 +39,8 @@ from quakefolio.core.loss import check_damage_ratios, net_loss_ratio
 from quakefolio.core.risk import lognormal_fragility
 from quakefolio.core.events.secondary import correlated_uniform, group_factors, sample_correlated_loss_ratio
 from quakefolio.core.vulnerability import VulnerabilityTable, cov_at, mean_loss_ratio_at, vulnerability_quantile
+
+special = lazy_module("scipy.special")
 
 __all__ = [
     "event_loss_ratio",
@@ -245,7 +247,7 @@ def _state_exceedance(x, theta, b):
             q = x / theta[j]
             np.log(q, out=q)
             q /= b[j]
-            p.append(ndtr(q, out=q))
+            p.append(special.ndtr(q, out=q))
     for j in range(theta.size - 2, -1, -1):  # upper envelope over the higher states
         np.maximum(p[j + 1], p[j], out=p[j])
     return p

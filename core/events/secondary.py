@@ -87,12 +87,14 @@ from __future__ import annotations
 import numbers
 
 import numpy as np
-from scipy import special
 
+from quakefolio.core.lazy import lazy_module
 from quakefolio.core.events.eventset import group_factor_rng
 from quakefolio.core.events.portfolio import _state_draw, _state_terms, aal_with_standard_error, ep_from_years, tvar
 from quakefolio.core.loss import beta_parameters
 from quakefolio.core.whatif import change, paired_aal_change
+
+special = lazy_module("scipy.special")
 
 __all__ = ["check_correlation", "correlated_uniform", "group_factors", "sample_correlated_loss_ratio",
            "correlation_effect"]

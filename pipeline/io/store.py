@@ -435,6 +435,12 @@ def read_table(run_dir, name):
     return pq.read_table(Path(run_dir) / f"{name}.parquet").to_pandas()
 
 
+def _read_columns(file, columns):
+    """Some columns of one Parquet file as a DataFrame (read with the file reader: no dataset machinery)."""
+    with pq.ParquetFile(file) as handle:
+        return handle.read(columns=list(columns)).to_pandas()
+
+
 def table_metadata(run_dir, name):
     """The quakefolio schema metadata (units, provenance) of a run table.
 
@@ -529,13 +535,15 @@ class RunFolder:
         """
         return (self.path / f"{name}.parquet").is_file()
 
-    def table(self, name):
-        """A run table as a DataFrame (read once, then kept).
+    def table(self, name, columns=None):
+        """A run table (or some of its columns) as a DataFrame (read once, then kept).
 
         Parameters
         ----------
         name : str
             Table name without ``.parquet``.
+        columns : list of str, optional
+            Only these columns (read from the file alone).
 
         Returns
         -------
@@ -546,29 +554,32 @@ class RunFolder:
         InputError
             When the table is missing or unreadable (naming the file).
         """
-        if name not in self._tables:
+        key = name if columns is None else (name, tuple(columns))
+        if key not in self._tables:
             file = self.path / f"{name}.parquet"
             if not file.exists():
                 raise InputError(file, f"missing table: run {self.run_id} has no {name}.parquet")
             try:
-                self._tables[name] = read_table(self.path, name)
-            except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
+                self._tables[key] = read_table(self.path, name) if columns is None else _read_columns(file, columns)
+            except (OSError, ValueError, KeyError) as exc:  # pyarrow's errors derive from these
                 raise InputError(file, f"unreadable table ({exc})") from None
-        return self._tables[name]
+        return self._tables[key]
 
-    def optional_table(self, name):
-        """The table as a DataFrame, or None when the run has no such table.
+    def optional_table(self, name, columns=None):
+        """The table (or some of its columns) as a DataFrame, or None when the run has no such table.
 
         Parameters
         ----------
         name : str
             Table name without ``.parquet``.
+        columns : list of str, optional
+            Only these columns.
 
         Returns
         -------
         pandas.DataFrame or None
         """
-        return self.table(name) if self.has(name) else None
+        return self.table(name, columns) if self.has(name) else None
 
     def metadata(self, name):
         """The quakefolio schema metadata (units, description, provenance) of a run table.

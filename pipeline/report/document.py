@@ -70,8 +70,8 @@ def _not_drawn(exc):
 #: (the trend reads the other runs of the output folder, so it is never cached).
 CACHED_SECTIONS = frozenset({"hazard", "fragility", "damage", "riskiest", "portfolio", "screening", "whatif",
                              "people", "map", "exposure", "events", "breakdowns"})
-#: Sections that draw figures besides the cached ones.
-_DRAWING_SECTIONS = CACHED_SECTIONS | {"trend"}
+#: Sections that draw figures (the trend sets the figure style itself, when it draws its figure).
+_DRAWING_SECTIONS = CACHED_SECTIONS
 
 
 def _section_key(run, sid):
@@ -161,7 +161,7 @@ def build_report(run_dir, *, previous_run=None, tables=None, cache=None):
         "portfolio": (_section_portfolio, run), "events": (_section_events, run),
         "breakdowns": (_section_breakdowns, run), "screening": (_section_screening, run),
         "whatif": (_section_whatif, run), "people": (_section_people, run), "map": (_section_map, run),
-        "changes": (_section_changes, run, previous_run), "trend": (_section_trend, run),
+        "changes": (_section_changes, run, previous_run), "trend": (_section_trend, run, cache),
         "checks": (_section_checks, run),
     }
     bodies, keys = _bodies(builders, run, cache)

@@ -9,7 +9,7 @@ import numpy as np
 from quakefolio.core.errors import InputError
 from quakefolio.pipeline.history import changed_inputs, finished_runs, headline_figures
 from quakefolio.pipeline.io.store import RunFolder
-from quakefolio.pipeline.report.figures import _SERIES, _figure_html, _new_figure
+from quakefolio.pipeline.report.figures import _RC, _SERIES, _figure_html, _new_figure
 from quakefolio.pipeline.report.html import _cell, _money, _note, _p, _table
 
 __all__ = ["TREND_RUNS", "trend_frame", "_section_trend"]
@@ -99,14 +99,46 @@ def _trend_figure(frame, cur):
     return fig
 
 
-def _section_trend(run):
+def _trend_figure_html(frame, cur, cache):
+    """The trend figure as HTML; with ``cache``, taken from it when the same figures were drawn before.
+
+    The figure shows the runs' numbers only (x: the runs numbered from the oldest), so a
+    scheduled rerun of unchanged inputs draws it once the trend holds :data:`TREND_RUNS` runs
+    of the same figures; matplotlib is then not imported at all.
+    """
+    plotted = [c for c in frame.columns if c in ("classical_eal", "event_aal") or c.startswith("pml_")]
+    key = None
+    if cache is not None:
+        from quakefolio.pipeline.io.cache import digest
+
+        key = digest("report-trend-figure", cur, plotted, frame[plotted].to_numpy(float))
+        found = cache.get("report", key)
+        if found is not None:
+            return found["html"].tobytes().decode("utf-8")
+    import matplotlib
+
+    with matplotlib.rc_context(_RC):
+        html = _figure_html(_trend_figure(frame, cur), "trend of EAL, AAL and PML across runs",
+                            f"Figure: classical EAL and event-based AAL [{cur}/yr]; beside it, where the runs simulated "
+                            f"events, the ground-up aggregate PML per return period [{cur}]; x: the runs of the table "
+                            "above, oldest first. A missing point: the run has no such figure (no event stage, another "
+                            "return period).")
+    if key is not None:
+        cache.put("report", key, {"html": np.frombuffer(html.encode("utf-8"), dtype=np.uint8)})
+    return html
+
+
+def _section_trend(run, cache=None):
     """Section: headline figures of the output folder's runs up to this one, as a table and a plot.
 
-    Not cached with the table-drawn sections: it depends on the other runs of the folder.
+    Not cached with the table-drawn sections: it depends on the other runs of the folder
+    (its figure is, by the numbers it shows: :func:`_trend_figure_html`).
 
     Parameters
     ----------
     run : ReportRun
+    cache : quakefolio.pipeline.io.cache.StageCache, optional
+        The content cache of the run's output folder.
 
     Returns
     -------
@@ -137,9 +169,5 @@ def _section_trend(run):
            _table(["#", "run", f"EAL [{cur}/yr]#", f"AAL [{cur}/yr]#"]
                   + [f"PML {c[4:]} yr [{cur}]#" for c in pmls]
                   + ["expected collapses#", "inputs changed since the run before"], rows),
-           _figure_html(_trend_figure(frame, cur), "trend of EAL, AAL and PML across runs",
-                        f"Figure: classical EAL and event-based AAL [{cur}/yr]; beside it, where the runs simulated "
-                        f"events, the ground-up aggregate PML per return period [{cur}]; x: the runs of the table "
-                        "above, oldest first. A missing point: the run has no such figure (no event stage, another "
-                        "return period).")]
+           _trend_figure_html(frame, cur, cache)]
     return "".join(out)
