@@ -4,7 +4,9 @@ Sequence: :func:`prepare_events` (event set of the whole logic tree, each simula
 one source-model x ground-motion branch combination by weight, or in per-branch mode one
 source-model branch with a ground-motion model drawn per event by weight; the field
 sampler on the hazard sites the portfolio uses) -> :func:`event_chunk` per chunk of whole random-number blocks (a flow
-task each; results identical whatever the chunking) -> :func:`combine_events` (event and
+task each; results identical whatever the chunking; run in the main thread, a chunk splits its groups of ruptures
+and its random-number blocks over ``[execution] max_workers`` threads, with the values of one thread,
+:mod:`quakefolio.core.events.threads`) -> :func:`combine_events` (event and
 year loss tables, AEP/OEP/TVaR, AAL with standard error, breakdowns, cross-checks against
 the classical results of the same model).
 
