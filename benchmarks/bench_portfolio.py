@@ -1,7 +1,8 @@
 """Benchmark: the event-based stage against a tight reference of the same computation.
 
-Run: ``python benchmarks/bench_portfolio.py [--repeat N] [--target-only]`` (``make bench`` runs
-it with the others; ``--target-only`` measures the target row alone).
+Run: ``python benchmarks/bench_portfolio.py [--repeat N] [--target-only] [--workers N]`` (``make
+bench`` runs it with the others; ``--target-only`` measures the target row alone; ``--workers``
+sets ``[execution] max_workers`` of the generated config, default 2, the config's default).
 
 A synthetic, invented portfolio and source model (written to a temporary folder): buildings
 of 3 classes on 2,000 unique sites, an area source around them, two ground-motion models
@@ -10,6 +11,11 @@ mean-damage-ratio loss model, no policy terms.  Timed, in a fresh process per ru
 stage (:func:`quakefolio.pipeline.stages.events.prepare_events`, every chunk of
 :func:`~quakefolio.pipeline.stages.events.event_chunk`, year losses and AEP points) and, in
 another process, the reference (``reference_events.py``: plain numpy, the same numbers).
+Threads: the stage splits each chunk's groups of ruptures and random-number blocks over
+``[execution] max_workers`` threads (:mod:`quakefolio.core.events.threads`; the values do not
+depend on it), the reference runs on one thread; both keep BLAS on one thread.  The CPU-time
+ratio compares the work of the two (threads add their CPU times), the wall-time ratio
+includes the stage's threads; every printed row names the thread counts.
 Stage and reference runs alternate (stage, reference, stage, ...), so machine load hits
 both alike; printed are the medians of the times, the median of the paired ratios, and
 the largest peak resident memory of the stage's processes (``ru_maxrss`` of the child,
@@ -18,9 +24,10 @@ included), each beside its target (issue 12; targets of the row with 10^5 buildi
 The last row (three times the years) shows that memory stays flat as years grow.
 
 For the target row, ``row:`` lines (``timing.row``) give the ratio against the reference,
-on CPU time (as the other benchmarks: steadier on a shared machine; both sides run on one
-thread) and on wall time, each with the target beside it, and one line gives the stage's
-absolute seconds and peak memory with the load average of the machine while it ran.
+on CPU time (as the other benchmarks: steadier on a shared machine) and on wall time, each with
+the target beside it and the thread counts in its name, and one line gives the stage's
+absolute seconds and peak memory with its thread count and the load average of the machine
+while it ran (wall time on 2 threads is only meaningful with both cores free).
 """
 from __future__ import annotations
 
@@ -47,9 +54,10 @@ SIZES = ((10_000, 10_000, True), (100_000, 10_000, True), (10_000, 30_000, False
 TARGET = {"seconds": 12.0, "peak_mb": 1024.0, "ratio": 1.5}  # 10^5 buildings, 10^4 years
 
 
-def write_inputs(folder, years, n_assets=10_000, n_sites=N_SITES, terms=False, event_block_size=1024):
+def write_inputs(folder, years, n_assets=10_000, n_sites=N_SITES, terms=False, event_block_size=1024, workers=None):
     """Invented inputs: exposure (optionally with per-building terms on two buildings in three),
-    fragility library, area source model and run config; returns the config path."""
+    fragility library, area source model and run config (``workers``: ``[execution] max_workers``,
+    None for the default); returns the config path."""
     rng = np.random.default_rng(3)
     lon = 10.0 + rng.uniform(-0.25, 0.25, n_sites)
     lat = 20.0 + rng.uniform(-0.25, 0.25, n_sites)
@@ -84,7 +92,7 @@ def write_inputs(folder, years, n_assets=10_000, n_sites=N_SITES, terms=False, e
         'gmm_branches = [{ model = "BSSA14", weight = 0.5 }, { model = "CB14", weight = 0.5 }]\n'
         'im_levels_g = [0.01, 0.1, 1.0]\ndisaggregation = false\n'
         f'[portfolio]\nyears = {years}\nseed = 1\n[exposure]\nfile = "exposure.csv"\n[fragility]\nlibrary = "lib.toml"\n'
-        f'[execution]\nevent_block_size = {event_block_size}\n')
+        f'[execution]\nevent_block_size = {event_block_size}\n' + (f'max_workers = {workers}\n' if workers else ''))
     return folder / "q.toml"
 
 
@@ -117,8 +125,9 @@ def child(side, config):
     gu = (run_stage if side == "stage" else run_reference)(inputs)
     seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # KiB on Linux
+    threads = inputs.config.execution.max_workers if side == "stage" else 1
     print(json.dumps({"seconds": seconds, "cpu": cpu, "peak_mb": peak_mb, "events": int(gu.size),
-                      "total": float(gu.sum())}))
+                      "total": float(gu.sum()), "threads": threads}))
 
 
 def _measure(side, config):
@@ -129,14 +138,16 @@ def _measure(side, config):
 
 def _target_rows(st, ref, load):
     """The target row's ratios (``row:`` lines) and its absolute seconds and peak memory."""
+    threads = f"stage on {st[0]['threads']} thread{'s' if st[0]['threads'] > 1 else ''}, reference on 1"
     label = f"event-based stage / tight reference, 10^5 buildings on {N_SITES:,} sites, 10^4 years"
-    for key, what in (("cpu", "CPU time"), ("seconds", "wall time")):
+    for key, what in (("cpu", f"CPU time; {threads}"), ("seconds", f"wall time; {threads}")):
         r = [s[key] / f[key] for s, f in zip(st, ref)]
         row(f"{label} ({what})", (statistics.median(r), min(r), max(r)), TARGET["ratio"], rounds=len(r))
     seconds, cpu = statistics.median(s["seconds"] for s in st), statistics.median(s["cpu"] for s in st)
     peak_gb = max(s["peak_mb"] for s in st) / 1024
     avg = " to ".join("/".join(f"{x:.1f}" for x in la) for la in (load[0], load[-1]))
-    print(f"absolute: stage {seconds:.1f} s wall, {cpu:.1f} s CPU (target <= {TARGET['seconds']:g} s "
+    print(f"absolute: stage on {st[0]['threads']} thread(s) {seconds:.1f} s wall, {cpu:.1f} s CPU "
+          f"(target <= {TARGET['seconds']:g} s "
           f"{'ok' if seconds <= TARGET['seconds'] else 'MISSED'}), peak {peak_gb:.2f} GB (target <= "
           f"{TARGET['peak_mb'] / 1024:g} GB {'ok' if peak_gb * 1024 <= TARGET['peak_mb'] else 'MISSED'}); "
           f"load average (1/5/15 min) {avg} on {os.cpu_count()} cores", flush=True)
@@ -146,6 +157,8 @@ def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeat", type=int, default=3, help="runs of each side per size (default 3)")
     parser.add_argument("--target-only", action="store_true", help="measure the target row alone")
+    parser.add_argument("--workers", type=int, default=None,
+                        help="[execution] max_workers of the stage (default: the config's default, 2)")
     parser.add_argument("--child", nargs=2, metavar=("SIDE", "CONFIG"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -154,13 +167,13 @@ def main():
     print(f"event-based stage vs a tight reference (reference_events.py), {N_SITES} sites, invented inputs; "
           f"stage and reference runs alternate, {args.repeat} each; medians")
     print(f"{'buildings':>9} {'years':>6} {'events':>6} {'stage s':>8} {'ref s':>6} {'ratio':>6} {'cpu s':>6} "
-          f"{'cpu ratio':>9} {'peak MB':>8} {'ref MB':>7} {'asset-events/s':>15}  targets")
+          f"{'cpu ratio':>9} {'peak MB':>8} {'ref MB':>7} {'asset-events/s':>15} {'stage thr':>9}  targets")
     load = [os.getloadavg()]
     for n_assets, years, repeated in SIZES:
         if args.target_only and (n_assets, years, repeated) != SIZES[1]:
             continue
         folder = Path(tempfile.mkdtemp(prefix="quakefolio-bench-"))
-        config = write_inputs(folder, years, n_assets)
+        config = write_inputs(folder, years, n_assets, workers=args.workers)
         runs = {"stage": [], "reference": []}
         for _ in range(max(1, args.repeat) if repeated else 1):
             for side in runs:
@@ -178,13 +191,14 @@ def main():
                       f"<= 1 GB {'ok' if peak <= TARGET['peak_mb'] else 'MISSED'}")
         print(f"{n_assets:>9} {years:>6} {st[0]['events']:>6} {med('seconds', st):>8.2f} {med('seconds', ref):>6.2f} "
               f"{ratio:>6.2f} {med('cpu', st):>6.2f} {cpu_ratio:>9.2f} {peak:>8.0f} "
-              f"{max(r['peak_mb'] for r in ref):>7.0f} {st[0]['events'] * n_assets / med('seconds', st):>15.3g}  "
-              f"{target}", flush=True)
+              f"{max(r['peak_mb'] for r in ref):>7.0f} {st[0]['events'] * n_assets / med('seconds', st):>15.3g} "
+              f"{st[0]['threads']:>9}  {target}", flush=True)
         if (n_assets, years, repeated) == SIZES[1]:
             load.append(os.getloadavg())
             _target_rows(st, ref, load)
     print("ratio = median over alternating pairs of stage / reference wall time (cpu ratio: of their CPU times, "
-          "steadier on a shared machine); peak MB = max resident set of the stage's processes (inputs and imports "
+          "steadier on a shared machine; the threads' CPU times add up); stage on [execution] max_workers threads "
+          "(stage thr), reference on 1; peak MB = max resident set of the stage's processes (inputs and imports "
           "included); the last row: memory flat as years grow")
 
 

@@ -23,6 +23,10 @@ fragility, the loss sums per pair, exceedance counts, year losses.
 
 It agrees with the stage to round-off (``tests/test_event_reference.py``: event losses
 and per-building sums to 1e-12 relative, exceedance counts exactly).
+
+It runs on one thread (BLAS limited to one thread, no threads of its own): a baseline of
+the work, for the CPU-time ratio.  The stage may split a chunk over ``[execution]
+max_workers`` threads; the benchmark names both thread counts in its rows.
 """
 from __future__ import annotations
 

@@ -42,3 +42,18 @@ def test_reference_agrees_with_the_stage(inputs):
         np.testing.assert_allclose(got, ref[key], rtol=1e-12, atol=0, err_msg=key)
     gu, net = ref["ground_up"], ref["net"]
     assert (gu > 0).mean() > 0.5 and (net < gu).any() and (net <= gu * (1 + 1e-12)).all()
+
+
+def test_stage_identical_whatever_the_thread_count(inputs):
+    # the blocks of a chunk (and its groups of ruptures) on 1 or 3 threads: every value bit for bit
+    # (quakefolio.core.events.threads); per-building terms on two buildings in three
+    import dataclasses
+
+    from quakefolio.pipeline.stages import events as ps
+
+    em = dataclasses.replace(ps.prepare_events(inputs), chunk_blocks=2)
+    runs = [[ps.event_chunk(dataclasses.replace(em, workers=w), c) for c in ps.event_chunks(em)] for w in (1, 3)]
+    assert len(runs[0]) > 1 and runs[0][0].asset_sum.shape[0] == 2
+    for one, three in zip(*runs):
+        for key in ("ground_up", "net", "asset_sum", "asset_sumsq", "class_sum", "exceed_counts"):
+            np.testing.assert_array_equal(getattr(one, key), getattr(three, key), err_msg=key)

@@ -63,9 +63,12 @@ def test_cross_checks_pass_on_the_small_model(event_config):
     assert h["compared_points"] > 50 and h["share_within_3_standard_errors"] >= 0.97
 
 
-def test_identical_whatever_the_chunking(event_config):
+def test_identical_whatever_the_chunking_and_threads(event_config):
+    # one random-number block per task on one thread, against 16 per task on 3 threads
+    # (blocks of a task and groups of ruptures on threads: quakefolio.core.events.threads)
+    _with(event_config, "event_block_size = 256", "event_block_size = 256\nmax_workers = 1")
     a = run_pure(event_config)
-    _with(event_config, "event_block_size = 256", "event_block_size = 4096")
+    _with(event_config, "event_block_size = 256\nmax_workers = 1", "event_block_size = 4096\nmax_workers = 3")
     b = run_pure(event_config)
     for name in EVENT_TABLES:
         pd.testing.assert_frame_equal(read_table(a, name), read_table(b, name), check_exact=True)

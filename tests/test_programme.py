@@ -181,14 +181,14 @@ def programme_config(tmp_path):
     (dst / "group_terms.csv").write_text("terms_group,deductible,limit\nP1,50000,2000000\nP2,,1500000\nP3,200000,\n")
     cfg = dst / "quakefolio_compute.toml"
     text = cfg.read_text().replace("[exposure]", PROGRAMME)
-    cfg.write_text(text.replace("site_block_size = 2", "site_block_size = 2\nevent_block_size = 256"))
+    cfg.write_text(text.replace("site_block_size = 2", "site_block_size = 2\nevent_block_size = 256\nmax_workers = 1"))
     return cfg
 
 
 TABLES = ["programme_summary", "group_loss", "layer_event_loss", "layer_year_loss", "layer_summary", "layer_ep"]
 
 
-def test_stage_tables_consistent_and_independent_of_chunking(programme_config):
+def test_stage_tables_consistent_and_independent_of_chunking_and_threads(programme_config):
     a = run_pure(programme_config)
     ev = read_table(a, "event_loss")
     le = read_table(a, "layer_event_loss")
@@ -212,7 +212,8 @@ def test_stage_tables_consistent_and_independent_of_chunking(programme_config):
         assert ls.loc[lid, "prob_attachment"] == len(grp) / 4000
     # the aggregate layer from 100k, unlimited, on the annual programme loss
     assert (yl[yl.layer_id == "AGG"].entering_loss > 1e5).all()
-    text = programme_config.read_text().replace("event_block_size = 256", "event_block_size = 4096")
+    text = programme_config.read_text().replace("event_block_size = 256\nmax_workers = 1",
+                                                "event_block_size = 4096\nmax_workers = 3")  # blocks on threads
     programme_config.write_text(text)
     b = run_pure(programme_config)
     for name in TABLES:

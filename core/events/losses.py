@@ -28,6 +28,8 @@ tables, vectorised over events and assets:
 """
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 
 from quakefolio.core.lazy import lazy_module
@@ -38,6 +40,7 @@ from quakefolio.core.events.portfolio import (
 from quakefolio.core.loss import check_damage_ratios, net_loss_ratio
 from quakefolio.core.risk import lognormal_fragility
 from quakefolio.core.events.secondary import correlated_uniform, group_factors, sample_correlated_loss_ratio
+from quakefolio.core.events.threads import serial_map
 from quakefolio.core.vulnerability import VulnerabilityTable, cov_at, mean_loss_ratio_at, vulnerability_quantile
 
 special = lazy_module("scipy.special")
@@ -311,7 +314,7 @@ def _vulnerability_pass(x, table, value, deductible, limit, pair):
 
 
 def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, deductible, limit, bounds,
-                     group_sums=None, assets=None):
+                     group_sums=None, assets=None, map_fn=None):
     r"""Mean-mode losses [currency] of one class's assets, summed per (site, class) pair where no terms apply.
 
     Parameters
@@ -332,6 +335,10 @@ def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, ded
         Receives the assets' net losses per event, summed by terms group.
     assets : ndarray of int, shape (n_assets,), optional
         The assets' indices in the portfolio (needed with ``group_sums``).
+    map_fn : callable, optional
+        Ordered map running the random-number blocks (:func:`quakefolio.core.events.threads.block_map`;
+        default one thread); each block writes its own rows and sums, so the values do not
+        depend on it.
 
     Returns
     -------
@@ -378,7 +385,9 @@ def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, ded
     asset_sumsq = np.zeros((len(bounds), 2, len(value)))
     total = np.zeros((len(bounds), 2))
     step = max(1, PASS_VALUES // max(1, n_pairs))  # events per pass of the elementwise arithmetic
-    for j, (lo, hi) in enumerate(bounds):  # one random-number block at a time
+
+    def block(j):  # one random-number block: writes its own rows and its own block sums
+        lo, hi = bounds[j]
         net = np.empty((hi - lo, t.size))
         for a in range(lo, hi, step):
             xp, r = x[a:min(hi, a + step)], ratio[a:min(hi, a + step)]
@@ -396,8 +405,12 @@ def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, ded
             net_ev[lo:hi] += net.sum(axis=1)
             asset_sum[j, 1, t], asset_sumsq[j, 1, t] = net.sum(axis=0), (net * net).sum(axis=0)
             if group_sums is not None:
-                group_sums.add(assets[t], net, rows=slice(lo, hi))
+                with lock:  # the block's own rows: one addition per row and class, in any block order
+                    group_sums.add(assets[t], net, rows=slice(lo, hi))
         total[j] = gu_ev[lo:hi].sum(), net_ev[lo:hi].sum()
+
+    lock = threading.Lock()
+    (map_fn or serial_map)(block, range(len(bounds)))
     if group_sums is not None:
         group_sums.add_pairs(assets[~terms], pair[~terms], value[~terms], ratio)
         if getattr(group_sums, "ground_up", None) is not None:  # the breakdown's ground-up sums
@@ -406,7 +419,7 @@ def pair_mean_losses(x, medians, betas, mean_damage_ratio, cov, pair, value, ded
 
 
 def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model, seed, blocks, correlation=0.0,
-                           group=None, group_sums=None, twin=False):
+                           group=None, group_sums=None, twin=False, map_fn=None):
     r"""Losses of a portfolio in a chunk of events, class by class.
 
     Parameters
@@ -432,6 +445,9 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
         Sampled damage with ``correlation > 0`` only: the independent twin of those draws
         (the same own uniforms without the group factors; common random numbers,
         :mod:`quakefolio.core.events.secondary`), to measure the correlation's effect.
+    map_fn : callable, optional
+        Mean mode: ordered map running each class's random-number blocks
+        (:func:`pair_mean_losses`); the values do not depend on it.
 
     Returns
     -------
@@ -466,7 +482,7 @@ def portfolio_event_losses(im, classes, value, deductible, limit, *, loss_model,
         if loss_model == "mean_damage_ratio":  # net: expected over the loss distribution given x
             gu, net, a_sum, a_sumsq, total = pair_mean_losses(
                 x, medians, betas, mdr, cov, pair, value[assets], deductible[assets], limit[assets], bounds,
-                group_sums, assets)
+                group_sums, assets, map_fn)
         else:
             gu, net, a_sum, a_sumsq, total = _sampled_class_losses(
                 x, (medians, betas, mdr, cov), pair, assets, (value, deductible, limit), blocks, k,

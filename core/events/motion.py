@@ -20,6 +20,7 @@ import numpy as np
 
 from quakefolio.core.events.gmf import check_standard_deviations, residual_term
 from quakefolio.core.events.losses import PASS_VALUES
+from quakefolio.core.events.threads import serial_map
 from quakefolio.core.pairs import block_pairs, check_event_model, model_input
 
 __all__ = ["EVENT_PAIR_BLOCK", "event_ground_motion", "event_ln_im"]
@@ -31,6 +32,8 @@ __all__ = ["EVENT_PAIR_BLOCK", "event_ground_motion", "event_ln_im"]
 #: (2 MB of L2 per core; 1,024 events on 2,000 sites, two models): 1.9 s of CPU per chunk
 #: with 32,768 pairs per pass, 2.4 s with 262,144, 2.2 s with 8,000.
 EVENT_PAIR_BLOCK = 32_768
+#: Events per block of the median's initial fill (-inf: no ground motion), spread over ``map_fn``.
+_FILL_ROWS = 64
 
 
 def _slot_events(keys_of_event):
@@ -65,7 +68,8 @@ def _copy_rows(order, first, arrays, rows_per_pass=256):
 
 
 def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, event_gmm, gmms, ims, *,
-                        max_distance_km=200.0, region="global", ref, site_fields=None, pair_block=EVENT_PAIR_BLOCK):
+                        max_distance_km=200.0, region="global", ref, site_fields=None, pair_block=EVENT_PAIR_BLOCK,
+                        map_fn=None):
     r"""Ln median [ln g], tau and phi [ln units] of each event's ground motion at each site.
 
     Parameters
@@ -88,6 +92,10 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     pair_block : int
         About the most (site, rupture) pairs per pass (:data:`EVENT_PAIR_BLOCK`); the
         values do not depend on it.
+    map_fn : callable, optional
+        Ordered map running the groups of ruptures (:func:`quakefolio.core.events.threads.block_map`;
+        default one thread); each group writes the rows of its own events, so the values do
+        not depend on it.
 
     Returns
     -------
@@ -120,7 +128,8 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     g_ev = np.asarray(event_gmm, dtype=np.int64).ravel()
     ims = list(ims)
     shape = (ev_rup.size, len(ims), len(site_lon))
-    mu, tau, phi = np.full(shape, -np.inf), np.zeros(shape), np.zeros(shape)
+    mu, tau, phi = np.empty(shape), np.zeros(shape), np.zeros(shape)  # zeros: pages zeroed on first use
+    (map_fn or serial_map)(lambda lo: mu[lo:lo + _FILL_ROWS].fill(-np.inf), range(0, shape[0], _FILL_ROWS))
     if ev_rup.size == 0:
         return mu, tau, phi
     keys, order, first = _slot_events(g_ev * len(ruptures) + ev_rup)  # distinct (model, rupture)
@@ -138,13 +147,17 @@ def event_ground_motion(site_lon, site_lat, site_vs30, ruptures, event_rupture, 
     fields = {k: np.asarray(v, dtype=float) for k, v in (site_fields or {}).items() if v is not None}
     per_group = max(1, int(pair_block) // max(1, len(site_lon)))
     ends = np.flatnonzero(np.diff(code[by_models])) + 1
-    for start, stop in zip(np.r_[0, ends], np.r_[ends, uniq.size]):  # the ruptures of each region
-        for lo in range(start, stop, per_group):
-            hi = min(stop, lo + per_group)
-            si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, ruptures.subset(uniq[by_models[lo:hi]]),
-                                               max_distance_km, ref, region, **fields)
-            if inp is not None:
-                _evaluate_group(gmms, ims, (mu, tau, phi), (slot_g, slot_u, rank, order, first), lo, hi, si, ri, inp)
+    groups = [(lo, min(stop, lo + per_group)) for start, stop in zip(np.r_[0, ends], np.r_[ends, uniq.size])
+              for lo in range(start, stop, per_group)]  # within the ruptures of each region
+
+    def group(bounds):  # writes the rows of its own (model, rupture) slots only
+        lo, hi = bounds
+        si, ri, _, _, inp, _ = block_pairs(site_lon, site_lat, site_vs30, ruptures.subset(uniq[by_models[lo:hi]]),
+                                           max_distance_km, ref, region, **fields)
+        if inp is not None:
+            _evaluate_group(gmms, ims, (mu, tau, phi), (slot_g, slot_u, rank, order, first), lo, hi, si, ri, inp)
+
+    (map_fn or serial_map)(group, groups)
     _copy_rows(order, first, (mu, tau, phi))
     return mu, tau, phi
 

@@ -4,7 +4,9 @@ Sequence: :func:`prepare_events` (event set of the whole logic tree, each simula
 one source-model x ground-motion branch combination by weight, or in per-branch mode one
 source-model branch with a ground-motion model drawn per event by weight; the field
 sampler on the hazard sites the portfolio uses) -> :func:`event_chunk` per chunk of whole random-number blocks (a flow
-task each; results identical whatever the chunking) -> :func:`combine_events` (event and
+task each; results identical whatever the chunking; run in the main thread, a chunk splits its groups of ruptures
+and its random-number blocks over ``[execution] max_workers`` threads, with the values of one thread,
+:mod:`quakefolio.core.events.threads`) -> :func:`combine_events` (event and
 year loss tables, AEP/OEP/TVaR, AAL with standard error, breakdowns, cross-checks against
 the classical results of the same model).
 
@@ -35,6 +37,7 @@ from quakefolio.core.events.gmf import FieldSampler
 from quakefolio.core.events.programme import GroupSums, chunk_programme_loss
 from quakefolio.core.events.secondary import correlation_effect
 from quakefolio.core.events.motion import event_ground_motion, event_ln_im
+from quakefolio.core.events.threads import block_map, thread_count
 from quakefolio.core.hazard import weighted_sum
 from quakefolio.core.loss import expected_annual_loss, expected_annual_net_loss
 from quakefolio.core.vulnerability import VulnerabilityTable
@@ -93,6 +96,7 @@ class EventModel:
     people: object = None  # PeopleModel: casualties, downtime, contents and interruption (stages.people)
     site_fields: dict = field(default_factory=dict)  # per used site: z1p0_km, z2p5_km [km], backarc (stages.regions)
     breakdown: tuple = ()  # [output] breakdown_columns: (column, group names, group of each asset) (stages.breakdown)
+    workers: int = 1  # [execution] max_workers: threads of a chunk run in the main thread (core.events.threads)
 
 
 def _groups(exposure, column):
@@ -236,7 +240,7 @@ def prepare_events(inputs):
         deductible=ex.deductible.to_numpy(dtype=float), limit=ex.limit.to_numpy(dtype=float), chunk_blocks=per_task,
         correlation=pf.secondary_correlation, group_column=pf.secondary_group, group_names=group_names, group=group,
         group_terms=inputs.group_terms, people=pp.prepare_people(inputs, events.n_events, pf.seed, classes),
-        breakdown=bd.breakdown_groups(ex, cfg.output.breakdown_columns), **tree)
+        breakdown=bd.breakdown_groups(ex, cfg.output.breakdown_columns), workers=cfg.execution.max_workers, **tree)
 
 
 def event_chunks(em):
@@ -366,17 +370,31 @@ FIELD_MEMO_BYTES = 512 * 2 ** 20
 FIELD_MEMO = FieldMemo(FIELD_MEMO_BYTES)
 
 
-def _ground_motion(em, start, stop, b0, b1):
-    """ln IM [ln g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites).
+def _fields(em, start, stop, rows, map_fn):
+    """Ground-motion fields [g] of the chunk's events at the portfolio's sites, shape (n_ev, n_im, n_sites),
+    and their exceedance counts (n_im, n_sites, n_levels).
 
-    Written into the median's array: the chunk holds one copy of each field less.
+    The ground motion of the events (groups of ruptures on ``map_fn``), then per
+    random-number block (on ``map_fn``) its residuals, ln IM, exceedance counts and IM,
+    written into the median's array (the chunk holds one copy of each field less); the
+    counts are integers, summed after.  Every value is the one of a single thread
+    (:mod:`quakefolio.core.events.threads`).
     """
     mu, tau, phi = event_ground_motion(em.site_lon, em.site_lat, em.site_vs30, em.ruptures,
                                        em.events.rupture[start:stop], em.gmm_of_event[start:stop], em.gmms, em.ims,
                                        max_distance_km=em.max_distance_km, region=em.region, ref=em.ref,
-                                       site_fields=em.site_fields)
-    res = em.sampler.sample_event_blocks(em.seed, em.events.n_events, np.arange(b0, b1))
-    return event_ln_im(mu, tau, phi, res.eta, res.eps, em.truncation_sigma, out=mu)
+                                       site_fields=em.site_fields, map_fn=map_fn)
+
+    def block(row):
+        b, lo, hi = row
+        res = em.sampler.sample_event_blocks(em.seed, em.events.n_events, [b])
+        im = event_ln_im(mu[lo:hi], tau[lo:hi], phi[lo:hi], res.eta, res.eps, em.truncation_sigma, out=mu[lo:hi])
+        counts = exceedance_counts(im, em.levels_g)
+        np.exp(im, out=im)  # [g]; 0 beyond the integration distance
+        return counts
+
+    counts = map_fn(block, rows)
+    return mu, sum(counts[1:], counts[0]) if counts else exceedance_counts(mu, em.levels_g)
 
 
 def event_chunk(em, chunk, independent=True):
@@ -399,19 +417,23 @@ def event_chunk(em, chunk, independent=True):
         exceedance counts (:func:`quakefolio.core.events.losses.portfolio_event_losses`).
     """
     single_blas_thread()
+    with block_map(thread_count(em.workers)) as map_fn:
+        return _event_chunk(em, chunk, independent, map_fn)
+
+
+def _event_chunk(em, chunk, independent, map_fn):
+    """:func:`event_chunk` with the ordered map of its blocks (:func:`quakefolio.core.events.threads.block_map`)."""
     b0, b1 = chunk
     blocks = event_blocks(em.events.n_events, EVENT_BLOCK_SIZE)
     start, stop = int(blocks[b0, 0]), int(blocks[b1 - 1, 1])
+    rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
     kept = FIELD_MEMO.get(em, chunk)
     if kept is None:
-        im = _ground_motion(em, start, stop, b0, b1)
-        counts = exceedance_counts(im, em.levels_g)
-        np.exp(im, out=im)  # (n_ev, n_im, n_sites) [g]; 0 beyond the integration distance
+        im, counts = _fields(em, start, stop, rows, map_fn)  # (n_ev, n_im, n_sites) [g]
         if FIELD_MEMO.enabled:  # kept for a rerun of the same events (the what-if), which reads them
             FIELD_MEMO.put(em, chunk, im, counts)
     else:
         im, counts = kept
-    rows = [(b, int(blocks[b, 0]) - start, int(blocks[b, 1]) - start) for b in range(b0, b1)]
     classes = [(assets, i_im, dss.medians, dss.betas, dss.mean_damage_ratio, dss.cov, usites, pair)
                if dss.has_damage_states else
                (assets, i_im, VulnerabilityTable(dss.levels, dss.mean_loss_ratio, dss.cov), None, None, None, usites,
@@ -422,7 +444,7 @@ def event_chunk(em, chunk, independent=True):
     hooks, by_group = bd.chunk_hooks(em.breakdown, groups, stop - start)
     gu_ev, net_ev, asset_sum, asset_sumsq, class_sum = portfolio_event_losses(
         im, classes, em.value, em.deductible, em.limit, loss_model=em.loss_model, seed=em.seed, blocks=rows,
-        correlation=em.correlation, group=em.group, group_sums=hooks)
+        correlation=em.correlation, group=em.group, group_sums=hooks, map_fn=map_fn)
     programme, group_sum = chunk_programme_loss(gt, groups, net_ev, [(lo, hi) for _, lo, hi in rows])
     other = None
     if independent and _correlated(em):  # the same ground motions and own draws, no group factors: the effect
