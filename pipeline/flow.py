@@ -9,6 +9,13 @@ submitted to the flow's task runner with small arguments (a run reference and a 
 cluster.  Tasks use no cache policy and do not persist results (Prefect would pickle
 large arrays); flow parameters stay small JSON.  The stage sequence is shared with the
 plain library path, so both give identical tables.
+
+What the flow costs per run is kept small: on the thread pool a stage's blocks go to a few
+task runs (:data:`BATCHES_PER_WORKER` per worker thread, each running its share of the
+blocks in order) rather than one task run per block, since every task run costs state
+events and log records in this process and in the server; on Dask every block stays a task
+run of its own (the cluster balances them).  The flow's parameters are not validated
+(they are two strings this module passes).
 """
 from __future__ import annotations
 
@@ -22,9 +29,13 @@ from quakefolio.pipeline import progress
 from quakefolio.pipeline.runner import execute, stage_guard
 from quakefolio.pipeline.stages.inputs import load_inputs
 
-__all__ = ["portfolio_risk", "run_flow", "hand_over", "PrefectExecutor"]
+__all__ = ["portfolio_risk", "run_flow", "hand_over", "PrefectExecutor", "BATCHES_PER_WORKER"]
 
 _TASK = dict(cache_policy=NO_CACHE, persist_result=False)
+
+
+#: task runs per worker thread of a stage's blocks on the thread pool (a few, so that uneven blocks balance)
+BATCHES_PER_WORKER = 2
 
 
 #: stages that read or write files and may meet a transient I/O error: retried on OSError only
@@ -62,8 +73,10 @@ class PrefectExecutor:
     #: what the manifest's ``orchestration`` says
     orchestration = "Prefect flow portfolio-risk"
 
-    def __init__(self):
+    def __init__(self, batches=None):
         self._tasks = {}
+        #: task runs per block stage (None: one per block)
+        self.batches = batches
 
     def _task(self, name, fn):
         key = (name, fn)
@@ -104,6 +117,10 @@ class PrefectExecutor:
     def many(self, name, fn, ref, items):
         """Submit the block task ``fn(ref, item)`` per item to the flow's task runner; resolve all.
 
+        With :attr:`batches` set (the thread pool), the items go round-robin to at most
+        that many task runs, each calling ``fn`` on its items in order; the results come
+        back in the order of ``items`` all the same.
+
         Parameters
         ----------
         name : str
@@ -121,8 +138,10 @@ class PrefectExecutor:
             Results in the order of ``items``; a failed block raises
             :class:`quakefolio.pipeline.runner.StageError` (the flow fails).
         """
-        t = self._task(name, fn)
         progress.stage(name, len(items))
+        if self.batches and len(items) > self.batches:
+            return self._many_batched(name, fn, ref, items)
+        t = self._task(name, fn)
         futures = [t.submit(ref, item) for item in items]
         out = []
         for f in futures:  # resolve every future: a failure fails the flow
@@ -130,8 +149,28 @@ class PrefectExecutor:
             progress.advance(name)
         return out
 
+    def _many_batched(self, name, fn, ref, items):
+        """``fn(ref, item)`` per item in :attr:`batches` task runs (items round-robin); results in item order."""
+        t = self._task(name, _run_batch)
+        n = int(self.batches)
+        futures = [t.submit(fn, name, ref, items[k::n]) for k in range(n)]
+        parts = [stage_guard(name, self.config_path, f.result) for f in futures]  # resolve every future
+        out = [None] * len(items)
+        for k, part in enumerate(parts):
+            out[k::n] = part
+        return out
 
-@flow(name="portfolio-risk", persist_result=False, log_prints=False)
+
+def _run_batch(fn, name, ref, batch):
+    """``fn(ref, item)`` for every item of ``batch``, in order (one task run of a block stage)."""
+    out = []
+    for item in batch:
+        out.append(fn(ref, item))
+        progress.advance(name)
+    return out
+
+
+@flow(name="portfolio-risk", persist_result=False, log_prints=False, validate_parameters=False)
 def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
     """Read inputs -> hazard (compute mode) -> damage and loss -> events -> what-if -> store.
 
@@ -149,7 +188,18 @@ def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
     executor = PrefectExecutor()
     executor.config_path = config_path
     inputs = executor.one("ingest", _ingest, config_path)
+    executor.batches = _batches(inputs)
     return str(execute(inputs, executor, stages_to_run=stages_to_run))
+
+
+def _batches(inputs):
+    """Task runs per block stage: a few per worker thread on the thread pool; None (one per block) elsewhere."""
+    from prefect.context import FlowRunContext
+
+    context = FlowRunContext.get()
+    if context is None or not isinstance(getattr(context, "task_runner", None), ThreadPoolTaskRunner):
+        return None
+    return BATCHES_PER_WORKER * max(1, int(inputs.config.execution.max_workers))
 
 
 #: inputs already read and validated by the caller in this process, by config path (taken once)
