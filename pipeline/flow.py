@@ -15,7 +15,11 @@ task runs (:data:`BATCHES_PER_WORKER` per worker thread, each running its share 
 blocks in order) rather than one task run per block, since every task run costs state
 events and log records in this process and in the server; on Dask every block stays a task
 run of its own (the cluster balances them).  The flow's parameters are not validated
-(they are two strings this module passes).
+(they are two strings this module passes).  :func:`run_flow` runs the flow in this process
+without heartbeats: Prefect's heartbeat thread sleeps in steps of one second and the flow
+run's end waits for it to wake (0.5 s on average, up to 1 s per run); a heartbeat serves to
+mark a flow run whose process died, which nothing here acts on, and the run's own process
+reports its end or its failure.
 """
 from __future__ import annotations
 
@@ -23,6 +27,7 @@ import errno
 
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
+from prefect.settings import PREFECT_FLOWS_HEARTBEAT_FREQUENCY, temporary_settings
 from prefect.task_runners import ThreadPoolTaskRunner
 
 from quakefolio.pipeline import progress
@@ -233,6 +238,10 @@ def hand_over(config_path, inputs, *, forget=False):
         _READ[config_path] = inputs
 
 
+#: ``portfolio_risk`` on a thread pool of that many workers (each flow run takes a copy of the runner)
+_LOCAL_FLOWS = {}
+
+
 def run_flow(config_path, max_workers=2, stages_to_run="all", inputs=None):
     """Run the flow with a capped thread pool (embedded, or on the API Prefect's settings name).
 
@@ -250,9 +259,12 @@ def run_flow(config_path, max_workers=2, stages_to_run="all", inputs=None):
     str
         The run folder.
     """
-    runner = ThreadPoolTaskRunner(max_workers=max_workers)
+    key = int(max_workers)
+    if key not in _LOCAL_FLOWS:  # the flow with its runner, made once per process (it builds a parameter schema)
+        _LOCAL_FLOWS[key] = portfolio_risk.with_options(task_runner=ThreadPoolTaskRunner(max_workers=key))
     hand_over(str(config_path), inputs)
     try:
-        return portfolio_risk.with_options(task_runner=runner)(str(config_path), stages_to_run)
+        with temporary_settings(updates={PREFECT_FLOWS_HEARTBEAT_FREQUENCY: None}):  # see the module's notes
+            return _LOCAL_FLOWS[key](str(config_path), stages_to_run)
     finally:
         hand_over(str(config_path), None, forget=True)
