@@ -304,10 +304,11 @@ def _run_flow_shared(config, inputs, stages_to_run, always=False):
     from quakefolio.pipeline.server import use_server
 
     with use_server() as server:
-        from quakefolio.pipeline.flow import run_flow
         from quakefolio.pipeline.orchestration import using_api
 
-        with using_api(server.url):
+        with using_api(server.url):  # before Prefect is imported: its settings then name the server as they are
+            from quakefolio.pipeline.flow import run_flow
+
             return run_flow(Path(config).resolve(), max_workers=inputs.config.execution.max_workers,
                             stages_to_run=stages_to_run, inputs=inputs)
 

@@ -9,6 +9,17 @@ submitted to the flow's task runner with small arguments (a run reference and a 
 cluster.  Tasks use no cache policy and do not persist results (Prefect would pickle
 large arrays); flow parameters stay small JSON.  The stage sequence is shared with the
 plain library path, so both give identical tables.
+
+What the flow costs per run is kept small: on the thread pool a stage's blocks go to a few
+task runs (:data:`BATCHES_PER_WORKER` per worker thread, each running its share of the
+blocks in order) rather than one task run per block, since every task run costs state
+events and log records in this process and in the server; on Dask every block stays a task
+run of its own (the cluster balances them).  The flow's parameters are not validated
+(they are two strings this module passes).  :func:`run_flow` runs the flow in this process
+without heartbeats: Prefect's heartbeat thread sleeps in steps of one second and the flow
+run's end waits for it to wake (0.5 s on average, up to 1 s per run); a heartbeat serves to
+mark a flow run whose process died, which nothing here acts on, and the run's own process
+reports its end or its failure.
 """
 from __future__ import annotations
 
@@ -16,15 +27,20 @@ import errno
 
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
+from prefect.settings import PREFECT_FLOWS_HEARTBEAT_FREQUENCY, temporary_settings
 from prefect.task_runners import ThreadPoolTaskRunner
 
 from quakefolio.pipeline import progress
 from quakefolio.pipeline.runner import execute, stage_guard
 from quakefolio.pipeline.stages.inputs import load_inputs
 
-__all__ = ["portfolio_risk", "run_flow", "hand_over", "PrefectExecutor"]
+__all__ = ["portfolio_risk", "run_flow", "hand_over", "PrefectExecutor", "BATCHES_PER_WORKER"]
 
 _TASK = dict(cache_policy=NO_CACHE, persist_result=False)
+
+
+#: task runs per worker thread of a stage's blocks on the thread pool (a few, so that uneven blocks balance)
+BATCHES_PER_WORKER = 2
 
 
 #: stages that read or write files and may meet a transient I/O error: retried on OSError only
@@ -62,8 +78,10 @@ class PrefectExecutor:
     #: what the manifest's ``orchestration`` says
     orchestration = "Prefect flow portfolio-risk"
 
-    def __init__(self):
+    def __init__(self, batches=None):
         self._tasks = {}
+        #: task runs per block stage (None: one per block)
+        self.batches = batches
 
     def _task(self, name, fn):
         key = (name, fn)
@@ -104,6 +122,10 @@ class PrefectExecutor:
     def many(self, name, fn, ref, items):
         """Submit the block task ``fn(ref, item)`` per item to the flow's task runner; resolve all.
 
+        With :attr:`batches` set (the thread pool), the items go round-robin to at most
+        that many task runs, each calling ``fn`` on its items in order; the results come
+        back in the order of ``items`` all the same.
+
         Parameters
         ----------
         name : str
@@ -121,8 +143,10 @@ class PrefectExecutor:
             Results in the order of ``items``; a failed block raises
             :class:`quakefolio.pipeline.runner.StageError` (the flow fails).
         """
-        t = self._task(name, fn)
         progress.stage(name, len(items))
+        if self.batches and len(items) > self.batches:
+            return self._many_batched(name, fn, ref, items)
+        t = self._task(name, fn)
         futures = [t.submit(ref, item) for item in items]
         out = []
         for f in futures:  # resolve every future: a failure fails the flow
@@ -130,8 +154,28 @@ class PrefectExecutor:
             progress.advance(name)
         return out
 
+    def _many_batched(self, name, fn, ref, items):
+        """``fn(ref, item)`` per item in :attr:`batches` task runs (items round-robin); results in item order."""
+        t = self._task(name, _run_batch)
+        n = int(self.batches)
+        futures = [t.submit(fn, name, ref, items[k::n]) for k in range(n)]
+        parts = [stage_guard(name, self.config_path, f.result) for f in futures]  # resolve every future
+        out = [None] * len(items)
+        for k, part in enumerate(parts):
+            out[k::n] = part
+        return out
 
-@flow(name="portfolio-risk", persist_result=False, log_prints=False)
+
+def _run_batch(fn, name, ref, batch):
+    """``fn(ref, item)`` for every item of ``batch``, in order (one task run of a block stage)."""
+    out = []
+    for item in batch:
+        out.append(fn(ref, item))
+        progress.advance(name)
+    return out
+
+
+@flow(name="portfolio-risk", persist_result=False, log_prints=False, validate_parameters=False)
 def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
     """Read inputs -> hazard (compute mode) -> damage and loss -> events -> what-if -> store.
 
@@ -149,7 +193,18 @@ def portfolio_risk(config_path: str, stages_to_run: str = "all") -> str:
     executor = PrefectExecutor()
     executor.config_path = config_path
     inputs = executor.one("ingest", _ingest, config_path)
+    executor.batches = _batches(inputs)
     return str(execute(inputs, executor, stages_to_run=stages_to_run))
+
+
+def _batches(inputs):
+    """Task runs per block stage: a few per worker thread on the thread pool; None (one per block) elsewhere."""
+    from prefect.context import FlowRunContext
+
+    context = FlowRunContext.get()
+    if context is None or not isinstance(getattr(context, "task_runner", None), ThreadPoolTaskRunner):
+        return None
+    return BATCHES_PER_WORKER * max(1, int(inputs.config.execution.max_workers))
 
 
 #: inputs already read and validated by the caller in this process, by config path (taken once)
@@ -183,6 +238,10 @@ def hand_over(config_path, inputs, *, forget=False):
         _READ[config_path] = inputs
 
 
+#: ``portfolio_risk`` on a thread pool of that many workers (each flow run takes a copy of the runner)
+_LOCAL_FLOWS = {}
+
+
 def run_flow(config_path, max_workers=2, stages_to_run="all", inputs=None):
     """Run the flow with a capped thread pool (embedded, or on the API Prefect's settings name).
 
@@ -200,9 +259,12 @@ def run_flow(config_path, max_workers=2, stages_to_run="all", inputs=None):
     str
         The run folder.
     """
-    runner = ThreadPoolTaskRunner(max_workers=max_workers)
+    key = int(max_workers)
+    if key not in _LOCAL_FLOWS:  # the flow with its runner, made once per process (it builds a parameter schema)
+        _LOCAL_FLOWS[key] = portfolio_risk.with_options(task_runner=ThreadPoolTaskRunner(max_workers=key))
     hand_over(str(config_path), inputs)
     try:
-        return portfolio_risk.with_options(task_runner=runner)(str(config_path), stages_to_run)
+        with temporary_settings(updates={PREFECT_FLOWS_HEARTBEAT_FREQUENCY: None}):  # see the module's notes
+            return _LOCAL_FLOWS[key](str(config_path), stages_to_run)
     finally:
         hand_over(str(config_path), None, forget=True)

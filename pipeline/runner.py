@@ -9,6 +9,7 @@ runs: :class:`SequentialExecutor` in this thread, or
 """
 from __future__ import annotations
 
+import gc
 import json
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -334,7 +335,25 @@ def execute(inputs, executor, *, stages_to_run="all"):
     -------
     Path
         The run folder.
+
+    Notes
+    -----
+    The objects alive when the run starts (modules, Prefect's state in a flow run, the
+    inputs) are moved out of the cyclic garbage collector's reach for the run
+    (``gc.freeze``, CPython's permanent generation; ``gc.unfreeze`` at the end), so that its
+    full collections, which the run's allocations trigger several times, do not traverse
+    them again each time: they are alive throughout the run anyway, and reference counting
+    still frees them.  With Prefect imported that is about twice as many objects as without.
     """
+    gc.freeze()
+    try:
+        return _execute(inputs, executor, stages_to_run)
+    finally:
+        gc.unfreeze()
+
+
+def _execute(inputs, executor, stages_to_run):
+    """The body of :func:`execute`."""
     started = time.perf_counter()
     executor.config_path = str(inputs.config.path)
     prepare_output_folder(inputs.config.output.folder)  # checked again, created and marked before any write
