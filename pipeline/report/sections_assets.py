@@ -188,9 +188,13 @@ def riskiest(loss, n):
         without a collapse probability (vulnerability classes) are left out of the second.
     """
     by_eal = top_rows(loss, "eal", n)
-    c = loss[loss.collapse_prob_in_horizon.notna()]
-    by_collapse = c.sort_values(["collapse_prob_in_horizon", "eal", "asset_id"],
-                                ascending=[False, False, True]).head(n)
+    p = loss.collapse_prob_in_horizon.to_numpy(dtype=float)
+    keep = ~np.isnan(p)
+    if int(keep.sum()) > n > 0:  # only rows at or above the n-th largest probability can rank (as in top_rows)
+        finite = p[keep]
+        keep &= p >= np.partition(finite, len(finite) - n)[len(finite) - n]
+    by_collapse = loss[keep].sort_values(["collapse_prob_in_horizon", "eal", "asset_id"],
+                                         ascending=[False, False, True]).head(n)
     return by_eal, by_collapse
 
 

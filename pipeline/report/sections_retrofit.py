@@ -82,15 +82,20 @@ def _tier_tables(scr, target_p, target_t):
     out = [_table(["tier", f"P(collapse in {target_t:g} yr)", "buildings#", "share#"], rows,
                   caption=f"Buildings per screening tier (target {_pct(target_p)} in {target_t:g} years; tier bounds "
                           "at half, once and twice the target)")]
-    classes = sorted(set(scr.building_class.astype(str)))
-    cls = scr.building_class.astype(str).to_numpy()
+    import pandas as pd
+
+    index, uniques = pd.factorize(scr.building_class, use_na_sentinel=False)  # the class codes once, not one Python string per building
+    labels = [str(u) for u in uniques]
+    per_class = np.bincount(index, minlength=len(labels))
+    per_tier = np.zeros((len(labels), len(TIERS)), dtype=np.int64)  # buildings per class and tier
+    for k in range(len(TIERS)):
+        per_tier[:, k] = np.bincount(index[tiers == k], minlength=len(labels))
     rows = []
-    for code in classes:
-        mine = tiers[cls == code]
-        m = int((mine >= 0).sum())
-        counts = [int((mine == k).sum()) for k in range(len(TIERS))]
+    for i in sorted(range(len(labels)), key=labels.__getitem__):
+        code, counts = labels[i], [int(c) for c in per_tier[i]]
+        m = sum(counts)  # screened: in a tier
         above = counts[2] + counts[3]
-        rows.append([code, _cell(f"{len(mine):,}", len(mine))] + [_cell(f"{c:,}", c) for c in counts]
+        rows.append([code, _cell(f"{int(per_class[i]):,}", int(per_class[i]))] + [_cell(f"{c:,}", c) for c in counts]
                     + [_cell(_pct(above / m) if m else "not screened", above / m if m else float("nan"))])
     out.append(_table(["class", "buildings#", "well below#", "near, not above#", "above, ≤ 2x#", "well above, > 2x#",
                        "share above the target#"], rows, sortable=True,
