@@ -195,8 +195,13 @@ def _manifest(inputs, source_manifest, stage_warnings, run_id, orchestration):
 
 
 def _write_manifest(writer, manifest, timings, started):
+    """Write ``manifest.json`` with ``timings_s`` rounded to 0.1 ms (and ``total_s`` when ``started`` is known).
+
+    Shared by a run's store (``runner.write_run``) and a rerun that takes an earlier run's tables.
+    """
     timings = dict(timings)
-    timings["total_s"] = timings.get("ingest_s", 0.0) + time.perf_counter() - started
+    if started is not None:
+        timings["total_s"] = timings.get("ingest_s", 0.0) + time.perf_counter() - started
     manifest["timings_s"] = {k: round(v, 4) for k, v in timings.items()}
     writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
 

@@ -10,7 +10,6 @@ runs: :class:`SequentialExecutor` in this thread, or
 from __future__ import annotations
 
 import gc
-import json
 import time
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -26,7 +25,7 @@ from quakefolio.pipeline.io.output_folder import prepare_output_folder
 from quakefolio.pipeline.io.store import RunWriter, new_run_id
 from quakefolio.pipeline.io.tables import TABLES, units_for
 from quakefolio.pipeline.io.versions import package_versions
-from quakefolio.pipeline.reuse import FROM_CACHE, ReportThread, complete_key, record_complete_run
+from quakefolio.pipeline.reuse import FROM_CACHE, ReportThread, _write_manifest, complete_key, record_complete_run
 from quakefolio.pipeline.stages import blocks, spectrum, whatif
 from quakefolio.pipeline.stages import events as ps
 from quakefolio.pipeline.stages import hazard as hs
@@ -572,15 +571,6 @@ def _column_names(frame):
     if hasattr(frame, "schema"):
         return list(frame.schema.names)
     return [str(c) for c in frame.columns]
-
-
-def _write_manifest(writer, manifest, timings, started):
-    """Write ``manifest.json`` with ``timings_s`` rounded to 0.1 ms (and ``total_s`` when ``started`` is known)."""
-    timings = dict(timings)
-    if started is not None:
-        timings["total_s"] = timings.get("ingest_s", 0.0) + time.perf_counter() - started
-    manifest["timings_s"] = {k: round(v, 4) for k, v in timings.items()}
-    writer.write_text("manifest.json", json.dumps(manifest, indent=2, sort_keys=True, default=float) + "\n")
 
 
 def run_pure(config_path, stages_to_run="all", orchestration=None):
