@@ -131,6 +131,9 @@ def main(argv=None):
         if args.keep:
             print(f"kept: {tmp}")
     finally:
+        if args.flow:  # the runs left their shared local server for later commands: stop it with its state folder
+            subprocess.run([sys.executable, "-m", "quakefolio.pipeline", "server", "stop"], capture_output=True,
+                           env=dict(os.environ, QUAKEFOLIO_STATE=str(tmp / "case" / "state")), timeout=120)
         if not args.keep:
             shutil.rmtree(tmp, ignore_errors=True)
     return 0
