@@ -267,21 +267,37 @@ def _write_all(writer, source, manifest, inputs, timings, started):
     with ThreadPoolExecutor(max_workers=max(1, int(cfg.execution.max_workers)),
                             thread_name_prefix="quakefolio-store") as pool:
         read = dict(zip(names, pool.map(lambda n: _read_table(source, n, source.name, inputs.inputs_sha256), names)))
-        report = None
-        if cfg.output.report:  # the manifest it shows lacks the store's and the report's times
-            _write_manifest(writer, manifest, timings, started)
-            report = ReportThread(writer.partial, {n: table for n, (table, _) in read.items()}, _cache(inputs))
-            report.start()
-        try:
+
+        def write():
             for future in [pool.submit(_write_table, writer, n, table, meta) for n, (table, meta) in read.items()]:
                 future.result()
-        finally:
-            if report is not None:
-                report.join()
+
+        _write_beside_report(writer, manifest, timings, started, t0, write, report=cfg.output.report,
+                             tables={n: table for n, (table, _) in read.items()}, cache=_cache(inputs))
+
+
+def _write_beside_report(writer, manifest, timings, started, t0, write, *, report, tables, cache):
+    """Run ``write()`` (the tables) with, when ``report``, the report of the partial folder drawn meanwhile in its
+    own thread from ``tables``; set ``timings`` ``store_s`` (since ``t0``) and ``report_s``.
+
+    The manifest is written first, for the report to show (it lacks the row counts and the store's and the
+    report's times until the caller writes it again).  Shared by a run's store and a rerun that takes an
+    earlier run's tables.
+    """
+    thread = None
+    if report:
+        _write_manifest(writer, manifest, timings, started)
+        thread = ReportThread(writer.partial, tables, cache)
+        thread.start()
+    try:
+        write()
+    finally:
+        if thread is not None:
+            thread.join()
     timings["store_s"] = time.perf_counter() - t0
-    if report is not None:
-        report.result()
-        timings["report_s"] = report.seconds
+    if thread is not None:
+        thread.result()
+        timings["report_s"] = thread.seconds
 
 
 class ReportThread(threading.Thread):

@@ -25,7 +25,8 @@ from quakefolio.pipeline.io.output_folder import prepare_output_folder
 from quakefolio.pipeline.io.store import RunWriter, new_run_id
 from quakefolio.pipeline.io.tables import TABLES, units_for
 from quakefolio.pipeline.io.versions import package_versions
-from quakefolio.pipeline.reuse import FROM_CACHE, ReportThread, _write_manifest, complete_key, record_complete_run
+from quakefolio.pipeline.reuse import (FROM_CACHE, _write_beside_report, _write_manifest, complete_key,
+                                      record_complete_run)
 from quakefolio.pipeline.stages import blocks, spectrum, whatif
 from quakefolio.pipeline.stages import events as ps
 from quakefolio.pipeline.stages import hazard as hs
@@ -518,20 +519,9 @@ def write_run(inputs, damage=None, events=None, extra=None, timings=None, counts
         timings = dict(timings or {})
         manifest = _manifest(inputs, run_id, "hazard" if damage is None else "all", events, counts, timings, writer,
                              frames, warnings, orchestration)
-        report = None
-        if cfg.output.report:  # drawn from the tables in memory while they are written (the manifest it shows
-            _write_manifest(writer, manifest, timings, started)  # lacks the row counts and the store's time)
-            report = ReportThread(writer.partial, frames, stage_cache(inputs))
-            report.start()
-        try:
-            _write_tables(writer, frames, currency, provenance, cfg.execution.max_workers)
-        finally:
-            if report is not None:
-                report.join()
-        timings["store_s"] = time.perf_counter() - t0
-        if report is not None:
-            report.result()
-            timings["report_s"] = report.seconds
+        _write_beside_report(writer, manifest, timings, started, t0,  # the report drawn from the tables in memory
+                             lambda: _write_tables(writer, frames, currency, provenance, cfg.execution.max_workers),
+                             report=cfg.output.report, tables=frames, cache=stage_cache(inputs))
         manifest["row_counts"] = dict(writer.row_counts)
         _write_manifest(writer, manifest, timings, started)
         return writer.commit()
