@@ -33,7 +33,7 @@ from quakefolio.pipeline.env import configure_prefect
 from quakefolio.pipeline.terminal import echo as print  # noqa: A004
 from quakefolio.pipeline.terminal import one_line
 
-__all__ = ["main"]
+__all__ = ["main", "command"]
 
 EXIT_USER_ERROR = 2
 EXIT_INTERNAL = 1
@@ -252,14 +252,46 @@ def _print_notes(warnings, *, notes):
             print(f"note: {one_line(w)}")
 
 
+#: Exposure files from this size on [bytes] (about 40,000 buildings) are read on the flow path while
+#: Prefect is imported in the background (:func:`quakefolio.pipeline.env.import_prefect_meanwhile`);
+#: below it reading takes less than the import, and an unchanged rerun, which needs no Prefect, would
+#: pay for it.
+IMPORT_PREFECT_MEANWHILE_BYTES = 4 << 20
+
+
+def _import_prefect_meanwhile(args, config):
+    """The thread importing Prefect while a large exposure is read for a local flow run, or None."""
+    import os
+
+    from quakefolio.pipeline.env import import_prefect_meanwhile
+
+    if args.no_flow or "prefect" in sys.modules:
+        return None
+    try:
+        backend, _ = _backend(args, config)
+        size = os.path.getsize(config.exposure.file)
+    except Exception:  # noqa: BLE001 - reported where the run meets it again
+        return None
+    if backend != "local" or size < IMPORT_PREFECT_MEANWHILE_BYTES:
+        return None
+    return import_prefect_meanwhile(log_to=config.output.folder)
+
+
 def _run(args, stages_to_run="all"):
+    from quakefolio.pipeline.io.config import load_config
     from quakefolio.pipeline.stages import load_inputs
     from quakefolio.pipeline.summary import summary_text
 
     from quakefolio.pipeline.progress import StageProgress
 
     t0 = time.perf_counter()
-    inputs = load_inputs(args.config)  # validate before starting any orchestration: bad input writes nothing
+    config = load_config(args.config)
+    importing = _import_prefect_meanwhile(args, config)
+    try:
+        inputs = load_inputs(config)  # validate before starting any orchestration: bad input writes nothing
+    finally:
+        if importing is not None:
+            importing.join()
     backend, address = _backend(args, inputs.config)
     _print_notes(inputs.warnings, notes=False)  # the notes come with the summary
     with StageProgress(enabled=sys.stderr.isatty() and not args.quiet):
@@ -576,3 +608,27 @@ def main(argv=None):
 
 if __name__ == "__main__":
     sys.exit(main())
+
+
+def command():
+    """The ``quakefolio`` program: :func:`main`, then the process ends at once with its status.
+
+    When :func:`main` returns, everything the command wrote is closed (tables, reports and
+    manifests are written by atomic renames, Prefect's queued logs and events were sent);
+    what the interpreter would still do is take apart the modules and objects the run
+    left, which nobody sees and takes about 1 s after a flow run of 10^6 buildings.  So
+    standard output, standard error and the logging handlers are flushed and the process
+    exits with :func:`os._exit`.  Where a flush fails (a closed pipe), the ordinary exit
+    reports it.  Tests call :func:`main`.
+    """
+    import logging
+    import os
+
+    status = main()
+    try:
+        sys.stdout.flush()
+        sys.stderr.flush()
+        logging.shutdown()
+    except Exception:  # noqa: BLE001 - the ordinary exit deals with it (and says so)
+        sys.exit(status)
+    os._exit(status)
