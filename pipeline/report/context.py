@@ -30,6 +30,11 @@ PREDATES_NOTE = ("This run predates stored inputs (no run_assets.parquet / run_f
                  "shown; the report does not re-read the user's input files.")
 
 
+#: Tables that some section reads whole: a section's column subset is cut from the whole frame (converted
+#: once) instead of being converted on its own, which at 10^6 buildings would hold the building ids twice.
+READ_WHOLE = frozenset({"asset_loss"})
+
+
 class ReportRun(RunFolder):
     """One run folder (finished or partial) for the report; a table the run lacks reads as None.
 
@@ -88,7 +93,15 @@ class ReportRun(RunFolder):
             return None
         key = name if columns is None else (name, tuple(columns))
         if key not in self._tables:
-            if name in self._memory:
+            whole = self._tables.get(name)
+            if whole is None and columns is not None and name in READ_WHOLE:
+                whole = self.table(name)
+            if whole is not None:  # converted once: its columns are not converted (nor held) a second time
+                missing = [c for c in columns if c not in whole.columns]
+                if missing:
+                    raise InputError(self.path / f"{name}.parquet", f"unreadable table (no column {missing[0]!r})")
+                self._tables[key] = whole[list(columns)]
+            elif name in self._memory:
                 self._tables[key] = memory_frame(name, self._memory[name], columns)
             elif columns is None:
                 return super().table(name)
