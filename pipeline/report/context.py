@@ -184,7 +184,9 @@ def memory_frame(name, table, columns=None):
         table = table.to_table()
     if columns is not None:
         table = table.select(list(columns)) if isinstance(table, pa.Table) else table[list(columns)]
-    return to_arrow(table, name=name, units={}, description="", provenance={}).to_pandas()
+    # split_blocks: each column its own block, so that numeric columns without nulls share the Arrow buffers
+    # (read-only) instead of being copied into one 2-d block; the frame is the same
+    return to_arrow(table, name=name, units={}, description="", provenance={}).to_pandas(split_blocks=True)
 
 
 def top_rows(frame, column, n):
