@@ -40,6 +40,20 @@ expressions whatever the blocking or the number of threads, so results are bit f
 independent of both.  Threads take contiguous runs of blocks (numpy and scipy release the
 GIL inside their loops).
 
+Negligible pieces.  Where every row shares its levels and fragility (one building class
+against many sites), a segment piece far below the fragility's median is left out when it
+cannot change any row's rate by more than :data:`NEGLIGIBLE` of it.  The piece is
+:math:`\int \lambda f\,dx` over its segment (:math:`f` the lognormal density), so the pieces
+1 .. p-1 together are at most :math:`\max\lambda \cdot \Phi(z_{p-1})`, while the rate is at
+least :math:`\sum_q \lambda_q [\Phi(z_q) - \Phi(z_{q-1})]` (the curve does not increase);
+the first p of a damage state is the last one for which the first bound stays below
+:data:`NEGLIGIBLE` times the second for every row of the call.  The lower-tail piece is always
+evaluated (it gives the tail diagnostics).  On hazard grids reaching far below the
+fragility (the default grid starts at 5e-4 g) that leaves out a quarter to a third of the
+evaluations; a rate moves by at most :data:`NEGLIGIBLE` relative, which is below its last
+bit.  Which pieces are left out depends on the rows of the call, never on the blocking or
+the threads.
+
 Scope: curves with strictly positive rates (a segment ending at a zero rate is linear in
 :math:`\ln x`, see :mod:`quakefolio.core.risk`, which routes such curves to its
 per-segment kernel).
@@ -65,6 +79,10 @@ PHI_PER_LEVEL = 2
 
 #: Largest :math:`\ln C_p` evaluated as a plain product (module notes); above it, log space.
 LOG_COEF_MAX = 600.0
+
+#: Share of a rate below which leading segment pieces are left out (module notes, Negligible pieces):
+#: 2**-60, about 8.7e-19, far below the last bit of a double.
+NEGLIGIBLE = 2.0 ** -60
 
 #: Values (damage state x piece x row) per block: the work arrays of a block (about 1 MB)
 #: stay in cache (measured on the benchmark's case, interleaved on a loaded machine: 2**13
@@ -120,30 +138,34 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
     if n == 0:
         empty = np.zeros((0, n_ds))
         return (empty,) * 3 + ((empty, empty) if ends else (None, None))
-    step = max(1, block_values // (n_ds * (m + 1)))  # rows per block
+    per_row = ln_theta.ndim > 1
+    shared_rows = not per_row and _same_rows(lnx)
+    curves = _Curves(lnx, lam, truncate, shared_rows)
+    keep = _kept_pieces(lnx[0], lam, ln_theta, beta) if shared_rows else np.ones((n_ds, m + 1), dtype=bool)
+    pieces = _Pieces(keep)
+    step = max(1, block_values // pieces.count)  # rows per block
     n_blocks = -(-n // step)
     workers = max(1, min(int(workers), n_blocks))
-    per_row = ln_theta.ndim > 1
-    curves = _Curves(lnx, lam, truncate)
     th = _blocked_rows(ln_theta.T, step, n_blocks, 0.0) if per_row else ln_theta[:, None, None]
     b = _blocked_rows(beta.T, step, n_blocks, 1.0) if per_row else beta[:, None, None]
-    checked = _coef_bound(curves, lnx, ln_theta, beta) > LOG_COEF_MAX  # else no piece needs log space
+    reach = (max(float(lnx.max()) - float(ln_theta.min()), 0.0), float(beta.max()))  # for _coef_bound
     shared = None  # the z bounds of every row, where the rows share their levels and fragilities
-    if not per_row and (n < 2 or np.array_equal(lnx[1:], np.broadcast_to(lnx[:1], (n - 1, m)))):
-        shared = _Bounds(n_ds, m, step)
+    if shared_rows:
+        shared = _Bounds(n_ds, m, step, pieces)
         xa = np.concatenate([lnx[0, :1], lnx[0]])
         shared.fill(np.broadcast_to(xa[:, None], (m + 1, step)), th, b)
     out = np.empty((5 if ends else 3, n_ds, n_blocks * step))
     per_thread = -(-n_blocks // workers)
 
     def run(first):
-        work = _Work(n_ds, m, step, shared, truncate)
+        work = _Work(n_ds, m, step, shared, truncate, pieces)
         for i in range(first, min(first + per_thread, n_blocks)):
             r0, r1 = i * step, min(i * step + step, n)
             th_i, b_i = (th[:, i], b[:, i]) if per_row else (th, b)
-            work.rows(curves, r0, r1, th_i, b_i)
-            with np.errstate(over="ignore", invalid="ignore"):  # ln C above the range: log space
-                _piece_block(work, b_i, out[:, :, r0:r0 + step], checked)
+            with np.errstate(divide="ignore", over="ignore", invalid="ignore"):  # ln C above the range: log space
+                work.rows(curves, r0, r1, th_i, b_i)
+                checked = _coef_bound(work, r1 - r0, reach) > LOG_COEF_MAX  # else no piece needs log space
+                _piece_block(work, pieces.per_piece(b_i), out[:, :, r0:r0 + step], checked)
 
     starts = range(0, n_blocks, per_thread)
     if workers == 1:
@@ -156,37 +178,88 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
     return parts if ends else parts + (None, None)
 
 
-def _coef_bound(curves, lnx, ln_theta, beta):
-    r"""An upper bound of :math:`\ln C_p` over every row, piece and state.
+def _kept_pieces(lnx, lam, ln_theta, beta):
+    r"""Pieces (damage state, piece) evaluated for rows sharing levels ``lnx`` (m,) and fragility (module notes).
+
+    Segment pieces 1 .. p-1 of a state are left out when, for every row,
+    :math:`\max\lambda \cdot \Phi(z_{p-1}) \le` :data:`NEGLIGIBLE` :math:`\cdot
+    \sum_q \lambda_q [\Phi(z_q) - \Phi(z_{q-1})]`, the right side halved against round-off.
+    """
+    n_ds, m = ln_theta.shape[-1], lnx.shape[-1]
+    keep = np.ones((n_ds, m + 1), dtype=bool)
+    z = (lnx[None, :] - ln_theta[:, None]) / beta[:, None]  # (n_ds, m)
+    phi = special.ndtr(z)
+    rise = np.diff(phi, axis=1)  # (n_ds, m - 1), >= 0
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        lower = 0.5 * (lam[:, 1:] @ rise.T)  # (n, n_ds): a lower bound of each rate
+        share = np.min(lower / lam.max(axis=1)[:, None], axis=0)  # (n_ds,)
+    share = np.where(np.isfinite(share) & (share > 0), share, 0.0)
+    below = (phi <= NEGLIGIBLE * share[:, None]) & (share[:, None] > 0)  # levels with negligible pieces beneath
+    first = np.sum(np.cumprod(below, axis=1), axis=1)  # the pieces 1 .. first-1 are left out
+    for s in range(n_ds):
+        keep[s, 1:max(int(first[s]), 1)] = False
+    return keep
+
+
+class _Pieces:
+    """The pieces evaluated, as one axis of ``count`` (damage state, piece) pairs, grouped by state.
+
+    Each state's pieces come in order: the lower tail, the kept segments, the upper tail.
+    ``full`` where every piece is kept (the axis is then the state x piece grid, reshaped).
+    """
+
+    def __init__(self, keep):
+        self.n_ds, self.m1 = keep.shape
+        self.state, self.piece = np.nonzero(keep)
+        self.count = len(self.piece)
+        self.full = bool(keep.all())
+        sizes = keep.sum(axis=1)
+        self.first = np.concatenate([[0], np.cumsum(sizes)[:-1]])  # the lower-tail piece of each state
+        self.last = self.first + sizes - 1  # the upper-tail piece of each state
+
+    def take(self, grid):
+        """Values on the state x piece grid (n_ds, m + 1, rows) as (count, rows)."""
+        if self.full:
+            return grid.reshape(self.count, grid.shape[-1])
+        return grid[self.state, self.piece]
+
+    def per_piece(self, b):
+        """Per-state values ``b`` (n_ds, 1, rows or 1) as (count, rows or 1)."""
+        return b[self.state, 0]
+
+
+def _same_rows(lnx):
+    """Whether every row of ``lnx`` (n, m) holds the same levels (a broadcast row is seen without a comparison)."""
+    if len(lnx) < 2 or lnx.strides[0] == 0:
+        return True
+    return bool(np.array_equal(lnx[1:], np.broadcast_to(lnx[:1], (len(lnx) - 1, lnx.shape[1]))))
+
+
+def _coef_bound(work, nb, reach):
+    r"""An upper bound of :math:`\ln C_p` over the ``nb`` rows of a block, every piece and state.
 
     :math:`\ln C_p = \ln\lambda_a + k_p(\ln x_a - \ln\theta) + (k_p\beta)^2/2 \le
     \max\ln\lambda + K\max(0, \max\ln x - \min\ln\theta) + (K \max\beta)^2/2` with
-    :math:`K = \max k_p \ge 0`, plus a margin of 1 for round-off.
+    :math:`K = \max k_p \ge 0`, plus a margin of 1 for round-off; ``reach`` holds the
+    first bracket and :math:`\max\beta` of the call.
     """
-    k = curves.k[:, :-1]
-    if not np.isfinite(k).all():
+    k = work.kp[1:-1, :nb]
+    big_k = float(k.max(initial=0.0))
+    if not np.isfinite(big_k):
         return np.inf
-    big_k = max(float(k.max(initial=0.0)), 0.0)
-    reach = max(float(lnx.max()) - float(ln_theta.min()), 0.0)
-    return float(curves.ln_lam.max()) + big_k * reach + 0.5 * (big_k * float(beta.max())) ** 2 + 1.0
+    big_k = max(big_k, 0.0)
+    return float(work.la[1:, :nb].max()) + big_k * reach[0] + 0.5 * (big_k * reach[1]) ** 2 + 1.0
 
 
 class _Curves:
-    """Log levels, log rates and segment slopes of the rows (n, m), computed end to end.
+    """The rows' log levels and rates; each thread takes the logs and slopes of its blocks (:meth:`_Work.rows`).
 
-    ``k[:, i]`` is the slope of segment i (the last column, between two rows, is never read).
+    ``dx`` holds the level steps of every row where the rows share their levels, else None.
     """
 
-    def __init__(self, lnx, lam, truncate):
-        n, m = lam.shape
-        self.lnx = np.ascontiguousarray(lnx)
-        self.ln_lam = np.log(lam)
-        self.k = np.empty((n, m))
-        flat_x, flat_l, k = self.lnx.reshape(-1), self.ln_lam.reshape(-1), self.k.reshape(-1)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            np.subtract(flat_l[:-1], flat_l[1:], out=k[:-1])
-            k[:-1] /= flat_x[1:] - flat_x[:-1]
-        self.truncate = truncate
+    def __init__(self, lnx, lam, truncate, shared):
+        self.lnx, self.lam, self.truncate = lnx, lam, truncate
+        self.dx = np.subtract(lnx[0, 1:], lnx[0, :-1]) if shared else None
 
 
 def _blocked_rows(a, step, n_blocks, fill):
@@ -197,15 +270,17 @@ def _blocked_rows(a, step, n_blocks, fill):
 
 
 class _Bounds:
-    """Per damage state, piece and row: z at the anchor, lower and upper bound; Phi(z_0), Phi(z_{m-1})."""
+    """Per evaluated piece and row: z at the anchor, lower and upper bound; per state and row Phi(z_0), Phi(z_{m-1})."""
 
-    def __init__(self, n_ds, m, rows):
-        self.za, self.zlo, self.zhi = np.empty((3, n_ds, m + 1, rows))
+    def __init__(self, n_ds, m, rows, pieces):
+        self.grid = np.empty((3, n_ds, m + 1, rows))
+        self.pieces = pieces
+        self.za = self.zlo = self.zhi = None
         self.p0, self.pn = np.empty((2, n_ds, rows))
 
     def fill(self, xa, th, b):
         """Bounds of a block of rows with log anchor levels ``xa`` (m + 1, rows), ``th, b`` (n_ds, 1, rows or 1)."""
-        za, zlo, zhi = self.za, self.zlo, self.zhi
+        za, zlo, zhi = self.grid
         np.subtract(xa, th, out=za)
         za /= b  # z = (ln x - ln theta) / beta
         zlo[:, 1:] = za[:, 1:]
@@ -214,37 +289,44 @@ class _Bounds:
         zhi[:, -1] = np.inf
         special.ndtr(za[:, 0], out=self.p0)
         special.ndtr(za[:, -1], out=self.pn)
+        self.za, self.zlo, self.zhi = (self.pieces.take(g) for g in self.grid)
 
 
 class _Work:
-    """Preallocated work arrays of one thread: per damage state and piece, a block's rows.
+    """Preallocated work arrays of one thread: per evaluated piece (:class:`_Pieces`), a block's rows.
 
     Pieces major, so that every ufunc runs over a whole block; a block's rows are copied in
     transposed (a block is small, the copy stays in cache).  A last block shorter than
     the others leaves earlier (finite) values in its padding, never read.
     """
 
-    def __init__(self, n_ds, m, rows, shared, truncate):
-        self.kb, self.lo, self.hi, self.c = np.empty((4, n_ds, m + 1, rows))
-        self.t = np.empty((n_ds, m + 1, rows), dtype=np.int64)
+    def __init__(self, n_ds, m, rows, shared, truncate, pieces):
+        self.pieces = pieces
+        self.kb, self.lo, self.hi, self.c = np.empty((4, pieces.count, rows))
+        self.t = np.empty((pieces.count, rows), dtype=np.int64)
         self.kp, self.la, self.xa = np.zeros((3, m + 1, rows))  # slope, log rate, log level at the anchor
+        self.ln_lam, self.k = np.empty((2, rows, m))  # a block's log rates and slopes, rows major
         if truncate:
             self.kp[0] = 0.0  # the lower piece is lambda_0 Phi(z_0)
             self.la[-1] = -np.inf  # no upper piece
-        self.bounds = shared if shared is not None else _Bounds(n_ds, m, rows)
+        self.bounds = shared if shared is not None else _Bounds(n_ds, m, rows, pieces)
         self.shared = shared is not None
 
     def rows(self, curves, r0, r1, th, b):
         """Take rows ``r0:r1`` of ``curves`` (and their bounds against ``th, b`` unless shared)."""
-        nb, m = r1 - r0, curves.k.shape[1]
+        nb, m = r1 - r0, curves.lam.shape[1]
         kp, la, xa = self.kp[:, :nb], self.la[:, :nb], self.xa[:, :nb]
-        kp[1:-1] = curves.k[r0:r1, :-1].T  # pieces: lower tail, segments, upper tail
+        ln_lam, k = self.ln_lam[:nb], self.k[:nb, :-1]
+        np.log(curves.lam[r0:r1], out=ln_lam)
+        np.subtract(ln_lam[:, :-1], ln_lam[:, 1:], out=k)  # k of segment i: -d ln(lambda) / d ln(x)
+        k /= curves.dx if curves.dx is not None else np.subtract(curves.lnx[r0:r1, 1:], curves.lnx[r0:r1, :-1])
+        kp[1:-1] = k.T  # pieces: lower tail, segments, upper tail
         kp[-1] = kp[-2]
-        la[1:-1] = curves.ln_lam[r0:r1, :-1].T
+        la[1:-1] = ln_lam[:, :-1].T
         la[0] = la[1]
         if not curves.truncate:
             kp[0] = kp[1]
-            la[-1] = curves.ln_lam[r0:r1, m - 1]
+            la[-1] = ln_lam[:, m - 1]
         if not self.shared:
             xa[1:] = curves.lnx[r0:r1].T
             xa[0] = xa[1]
@@ -262,16 +344,20 @@ _SIGN = np.int64(np.iinfo(np.int64).min)
 def _piece_block(work, b, out, checked=True):
     """Pieces of one block of rows (module notes); writes inner, low, high (and p0, pn) into ``out``.
 
-    The segment pieces are added in order (p = 1, 2, ..), so each row's sum is the same
-    whatever the block (``tests/test_kernels.py`` checks it bit for bit).
+    ``b`` holds the dispersion of each evaluated piece (count, 1 or rows).  The segment
+    pieces are added in order (p = 1, 2, ..), so each row's sum is the same whatever the
+    block (``tests/test_kernels.py`` checks it bit for bit).
     """
     kp, la, kb, lo, hi, c, t, za, zlo, zhi, p0, pn = work.take()
-    np.multiply(kp, b, out=kb)  # k beta
+    pieces = work.pieces
+    np.take(kp, pieces.piece, axis=0, out=kb)
+    kb *= b  # k beta
     # ln C = ln lambda_a + k beta (z_a + k beta / 2)
     np.multiply(kb, 0.5, out=c)
     c += za
     c *= kb
-    c += la
+    np.take(la, pieces.piece, axis=0, out=lo)
+    c += lo
     np.add(zlo, kb, out=lo)
     np.add(zhi, kb, out=hi)
     big = _log_space_terms(c, lo, hi) if checked else None
@@ -289,15 +375,16 @@ def _piece_block(work, b, out, checked=True):
     c *= hi
     if big is not None:
         c[big[0]] = big[1]
-    if c.shape[-1] > 1:  # the pieces axis is not the inner one: numpy adds in order
-        np.add.reduce(c[:, 1:-1], axis=1, out=out[0])
-    else:  # one row: numpy would sum the pieces pairwise; add them in order as for several rows
-        inner = out[0]
-        inner[...] = c[:, 1]
-        for p in range(2, c.shape[1] - 1):
-            inner += c[:, p]
-    out[1] = c[:, 0]
-    out[2] = c[:, -1]
+    for s in range(pieces.n_ds):  # each state's segment pieces, in order
+        segments, inner = c[pieces.first[s] + 1:pieces.last[s]], out[0, s]
+        if c.shape[-1] > 1:  # the pieces axis is not the inner one: numpy adds in order
+            np.add.reduce(segments, axis=0, out=inner)
+        else:  # one row: numpy would sum the pieces pairwise; add them in order as for several rows
+            inner[...] = 0.0 if not len(segments) else segments[0]
+            for p in range(1, len(segments)):
+                inner += segments[p]
+    out[1] = c[pieces.first]
+    out[2] = c[pieces.last]
     if len(out) > 3:
         out[3], out[4] = p0, pn
 

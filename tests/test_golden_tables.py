@@ -67,8 +67,9 @@ RESHAPED = {}
 #: summation order: compared with the same schema, rows and non-float values, and every float within
 #: :data:`ROUNDOFF_RTOL` of the base's (relative to the larger magnitude; NaN where the base has NaN) or
 #: within :data:`ROUNDOFF_ATOL` absolute.  The damage kernel's telescoped sums (core/risk_pieces.py; on the
-#: demo at most 1.3e-15 relative, up to 1.2e-13 against the per-segment form on random curves) move the
-#: damage-state rates and what is computed from them.
+#: demo at most 1.3e-15 relative, up to 1.2e-13 against the per-segment form on random curves), and the
+#: segment pieces it leaves out as negligible (at most 2**-60 of a rate), move the damage-state rates and
+#: what is computed from them.
 ROUNDOFF = frozenset({
     "asset_consequences.parquet", "asset_damage.parquet", "asset_event_loss.parquet", "asset_loss.parquet",
     "asset_loss_curve.parquet", "collapse_screening.parquet", "consequence_event_summary.parquet",

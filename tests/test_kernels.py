@@ -2,7 +2,8 @@
 
 * Risk convolution (:mod:`quakefolio.core.risk`, :mod:`quakefolio.core.risk_pieces`): results
   do not depend on the row blocking or the number of threads, bit for bit; the telescoped
-  and the per-segment forms agree to round-off (tails, diagnostics, log-space terms).
+  and the per-segment forms agree to round-off (tails, diagnostics, log-space terms); the
+  segment pieces left out as negligible change no rate by more than their bound.
 * Hazard engine (:mod:`quakefolio.core.hazard`): evaluating the truncated exceedance only
   inside :func:`truncation_window` gives exactly the full formula; the curves do not depend
   on the pass size, bit for bit.
@@ -20,6 +21,7 @@ from scipy.special import ndtr
 from conftest import REPO
 from quakefolio.core.hazard import exceedance_probability, hazard_from_pairs, truncation_window
 from quakefolio.core.risk import _convolve, damage_state_rates, risk_disaggregation
+import quakefolio.core.risk_pieces as risk_pieces
 from quakefolio.core.risk_pieces import piece_sums
 
 
@@ -152,3 +154,32 @@ def test_telescoped_and_per_segment_forms_agree(tail):
     assert np.all(got[1] > 0) and np.all(np.isfinite(got))
     none = damage_state_rates(levels, rates[:0], medians, betas, tail=tail, diagnostics=True)
     assert [a.shape for a in none] == [(0, 4)] * 3
+
+
+def test_negligible_pieces_left_out_stay_within_their_bound(monkeypatch):
+    # A level grid reaching far below the fragility (5e-4 g against medians of 0.3 g and more):
+    # the leading segment pieces are left out (module notes of core/risk_pieces.py, Negligible
+    # pieces).  Against every piece evaluated (NEGLIGIBLE = 0 leaves none out), each rate moves by
+    # at most that share plus round-off, and what was left out is below its bound piece by piece.
+    rng = np.random.default_rng(13)
+    levels, rates = _curves(rng, 300)
+    lnx = np.broadcast_to(np.log(levels), rates.shape)
+    ln_theta, beta = np.log([0.3, 0.9, 1.6, 2.5]), np.array([0.6, 0.5, 0.4, 0.3])
+    keep = risk_pieces._kept_pieces(lnx[0], rates, ln_theta, beta)
+    left_out = (~keep).sum(axis=1)
+    assert keep[:, 0].all() and keep[:, -1].all() and left_out.min() >= 3 and left_out.sum() >= 40  # of 156
+    assert np.all(np.diff(left_out) >= 0)  # the higher the median, the more pieces lie far below it
+    got = piece_sums(lnx, rates, ln_theta, beta, ends=True)
+    monkeypatch.setattr(risk_pieces, "NEGLIGIBLE", 0.0)
+    assert risk_pieces._kept_pieces(lnx[0], rates, ln_theta, beta).all()
+    every = piece_sums(lnx, rates, ln_theta, beta, ends=True)
+    for a, b in zip(got[1:], every[1:]):  # the tails and the diagnostics are evaluated in both
+        assert np.array_equal(a, b)
+    total = every[0] + every[1] + every[2]
+    moved = np.abs((got[0] + got[1] + got[2]) - total) / total
+    assert moved.max() <= 2.0 ** -60 + 4e-16, moved.max()
+    # the pieces left out, each evaluated on its own by the per-segment form (_convolve), against the bound
+    for s in range(4):
+        first = int(np.argmax(keep[s, 1:])) + 1  # the first segment piece kept
+        seg = _convolve(lnx[:, :first], rates[:, :first], ln_theta[s:s + 1], beta[s:s + 1], tails=False)[0][:, 0]
+        assert np.all(seg <= 2.0 ** -60 * total[:, s]), (s, np.max(seg / total[:, s]))
