@@ -587,6 +587,7 @@ def main(argv=None):
         130 (:data:`EXIT_INTERRUPTED`) or 143 (:data:`EXIT_TERMINATED`).
     """
     args = _parser().parse_args(argv)
+    _ran["command"] = args.command
     handlers = {"run": _run, "hazard": _hazard, "check": _check, "compare": _compare, "report": _report,
                 "fit-fragility": _fit_fragility, "schedule": _schedule, "export": _export, "history": _history,
                 "server": _server, "scenario": _scenario}
@@ -610,25 +611,34 @@ if __name__ == "__main__":
     sys.exit(main())
 
 
-def command():
-    """The ``quakefolio`` program: :func:`main`, then the process ends at once with its status.
+#: Commands whose process ends at once when they return (:func:`command`)
+PROMPT_EXIT_COMMANDS = frozenset({"run", "hazard"})
 
-    When :func:`main` returns, everything the command wrote is closed (tables, reports and
-    manifests are written by atomic renames, Prefect's queued logs and events were sent);
-    what the interpreter would still do is take apart the modules and objects the run
-    left, which nobody sees and takes about 1 s after a flow run of 10^6 buildings.  So
-    standard output, standard error and the logging handlers are flushed and the process
-    exits with :func:`os._exit`.  Where a flush fails (a closed pipe), the ordinary exit
-    reports it.  Tests call :func:`main`.
+#: The subcommand :func:`main` ran last in this process
+_ran = {"command": None}
+
+
+def command():
+    """The ``quakefolio`` program: :func:`main`, then, after a run, the process ends at once with its status.
+
+    When a run's :func:`main` returns, everything it wrote is closed (tables, reports and
+    manifests are written by atomic renames; Prefect's queued logs and events were sent when
+    the flow run ended; the run's log file is written record by record, unbuffered); what the
+    interpreter would still do is take apart the modules and objects the run left, which
+    nobody sees and takes about 1 s after a flow run of 10^6 buildings.  So for the commands
+    of :data:`PROMPT_EXIT_COMMANDS` standard output and standard error are flushed and the
+    process exits with :func:`os._exit`; where a flush fails (a closed pipe) the ordinary exit
+    reports it.  Other commands (a schedule served until Ctrl-C, a report) exit as usual.
+    Tests call :func:`main`.
     """
-    import logging
     import os
 
     status = main()
+    if _ran["command"] not in PROMPT_EXIT_COMMANDS:
+        sys.exit(status)
     try:
         sys.stdout.flush()
         sys.stderr.flush()
-        logging.shutdown()
     except Exception:  # noqa: BLE001 - the ordinary exit deals with it (and says so)
         sys.exit(status)
     os._exit(status)

@@ -2,9 +2,11 @@
 
 On the flow path, Prefect's import (about 1.5 s) overlaps the reading of an exposure file
 of :data:`quakefolio.pipeline.cli.IMPORT_PREFECT_MEANWHILE_BYTES` or more; a small one, the
-``--no-flow`` path and an unchanged rerun never import Prefect for it.  The program
-(:func:`quakefolio.pipeline.cli.command`) ends with ``os._exit`` once its output is flushed:
-its exit status and its printed lines are those of :func:`quakefolio.pipeline.cli.main`.
+``--no-flow`` path and an unchanged rerun never import Prefect for it.  After ``run`` and
+``hazard`` the program (:func:`quakefolio.pipeline.cli.command`) ends with ``os._exit`` once its
+output is flushed; other commands exit as usual (``tests/test_operations.py`` stops a served
+schedule with Ctrl-C).  Exit status and printed lines are those of
+:func:`quakefolio.pipeline.cli.main`.
 """
 from __future__ import annotations
 
@@ -59,3 +61,5 @@ def test_the_program_exits_promptly_with_the_status_and_lines_of_main(mini_confi
     bad = _program("run", str(mini_config.parent / "missing.toml"), cwd=mini_config.parent)
     assert bad.returncode == 2 and bad.stdout == ""
     assert bad.stderr.startswith("error: ") and bad.stderr.count("\n") == 1 and "missing.toml" in bad.stderr
+    other = _program("report", str(mini_config.parent / "missing-run"), cwd=mini_config.parent)  # the usual exit
+    assert other.returncode == 2 and other.stderr.startswith("error: ") and other.stderr.count("\n") == 1
