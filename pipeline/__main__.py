@@ -1,6 +1,6 @@
 """``python -m quakefolio.pipeline`` is the ``quakefolio`` command."""
 import sys
 
-from quakefolio.pipeline.cli import main
+from quakefolio.pipeline.cli import command
 
-sys.exit(main())
+sys.exit(command())

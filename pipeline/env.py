@@ -13,9 +13,10 @@ from __future__ import annotations
 
 import os
 import sys
+import threading
 from pathlib import Path
 
-__all__ = ["configure_prefect", "state_folder"]
+__all__ = ["configure_prefect", "state_folder", "import_prefect_meanwhile", "PREFECT_MODULES"]
 
 
 def state_folder():
@@ -70,6 +71,47 @@ def configure_prefect(log_to=None):
     if log_to is not None and not _user_logging_config():
         _log_to_file(log_to, home)
     return home
+
+
+#: Prefect's modules that a flow run of this process needs (about 1.5 s of import, most of it
+#: building pydantic models; none of them imports numpy, pandas or pyarrow)
+PREFECT_MODULES = ("prefect", "prefect.flows", "prefect.tasks", "prefect.cache_policies", "prefect.settings",
+                   "prefect.task_runners", "prefect.flow_engine", "prefect.task_engine", "fastapi.encoders")
+
+
+def import_prefect_meanwhile(log_to=None):
+    """Import :data:`PREFECT_MODULES` in a background thread, after :func:`configure_prefect`.
+
+    For a flow run whose inputs take a while to read: the import (Python code, holding the
+    interpreter lock) overlaps the reading (mostly Arrow's CSV parser and numpy, which
+    release it).  The thread imports Prefect's own modules only, not the stages', so it and
+    the reading share no module being imported but the standard library's.  An import error
+    is left for the flow path to meet again in the main thread.
+
+    Parameters
+    ----------
+    log_to : path-like, optional
+        As for :func:`configure_prefect`.
+
+    Returns
+    -------
+    threading.Thread
+        Started (a daemon); join it before the command ends.
+    """
+    configure_prefect(log_to)
+    thread = threading.Thread(target=_import_modules, name="quakefolio-prefect-import", daemon=True)
+    thread.start()
+    return thread
+
+
+def _import_modules():
+    import importlib
+
+    for name in PREFECT_MODULES:
+        try:
+            importlib.import_module(name)
+        except Exception:  # noqa: BLE001 - met again, and reported, where the flow path imports Prefect
+            return
 
 
 def _user_logging_config():

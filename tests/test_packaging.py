@@ -57,7 +57,7 @@ def test_imports_are_namespaced_and_point_downward(path):
 
 def test_console_script_and_module_entry():
     scripts = _pyproject()["project"]["scripts"]
-    assert scripts["quakefolio"] == "quakefolio.pipeline.cli:main"
+    assert scripts["quakefolio"] == "quakefolio.pipeline.cli:command"
     assert (REPO / "pipeline" / "__main__.py").exists()
 
 
