@@ -297,17 +297,10 @@ def test_scheduled_runs_write_only_when_inputs_change(tmp_path, prefect_server, 
         assert causes["assets"]["by_primary_cause"]["exposure"] == 1
     finally:
         if serve.poll() is None:
-            # Ctrl-C: the command stops serving and exits.  asyncio answers a first Ctrl-C by cancelling the
-            # runner's task, which the runner can absorb when it comes at the end of a run (seen on a loaded
-            # machine); a second Ctrl-C then stops it, as a user would press it again.
-            for patience_s in (20, 40):
-                serve.send_signal(signal.SIGINT)
-                try:
-                    serve.wait(timeout=patience_s)
-                    break
-                except subprocess.TimeoutExpired:
-                    continue
-            if serve.poll() is None:
+            serve.send_signal(signal.SIGINT)  # Ctrl-C: the command stops serving and exits
+            try:
+                serve.wait(timeout=60)
+            except subprocess.TimeoutExpired:
                 os.killpg(serve.pid, signal.SIGKILL)
                 serve.wait(timeout=10)
         log.seek(0)
