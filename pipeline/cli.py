@@ -607,9 +607,6 @@ def main(argv=None):
     return status
 
 
-if __name__ == "__main__":
-    sys.exit(main())
-
 
 #: Commands whose process ends at once when they return (:func:`command`)
 PROMPT_EXIT_COMMANDS = frozenset({"run", "hazard"})
@@ -642,3 +639,7 @@ def command():
     except Exception:  # noqa: BLE001 - the ordinary exit deals with it (and says so)
         sys.exit(status)
     os._exit(status)
+
+
+if __name__ == "__main__":
+    sys.exit(command())
