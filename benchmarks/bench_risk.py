@@ -7,15 +7,16 @@ A synthetic portfolio (invented numbers) of up to 10**6 assets on 2,000 hazard s
 side in one process, interleaved, median of the per-round ratios (``timing.py``):
 
 * kernel: exact damage-state rates of every unique pair
-  (:func:`quakefolio.core.risk.damage_state_rates`, one call per class), on one thread
-  and on ``workers`` threads (``workers=`` of the kernel; one per core);
+  (:func:`quakefolio.core.risk.damage_state_rates`, one call per class on the class's curves,
+  gathered once beforehand), on one thread and on ``workers`` threads (``workers=`` of the
+  kernel; one per core);
 * reference: the same integral in tight plain numpy (``reference_risk.py``);
 * floor: bare ``ndtr`` on exactly the normal-CDF arguments the kernel evaluates, at most 2m
   per (pair, damage state) for m levels (two per segment, one per extrapolated tail, less
   the segment pieces left out as negligible; module notes of
   :mod:`quakefolio.core.risk_pieces`), in one call: the kernel cannot do less on one thread;
-* production path: unique (site, class) pairs, the kernel, EAL per pair, broadcast to
-  assets;
+* production path: unique (site, class) pairs, the curves gathered per class, the kernel,
+  EAL per pair, broadcast to assets;
 * baseline: bare ``scipy.special.ndtr`` (into a preallocated array) on as many
   standard-normal values as pairs x damage states x levels.
 
@@ -72,12 +73,16 @@ def unique_pairs(a_site, a_class, n_sites):
     return uniq // n_sites, uniq % n_sites, inverse
 
 
-def per_class(fn, levels, rates, medians, betas, p_class, p_site, **kw):
-    """Damage-state rates of every pair, one call per class (the small axis)."""
-    ds = np.empty((len(p_class), N_DS))
-    for c in range(N_CLASSES):
-        sel = p_class == c
-        ds[sel] = fn(levels, rates[p_site[sel]], medians[c], betas[c], **kw)
+def class_rows(rates, p_class, p_site):
+    """Per class (the small axis): the indices of its pairs and their hazard curves, gathered once."""
+    return [(idx, rates[p_site[idx]]) for idx in (np.flatnonzero(p_class == c) for c in range(N_CLASSES))]
+
+
+def per_class(fn, levels, rows, medians, betas, **kw):
+    """Damage-state rates of every pair, one call per class on its gathered curves (``class_rows``)."""
+    ds = np.empty((sum(len(idx) for idx, _ in rows), N_DS))
+    for c, (idx, curves) in enumerate(rows):
+        ds[idx] = fn(levels, curves, medians[c], betas[c], **kw)
     return ds
 
 
@@ -106,7 +111,7 @@ def phi_arguments(levels, rates, medians, betas, p_class, p_site):
 
 def production(levels, rates, medians, betas, mdr, a_site, a_class, n_sites):
     p_class, p_site, inverse = unique_pairs(a_site, a_class, n_sites)
-    ds = per_class(damage_state_rates, levels, rates, medians, betas, p_class, p_site)
+    ds = per_class(damage_state_rates, levels, class_rows(rates, p_class, p_site), medians, betas)
     return expected_annual_loss(ds, mdr)[inverse]  # broadcast to assets
 
 
@@ -115,8 +120,8 @@ def measure(n_sites, n_assets, rng):
     p_class, p_site, _ = unique_pairs(a_site, a_class, n_sites)
     z = np.random.default_rng(1).standard_normal((len(p_class), N_DS, N_LEVELS))
     out = np.empty_like(z)
-    args = (levels, rates, medians, betas, p_class, p_site)
-    phi_args = phi_arguments(*args)
+    args = (levels, class_rows(rates, p_class, p_site), medians, betas)
+    phi_args = phi_arguments(levels, rates, medians, betas, p_class, p_site)
     assert phi_args.size <= PHI_PER_LEVEL * z.size
     out_floor = np.empty_like(phi_args)
     kernel = per_class(damage_state_rates, *args)

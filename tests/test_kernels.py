@@ -1,9 +1,11 @@
 """The numerical kernels' shortcuts change no bit, and the benchmark's reference agrees with the kernel.
 
-* Risk convolution (:mod:`quakefolio.core.risk`, :mod:`quakefolio.core.risk_pieces`): results
-  do not depend on the row blocking or the number of threads, bit for bit; the telescoped
-  and the per-segment forms agree to round-off (tails, diagnostics, log-space terms); the
-  segment pieces left out as negligible change no rate by more than their bound.
+* Risk convolution (:mod:`quakefolio.core.risk`, :mod:`quakefolio.core.risk_pieces`,
+  :mod:`quakefolio.core.risk_loops`): the compiled normal CDF is scipy's, bit for bit; results
+  do not depend on the row blocking, the split of rows between calls or the number of threads,
+  bit for bit; the telescoped and the per-segment forms agree to round-off (tails,
+  diagnostics, log-space terms); the segment pieces left out as negligible change no rate by
+  more than their bound.
 * Hazard engine (:mod:`quakefolio.core.hazard`): evaluating the truncated exceedance only
   inside :func:`truncation_window` gives exactly the full formula; the curves do not depend
   on the pass size, bit for bit.
@@ -21,6 +23,7 @@ from scipy.special import ndtr
 from conftest import REPO
 from quakefolio.core.hazard import exceedance_probability, hazard_from_pairs, truncation_window
 from quakefolio.core.risk import _convolve, damage_state_rates, risk_disaggregation
+import quakefolio.core.risk_loops as risk_loops
 import quakefolio.core.risk_pieces as risk_pieces
 from quakefolio.core.risk_pieces import piece_sums
 
@@ -114,23 +117,49 @@ def _mixed_case(rng, n=45, m=17):
 
 
 @pytest.mark.parametrize("per_row", [False, True])
-def test_telescoped_sums_do_not_depend_on_blocking_or_threads(per_row):
-    # Each row's pieces are added in order whatever the block (also a block of one row, where
-    # numpy alone would add pairwise) and whichever thread takes it.
+def test_telescoped_sums_do_not_depend_on_row_splits_or_threads(per_row):
+    # Each row's pieces are added in order by the row's own loop, whichever call or thread
+    # takes the row: splitting the rows between calls or threads changes no bit.
     rng = np.random.default_rng(5)
-    levels, rates = _curves(rng, 53, m=19)
-    lnx = np.log(levels * rng.uniform(0.9, 1.1, (53, 1)))  # levels differing per row
+    n = 203
+    levels, rates = _curves(rng, n, m=19)
+    lnx = np.log(levels * rng.uniform(0.9, 1.1, (n, 1)))  # levels differing per row
     ln_theta, beta = np.log([0.08, 0.3, 1.1]), np.array([0.35, 0.6, 0.9])
     if per_row:
-        ln_theta = ln_theta + rng.uniform(-0.5, 0.5, (53, 3))
-        beta = beta * rng.uniform(0.8, 1.2, (53, 3))
+        ln_theta = ln_theta + rng.uniform(-0.5, 0.5, (n, 3))
+        beta = beta * rng.uniform(0.8, 1.2, (n, 3))
     for truncate, ends in [(False, False), (True, False), (False, True)]:
         whole = piece_sums(lnx, rates, ln_theta, beta, truncate=truncate, ends=ends)
-        for block, workers in [(1, 1), (130, 1), (500, 2), (10 ** 6, 3), (1, 4)]:
-            parts = piece_sums(lnx, rates, ln_theta, beta, truncate=truncate, ends=ends, workers=workers,
-                               block_values=block)
+        for workers in (2, 3, 7):
+            parts = piece_sums(lnx, rates, ln_theta, beta, truncate=truncate, ends=ends, workers=workers)
             for a, b in zip(whole, parts):
                 assert (a is None and b is None) or np.array_equal(a, b)
+        for cut in (1, 50, 202):
+            rows = (slice(0, cut), slice(cut, n))
+            split = [piece_sums(lnx[r], rates[r], ln_theta[r] if per_row else ln_theta,
+                                beta[r] if per_row else beta, truncate=truncate, ends=ends) for r in rows]
+            for i, a in enumerate(whole):
+                assert (a is None) or np.array_equal(a, np.concatenate([part[i] for part in split]))
+
+
+def test_compiled_normal_cdf_is_scipys_bit_for_bit():
+    # core/risk_loops.py evaluates Phi(x) for x <= 0 as erfc(-x / sqrt 2) / 2 through scipy's own erfc,
+    # the expression scipy's ndtr evaluates there (Cephes ndtr), and calls ndtr itself above 0: every
+    # value must be scipy.special.ndtr's, bit for bit, over the whole range (tails, zero, infinities).
+    import numba
+
+    @numba.njit
+    def cdf_all(phi, erfc, x, out):
+        for i in range(x.size):
+            out[i] = risk_loops.cdf(phi, erfc, x[i])
+
+    rng = np.random.default_rng(17)
+    grid = np.geomspace(1e-300, 40.0, 40001)
+    x = np.concatenate([-grid, grid, [-np.inf, -0.0, 0.0, np.inf, -1.0, 1.0, -np.sqrt(0.5), np.sqrt(0.5)],
+                        rng.standard_normal(200_000) * 6.0, rng.uniform(-1.5, 1.5, 200_000)])
+    got = np.empty_like(x)
+    cdf_all(risk_loops.PHI, risk_loops.ERFC, x, got)
+    assert np.array_equal(got, ndtr(x))
 
 
 @pytest.mark.parametrize("tail", ["extrapolate", "truncate"])
