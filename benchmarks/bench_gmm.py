@@ -227,6 +227,7 @@ def main() -> int:
     print(f"scenarios N = {N_SCENARIOS}, IMs = {', '.join(IMS)} ({len(IMS)})")
     print(f"scalar timed on the first {N_SCALAR} scenarios and scaled linearly to N\n")
     all_ok = True
+    ratios = {}
     for name, model in GMM_REGISTRY.items():
         make, to_input, _ = KITS[name]
         sc = make(N_SCENARIOS, SEED)
@@ -254,6 +255,7 @@ def main() -> int:
 
         ok = ratio >= TARGET_RATIO
         all_ok &= ok
+        ratios[name] = ratio
         print(f"{name}:")
         print(f"  vectorised, N = {N_SCENARIOS}:            {t_vec * 1e3:9.2f} ms")
         print(
@@ -271,6 +273,11 @@ def main() -> int:
             + ", ".join(f"{c:.2f} us" for c in per_scen)
             + "\n"
         )
+    least = min(ratios, key=ratios.get)
+    lo, hi = min(ratios.values()), max(ratios.values())
+    print(f"row: GMM vectorised vs the reference library's scalar models, N = {N_SCENARIOS} scenarios, the "
+          f"least of {len(ratios)} models ({least}): {lo:.0f}x (target >= {TARGET_RATIO:.0f}x) "
+          f"{'ok' if lo >= TARGET_RATIO else 'MISSED'} [{lo:.0f}-{hi:.0f} over {len(ratios)} models]", flush=True)
     return 0 if all_ok else 1
 
 

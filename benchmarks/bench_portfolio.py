@@ -151,6 +151,13 @@ def _target_rows(st, ref, load):
           f"{'ok' if seconds <= TARGET['seconds'] else 'MISSED'}), peak {peak_gb:.2f} GB (target <= "
           f"{TARGET['peak_mb'] / 1024:g} GB {'ok' if peak_gb * 1024 <= TARGET['peak_mb'] else 'MISSED'}); "
           f"load average (1/5/15 min) {avg} on {os.cpu_count()} cores", flush=True)
+    secs, peaks = [s["seconds"] for s in st], [s["peak_mb"] / 1024 for s in st]
+    for what, values, target, unit in (("wall time", secs, TARGET["seconds"], "s"),
+                                       ("peak memory", peaks, TARGET["peak_mb"] / 1024, "GB")):
+        med = statistics.median(values)
+        print(f"row: event-based stage, {label.split(', ', 1)[-1]}, {what} (median of {len(values)} runs): "
+              f"{med:.2f} {unit} (target <= {target:g} {unit}) {'ok' if med <= target else 'MISSED'} "
+              f"[{min(values):.2f}-{max(values):.2f}]", flush=True)
 
 
 def main():
