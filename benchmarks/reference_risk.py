@@ -1,7 +1,7 @@
 r"""Tight reference of the damage-convolution benchmark: the same exact risk integral in plain numpy.
 
 Run by ``bench_risk.py`` beside :func:`quakefolio.core.risk.damage_state_rates` (and checked
-against it to 1e-12 relative by ``tests/test_bench_references.py``).
+against it to 1e-12 relative by ``tests/test_kernels.py``).
 
 Method.  The hazard curve is a power law :math:`\lambda_a (x/x_a)^{-k_p}` on each piece
 :math:`p` of the IM axis: the lower tail :math:`(0, x_0]`, the tabulated segments
