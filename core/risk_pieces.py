@@ -146,9 +146,10 @@ def piece_sums(lnx, lam, ln_theta, beta, *, truncate=False, ends=False, workers=
     if n == 0:
         return tuple(out) + (() if ends else (None, None))
     per_row = ln_theta.ndim > 1
-    shared_rows = not per_row and _same_rows(lnx)
+    same_levels = _same_rows(lnx)
+    shared_rows = not per_row and same_levels
     keep = _kept_pieces(lnx[0], lam, ln_theta, beta) if shared_rows else np.ones((n_ds, m + 1), dtype=bool)
-    lnx_r = _own_rows(lnx)
+    lnx_r = _own_rows(lnx[:1] if same_levels else lnx)  # one row where every row holds the same levels
     with np.errstate(divide="ignore"):
         ln_lam = np.log(_own_rows(lam))
     th, b = (np.ascontiguousarray(a, dtype=float).reshape(-1, n_ds) for a in (ln_theta, beta))
