@@ -72,16 +72,22 @@ def _log_difference(log_phi, lo, hi):
 
 
 @numba.njit(cache=True, nogil=True, fastmath=False)
-def cdf(phi, erfc, x):
-    r""":math:`\Phi(x)`, scipy's ``ndtr`` bit for bit; for :math:`x \le 0` as :math:`\tfrac12\operatorname{erfc}(-x/\sqrt2)`.
+def _cdf_nonpositive(erfc, x):
+    r""":math:`\Phi(x)` for :math:`x \le 0` as :math:`\tfrac12\operatorname{erfc}(-x/\sqrt2)`, scipy's ``ndtr`` there bit for bit.
 
-    For :math:`x \le 0` scipy's ``ndtr`` is that expression (Cephes ``ndtr``: half the
-    complementary error function of :math:`|x|/\sqrt2`, or :math:`\tfrac12 + \tfrac12\operatorname{erf}`
-    near 0, the same bits as halving is exact); calling ``erfc`` directly skips a layer of
-    calls (``tests/test_kernels.py`` checks the identity).
+    Cephes ``ndtr`` evaluates that expression for :math:`x \le 0` (half the complementary
+    error function of :math:`|x|/\sqrt2`, or :math:`\tfrac12 + \tfrac12\operatorname{erf}` near 0:
+    the same bits, as halving is exact); calling ``erfc`` directly skips a layer of calls
+    (``tests/test_kernels.py`` checks the identity).
     """
+    return 0.5 * erfc(-x * SQRT1_2, 0)
+
+
+@numba.njit(cache=True, nogil=True, fastmath=False)
+def cdf(phi, erfc, x):
+    r""":math:`\Phi(x)`, scipy's ``ndtr`` bit for bit (:func:`_cdf_nonpositive` for :math:`x \le 0`)."""
     if x <= 0.0:
-        return 0.5 * erfc(-x * SQRT1_2, 0)
+        return _cdf_nonpositive(erfc, x)
     return phi(x, 0)
 
 
@@ -89,11 +95,11 @@ def cdf(phi, erfc, x):
 def _difference(phi, erfc, lo, hi):
     r""":math:`\sigma[\Phi(\sigma hi) - \Phi(\sigma lo)] \ge 0`, :math:`\sigma = -\operatorname{sign}(lo)` (sign bit).
 
-    Every argument but ``hi`` where :math:`lo < 0` is at most 0 (:func:`cdf`).
+    Every argument but ``hi`` where :math:`lo < 0` is at most 0.
     """
     if math.copysign(1.0, lo) < 0.0:
-        return abs(cdf(phi, erfc, hi) - 0.5 * erfc(-lo * SQRT1_2, 0))
-    return abs(0.5 * erfc(hi * SQRT1_2, 0) - 0.5 * erfc(lo * SQRT1_2, 0))
+        return abs(cdf(phi, erfc, hi) - _cdf_nonpositive(erfc, lo))
+    return abs(_cdf_nonpositive(erfc, -hi) - _cdf_nonpositive(erfc, -lo))
 
 
 @numba.njit(cache=True, nogil=True, fastmath=False)
